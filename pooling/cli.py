@@ -1,0 +1,429 @@
+"""The command line: a thin shell that wires the stages together. Exit codes are in pooling.errors."""
+from __future__ import annotations
+
+import argparse
+import os
+import signal
+import sys
+from importlib import resources
+from pathlib import Path
+
+from . import errors as E
+
+DEMO_FILE = "demo_castings.csv"
+
+
+# ---------------------------------------------------------------------------------------------
+# option parsing (values are checked here, at the edge)
+
+def _num(text: str, what: str) -> float:
+    try:
+        x = float(text)
+    except ValueError:
+        raise E.InputError(f"bad option {what}: expected a number, found '{text}'") from None
+    if x != x or x in (float("inf"), float("-inf")):
+        raise E.InputError(f"bad option {what}: expected a finite number, found '{text}'")
+    return x
+
+
+def parse_prior(text: str, option: str):
+    """flat | normal:LOC:SCALE | half-normal:SCALE | half-cauchy:SCALE | reciprocal | gamma:SHAPE:RATE."""
+    from . import model as m
+
+    parts = text.strip().lower().split(":")
+    kind, args = parts[0], parts[1:]
+    shapes = {
+        "--mu": {"flat": (m.Flat, 0), "normal": (m.Normal, 2)},
+        "--tau": {"flat": (m.Flat, 0), "half-normal": (m.HalfNormal, 1), "half-cauchy": (m.HalfCauchy, 1)},
+        "--s2": {"reciprocal": (m.Reciprocal, 0), "gamma": (m.Gamma, 2)},
+    }[option]
+    if kind not in shapes:
+        forms = {"--mu": "flat or normal:LOC:SCALE", "--tau": "flat, half-normal:SCALE or half-cauchy:SCALE",
+                 "--s2": "reciprocal or gamma:SHAPE:RATE"}[option]
+        raise E.InputError(f"bad option {option}: expected {forms}; found '{text}'")
+    cls, nargs = shapes[kind]
+    if len(args) != nargs:
+        raise E.InputError(f"bad option {option}: '{kind}' takes {nargs} number(s) after ':'; found '{text}'")
+    return cls(*(_num(a, option) for a in args))
+
+
+def _nu(args):
+    from . import model as m
+
+    if args.nu is not None and args.nu_grid is not None:
+        raise E.InputError("bad options: give either --nu (a fixed value) or --nu-grid, not both")
+    if args.nu is not None:
+        return m.NuFixed(_num(args.nu, "--nu"))
+    if args.nu_grid is not None:
+        return m.NuGrid(tuple(_num(x, "--nu-grid") for x in args.nu_grid.split(",") if x.strip()))
+    return m.NuGrid()
+
+
+def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
+    if data:
+        p.add_argument("data", help="CSV or Parquet file: one row per measurement (or per group, see below)")
+        p.add_argument("--group", required=True, help="column holding the group label")
+        p.add_argument("--value", help="column of measurements (long table)")
+        p.add_argument("--size", help="column of group sizes n (one row per group, with --mean and --sd)")
+        p.add_argument("--mean", help="column of group means (with --size and --sd)")
+        p.add_argument("--sd", help="column of group standard deviations, ddof=1 (with --size and --mean)")
+        p.add_argument("--estimate", help="column of group estimates (known structure, with --std-error)")
+        p.add_argument("--std-error", dest="std_error", help="column of the estimates' standard errors")
+        p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
+        p.add_argument("--delimiter", help="CSV field separator (default: detected)")
+    g = p.add_argument_group("model")
+    g.add_argument("--within", choices=["separate", "shared", "known"],
+                   help="within-group variance structure (default: separate; known with --estimate)")
+    g.add_argument("--mu", default="flat", help="prior on mu: flat (default) or normal:LOC:SCALE")
+    g.add_argument("--tau", default="flat",
+                   help="prior on tau: flat (default; needs 3+ groups), half-normal:SCALE or half-cauchy:SCALE")
+    g.add_argument("--s2", default="reciprocal", help="prior on s^2 (separate): reciprocal (default, ∝ 1/s^2) or gamma:SHAPE:RATE")
+    g.add_argument("--nu", help="hold nu (separate) at this value")
+    g.add_argument("--nu-grid", dest="nu_grid", help="comma-separated grid of nu values, equal prior weights "
+                   "(default: 1,1.5,2,3,4,5,6,8,10,14,20,30,50,100)")
+    r = p.add_argument_group("run")
+    r.add_argument("--chains", type=int, default=4)
+    r.add_argument("--draws", type=int, default=1000, help="draws per chain before run-length control (default 1000)")
+    r.add_argument("--warmup", type=int, default=1000, help="warm-up sweeps per chain (default 1000)")
+    r.add_argument("--max-draws", dest="max_draws", type=int, help="cap on draws per chain (default 4 x --draws)")
+    r.add_argument("--seed", type=int, help="seed for reproducible draws (default: fresh, recorded in summary.json)")
+    r.add_argument("--threads", type=int, help="threads for the chains (default: min(chains, cores))")
+    o = p.add_argument_group("output")
+    o.add_argument("--out", required=data, help="run folder to create")
+    o.add_argument("--replace", action="store_true", help="replace the run folder if it exists")
+    o.add_argument("--quiet", action="store_true", help="no progress bar and no table")
+    # --- reporter options (pooling.report; read by report.ReportOptions.from_args) -------------
+    def _finite(text):
+        try:
+            x = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a number, found '{text}'") from None
+        if x != x or x in (float("inf"), float("-inf")):
+            raise argparse.ArgumentTypeError(f"expected a finite number, found '{text}'")
+        return x
+
+    def _positive(text):
+        x = _finite(text)
+        if x <= 0:
+            raise argparse.ArgumentTypeError(f"expected a number above 0, found '{text}'")
+        return x
+
+    def _level(text):
+        x = _finite(text)
+        if not 0 < x < 1:
+            raise argparse.ArgumentTypeError(f"expected a level between 0 and 1 (for example 0.9), found '{text}'")
+        return x
+
+    def _count(text):
+        try:
+            k = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, found '{text}'") from None
+        if k < 1:
+            raise argparse.ArgumentTypeError(f"expected a whole number of at least 1, found '{text}'")
+        return k
+
+    q = p.add_argument_group("report")
+    q.add_argument("--level", type=_level, default=0.95, help="credible interval level (default 0.95)")
+    q.add_argument("--top", type=_count, default=3, metavar="K", help="report P(among the K best) (default 3)")
+    q.add_argument("--best", choices=["highest", "lowest"], default="highest",
+                   help="which end of the scale is best for ranks (default highest)")
+    q.add_argument("--threshold", type=_finite, help="report P(theta_j above / below this value)")
+    q.add_argument("--lower-limit", dest="lower_limit", type=_finite, help="lower specification limit")
+    q.add_argument("--upper-limit", dest="upper_limit", type=_finite, help="upper specification limit")
+    q.add_argument("--allowed-bias", dest="allowed_bias", type=_positive,
+                   help="report P(|theta_j - mu| > this) for each group")
+    q.add_argument("--compare", action="append", metavar="GROUPS",
+                   help="groups for the head-to-head matrix P(theta_a > theta_b): repeat the option, or list "
+                        "labels separated by commas")
+    q.add_argument("--assigned-value", dest="assigned_value", type=_finite,
+                   help="x_pt for z-scores (default: ISO 13528 Algorithm A robust mean of the group means)")
+    q.add_argument("--sigma-pt", dest="sigma_pt", type=_positive,
+                   help="sigma_pt for z-scores (default: ISO 13528 Algorithm A robust sd of the group means)")
+    # --- end of reporter options -------------------------------------------------------------
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="pooling",
+        description="Compare many groups with a partial-pooling normal model.",
+        epilog="exit codes: 0 success; 2 bad input; 3 results written but diagnostics targets missed; "
+               "4 nothing new to do; 5 stopped by the user; 6 output cannot be written; 1 internal error",
+    )
+    sub = parser.add_subparsers(dest="command", required=True)
+    p_fit = sub.add_parser("fit", help="fit grouped measurements and write a run folder")
+    _add_fit_options(p_fit)
+    p_demo = sub.add_parser("demo", help="fit the embedded demo data (36 invented suppliers) and write a run folder")
+    _add_fit_options(p_demo, data=False)
+    p_demo.set_defaults(seed=1)
+    _add_store_parsers(sub)  # the store of batches: ingest, batches, withdraw, refit
+    return parser
+
+
+# ---------------------------------------------------------------------------------------------
+# the commands
+
+def _stats_from_args(args):
+    from . import stats as S
+
+    modes = {"value": args.value is not None, "summary": any(x is not None for x in (args.size, args.mean, args.sd)),
+             "known": args.estimate is not None or args.std_error is not None}
+    if sum(modes.values()) != 1:
+        raise E.InputError("bad options: give exactly one of --value COL (measurements), --size/--mean/--sd COLs "
+                           "(one row per group) or --estimate/--std-error COLs (estimates with standard errors)")
+    if modes["value"]:
+        return S.read_table(args.data, args.group, args.value, encoding=args.encoding, delimiter=args.delimiter)
+    if modes["summary"]:
+        if None in (args.size, args.mean, args.sd):
+            raise E.InputError("bad options: one row per group needs all of --size, --mean and --sd")
+        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd)
+    if None in (args.estimate, args.std_error):
+        raise E.InputError("bad options: estimates need both --estimate and --std-error")
+    return S.from_estimates(args.data, args.group, args.estimate, args.std_error)
+
+
+def _model_from_args(args, stats):
+    from .model import Model
+
+    within = args.within or ("known" if stats.kind == "known" else "separate")
+    return Model(within=within, mu=parse_prior(args.mu, "--mu"), tau=parse_prior(args.tau, "--tau"),
+                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args))
+
+
+def _settings_from_args(args):
+    from .sampler import Settings
+
+    return Settings(chains=args.chains, draws=args.draws, warmup=args.warmup, seed=args.seed,
+                    max_draws=args.max_draws, threads=args.threads)
+
+
+def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
+    """Fit, write the run folder, print. `init`: chains' starting states; `more(fit, folder)` adds files
+    to the folder before it is renamed into place; `after(fit, out)` runs once the folder is in place."""
+    from . import fit as do_fit
+    from .output import check_target, write_run
+    from .terminal import print_fit
+
+    model = _model_from_args(args, stats)
+    settings = _settings_from_args(args)
+    check_target(Path(args.out), args.replace)  # refuse before sampling, not after
+    fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init)
+    extra = None
+    try:
+        from .report import write_report_files  # the reporter's files, when that stage is installed
+
+        extra = lambda f, folder: write_report_files(f, folder, args)  # noqa: E731
+    except ImportError:
+        pass
+    if more is not None:
+        extra = _chain_extra(extra, more)
+    out = write_run(fit, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
+    if not args.quiet:
+        print_fit(fit, out)
+    if after is not None:
+        after(fit, out)
+    if not fit.targets_met:
+        print(f"warning: diagnostics targets missed for {len(fit.misses)} quantities after "
+              f"{fit.raw.mu.shape[1]} draws per chain; results were written to '{out}' but need care "
+              "(see summary.json, 'diagnostics')", file=sys.stderr)
+        return E.EXIT_TARGETS_MISSED
+    return E.EXIT_OK
+
+
+def cmd_fit(args, argv) -> int:
+    return run_fit(args, _stats_from_args(args), argv)
+
+
+def demo_path() -> Path:
+    return Path(str(resources.files("pooling") / "data" / DEMO_FILE))
+
+
+def cmd_demo(args, argv) -> int:
+    from . import stats as S
+
+    args.out = args.out or "pooling-demo"
+    stats = S.read_table(demo_path(), "supplier", "strength_mpa")
+    if not args.quiet:
+        print("demo: tensile strength (MPa) of test bars from 36 invented casting suppliers, 2 to 52 bars each")
+    return run_fit(args, stats, argv)
+
+
+def _chain_extra(first, second):
+    def both(fit, folder):
+        if first is not None:
+            first(fit, folder)
+        second(fit, folder)
+
+    return both
+
+
+# ---------------------------------------------------------------------------------------------
+# the store of batches (nightly reruns): pooling ingest | batches | withdraw | refit
+
+def _add_store_parsers(sub):
+    p = sub.add_parser("ingest", help="add one delivery of measurements to a store of batches (creating the store)")
+    p.add_argument("store", help="the store file (SQLite); created when it does not exist")
+    p.add_argument("file", help="CSV or Parquet file: one row per measurement")
+    p.add_argument("--group", required=True, help="column holding the group label")
+    p.add_argument("--value", required=True, help="column of measurements")
+    p.add_argument("--batch", help="name of the batch in the ledger (default: the file's name)")
+    p.add_argument("--at", help="the batch's own date, e.g. 2024-05-31 or 2024-05-31T06:00+02:00 (default: now; "
+                   "UTC when no offset is given); ages for --half-life count from it")
+    p.add_argument("--replace", action="store_true",
+                   help="replace the batch of the same name, or take back content that was withdrawn")
+    p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
+    p.add_argument("--delimiter", help="CSV field separator (default: detected)")
+    p.add_argument("--quiet", action="store_true", help="print nothing on success")
+    p = sub.add_parser("batches", help="list the ledger of a store: every batch, its status, and the recorded runs")
+    p.add_argument("store", help="the store file")
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    p = sub.add_parser("withdraw", help="withdraw a batch (a bad delivery); the ledger keeps its record")
+    p.add_argument("store", help="the store file")
+    p.add_argument("batch", help="name of the batch, as `pooling batches` shows it")
+    p.add_argument("--reason", help="a note kept in the ledger")
+    p = sub.add_parser("refit", help="merge every active batch, fit, write the run folder and what changed, "
+                       "and record the run in the store")
+    p.add_argument("store", help="the store file")
+    _add_fit_options(p, data=False)
+    f = p.add_argument_group("store")
+    f.add_argument("--half-life", dest="half_life", metavar="DAYS", help="forget old batches: a batch DAYS old counts with weight "
+                   "0.5^(age/DAYS) on its n and M2 (default: no forgetting)")
+    f.add_argument("--as-of", dest="as_of", metavar="DATE", help="reference date for batch ages (default: now)")
+    f.add_argument("--force", action="store_true", help="refit even when no batch was added or withdrawn "
+                   "since the last recorded run (otherwise exit 4)")
+    f.add_argument("--fresh-start", dest="fresh_start", action="store_true",
+                   help="start the chains afresh instead of from the last run's final states")
+    w = p.add_argument_group("what changed")
+    for flags, kw in (
+        (("--threshold",), dict(metavar="VALUE", help="report groups whose side of this value changed: P(theta_j > VALUE)")),
+        (("--lower",), dict(metavar="VALUE", help="lower specification limit: report groups whose P(theta_j outside the limits) "
+                                 "changed side")),
+        (("--upper",), dict(metavar="VALUE", help="upper specification limit (see --lower)")),
+        (("--decide-at",), dict(dest="decide_at", default="0.95", metavar="P", help="a side is 'above' (or 'outside') at a "
+                                "probability of at least this, 'below' (or 'inside') at most 1 minus it "
+                                "(default 0.95)")),
+    ):
+        try:
+            w.add_argument(*flags, **kw)
+        except argparse.ArgumentError:
+            pass  # the reporter defines it already for every fit; the change report reads the same value
+
+
+def _opt_num(args, name, flag):
+    v = getattr(args, name, None)
+    return None if v is None else v if isinstance(v, (int, float)) else _num(v, flag)
+
+
+def _watch_from_args(args):
+    from .store.changes import Watch
+
+    return Watch(threshold=_opt_num(args, "threshold", "--threshold"), lower=_opt_num(args, "lower", "--lower"),
+                 upper=_opt_num(args, "upper", "--upper"), decide_at=_opt_num(args, "decide_at", "--decide-at"),
+                 level=_opt_num(args, "level", "--level") or 0.95, best=getattr(args, "best", None) or "highest")
+
+
+def cmd_ingest(args, argv) -> int:
+    from .store import jobs
+
+    info, created = jobs.ingest_file(args.store, args.file, args.group, args.value, batch=args.batch, at=args.at,
+                                     replace=args.replace, encoding=args.encoding, delimiter=args.delimiter)
+    if not args.quiet:
+        if created:
+            print(f"created the store '{args.store}'")
+        print(f"ingested batch '{info.name}': {info.rows} measurements in {info.groups} groups, dated {info.dated_at} "
+              f"(sha256 {info.sha256[:12]})")
+    return E.EXIT_OK
+
+
+def cmd_batches(args, argv) -> int:
+    import json
+
+    from .store import jobs
+
+    batches, runs = jobs.list_batches(args.store)
+    if args.json:
+        print(json.dumps({"store": args.store, "batches": [b.to_dict() for b in batches],
+                          "runs": [{"id": r.id, "created_at": r.created_at, "folder": r.folder,
+                                    "state_sha256": r.state_sha256, "batch_ids": list(r.batch_ids),
+                                    "half_life_days": r.half_life_days, "targets_met": r.targets_met} for r in runs]},
+                         indent=2, ensure_ascii=False))
+        return E.EXIT_OK
+    print(f"{'id':>4}  {'name':28}{'status':11}{'rows':>10}{'groups':>8}  {'dated':26}{'changed':26}sha256")
+    for b in batches:
+        name = b.name if len(b.name) <= 27 else b.name[:26] + "…"
+        print(f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
+              f"{b.sha256[:12]}")
+    active = sum(b.status == "active" for b in batches)
+    print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")
+    if runs:
+        r = runs[-1]
+        print(f"; the last, run {r.id} of {r.created_at}, is in '{r.folder}'"
+              + ("" if r.targets_met else " (diagnostics targets missed)"), end="")
+    print()
+    return E.EXIT_OK
+
+
+def cmd_withdraw(args, argv) -> int:
+    from .store import jobs
+
+    info = jobs.withdraw_batch(args.store, args.batch, args.reason)
+    print(f"withdrew batch '{info.name}' ({info.rows} measurements) at {info.changed_at}; the next refit leaves it out")
+    return E.EXIT_OK
+
+
+def cmd_refit(args, argv) -> int:
+    from .store import jobs
+    from .store.changes import short_lines
+
+    if args.out is None:
+        raise E.InputError("bad options: refit needs --out DIR, the run folder to create")
+    half = _opt_num(args, "half_life", "--half-life")
+    watch = _watch_from_args(args)
+    plan = jobs.plan_refit(args.store, half_life_days=half, as_of=args.as_of, force=args.force)
+    init = None if args.fresh_start else plan.init_for(_model_from_args(args, plan.stats), args.chains)
+    settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
+                "seed": args.seed, "warm_start": init is not None}
+
+    def after(fit, out):
+        jobs.record_run(plan, fit, out, settings)
+        if not args.quiet:
+            for line in short_lines(plan.report):
+                print(line)
+
+    return run_fit(args, plan.stats, argv, init=init, more=lambda fit, folder: jobs.write_changes(plan, fit, watch, folder),
+                   after=after)
+
+
+STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_withdraw, "refit": cmd_refit}
+
+
+def _on_sigterm(signum, frame):
+    raise KeyboardInterrupt
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if hasattr(signal, "SIGTERM") else None
+    try:
+        return {"fit": cmd_fit, "demo": cmd_demo, **STORE_COMMANDS}[args.command](args, argv)
+    except E.PoolingError as exc:
+        print(f"pooling: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("pooling: stopped by the user; nothing was written", file=sys.stderr)
+        return E.EXIT_INTERRUPTED
+    except Exception as exc:  # a bug: one line, the traceback only on request
+        if os.environ.get("POOLING_DEBUG"):
+            raise
+        print(f"pooling: internal error: {type(exc).__name__}: {exc} (set POOLING_DEBUG=1 for details; "
+              "please report it)", file=sys.stderr)
+        return E.EXIT_INTERNAL
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,190 @@
+"""The interlaboratory view: consensus value, variance components in the terms of ISO 5725, each
+lab's bias, and the classical comparators (one-way ANOVA by the method of moments, z-scores with
+the ISO 13528 signal limits) side by side with the posterior.
+
+ISO 5725 terms used here: repeatability sd s_r (within a lab), between-lab sd s_L, reproducibility
+sd s_R = sqrt(s_L^2 + s_r^2); the repeatability and reproducibility limits are 2.8 s_r and 2.8 s_R
+(ISO 5725-6; 2.8 ≈ 1.96 * sqrt(2), the 95 % limit for the difference of two results).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from scipy import stats as sps
+
+from ..errors import InputError
+from .draws import BLOCK, View, interval, view
+
+LIMIT_FACTOR = 2.8  # ISO 5725-6: repeatability limit r = 2.8 s_r, reproducibility limit R = 2.8 s_R
+Z_WARNING, Z_ACTION = 2.0, 3.0  # ISO 13528:2015, 9.4.1
+
+
+def _summ(x: np.ndarray, level: float) -> dict:
+    lo, hi = interval(x, level)
+    return {"mean": float(x.mean()), "median": float(np.median(x)), "sd": float(x.std(ddof=1)),
+            "low": float(lo), "high": float(hi)}
+
+
+def repeatability_draws(v: View) -> np.ndarray | None:
+    """Per draw, the typical within-lab sd s_r = sqrt(mean_j sigma_j^2) (separate), sigma (shared); None when known."""
+    if v.sigma is None:
+        return None
+    if v.sigma.ndim == 1:
+        return v.sigma
+    return np.sqrt(np.mean(v.sigma ** 2, axis=1))
+
+
+# ---------------------------------------------------------------------------------------------
+# classical comparators
+
+def oneway_anova(n, mean, m2, mean_lo=None) -> dict | None:
+    """One-way ANOVA from group sufficient statistics, with the method-of-moments variance components.
+
+    SS_between = sum_j n_j (ybar_j - ybar)^2, SS_within = sum_j M2_j, MS = SS / df with df = J - 1 and
+    N - J; n0 = (N - sum_j n_j^2 / N) / (J - 1); s_L^2 = max(0, (MS_between - MS_within) / n0),
+    s_r^2 = MS_within, s_R^2 = s_L^2 + s_r^2 (ISO 5725-2 for unequal n, where n0 is its n-bar).
+    Returns None without replication (N <= J) or with fewer than two groups.
+    """
+    n = np.asarray(n, dtype=np.float64)
+    mean = np.asarray(mean, dtype=np.float64)
+    m2 = np.asarray(m2, dtype=np.float64)
+    J, N = len(n), float(n.sum())
+    if J < 2 or N <= J:
+        return None
+    c = float(np.median(mean))  # deviations from a central value keep the digits of data near 1e9
+    d = mean - c
+    if mean_lo is not None:  # the low part of a double-double mean (pooling.stats)
+        d = d + np.asarray(mean_lo, dtype=np.float64)
+    grand = float(np.sum(n * d) / N)
+    ssb = float(np.sum(n * (d - grand) ** 2))
+    ssw = float(np.sum(m2))
+    dfb, dfw = J - 1, N - J
+    msb, msw = ssb / dfb, ssw / dfw
+    n0 = (N - float(np.sum(n * n)) / N) / dfb
+    f = msb / msw if msw > 0 else math.inf
+    p = float(sps.f.sf(f, dfb, dfw)) if math.isfinite(f) else 0.0
+    s_l2 = max(0.0, (msb - msw) / n0)
+    return {
+        "df_between": dfb, "df_within": dfw, "ss_between": ssb, "ss_within": ssw,
+        "ms_between": msb, "ms_within": msw, "f": f, "p_value": p, "n0": n0, "grand_mean": grand + c,
+        "between_var": s_l2, "within_var": msw, "between_sd": math.sqrt(s_l2), "repeatability_sd": math.sqrt(msw),
+        "reproducibility_sd": math.sqrt(s_l2 + msw), "icc": s_l2 / (s_l2 + msw) if s_l2 + msw > 0 else math.nan,
+        "truncated": (msb - msw) < 0,
+    }
+
+
+def algorithm_a(x, tol: float = 1e-12, max_iter: int = 1000) -> tuple[float, float]:
+    """Robust mean x* and sd s* of ISO 13528:2015 Annex C.3 (Algorithm A), stated from memory:
+    start x* = median, s* = 1.483 * median|x - x*|; repeat delta = 1.5 s*, x_i* = clip(x_i, x* - delta,
+    x* + delta), x* = mean(x_i*), s* = 1.134 * sd(x_i*) (n - 1 divisor), until both settle."""
+    x = np.asarray(x, dtype=np.float64)
+    xs = float(np.median(x))
+    ss = 1.483 * float(np.median(np.abs(x - xs)))
+    if ss == 0.0:  # more than half the values equal: start from the plain sd instead (common practice)
+        ss = float(x.std(ddof=1)) if len(x) > 1 else 0.0
+    if ss == 0.0:
+        return xs, 0.0
+    for _ in range(max_iter):
+        delta = 1.5 * ss
+        c = np.clip(x, xs - delta, xs + delta)
+        new_x, new_s = float(c.mean()), 1.134 * float(c.std(ddof=1))
+        done = abs(new_x - xs) <= tol * max(abs(xs), ss) and abs(new_s - ss) <= tol * ss
+        xs, ss = new_x, new_s
+        if done:
+            break
+    return xs, ss
+
+
+def z_signal(z) -> np.ndarray:
+    """ISO 13528:2015, 9.4.1: |z| <= 2.0 no signal ('none'); 2.0 < |z| < 3.0 'warning'; |z| >= 3.0 'action'."""
+    a = np.abs(np.asarray(z, dtype=np.float64))
+    out = np.where(a >= Z_ACTION, "action", np.where(a > Z_WARNING, "warning", "none")).astype(object)
+    out[np.isnan(a)] = ""
+    return out
+
+
+def z_scores(x, assigned: float | None = None, sigma_pt: float | None = None):
+    """z_j = (x_j - x_pt) / sigma_pt with their ISO 13528 signals. x_pt and sigma_pt default to the
+    Algorithm A robust mean and sd of the x_j; returns (z, signal, {'assigned', 'sigma_pt', 'basis'})."""
+    x = np.asarray(x, dtype=np.float64)
+    if sigma_pt is not None and not sigma_pt > 0:
+        raise InputError(f"bad option: the proficiency sd sigma_pt must be a positive number; found {sigma_pt:g}")
+    rx, rs = algorithm_a(x) if (assigned is None or sigma_pt is None) else (math.nan, math.nan)
+    x_pt = rx if assigned is None else float(assigned)
+    s_pt = rs if sigma_pt is None else float(sigma_pt)
+    basis = {
+        "assigned": x_pt, "sigma_pt": s_pt,
+        "assigned_from": "given" if assigned is not None else "robust mean of the group means (ISO 13528 Algorithm A)",
+        "sigma_pt_from": "given" if sigma_pt is not None else "robust sd of the group means (ISO 13528 Algorithm A)",
+    }
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = (x - x_pt) / s_pt if s_pt > 0 else np.full(len(x), np.nan)
+    return z, z_signal(z), basis
+
+
+# ---------------------------------------------------------------------------------------------
+# the view
+
+def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assigned: float | None = None,
+             sigma_pt: float | None = None) -> dict:
+    """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws;
+    the ANOVA comparators; and a per-lab table (bias with interval, P(|bias| > allowed), z, signal)."""
+    from .groups import check_level
+
+    check_level(level)
+    if allowed_bias is not None and not allowed_bias > 0:
+        raise InputError(f"bad option: the allowed bias must be a positive number; found {allowed_bias:g}")
+    v = view(fit)
+    out: dict = {"level": level, "structure": v.within, "consensus": _summ(v.mu, level), "between_sd": _summ(v.tau, level)}
+    sr = repeatability_draws(v)
+    if sr is not None:
+        t2 = v.tau ** 2
+        sR = np.sqrt(t2 + sr ** 2)
+        out["repeatability_sd"] = _summ(sr, level)
+        out["reproducibility_sd"] = _summ(sR, level)
+        out["icc"] = _summ(t2 / (t2 + sr ** 2), level)
+        out["repeatability_limit"] = _summ(LIMIT_FACTOR * sr, level)
+        out["reproducibility_limit"] = _summ(LIMIT_FACTOR * sR, level)
+    else:
+        out["repeatability_sd"] = out["reproducibility_sd"] = out["icc"] = None
+        out["repeatability_limit"] = out["reproducibility_limit"] = None
+    if v.s is not None:
+        out["s"] = _summ(v.s, level)
+    stats = getattr(getattr(fit, "problem", None), "stats", None)
+    if v.within != "known" and stats is not None:
+        out["anova"] = oneway_anova(stats.n, stats.mean, stats.m2, stats.mean_lo)
+    elif v.within != "known":  # re-opened draws: rebuild M2_j from the stored sd
+        m2 = np.where(v.n >= 2, v.raw_sd ** 2 * (v.n - 1), 0.0)
+        out["anova"] = oneway_anova(v.n, v.raw_mean, np.nan_to_num(m2))
+    else:
+        out["anova"] = None
+    z, signal, basis = z_scores(v.raw_mean, assigned, sigma_pt)
+    out["z_basis"] = basis
+    J = v.J
+    bm, lo, hi, pover = np.empty(J), np.empty(J), np.empty(J), np.empty(J)
+    for a in range(0, J, BLOCK):
+        bias = v.theta[:, a:a + BLOCK] - v.mu[:, None]
+        bm[a:a + BLOCK] = bias.mean(axis=0)
+        lo[a:a + BLOCK], hi[a:a + BLOCK] = interval(bias, level)
+        if allowed_bias is not None:
+            pover[a:a + BLOCK] = (np.abs(bias) > allowed_bias).mean(axis=0)
+    labs = pd.DataFrame({
+        "group": list(v.labels), "n": v.n.astype(np.int64), "raw_mean": v.raw_mean,
+        "bias_mean": bm, "bias_low": lo, "bias_high": hi,
+    })
+    if allowed_bias is not None:
+        labs["p_bias_over"] = pover
+    labs["interval_excludes_0"] = (lo > 0) | (hi < 0)
+    labs["z_score"] = z
+    labs["z_signal"] = signal
+    out["allowed_bias"] = allowed_bias
+    out["labs"] = labs
+    flagged_z = signal == "action"
+    out["agreement"] = {
+        "z_action": int(np.sum(flagged_z)), "z_warning": int(np.sum(signal == "warning")),
+        "interval_excludes_0": int(labs["interval_excludes_0"].sum()),
+        "both": int(np.sum(flagged_z & labs["interval_excludes_0"].to_numpy())),
+    }
+    return out

@@ -1,0 +1,240 @@
+"""Pictures for the report, drawn with matplotlib's Agg machinery and returned as SVG text to be
+embedded inline. Labels from the data are drawn with mathtext parsing off, so a '$' in a group
+name is just a dollar sign; matplotlib escapes the SVG it writes.
+
+Above MANY groups the per-group pictures switch to forms that scale (a scatter, a band), drawn
+rasterised inside the SVG so a report for 10,000 groups stays a few megabytes.
+"""
+from __future__ import annotations
+
+import io
+import re
+
+import matplotlib
+
+matplotlib.use("Agg", force=False)  # no display is ever needed; a no-op if a backend is already chosen
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+from scipy.stats import rankdata  # noqa: E402
+
+MANY = 60
+
+INK = "#1f2a36"
+MUTED = "#7b8591"
+GRID = "#e3e6ea"
+POST = "#1f6f78"      # posterior quantities
+RAW = "#a7763c"       # the groups' own means
+POOL = "#5a3d8a"      # mu, the pooled mean
+LIMIT = "#b23a2a"     # specification limits and thresholds
+CHAINS = ["#1f6f78", "#c0672a", "#5a3d8a", "#6b8e23", "#b23a2a", "#3b6ea8", "#8c6d1f", "#555f6b"]
+HEAT = LinearSegmentedColormap.from_list("pooling_heat", ["#fbfaf7", "#cfe4e1", "#5fa3a3", "#1f6f78", "#132f3a"])
+
+_RC = {
+    "text.parse_math": False, "svg.fonttype": "path", "svg.hashsalt": "pooling-report",
+    "font.family": "DejaVu Sans", "font.size": 9, "axes.edgecolor": "#9aa3ad", "axes.labelcolor": INK,
+    "xtick.color": INK, "ytick.color": INK, "axes.titlesize": 10, "axes.titleweight": "bold",
+    "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "grid.color": GRID,
+    "grid.linewidth": 0.7, "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 8,
+}
+
+
+def plain(label: str, width: int = 28) -> str:
+    """A label fit for an axis: control characters become spaces, long labels are clipped."""
+    label = re.sub(r"[\x00-\x1f\x7f]", " ", str(label))
+    return label if len(label) <= width else label[: width - 1] + "…"
+
+
+def _svg(fig: Figure) -> str:
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, bbox_inches="tight")
+    plt.close(fig)
+    text = buf.getvalue()
+    text = text[text.index("<svg"):]  # drop the XML prolog and doctype: the SVG goes inline into HTML
+    m = re.match(r'<svg([^>]*)width="([\d.]+)pt" height="([\d.]+)pt"', text)
+    if m:
+        w = float(m.group(2)) * 4 / 3
+        text = text.replace(f'width="{m.group(2)}pt" height="{m.group(3)}pt"',
+                            f'class="figure" style="max-width:{w:.0f}px" role="img"', 1)
+    return text
+
+
+def _fig(w: float, h: float) -> Figure:
+    return plt.figure(figsize=(w, h), dpi=100)
+
+
+def _tick_labels(ax, labels, axis="y"):
+    labs = [plain(x) for x in labels]
+    if axis == "y":
+        ax.set_yticks(np.arange(len(labs)), labs)
+    else:
+        ax.set_xticks(np.arange(len(labs)), labs, rotation=90)
+
+
+def _height(rows: int) -> float:
+    return max(2.6, 0.75 + 0.19 * rows)
+
+
+# ---------------------------------------------------------------------------------------------
+
+def shrinkage(table, mu_mean: float, title: str = "") -> str:
+    """Each group's own mean pulled to its posterior mean; markers sized by n; mu drawn as a line."""
+    with plt.rc_context(_RC):
+        J = len(table)
+        size = 12 + 110 * np.sqrt(table["n"].to_numpy() / max(1, table["n"].max()))
+        if J <= MANY:
+            order = np.argsort(table["theta_mean"].to_numpy())
+            t = table.iloc[order]
+            fig = _fig(7.6, _height(J))
+            ax = fig.add_subplot()
+            y = np.arange(J)
+            raw, post = t["raw_mean"].to_numpy(), t["theta_mean"].to_numpy()
+            ax.axvline(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)")
+            for yi, a, b in zip(y, raw, post):
+                if a != b:
+                    ax.annotate("", xy=(b, yi), xytext=(a, yi),
+                                arrowprops=dict(arrowstyle="-|>", color=MUTED, lw=0.9, shrinkA=3, shrinkB=2,
+                                                mutation_scale=8))
+            ax.scatter(raw, y, s=size[order], facecolor="white", edgecolor=RAW, lw=1.3, zorder=3,
+                       label="group's own mean (area ∝ n)")
+            ax.scatter(post, y, s=16, color=POST, zorder=4, label="posterior mean")
+            _tick_labels(ax, t["group"].tolist())
+            ax.set_ylim(-0.7, J - 0.3)
+            ax.grid(axis="y", visible=False)
+            ax.set_xlabel("value")
+            ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.9 / _height(J) - 0.02), ncol=3)
+        else:
+            fig = _fig(6.4, 5.2)
+            ax = fig.add_subplot()
+            raw, post = table["raw_mean"].to_numpy(), table["theta_mean"].to_numpy()
+            lo, hi = np.nanmin(raw), np.nanmax(raw)
+            ax.plot([lo, hi], [lo, hi], color=MUTED, lw=1, label="no pooling (posterior = own mean)")
+            ax.axhline(mu_mean, color=POOL, lw=1.2, ls="--", label="complete pooling (mu)")
+            ax.scatter(raw, post, s=size * 0.35, color=POST, alpha=0.45, lw=0, rasterized=True,
+                       label="group (area ∝ n)")
+            ax.set_xlabel("group's own mean")
+            ax.set_ylabel("posterior mean")
+            ax.legend(loc="upper left")
+        if title:
+            ax.set_title(title, loc="left")
+        return _svg(fig)
+
+
+def intervals(table, mu_mean: float, level: float, lower=None, upper=None, threshold=None) -> str:
+    """Credible intervals of theta_j sorted by posterior mean, with mu, limits and threshold drawn in."""
+    with plt.rc_context(_RC):
+        J = len(table)
+        order = np.argsort(table["theta_mean"].to_numpy())
+        t = table.iloc[order]
+        m, lo, hi = (t[c].to_numpy() for c in ("theta_mean", "theta_low", "theta_high"))
+        if J <= MANY:
+            fig = _fig(7.6, _height(J))
+            ax = fig.add_subplot()
+            y = np.arange(J)
+            ax.hlines(y, lo, hi, color=POST, lw=2.2, alpha=0.55)
+            ax.scatter(m, y, s=14, color=POST, zorder=3)
+            ax.scatter(t["raw_mean"].to_numpy(), y, marker="|", s=40, color=RAW, zorder=3, label="own mean")
+            _tick_labels(ax, t["group"].tolist())
+            ax.set_ylim(-0.7, J - 0.3)
+            ax.grid(axis="y", visible=False)
+        else:
+            fig = _fig(7.6, 4.2)
+            ax = fig.add_subplot()
+            x = np.arange(J)
+            ax.fill_between(x, lo, hi, color=POST, alpha=0.25, lw=0, rasterized=True,
+                            label=f"{level:.0%} interval")
+            ax.plot(x, m, color=POST, lw=1.2, rasterized=True, label="posterior mean")
+            ax.set_xlabel("groups, sorted by posterior mean")
+        ax.axvline(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)") if J <= MANY else \
+            ax.axhline(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)")
+        line = ax.axvline if J <= MANY else ax.axhline
+        for val, name, style in ((lower, "lower limit", "-"), (upper, "upper limit", "-"), (threshold, "threshold", ":")):
+            if val is not None:
+                line(val, color=LIMIT, lw=1.3, ls=style, label=f"{name} {val:g}")
+        (ax.set_xlabel if J <= MANY else ax.set_ylabel)(f"theta ({level:.0%} credible interval)")
+        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.9 / _height(min(J, MANY)) - 0.02), ncol=4) \
+            if J <= MANY else ax.legend(loc="upper left")
+        return _svg(fig)
+
+
+def rank_heat(matrix: np.ndarray, labels, columns) -> str:
+    """P(rank = r) as a heat map: groups down the side in order of mean rank, ranks across."""
+    with plt.rc_context(_RC):
+        rows, cols = matrix.shape
+        fig = _fig(max(5.0, min(11.0, 1.8 + 0.16 * cols)), _height(rows) + 0.4)
+        ax = fig.add_subplot()
+        im = ax.imshow(matrix, cmap=HEAT, vmin=0, vmax=max(0.05, float(matrix.max())), aspect="auto",
+                       interpolation="nearest")
+        _tick_labels(ax, labels)
+        step = max(1, int(np.ceil(cols / 20)))
+        ticks = np.arange(0, cols, step)
+        ax.set_xticks(ticks, [str(columns[i]) for i in ticks])
+        ax.grid(False)
+        ax.set_xlabel("rank (1 = best)")
+        ax.xaxis.set_label_position("top")
+        ax.xaxis.tick_top()
+        for sp in ax.spines.values():
+            sp.set_visible(False)
+        cb = fig.colorbar(im, ax=ax, fraction=0.035, pad=0.02)
+        cb.set_label("probability")
+        cb.outline.set_visible(False)
+        return _svg(fig)
+
+
+def hyper_traces(named: dict[str, np.ndarray]) -> str:
+    """For each hyperparameter (chains, draws): the trace by chain and a rank histogram per chain."""
+    with plt.rc_context(_RC):
+        k = len(named)
+        fig = _fig(8.2, 1.75 * k + 0.3)
+        axes = fig.subplots(k, 2, squeeze=False, gridspec_kw={"width_ratios": [2.3, 1]})
+        for row, (name, x) in enumerate(named.items()):
+            C, D = x.shape
+            step = max(1, D // 600)  # thinned for the picture only; every draw enters the ranks
+            ranks = rankdata(x.reshape(-1)).reshape(C, D)
+            edges = np.linspace(0.5, C * D + 0.5, 21)
+            for c in range(C):
+                col = CHAINS[c % len(CHAINS)]
+                axes[row, 0].plot(np.arange(0, D, step), x[c, ::step], color=col, lw=0.6, alpha=0.8)
+                h, _ = np.histogram(ranks[c], edges)
+                axes[row, 1].step(np.arange(20), h, where="mid", color=col, lw=1.1)
+            axes[row, 1].axhline(D / 20, color=MUTED, ls=":", lw=1)
+            axes[row, 0].set_ylabel(name)
+            axes[row, 1].set_yticks([])
+            axes[row, 1].set_xticks([])
+            if row == 0:
+                axes[row, 0].set_title("draws by chain", loc="left")
+                axes[row, 1].set_title("ranks by chain (flat = mixed)", loc="left")
+        axes[-1, 0].set_xlabel("draw")
+        axes[-1, 1].set_xlabel("rank bins over all chains")
+        fig.tight_layout()
+        return _svg(fig)
+
+
+def predictive(spread: dict, sd: dict | None, labels) -> str:
+    """Replicated against observed: the spread of the group means, and each group's within-group sd."""
+    with plt.rc_context(_RC):
+        fig = _fig(8.2, 3.2)
+        ncol = 2 if sd is not None else 1
+        axes = fig.subplots(1, ncol, squeeze=False, gridspec_kw={"width_ratios": [1, 1.25][:ncol]})[0]
+        ax = axes[0]
+        ax.hist(spread["replicated"], bins=40, color=POST, alpha=0.55, lw=0)
+        ax.axvline(spread["observed"], color=LIMIT, lw=1.6, label=f"observed (p = {spread['p_value']:.2f})")
+        ax.set_title("spread of the group means", loc="left")
+        ax.set_xlabel("sd over groups of the means, replicated")
+        ax.set_yticks([])
+        ax.legend(loc="upper right")
+        if sd is not None:
+            ax = axes[1]
+            order = np.argsort(sd["median"])
+            x = np.arange(len(order))
+            many = len(order) > MANY
+            ax.fill_between(x, sd["low"][order], sd["high"][order], color=POST, alpha=0.22, lw=0, step="mid",
+                            rasterized=many, label=f"replicated, {sd['level']:.0%}")
+            ax.scatter(x, sd["observed"][order], s=6 if many else 12, color=RAW, zorder=3, lw=0,
+                       rasterized=many, label="observed")
+            ax.set_title("within-group sd", loc="left")
+            ax.set_xlabel("groups with n ≥ 2, by replicated median")
+            ax.legend(loc="upper left")
+        fig.tight_layout()
+        return _svg(fig)

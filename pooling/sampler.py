@@ -1,0 +1,254 @@
+"""Chains on threads, warm-up, draws, and run-length control until the diagnostics meet their targets.
+
+Each chain owns a numpy Generator from SeedSequence(seed).spawn(chains) and its own state, so
+the draws are the same whatever the number of threads. Sweeps run in chunks: between chunks the
+main thread reports progress and can stop the run cleanly (Ctrl-C), in which case nothing is
+returned and nothing is written.
+"""
+from __future__ import annotations
+
+import os
+import sys
+import threading
+import time
+from concurrent.futures import FIRST_EXCEPTION, ThreadPoolExecutor, wait
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import kernel
+from .errors import Interrupted, InputError
+from .model import Problem
+
+
+@dataclass(frozen=True)
+class Targets:
+    """Run-length targets: rank-normalised split R-hat below rhat_max, bulk and tail ESS at least ess_min."""
+
+    rhat_max: float = 1.01
+    ess_min: float = 400.0
+
+
+@dataclass(frozen=True)
+class Settings:
+    """How long to run. max_draws caps the draws per chain that run-length control may reach."""
+
+    chains: int = 4
+    draws: int = 1000
+    warmup: int = 1000
+    seed: int | None = None
+    max_draws: int | None = None
+    threads: int | None = None
+    targets: Targets = field(default_factory=Targets)
+
+    def __post_init__(self):
+        for name in ("chains", "draws"):
+            val = getattr(self, name)
+            if not isinstance(val, (int, np.integer)) or val < 1:
+                raise InputError(f"bad option: {name} must be a whole number of at least 1; found {val!r}")
+        if not isinstance(self.warmup, (int, np.integer)) or self.warmup < 0:
+            raise InputError(f"bad option: warmup must be a whole number of at least 0; found {self.warmup!r}")
+        if self.max_draws is not None and self.max_draws < self.draws:
+            raise InputError(f"bad option: max_draws ({self.max_draws}) is below draws ({self.draws})")
+        if self.threads is not None and self.threads < 1:
+            raise InputError(f"bad option: threads must be at least 1; found {self.threads}")
+        if self.seed is not None and (not isinstance(self.seed, (int, np.integer)) or self.seed < 0):
+            raise InputError(f"bad option: seed must be a whole number >= 0; found {self.seed!r}")
+
+    @property
+    def draw_cap(self) -> int:
+        return self.max_draws if self.max_draws is not None else 4 * self.draws
+
+
+@dataclass
+class RawDraws:
+    """Internal-unit draws, arrays shaped (chains, draws, ...), plus what the run did."""
+
+    mu: np.ndarray
+    tau: np.ndarray
+    theta: np.ndarray
+    sigma: np.ndarray | None
+    s: np.ndarray | None
+    nu: np.ndarray | None
+    evals: np.ndarray
+    seed: int
+    settings: Settings
+    rounds: list[dict]
+    seconds: float
+    final_states: list[dict]
+
+
+class _Chain:
+    """One chain's generator, state and accumulated draws."""
+
+    def __init__(self, problem: Problem, seed_seq: np.random.SeedSequence, init: dict | None):
+        self.rng = np.random.default_rng(seed_seq)
+        p = problem
+        J = p.J
+        self.state = np.zeros(kernel.N_SCALARS)
+        self.theta = p.ybar.copy()
+        self.sigma2 = np.ones(J)
+        rng = self.rng
+        pooled = float(np.sum(p.m2) / max(np.sum(p.n) - J, 1.0)) if p.within_code != 2 else 1.0
+        if not pooled > 0:
+            pooled = 1.0
+        spread = float(np.std(p.ybar)) if J > 1 else 1.0
+        # over-dispersed starting points, so that R-hat can see chains that have not met
+        self.state[kernel.ETA] = np.clip(np.log(max(spread, 0.05)) + rng.normal(0.0, 1.0), -10.0, 10.0)
+        self.state[kernel.MU] = float(np.mean(p.ybar)) + rng.normal(0.0, max(spread, 0.1))
+        self.state[kernel.S2] = pooled * np.exp(rng.normal(0.0, 0.5))
+        self.state[kernel.NU_IDX] = len(p.nu_grid) // 2
+        self.state[kernel.WIDTH] = 1.0
+        self.state[kernel.SIGMA2] = pooled * np.exp(rng.normal(0.0, 0.5))
+        if p.within_code == 0:
+            own = np.where(p.n >= 2, p.m2 / np.maximum(p.n - 1.0, 1.0), pooled)
+            self.sigma2 = (0.5 * own + 0.5 * pooled) * np.exp(rng.normal(0.0, 0.5, J))
+            self.sigma2 = np.maximum(self.sigma2, 1e-12 * pooled)
+        if init is not None:
+            self.state[:] = init["state"]
+            self.theta[:] = init["theta"]
+            self.sigma2[:] = init["sigma2"]
+            self.state[kernel.JUMP_SUM] = 0.0
+            self.state[kernel.JUMP_COUNT] = 0.0
+        self.parts: list[dict] = []
+
+    def run(self, p: Problem, n_sweeps: int, store: bool, adapt: bool, chunk: int, stop: threading.Event, tick):
+        J = p.J
+        within = p.within_code
+        if store:
+            out = {
+                "mu": np.empty(n_sweeps), "tau": np.empty(n_sweeps),
+                "theta": np.empty((n_sweeps, J)),
+                "sigma": np.empty((n_sweeps, J if within == 0 else 1 if within == 1 else 0)),
+                "s": np.empty(n_sweeps if within == 0 else 0), "nu": np.empty(n_sweeps if within == 0 else 0),
+                "evals": np.empty(n_sweeps),
+            }
+        else:
+            out = {"mu": np.empty(0), "tau": np.empty(0), "theta": np.empty((0, J)), "sigma": np.empty((0, J)),
+                   "s": np.empty(0), "nu": np.empty(0), "evals": np.empty(0)}
+        done = 0
+        while done < n_sweeps:
+            if stop.is_set():
+                return
+            k = min(chunk, n_sweeps - done)
+            keys = ("mu", "tau", "theta", "sigma", "s", "nu", "evals")
+            views = [out[key][done:done + k] for key in keys] if store else [out[key] for key in keys]
+            kernel.sweeps(self.rng, k, adapt, within, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
+                          p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
+                          self.state, self.theta, self.sigma2, *views, 0)
+            done += k
+            tick(k)
+        if store:
+            self.parts.append(out)
+
+    def export_state(self) -> dict:
+        return {"state": self.state.tolist(), "theta": self.theta.tolist(), "sigma2": self.sigma2.tolist()}
+
+
+def _chunk_size(J: int) -> int:
+    # about 0.1 s of work per chunk at ~100 ns per group and sweep
+    return int(np.clip(1_000_000 // max(J, 1), 1, 500))
+
+
+def _progress(total: int, enabled: bool | None):
+    if enabled is None:
+        enabled = sys.stderr.isatty()
+    if not enabled:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, unit="sweep", file=sys.stderr, leave=False, dynamic_ncols=True, desc="sampling")
+
+
+def _run_phase(chains, problem, n_sweeps, store, adapt, threads, bar):
+    """Run every chain for n_sweeps in a thread pool; Ctrl-C stops all of them between chunks."""
+    stop = threading.Event()
+    lock = threading.Lock()
+    counter = [0]
+
+    def tick(k):
+        with lock:
+            counter[0] += k
+
+    chunk = _chunk_size(problem.J)
+    shown = 0
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        futures = [pool.submit(c.run, problem, n_sweeps, store, adapt, chunk, stop, tick) for c in chains]
+        try:
+            pending = set(futures)
+            while pending:
+                _, pending = wait(pending, timeout=0.1, return_when=FIRST_EXCEPTION)
+                if bar is not None:
+                    with lock:
+                        now = counter[0]
+                    bar.update(now - shown)
+                    shown = now
+                for f in futures:
+                    if f.done() and f.exception() is not None:
+                        stop.set()
+                        raise f.exception()
+        except KeyboardInterrupt:
+            stop.set()
+            wait(futures)
+            raise Interrupted("stopped by the user; the draws so far were discarded and nothing was written") from None
+
+
+def sample_raw(problem: Problem, settings: Settings | None = None, progress: bool | None = None,
+               init: list[dict] | None = None, diagnose=None) -> RawDraws:
+    """Warm up, draw, and extend until `diagnose(draws)` reports no misses or the cap is reached.
+
+    diagnose takes a RawDraws and returns (misses, round_record); by default every chain is
+    checked on mu, tau, theta and sigma.
+    """
+    settings = settings or Settings()
+    if diagnose is None:
+        from .posterior import diagnose_raw
+
+        diagnose = lambda raw: diagnose_raw(raw, settings.targets)  # noqa: E731
+    seed = settings.seed if settings.seed is not None else int(np.random.SeedSequence().entropy % (2**63))
+    streams = np.random.SeedSequence(seed).spawn(settings.chains)
+    chains = [_Chain(problem, s, None if init is None else init[i]) for i, s in enumerate(streams)]
+    threads = settings.threads or min(settings.chains, os.cpu_count() or 1)
+    start = time.perf_counter()
+    bar = _progress(settings.chains * (settings.warmup + settings.draws), progress)
+    rounds = []
+    try:
+        if settings.warmup:
+            _run_phase(chains, problem, settings.warmup, store=False, adapt=True, threads=threads, bar=bar)
+        todo = settings.draws
+        have = 0
+        while True:
+            _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar)
+            have += todo
+            raw = _collect(chains, problem, seed, settings, rounds, start)
+            misses, record = diagnose(raw)
+            record["draws_per_chain"] = have
+            rounds.append(record)
+            if not misses or have >= settings.draw_cap:
+                raw.rounds = rounds
+                raw.seconds = time.perf_counter() - start
+                return raw
+            want = int(np.ceil(have * record.get("growth", 1.5)))
+            todo = int(min(max(want - have, have // 4, 1), settings.draw_cap - have))
+            if bar is not None:
+                bar.total += settings.chains * todo
+                bar.refresh()
+    finally:
+        if bar is not None:
+            bar.close()
+
+
+def _collect(chains, problem, seed, settings, rounds, start) -> RawDraws:
+    def stack(key):
+        return np.stack([np.concatenate([part[key] for part in c.parts], axis=0) for c in chains])
+
+    within = problem.within_code
+    sigma = stack("sigma") if within != 2 else None
+    if within == 1:
+        sigma = sigma[:, :, 0]
+    return RawDraws(
+        mu=stack("mu"), tau=stack("tau"), theta=stack("theta"), sigma=sigma,
+        s=stack("s") if within == 0 else None, nu=stack("nu") if within == 0 else None,
+        evals=stack("evals"), seed=seed, settings=settings, rounds=list(rounds),
+        seconds=time.perf_counter() - start, final_states=[c.export_state() for c in chains],
+    )

@@ -1,0 +1,54 @@
+"""The short table printed after a run (plain text, no colours)."""
+from __future__ import annotations
+
+import sys
+
+import numpy as np
+
+from .posterior import Fit
+
+MAX_ROWS = 12
+
+
+def _fmt(x: float) -> str:
+    if x is None or not np.isfinite(x):
+        return "-"
+    return f"{x:.4g}"
+
+
+def _clip(label: str, width: int = 24) -> str:
+    label = label.replace("\n", " ").replace("\r", " ").replace("\t", " ")
+    return label if len(label) <= width else label[: width - 1] + "…"
+
+
+def print_fit(fit: Fit, out, stream=None) -> None:
+    stream = stream or sys.stdout
+    p = fit.problem
+    w = print
+    w(f"model: {p.model.within} within-group variances; priors: "
+      + "; ".join(f"{k} {v}" for k, v in p.model.priors().items()), file=stream)
+    w(f"data: {p.stats.J} groups" + (f", {p.stats.N} measurements" if p.stats.kind == "raw" else "")
+      + f"; {fit.raw.settings.chains} chains x {fit.raw.mu.shape[1]} draws, seed {fit.raw.seed}", file=stream)
+    w("", file=stream)
+    w(f"{'':8}{'mean':>11}{'sd':>11}{'2.5%':>11}{'97.5%':>11}{'R-hat':>8}{'ESS bulk':>10}{'ESS tail':>10}", file=stream)
+    for name, s in fit.hyper_summary().items():
+        w(f"{name:8}{_fmt(s['mean']):>11}{_fmt(s['sd']):>11}{_fmt(s['q025']):>11}{_fmt(s['q975']):>11}"
+          f"{s['rhat']:>8.3f}{s['ess_bulk']:>10.0f}{s['ess_tail']:>10.0f}", file=stream)
+    theta = fit.draws("theta")
+    post_mean = theta.mean(axis=0)
+    lo, hi = np.quantile(theta, [0.025, 0.975], axis=0)
+    order = np.argsort(-post_mean)
+    rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2:]])
+    w("", file=stream)
+    w(f"{'group':24}{'n':>7}{'raw mean':>11}{'posterior':>11}{'2.5%':>11}{'97.5%':>11}", file=stream)
+    st = p.stats
+    for k, j in enumerate(rows):
+        if len(order) > MAX_ROWS and k == MAX_ROWS // 2:
+            w(f"{'...':24}", file=stream)
+        w(f"{_clip(st.labels[j]):24}{int(st.n[j]):>7}{_fmt(st.mean[j]):>11}{_fmt(post_mean[j]):>11}"
+          f"{_fmt(lo[j]):>11}{_fmt(hi[j]):>11}", file=stream)
+    status = "met" if fit.targets_met else f"MISSED for {len(fit.misses)} quantities"
+    w("", file=stream)
+    w(f"diagnostics targets (R-hat < {fit.raw.settings.targets.rhat_max}, ESS >= {fit.raw.settings.targets.ess_min:g}): "
+      f"{status}", file=stream)
+    w(f"run folder: {out}", file=stream)

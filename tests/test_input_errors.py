@@ -1,0 +1,106 @@
+"""Bad input gets one clear line naming the file, column, row or group, exit code 2, and nothing written.
+
+The expected behaviour is the project's own contract (README, "Exit codes"); checking it needs no
+outside reference. Each case is a small file a user could plausibly hand over.
+"""
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+
+def _fit(run_cli, path, tmp_path, *extra):
+    out = tmp_path / "run"
+    code, stdout, stderr = run_cli("fit", path, "--out", out, "--quiet", "--draws", "50", "--warmup", "50", *extra)
+    return code, stderr, out
+
+
+def _one_line(stderr: str) -> str:
+    lines = [ln for ln in stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1, stderr
+    assert "Traceback" not in stderr
+    return lines[0]
+
+
+CASES = [
+    ("text in value", "lab,y\na,1.0\nb,n/a\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'y'", "row 2", "'n/a'"]),
+    ("inf in value", "lab,y\na,1.0\nb,inf\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'y'", "row 2", "finite"]),
+    ("empty cell in value", "lab,y\na,1.0\nb,\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'y'", "row 2", "empty"]),
+    ("empty group label", "lab,y\na,1.0\n,2.0\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'lab'", "row 2", "group label"]),
+    ("missing column", "lab,y\na,1\n", ["--group", "lab", "--value", "strength"], ["no column 'strength'", "'lab'", "'y'"]),
+    ("header only", "lab,y\n", ["--group", "lab", "--value", "y"], ["no data rows"]),
+    ("duplicated header", "lab,y,y\na,1,2\n", ["--group", "lab", "--value", "y"], ["'y' appears 2 times"]),
+    ("n = 0 in summaries", "lab,n,m,s\na,3,1.0,0.5\nb,0,2.0,0.5\n",
+     ["--group", "lab", "--size", "n", "--mean", "m", "--sd", "s"], ["column 'n'", "group 'b'", "at least 1", "found 0"]),
+    ("non-positive standard error", "lab,est,se\na,1.0,0.5\nb,2.0,0\nc,1.5,0.2\n",
+     ["--group", "lab", "--estimate", "est", "--std-error", "se"], ["column 'se'", "group 'b'", "> 0", "found 0"]),
+    ("one row per group, repeated", "lab,est,se\na,1.0,0.5\na,2.0,0.1\nc,1.5,0.2\n",
+     ["--group", "lab", "--estimate", "est", "--std-error", "se"], ["row 2", "one row per group", "'a'"]),
+]
+
+
+@pytest.mark.parametrize("name,text,opts,needles", CASES, ids=[c[0] for c in CASES])
+def test_bad_file_content(run_cli, tmp_path, name, text, opts, needles):
+    path = tmp_path / "bad-input.csv"
+    path.write_text(text)
+    code, stderr, out = _fit(run_cli, path, tmp_path, *opts)
+    line = _one_line(stderr)
+    assert code == 2, line
+    assert "bad-input.csv" in line or "bad option" in line
+    for needle in needles:
+        assert needle in line, (needle, line)
+    assert not out.exists()
+    assert not list(tmp_path.glob(".run.partial-*"))
+
+
+def test_empty_file(run_cli, tmp_path):
+    path = tmp_path / "empty.csv"
+    path.write_text("")
+    code, stderr, out = _fit(run_cli, path, tmp_path, "--group", "a", "--value", "b")
+    assert code == 2 and "empty.csv" in _one_line(stderr) and "empty" in stderr
+    assert not out.exists()
+
+
+def test_missing_file(run_cli, tmp_path):
+    code, stderr, out = _fit(run_cli, tmp_path / "nowhere.csv", tmp_path, "--group", "a", "--value", "b")
+    assert code == 2 and "nowhere.csv" in _one_line(stderr) and "does not exist" in stderr
+    assert not out.exists()
+
+
+def test_bad_prior_option(run_cli, small_csv, tmp_path):
+    code, stderr, out = _fit(run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness",
+                             "--tau", "half-cauchy:abc")
+    assert code == 2 and "--tau" in _one_line(stderr) and "'abc'" in stderr
+    assert not out.exists()
+
+
+def test_refusal_of_flat_tau_with_two_groups(run_cli, tmp_path):
+    path = tmp_path / "two.csv"
+    path.write_text("lab,y\na,1\na,2\nb,3\nb,5\n")
+    code, stderr, out = _fit(run_cli, path, tmp_path, "--group", "lab", "--value", "y")
+    line = _one_line(stderr)
+    assert code == 2 and "fewer than 3 groups" in line and "half-cauchy" in line
+    assert not out.exists()
+
+
+def test_refusal_of_shared_without_replication(run_cli, tmp_path):
+    path = tmp_path / "single.csv"
+    path.write_text("lab,y\na,1\nb,2\nc,4\nd,3\n")
+    code, stderr, out = _fit(run_cli, path, tmp_path, "--group", "lab", "--value", "y", "--within", "shared")
+    line = _one_line(stderr)
+    assert code == 2 and "replication" in line and "--within known" in line
+    assert not out.exists()
+
+
+def test_no_traceback_in_a_real_process(tmp_path):
+    """The installed entry point, as a user runs it: one line on stderr and exit code 2."""
+    path = tmp_path / "bad.csv"
+    path.write_text("lab,y\na,1\nb,oops\n")
+    proc = subprocess.run([sys.executable, "-m", "pooling.cli", "fit", str(path), "--group", "lab", "--value", "y",
+                           "--out", str(tmp_path / "run")], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2
+    assert proc.stderr.strip().count("\n") == 0 and "Traceback" not in proc.stderr
+    assert "'oops'" in proc.stderr and "row 2" in proc.stderr
+    assert not (tmp_path / "run").exists()

@@ -1,0 +1,258 @@
+"""The store's ledger: exact merges, idempotent ingestion, replacement, withdrawal, forgetting, bad stores.
+
+No sampling here; these run in a few seconds.
+"""
+from __future__ import annotations
+
+import json
+import sqlite3
+import statistics
+from fractions import Fraction
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pooling import cli
+from pooling.errors import InputError, NothingNew
+from pooling.stats import read_table
+from pooling.store import combine, forgetting_weights, open_store
+from pooling.store import jobs
+from pooling.store.combine import parse_when
+
+
+def _dump(path) -> list[str]:
+    """Every row of every table, as SQL text: 'the store exactly as before' means this is unchanged."""
+    con = sqlite3.connect(str(path))
+    try:
+        return list(con.iterdump())
+    finally:
+        con.close()
+
+
+def _write_batches(tmp: Path, rng, k: int, offset: float, spread: float, rows: int, groups: int):
+    frames = []
+    for b in range(k):
+        labels = rng.choice([f"lab-{i:02d}" for i in range(groups)], size=rows)
+        # uneven group means and spreads, so that the merge's d^2 na nb / n term matters
+        codes = np.array([int(s[-2:]) for s in labels])
+        y = offset + codes * spread * 3 + rng.normal(0.0, spread * (1 + codes % 3), size=rows)
+        df = pd.DataFrame({"lab": labels, "y": y})
+        df.to_csv(tmp / f"batch-{b}.csv", index=False, float_format="%.17g")
+        frames.append(df)
+    whole = pd.concat(frames, ignore_index=True)
+    whole.to_csv(tmp / "all.csv", index=False, float_format="%.17g")
+    return whole
+
+
+@pytest.mark.parametrize("offset,spread", [(0.0, 1.0), (1e9, 0.1), (-3e9, 1e-3)])
+def test_merged_batches_equal_statistics_of_concatenated_data(tmp_path, offset, spread):
+    rng = np.random.default_rng(11)
+    whole = _write_batches(tmp_path, rng, k=5, offset=offset, spread=spread, rows=400, groups=9)
+    store = tmp_path / "s.store"
+    for b in range(5):
+        jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y")
+    with open_store(store) as st:
+        merged = combine(st.snapshot().stats)
+    # read back from the CSV text the batches were written as (17 significant digits: exact doubles)
+    back = pd.read_csv(tmp_path / "all.csv", dtype={"lab": str})
+    assert np.array_equal(back["y"].to_numpy(), whole["y"].to_numpy())
+    for j, lab in enumerate(merged.labels):
+        y = back.loc[back["lab"] == lab, "y"].to_numpy()
+        # Source: numpy as reference, on the concatenated raw data. Subtracting one data value first
+        # is exact here (Sterbenz: the values are within a factor of 2 of each other), so numpy's
+        # two-pass mean and sum of squares work on numbers of the size of the spread.
+        d = y - y[0]
+        ref_mean = y[0] + (d.mean())
+        ref_m2 = float(np.sum((d - d.mean()) ** 2))
+        # Source: Python's statistics.variance sums exact fractions for float input (second reference)
+        exact_m2 = float(Fraction(statistics.variance(y.tolist())) * (len(y) - 1))
+        assert merged.n[j] == len(y)
+        got_mean = merged.mean[j] + merged.mean_lo[j]
+        assert abs(got_mean - ref_mean) <= 1e-12 * max(abs(ref_mean), spread)
+        assert abs(merged.m2[j] - ref_m2) <= 1e-12 * ref_m2
+        assert abs(merged.m2[j] - exact_m2) <= 1e-12 * exact_m2
+    # and the store's merge agrees with reading the concatenated file in one go
+    one = read_table(tmp_path / "all.csv", "lab", "y")
+    order = [one.labels.index(lab) for lab in merged.labels]
+    assert np.array_equal(one.n[order], merged.n)
+    np.testing.assert_allclose(merged.m2, one.m2[order], rtol=1e-12, atol=0)
+
+
+def test_same_file_twice_changes_nothing(tmp_path):
+    rng = np.random.default_rng(3)
+    _write_batches(tmp_path, rng, k=2, offset=10.0, spread=1.0, rows=50, groups=4)
+    store = tmp_path / "s.store"
+    jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y")
+    before = _dump(store)
+    with pytest.raises(NothingNew, match="in the store already as batch 'batch-0.csv'"):
+        jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y")
+    # the same content under another name is the same delivery: refused too
+    with pytest.raises(NothingNew):
+        jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y", batch="other-name")
+    assert _dump(store) == before
+    # from the command line: exit 4 (nothing new), one line on stderr
+    code = cli.main(["ingest", str(store), str(tmp_path / "batch-0.csv"), "--group", "lab", "--value", "y"])
+    assert code == 4
+    assert _dump(store) == before
+
+
+def test_name_with_other_content_is_refused_unless_replaced(tmp_path, capsys):
+    rng = np.random.default_rng(4)
+    _write_batches(tmp_path, rng, k=2, offset=10.0, spread=1.0, rows=50, groups=4)
+    store = tmp_path / "s.store"
+    jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y", batch="monday")
+    before = _dump(store)
+    code = cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
+                     "--batch", "monday"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "a batch named 'monday'" in err[0] and "--replace" in err[0]
+    assert _dump(store) == before
+    info, _ = jobs.ingest_file(store, tmp_path / "batch-1.csv", "lab", "y", batch="monday", replace=True)
+    with open_store(store) as st:
+        ledger = st.batches()
+        snap = st.snapshot()
+    assert [b.status for b in ledger] == ["replaced", "active"]
+    assert ledger[0].changed_at is not None  # the ledger keeps the replaced delivery's record
+    assert [b.id for b in snap.batches] == [info.id]
+    assert snap.stats[0].n.sum() == 50
+
+
+def test_withdraw_is_recorded_and_leaves_the_batch_out(tmp_path, capsys):
+    rng = np.random.default_rng(5)
+    _write_batches(tmp_path, rng, k=3, offset=0.0, spread=1.0, rows=60, groups=5)
+    store = tmp_path / "s.store"
+    for b in range(3):
+        jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y")
+    with open_store(store) as st:
+        fp_before = st.snapshot().state_sha256
+    assert cli.main(["withdraw", str(store), "batch-1.csv", "--reason", "wrong gauge"]) == 0
+    with open_store(store) as st:
+        ledger = {b.name: b for b in st.batches()}
+        snap = st.snapshot()
+    assert ledger["batch-1.csv"].status == "withdrawn" and ledger["batch-1.csv"].note == "wrong gauge"
+    assert ledger["batch-1.csv"].changed_at is not None
+    assert [b.name for b in snap.batches] == ["batch-0.csv", "batch-2.csv"]
+    assert snap.state_sha256 != fp_before
+    # the merge of what is left equals the two remaining files read together
+    merged = combine(snap.stats)
+    two = pd.concat([pd.read_csv(tmp_path / f"batch-{b}.csv") for b in (0, 2)])
+    for j, lab in enumerate(merged.labels):
+        assert merged.n[j] == int((two["lab"] == lab).sum())
+    # twice: nothing new (4); unknown name: bad input (2)
+    assert cli.main(["withdraw", str(store), "batch-1.csv"]) == 4
+    assert cli.main(["withdraw", str(store), "no-such-batch"]) == 2
+    # withdrawn content comes back only when asked
+    capsys.readouterr()
+    assert cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
+                     "--batch", "again"]) == 2
+    assert "was withdrawn as batch 'batch-1.csv'" in capsys.readouterr().err
+    assert cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
+                     "--replace", "--quiet"]) == 0
+    with open_store(store) as st:
+        statuses = [(b.name, b.status) for b in st.batches()]
+    assert statuses == [("batch-0.csv", "active"), ("batch-1.csv", "replaced"), ("batch-2.csv", "active"),
+                        ("batch-1.csv", "active")]
+    # the ledger as JSON
+    capsys.readouterr()
+    assert cli.main(["batches", str(store), "--json"]) == 0
+    listed = json.loads(capsys.readouterr().out)
+    assert [b["status"] for b in listed["batches"]] == ["active", "replaced", "active", "active"]
+
+
+def test_forgetting_is_the_weighted_likelihood_of_the_raw_data(tmp_path):
+    rng = np.random.default_rng(6)
+    whole = _write_batches(tmp_path, rng, k=3, offset=500.0, spread=2.0, rows=120, groups=4)
+    store = tmp_path / "s.store"
+    days = ["2024-03-01", "2024-03-11", "2024-03-21"]
+    for b, day in enumerate(days):
+        jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y", at=day)
+    with open_store(store) as st:
+        snap = st.snapshot()
+    ref = parse_when("2024-03-31", "ref")
+    w = forgetting_weights(list(snap.batches), ref, half_life_days=10.0)
+    # ages 30, 20, 10 days with a 10-day half-life: weights 1/8, 1/4, 1/2 (the formula, by hand)
+    np.testing.assert_allclose(w, [0.125, 0.25, 0.5], rtol=1e-15)
+    merged = combine(snap.stats, w)
+    batch_of = np.repeat(np.arange(3), 120)
+    wy = w[batch_of]
+    for j, lab in enumerate(merged.labels):
+        sel = whole["lab"].to_numpy() == lab
+        y, ww = whole["y"].to_numpy()[sel], wy[sel]
+        # Source: numpy, weighted sums on the raw rows: n_eff = sum w, mean = sum w y / sum w,
+        # M2 = sum w (y - mean)^2 — the statistics of the likelihood with each row's log-density times w
+        n_eff = ww.sum()
+        mean = np.sum(ww * y) / n_eff
+        m2 = np.sum(ww * (y - mean) ** 2)
+        assert merged.n[j] == pytest.approx(n_eff, rel=1e-14)
+        assert merged.mean[j] + merged.mean_lo[j] == pytest.approx(mean, rel=1e-14)
+        assert merged.m2[j] == pytest.approx(m2, rel=1e-11)
+    assert merged.n.dtype == np.float64
+    # a batch dated after the reference date counts in full
+    assert forgetting_weights(list(snap.batches), parse_when("2024-02-01", "ref"), 10.0).tolist() == [1.0, 1.0, 1.0]
+
+
+def _one_line_exit_2(capsys, argv):
+    capsys.readouterr()
+    code = cli.main(argv)
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2, err
+    assert len(err) == 1 and err[0].startswith("pooling: bad store") and "Traceback" not in err[0]
+    return err[0]
+
+
+def test_foreign_and_damaged_store_files_give_one_line_and_exit_2(tmp_path, capsys):
+    rng = np.random.default_rng(7)
+    _write_batches(tmp_path, rng, k=1, offset=0.0, spread=1.0, rows=40, groups=3)
+    data = str(tmp_path / "batch-0.csv")
+    # a CSV given as the store
+    line = _one_line_exit_2(capsys, ["batches", data])
+    assert "not an SQLite database" in line
+    before = (tmp_path / "batch-0.csv").read_bytes()
+    _one_line_exit_2(capsys, ["ingest", data, data, "--group", "lab", "--value", "y"])
+    assert (tmp_path / "batch-0.csv").read_bytes() == before
+    # an SQLite database of somebody else's
+    other = tmp_path / "other.db"
+    con = sqlite3.connect(str(other))
+    con.execute("CREATE TABLE parts (id INTEGER, strength REAL)")
+    con.commit()
+    con.close()
+    assert "not a pooling store" in _one_line_exit_2(capsys, ["refit", str(other), "--out", str(tmp_path / "r")])
+    assert not (tmp_path / "r").exists()
+    # an empty file, a folder, a missing file
+    (tmp_path / "empty.store").write_bytes(b"")
+    assert "empty" in _one_line_exit_2(capsys, ["batches", str(tmp_path / "empty.store")])
+    assert "folder" in _one_line_exit_2(capsys, ["batches", str(tmp_path)])
+    assert "no such file" in _one_line_exit_2(capsys, ["withdraw", str(tmp_path / "none.store"), "x"])
+    # a real store, damaged: pages overwritten with noise, and one cut short
+    store = tmp_path / "s.store"
+    jobs.ingest_file(store, data, "lab", "y")
+    raw = bytearray(store.read_bytes())
+    noisy = tmp_path / "noisy.store"
+    noisy.write_bytes(bytes(raw[:100]) + rng.integers(0, 256, len(raw) - 100, dtype=np.uint8).tobytes())
+    _one_line_exit_2(capsys, ["batches", str(noisy)])
+    cut = tmp_path / "cut.store"
+    cut.write_bytes(bytes(raw[:60]))
+    assert "damaged" in _one_line_exit_2(capsys, ["batches", str(cut)])
+    # a store written by a newer format
+    newer = tmp_path / "newer.store"
+    newer.write_bytes(bytes(raw))
+    con = sqlite3.connect(str(newer))
+    con.execute("UPDATE pooling_store SET value = '99' WHERE key = 'format'")
+    con.commit()
+    con.close()
+    assert "newer pooling" in _one_line_exit_2(capsys, ["batches", str(newer)])
+
+
+def test_bad_dates_and_names_are_refused_before_the_store_changes(tmp_path, capsys):
+    rng = np.random.default_rng(8)
+    _write_batches(tmp_path, rng, k=1, offset=0.0, spread=1.0, rows=40, groups=3)
+    store = tmp_path / "s.store"
+    code = cli.main(["ingest", str(store), str(tmp_path / "batch-0.csv"), "--group", "lab", "--value", "y",
+                     "--at", "last tuesday"])
+    assert code == 2 and "--at" in capsys.readouterr().err
+    assert not store.exists()  # nothing was created for a refused ingest
+    with pytest.raises(InputError, match="column 'nope'"):
+        jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "nope")
+    assert not store.exists()
