@@ -66,30 +66,26 @@ _MIN_DRAWS = 4
 # building blocks; every array here has the parameter axis first
 
 
-def _avg_ranks_sorted(s: np.ndarray) -> np.ndarray:
-    """Average 1-based ranks of the rows of the sorted array `s` (P, S), at their positions."""
-    size = s.shape[1]
-    new = np.empty(s.shape, dtype=bool)  # first element of a run of equal values
-    new[:, 0] = True
-    np.not_equal(s[:, 1:], s[:, :-1], out=new[:, 1:])
-    idx = np.arange(size)
-    first = np.maximum.accumulate(np.where(new, idx, 0), axis=1)
-    last_flag = np.empty_like(new)  # last element of a run
-    last_flag[:, :-1] = new[:, 1:]
-    last_flag[:, -1] = True
-    last = np.minimum.accumulate(np.where(last_flag, idx, size)[:, ::-1], axis=1)[:, ::-1]
-    return (first + last) / 2.0 + 1.0
-
-
 def _scores_sorted(s: np.ndarray) -> np.ndarray:
-    """Normal scores Phi^-1((r - 3/8)/(S + 1/4)) at the positions of the sorted rows `s` (P, S)."""
+    """Normal scores Phi^-1((r - 3/8)/(S + 1/4)) at the positions of the sorted rows `s` (P, S).
+
+    r is the 1-based position, except in a run of equal values, which all get the run's average.
+    """
     p, size = s.shape
     base = ndtri((np.arange(1, size + 1) - 0.375) / (size + 0.25))
-    tied = (s[:, 1:] == s[:, :-1]).any(axis=1)
-    if not tied.any():
+    rows, pos = np.nonzero(s[:, 1:] == s[:, :-1])  # s[row, pos] == s[row, pos + 1]
+    if rows.size == 0:
         return np.broadcast_to(base, (p, size))
     out = np.tile(base, (p, 1))
-    out[tied] = ndtri((_avg_ranks_sorted(s[tied]) - 0.375) / (size + 0.25))
+    lin = rows * size + pos  # consecutive only within a row, as pos <= size - 2
+    starts = np.flatnonzero(np.diff(lin, prepend=-2) != 1)  # first tie of each run
+    run = np.cumsum(np.diff(lin, prepend=-2) != 1) - 1  # run number of each tie
+    ends = np.append(starts[1:], lin.size) - 1  # last tie of each run
+    # a run of ties at pos_a..pos_b covers positions pos_a..pos_b + 1 (0-based)
+    avg = (pos[starts] + pos[ends] + 1) / 2.0 + 1.0
+    val = ndtri((avg - 0.375) / (size + 0.25))[run]
+    out[rows, pos] = val
+    out[rows, pos + 1] = val
     return out
 
 

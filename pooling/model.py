@@ -283,6 +283,8 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
     n = stats.n.astype(np.float64)
     m2 = stats.m2 / (scale * scale)
     v_known = (stats.se / scale) ** 2 if stats.kind == "known" else np.zeros(stats.J)
+    # from here on centre and scale are in the user's units (the stored unit folded in)
+    center, scale = center * stats.unit, scale * stats.unit
     mu_kind, mu_loc, mu_scale = MU_FLAT, 0.0, 1.0
     if isinstance(model.mu, Normal):
         mu_kind, mu_loc, mu_scale = MU_NORMAL, (model.mu.loc - center) / scale, model.mu.scale / scale
@@ -303,7 +305,8 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
 
 
 def _center_scale(stats: GroupStats) -> tuple[float, float]:
-    """An offset and unit that make the data of order one; exact powers of two keep rescaling lossless."""
+    """An offset and scale (in the stored unit) that make the data of order one; a power-of-two scale keeps
+    rescaling lossless."""
     w = stats.n.astype(float) if stats.kind == "raw" and stats.N > 0 else np.ones(stats.J)
     center = float(np.median(stats.mean))
     dev = (stats.mean - center) + stats.mean_lo

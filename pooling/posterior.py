@@ -153,11 +153,11 @@ def to_idata(raw: RawDraws, problem: Problem) -> "az.InferenceData":
     posterior = xr.Dataset(post, coords=coords)
     sample_stats = xr.Dataset({"tau_evaluations": (("chain", "draw"), raw.evals)},
                               coords={"chain": coords["chain"], "draw": coords["draw"]})
-    const = {"n": (("group",), st.n.astype(np.int64)), "raw_mean": (("group",), st.mean + st.mean_lo)}
+    const = {"n": (("group",), st.n), "raw_mean": (("group",), st.raw_mean)}
     if st.kind == "known":
-        const["std_error"] = (("group",), st.se)
+        const["std_error"] = (("group",), st.raw_se)
     else:
-        const["raw_sd"] = (("group",), st.sd)
+        const["raw_sd"] = (("group",), st.raw_sd)
     constant = xr.Dataset(const, coords={"group": labels})
     attrs = {
         "created_by": "pooling",

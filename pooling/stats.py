@@ -10,6 +10,10 @@ A variance is never formed as E[y^2] - E[y]^2, which loses every digit on data n
 
 For the `known` structure a group is one estimate with its standard error; n is kept only for
 display (it may be unknown, stored as 0).
+
+Data of extreme magnitude (1e-300 or 1e300) are held in a unit: a power of two, so that
+mean * unit, m2 * unit^2 and se * unit are the user's values exactly while the stored numbers stay
+of order one (a spread of 1e-301 would otherwise square to zero). Nearly all data have unit 1.
 """
 from __future__ import annotations
 
@@ -38,12 +42,13 @@ class GroupStats:
     """
 
     labels: tuple[str, ...]
-    n: np.ndarray
+    n: np.ndarray  # group sizes; fractional only when older batches are down-weighted
     mean: np.ndarray
     m2: np.ndarray
     se: np.ndarray | None = None
     mean_lo: np.ndarray | None = None
     kind: str = "raw"
+    unit: float = 1.0
     source: str = "<frame>"
     file_sha256: str | None = None
     meta: dict = field(default_factory=dict)
@@ -67,26 +72,42 @@ class GroupStats:
 
     @property
     def sd(self) -> np.ndarray:
-        """Sample standard deviation per group (ddof=1); NaN where n < 2."""
+        """Sample standard deviation per group (ddof=1) in stored units; NaN where n < 2."""
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.where(self.n >= 2, np.sqrt(self.m2 / np.maximum(self.n - 1, 1)), np.nan)
+
+    @property
+    def raw_mean(self) -> np.ndarray:
+        """Each group's mean (the estimate, for `known`) in the user's units."""
+        return (self.mean + self.mean_lo) * self.unit
+
+    @property
+    def raw_sd(self) -> np.ndarray:
+        """Each group's sample standard deviation (ddof=1) in the user's units; NaN where n < 2."""
+        return self.sd * self.unit
+
+    @property
+    def raw_se(self) -> np.ndarray | None:
+        """Each group's standard error (`known`) in the user's units."""
+        return None if self.se is None else self.se * self.unit
 
     def fingerprint(self) -> str:
         """SHA-256 of the statistics themselves: equal for equal data whatever the input form."""
         h = hashlib.sha256()
         h.update(self.kind.encode())
+        h.update(repr(float(self.unit)).encode())
         h.update("\x1f".join(self.labels).encode("utf-8", "surrogatepass"))
         for arr in (self.n, self.mean, self.mean_lo, self.m2) + ((self.se,) if self.se is not None else ()):
             h.update(np.ascontiguousarray(arr, dtype=np.float64).tobytes())
         return h.hexdigest()
 
     def to_frame(self) -> pd.DataFrame:
-        df = pd.DataFrame({"group": list(self.labels), "n": self.n, "mean": self.mean})
+        """One row per group in the user's units."""
+        df = pd.DataFrame({"group": list(self.labels), "n": self.n, "mean": self.raw_mean})
         if self.kind == "known":
-            df["std_error"] = self.se
+            df["std_error"] = self.raw_se
         else:
-            df["sd"] = self.sd
-            df["m2"] = self.m2
+            df["sd"] = self.raw_sd
         return df
 
     def subset(self, keep: np.ndarray) -> "GroupStats":
@@ -94,7 +115,7 @@ class GroupStats:
         return GroupStats(
             tuple(np.asarray(self.labels, dtype=object)[keep]), self.n[keep].copy(), self.mean[keep].copy(),
             self.m2[keep].copy(), None if self.se is None else self.se[keep].copy(), self.mean_lo[keep].copy(),
-            self.kind, self.source, self.file_sha256, dict(self.meta),
+            self.kind, self.unit, self.source, self.file_sha256, dict(self.meta),
         )
 
 
@@ -136,6 +157,8 @@ def merge(a: GroupStats, b: GroupStats, source: str | None = None) -> GroupStats
     """Merge two sets of raw-measurement statistics group by group (labels matched by name)."""
     if a.kind != "raw" or b.kind != "raw":
         raise InputError("only raw-measurement statistics can be merged; estimates with standard errors cannot")
+    if a.unit != b.unit:
+        a, b = to_unit(a, max(a.unit, b.unit)), to_unit(b, max(a.unit, b.unit))
     index = {lab: i for i, lab in enumerate(a.labels)}
     new = [lab for lab in b.labels if lab not in index]
     labels = a.labels + tuple(new)
@@ -148,7 +171,31 @@ def merge(a: GroupStats, b: GroupStats, source: str | None = None) -> GroupStats
     B = np.zeros((4, J))
     B[0, pos], B[1, pos], B[2, pos], B[3, pos] = b.n, b.mean, b.mean_lo, b.m2
     n, hi, lo, m2 = merge_moments(*A, *B)
-    return GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, source=source or f"{a.source} + {b.source}")
+    n = n.astype(np.int64) if a.n.dtype.kind in "iu" and b.n.dtype.kind in "iu" else n
+    return GroupStats(labels, n, hi, m2, mean_lo=lo, unit=a.unit, source=source or f"{a.source} + {b.source}")
+
+
+def to_unit(s: GroupStats, unit: float) -> GroupStats:
+    """The same statistics held in another unit (a power of two, so the change is exact unless it underflows)."""
+    if unit == s.unit:
+        return s
+    f = s.unit / unit
+    return GroupStats(s.labels, s.n.copy(), s.mean * f, s.m2 * f * f, se=None if s.se is None else s.se * f,
+                      mean_lo=s.mean_lo * f, kind=s.kind, unit=unit, source=s.source, file_sha256=s.file_sha256,
+                      meta=dict(s.meta))
+
+
+def choose_unit(*arrays) -> float:
+    """1 for ordinary data; for magnitudes beyond 1e+-100, the power of two nearest the largest |value|."""
+    top = 0.0
+    for a in arrays:
+        a = np.abs(np.asarray(a, dtype=np.float64))
+        a = a[np.isfinite(a)]
+        if a.size:
+            top = max(top, float(a.max()))
+    if top == 0.0 or 1e-100 < top < 1e100:
+        return 1.0
+    return float(2.0 ** np.floor(np.log2(top)))
 
 
 def _reduce_chunk(groups: pd.Series, values: np.ndarray):
@@ -236,8 +283,9 @@ def from_frame(df: pd.DataFrame, group: str, value: str, source: str = "<frame>"
         raise InputError(f"bad input in {_where(source)}: no data rows")
     labels_raw = _check_groups(df[group], source, group, 0)
     vals = _check_values(df[value], source, value, 0)
-    labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals)
-    return GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, source=source)
+    unit = choose_unit(vals)
+    labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals)
+    return GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source)
 
 
 def _sha256_file(path: Path) -> str:
@@ -365,14 +413,16 @@ def read_table(path, group: str, value: str, *, encoding: str | None = None, del
     """
     src = str(path)
     total = None
+    unit = None
     for offset, df in iter_table_chunks(path, [group, value], encoding, delimiter, chunk_rows, thousands):
         labels_raw = _check_groups(df[group], src, group, offset)
         vals = _check_values(df[value], src, value, offset)
-        labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals)
-        part = GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, source=src)
+        unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
+        labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals)
+        part = GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=src)
         total = part if total is None else merge(total, part, source=src)
     return GroupStats(total.labels, total.n.copy(), total.mean.copy(), total.m2.copy(),
-                      mean_lo=total.mean_lo.copy(), source=src, file_sha256=_sha256_file(Path(path)))
+                      mean_lo=total.mean_lo.copy(), unit=total.unit, source=src, file_sha256=_sha256_file(Path(path)))
 
 
 def _read_whole(path, columns, encoding=None, delimiter=None) -> pd.DataFrame:
@@ -401,8 +451,10 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
         if sv[i] < 0:
             raise InputError(f"bad input in {_where(source)}, column '{sd}', group '{labels.iloc[i]}': "
                              f"expected a standard deviation >= 0, found {sv[i]:g}")
+    unit = choose_unit(mv, sv)
+    mv, sv = mv / unit, sv / unit
     m2 = sv * sv * np.maximum(nv - 1, 0)
-    return GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, source=source, file_sha256=sha)
+    return GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
 
 
 def from_estimates(data, group: str, estimate: str, std_error: str, source: str = "<frame>",
@@ -426,7 +478,9 @@ def from_estimates(data, group: str, estimate: str, std_error: str, source: str 
         raise InputError(f"bad input in {_where(source)}, column '{std_error}', group '{labels.iloc[i]}': "
                          f"expected a standard error > 0, found {se[i]:g}")
     nn = np.zeros(len(est), dtype=np.int64) if n is None else _check_values(data[n], source, n, 0).astype(np.int64)
-    return GroupStats(tuple(labels), nn, est, np.zeros(len(est)), se=se, kind="known", source=source, file_sha256=sha)
+    unit = choose_unit(est, se)
+    return GroupStats(tuple(labels), nn, est / unit, np.zeros(len(est)), se=se / unit, kind="known", unit=unit,
+                      source=source, file_sha256=sha)
 
 
 def _check_unique(labels: pd.Series, source: str, column: str):

@@ -45,7 +45,7 @@ def print_fit(fit: Fit, out, stream=None) -> None:
     for k, j in enumerate(rows):
         if len(order) > MAX_ROWS and k == MAX_ROWS // 2:
             w(f"{'...':24}", file=stream)
-        w(f"{_clip(st.labels[j]):24}{int(st.n[j]):>7}{_fmt(st.mean[j]):>11}{_fmt(post_mean[j]):>11}"
+        w(f"{_clip(st.labels[j]):24}{st.n[j]:>7.6g}{_fmt(st.raw_mean[j]):>11}{_fmt(post_mean[j]):>11}"
           f"{_fmt(lo[j]):>11}{_fmt(hi[j]):>11}", file=stream)
     status = "met" if fit.targets_met else f"MISSED for {len(fit.misses)} quantities"
     w("", file=stream)

@@ -45,7 +45,8 @@ class Fmt:
     def v(self, x, extra: int = 0) -> str:
         if x is None or not np.isfinite(x):
             return "–"
-        return f"{x:,.{self.dec + extra}f}".replace(",", "\u2009")
+        text = f"{x:,.{self.dec + extra}f}".replace(",", "\u2009")
+        return text[1:] if text.startswith("-") and not any(c in "123456789" for c in text) else text  # no "-0.0"
 
     @staticmethod
     def p(x) -> str:
@@ -108,7 +109,7 @@ tr.gap td{text-align:center;color:var(--muted);font-style:italic;background:#fff
 .fig{margin:8px 0 4px;text-align:center}
 svg.figure{width:100%;height:auto}
 dl.kv{display:grid;grid-template-columns:max-content 1fr;gap:3px 16px;font-size:13.5px;margin:6px 0}
-dl.kv dt{color:var(--muted)}dl.kv dd{margin:0;word-break:break-all}
+dl.kv dt{color:var(--muted)}dl.kv dd{margin:0;overflow-wrap:anywhere}
 code,.mono{font-family:"DejaVu Sans Mono",Consolas,monospace;font-size:12.5px}
 pre.model{background:var(--soft);padding:10px 14px;border-radius:5px;font-size:13px;overflow-x:auto}
 footer{color:var(--muted);font-size:12px;padding:10px 0 30px}

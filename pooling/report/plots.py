@@ -15,9 +15,8 @@ import matplotlib
 matplotlib.use("Agg", force=False)  # no display is ever needed; a no-op if a backend is already chosen
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
-from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
+from matplotlib.colors import LinearSegmentedColormap, PowerNorm  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
-from scipy.stats import rankdata  # noqa: E402
 
 MANY = 60
 
@@ -73,7 +72,15 @@ def _tick_labels(ax, labels, axis="y"):
 
 
 def _height(rows: int) -> float:
-    return max(2.6, 0.75 + 0.19 * rows)
+    return max(2.6, 0.9 + 0.2 * rows)
+
+
+WIDE = 10.0  # inches; the report's column is about 1,000 px, so pictures show near their drawn size
+
+
+def _legend_top(ax, ncol: int = 5):
+    ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=ncol, borderaxespad=0.3, handletextpad=0.4,
+              columnspacing=1.4)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -86,7 +93,7 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
         if J <= MANY:
             order = np.argsort(table["theta_mean"].to_numpy())
             t = table.iloc[order]
-            fig = _fig(7.6, _height(J))
+            fig = _fig(WIDE, _height(J))
             ax = fig.add_subplot()
             y = np.arange(J)
             raw, post = t["raw_mean"].to_numpy(), t["theta_mean"].to_numpy()
@@ -102,10 +109,10 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
             _tick_labels(ax, t["group"].tolist())
             ax.set_ylim(-0.7, J - 0.3)
             ax.grid(axis="y", visible=False)
-            ax.set_xlabel("value")
-            ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.9 / _height(J) - 0.02), ncol=3)
+            ax.set_xlabel("theta")
+            _legend_top(ax)
         else:
-            fig = _fig(6.4, 5.2)
+            fig = _fig(7.0, 5.6)
             ax = fig.add_subplot()
             raw, post = table["raw_mean"].to_numpy(), table["theta_mean"].to_numpy()
             lo, hi = np.nanmin(raw), np.nanmax(raw)
@@ -128,33 +135,31 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
         order = np.argsort(table["theta_mean"].to_numpy())
         t = table.iloc[order]
         m, lo, hi = (t[c].to_numpy() for c in ("theta_mean", "theta_low", "theta_high"))
-        if J <= MANY:
-            fig = _fig(7.6, _height(J))
-            ax = fig.add_subplot()
+        few = J <= MANY
+        fig = _fig(WIDE, _height(J) if few else 4.4)
+        ax = fig.add_subplot()
+        if few:  # one row per group, values across
             y = np.arange(J)
-            ax.hlines(y, lo, hi, color=POST, lw=2.2, alpha=0.55)
-            ax.scatter(m, y, s=14, color=POST, zorder=3)
-            ax.scatter(t["raw_mean"].to_numpy(), y, marker="|", s=40, color=RAW, zorder=3, label="own mean")
+            ax.hlines(y, lo, hi, color=POST, lw=2.4, alpha=0.5, label=f"{level:.0%} credible interval")
+            ax.scatter(m, y, s=15, color=POST, zorder=3, label="posterior mean")
+            ax.scatter(t["raw_mean"].to_numpy(), y, marker="|", s=50, color=RAW, zorder=3, label="own mean")
             _tick_labels(ax, t["group"].tolist())
             ax.set_ylim(-0.7, J - 0.3)
             ax.grid(axis="y", visible=False)
-        else:
-            fig = _fig(7.6, 4.2)
-            ax = fig.add_subplot()
+            line = ax.axvline
+            ax.set_xlabel("theta")
+        else:  # groups along the bottom as a band: thousands of rows would be unreadable
             x = np.arange(J)
-            ax.fill_between(x, lo, hi, color=POST, alpha=0.25, lw=0, rasterized=True,
-                            label=f"{level:.0%} interval")
+            ax.fill_between(x, lo, hi, color=POST, alpha=0.25, lw=0, rasterized=True, label=f"{level:.0%} credible interval")
             ax.plot(x, m, color=POST, lw=1.2, rasterized=True, label="posterior mean")
             ax.set_xlabel("groups, sorted by posterior mean")
-        ax.axvline(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)") if J <= MANY else \
-            ax.axhline(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)")
-        line = ax.axvline if J <= MANY else ax.axhline
+            ax.set_ylabel("theta")
+            line = ax.axhline
+        line(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)")
         for val, name, style in ((lower, "lower limit", "-"), (upper, "upper limit", "-"), (threshold, "threshold", ":")):
             if val is not None:
                 line(val, color=LIMIT, lw=1.3, ls=style, label=f"{name} {val:g}")
-        (ax.set_xlabel if J <= MANY else ax.set_ylabel)(f"theta ({level:.0%} credible interval)")
-        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.9 / _height(min(J, MANY)) - 0.02), ncol=4) \
-            if J <= MANY else ax.legend(loc="upper left")
+        _legend_top(ax)
         return _svg(fig)
 
 
@@ -162,10 +167,11 @@ def rank_heat(matrix: np.ndarray, labels, columns) -> str:
     """P(rank = r) as a heat map: groups down the side in order of mean rank, ranks across."""
     with plt.rc_context(_RC):
         rows, cols = matrix.shape
-        fig = _fig(max(5.0, min(11.0, 1.8 + 0.16 * cols)), _height(rows) + 0.4)
+        fig = _fig(max(5.5, min(WIDE, 2.2 + 0.22 * cols)), _height(rows) + 0.3)
         ax = fig.add_subplot()
-        im = ax.imshow(matrix, cmap=HEAT, vmin=0, vmax=max(0.05, float(matrix.max())), aspect="auto",
-                       interpolation="nearest")
+        # a square-root scale: with many groups most probabilities are small, and they are the story
+        im = ax.imshow(matrix, cmap=HEAT, norm=PowerNorm(0.5, vmin=0.0, vmax=max(0.05, float(matrix.max()))),
+                       aspect="auto", interpolation="nearest")
         _tick_labels(ax, labels)
         step = max(1, int(np.ceil(cols / 20)))
         ticks = np.arange(0, cols, step)
@@ -176,7 +182,7 @@ def rank_heat(matrix: np.ndarray, labels, columns) -> str:
         ax.xaxis.tick_top()
         for sp in ax.spines.values():
             sp.set_visible(False)
-        cb = fig.colorbar(im, ax=ax, fraction=0.035, pad=0.02)
+        cb = fig.colorbar(im, ax=ax, fraction=0.03, pad=0.015, shrink=min(1.0, 4.0 / _height(rows)), anchor=(0, 1))
         cb.set_label("probability")
         cb.outline.set_visible(False)
         return _svg(fig)
@@ -186,19 +192,26 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
     """For each hyperparameter (chains, draws): the trace by chain and a rank histogram per chain."""
     with plt.rc_context(_RC):
         k = len(named)
-        fig = _fig(8.2, 1.75 * k + 0.3)
+        fig = _fig(WIDE, 1.7 * k + 0.4)
+        rng = np.random.default_rng(0)  # breaks ties in the ranks of a discrete quantity (nu) at random
         axes = fig.subplots(k, 2, squeeze=False, gridspec_kw={"width_ratios": [2.3, 1]})
         for row, (name, x) in enumerate(named.items()):
             C, D = x.shape
             step = max(1, D // 600)  # thinned for the picture only; every draw enters the ranks
-            ranks = rankdata(x.reshape(-1)).reshape(C, D)
+            flat = x.reshape(-1)
+            # tied draws (nu lives on a grid) get their order at random, so a rank histogram of a
+            # well-mixed discrete quantity is flat too (common practice)
+            ranks = np.empty(flat.size)
+            ranks[np.lexsort((rng.random(flat.size), flat))] = np.arange(1, flat.size + 1)
+            ranks = ranks.reshape(C, D)
             edges = np.linspace(0.5, C * D + 0.5, 21)
             for c in range(C):
                 col = CHAINS[c % len(CHAINS)]
-                axes[row, 0].plot(np.arange(0, D, step), x[c, ::step], color=col, lw=0.6, alpha=0.8)
+                axes[row, 0].plot(np.arange(0, D, step), x[c, ::step], color=col, lw=0.55, alpha=0.75)
                 h, _ = np.histogram(ranks[c], edges)
                 axes[row, 1].step(np.arange(20), h, where="mid", color=col, lw=1.1)
             axes[row, 1].axhline(D / 20, color=MUTED, ls=":", lw=1)
+            axes[row, 1].set_ylim(0, D / 20 * 2)
             axes[row, 0].set_ylabel(name)
             axes[row, 1].set_yticks([])
             axes[row, 1].set_xticks([])
@@ -214,7 +227,7 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
 def predictive(spread: dict, sd: dict | None, labels) -> str:
     """Replicated against observed: the spread of the group means, and each group's within-group sd."""
     with plt.rc_context(_RC):
-        fig = _fig(8.2, 3.2)
+        fig = _fig(WIDE, 3.4)
         ncol = 2 if sd is not None else 1
         axes = fig.subplots(1, ncol, squeeze=False, gridspec_kw={"width_ratios": [1, 1.25][:ncol]})[0]
         ax = axes[0]

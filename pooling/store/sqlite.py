@@ -126,8 +126,8 @@ def _identify(path: Path) -> None:
     if not head:
         raise InputError(f"bad store '{path}': the file is empty, not a pooling store")
     if not head.startswith(SQLITE_MAGIC):
-        raise InputError(f"bad store '{path}': not a pooling store (not an SQLite database; "
-                         f"it starts with {head[:16]!r})")
+        raise InputError(f"bad store '{path}': not a pooling store (not an SQLite database); give the path of "
+                         "a store made by `pooling ingest`")
     if len(head) < 100:
         raise InputError(f"bad store '{path}': the file is damaged (cut short at {len(head)} bytes)")
     app = int.from_bytes(head[68:72], "big")
