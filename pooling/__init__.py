@@ -9,18 +9,36 @@ The public surface, in the order of the flow:
 """
 from __future__ import annotations
 
-from . import _compat  # noqa: F401  (silences arviz's import-time refactor notice, nothing else)
-from .errors import InputError, ModelError, PoolingError
-from .model import Flat, Gamma, HalfCauchy, HalfNormal, Model, Normal, NuFixed, NuGrid, Reciprocal, build
-from .sampler import Settings, Targets
-from .stats import GroupStats, from_estimates, from_frame, from_summaries, merge, read_table
+import importlib
 
 __version__ = "0.1.0"
 
+# Names are imported on first use: `pooling --help` and a Ctrl-C at start-up do not wait for numpy,
+# numba and arviz to load.
+_LAZY = {
+    "InputError": "errors", "ModelError": "errors", "PoolingError": "errors",
+    "Flat": "model", "Gamma": "model", "HalfCauchy": "model", "HalfNormal": "model", "Model": "model",
+    "Normal": "model", "NuFixed": "model", "NuGrid": "model", "Reciprocal": "model", "build": "model",
+    "Settings": "sampler", "Targets": "sampler",
+    "GroupStats": "stats", "from_estimates": "stats", "from_frame": "stats", "from_summaries": "stats",
+    "merge": "stats", "read_table": "stats",
+}
 
-def fit(stats: GroupStats, model: Model | None = None, settings: Settings | None = None,
-        progress: bool | None = None, init=None):
-    """Build the problem, sample it with run-length control, and return a labelled `Fit`."""
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'pooling' has no attribute '{name}'")
+
+
+def fit(stats, model=None, settings=None, progress: bool | None = None, init=None):
+    """Build the problem, sample it with run-length control, and return a labelled `Fit`.
+
+    stats: a GroupStats; model: a Model (default Model()); settings: a Settings (default Settings()).
+    """
+    from .model import build
     from .posterior import finish
     from .sampler import sample_raw
 

@@ -293,20 +293,12 @@ def _add_store_parsers(sub):
                    "since the last recorded run (otherwise exit 4)")
     f.add_argument("--fresh-start", dest="fresh_start", action="store_true",
                    help="start the chains afresh instead of from the last run's final states")
+    # the change report reads --threshold, --lower-limit, --upper-limit, --level and --best of the reporter
     w = p.add_argument_group("what changed")
-    for flags, kw in (
-        (("--threshold",), dict(metavar="VALUE", help="report groups whose side of this value changed: P(theta_j > VALUE)")),
-        (("--lower",), dict(metavar="VALUE", help="lower specification limit: report groups whose P(theta_j outside the limits) "
-                                 "changed side")),
-        (("--upper",), dict(metavar="VALUE", help="upper specification limit (see --lower)")),
-        (("--decide-at",), dict(dest="decide_at", default="0.95", metavar="P", help="a side is 'above' (or 'outside') at a "
-                                "probability of at least this, 'below' (or 'inside') at most 1 minus it "
-                                "(default 0.95)")),
-    ):
-        try:
-            w.add_argument(*flags, **kw)
-        except argparse.ArgumentError:
-            pass  # the reporter defines it already for every fit; the change report reads the same value
+    w.add_argument("--decide-at", dest="decide_at", default="0.95", metavar="P",
+                   help="a group is on a side of --threshold (or outside the limits) when its probability is at least "
+                        "P, on the other side when at most 1 - P, else unsure; changes of side are reported "
+                        "(default 0.95)")
 
 
 def _opt_num(args, name, flag):
@@ -317,8 +309,9 @@ def _opt_num(args, name, flag):
 def _watch_from_args(args):
     from .store.changes import Watch
 
-    return Watch(threshold=_opt_num(args, "threshold", "--threshold"), lower=_opt_num(args, "lower", "--lower"),
-                 upper=_opt_num(args, "upper", "--upper"), decide_at=_opt_num(args, "decide_at", "--decide-at"),
+    return Watch(threshold=_opt_num(args, "threshold", "--threshold"),
+                 lower=_opt_num(args, "lower_limit", "--lower-limit"), upper=_opt_num(args, "upper_limit", "--upper-limit"),
+                 decide_at=_opt_num(args, "decide_at", "--decide-at"),
                  level=_opt_num(args, "level", "--level") or 0.95, best=getattr(args, "best", None) or "highest")
 
 
@@ -403,10 +396,11 @@ def _on_sigterm(signum, frame):
 
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    # SIGTERM (a scheduler's stop) is handled like Ctrl-C: stop cleanly, leave nothing half-written
     previous = signal.signal(signal.SIGTERM, _on_sigterm) if hasattr(signal, "SIGTERM") else None
     try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
         return {"fit": cmd_fit, "demo": cmd_demo, **STORE_COMMANDS}[args.command](args, argv)
     except E.PoolingError as exc:
         print(f"pooling: {exc}", file=sys.stderr)

@@ -89,10 +89,10 @@ def _scores_sorted(s: np.ndarray) -> np.ndarray:
     return out
 
 
-def _scatter(order: np.ndarray, values: np.ndarray) -> np.ndarray:
-    """out[i, order[i, j]] = values[i, j]."""
-    out = np.empty(order.shape)
-    np.put_along_axis(out, order, values, axis=1)
+def _scatter(flat_index: np.ndarray, values: np.ndarray, shape) -> np.ndarray:
+    """An array of `shape` whose flattened elements at flat_index[i, j] are values[i, j]."""
+    out = np.empty(shape)
+    out.reshape(-1)[flat_index] = values
     return out
 
 
@@ -199,9 +199,11 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
 
     if want & {"rhat", "bulk", "tail"}:
         flat = xs.reshape(p, size)
+        # indices into the flattened block: faster than take/put_along_axis
         order = np.argsort(flat, axis=1)
-        srt = np.take_along_axis(flat, order, axis=1)
-        z = _scatter(order, _scores_sorted(srt)).reshape(p, m, h)
+        order += (np.arange(p) * size)[:, None]
+        srt = np.take(flat, order)
+        z = _scatter(order, _scores_sorted(srt), (p, m, h))
         if "rhat" in want:
             bulk = _rhat(z, const_seq)
             # fold about the median; in sorted order the folded values are two sorted runs,
@@ -209,13 +211,15 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
             k = size // 2
             med = srt[:, k] if size % 2 else (srt[:, k - 1] + srt[:, k]) / 2.0
             runs = np.empty_like(srt)
-            np.subtract(med[:, None], srt[:, k - 1 :: -1] if k else srt[:, :0], out=runs[:, :k])
+            np.subtract(med[:, None], srt[:, k - 1 :: -1], out=runs[:, :k])
             np.subtract(srt[:, k:], med[:, None], out=runs[:, k:])
             order_f = np.argsort(runs, axis=1, kind="stable")
-            folded_sorted = np.take_along_axis(runs, order_f, axis=1)
             to_sorted = np.concatenate([np.arange(k - 1, -1, -1), np.arange(k, size)])
-            where = np.take_along_axis(order, to_sorted[order_f], axis=1)
-            zf = _scatter(where, _scores_sorted(folded_sorted)).reshape(p, m, h)
+            at = np.take(to_sorted, order_f)  # sorted position of the j-th smallest folded value
+            order_f += (np.arange(p) * size)[:, None]
+            folded_sorted = np.take(runs, order_f)
+            at += (np.arange(p) * size)[:, None]
+            zf = _scatter(np.take(order, at), _scores_sorted(folded_sorted), (p, m, h))
             tail = _rhat(zf, _const_seq(zf))
             r = np.fmax(bulk, tail)
             r[np.isnan(bulk) | np.isnan(tail)] = np.nan

@@ -21,6 +21,32 @@ def _clip(label: str, width: int = 24) -> str:
     return label if len(label) <= width else label[: width - 1] + "…"
 
 
+# --- reporter columns: shrinkage weight and P(best), read from the run's summary.json ----------
+def _report_columns(out, J: int):
+    """(shrink_weight, p_best) arrays in group order from the reporter's summary keys, or (None, None)."""
+    import json
+    from pathlib import Path
+
+    try:
+        with open(Path(out) / "summary.json", encoding="utf-8") as fh:
+            rows = json.load(fh).get("groups_table")
+    except (OSError, ValueError, TypeError):
+        return None, None
+    if not rows or len(rows) != J:
+        return None, None
+    nan = float("nan")
+    shrink = np.array([nan if r.get("shrink_weight") is None else r["shrink_weight"] for r in rows], dtype=float)
+    p_best = np.array([nan if r.get("p_best") is None else r["p_best"] for r in rows], dtype=float)
+    return shrink, p_best
+
+
+def _fmt_p(x: float) -> str:
+    if not np.isfinite(x):
+        return "-"
+    return "<0.001" if x < 0.0005 else ">0.999" if x > 0.9995 else f"{x:.3f}"
+# --- end of reporter columns --------------------------------------------------------------------
+
+
 def print_fit(fit: Fit, out, stream=None) -> None:
     stream = stream or sys.stdout
     p = fit.problem
@@ -40,13 +66,16 @@ def print_fit(fit: Fit, out, stream=None) -> None:
     order = np.argsort(-post_mean)
     rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2:]])
     w("", file=stream)
-    w(f"{'group':24}{'n':>7}{'raw mean':>11}{'posterior':>11}{'2.5%':>11}{'97.5%':>11}", file=stream)
     st = p.stats
+    shrink, p_best = _report_columns(out, st.J)
+    more = f"{'shrink':>8}{'P(best)':>9}" if shrink is not None else ""
+    w(f"{'group':24}{'n':>7}{'raw mean':>11}{'posterior':>11}{'2.5%':>11}{'97.5%':>11}{more}", file=stream)
     for k, j in enumerate(rows):
         if len(order) > MAX_ROWS and k == MAX_ROWS // 2:
             w(f"{'...':24}", file=stream)
+        more = f"{shrink[j]:>8.2f}{_fmt_p(p_best[j]):>9}" if shrink is not None else ""
         w(f"{_clip(st.labels[j]):24}{st.n[j]:>7.6g}{_fmt(st.raw_mean[j]):>11}{_fmt(post_mean[j]):>11}"
-          f"{_fmt(lo[j]):>11}{_fmt(hi[j]):>11}", file=stream)
+          f"{_fmt(lo[j]):>11}{_fmt(hi[j]):>11}{more}", file=stream)
     status = "met" if fit.targets_met else f"MISSED for {len(fit.misses)} quantities"
     w("", file=stream)
     w(f"diagnostics targets (R-hat < {fit.raw.settings.targets.rhat_max}, ESS >= {fit.raw.settings.targets.ess_min:g}): "

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -37,6 +37,9 @@ class ReportOptions:
     sigma_pt: float | None = None
 
     def __post_init__(self):
+        if isinstance(self.compare, str):  # one string is one label (or one comma-separated list)
+            object.__setattr__(self, "compare", (self.compare,))
+        object.__setattr__(self, "compare", tuple(str(x) for x in self.compare))
         check_level(self.level)
         if self.best not in BEST:
             raise InputError(f"bad option: best must be 'highest' or 'lowest'; found '{self.best}'")
@@ -102,6 +105,7 @@ def compute(fit, options: ReportOptions | None = None, figures: bool = True) -> 
     v = view(fit)
     k = check_k(o.k, v.J)
     compare = split_compare(o.compare, v.labels)
+    o = replace(o, compare=compare)  # as resolved, for the summary
     if len(compare) > MAX_PAIRWISE:
         raise InputError(f"bad option: at most {MAX_PAIRWISE} groups can be compared pairwise; found {len(compare)}")
     ranks = rank_draws(v.theta, o.best)

@@ -270,6 +270,8 @@ def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", thr
         if name == "shrink_high":
             out["shrink_realised"] = realised
     out.update(rk)
+    out["rank_low"] = rk["rank_low"].astype(np.int64)
+    out["rank_high"] = rk["rank_high"].astype(np.int64)
     out["z_score"] = z
     out["z_signal"] = signal
     return pd.DataFrame(out)

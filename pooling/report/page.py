@@ -65,6 +65,11 @@ class Fmt:
         return f"{x:.{digits}g}"
 
 
+def _p_eq(x) -> str:
+    text = Fmt.p(x)
+    return text[0] + " " + text[1:] if text[0] in "<>" else "= " + text
+
+
 def _interval(f: Fmt, lo, hi, extra: int = 0) -> str:
     return f'{f.v(lo, extra)} to {f.v(hi, extra)}'
 
@@ -400,7 +405,7 @@ def _labs(res: Results, f: Fmt, lvl: str) -> str:
     anova_note = ""
     if an:
         anova_note = (f"<p class=\"note\">ANOVA: MS between {Fmt.g(an['ms_between'], 5)} on {an['df_between']} df, MS within "
-                      f"{Fmt.g(an['ms_within'], 5)} on {an['df_within']:g} df, F = {an['f']:.3g}, p = {Fmt.p(an['p_value'])}; "
+                      f"{Fmt.g(an['ms_within'], 5)} on {an['df_within']:g} df, F = {an['f']:.3g}, p {_p_eq(an['p_value'])}; "
                       f"s<sub>L</sub>² = (MS between − MS within) / n0 with n0 = {an['n0']:.3g} (ISO 5725-2 for unequal group sizes).</p>")
     zb = lab["z_basis"]
     labs = lab["labs"]

@@ -31,7 +31,7 @@ CHAINS = ["#1f6f78", "#c0672a", "#5a3d8a", "#6b8e23", "#b23a2a", "#3b6ea8", "#8c
 HEAT = LinearSegmentedColormap.from_list("pooling_heat", ["#fbfaf7", "#cfe4e1", "#5fa3a3", "#1f6f78", "#132f3a"])
 
 _RC = {
-    "text.parse_math": False, "svg.fonttype": "path", "svg.hashsalt": "pooling-report",
+    "text.parse_math": False, "svg.fonttype": "none", "svg.hashsalt": "pooling-report",
     "font.family": "DejaVu Sans", "font.size": 9, "axes.edgecolor": "#9aa3ad", "axes.labelcolor": INK,
     "xtick.color": INK, "ytick.color": INK, "axes.titlesize": 10, "axes.titleweight": "bold",
     "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "grid.color": GRID,
@@ -47,7 +47,7 @@ def plain(label: str, width: int = 28) -> str:
 
 def _svg(fig: Figure) -> str:
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, bbox_inches="tight")
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, dpi=150)
     plt.close(fig)
     text = buf.getvalue()
     text = text[text.index("<svg"):]  # drop the XML prolog and doctype: the SVG goes inline into HTML
@@ -60,7 +60,7 @@ def _svg(fig: Figure) -> str:
 
 
 def _fig(w: float, h: float) -> Figure:
-    return plt.figure(figsize=(w, h), dpi=100)
+    return plt.figure(figsize=(w, h), dpi=100, layout="constrained")
 
 
 def _tick_labels(ax, labels, axis="y"):
@@ -170,8 +170,11 @@ def rank_heat(matrix: np.ndarray, labels, columns) -> str:
         fig = _fig(max(5.5, min(WIDE, 2.2 + 0.22 * cols)), _height(rows) + 0.3)
         ax = fig.add_subplot()
         # a square-root scale: with many groups most probabilities are small, and they are the story
-        im = ax.imshow(matrix, cmap=HEAT, norm=PowerNorm(0.5, vmin=0.0, vmax=max(0.05, float(matrix.max()))),
-                       aspect="auto", interpolation="nearest")
+        im = ax.pcolormesh(np.arange(cols + 1) - 0.5, np.arange(rows + 1) - 0.5, matrix, cmap=HEAT,
+                           norm=PowerNorm(0.5, vmin=0.0, vmax=max(0.05, float(matrix.max()))), lw=0,
+                           rasterized=True)
+        ax.set_xlim(-0.5, cols - 0.5)
+        ax.set_ylim(rows - 0.5, -0.5)
         _tick_labels(ax, labels)
         step = max(1, int(np.ceil(cols / 20)))
         ticks = np.arange(0, cols, step)
@@ -197,7 +200,7 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
         axes = fig.subplots(k, 2, squeeze=False, gridspec_kw={"width_ratios": [2.3, 1]})
         for row, (name, x) in enumerate(named.items()):
             C, D = x.shape
-            step = max(1, D // 600)  # thinned for the picture only; every draw enters the ranks
+            step = max(1, int(np.ceil(D / 500)))  # thinned for the picture only; every draw enters the ranks
             flat = x.reshape(-1)
             # tied draws (nu lives on a grid) get their order at random, so a rank histogram of a
             # well-mixed discrete quantity is flat too (common practice)
@@ -220,7 +223,6 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
                 axes[row, 1].set_title("ranks by chain (flat = mixed)", loc="left")
         axes[-1, 0].set_xlabel("draw")
         axes[-1, 1].set_xlabel("rank bins over all chains")
-        fig.tight_layout()
         return _svg(fig)
 
 
@@ -249,5 +251,4 @@ def predictive(spread: dict, sd: dict | None, labels) -> str:
             ax.set_title("within-group sd", loc="left")
             ax.set_xlabel("groups with n ≥ 2, by replicated median")
             ax.legend(loc="upper left")
-        fig.tight_layout()
         return _svg(fig)

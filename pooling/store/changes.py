@@ -7,7 +7,9 @@ THIS run's draws against a fixed number taken from the previous run:
     p_now_above_then_mean        P(x > previous posterior mean of x | today's data), for mu, tau, theta_j
     p_now_better_than_then_rank  P(rank_j < previous posterior mean rank of j | today's data)
     p_above (then / now)         P(theta_j > threshold | that run's data), computed in each run
-    p_outside (then / now)       P(theta_j < lower or theta_j > upper | that run's data)
+    p_mean_outside (then / now)  P(theta_j < lower or theta_j > upper | that run's data): the group's
+                                 mean outside the specification limits (the predicted fraction of
+                                 its measurements outside them is in the reporter's groups.csv)
 
 and every shift is also expressed against the posterior spreads,
 
@@ -206,7 +208,7 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
         pb = float(p_better[j]) if same_best else None
         pm = float(p_above_then_mean[j])
         rows.append(_row(g, old, pb, pm, (same_threshold, same_limits, same_best), watch))
-        if same_best and round(old.rank_mean) != round(g.rank_mean):
+        if same_best and abs(old.rank_mean - g.rank_mean) >= 1.0:
             moves.append({"group": g.label, "rank_then": old.rank_mean, "rank_now": g.rank_mean,
                           "move_up": old.rank_mean - g.rank_mean, "p_now_better_than_then_rank": pb})
         if watch.threshold is not None and same_threshold:
@@ -217,8 +219,8 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
         if watch.has_limits and same_limits:
             a, b = _status_limits(old.p_outside, watch.decide_at), _status_limits(g.p_outside, watch.decide_at)
             if a != b:
-                l_cross.append({"group": g.label, "then": a, "now": b, "p_outside_then": _num(old.p_outside),
-                                "p_outside_now": _num(g.p_outside)})
+                l_cross.append({"group": g.label, "then": a, "now": b, "p_mean_outside_then": _num(old.p_outside),
+                                "p_mean_outside_now": _num(g.p_outside)})
     now_set = set(labels)
     gone = [g for g in prev.groups if g.label not in now_set]
     rows += [_row(None, g, None, None, None, watch) for g in gone]
@@ -230,13 +232,13 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
 
 def _group_line(g: GroupResult) -> dict:
     return {"group": g.label, "n": g.n, "post_mean": g.post_mean, "post_sd": g.post_sd, "rank_mean": g.rank_mean,
-            "p_above": _num(g.p_above), "p_outside": _num(g.p_outside)}
+            "p_above": _num(g.p_above), "p_mean_outside": _num(g.p_outside)}
 
 
 CSV_COLUMNS = ["group", "change", "n_then", "n_now", "mean_then", "mean_now", "sd_then", "sd_now", "shift",
                "shift_in_sd", "p_now_above_then_mean", "rank_then", "rank_now", "rank_move_up",
                "p_now_better_than_then_rank", "p_above_then", "p_above_now", "side_then", "side_now",
-               "p_outside_then", "p_outside_now", "limits_then", "limits_now"]
+               "p_mean_outside_then", "p_mean_outside_now", "limits_then", "limits_now"]
 
 
 def _row(now: GroupResult | None, then: GroupResult | None, p_better, p_above_then_mean, comparable, watch) -> dict:
@@ -246,12 +248,12 @@ def _row(now: GroupResult | None, then: GroupResult | None, p_better, p_above_th
     r["change"] = "new" if then is None else "gone" if now is None else "kept"
     if then is not None:
         r.update(n_then=then.n, mean_then=then.post_mean, sd_then=then.post_sd, rank_then=then.rank_mean,
-                 p_above_then=_num(then.p_above), p_outside_then=_num(then.p_outside),
+                 p_above_then=_num(then.p_above), p_mean_outside_then=_num(then.p_outside),
                  side_then=_status_threshold(then.p_above, watch.decide_at),
                  limits_then=_status_limits(then.p_outside, watch.decide_at))
     if now is not None:
         r.update(n_now=now.n, mean_now=now.post_mean, sd_now=now.post_sd, rank_now=now.rank_mean,
-                 p_above_now=_num(now.p_above), p_outside_now=_num(now.p_outside),
+                 p_above_now=_num(now.p_above), p_mean_outside_now=_num(now.p_outside),
                  side_now=_status_threshold(now.p_above, watch.decide_at),
                  limits_now=_status_limits(now.p_outside, watch.decide_at))
     if now is not None and then is not None:
@@ -263,7 +265,7 @@ def _row(now: GroupResult | None, then: GroupResult | None, p_better, p_above_th
         if comparable is not None and not comparable[0]:
             r.update(p_above_then=None, side_then=None)
         if comparable is not None and not comparable[1]:
-            r.update(p_outside_then=None, limits_then=None)
+            r.update(p_mean_outside_then=None, limits_then=None)
         if comparable is not None and not comparable[2]:
             r.update(rank_then=None, rank_move_up=None)
     return {k: _num(v) if isinstance(v, (float, np.floating)) else v for k, v in r.items()}
@@ -318,11 +320,14 @@ def short_lines(report: dict) -> list[str]:
 NOTES = {
     "p_now_above_then_mean": "P(x > the previous run's posterior mean of x), from this run's draws; the draws of "
                              "two runs cannot be paired, so this is not the probability that x increased",
-    "p_now_better_than_then_rank": "P(rank now < the previous posterior mean rank), from this run's draws",
+    "p_now_better_than_then_rank": "P(rank now < the previous posterior mean rank), from this run's draws; ranks "
+                                   "count among this run's groups, so new or gone groups shift them too",
+    "rank_moves": "groups whose posterior mean rank moved by one place or more",
     "shift_in_sd": "(mean now - mean then) / sqrt(sd then^2 + sd now^2): a yardstick, not a test; the runs share "
                    "most of their data, so the spread of the difference is smaller than this denominator",
     "p_above": "P(theta_j > threshold) in each run, each from its own draws",
-    "p_outside": "P(theta_j < lower or theta_j > upper): the group mean outside the limits, in each run",
+    "p_mean_outside": "P(theta_j < lower or theta_j > upper): the group's mean outside the specification limits, "
+                      "in each run (not the fraction of its measurements outside them)",
     "crossings": "a group is listed when its side changed; side 'above'/'outside' needs a probability of at least "
                  "decide_at, 'below'/'inside' at most 1 - decide_at, otherwise 'unsure'",
     "caution": "statistical screening supports, and never replaces, the applicable standards, local codes and "

@@ -1,0 +1,398 @@
+"""Each conditional update of the kernel against its closed form in scipy.stats.
+
+Method (the probability integral transform, PIT). Within one sweep every block is a fresh draw
+from a closed-form conditional whose inputs are all recorded in the kernel's output rows: theta
+at sweep t is drawn given (mu_t, tau_t, v_{t-1}), mu_t given (tau_t, v_{t-1}), sigma_j^2 at t
+given (theta_t, s^2_{t-1}, nu_{t-1}), s^2_t given (sigma^2_t, nu_{t-1}) and nu_t given
+(sigma^2_t, s^2_t). So U = F(draw | recorded inputs), with F the scipy.stats CDF of the closed
+form, is Uniform(0, 1) given everything drawn before it, and the U's of a run are independent
+(Rosenblatt 1952, Ann. Math. Statist. 23(3)): a Kolmogorov-Smirnov test of all of them against
+Uniform(0, 1) tests the update exactly, with no Markov-chain error at all. For the discrete nu
+we add a chi-square test of the counts on the grid against the sums of the exact per-draw
+probabilities. The reference formulas below are written independently of the kernel's algebra,
+through scipy.stats parametrisations.
+
+The slice update of log tau is a Markov step, not a direct draw, so it is tested by its
+stationary distribution: independent chains of the `known` structure (no block B, mu and theta
+do not feed back) started from exact draws of p(tau | v, y) are moved 12 sweeps and must still
+follow p(tau | v, y), computed on a fine grid from independent formulas.
+
+Significance: every test uses a fixed seed and rejects at p < 1e-3. Power: every test also runs
+the same statistic against a deliberately wrong closed form (an error a developer could make)
+and asserts that it IS rejected (p < 1e-3) -- so the test is shown to fail when the formula is
+wrong. Besides that, we ran these checks locally against mutated copies of pooling/kernel.py
+(theta's weights swapped; nu + n_j - 1 degrees of freedom for sigma_j^2; N - J degrees of freedom
+for the shared sigma^2; the "+ a" dropped from the s^2 shape; the Jacobian "eta +" dropped from
+log p(log tau); lgamma(h) replaced by lgamma(nu) in the nu weights): each mutant failed its test
+with p < 1e-10.
+
+Test inputs: the group statistics are only inputs to a conditional; the references are the
+closed forms. We use the eight-schools estimates and standard errors (Rubin 1981, J. Educational
+Statistics 6(4), Table 2; from memory, cross-checked in test_eight_schools.py) and an unbalanced
+cut of the dyestuff batches (Davies 1947, as tabled in Box and Tiao 1973, Table 5.1.1; from
+memory, cross-checked in test_exact_shared.py), in the kernel's internal units.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from pooling import kernel
+
+ALPHA = 1e-3  # rejection level of every goodness-of-fit test in this file
+
+# Source: Rubin (1981), Table 2 (eight schools; estimate and standard error), from memory.
+SCHOOLS_Y = np.array([28.0, 8.0, -3.0, 7.0, -1.0, 1.0, 18.0, 12.0])
+SCHOOLS_SE = np.array([15.0, 10.0, 16.0, 11.0, 9.0, 11.0, 10.0, 18.0])
+
+# Source: Davies (1947) dyestuff yields, 6 batches of 5 (Box and Tiao 1973, Table 5.1.1), from
+# memory. We keep the first n_j of each batch (n = 1..5, 5) so that the group sizes differ and a
+# group with one observation (M2 = 0) is included.
+DYESTUFF = [
+    [1545, 1440, 1440, 1520, 1580],
+    [1540, 1555, 1490, 1560, 1495],
+    [1595, 1550, 1605, 1510, 1560],
+    [1445, 1440, 1595, 1465, 1545],
+    [1595, 1630, 1515, 1635, 1625],
+    [1520, 1455, 1450, 1480, 1445],
+]
+CUT = [1, 2, 3, 4, 5, 5]
+
+
+def _dyestuff_internal():
+    """Unbalanced dyestuff statistics in internal units: (y - 1527.5) / 64."""
+    groups = [(np.array(b[:k], dtype=float) - 1527.5) / 64.0 for b, k in zip(DYESTUFF, CUT)]
+    n = np.array([len(g) for g in groups], dtype=float)
+    ybar = np.array([g.mean() for g in groups])
+    m2 = np.array([np.sum((g - g.mean()) ** 2) for g in groups])
+    return n, ybar, m2
+
+
+def run_kernel(within, n, ybar, m2, v_known, *, n_sweeps, seed, mu_prior=(0, 0.0, 1.0), tau_prior=(0, 1.0),
+               s2_prior=(0.0, 0.0), nu_grid=(4.0,), nu_weights=None, init_sigma2=None, kern=kernel):
+    """Run kern.sweeps once for n_sweeps from a fixed start; return the out_* arrays (internal units)."""
+    J = len(ybar)
+    nu_grid = np.asarray(nu_grid, dtype=float)
+    w = np.ones(len(nu_grid)) if nu_weights is None else np.asarray(nu_weights, dtype=float)
+    nu_logprior = np.log(w / w.sum())
+    state = np.zeros(kern.N_SCALARS)
+    state[kern.ETA] = 0.0
+    state[kern.MU] = float(np.mean(ybar))
+    state[kern.S2] = 1.0
+    state[kern.NU_IDX] = len(nu_grid) // 2
+    state[kern.WIDTH] = 1.0
+    state[kern.SIGMA2] = 1.0
+    theta = ybar.copy()
+    sigma2 = np.ones(J) if init_sigma2 is None else init_sigma2.copy()
+    width_sigma = J if within == 0 else 1 if within == 1 else 0
+    out = {
+        "mu": np.empty(n_sweeps), "tau": np.empty(n_sweeps), "theta": np.empty((n_sweeps, J)),
+        "sigma": np.empty((n_sweeps, width_sigma)),
+        "s": np.empty(n_sweeps if within == 0 else 0), "nu": np.empty(n_sweeps if within == 0 else 0),
+        "evals": np.empty(n_sweeps),
+    }
+    rng = np.random.default_rng(seed)
+    kern.sweeps(rng, n_sweeps, False, within, n, ybar, m2, v_known, mu_prior[0], mu_prior[1], mu_prior[2],
+                tau_prior[0], tau_prior[1], s2_prior[0], s2_prior[1], nu_grid, nu_logprior, state, theta, sigma2,
+                out["mu"], out["tau"], out["theta"], out["sigma"], out["s"], out["nu"], out["evals"], 0)
+    return out
+
+
+def _ks_uniform(u):
+    return stats.kstest(np.ravel(u), "uniform").pvalue
+
+
+# ---------------------------------------------------------------------------------------------
+# reference closed forms (scipy.stats parametrisations)
+
+
+def theta_pit(out, ybar, v_prev, swap=False):
+    """theta_j | mu, tau, v ~ N(w_j, 1/p_j), p_j = 1/tau^2 + 1/v_j, w_j = (mu/tau^2 + ybar_j/v_j)/p_j.
+
+    Source: the posterior of a normal mean under a normal prior (precision-weighted average);
+    Gelman et al., Bayesian Data Analysis 3rd ed. (BDA3), eq. (5.17). `swap` is the deliberate
+    error of exchanging the two weights.
+    """
+    mu = out["mu"][1:, None]
+    tau2 = out["tau"][1:, None] ** 2
+    p = 1.0 / tau2 + 1.0 / v_prev
+    w = (mu / v_prev + ybar / tau2) / p if swap else (mu / tau2 + ybar / v_prev) / p
+    return stats.norm.cdf(out["theta"][1:], loc=w, scale=np.sqrt(1.0 / p))
+
+
+def mu_pit(out, ybar, v_prev, mu_prior, drop_tau=False):
+    """mu | tau, v ~ N(m, V), 1/V = sum_j 1/(v_j + tau^2) [+ 1/s0^2], m = V (sum_j ybar_j/(v_j + tau^2) [+ m0/s0^2]).
+
+    Source: BDA3 eq. (5.20) (flat prior on mu), with a N(m0, s0^2) prior entering as one more
+    observation. `drop_tau` is the deliberate error of leaving tau^2 out of the weights.
+    """
+    tau2 = out["tau"][1:, None] ** 2 * (0.0 if drop_tau else 1.0)
+    prec = 1.0 / (v_prev + tau2)
+    sp = prec.sum(axis=1)
+    spy = (prec * ybar).sum(axis=1)
+    if mu_prior[0] == 1:
+        sp = sp + 1.0 / mu_prior[2] ** 2
+        spy = spy + mu_prior[1] / mu_prior[2] ** 2
+    return stats.norm.cdf(out["mu"][1:], loc=spy / sp, scale=np.sqrt(1.0 / sp))
+
+
+def sigma2_pit(out, n, ybar, m2, df_shift=0.0):
+    """sigma_j^2 | theta_j, s^2, nu ~ Inv-Gamma(a = (nu + n_j)/2, scale = (nu s^2 + M2_j + n_j (ybar_j - theta_j)^2)/2).
+
+    This is Scaled-Inv-chi2(nu + n_j, ...) written as scipy.stats.invgamma. Source: BDA3 sec. 2.6
+    (a normal variance with known mean under a scaled-inverse-chi-square prior); the
+    scaled-inverse-chi-square to inverse-gamma identity is in BDA3 Appendix A. df_shift = -1 is
+    the deliberate off-by-one error.
+    """
+    sig2 = out["sigma"][1:] ** 2
+    s2 = out["s"][:-1, None] ** 2
+    nu = out["nu"][:-1, None]
+    theta = out["theta"][1:]
+    scale = (nu * s2 + m2 + n * (ybar - theta) ** 2) / 2.0
+    return stats.invgamma.cdf(sig2, a=(nu + n + df_shift) / 2.0, scale=scale)
+
+
+def s2_pit(out, s2_prior, drop_prior_shape=False):
+    """s^2 | sigma^2, nu ~ Gamma(shape = J nu/2 + a, rate = nu/2 sum_j 1/sigma_j^2 + b).
+
+    Source: the product of Scaled-Inv-chi2(nu, s^2) densities is, as a function of s^2,
+    (s^2)^(J nu/2) exp(-s^2 nu/2 sum_j 1/sigma_j^2) (BDA3 Appendix A density), times the
+    Gamma(a, b) prior (a = b = 0 for p(s^2) ∝ 1/s^2).
+    """
+    J = out["sigma"].shape[1]
+    sig2 = out["sigma"][1:] ** 2
+    nu = out["nu"][:-1]
+    shape = J * nu / 2.0 + (0.0 if drop_prior_shape else s2_prior[0])
+    rate = nu / 2.0 * np.sum(1.0 / sig2, axis=1) + s2_prior[1]
+    return stats.gamma.cdf(out["s"][1:] ** 2, a=shape, scale=1.0 / rate)
+
+
+def nu_probs(out, nu_grid, nu_weights, wrong=False):
+    """p(nu_k | sigma^2, s^2) ∝ w_k prod_j Scaled-Inv-chi2(sigma_j^2 | nu_k, s^2), for the drawn sigma^2, s^2.
+
+    Scaled-Inv-chi2(nu, s^2) is scipy.stats.invgamma(a = nu/2, scale = nu s^2/2) (BDA3 Appendix A).
+    `wrong` uses a = nu (the deliberate error of taking nu for nu/2 in the shape).
+    """
+    sig2 = out["sigma"] ** 2
+    s2 = out["s"] ** 2
+    logp = np.empty((len(s2), len(nu_grid)))
+    for k, nu in enumerate(nu_grid):
+        a = nu if wrong else nu / 2.0
+        logp[:, k] = np.log(nu_weights[k]) + stats.invgamma.logpdf(sig2, a=a, scale=nu * s2[:, None] / 2.0).sum(axis=1)
+    logp -= logp.max(axis=1, keepdims=True)
+    p = np.exp(logp)
+    return p / p.sum(axis=1, keepdims=True)
+
+
+def shared_pit(out, n, ybar, m2, df_shift=0.0):
+    """sigma^2 | theta ~ Inv-Gamma(a = N/2, scale = (sum_j M2_j + sum_j n_j (ybar_j - theta_j)^2)/2).
+
+    Source: BDA3 sec. 3.2 (normal variance with p(log sigma) flat: Scaled-Inv-chi2(N, SS/N)).
+    df_shift = -J is the deliberate error of using the residual degrees of freedom N - J.
+    """
+    theta = out["theta"]
+    ss = m2.sum() + np.sum(n * (ybar - theta) ** 2, axis=1)
+    return stats.invgamma.cdf(out["sigma"][:, 0] ** 2, a=(n.sum() + df_shift) / 2.0, scale=ss / 2.0)
+
+
+# ---------------------------------------------------------------------------------------------
+# tests of the direct draws
+
+
+N_SWEEPS = 20_000
+
+
+@pytest.fixture(scope="module")
+def separate_grid_run():
+    """separate, nu on a grid with unequal weights, gamma prior on s^2, normal mu, half-Cauchy tau."""
+    n, ybar, m2 = _dyestuff_internal()
+    grid = (1.0, 2.0, 4.0, 8.0, 16.0, 40.0)
+    weights = (1.0, 2.0, 3.0, 3.0, 2.0, 1.0)
+    out = run_kernel(0, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=20240611, mu_prior=(1, 0.3, 0.4),
+                     tau_prior=(2, 0.5), s2_prior=(2.0, 1.5), nu_grid=grid, nu_weights=weights)
+    return dict(out=out, n=n, ybar=ybar, m2=m2, grid=np.array(grid), weights=np.array(weights) / sum(weights),
+                mu_prior=(1, 0.3, 0.4), s2_prior=(2.0, 1.5))
+
+
+@pytest.fixture(scope="module")
+def separate_fixed_run():
+    """separate, nu fixed at 3, p(s^2) ∝ 1/s^2, flat mu, flat tau: the package defaults with nu fixed."""
+    n, ybar, m2 = _dyestuff_internal()
+    out = run_kernel(0, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=7, nu_grid=(3.0,))
+    return dict(out=out, n=n, ybar=ybar, m2=m2, mu_prior=(0, 0.0, 1.0), s2_prior=(0.0, 0.0))
+
+
+@pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
+def test_theta_and_mu_given_separate_variances(which, request):
+    r = request.getfixturevalue(which)
+    out, n = r["out"], r["n"]
+    v_prev = out["sigma"][:-1] ** 2 / n  # v_j = sigma_j^2 / n_j from the sweep before
+    u = theta_pit(out, r["ybar"], v_prev)
+    assert _ks_uniform(u) > ALPHA
+    for j in range(u.shape[1]):  # per group too: an error in one group's index would hide in the pool
+        assert _ks_uniform(u[:, j]) > ALPHA / u.shape[1], j
+    assert _ks_uniform(theta_pit(out, r["ybar"], v_prev, swap=True)) < ALPHA
+    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"])) > ALPHA
+    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], drop_tau=True)) < ALPHA
+
+
+@pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
+def test_sigma2_given_theta_s2_nu(which, request):
+    r = request.getfixturevalue(which)
+    u = sigma2_pit(r["out"], r["n"], r["ybar"], r["m2"])
+    assert _ks_uniform(u) > ALPHA
+    for j in range(u.shape[1]):
+        assert _ks_uniform(u[:, j]) > ALPHA / u.shape[1], j
+    assert _ks_uniform(sigma2_pit(r["out"], r["n"], r["ybar"], r["m2"], df_shift=-1.0)) < ALPHA
+
+
+@pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
+def test_s2_given_sigma2_nu(which, request):
+    r = request.getfixturevalue(which)
+    assert _ks_uniform(s2_pit(r["out"], r["s2_prior"])) > ALPHA
+    if r["s2_prior"][0] > 0:
+        assert _ks_uniform(s2_pit(r["out"], r["s2_prior"], drop_prior_shape=True)) < ALPHA
+    else:  # 1/s^2 prior: the wrong version takes shape J nu / 2 + 1 (a flat prior on s^2)
+        assert _ks_uniform(s2_pit(r["out"], (1.0, 0.0))) < ALPHA
+
+
+def test_nu_on_its_grid(separate_grid_run):
+    r = separate_grid_run
+    out, grid = r["out"], r["grid"]
+    k = np.searchsorted(grid, out["nu"])
+    assert np.all(grid[k] == out["nu"])
+
+    def chi2_and_pit(p):
+        # Chi-square of the counts against the summed exact probabilities. The draws are
+        # independent categorical given their inputs, so each count's variance sum_t p_tk (1 - p_tk)
+        # is at most the multinomial one and the chi-square(K - 1) reference is valid (slightly
+        # conservative). Cells with expected count < 5 are pooled (common practice).
+        expected = p.sum(axis=0)
+        observed = np.bincount(k, minlength=len(grid)).astype(float)
+        keep = expected >= 5
+        e = np.append(expected[keep], expected[~keep].sum())
+        o = np.append(observed[keep], observed[~keep].sum())
+        if e[-1] == 0:
+            e, o = e[:-1], o[:-1]
+        chi = stats.chisquare(o, e * o.sum() / e.sum()).pvalue
+        # randomised PIT of a discrete draw: F(k - 1) + V p(k), V ~ U(0, 1) -- exactly uniform
+        cdf = np.cumsum(p, axis=1)
+        rows = np.arange(len(k))
+        lower = np.where(k > 0, cdf[rows, np.maximum(k - 1, 0)], 0.0)
+        u = lower + np.random.default_rng(5).random(len(k)) * p[rows, k]
+        return chi, _ks_uniform(u)
+
+    chi, ks = chi2_and_pit(nu_probs(out, grid, r["weights"]))
+    assert chi > ALPHA and ks > ALPHA
+    chi_w, ks_w = chi2_and_pit(nu_probs(out, grid, r["weights"], wrong=True))
+    assert chi_w < ALPHA and ks_w < ALPHA
+    assert len(np.unique(k)) >= 3  # the grid is really explored, not stuck on one point
+
+
+def test_shared_sigma2_given_theta():
+    n, ybar, m2 = _dyestuff_internal()
+    out = run_kernel(1, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=11)
+    assert _ks_uniform(shared_pit(out, n, ybar, m2)) > ALPHA
+    assert _ks_uniform(shared_pit(out, n, ybar, m2, df_shift=-len(n))) < ALPHA
+    v_prev = out["sigma"][:-1, :1] ** 2 / n
+    assert _ks_uniform(theta_pit(out, ybar, v_prev)) > ALPHA
+    assert _ks_uniform(mu_pit(out, ybar, v_prev, (0, 0.0, 1.0))) > ALPHA
+
+
+@pytest.mark.parametrize("mu_prior", [(0, 0.0, 1.0), (1, -0.2, 0.3)])
+def test_theta_and_mu_given_known_variances(mu_prior):
+    ybar, v = SCHOOLS_Y / 16.0, (SCHOOLS_SE / 16.0) ** 2
+    out = run_kernel(2, np.ones(8), ybar, np.zeros(8), v, n_sweeps=N_SWEEPS, seed=3, mu_prior=mu_prior,
+                     tau_prior=(1, 0.8))
+    assert _ks_uniform(theta_pit(out, ybar, v)) > ALPHA
+    assert _ks_uniform(theta_pit(out, ybar, v, swap=True)) < ALPHA
+    assert _ks_uniform(mu_pit(out, ybar, v, mu_prior)) > ALPHA
+    assert _ks_uniform(mu_pit(out, ybar, v, mu_prior, drop_tau=True)) < ALPHA
+    if mu_prior[0] == 1:  # the normal prior's term matters: leaving it out is caught
+        assert _ks_uniform(mu_pit(out, ybar, v, (0, 0.0, 1.0))) < ALPHA
+
+
+# ---------------------------------------------------------------------------------------------
+# the slice update of log tau: its stationary distribution
+
+
+def log_p_eta(eta, ybar, v, mu_prior, tau_prior):
+    """log p(eta = log tau | v, y) + const, theta and mu integrated out, evaluated on a grid of eta.
+
+    Flat mu: BDA3 eq. (5.21), p(tau | y) ∝ p(tau) V^(1/2) prod_j (v_j + tau^2)^(-1/2)
+    exp(-sum_j (ybar_j - m)^2 / (2 (v_j + tau^2))). Normal mu prior N(m0, s0^2): the marginal of
+    ybar given tau is multivariate normal, mean m0, covariance diag(v + tau^2) + s0^2 11'
+    (scipy.stats.multivariate_normal), a route independent of the kernel's algebra.
+    Half-normal and half-Cauchy priors are scipy.stats.halfnorm and halfcauchy. The Jacobian
+    d tau / d eta = tau adds eta.
+    """
+    tau = np.exp(eta)
+    out = np.empty(len(eta))
+    for i, t in enumerate(tau):
+        d = v + t * t
+        if mu_prior[0] == 0:
+            prec = 1.0 / d
+            V = 1.0 / prec.sum()
+            m = V * np.sum(prec * ybar)
+            out[i] = 0.5 * np.log(V) - 0.5 * np.sum(np.log(d)) - 0.5 * np.sum((ybar - m) ** 2 / d)
+        else:
+            cov = np.diag(d) + mu_prior[2] ** 2
+            out[i] = stats.multivariate_normal.logpdf(ybar, mean=np.full(len(ybar), mu_prior[1]), cov=cov)
+    if tau_prior[0] == 1:
+        out += stats.halfnorm.logpdf(tau, scale=tau_prior[1])
+    elif tau_prior[0] == 2:
+        out += stats.halfcauchy.logpdf(tau, scale=tau_prior[1])
+    return out + eta
+
+
+ETA_GRID = np.linspace(-16.0, 6.0, 8001)  # tau from 1e-7 to 400 internal units
+
+
+def grid_cdf(lp):
+    """The CDF on ETA_GRID of the density exp(lp) (trapezoid rule, scipy.integrate), normalised."""
+    dens = np.exp(lp - lp.max())
+    cdf = integrate.cumulative_trapezoid(dens, ETA_GRID, initial=0.0)
+    return cdf / cdf[-1]
+
+
+TAU_CASES = [
+    ((0, 0.0, 1.0), (0, 1.0)),    # flat mu, flat tau (the package default)
+    ((1, 0.0, 0.3125), (2, 0.3125)),  # the eight-schools priors N(0, 5^2), half-Cauchy(5), in units of 16
+    ((1, 0.5, 1.0), (1, 0.5)),    # normal mu, half-normal tau
+]
+
+
+def slice_finals(cdf, ybar, v, mu_prior, tau_prior, chains=3000, steps=12, seed=99, kern=kernel):
+    """Last log tau of `chains` independent chains of the known structure, each started at an exact draw."""
+    rng = np.random.default_rng(seed)
+    starts = np.interp(rng.random(chains), cdf, ETA_GRID)  # exact draws of eta by the inverse CDF
+    finals = np.empty(chains)
+    # one compiled call per chain; each chain runs `steps` sweeps with the slice width fixed (no
+    # adaptation), then its last log tau is kept
+    J = len(ybar)
+    mu, tau, theta = np.empty(steps), np.empty(steps), np.empty((steps, J))
+    sig, s, nu, ev = np.empty((steps, 0)), np.empty(0), np.empty(0), np.empty(steps)
+    args = (2, np.ones(J), ybar, np.zeros(J), v, mu_prior[0], mu_prior[1], mu_prior[2], tau_prior[0], tau_prior[1],
+            0.0, 0.0, np.array([4.0]), np.zeros(1))
+    for c in range(chains):
+        state = np.zeros(kern.N_SCALARS)
+        state[kern.ETA] = starts[c]
+        state[kern.MU] = float(np.mean(ybar))
+        state[kern.WIDTH] = 1.0
+        kern.sweeps(rng, steps, False, *args, state, ybar.copy(), np.ones(J), mu, tau, theta, sig, s, nu, ev, 0)
+        finals[c] = np.log(tau[-1])
+    return finals
+
+
+@pytest.mark.parametrize("mu_prior,tau_prior", TAU_CASES)
+def test_slice_update_of_log_tau_keeps_its_target(mu_prior, tau_prior):
+    ybar, v = SCHOOLS_Y / 16.0, (SCHOOLS_SE / 16.0) ** 2
+    lp = log_p_eta(ETA_GRID, ybar, v, mu_prior, tau_prior)
+    cdf = grid_cdf(lp)
+    # the grid reaches far enough: almost no mass in its first and last 1% of length
+    assert cdf[80] < 1e-6 and cdf[-81] > 1 - 1e-6
+    finals = slice_finals(cdf, ybar, v, mu_prior, tau_prior)
+    assert stats.kstest(finals, lambda x: np.interp(x, ETA_GRID, cdf)).pvalue > ALPHA
+    wrong = grid_cdf(lp - ETA_GRID)  # the same density without the Jacobian of tau = exp(eta)
+    assert stats.kstest(finals, lambda x: np.interp(x, ETA_GRID, wrong)).pvalue < ALPHA
