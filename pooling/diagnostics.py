@@ -76,7 +76,8 @@ def _scores_sorted(s: np.ndarray) -> np.ndarray:
     rows, pos = np.nonzero(s[:, 1:] == s[:, :-1])  # s[row, pos] == s[row, pos + 1]
     if rows.size == 0:
         return np.broadcast_to(base, (p, size))
-    out = np.tile(base, (p, 1))
+    out = np.empty((p, size))
+    out[:] = base
     lin = rows * size + pos  # consecutive only within a row, as pos <= size - 2
     starts = np.flatnonzero(np.diff(lin, prepend=-2) != 1)  # first tie of each run
     run = np.cumsum(np.diff(lin, prepend=-2) != 1) - 1  # run number of each tie

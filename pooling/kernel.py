@@ -161,6 +161,92 @@ def slice_eta(rng, eta0, width, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_k
 
 
 @njit(nogil=True, cache=True)
+def fill_v(within, n, v_known, state, sigma2, v):
+    """v_j = sigma_j^2 / n_j (separate), sigma^2 / n_j (shared) or se_j^2 (known)."""
+    J = v.shape[0]
+    if within == 0:
+        for j in range(J):
+            v[j] = sigma2[j] / n[j]
+    elif within == 1:
+        for j in range(J):
+            v[j] = state[SIGMA2] / n[j]
+    else:
+        for j in range(J):
+            v[j] = v_known[j]
+
+
+@njit(nogil=True, cache=True)
+def block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv):
+    """(tau, mu, theta) jointly given v: slice update of log tau, then mu | tau, then theta | mu, tau.
+
+    Returns the number of density evaluations the slice update used.
+    """
+    eta_old = state[ETA]
+    eta, ev = slice_eta(rng, eta_old, state[WIDTH], ybar, v, state[MU], mu_kind, mu_loc, mu_scale,
+                        tau_kind, tau_scale, mv)
+    state[ETA] = eta
+    if adapt:
+        state[JUMP_SUM] += abs(eta - eta_old)
+        state[JUMP_COUNT] += 1.0
+        if state[JUMP_COUNT] >= 20.0:
+            state[WIDTH] = min(10.0, max(0.02, 3.0 * state[JUMP_SUM] / state[JUMP_COUNT]))
+    mu = mv[0] + math.sqrt(mv[1]) * rng.standard_normal()
+    state[MU] = mu
+    tau2 = math.exp(2.0 * eta)
+    for j in range(ybar.shape[0]):
+        inv_d = 1.0 / (v[j] + tau2)  # one division serves the mean and the variance
+        theta[j] = (mu * v[j] + ybar[j] * tau2) * inv_d + math.sqrt(v[j] * tau2 * inv_d) * rng.standard_normal()
+    return ev
+
+
+@njit(nogil=True, cache=True)
+def block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp):
+    """The variances given theta: sigma_j^2, s^2 and nu (separate) or sigma^2 (shared); nothing for known."""
+    J = ybar.shape[0]
+    K = nu_grid.shape[0]
+    if within == 0:
+        nu = nu_grid[int(state[NU_IDX])]
+        nus2 = nu * state[S2]
+        inv_sum = 0.0
+        for j in range(J):
+            r = ybar[j] - theta[j]
+            ss = nus2 + m2[j] + n[j] * r * r
+            sigma2[j] = ss / (2.0 * rng.standard_gamma(0.5 * (nu + n[j])))
+            inv_sum += 1.0 / sigma2[j]
+        state[S2] = rng.standard_gamma(0.5 * J * nu + s2_shape) / (0.5 * nu * inv_sum + s2_rate)
+        if K > 1:
+            log_sum = sum_log(sigma2)
+            s2 = state[S2]
+            top = -np.inf
+            for k in range(K):
+                h = 0.5 * nu_grid[k]
+                lp[k] = (nu_logprior[k] + J * (h * math.log(h * s2) - math.lgamma(h))
+                         - (h + 1.0) * log_sum - h * s2 * inv_sum)
+                top = max(top, lp[k])
+            total = 0.0
+            for k in range(K):
+                lp[k] = math.exp(lp[k] - top)
+                total += lp[k]
+            u = rng.random() * total
+            k_new = K - 1
+            acc = 0.0
+            for k in range(K):
+                acc += lp[k]
+                if u < acc:
+                    k_new = k
+                    break
+            state[NU_IDX] = k_new
+    elif within == 1:
+        ss = 0.0
+        n_tot = 0.0
+        for j in range(J):
+            r = ybar[j] - theta[j]
+            ss += m2[j] + n[j] * r * r
+            n_tot += n[j]
+        state[SIGMA2] = ss / (2.0 * rng.standard_gamma(0.5 * n_tot))
+
+
+@njit(nogil=True, cache=True)
 def sweeps(rng, n_sweeps, adapt, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
            s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2,
            out_mu, out_tau, out_theta, out_sigma, out_s, out_nu, out_evals, offset):
@@ -173,81 +259,16 @@ def sweeps(rng, n_sweeps, adapt, within, n, ybar, m2, v_known, mu_kind, mu_loc, 
     J = ybar.shape[0]
     v = np.empty(J)
     mv = np.empty(2)
-    K = nu_grid.shape[0]
-    lp = np.empty(K)
+    lp = np.empty(nu_grid.shape[0])
     store = out_mu.shape[0] > 0
     for it in range(n_sweeps):
-        # v_j from the current variances
-        if within == 0:
-            for j in range(J):
-                v[j] = sigma2[j] / n[j]
-        elif within == 1:
-            for j in range(J):
-                v[j] = state[SIGMA2] / n[j]
-        else:
-            for j in range(J):
-                v[j] = v_known[j]
-        # block A
-        eta_old = state[ETA]
-        eta, ev = slice_eta(rng, eta_old, state[WIDTH], ybar, v, state[MU], mu_kind, mu_loc, mu_scale,
-                            tau_kind, tau_scale, mv)
-        state[ETA] = eta
-        if adapt:
-            state[JUMP_SUM] += abs(eta - eta_old)
-            state[JUMP_COUNT] += 1.0
-            if state[JUMP_COUNT] >= 20.0:
-                state[WIDTH] = min(10.0, max(0.02, 3.0 * state[JUMP_SUM] / state[JUMP_COUNT]))
-        mu = mv[0] + math.sqrt(mv[1]) * rng.standard_normal()
-        state[MU] = mu
-        tau2 = math.exp(2.0 * eta)
-        for j in range(J):
-            inv_d = 1.0 / (v[j] + tau2)  # one division serves the mean and the variance
-            theta[j] = (mu * v[j] + ybar[j] * tau2) * inv_d + math.sqrt(v[j] * tau2 * inv_d) * rng.standard_normal()
-        # block B
-        if within == 0:
-            nu = nu_grid[int(state[NU_IDX])]
-            nus2 = nu * state[S2]
-            inv_sum = 0.0
-            for j in range(J):
-                r = ybar[j] - theta[j]
-                ss = nus2 + m2[j] + n[j] * r * r
-                sigma2[j] = ss / (2.0 * rng.standard_gamma(0.5 * (nu + n[j])))
-                inv_sum += 1.0 / sigma2[j]
-            state[S2] = rng.standard_gamma(0.5 * J * nu + s2_shape) / (0.5 * nu * inv_sum + s2_rate)
-            if K > 1:
-                log_sum = sum_log(sigma2)
-                s2 = state[S2]
-                top = -np.inf
-                for k in range(K):
-                    h = 0.5 * nu_grid[k]
-                    lp[k] = (nu_logprior[k] + J * (h * math.log(h * s2) - math.lgamma(h))
-                             - (h + 1.0) * log_sum - h * s2 * inv_sum)
-                    top = max(top, lp[k])
-                total = 0.0
-                for k in range(K):
-                    lp[k] = math.exp(lp[k] - top)
-                    total += lp[k]
-                u = rng.random() * total
-                k_new = K - 1
-                acc = 0.0
-                for k in range(K):
-                    acc += lp[k]
-                    if u < acc:
-                        k_new = k
-                        break
-                state[NU_IDX] = k_new
-        elif within == 1:
-            ss = 0.0
-            n_tot = 0.0
-            for j in range(J):
-                r = ybar[j] - theta[j]
-                ss += m2[j] + n[j] * r * r
-                n_tot += n[j]
-            state[SIGMA2] = ss / (2.0 * rng.standard_gamma(0.5 * n_tot))
+        fill_v(within, n, v_known, state, sigma2, v)
+        ev = block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv)
+        block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
         if store:
             row = offset + it
-            out_mu[row] = mu
-            out_tau[row] = math.sqrt(tau2)
+            out_mu[row] = state[MU]
+            out_tau[row] = math.exp(state[ETA])
             for j in range(J):
                 out_theta[row, j] = theta[j]
             if within == 0:
