@@ -36,8 +36,10 @@ CASES = [
     ("10x groups", 1_000, 10, 10_000),
     ("5x batches", 100, 50, 10_000),
 ]
-SETTINGS = pooling.Settings(chains=2, warmup=1000, draws=1000, max_draws=1000, seed=1)
-REPEATS = 7  # the fastest of several runs: the least disturbed by other work on a shared machine
+# one thread: other work on a shared 2-core machine disturbs two threads far more than one
+SETTINGS = pooling.Settings(chains=2, warmup=2000, draws=2000, max_draws=2000, seed=1, threads=1)
+REPEATS = 3  # merges per round; the fastest of all is kept: the least disturbed by other work on the machine
+ROUNDS = 5
 
 
 def _make_store(folder: Path, J: int, B: int, R: int, rng) -> tuple[Path, float, int]:
@@ -62,27 +64,36 @@ def main() -> int:
     # compile the kernel (or load numba's cache) before anything is timed
     warm = pooling.from_frame(pd.DataFrame({"g": list("aabbcc"), "y": [1.0, 2, 3, 4, 5, 7]}), "g", "y")
     pooling.fit(warm, pooling.Model(), pooling.Settings(chains=2, warmup=10, draws=10, seed=1), progress=False)
+    with tempfile.TemporaryDirectory(prefix="bench-refit-warm-") as tmp:  # and load the ingest's imports
+        _make_store(Path(tmp), 10, 2, 100, rng)
     rows = []
     with tempfile.TemporaryDirectory(prefix="bench-refit-") as tmp:
+        built = []
         for name, J, B, R in CASES:
             folder = Path(tmp) / name.replace(" ", "-")
             folder.mkdir()
             store, ingest_s, total_rows = _make_store(folder, J, B, R, rng)
-            merge = []
-            for _ in range(REPEATS):
+            built.append((name, J, B, store, ingest_s, total_rows))
+        # round-robin over the cases, so that a burst of other work on the machine hits them alike
+        merge = {b[0]: [] for b in built}
+        sample = {b[0]: [] for b in built}
+        plans = {}
+        for _ in range(ROUNDS):
+            for name, J, B, store, _, _ in built:
+                for _ in range(REPEATS):
+                    t0 = time.perf_counter()
+                    plans[name] = jobs.plan_refit(store, force=True)
+                    merge[name].append(time.perf_counter() - t0)
                 t0 = time.perf_counter()
-                plan = jobs.plan_refit(store, force=True)
-                merge.append(time.perf_counter() - t0)
-            sample = []
-            for _ in range(3):
-                t0 = time.perf_counter()
-                pooling.fit(plan.stats, pooling.Model(), SETTINGS, progress=False)
-                sample.append(time.perf_counter() - t0)
+                pooling.fit(plans[name].stats, pooling.Model(), SETTINGS, progress=False)
+                sample[name].append(time.perf_counter() - t0)
+        for name, J, B, store, ingest_s, total_rows in built:
+            plan = plans[name]
             rows.append({
                 "case": name, "groups": J, "batches": B, "rows_ingested": total_rows,
                 "group_rows_in_store": int(sum(len(s.labels) for s in plan.snapshot.stats)),
                 "store_bytes": os.path.getsize(store),
-                "ingest_s": ingest_s, "merge_s": min(merge), "sampling_s": min(sample),
+                "ingest_s": ingest_s, "merge_s": min(merge[name]), "sampling_s": min(sample[name]),
             })
     base = rows[0]
     print(f"{'case':12}{'J':>7}{'B':>5}{'rows':>10}{'grp rows':>10}{'ingest s':>10}{'merge s':>10}"
@@ -98,7 +109,8 @@ def main() -> int:
     result = {
         "benchmark": "refit cost against groups, batches and raw rows",
         "settings": {"chains": SETTINGS.chains, "warmup": SETTINGS.warmup, "draws": SETTINGS.draws,
-                     "merge_repeats": REPEATS},
+                     "threads": SETTINGS.threads, "merge_repeats": REPEATS * ROUNDS, "sampling_repeats": ROUNDS,
+                     "timing": "fastest of the repeats"},
         "machine": {"python": sys.version.split()[0], "platform": platform.platform(), "cpus": os.cpu_count()},
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "cases": rows,

@@ -71,6 +71,11 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
         p.add_argument("--std-error", dest="std_error", help="column of the estimates' standard errors")
         p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
         p.add_argument("--delimiter", help="CSV field separator (default: detected)")
+        # --- number formats in a CSV (hardening) ---
+        p.add_argument("--thousands", metavar="SEP", help="digit-group separator inside numbers, e.g. ',' for "
+                       "1,234.5 or '.' for 1.234,5 (default: none)")
+        p.add_argument("--decimal-comma", dest="decimal_comma", action="store_true",
+                       help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
     g = p.add_argument_group("model")
     g.add_argument("--within", choices=["separate", "shared", "known"],
                    help="within-group variance structure (default: separate; known with --estimate)")
@@ -171,15 +176,17 @@ def _stats_from_args(args):
     if sum(modes.values()) != 1:
         raise E.InputError("bad options: give exactly one of --value COL (measurements), --size/--mean/--sd COLs "
                            "(one row per group) or --estimate/--std-error COLs (estimates with standard errors)")
+    read = {"encoding": args.encoding, "delimiter": args.delimiter, "thousands": args.thousands,
+            "decimal": "," if args.decimal_comma else None}
     if modes["value"]:
-        return S.read_table(args.data, args.group, args.value, encoding=args.encoding, delimiter=args.delimiter)
+        return S.read_table(args.data, args.group, args.value, **read)
     if modes["summary"]:
         if None in (args.size, args.mean, args.sd):
             raise E.InputError("bad options: one row per group needs all of --size, --mean and --sd")
-        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd)
+        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd, **read)
     if None in (args.estimate, args.std_error):
         raise E.InputError("bad options: estimates need both --estimate and --std-error")
-    return S.from_estimates(args.data, args.group, args.estimate, args.std_error)
+    return S.from_estimates(args.data, args.group, args.estimate, args.std_error, **read)
 
 
 def _model_from_args(args, stats):
@@ -207,6 +214,16 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
     model = _model_from_args(args, stats)
     settings = _settings_from_args(args)
     check_target(Path(args.out), args.replace)  # refuse before sampling, not after
+    # --- hardening: extreme magnitudes -------------------------------------------------------------
+    # The statistics and the sampler hold data of 1e-300 or 1e300 in a power-of-two unit, but the
+    # reporter computes in the user's units, where a variance of such numbers under- or overflows
+    # (wrong spreads at 1e-300, a crash at 1e300). Refuse before sampling rather than write a wrong report.
+    if stats.unit != 1.0:
+        raise E.InputError(
+            f"bad input in '{stats.source}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
+            f"report can show; express them in other units (for example times {1 / stats.unit:.0e}) and fit again, "
+            "or fit from Python with pooling.fit, whose draws keep these units")
+    # --- end of hardening block ----------------------------------------------------------------------
     fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init)
     extra = None
     try:

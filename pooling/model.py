@@ -22,7 +22,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from .errors import ModelError
-from .stats import GroupStats
+from .stats import GroupStats, _show
 
 # ---------------------------------------------------------------------------------------------
 # priors
@@ -240,10 +240,30 @@ def _refuse(msg: str):
     raise ModelError(msg)
 
 
+def _check_statistics(stats: GroupStats):
+    """Statistics made by hand (not by the readers, which check their input) are checked once here:
+    a NaN or a zero n would otherwise reach the kernel and come back as meaningless draws."""
+    if len(set(stats.labels)) != stats.J or not all(isinstance(lab, str) for lab in stats.labels):
+        _refuse("bad model: the group labels must be distinct strings")
+    checks = [("n", stats.n, stats.n > 0 if stats.kind == "raw" else stats.n >= 0, "a size above 0"),
+              ("mean", stats.mean + stats.mean_lo, None, "a finite mean"),
+              ("m2", stats.m2, stats.m2 >= 0, "a sum of squared deviations >= 0")]
+    if stats.kind == "known":
+        checks.append(("se", stats.se, stats.se > 0, "a standard error above 0"))
+    for name, arr, ok, what in checks:
+        ok = np.isfinite(arr) if ok is None else ok & np.isfinite(arr)
+        if not np.all(ok):
+            j = int(np.argmin(ok))
+            _refuse(f"bad model: group {_show(stats.labels[j])} has {name} = {arr[j]!r}; expected {what}")
+
+
 def _check_identifiable(stats: GroupStats, model: Model):
     J = stats.J
     if J == 0:
         _refuse("bad model: the data hold no groups")
+    if stats.kind == "known" and stats.se is None:
+        _refuse("bad model: estimates need a standard error per group")
+    _check_statistics(stats)
     if model.within == "known" and stats.kind != "known":
         _refuse("bad model: the 'known' structure needs one estimate and one standard error per group; "
                 "these data are measurements: use --within separate or shared")

@@ -103,14 +103,20 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
         if out.exists():
             old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=parent))
             os.rename(out, old / "run")
-            os.rename(tmp, out)
+            try:
+                os.rename(tmp, out)
+            except BaseException:  # Ctrl-C or a failure between the two renames: put the old run back
+                os.rename(old / "run", out)
+                shutil.rmtree(old, ignore_errors=True)
+                raise
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.rename(tmp, out)
     except OSError as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         if exc.errno == errno.ENOSPC:
-            raise OutputError(f"cannot write the run folder '{out}': the disk is full; nothing was written") from None
+            why = f" ({exc.strerror})" if exc.strerror and "No space" not in exc.strerror else ""
+            raise OutputError(f"cannot write the run folder '{out}': the disk is full{why}; nothing was written") from None
         raise OutputError(f"cannot write the run folder '{out}': {exc.strerror or exc}; nothing was written") from None
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
@@ -118,10 +124,27 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
     return out
 
 
+# HDF5 does not fail cleanly on a full disk: the process crashes inside the library (seen with h5py
+# 3.16 on a full tmpfs), leaving a partial folder. So the space is checked before draws.nc is started,
+# against an upper bound: the uncompressed arrays plus room for the reporter's files. A disk that
+# another process fills during the write can still defeat this.
+REPORT_ROOM = 8 << 20
+
+
+def _check_space(fit: Fit, folder: Path) -> None:
+    need = REPORT_ROOM + sum(
+        int(v.nbytes) for g in fit.idata.groups() for v in fit.idata[g].variables.values())
+    need += 3 * sum(len(lab.encode("utf-8", "surrogatepass")) for lab in fit.labels)
+    free = shutil.disk_usage(folder).free
+    if free < need:
+        raise OSError(errno.ENOSPC, f"{free / 2**20:.1f} MiB free, the run needs up to {need / 2**20:.1f} MiB")
+
+
 def write_run(fit: Fit, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
     """Write draws.nc and summary.json (and whatever `extra(fit, folder)` adds) as one atomic folder."""
 
     def fill(tmp: Path):
+        _check_space(fit, tmp)
         fit.idata.to_netcdf(str(tmp / "draws.nc"), engine="h5netcdf")
         write_json(tmp / "summary.json", summary_dict(fit, command))
         if extra is not None:

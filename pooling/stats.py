@@ -19,6 +19,8 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -218,6 +220,16 @@ def _where(source: str) -> str:
     return f"'{source}'" if source != "<frame>" else "the data frame"
 
 
+def _number_hint(cell) -> str:
+    """A hint for numbers written with a comma, which plain parsing refuses."""
+    text = str(cell).strip()
+    if re.fullmatch(r"[+-]?\d{1,3}(,\d{3})+(\.\d*)?", text):
+        return " (a thousands separator? name it with --thousands ,)"
+    if re.fullmatch(r"[+-]?\d*,\d+", text):
+        return " (a decimal comma? name it with --decimal-comma)"
+    return ""
+
+
 def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> np.ndarray:
     """Return the column as finite float64, or raise naming the first bad row (1-based data row)."""
     if raw.dtype.kind in "fiu":
@@ -225,7 +237,7 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> 
         bad = ~np.isfinite(vals)
         if bad.any():
             i = int(np.argmax(bad))
-            found = "an empty cell" if np.isnan(vals[i]) else repr(str(raw.iloc[i]))
+            found = "an empty cell" if np.isnan(vals[i]) else _show(raw.iloc[i])
             raise InputError(
                 f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
                 f"expected a finite number, found {found}"
@@ -239,7 +251,8 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> 
     if bad.any():
         i = int(np.argmax(bad))
         cell = raw.iloc[i]
-        found = "an empty cell" if cell is None or (isinstance(cell, float) and np.isnan(cell)) or pd.isna(cell) else repr(str(cell))
+        found = "an empty cell" if cell is None or (isinstance(cell, float) and np.isnan(cell)) or pd.isna(cell) else _show(cell)
+        found += _number_hint(cell)
         raise InputError(
             f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
             f"expected a finite number, found {found}"
@@ -247,7 +260,19 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> 
     return vals
 
 
-def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Series:
+def _show(text, limit: int = 60) -> str:
+    """A label or cell for a one-line message: quoted, newlines escaped, long text cut."""
+    text = str(text)
+    cut = text if len(text) <= limit else text[: limit - 1] + "…"
+    return "'" + cut.replace("\\", "\\\\").replace("\n", "\\n").replace("\r", "\\r") + "'"
+
+
+# Control characters break the run folder (HDF5 strings end at NUL) or the terminal (escape codes);
+# tab, newline and carriage return are ordinary text in a label. Lone surrogates cannot be UTF-8.
+_BAD_LABEL_CHARS = "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\ud800-\udfff]"
+
+
+def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, strip: bool = False) -> pd.Series:
     missing = raw.isna().to_numpy().copy()
     if raw.dtype.kind not in "fiub":
         missing |= (raw.astype("string").str.strip() == "").fillna(True).to_numpy(dtype=bool)
@@ -257,14 +282,26 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int) -> 
             f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
             "expected a group label, found an empty cell"
         )
-    return raw.astype(str)
+    labels = raw.astype(str)
+    if strip:  # blanks around a label in a CSV are formatting: "A " and "A" are one group
+        labels = labels.str.strip()
+    if labels.dtype == object or pd.api.types.is_string_dtype(labels):
+        bad = labels.astype(object).str.contains(_BAD_LABEL_CHARS, regex=True).to_numpy(dtype=bool)
+        if bad.any():
+            i = int(np.argmax(bad))
+            ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()
+            raise InputError(
+                f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a group label "
+                f"of text, found the control character U+{ord(ch):04X} in it (tab and newline are allowed)"
+            )
+    return labels
 
 
 def _require_columns(columns, wanted: dict[str, str], source: str):
     cols = [str(c) for c in columns]
     for role, col in wanted.items():
         if col not in cols:
-            shown = ", ".join(repr(c) for c in cols[:12]) + (" ..." if len(cols) > 12 else "")
+            shown = ", ".join(_show(c, 40) for c in cols[:12]) + (" ..." if len(cols) > 12 else "")
             raise InputError(f"bad input in {_where(source)}: no column '{col}' (the {role} column); found {shown or 'no columns'}")
         if cols.count(col) > 1:
             raise InputError(f"bad input in {_where(source)}: the column name '{col}' appears {cols.count(col)} times in the header")
@@ -314,18 +351,29 @@ def _is_parquet(path: Path) -> bool:
         return fh.read(4) == b"PAR1"
 
 
-def _sniff_delimiter(path: Path, encoding: str) -> str:
+_SEPARATORS = ",;\t|"
+
+
+def _sniff_delimiter(path: Path, encoding: str, columns=()) -> str:
+    """The field separator: the one that splits the header into fields naming every wanted column;
+    where that does not decide, the csv module's guess, then the most frequent candidate."""
     import csv
 
     with open(path, "r", encoding=encoding, newline="") as fh:
         sample = fh.read(64 * 1024)
     first = next((ln for ln in sample.splitlines() if ln.strip()), "")
+    wanted = set(columns)
+    fits = [d for d in _SEPARATORS
+            if wanted and wanted <= {cell.strip() for cell in next(csv.reader([first], delimiter=d), [])}]
+    if len(fits) == 1:
+        return fits[0]
+    candidates = "".join(fits) or _SEPARATORS
     try:
-        return csv.Sniffer().sniff(sample, delimiters=",;\t|").delimiter
+        return csv.Sniffer().sniff(sample, delimiters=candidates).delimiter
     except csv.Error:
-        counts = {d: first.count(d) for d in ",;\t|"}
+        counts = {d: first.count(d) for d in candidates}
         best = max(counts, key=counts.get)
-        return best if counts[best] > 0 else ","
+        return best if counts[best] > 0 else candidates[0]
 
 
 def _detect_encoding(path: Path, encoding: str | None) -> str:
@@ -335,6 +383,9 @@ def _detect_encoding(path: Path, encoding: str | None) -> str:
         head = fh.read(1 << 20)
     if head.startswith(b"\xff\xfe") or head.startswith(b"\xfe\xff"):
         return "utf-16"
+    if b"\x00" in head:
+        raise InputError(f"bad input in '{path}': the file is not a text table (it holds NUL bytes); expected a CSV "
+                         "or Parquet file (UTF-16 text without a byte-order mark: name it with --encoding utf-16)")
     try:
         head.decode("utf-8")
         return "utf-8-sig"
@@ -345,8 +396,12 @@ def _detect_encoding(path: Path, encoding: str | None) -> str:
 
 
 def iter_table_chunks(path, columns: list[str], encoding: str | None = None, delimiter: str | None = None,
-                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None):
-    """Yield (row_offset, DataFrame) chunks holding `columns` of a CSV or Parquet file."""
+                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None):
+    """Yield (row_offset, DataFrame) chunks holding `columns` of a CSV or Parquet file.
+
+    `thousands` is a digit-group separator inside numbers (for example ","), `decimal` the decimal mark
+    (default "."). A CSV row with more fields than the header is refused rather than read shifted.
+    """
     path = _open_check(path)
     src = str(path)
     if _is_parquet(path):
@@ -355,7 +410,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
         try:
             pf = pq.ParquetFile(path)
         except Exception as exc:  # pyarrow raises several types for a damaged file
-            raise InputError(f"bad input in '{src}': not a readable Parquet file ({exc})") from None
+            raise InputError(f"bad input in '{src}': not a readable Parquet file ({_one_line(exc)})") from None
         _require_columns(pf.schema_arrow.names, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
         offset = 0
         for batch in pf.iter_batches(batch_size=chunk_rows, columns=columns):
@@ -364,58 +419,109 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             offset += len(df)
         return
     enc = _detect_encoding(path, encoding)
-    sep = delimiter or _sniff_delimiter(path, enc)
+    if thousands is not None and thousands == (decimal or "."):
+        raise InputError(f"bad options: the thousands separator and the decimal mark are both '{thousands}'")
     try:
+        sep = delimiter or _sniff_delimiter(path, enc, columns)  # "1,5" with a comma separator works when quoted
+        raw_header, first_row = _first_rows(path, enc, sep)
+        if raw_header is None:
+            raise InputError(f"bad input in '{src}': the file has no header and no data")
+        _require_columns(raw_header, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
+        if first_row is not None and any(c.strip() for c in first_row[len(raw_header):]):
+            # pandas would take the surplus as an index and shift every column by one
+            raise InputError(f"bad input in '{src}', row 1: expected {len(raw_header)} fields as in the header, found "
+                             f"{len(first_row)} (an unquoted '{sep}' inside a label or a number?)")
+        header = list(pd.read_csv(path, sep=sep, nrows=0, encoding=enc, skipinitialspace=True).columns)
+        names = [str(c).strip() for c in header]
+        where = [names.index(c) for c in columns]
+        numeric = [header[i] for i in where[1:]]
+        # every other column is read as text: no type guessing, no mixed-type warnings
+        text = {c: str for c in header if c not in numeric}
+        rows = chunk_rows if len(header) <= 8 else max(1, chunk_rows * 8 // len(header))
         reader = pd.read_csv(
-            path, sep=sep, usecols=lambda c: str(c).strip() in columns, dtype={c: str for c in columns[:1]},
-            keep_default_na=False, na_values={c: _MISSING for c in columns[1:]}, skip_blank_lines=True,
-            encoding=enc, chunksize=chunk_rows, thousands=thousands, skipinitialspace=True,
+            path, sep=sep, index_col=False, dtype=text, keep_default_na=False,
+            na_values={c: _MISSING for c in numeric}, skip_blank_lines=True, encoding=enc, chunksize=rows,
+            thousands=thousands, decimal=decimal or ".", skipinitialspace=True,
         )
-        header = pd.read_csv(path, sep=sep, nrows=0, encoding=enc).columns
     except UnicodeDecodeError:
         raise InputError(f"bad input in '{src}': the text is not in the {enc} encoding; name it with --encoding") from None
     except pd.errors.EmptyDataError:
         raise InputError(f"bad input in '{src}': the file has no header and no data") from None
     except pd.errors.ParserError as exc:
-        raise InputError(f"bad input in '{src}': cannot be read as a table ({str(exc).strip()})") from None
-    header = [str(c).strip() for c in header]
-    # pandas renames duplicated headers to "x.1"; look at the raw header for the check
-    _require_columns(_raw_header(path, enc, sep) or header, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
+        raise InputError(_parser_message(src, exc, sep)) from None
     offset = 0
-    try:
-        for df in reader:
-            df.columns = [str(c).strip() for c in df.columns]
-            yield offset, df
-            offset += len(df)
-    except UnicodeDecodeError:
-        raise InputError(f"bad input in '{src}': the text is not in the {enc} encoding; name it with --encoding") from None
-    except pd.errors.ParserError as exc:
-        raise InputError(f"bad input in '{src}': cannot be read as a table ({str(exc).strip()})") from None
+    chunks = iter(reader)
+    while True:
+        try:
+            with warnings.catch_warnings():
+                # a trailing separator on the first data row: checked above, the surplus is empty
+                warnings.simplefilter("ignore", pd.errors.ParserWarning)
+                df = next(chunks)
+        except StopIteration:
+            break
+        except UnicodeDecodeError:
+            raise InputError(f"bad input in '{src}': the text is not in the {enc} encoding; name it with --encoding") from None
+        except pd.errors.ParserError as exc:
+            raise InputError(_parser_message(src, exc, sep)) from None
+        df = df.iloc[:, where]
+        df.columns = list(columns)
+        yield offset, df
+        offset += len(df)
     if offset == 0:
         raise InputError(f"bad input in '{src}': a header but no data rows")
 
 
-def _raw_header(path: Path, enc: str, sep: str) -> list[str] | None:
+def _one_line(exc) -> str:
+    return " ".join(str(exc).split())
+
+
+def _parser_message(src: str, exc, sep: str) -> str:
+    m = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", str(exc))
+    if m:
+        return (f"bad input in '{src}', line {m.group(2)}: expected {m.group(1)} fields as in the header, found "
+                f"{m.group(3)} (an unquoted '{sep}' inside a label or a number?)")
+    return f"bad input in '{src}': cannot be read as a table ({_one_line(exc)})"
+
+
+def _first_rows(path: Path, enc: str, sep: str) -> tuple[list[str] | None, list[str] | None]:
+    """The header (names stripped) and the first data row, skipping blank lines; pandas renames
+    duplicated headers to "x.1", so the check for duplicates looks here."""
     import csv
 
-    with open(path, "r", encoding=enc, newline="") as fh:
-        for row in csv.reader(fh, delimiter=sep):
-            if any(cell.strip() for cell in row):
-                return [cell.strip() for cell in row]
-    return None
+    if len(sep) != 1:  # a multi-character separator: the csv module cannot split it; pandas will
+        header = pd.read_csv(path, sep=sep, nrows=0, encoding=enc, engine="python").columns
+        return [str(c).strip() for c in header], None
+    header = None
+    try:
+        with open(path, "r", encoding=enc, newline="") as fh:
+            for row in csv.reader(fh, delimiter=sep, skipinitialspace=True):
+                if not any(cell.strip() for cell in row):
+                    continue
+                if header is None:
+                    header = [cell.strip() for cell in row]
+                else:
+                    return header, row
+    except csv.Error as exc:  # e.g. a field beyond the csv module's size limit: pandas reads it
+        if header is None:
+            header = [str(c).strip() for c in pd.read_csv(path, sep=sep, nrows=0, encoding=enc).columns]
+        if "field larger" not in str(exc):
+            raise InputError(f"bad input in '{path}': cannot be read as a table ({_one_line(exc)})") from None
+    return header, None
 
 
 def read_table(path, group: str, value: str, *, encoding: str | None = None, delimiter: str | None = None,
-               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None) -> GroupStats:
+               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None) -> GroupStats:
     """Statistics of a long table in a CSV or Parquet file, read in chunks of `chunk_rows` rows.
 
     Peak memory grows with the number of groups and the chunk size, not with the file's rows.
+    Blanks around a group label in a CSV are not part of it.
     """
     src = str(path)
     total = None
     unit = None
-    for offset, df in iter_table_chunks(path, [group, value], encoding, delimiter, chunk_rows, thousands):
-        labels_raw = _check_groups(df[group], src, group, offset)
+    csv_file = not _is_parquet(_open_check(path))
+    for offset, df in iter_table_chunks(path, [group, value], encoding, delimiter, chunk_rows, thousands, decimal):
+        labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
         vals = _check_values(df[value], src, value, offset)
         unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
         labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals)
@@ -425,17 +531,22 @@ def read_table(path, group: str, value: str, *, encoding: str | None = None, del
                       mean_lo=total.mean_lo.copy(), unit=total.unit, source=src, file_sha256=_sha256_file(Path(path)))
 
 
-def _read_whole(path, columns, encoding=None, delimiter=None) -> pd.DataFrame:
-    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter)]
-    return pd.concat(parts, ignore_index=True)
+def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None) -> pd.DataFrame:
+    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal)]
+    df = pd.concat(parts, ignore_index=True)
+    if not _is_parquet(Path(path)):  # blanks around a label in a CSV are formatting, as in read_table
+        df[columns[0]] = df[columns[0]].str.strip()
+    return df
 
 
-def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>") -> GroupStats:
-    """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1)."""
+def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", **read) -> GroupStats:
+    """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1).
+
+    `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         sha = _sha256_file(_open_check(data))
-        data = _read_whole(data, [group, n, mean, sd])
+        data = _read_whole(data, [group, n, mean, sd], **read)
     else:
         sha = None
     _require_columns(data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd}, source)
@@ -446,10 +557,10 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
     sv = _check_values(data[sd], source, sd, 0)
     for i in range(len(nv)):
         if nv[i] < 1 or nv[i] != np.round(nv[i]):
-            raise InputError(f"bad input in {_where(source)}, column '{n}', group '{labels.iloc[i]}': "
+            raise InputError(f"bad input in {_where(source)}, column '{n}', group {_show(labels.iloc[i])}: "
                              f"expected a whole number of at least 1, found {nv[i]:g}")
         if sv[i] < 0:
-            raise InputError(f"bad input in {_where(source)}, column '{sd}', group '{labels.iloc[i]}': "
+            raise InputError(f"bad input in {_where(source)}, column '{sd}', group {_show(labels.iloc[i])}: "
                              f"expected a standard deviation >= 0, found {sv[i]:g}")
     unit = choose_unit(mv, sv)
     mv, sv = mv / unit, sv / unit
@@ -458,13 +569,15 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
 
 
 def from_estimates(data, group: str, estimate: str, std_error: str, source: str = "<frame>",
-                   n: str | None = None) -> GroupStats:
-    """Statistics for the `known` structure: one estimate and its standard error per group."""
+                   n: str | None = None, **read) -> GroupStats:
+    """Statistics for the `known` structure: one estimate and its standard error per group.
+
+    `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
     cols = [group, estimate, std_error] + ([n] if n else [])
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         sha = _sha256_file(_open_check(data))
-        data = _read_whole(data, cols)
+        data = _read_whole(data, cols, **read)
     else:
         sha = None
     _require_columns(data.columns, {"group": group, "estimate": estimate, "standard error": std_error}, source)
@@ -475,7 +588,7 @@ def from_estimates(data, group: str, estimate: str, std_error: str, source: str 
     bad = se <= 0
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputError(f"bad input in {_where(source)}, column '{std_error}', group '{labels.iloc[i]}': "
+        raise InputError(f"bad input in {_where(source)}, column '{std_error}', group {_show(labels.iloc[i])}: "
                          f"expected a standard error > 0, found {se[i]:g}")
     nn = np.zeros(len(est), dtype=np.int64) if n is None else _check_values(data[n], source, n, 0).astype(np.int64)
     unit = choose_unit(est, se)
@@ -488,4 +601,4 @@ def _check_unique(labels: pd.Series, source: str, column: str):
     if dup.any():
         i = int(np.argmax(dup.to_numpy()))
         raise InputError(f"bad input in {_where(source)}, column '{column}', row {i + 1}: "
-                         f"expected one row per group, found '{labels.iloc[i]}' again")
+                         f"expected one row per group, found {_show(labels.iloc[i])} again")

@@ -2,6 +2,7 @@
 same definitions) and against known properties of the estimators."""
 from __future__ import annotations
 
+import functools
 import warnings
 
 import numpy as np
@@ -62,10 +63,15 @@ def _ar1(rng, phi, shape, burn=200):
 # agreement with arviz
 
 
+@functools.lru_cache(maxsize=None)
+def _posterior(dataset):
+    return az.load_arviz_data(dataset).posterior
+
+
 @pytest.mark.parametrize("dataset", ["centered_eight", "non_centered_eight"])
 @pytest.mark.parametrize("var", ["mu", "tau", "theta"])
 def test_eight_schools_match_arviz(dataset, var):
-    x = az.load_arviz_data(dataset).posterior[var].values
+    x = _posterior(dataset)[var].values
     # Source: arviz 0.23 az.rhat(method="rank"), az.ess(method="bulk"/"tail"/"mean"),
     # az.mcse(method="mean") on arviz's own example posteriors.
     _assert_match(x)

@@ -256,3 +256,20 @@ def test_bad_dates_and_names_are_refused_before_the_store_changes(tmp_path, caps
     with pytest.raises(InputError, match="column 'nope'"):
         jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "nope")
     assert not store.exists()
+
+
+def test_bad_refit_options_are_refused_before_any_work(tmp_path, capsys):
+    rng = np.random.default_rng(9)
+    _write_batches(tmp_path, rng, k=1, offset=0.0, spread=1.0, rows=40, groups=3)
+    store = tmp_path / "s.store"
+    jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y")
+    before = _dump(store)
+    for extra, word in ((["--half-life", "0"], "--half-life"), (["--half-life", "soon"], "--half-life"),
+                        (["--decide-at", "0.3"], "--decide-at"), (["--as-of", "yesterday"], "--as-of"), ([], "--out")):
+        capsys.readouterr()
+        out = [] if word == "--out" else ["--out", str(tmp_path / "run")]
+        code = cli.main(["refit", str(store), *out, *extra])
+        err = capsys.readouterr().err.strip().splitlines()
+        assert code == 2 and len(err) == 1 and word in err[0], (extra, err)
+        assert not (tmp_path / "run").exists()
+    assert _dump(store) == before

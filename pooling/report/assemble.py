@@ -121,7 +121,7 @@ def compute(fit, options: ReportOptions | None = None, figures: bool = True) -> 
             "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else [])}
     clock["ranks"] = time.perf_counter()
     pairs = pairwise(fit, compare) if compare else None
-    lab = interlab(fit, o.level, o.allowed_bias, o.assigned, o.sigma_pt)
+    lab = interlab(fit, o.level, o.allowed_bias, o.assigned, o.sigma_pt, table=table)
     new = new_group_outside(v, o.lower, o.upper, o.level)
     spread = checks.spread_check(v)
     sd = checks.sd_check(v)

@@ -35,7 +35,7 @@ def rank_draws(theta: np.ndarray, best: str = "highest", chunk: int = 256) -> np
     counting = np.broadcast_to(np.arange(1, J + 1, dtype=dtype), (chunk, J))
     for a in range(0, S, chunk):
         block = theta[a:a + chunk]
-        order = np.argsort(-block if best == "highest" else block, axis=1, kind="stable")
+        order = np.argsort(-block if best == "highest" else block, axis=1)
         np.put_along_axis(ranks[a:a + chunk], order, counting[: block.shape[0]], axis=1)
     return ranks
 
@@ -54,13 +54,13 @@ def rank_summary(ranks: np.ndarray, level: float, k: int) -> dict[str, np.ndarra
     out = {"rank_mean": np.empty(J), "rank_low": np.empty(J), "rank_high": np.empty(J),
            "p_best": np.empty(J), "p_top_k": np.empty(J)}
     for a in range(0, J, BLOCK):
-        r = ranks[:, a:a + BLOCK]
-        out["rank_mean"][a:a + BLOCK] = r.mean(axis=0, dtype=np.float64)
-        part = np.partition(r, [i_lo, i_hi], axis=0)
-        out["rank_low"][a:a + BLOCK] = part[i_lo]
-        out["rank_high"][a:a + BLOCK] = part[i_hi]
-        out["p_best"][a:a + BLOCK] = (r == 1).mean(axis=0)
-        out["p_top_k"][a:a + BLOCK] = (r <= k).mean(axis=0)
+        r = np.ascontiguousarray(ranks[:, a:a + BLOCK].T)  # (groups, draws): selection runs along memory
+        out["rank_mean"][a:a + BLOCK] = r.mean(axis=1, dtype=np.float64)
+        out["p_best"][a:a + BLOCK] = (r == 1).mean(axis=1)
+        out["p_top_k"][a:a + BLOCK] = (r <= k).mean(axis=1)
+        r.partition([i_lo, i_hi], axis=1)
+        out["rank_low"][a:a + BLOCK] = r[:, i_lo]
+        out["rank_high"][a:a + BLOCK] = r[:, i_hi]
     return out
 
 
@@ -236,9 +236,10 @@ def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", thr
         acc["theta_sd"][a:b] = th.std(axis=0, ddof=1)
         acc["theta_low"][a:b], acc["theta_high"][a:b] = interval(th, level)
         if v.within != "known":
-            sig = np.broadcast_to(v.sigma_block(a, b), th.shape)
+            sig = v.sigma_block(a, b)  # (S, b - a), or (S, 1) when shared
             acc["sigma_mean"][a:b] = sig.mean(axis=0)
-            acc["sigma_low"][a:b], acc["sigma_high"][a:b] = interval(sig, level)
+            lo, hi = interval(sig, level)
+            acc["sigma_low"][a:b], acc["sigma_high"][a:b] = lo, hi
         vj = v.v_block(a, b)
         w = np.broadcast_to(vj / (vj + tau2), th.shape)
         acc["shrink_weight"][a:b] = w.mean(axis=0)

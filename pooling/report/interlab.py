@@ -128,9 +128,11 @@ def z_scores(x, assigned: float | None = None, sigma_pt: float | None = None):
 # the view
 
 def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assigned: float | None = None,
-             sigma_pt: float | None = None) -> dict:
+             sigma_pt: float | None = None, table=None) -> dict:
     """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws;
-    the ANOVA comparators; and a per-lab table (bias with interval, P(|bias| > allowed), z, signal)."""
+    the ANOVA comparators; and a per-lab table (bias with interval, P(|bias| > allowed), z, signal).
+
+    `table` may be this fit's group_table at the same level and allowed bias, to reuse its bias columns."""
     from .groups import check_level
 
     check_level(level)
@@ -164,7 +166,11 @@ def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assign
     out["z_basis"] = basis
     J = v.J
     bm, lo, hi, pover = np.empty(J), np.empty(J), np.empty(J), np.empty(J)
-    for a in range(0, J, BLOCK):
+    if table is not None:
+        bm, lo, hi = (table[c].to_numpy() for c in ("bias_mean", "bias_low", "bias_high"))
+        if allowed_bias is not None:
+            pover = table["p_bias_over"].to_numpy()
+    for a in range(0, J if table is None else 0, BLOCK):
         bias = v.theta[:, a:a + BLOCK] - v.mu[:, None]
         bm[a:a + BLOCK] = bias.mean(axis=0)
         lo[a:a + BLOCK], hi[a:a + BLOCK] = interval(bias, level)

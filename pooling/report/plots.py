@@ -31,7 +31,7 @@ CHAINS = ["#1f6f78", "#c0672a", "#5a3d8a", "#6b8e23", "#b23a2a", "#3b6ea8", "#8c
 HEAT = LinearSegmentedColormap.from_list("pooling_heat", ["#fbfaf7", "#cfe4e1", "#5fa3a3", "#1f6f78", "#132f3a"])
 
 _RC = {
-    "text.parse_math": False, "svg.fonttype": "none", "svg.hashsalt": "pooling-report",
+    "text.parse_math": False, "svg.fonttype": "none",
     "font.family": "DejaVu Sans", "font.size": 9, "axes.edgecolor": "#9aa3ad", "axes.labelcolor": INK,
     "xtick.color": INK, "ytick.color": INK, "axes.titlesize": 10, "axes.titleweight": "bold",
     "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "grid.color": GRID,
@@ -45,12 +45,18 @@ def plain(label: str, width: int = 28) -> str:
     return label if len(label) <= width else label[: width - 1] + "…"
 
 
-def _svg(fig: Figure) -> str:
+def _svg(fig: Figure, name: str) -> str:
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, dpi=150)
+    # a fixed salt for the ids matplotlib derives by hashing, so the same draws give the same file
+    with plt.rc_context({"svg.hashsalt": "pooling"}):
+        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, dpi=150)
     plt.close(fig)
     text = buf.getvalue()
     text = text[text.index("<svg"):]  # drop the XML prolog and doctype: the SVG goes inline into HTML
+    text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, count=1, flags=re.S)  # RDF boilerplate
+    # every picture shares one HTML document, where an id must be unique: prefix them all
+    text = re.sub(r'(\sid=")([^"]+)"', rf'\1{name}-\2"', text)
+    text = re.sub(r'(url\(#|href="#)([^)"]+)', rf'\1{name}-\2', text)
     m = re.match(r'<svg([^>]*)width="([\d.]+)pt" height="([\d.]+)pt"', text)
     if m:
         w = float(m.group(2)) * 4 / 3
@@ -125,7 +131,7 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
             ax.legend(loc="upper left")
         if title:
             ax.set_title(title, loc="left")
-        return _svg(fig)
+        return _svg(fig, "shrinkage")
 
 
 def intervals(table, mu_mean: float, level: float, lower=None, upper=None, threshold=None) -> str:
@@ -160,7 +166,7 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
             if val is not None:
                 line(val, color=LIMIT, lw=1.3, ls=style, label=f"{name} {val:g}")
         _legend_top(ax)
-        return _svg(fig)
+        return _svg(fig, "intervals")
 
 
 def rank_heat(matrix: np.ndarray, labels, columns) -> str:
@@ -188,7 +194,7 @@ def rank_heat(matrix: np.ndarray, labels, columns) -> str:
         cb = fig.colorbar(im, ax=ax, fraction=0.03, pad=0.015, shrink=min(1.0, 4.0 / _height(rows)), anchor=(0, 1))
         cb.set_label("probability")
         cb.outline.set_visible(False)
-        return _svg(fig)
+        return _svg(fig, "rank_heat")
 
 
 def hyper_traces(named: dict[str, np.ndarray]) -> str:
@@ -223,7 +229,7 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
                 axes[row, 1].set_title("ranks by chain (flat = mixed)", loc="left")
         axes[-1, 0].set_xlabel("draw")
         axes[-1, 1].set_xlabel("rank bins over all chains")
-        return _svg(fig)
+        return _svg(fig, "hyper_traces")
 
 
 def predictive(spread: dict, sd: dict | None, labels) -> str:
@@ -251,4 +257,4 @@ def predictive(spread: dict, sd: dict | None, labels) -> str:
             ax.set_title("within-group sd", loc="left")
             ax.set_xlabel("groups with n ≥ 2, by replicated median")
             ax.legend(loc="upper left")
-        return _svg(fig)
+        return _svg(fig, "predictive")

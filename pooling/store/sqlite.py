@@ -18,7 +18,8 @@ Tables (format 1):
     batch_groups   per batch and group: n, mean (hi), mean_lo (its double-double low part), m2
     runs           one line per refit: when, folder, state fingerprint, the active batch ids, the
                    reference date and half-life, whether targets were met, a JSON summary (model,
-                   settings, mu/tau summaries, change settings) and the chains' final state (JSON)
+                   settings, mu/tau summaries, change settings) and, for the latest run only, the
+                   chains' final state (JSON)
     run_groups     per run and group: the results the next run's change report compares against
 """
 from __future__ import annotations
@@ -408,6 +409,9 @@ class SqliteStore(BatchStore):
                  run.half_life_days, int(run.targets_met), json.dumps(run.summary, allow_nan=False),
                  None if run.final_state is None else json.dumps(run.final_state, allow_nan=False)))
             rid = cur.lastrowid
+            # only the latest run's chain states are ever used (to start the next refit); older ones
+            # would make the file grow by chains x groups numbers every night
+            con.execute("UPDATE runs SET final_state = NULL WHERE id < ?", (rid,))
             con.executemany(
                 "INSERT INTO run_groups (run_id, position, label, n, raw_mean, post_mean, post_sd, q_lo, q_hi, "
                 "rank_mean, rank_sd, p_above, p_outside) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",

@@ -1,0 +1,109 @@
+"""One sweep of the kernel against the random-number floor, per group, at J = 10 .. 1e6.
+
+The floor is what a sweep of the `separate` structure must draw, drawn alone with the same
+Generator inside numba: one standard normal (theta_j) and one standard gamma (sigma_j^2, shape
+(nu + n_j) / 2) per group. Everything else in a sweep (the slice update of log tau with its O(J)
+density evaluations, the conditional means, the nu grid) is overhead against that floor.
+
+Target: a sweep within 2x the floor for J >= 1e3. The `shared` and `known` structures draw only
+one normal per group, so their floor is that normal; their rows are reported for information.
+
+The sweeps run exactly as in the sampler's warm-up: kernel.sweeps with zero-row out arrays (no
+draws stored, so J = 1e6 needs no memory for draws) in the sampler's chunks of sweeps per call.
+Times are thread CPU time, best of interleaved repeats (see common.py).
+"""
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from common import KernelChain, best, invented_estimates, invented_groups, load, problem_of
+from pooling import kernel
+from pooling.model import Model
+
+J_ALL = (10, 100, 1_000, 10_000, 100_000, 1_000_000)
+J_QUICK = (10, 1_000, 100_000)
+
+
+@njit(nogil=True, cache=True)
+def floor_separate(rng, n_sweeps, shape):
+    """What a `separate` sweep must draw: z ~ N(0, 1) and g ~ Gamma(shape_j, 1) for every group."""
+    acc = 0.0
+    for _ in range(n_sweeps):
+        for j in range(shape.shape[0]):
+            acc += rng.standard_normal() + rng.standard_gamma(shape[j])
+    return acc
+
+
+@njit(nogil=True, cache=True)
+def floor_normal(rng, n_sweeps, J):
+    """What a `shared` or `known` sweep must draw per group: z ~ N(0, 1)."""
+    acc = 0.0
+    for _ in range(n_sweeps):
+        for _j in range(J):
+            acc += rng.standard_normal()
+    return acc
+
+
+def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) -> dict:
+    p = chain.problem
+    J = p.J
+    # two warm-up windows: the slice width follows the mean jump of log tau, and the first window's
+    # jumps include the walk from the starting point, which would leave the width too wide
+    warm = int(np.clip(2_000_000 // J, 40, 500))
+    chain.run(warm // 2, adapt=True)
+    chain.state[kernel.JUMP_SUM] = chain.state[kernel.JUMP_COUNT] = 0.0
+    chain.run(warm // 2, adapt=True)
+    per_group = 50e-9  # rough cost of a sweep per group, only to size the runs
+    k = max(2, int(budget / (per_group * J)))
+    if structure == "separate":
+        nu = p.nu_grid[int(chain.state[kernel.NU_IDX])]
+        shape = 0.5 * (nu + p.n)
+        floor = lambda: floor_separate(chain.rng, k, shape)  # noqa: E731
+    else:
+        floor = lambda: floor_normal(chain.rng, k, J)  # noqa: E731
+    floor_separate(chain.rng, 1, np.ones(1))  # compile (or load from the cache) before timing
+    floor_normal(chain.rng, 1, 1)
+    t_sweep = t_floor = np.inf
+    for _ in range(repeats):  # interleaved, so a busy spell of the machine hits both alike
+        t_sweep = min(t_sweep, best(lambda: chain.run(k), 1))
+        t_floor = min(t_floor, best(floor, 1))
+    evals = chain.run(max(3, min(200, 20_000 // J)), store=True)["evals"]
+    return {
+        "J": J, "structure": structure, "sweeps_timed": k,
+        "sweep_ns_per_group": t_sweep / k / J * 1e9, "floor_ns_per_group": t_floor / k / J * 1e9,
+        "ratio": t_sweep / t_floor, "density_evals_per_sweep": float(np.mean(evals)),
+        "target": "<= 2" if structure == "separate" and J >= 1000 else None,
+        "met": bool(t_sweep / t_floor <= 2.0) if structure == "separate" and J >= 1000 else None,
+    }
+
+
+def run(quick: bool = False) -> dict:
+    budget, repeats = (0.04, 3) if quick else (0.15, 5)
+    rows = []
+    for J in J_QUICK if quick else J_ALL:
+        stats = invented_groups(J, tau=0.5, sigma=1.0, n_lo=2, n_hi=20, seed=J)
+        rows.append(_measure(KernelChain.start(problem_of(stats), seed=1), "separate", budget, repeats))
+        del stats
+    J = 10_000
+    shared = problem_of(invented_groups(J, 0.5, 1.0, 2, 20, seed=7), Model(within="shared"))
+    rows.append(_measure(KernelChain.start(shared, seed=2), "shared", budget, repeats))
+    known = problem_of(invented_estimates(J, 0.5, seed=8))
+    rows.append(_measure(KernelChain.start(known, seed=3), "known", budget, repeats))
+    return {"name": "sweep", "rows": rows, "load_1min": load()}
+
+
+def table(res: dict) -> list[str]:
+    out = ["sweep vs random-number floor (ns per group and sweep; thread CPU time, best of repeats)",
+           f"  {'J':>9} {'structure':>9} {'sweep':>8} {'floor':>8} {'ratio':>6} {'evals':>6}  target"]
+    for r in res["rows"]:
+        tgt = "" if r["target"] is None else f"{r['target']}  {'met' if r['met'] else 'MISSED'}"
+        out.append(f"  {r['J']:>9,} {r['structure']:>9} {r['sweep_ns_per_group']:8.1f} {r['floor_ns_per_group']:8.1f} "
+                   f"{r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f}  {tgt}")
+    return out
+
+
+if __name__ == "__main__":
+    import sys
+
+    print("\n".join(table(run(quick="--quick" in sys.argv))))

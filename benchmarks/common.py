@@ -1,0 +1,131 @@
+"""Helpers shared by the benchmarks: timers, invented data, and a direct call of the kernel.
+
+Timing on a shared machine. The machine these benchmarks were written on has 2 cores shared
+with other developers, so a single wall-clock reading can be inflated by a factor of two by
+someone else's job. Single-threaded measurements therefore use the thread's CPU time
+(CLOCK_THREAD_CPUTIME_ID), which time-slicing by the operating system does not inflate, and
+every figure is the best of several interleaved repeats: the least disturbed run is the one
+closest to what the code costs. Only the thread-scaling benchmark must use wall time.
+"""
+from __future__ import annotations
+
+import math
+import os
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from pooling import kernel
+from pooling.model import Model, build
+from pooling.stats import GroupStats
+
+
+def cpu_now() -> float:
+    return time.thread_time()
+
+
+def best(fn, repeats: int, clock=cpu_now) -> float:
+    """Smallest time of `repeats` calls of fn() (the least disturbed run)."""
+    out = math.inf
+    for _ in range(repeats):
+        t = clock()
+        fn()
+        out = min(out, clock() - t)
+    return out
+
+
+def load() -> float:
+    """One-minute load average: how busy the shared machine was while measuring."""
+    try:
+        return os.getloadavg()[0]
+    except OSError:
+        return float("nan")
+
+
+def labels(J: int) -> tuple[str, ...]:
+    return tuple(f"g{j:07d}" for j in range(J))
+
+
+def invented_groups(J: int, tau: float, sigma: float, n_lo: int, n_hi: int, seed: int) -> GroupStats:
+    """Invented raw-measurement statistics: theta_j ~ N(0, tau^2), n_j ~ U{n_lo..n_hi},
+    ybar_j ~ N(theta_j, sigma^2 / n_j), M2_j ~ sigma^2 chi2(n_j - 1). For benchmarks only."""
+    g = np.random.default_rng(seed)
+    n = g.integers(n_lo, n_hi + 1, J)
+    theta = g.normal(0.0, tau, J)
+    mean = theta + g.normal(0.0, 1.0, J) * sigma / np.sqrt(n)
+    m2 = sigma**2 * g.chisquare(np.maximum(n - 1, 1)) * (n > 1)
+    return GroupStats(labels(J), n, mean, m2)
+
+
+def invented_estimates(J: int, tau: float, seed: int) -> GroupStats:
+    """Invented estimates with standard errors (known structure): se_j ~ U(0.5, 1.5)."""
+    g = np.random.default_rng(seed)
+    se = g.uniform(0.5, 1.5, J)
+    est = g.normal(0.0, tau, J) + g.normal(0.0, 1.0, J) * se
+    return GroupStats(labels(J), np.zeros(J, dtype=np.int64), est, np.zeros(J), se=se, kind="known")
+
+
+@dataclass
+class KernelChain:
+    """One chain's state for calling kernel.sweeps directly, as the sampler does."""
+
+    problem: object
+    rng: np.random.Generator
+    state: np.ndarray
+    theta: np.ndarray
+    sigma2: np.ndarray
+
+    @classmethod
+    def start(cls, problem, seed: int) -> "KernelChain":
+        rng = np.random.default_rng(seed)
+        state = np.zeros(kernel.N_SCALARS)
+        state[kernel.ETA] = 0.0
+        state[kernel.MU] = float(np.mean(problem.ybar))
+        state[kernel.S2] = 1.0
+        state[kernel.NU_IDX] = len(problem.nu_grid) // 2
+        state[kernel.WIDTH] = 1.0
+        state[kernel.SIGMA2] = 1.0
+        return cls(problem, rng, state, problem.ybar.copy(), np.ones(problem.J))
+
+    def run(self, n_sweeps: int, adapt: bool = False, store: bool = False, chunk: int | None = None):
+        """n_sweeps sweeps in calls of `chunk` sweeps (the sampler's chunking by default).
+
+        With store=False the out arrays have zero rows, as in the sampler's warm-up: nothing is
+        kept, so that J = 1e6 needs no room for draws. With store=True returns a dict of draws.
+        """
+        p = self.problem
+        J = p.J
+        chunk = chunk or chunk_size(J)
+        if store:
+            wide = J if p.within_code == 0 else 1 if p.within_code == 1 else 0
+            out = [np.empty(n_sweeps), np.empty(n_sweeps), np.empty((n_sweeps, J)), np.empty((n_sweeps, wide)),
+                   np.empty(n_sweeps if p.within_code == 0 else 0), np.empty(n_sweeps if p.within_code == 0 else 0),
+                   np.empty(n_sweeps)]
+        else:
+            out = [np.empty(0), np.empty(0), np.empty((0, J)), np.empty((0, J)), np.empty(0), np.empty(0), np.empty(0)]
+        done = 0
+        while done < n_sweeps:
+            k = min(chunk, n_sweeps - done)
+            views = [a[done:done + k] for a in out] if store else out
+            kernel.sweeps(self.rng, k, adapt, p.within_code, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
+                          p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
+                          self.state, self.theta, self.sigma2, *views, 0)
+            done += k
+        if store:
+            return dict(zip(("mu", "tau", "theta", "sigma", "s", "nu", "evals"), out))
+        return None
+
+
+def chunk_size(J: int) -> int:
+    """The sampler's sweeps per kernel call (pooling.sampler._chunk_size), copied if it moves."""
+    try:
+        from pooling.sampler import _chunk_size
+
+        return int(_chunk_size(J))
+    except ImportError:
+        return int(np.clip(1_000_000 // max(J, 1), 1, 500))
+
+
+def problem_of(stats: GroupStats, model: Model | None = None):
+    return build(stats, model or Model(within="known" if stats.kind == "known" else "separate"))
