@@ -33,16 +33,26 @@ def __getattr__(name: str):
     raise AttributeError(f"module 'pooling' has no attribute '{name}'")
 
 
-def fit(stats, model=None, settings=None, progress: bool | None = None, init=None):
+def fit(stats, model=None, settings=None, progress: bool | None = None, init=None, *, summary=None,
+        options=None, keep=None):
     """Build the problem, sample it with run-length control, and return a labelled `Fit`.
 
     stats: a GroupStats; model: a Model (default Model()); settings: a Settings (default Settings()).
+    summary: None (automatic above pooling.summary.AUTO_GROUPS groups), True or False: summary mode,
+    which returns a pooling.summary.SummaryFit; options (pooling.report.ReportOptions) and keep (labels,
+    or a pooling.summary.SummaryOptions) are read in summary mode only.
     """
     from .model import build
     from .posterior import finish
     from .sampler import sample_raw
 
     problem = build(stats, model)
+    # --- summary mode (pooling.summary): running per-group summaries instead of every draw -------
+    from .summary import fit_summary, wants_summary
+
+    if wants_summary(problem, settings, summary):
+        return fit_summary(problem, settings, options, keep, progress=progress, init=init)
+    # --- end of summary mode -----------------------------------------------------------------
     raw = sample_raw(problem, settings, progress=progress, init=init)
     return finish(raw, problem)
 

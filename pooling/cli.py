@@ -76,6 +76,13 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
                        "1,234.5 or '.' for 1.234,5 (default: none)")
         p.add_argument("--decimal-comma", dest="decimal_comma", action="store_true",
                        help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
+        # --- many files, or a cluster (pooling.dask_stats; needs the extra pooling[dask]) -------
+        p.add_argument("--cluster", metavar="ADDRESS",
+                       help="compute the group statistics on the Dask scheduler at ADDRESS, e.g. tcp://10.0.0.5:8786 "
+                            "(the files must be readable at the same path by every worker). Without it, a DATA that "
+                            "is a folder or a quoted glob such as 'parts/*.parquet' is read with Dask on this "
+                            "machine. Needs: pip install pooling[dask]")
+        # --- end of many files ---------------------------------------------------------------
     g = p.add_argument_group("model")
     g.add_argument("--within", choices=["separate", "shared", "known"],
                    help="within-group variance structure (default: separate; known with --estimate)")
@@ -129,23 +136,38 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
         return k
 
     q = p.add_argument_group("report")
-    q.add_argument("--level", type=_level, default=0.95, help="credible interval level (default 0.95)")
+    q.add_argument("--level", type=_level, default=0.95, metavar="L", help="credible interval level (default 0.95)")
     q.add_argument("--top", type=_count, default=3, metavar="K", help="report P(among the K best) (default 3)")
     q.add_argument("--best", choices=["highest", "lowest"], default="highest",
                    help="which end of the scale is best for ranks (default highest)")
-    q.add_argument("--threshold", type=_finite, help="report P(theta_j above / below this value)")
-    q.add_argument("--lower-limit", dest="lower_limit", type=_finite, help="lower specification limit")
-    q.add_argument("--upper-limit", dest="upper_limit", type=_finite, help="upper specification limit")
-    q.add_argument("--allowed-bias", dest="allowed_bias", type=_positive,
+    q.add_argument("--threshold", type=_finite, metavar="X", help="report P(theta_j above / below this value)")
+    q.add_argument("--lower-limit", dest="lower_limit", type=_finite, metavar="X", help="lower specification limit")
+    q.add_argument("--upper-limit", dest="upper_limit", type=_finite, metavar="X", help="upper specification limit")
+    q.add_argument("--allowed-bias", dest="allowed_bias", type=_positive, metavar="D",
                    help="report P(|theta_j - mu| > this) for each group")
     q.add_argument("--compare", action="append", metavar="GROUPS",
                    help="groups for the head-to-head matrix P(theta_a > theta_b): repeat the option, or list "
                         "labels separated by commas")
-    q.add_argument("--assigned-value", dest="assigned_value", type=_finite,
+    q.add_argument("--assigned-value", dest="assigned_value", type=_finite, metavar="X",
                    help="x_pt for z-scores (default: ISO 13528 Algorithm A robust mean of the group means)")
-    q.add_argument("--sigma-pt", dest="sigma_pt", type=_positive,
+    q.add_argument("--sigma-pt", dest="sigma_pt", type=_positive, metavar="S",
                    help="sigma_pt for z-scores (default: ISO 13528 Algorithm A robust sd of the group means)")
     # --- end of reporter options -------------------------------------------------------------
+    # --- summary mode (pooling.summary): many groups in bounded memory -------------------------
+    m = p.add_argument_group("summary mode (many groups)")
+    m.add_argument("--summary", choices=["auto", "on", "off"], default="auto",
+                   help="keep running per-group summaries instead of every draw: auto (default) above 20,000 "
+                        "groups or when the draws would exceed 8 GiB; draws.nc then holds the hyperparameters and "
+                        "the kept groups only, groups.csv every group")
+    m.add_argument("--keep", action="append", metavar="GROUPS",
+                   help="in summary mode, keep every draw of these groups (repeat the option, or separate labels "
+                        "with commas); groups named by --compare are kept too")
+    m.add_argument("--keep-sample", dest="keep_sample", type=int, default=200, metavar="N",
+                   help="in summary mode, also keep every draw of N groups drawn by a fixed rule (default 200)")
+    m.add_argument("--summary-bins", dest="summary_bins", type=int, default=64, metavar="B",
+                   help="histogram bins per group for interval limits in summary mode (default 64; the limits' "
+                        "error bound is one bin)")
+    # --- end of summary mode -------------------------------------------------------------------
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -178,6 +200,15 @@ def _stats_from_args(args):
                            "(one row per group) or --estimate/--std-error COLs (estimates with standard errors)")
     read = {"encoding": args.encoding, "delimiter": args.delimiter, "thousands": args.thousands,
             "decimal": "," if args.decimal_comma else None}
+    # --- many files, or a cluster: the statistics step on Dask (pooling.dask_stats) ----------
+    from . import dask_stats
+
+    if getattr(args, "cluster", None) or dask_stats.looks_like_many(args.data):
+        if not modes["value"]:
+            raise E.InputError("bad options: a folder, a glob or --cluster reads measurements (--value COL); "
+                               "one row per group or estimates with standard errors come in one file")
+        return dask_stats.read_table_dask(args.data, args.group, args.value, scheduler=args.cluster, **read)
+    # --- end of many files ---------------------------------------------------------------------
     if modes["value"]:
         return S.read_table(args.data, args.group, args.value, **read)
     if modes["summary"]:
@@ -214,6 +245,9 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
     model = _model_from_args(args, stats)
     settings = _settings_from_args(args)
     check_target(Path(args.out), args.replace)  # refuse before sampling, not after
+    from .report import check_args as check_report_args
+
+    check_report_args(args, stats.labels)  # crossed limits, unknown --compare labels: before sampling too
     # --- hardening: extreme magnitudes -------------------------------------------------------------
     # The statistics and the sampler hold data of 1e-300 or 1e300 in a power-of-two unit, but the
     # reporter computes in the user's units, where a variance of such numbers under- or overflows
@@ -224,7 +258,8 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
             f"report can show; express them in other units (for example times {1 / stats.unit:.0e}) and fit again, "
             "or fit from Python with pooling.fit, whose draws keep these units")
     # --- end of hardening block ----------------------------------------------------------------------
-    fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init)
+    fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init,
+                 **_summary_args(args, stats, more))
     extra = None
     try:
         from .report import write_report_files  # the reporter's files, when that stage is installed
@@ -236,7 +271,7 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
         extra = _chain_extra(extra, more)
     out = write_run(fit, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
     if not args.quiet:
-        print_fit(fit, out)
+        _print_run(fit, out, print_fit)
     if after is not None:
         after(fit, out)
     if not fit.targets_met:
@@ -263,6 +298,37 @@ def cmd_demo(args, argv) -> int:
     if not args.quiet:
         print("demo: tensile strength (MPa) of test bars from 36 invented casting suppliers, 2 to 52 bars each")
     return run_fit(args, stats, argv)
+
+
+# --- summary mode (pooling.summary) -------------------------------------------------------------
+def _summary_args(args, stats, more) -> dict:
+    """pooling.fit's summary-mode arguments. A refit (`more` set) keeps every draw: its change report
+    compares the draws of every group."""
+    choice = getattr(args, "summary", None) or "auto"
+    if more is not None:
+        if choice == "on":
+            raise E.InputError("bad options: --summary on is not available with refit, whose change report "
+                               "compares every group's draws; use --summary off or auto")
+        return {"summary": False}
+    from .report import ReportOptions
+    from .report.assemble import split_compare
+    from .summary import SummaryOptions
+
+    keep = split_compare(list(getattr(args, "keep", None) or []) + list(getattr(args, "compare", None) or []),
+                         stats.labels)
+    sopts = SummaryOptions(keep=keep, sample=getattr(args, "keep_sample", 200),
+                           bins=getattr(args, "summary_bins", 64))
+    return {"summary": choice, "options": ReportOptions.from_args(args), "keep": sopts}
+
+
+def _print_run(fit, out, print_fit) -> None:
+    if getattr(fit, "summary_mode", False):
+        from .report.summary_view import print_summary
+
+        print_summary(fit, out)
+    else:
+        print_fit(fit, out)
+# --- end of summary mode ---------------------------------------------------------------------------
 
 
 def _chain_extra(first, second):

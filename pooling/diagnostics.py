@@ -29,13 +29,17 @@ localization: an improved R-hat for assessing convergence of MCMC", Bayesian Ana
 Edge cases, chosen to agree with arviz 0.23: fewer than 4 draws, or any NaN draw, gives NaN; +-inf
 draws are ranked like other values by the rank-based R-hat, bulk and tail ESS, and give NaN for
 the mean ESS and MCSE; R-hat needs 2 chains (NaN for one); when every split draw of a quantity
-is the same value its ESS is S (its mean is known exactly) and its R-hat is NaN (0/0). One
-deliberate difference: sequences that are each constant but differ from one another (stuck
-chains) give R-hat = inf, where arviz returns a large finite number made of rounding error.
+is the same value its ESS is S (its mean is known exactly) and its R-hat is NaN (0/0).
+Two known differences from arviz 0.23. Sequences that are each constant but differ from one
+another (stuck chains) give R-hat = inf; arviz returns NaN or a huge finite number, depending on
+the rounding error of its chain variances. And when (chains*draws - 1)*p is a whole number
+(possible only when chains*draws is odd), numpy's quantile is exactly a draw while arviz's own
+quantile can land an ulp below it, so the indicator, and the tail ESS, can differ there.
 
 Speed: parameters are handled in blocks of `_BLOCK` columns, so memory stays bounded, and nothing
 loops over single parameters in Python. One sort per parameter serves the ranks, the median and
-the quantiles; the folded draws are then ranked by merging the two sorted halves. The
+the quantiles; the folded draws are then ranked by merging the two sorted halves (a stable sort
+of two sorted runs). The tail ESS alone needs no sort: its quantiles come from np.quantile. The
 autocovariances of the first `_LAGS` lags are computed directly, which settles Geyer's sequence
 for most parameters of a well-mixing run; only the parameters whose sequence is still positive
 there get the full autocovariance by FFT.
@@ -108,7 +112,7 @@ def _quantile_sorted(s: np.ndarray, prob: float) -> np.ndarray:
 def _rhat(y: np.ndarray, const_seq: np.ndarray) -> np.ndarray:
     """R-hat of normal scores y (P, M, n); const_seq (P, M) marks sequences of equal values."""
     n = y.shape[-1]
-    # one pass for the sums: safe here, as y holds normal scores (|y| < 40) not raw draws
+    # one pass for the sums: safe here, as y holds normal scores (|y| < 9), not raw draws
     total = y.sum(axis=-1)
     mean = total / n
     var = (np.einsum("pmk,pmk->pm", y, y) - total * mean) / (n - 1)
@@ -197,7 +201,8 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
     out: dict[str, np.ndarray] = {}
     const_seq = _const_seq(xs)
 
-    if want & {"rhat", "bulk", "tail"}:
+    srt = None
+    if want & {"rhat", "bulk"}:
         flat = xs.reshape(p, size)
         # indices into the flattened block: faster than take/put_along_axis
         order = np.argsort(flat, axis=1)
@@ -228,17 +233,19 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
             out["rhat"] = r
         if "bulk" in want:
             out["bulk"] = _ess(z, const_seq)
-        if "tail" in want:
-            if n_draws % 2 == 0:
-                qs = [_quantile_sorted(srt, pr) for pr in (0.05, 0.95)]
-            else:
-                qs = list(np.quantile(xb.reshape(p, c * n_draws), [0.05, 0.95], axis=1))
-            tails = []
-            for q in qs:
-                ind = (xs <= q[:, None, None]).astype(np.float64)
-                tails.append(_ess(ind, _const_seq(ind)))
-            out["tail"] = np.fmin(tails[0], tails[1])
-            out["tail"][np.isnan(tails[0]) | np.isnan(tails[1])] = np.nan
+
+    if "tail" in want:
+        if srt is not None and n_draws % 2 == 0:  # then the split draws are all the draws
+            qs = [_quantile_sorted(srt, pr) for pr in (0.05, 0.95)]
+        else:
+            qs = list(np.quantile(xb.reshape(p, c * n_draws), [0.05, 0.95], axis=1))
+        tails = []
+        ind = np.empty(xs.shape)
+        for q in qs:
+            np.less_equal(xs, q[:, None, None], out=ind, casting="unsafe")  # 1.0 / 0.0
+            tails.append(_ess(ind, _const_seq(ind)))
+        out["tail"] = np.fmin(tails[0], tails[1])
+        out["tail"][np.isnan(tails[0]) | np.isnan(tails[1])] = np.nan
 
     if want & {"mean", "mcse"}:
         em = _ess(xs, const_seq)

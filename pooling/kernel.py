@@ -247,6 +247,113 @@ def block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, s
 
 
 @njit(nogil=True, cache=True)
+def nu_lgamma_table(n, nu_grid, table):
+    """table[k] = sum_j lgamma(nu_k / 2 + n_j / 2), by distinct group sizes when the sizes are whole numbers.
+
+    Group sizes repeat, so counting them first costs O(J) plus one lgamma per distinct size and
+    grid point; down-weighted (fractional) sizes fall back to one lgamma per group and grid point.
+    """
+    J = n.shape[0]
+    K = nu_grid.shape[0]
+    top = 0.0
+    whole = True
+    for j in range(J):
+        if n[j] != math.floor(n[j]):
+            whole = False
+        top = max(top, n[j])
+    if whole and top <= 10_000_000:
+        counts = np.zeros(int(top) + 1, dtype=np.int64)
+        for j in range(J):
+            counts[int(n[j])] += 1
+        for k in range(K):
+            acc = 0.0
+            for size in range(counts.shape[0]):
+                if counts[size] > 0:
+                    acc += counts[size] * math.lgamma(0.5 * (nu_grid[k] + size))
+            table[k] = acc
+    else:
+        for k in range(K):
+            acc = 0.0
+            for j in range(J):
+                acc += math.lgamma(0.5 * (nu_grid[k] + n[j]))
+            table[k] = acc
+
+
+@njit(nogil=True, cache=True)
+def collapsed_nu_loglik(k, J, nu_grid, nu_logprior, table, s2, n, ss):
+    """log p(nu_k | s^2, theta, y) + const with every sigma_j^2 integrated out:
+
+        sum_j [ h log(h s^2) - lgamma(h) + lgamma(h + n_j/2) - (h + n_j/2) log(h s^2 + SS_j/2) ],  h = nu_k / 2,
+
+    SS_j = M2_j + n_j (ybar_j - theta_j)^2: the marginal of a group's data under a normal
+    likelihood and a Scaled-Inv-chi2(nu, s^2) variance.
+    """
+    h = 0.5 * nu_grid[k]
+    hs2 = h * s2
+    acc = 0.0
+    for j in range(n.shape[0]):
+        acc += (h + 0.5 * n[j]) * math.log(hs2 + 0.5 * ss[j])
+    return nu_logprior[k] + J * (h * math.log(hs2) - math.lgamma(h)) + table[k] - acc
+
+
+@njit(nogil=True, cache=True)
+def collapsed_nu_step(rng, n, ybar, m2, nu_grid, nu_logprior, table, state, theta, ss):
+    """Metropolis move of nu to a neighbouring grid point, with the sigma_j^2 integrated out.
+
+    With many groups the sigma_j^2 pin nu down, so the draw of nu given them barely moves; this
+    move targets p(nu | s^2, theta, y) instead. It must be followed at once by the draw of every
+    sigma_j^2 given the new nu (block_b does that first), which makes the pair an exact
+    partially collapsed update of (nu, sigma^2). The proposal (k - 1 or k + 1, each with
+    probability 1/2; off the grid is rejected) is symmetric.
+    """
+    J = n.shape[0]
+    K = nu_grid.shape[0]
+    k = int(state[NU_IDX])
+    k_new = k - 1 if rng.random() < 0.5 else k + 1
+    if k_new < 0 or k_new >= K:
+        return
+    for j in range(J):
+        r = ybar[j] - theta[j]
+        ss[j] = m2[j] + n[j] * r * r
+    s2 = state[S2]
+    diff = (collapsed_nu_loglik(k_new, J, nu_grid, nu_logprior, table, s2, n, ss)
+            - collapsed_nu_loglik(k, J, nu_grid, nu_logprior, table, s2, n, ss))
+    if math.log(rng.random()) < diff:
+        state[NU_IDX] = k_new
+
+
+@njit(nogil=True, cache=True)
+def scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2):
+    """Rescale s^2 and every sigma_j^2 by one factor c drawn from its conditional (a group move).
+
+    Under (s^2, sigma_j^2) -> (c s^2, c sigma_j^2), with the Jacobian c^(J+1) and the invariant
+    measure dc/c (Liu and Sabatti 2000, JASA 95), the density of c is
+        c^(-N/2 - 1) exp(-A / c) * c^a exp(-b c s^2),   A = sum_j SS_j / (2 sigma_j^2),
+    an inverse gamma(N/2, A) for p(s^2) ∝ 1/s^2 (a = b = 0), drawn exactly; for a gamma(a, b) prior
+    the inverse gamma is an independence proposal, accepted with min(1, w(c) / w(1)),
+    w(c) = c^a exp(-b c s^2). It moves the common scale that the Gibbs draws shift only slowly.
+    """
+    J = n.shape[0]
+    A = 0.0
+    n_tot = 0.0
+    for j in range(J):
+        r = ybar[j] - theta[j]
+        A += (m2[j] + n[j] * r * r) / (2.0 * sigma2[j])
+        n_tot += n[j]
+    if A <= 0.0:
+        return
+    c = A / rng.standard_gamma(0.5 * n_tot)
+    if s2_shape > 0.0 or s2_rate > 0.0:
+        s2 = state[S2]
+        log_w = s2_shape * math.log(c) - s2_rate * s2 * (c - 1.0)
+        if math.log(rng.random()) >= log_w:
+            return
+    state[S2] *= c
+    for j in range(J):
+        sigma2[j] *= c
+
+
+@njit(nogil=True, cache=True)
 def sweeps(rng, n_sweeps, adapt, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
            s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2,
            out_mu, out_tau, out_theta, out_sigma, out_s, out_nu, out_evals, offset):
@@ -261,10 +368,20 @@ def sweeps(rng, n_sweeps, adapt, within, n, ybar, m2, v_known, mu_kind, mu_loc, 
     mv = np.empty(2)
     lp = np.empty(nu_grid.shape[0])
     store = out_mu.shape[0] > 0
+    table = np.empty(nu_grid.shape[0])
+    ss = np.empty(J if within == 0 else 0)
+    if within == 0 and nu_grid.shape[0] > 1:
+        nu_lgamma_table(n, nu_grid, table)
     for it in range(n_sweeps):
         fill_v(within, n, v_known, state, sigma2, v)
         ev = block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv)
-        block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
+        if within == 0:
+            if nu_grid.shape[0] > 1:
+                collapsed_nu_step(rng, n, ybar, m2, nu_grid, nu_logprior, table, state, theta, ss)
+            block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
+            scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2)
+        else:
+            block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
         if store:
             row = offset + it
             out_mu[row] = state[MU]

@@ -254,7 +254,7 @@ def _check_statistics(stats: GroupStats):
         ok = np.isfinite(arr) if ok is None else ok & np.isfinite(arr)
         if not np.all(ok):
             j = int(np.argmin(ok))
-            _refuse(f"bad model: group {_show(stats.labels[j])} has {name} = {arr[j]!r}; expected {what}")
+            _refuse(f"bad model: group {_show(stats.labels[j])} has {name} = {float(arr[j]):g}; expected {what}")
 
 
 def _check_identifiable(stats: GroupStats, model: Model):

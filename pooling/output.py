@@ -97,6 +97,9 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=parent))
     try:
         fill(tmp)
+        mask = os.umask(0)  # mkdtemp makes the folder private (0700); a run folder gets the usual mode
+        os.umask(mask)
+        os.chmod(tmp, 0o777 & ~mask)
         for f in tmp.iterdir():  # the data must be on disk before the rename makes the folder visible
             with open(f, "rb") as fh:
                 os.fsync(fh.fileno())

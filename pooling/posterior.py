@@ -27,9 +27,13 @@ QUANTILES = (0.025, 0.25, 0.5, 0.75, 0.975)
 
 
 def _checked(raw: RawDraws) -> dict[str, np.ndarray]:
+    """What run-length control checks: mu, tau, every theta_j and sigma_j, and s and nu (separate)."""
     named = {"mu": raw.mu, "tau": raw.tau, "theta": raw.theta}
     if raw.sigma is not None:
         named["sigma"] = raw.sigma
+    if raw.s is not None:
+        named["s"] = raw.s
+        named["nu"] = raw.nu
     return named
 
 
@@ -42,14 +46,19 @@ def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
     misses, worst = [], {}
     for name, x in _checked(raw).items():  # one ranking pass per variable serves both views
         rhat, bulk, tail = (np.atleast_1d(np.asarray(v, dtype=float)) for v in dg.rhat_ess(x))
-        bad = ~(rhat < targets.rhat_max) | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min)
+        flat_x = x.reshape(x.shape[0] * x.shape[1], -1)
+        # a quantity that never moved (nu pinned at one grid point) has nothing left to converge
+        constant = (flat_x.max(axis=0) == flat_x.min(axis=0)).reshape(rhat.shape)
+        bad = ~constant & (~(rhat < targets.rhat_max) | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min))
         rest = x.shape[2:]
         for flat in np.flatnonzero(bad.ravel()):
             idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
             misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
                            "ess_bulk": float(bulk.ravel()[flat]), "ess_tail": float(tail.ravel()[flat])})
-        worst[name] = {"rhat_max": float(np.max(rhat)), "ess_bulk_min": float(np.min(bulk)),
-                       "ess_tail_min": float(np.min(tail))}
+        live = ~constant
+        worst[name] = {"rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),
+                       "ess_bulk_min": float(np.min(bulk[live])) if live.any() else float("nan"),
+                       "ess_tail_min": float(np.min(tail[live])) if live.any() else float("nan")}
     low = min((min(w["ess_bulk_min"], w["ess_tail_min"]) for w in worst.values()
                if np.isfinite(w["ess_bulk_min"]) and np.isfinite(w["ess_tail_min"])), default=np.inf)
     growth = float(np.clip(1.15 * targets.ess_min / low, 1.25, 4.0)) if low > 0 else 4.0

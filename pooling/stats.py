@@ -220,6 +220,20 @@ def _where(source: str) -> str:
     return f"'{source}'" if source != "<frame>" else "the data frame"
 
 
+def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Series:
+    """The column as pandas strings; a frame cell holding a lone surrogate (not encodable as UTF-8,
+    so not storable in netCDF or JSON) is reported instead of crashing the conversion."""
+    try:
+        return raw.astype("string")
+    except UnicodeEncodeError:
+        for i, cell in enumerate(raw.astype(object)):
+            if isinstance(cell, str) and re.search("[\ud800-\udfff]", cell):
+                ch = re.search("[\ud800-\udfff]", cell).group()
+                raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                                 f"expected text, found the unpaired surrogate U+{ord(ch):04X}") from None
+        raise
+
+
 def _number_hint(cell) -> str:
     """A hint for numbers written with a comma, which plain parsing refuses."""
     text = str(cell).strip()
@@ -245,7 +259,7 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> 
         return vals
     if raw.dtype.kind == "b":
         raise InputError(f"bad input in {_where(source)}, column '{column}': expected numbers, found true/false values")
-    as_text = raw.astype("string")
+    as_text = _as_text(raw, source, column, row_offset)
     vals = pd.to_numeric(as_text.str.strip(), errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
     bad = ~np.isfinite(vals)
     if bad.any():
@@ -275,7 +289,7 @@ _BAD_LABEL_CHARS = "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\ud800-\udfff]"
 def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, strip: bool = False) -> pd.Series:
     missing = raw.isna().to_numpy().copy()
     if raw.dtype.kind not in "fiub":
-        missing |= (raw.astype("string").str.strip() == "").fillna(True).to_numpy(dtype=bool)
+        missing |= (_as_text(raw, source, column, row_offset).str.strip() == "").fillna(True).to_numpy(dtype=bool)
     if missing.any():
         i = int(np.argmax(missing))
         raise InputError(
@@ -285,15 +299,17 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, str
     labels = raw.astype(str)
     if strip:  # blanks around a label in a CSV are formatting: "A " and "A" are one group
         labels = labels.str.strip()
-    if labels.dtype == object or pd.api.types.is_string_dtype(labels):
-        bad = labels.astype(object).str.contains(_BAD_LABEL_CHARS, regex=True).to_numpy(dtype=bool)
-        if bad.any():
-            i = int(np.argmax(bad))
-            ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()
-            raise InputError(
-                f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a group label "
-                f"of text, found the control character U+{ord(ch):04X} in it (tab and newline are allowed)"
-            )
+    # Arrow-backed strings are valid UTF-8 already (no surrogates), and its regex scan is fast
+    arrow = getattr(labels.dtype, "storage", None) == "pyarrow"
+    pattern = _BAD_LABEL_CHARS.replace("\ud800-\udfff", "") if arrow else _BAD_LABEL_CHARS
+    bad = labels.str.contains(pattern, regex=True).to_numpy(dtype=bool, na_value=False)
+    if bad.any():
+        i = int(np.argmax(bad))
+        ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()
+        raise InputError(
+            f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a group label "
+            f"of text, found the control character U+{ord(ch):04X} in it (tab and newline are allowed)"
+        )
     return labels
 
 

@@ -1,8 +1,9 @@
 """Summary mode's kernel: the sweeps of kernel.py, with running per-group summaries instead of stored draws.
 
-One sweep is exactly kernel.sweeps' sweep (fill_v, block_a, block_b, in that order, on the same
-Generator), so a chain run here consumes its random stream draw for draw like a full-draw chain
-with the same seed: the draws are the same, only what is kept of them differs.
+Each draw is one call of kernel.sweeps itself (n_sweeps = 1) on the chain's Generator, so the sweep's
+mathematics exist once, in kernel.py, whatever changes there, and a chain run here consumes its random
+stream draw for draw like a full-draw chain with the same seed: the draws are the same, only what is
+kept of them differs.
 
 What each draw updates, per chain and per group j (internal units unless said otherwise):
 
@@ -12,8 +13,9 @@ What each draw updates, per chain and per group j (internal units unless said ot
 * counters of theta_j > threshold, theta_j < threshold, |theta_j - mu| > allowed bias (user units,
   the same arithmetic as the reporter's), membership of the top k and being the best;
 * a histogram of x_q,j on a per-group grid fixed after warm-up, for theta_j (x = theta_j),
-  sigma_j (x = log sigma_j), w_j (x = logit w_j = log v_j - log tau^2) and f_j (x = logit f_j), with
-  an underflow and an overflow bin and the smallest and largest x seen;
+  sigma_j (x = log sigma_j), w_j (x = logit w_j = log v_j - log tau^2), f_j (x = logit f_j) and,
+  when asked, the bias theta_j - mu, with an underflow and an overflow bin and the smallest and
+  largest x seen;
 * the mid-rank of j in a bucket count of all groups (see below).
 
 Ranks. Top k: a size-k min-heap scan over all J values (one comparison per group unless the
@@ -30,11 +32,11 @@ import math
 import numpy as np
 from numba import njit
 
-from .kernel import ETA, MU, NU_IDX, S2, SIGMA2, block_a, block_b, fill_v
+from .kernel import ETA, MU, NU_IDX, S2, SIGMA2, sweeps
 
 # summarised quantities: rows of the pilot arrays and (through rowmap) of the histograms
-Q_THETA, Q_LOGSIGMA, Q_LOGITW, Q_LOGITF = range(4)
-N_Q = 4
+Q_THETA, Q_LOGSIGMA, Q_LOGITW, Q_LOGITF, Q_BIAS = range(5)
+N_Q = 5
 # running means, rows of `run`
 R_THETA, R_THETA_M2, R_SIGMA, R_SHRINK, R_OUT, R_RANK, R_RANK_ERR = range(7)
 N_R = 7
@@ -45,9 +47,9 @@ N_H = 5
 (O_CENTER, O_SCALE, O_SIGN, O_THR, O_LOWER, O_UPPER, O_BIAS, O_HAS_THR, O_HAS_LOWER, O_HAS_UPPER, O_HAS_BIAS,
  O_LIMITS) = range(12)
 N_O = 12
-# columns of the hyperparameter draws
-Y_MU, Y_TAU, Y_S, Y_NU, Y_SIGMA = range(5)
-N_Y = 5
+# columns of the hyperparameter draws; Y_SR is the typical within-group sd sqrt(mean_j sigma_j^2)
+Y_MU, Y_TAU, Y_S, Y_NU, Y_SIGMA, Y_SR = range(6)
+N_Y = 6
 # the smallest probability kept apart from 0 on the logit scale of f (ndtr underflows below ~1e-300 anyway)
 TINY = 1e-300
 _SQRT1_2 = 0.7071067811865476
@@ -61,23 +63,19 @@ def phi(x):
 
 @njit(nogil=True, cache=True)
 def outside(th_u, sg_u, opt):
-    """(f, 1 - f) for f = P(y outside [L, U] | theta, sigma), y ~ N(theta, sigma^2); each with its own
-    relative precision (1 - f = Phi((U - theta)/sigma) - Phi((L - theta)/sigma) is not formed as 1 - f)."""
+    """(f, 1 - f) for f = P(y outside [L, U] | theta, sigma) = Phi((L - theta)/sigma) + Phi((theta - U)/sigma),
+    y ~ N(theta, sigma^2), each with its own relative precision: when f >= 1/2 the inside probability
+    Phi((U - theta)/sigma) - Phi((L - theta)/sigma) is computed, not formed as 1 - f."""
     has_l = opt[O_HAS_LOWER] > 0.0
     has_u = opt[O_HAS_UPPER] > 0.0
     a = (opt[O_LOWER] - th_u) / sg_u
     b = (th_u - opt[O_UPPER]) / sg_u
-    f = 0.0
-    if has_l:
-        f += phi(a)
-    if has_u:
-        f += phi(b)
-    if has_l and has_u:
-        g = phi(-b) - phi(a)
-    elif has_l:
-        g = phi(-a)
-    else:
-        g = phi(-b)
+    pa = phi(a) if has_l else 0.0
+    pb = phi(b) if has_u else 0.0
+    f = pa + pb
+    if f < 0.5:
+        return f, 1.0 - f  # 1 - f >= 1/2 carries full relative precision
+    g = (phi(-b) if has_u else 1.0) - pa
     return f, g
 
 
@@ -88,32 +86,31 @@ def logit_pair(f, g):
 
 
 @njit(nogil=True, cache=True)
-def _one_sweep(rng, adapt, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-               s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, v, mv, lp):
-    """kernel.sweeps' sweep, step for step (the same random stream)."""
-    fill_v(within, n, v_known, state, sigma2, v)
-    ev = block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv)
-    block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
-    return ev
+def _buffers(within, J, rows):
+    """Output rows for kernel.sweeps, shaped as the sampler's (rows = 0: nothing is stored)."""
+    sig = J if within == 0 else 1 if within == 1 else 0
+    hyp = rows if within == 0 else 0
+    return (np.empty(rows), np.empty(rows), np.empty((rows, J)), np.empty((rows, sig)), np.empty(hyp),
+            np.empty(hyp), np.empty(rows))
 
 
 @njit(nogil=True, cache=True)
 def pilot_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                 s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, logn, opt, count, mean, msq):
+                 s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, logn, opt, bias_on, count, mean, msq):
     """Warm-up sweeps (the slice width still adapting) that keep, per group, the Welford mean and M2 of
     x_q for every summarised quantity q; the histogram grids are placed from them after warm-up.
 
-    count[0] is the number of sweeps accumulated so far; mean and msq are (N_Q, J).
+    count[0] is the number of sweeps accumulated so far; mean and msq are (N_Q, J); bias_on: keep
+    the bias row too.
     """
     J = ybar.shape[0]
-    v = np.empty(J)
-    mv = np.empty(2)
-    lp = np.empty(nu_grid.shape[0])
+    o_mu, o_tau, o_theta, o_sigma, o_s, o_nu, o_ev = _buffers(within, J, 0)
     center, scale = opt[O_CENTER], opt[O_SCALE]
     limits = opt[O_LIMITS] > 0.0
     for it in range(n_sweeps):
-        _one_sweep(rng, True, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                   s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, v, mv, lp)
+        sweeps(rng, 1, True, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
+               s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
+               o_nu, o_ev, 0)
         count[0] += 1.0
         inv = 1.0 / count[0]
         eta = state[ETA]
@@ -122,6 +119,11 @@ def pilot_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, m
             d = x - mean[Q_THETA, j]
             mean[Q_THETA, j] += d * inv
             msq[Q_THETA, j] += d * (x - mean[Q_THETA, j])
+            if bias_on:
+                x = theta[j] - state[MU]
+                d = x - mean[Q_BIAS, j]
+                mean[Q_BIAS, j] += d * inv
+                msq[Q_BIAS, j] += d * (x - mean[Q_BIAS, j])
             if within == 0:
                 ls = math.log(sigma2[j])
                 x = 0.5 * ls
@@ -141,21 +143,21 @@ def pilot_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, m
                 msq[Q_LOGITF, j] += d * (x - mean[Q_LOGITF, j])
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, inline="always")
 def _hist_add(hist, ext, glo, ginv, row, j, x, B):
-    """Count x into group j's grid of row `row`: bin 0 below, 1..B inside, B + 1 above; track min and max."""
+    """Count x into group j's grid of row `row`: bin 0 below, 1..B inside, B + 1 above. The smallest
+    value below the grid and the largest above it bound the outer bins (inner bins need no such bound)."""
     u = (x - glo[row, j]) * ginv[row, j]
     if u < 0.0:
-        b = 0
+        hist[row, j, 0] += 1
+        if x < ext[row, j, 0]:
+            ext[row, j, 0] = x
     elif u >= B:
-        b = B + 1
+        hist[row, j, B + 1] += 1
+        if x > ext[row, j, 1]:
+            ext[row, j, 1] = x
     else:
-        b = int(u) + 1
-    hist[row, j, b] += 1
-    if x < ext[row, j, 0]:
-        ext[row, j, 0] = x
-    if x > ext[row, j, 1]:
-        ext[row, j, 1] = x
+        hist[row, j, int(u) + 1] += 1
 
 
 @njit(nogil=True, cache=True)
@@ -200,21 +202,20 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
     1 / bin width; hist (rows, J, B + 2); ext (rows, J, 2) min and max; bucket = (lo, 1 / width) of
     the rank buckets, bcnt (G,) and bidx (J,) scratch; kept (m,) group indices whose draws are stored
     row by row into out_theta, out_sigma (separate) and out_rank (m,); out_hyper (rows, N_Y) holds
-    mu, tau, s, nu, shared sigma; out_evals the slice evaluations.
+    mu, tau, s, nu, shared sigma and sqrt(mean_j sigma_j^2); out_evals the slice evaluations.
     """
     J = ybar.shape[0]
     B = hist.shape[2] - 2
     G = bcnt.shape[0]
     m = kept.shape[0]
-    v = np.empty(J)
-    mv = np.empty(2)
-    lp = np.empty(nu_grid.shape[0])
+    # one stored row, so that kernel.sweeps reports its slice evaluations
+    o_mu, o_tau, o_theta, o_sigma, o_s, o_nu, o_ev = _buffers(within, J, 1)
     center, scale, sign = opt[O_CENTER], opt[O_SCALE], opt[O_SIGN]
     has_thr = opt[O_HAS_THR] > 0.0
     has_bias = opt[O_HAS_BIAS] > 0.0
     limits = opt[O_LIMITS] > 0.0
     thr, allowed = opt[O_THR], opt[O_BIAS]
-    r_sig, r_w, r_f = rowmap[Q_LOGSIGMA], rowmap[Q_LOGITW], rowmap[Q_LOGITF]
+    r_sig, r_w, r_f, r_bias = rowmap[Q_LOGSIGMA], rowmap[Q_LOGITW], rowmap[Q_LOGITF], rowmap[Q_BIAS]
     k = min(k_top, J)
     hx = np.empty(k)
     hi = np.empty(k, dtype=np.int64)
@@ -227,8 +228,10 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
     cell = np.empty(L, dtype=np.int64)
     poscnt = np.empty(m + 1, dtype=np.int64)
     for it in range(n_sweeps):
-        ev = _one_sweep(rng, False, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                        s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, v, mv, lp)
+        sweeps(rng, 1, False, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
+               s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
+               o_nu, o_ev, 0)
+        ev = o_ev[0]
         count[0] += 1.0
         inv = 1.0 / count[0]
         eta = state[ETA]
@@ -267,12 +270,15 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
         best_x = -np.inf
         best_j = 0
         s2_shared = state[SIGMA2]
+        s2_sum = 0.0
         for j in range(J):
             th = theta[j]
             d = th - run[R_THETA, j]
             run[R_THETA, j] += d * inv
             run[R_THETA_M2, j] += d * (th - run[R_THETA, j])
             _hist_add(hist, ext, glo, ginv, 0, j, th, B)
+            if r_bias >= 0:
+                _hist_add(hist, ext, glo, ginv, r_bias, j, th - state[MU], B)
             if within == 0:
                 s2j = sigma2[j]
                 vj = s2j / n[j]
@@ -285,6 +291,7 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
             w = vj / (vj + tau2)
             run[R_SHRINK, j] += (w - run[R_SHRINK, j]) * inv
             if within == 0:
+                s2_sum += s2j
                 ls = math.log(s2j)
                 sg = math.sqrt(s2j)
                 run[R_SIGMA, j] += (sg - run[R_SIGMA, j]) * inv
@@ -340,6 +347,12 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
                     while pos < m and ss[pos] < x:
                         pos += 1
                 poscnt[pos] += 1
+        if within == 0:
+            out_hyper[row, Y_SR] = math.sqrt(s2_sum / J)
+        elif within == 1:
+            out_hyper[row, Y_SR] = math.sqrt(s2_shared)
+        else:
+            out_hyper[row, Y_SR] = 0.0
         for t in range(size):
             hits[H_TOP, hi[t]] += 1
         hits[H_BEST, best_j] += 1

@@ -20,12 +20,16 @@ follow p(tau | v, y), computed on a fine grid from independent formulas.
 Significance: every test uses a fixed seed and rejects at p < 1e-3. Power: every test also runs
 the same statistic against a deliberately wrong closed form (an error a developer could make)
 and asserts that it IS rejected (p < 1e-3) -- so the test is shown to fail when the formula is
-wrong. Besides that, we ran these checks
-locally against mutated copies of pooling/kernel.py: theta's two weights swapped; nu + n_j - 1
-degrees of freedom for sigma_j^2; N - J for the shared sigma^2; the "+ a" dropped from the shape
-of s^2; lgamma(nu) for lgamma(nu/2) in the nu weights; the normal prior on mu dropped (from mu's
-draw and from p(tau | v, y)); the Jacobian "eta +" dropped from log p(log tau); a half-Cauchy
-term in tau instead of tau^2. Each mutant failed the test aimed at it with p < 1e-10.
+wrong. Besides that, we ran these checks locally against mutated copies of pooling/kernel.py:
+theta's two weights swapped; nu + n_j - 1 degrees of freedom for sigma_j^2; N - J for the shared
+sigma^2; the "+ a" dropped from the shape of s^2; lgamma(nu) for lgamma(nu/2) in the nu weights;
+the normal prior on mu dropped (from mu's draw and from p(tau | v, y)); the Jacobian "eta +"
+dropped from log p(log tau); a half-Cauchy term in tau instead of tau^2. Each mutant failed the
+test aimed at it with p < 1e-10.
+
+Book references: BDA3 is Gelman, Carlin, Stern, Dunson, Vehtari and Rubin, Bayesian Data
+Analysis, 3rd ed. (2013); its section and equation numbers, and the other citations here, are
+from memory.
 
 Test inputs: the group statistics are only inputs to a conditional; the references are the
 closed forms. We use the eight-schools estimates and standard errors (Rubin 1981, J. Educational

@@ -90,7 +90,8 @@ def exact_summaries(y, points=40_001, tau_max=150.0):
 
     p(tau | y) ∝ halfcauchy(tau; 5) p(y | tau) (BDA3 sec. 5.4, with the normal prior on mu);
     given tau, mu and theta are normal (BDA3 eqs. 5.17, 5.20), so their marginals are mixtures
-    of normals over the tau grid. The mass beyond tau_max is below 1e-6.
+    of normals over the tau grid. (BDA3: Gelman et al., Bayesian Data Analysis, 3rd ed.; section
+    and equation numbers from memory.) The mass beyond tau_max is below 1e-6.
     """
     tau = np.linspace(0.0, tau_max, points)
     lp = log_marginal(tau, y) + stats.halfcauchy.logpdf(tau, scale=TAU_SCALE)

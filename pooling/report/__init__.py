@@ -14,13 +14,13 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from .assemble import ReportOptions, Results, compute
+from .assemble import ReportOptions, Results, check_args, compute
 from .export import neutralise, records, safe_frame, write_csv
 from .groups import COLUMNS, PREDICTION_SEED, group_table, outside_fraction, pairwise, rank_draws, rank_probabilities
 from .interlab import algorithm_a, interlab, oneway_anova, z_scores, z_signal
 
 __all__ = [
-    "ReportOptions", "Results", "compute", "group_table", "rank_probabilities", "pairwise", "interlab",
+    "ReportOptions", "Results", "check_args", "compute", "group_table", "rank_probabilities", "pairwise", "interlab",
     "outside_fraction", "rank_draws", "oneway_anova", "algorithm_a", "z_scores", "z_signal", "neutralise",
     "write_report", "write_report_files", "render_html", "COLUMNS", "PREDICTION_SEED",
 ]
@@ -42,7 +42,8 @@ def summary_extra(res: Results) -> dict:
         "groups_table": records(res.table),
         "interlab": lab,
         "new_group_outside": res.new_group,
-        "predictive_checks": {"spread_of_means": {k: res.spread[k] for k in ("observed", "p_value", "draws")},
+        "predictive_checks": {"spread_of_means": None if res.spread is None else
+                              {k: res.spread[k] for k in ("observed", "p_value", "draws")},
                               "within_sd": None if res.sd is None else
                               {"groups_checked": int(len(res.sd["groups"])), "outside_interval": res.sd["outside"],
                                "extreme_p": res.sd["extreme"], "level": res.sd["level"]}},
@@ -54,9 +55,16 @@ def summary_extra(res: Results) -> dict:
 
 def write_report(fit, folder, options: ReportOptions | None = None) -> Results:
     """Write groups.csv and report.html into `folder` (created if absent) and, when the folder holds a
-    summary.json, add the reporter's keys to it. Returns the computed results."""
+    summary.json, add the reporter's keys to it. Returns the computed results.
+
+    Needs a `Fit` (the page states the model, priors, data fingerprint and diagnostics of the run);
+    the table functions also accept a re-opened draws.nc."""
     from ..output import _clean, write_json
 
+    if getattr(fit, "summary_mode", False):  # many groups: pooling.summary's results (report/summary_view.py)
+        from .summary_view import write_summary_report
+
+        return write_summary_report(fit, folder, options)
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     res = compute(fit, options)

@@ -148,3 +148,12 @@ def make_figures(res: Results) -> dict[str, str]:
     names = ["mu", "tau"] + [x for x in ("s", "nu") if x in post] + (["sigma"] if v.within == "shared" else [])
     figs["traces"] = plots.hyper_traces({x: post[x].values for x in names})
     return figs
+
+
+def check_args(args, labels) -> None:
+    """The checks of the report options that need the data's labels, for the command line to run
+    before sampling (so a typo costs nothing): crossed limits and unknown --compare groups."""
+    from .groups import resolve_groups
+
+    o = ReportOptions.from_args(args)  # numbers and the limits' order
+    resolve_groups(tuple(labels), split_compare(o.compare, tuple(labels)))

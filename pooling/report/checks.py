@@ -24,8 +24,10 @@ def _thin(S: int) -> np.ndarray:
     return np.unique(np.linspace(0, S - 1, min(S, MAX_DRAWS)).round().astype(np.int64))
 
 
-def spread_check(v: View, seed: int = PREDICTION_SEED) -> dict:
-    """T = sd_j(raw mean_j) against its replicates from new groups (see the module notes)."""
+def spread_check(v: View, seed: int = PREDICTION_SEED) -> dict | None:
+    """T = sd_j(raw mean_j) against its replicates from new groups (see the module notes); None for one group."""
+    if v.J < 2:
+        return None
     rng = np.random.default_rng([seed, 1])
     idx = _thin(v.S)
     m = len(idx)

@@ -211,6 +211,8 @@ def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", thr
     check_level(level)
     check_limits(lower, upper)
     k = check_k(k, v.J)
+    if allowed_bias is not None and not allowed_bias > 0:
+        raise InputError(f"bad option: the allowed bias must be a positive number; found {allowed_bias:g}")
     J = v.J
     cols: dict[str, np.ndarray] = {"group": np.array(v.labels, dtype=object), "n": v.n.astype(np.int64),
                                    "raw_mean": v.raw_mean}

@@ -79,13 +79,14 @@ def _interval(f: Fmt, lo, hi, extra: int = 0) -> str:
 
 CSS = """
 :root{--ink:#1f2a36;--muted:#5d6773;--line:#dde1e6;--paper:#fbfaf7;--card:#ffffff;--post:#1f6f78;
---raw:#a7763c;--pool:#5a3d8a;--alarm:#b23a2a;--ok:#2f7d4f;--soft:#eef4f3}
+--raw:#a7763c;--alarm:#b23a2a;--ok:#2f7d4f;--soft:#eef4f3}
 *{box-sizing:border-box}
 body{margin:0;background:var(--paper);color:var(--ink);font:15px/1.5 "DejaVu Sans","Segoe UI",Helvetica,Arial,sans-serif}
 header.top{background:var(--ink);color:#fff;padding:22px 0 18px;border-bottom:5px solid var(--post)}
 .wrap{max-width:1120px;margin:0 auto;padding:0 26px}
 header.top h1{margin:0 0 4px;font-size:25px;font-weight:600;letter-spacing:.2px}
 header.top .sub{color:#c9d3dc;font-size:13.5px}
+header.top .flag{background:var(--alarm);color:#fff;padding:1px 8px;border-radius:3px}
 nav.toc{background:#fff;border-bottom:1px solid var(--line);font-size:13px}
 nav.toc a{display:inline-block;padding:8px 10px 8px 0;margin-right:8px;color:var(--post);text-decoration:none}
 section{background:var(--card);border:1px solid var(--line);border-radius:6px;margin:18px 0;padding:6px 22px 16px}
@@ -106,6 +107,7 @@ table{border-collapse:collapse;width:100%;font-size:13px;margin:6px 0 10px;font-
 th{text-align:left;background:#f1f3f5;font-weight:600;padding:6px 8px;border-bottom:2px solid var(--line);position:sticky;top:0}
 td{padding:4px 8px;border-bottom:1px solid #eef0f2;vertical-align:top}
 td.n,th.n{text-align:right;white-space:nowrap}
+td:first-child{max-width:22em;overflow-wrap:anywhere}
 tbody tr:nth-child(even){background:#fafbfc}
 tr.gap td{text-align:center;color:var(--muted);font-style:italic;background:#fff}
 .scroll{overflow-x:auto}
@@ -172,7 +174,8 @@ def render(res: Results, summary: dict | None = None) -> str:
         f"<title>{esc(title)}: {esc(source)}</title><style>{CSS}</style></head><body>")
     add(f'<header class="top"><div class="wrap"><h1>{title}: {v.J} groups, partial pooling</h1>'
         f'<div class="sub">data {esc(source)} · {esc(p.model.within)} within-group variances · '
-        f'{fit.raw.settings.chains} chains × {fit.raw.mu.shape[1]} draws · made {esc(created)} by pooling {esc(__version__)}</div>'
+        f'{fit.raw.settings.chains} chains × {fit.raw.mu.shape[1]} draws · made {esc(created)} by pooling {esc(__version__)}'
+        + (' · <strong class="flag">DIAGNOSTICS TARGETS MISSED</strong>' if missed else "") + "</div>"
         "</div></header>")
     sections = [("glance", "At a glance"), ("health", "Run health"), ("groups", "Groups"), ("pull", "Pull toward the pool"),
                 ("order", "Ranking"), ("limits", "Limits"), ("h2h", "Head to head"), ("labs", "Interlaboratory view"),
@@ -239,36 +242,59 @@ def render(res: Results, summary: dict | None = None) -> str:
         f"(rank-normalised split R-hat and ESS). Draws per chain after each round: {esc(rounds)}. "
         f"Sampling took {fit.raw.seconds:.1f} s. The traces are under Model checks.</p></section>")
 
-    # --- groups ---------------------------------------------------------------------------------
+    # --- groups: the order, then the estimates and how far they were pulled ----------------------
     order = np.argsort(t["rank_mean"].to_numpy(), kind="stable")
     shown, gap, hidden = _head_tail(order)
     k = int(min(o.k, v.J))
-    head = [("group", False), ("n", True), ("own mean", True), ("own sd" if v.within != "known" else "std error", True),
-            ("posterior mean", True), (f"{lvl} interval", True), ("shrinkage", True), ("mean rank", True),
+    head = [("group", False), ("n", True), ("posterior mean", True), (f"{lvl} interval", True), ("mean rank", True),
             (f"rank {lvl}", True), ("P(best)", True), (f"P(top {k})", True)]
     if o.threshold is not None:
-        head.append((f"P(&gt; {esc(f'{o.threshold:g}')})", True))
-    own_sd = t["std_error"] if v.within == "known" else t["raw_sd"]
+        th_txt = esc(f"{o.threshold:g}")
+        head += [(f"P(&gt; {th_txt})", True), (f"P(&lt; {th_txt})", True)]
     rows = []
     for j in shown:
-        r = [esc(v.labels[j]), f"{int(t['n'].iat[j])}", f.v(t["raw_mean"].iat[j]), f.v(own_sd.iat[j]),
-             f.v(t["theta_mean"].iat[j]), _interval(f, t["theta_low"].iat[j], t["theta_high"].iat[j]),
-             f"{t['shrink_weight'].iat[j]:.2f}", f"{t['rank_mean'].iat[j]:.1f}",
-             f"{int(t['rank_low'].iat[j])}–{int(t['rank_high'].iat[j])}", Fmt.p(t["p_best"].iat[j]), Fmt.p(t["p_top_k"].iat[j])]
+        r = [esc(v.labels[j]), _n(t["n"].iat[j]), f.v(t["theta_mean"].iat[j]),
+             _interval(f, t["theta_low"].iat[j], t["theta_high"].iat[j]), f"{t['rank_mean'].iat[j]:.1f}",
+             f"{int(t['rank_low'].iat[j])}–{int(t['rank_high'].iat[j])}", Fmt.p(t["p_best"].iat[j]),
+             Fmt.p(t["p_top_k"].iat[j])]
         if o.threshold is not None:
-            r.append(Fmt.p(t["p_above"].iat[j]))
+            r += [Fmt.p(t["p_above"].iat[j]), Fmt.p(t["p_below"].iat[j])]
         rows.append(r)
     add('<section id="groups"><h2>Groups</h2>'
         f"<p>Sorted by mean rank, best first ({'highest' if o.best == 'highest' else 'lowest'} theta is best). "
-        "The shrinkage column is the posterior mean of the weight v<sub>j</sub>/(v<sub>j</sub>+tau²) given to the pooled "
-        "mean: near 0 the group speaks for itself, near 1 it is mostly the pool.</p>"
-        + _table(head, rows, gap, hidden) + "</section>")
+        f"The rank interval holds the group's rank in {lvl} of the draws; P(top {k}) is the chance of being among "
+        f"the {k} best.</p>" + _table(head, rows, gap, hidden) + "</section>")
+
+    own = "own sd" if v.within != "known" else "std error"
+    own_sd = t["std_error"] if v.within == "known" else t["raw_sd"]
+    head = [("group", False), ("n", True), ("own mean", True), (own, True), ("posterior mean", True),
+            ("posterior sd", True)]
+    if v.within != "known":
+        head += [("sigma<sub>j</sub>", True), (f"sigma<sub>j</sub> {lvl}", True)]
+    head += [("shrinkage", True), (f"shrinkage {lvl}", True), ("moved", True)]
+    rows = []
+    for j in shown:
+        r = [esc(v.labels[j]), _n(t["n"].iat[j]), f.v(t["raw_mean"].iat[j]), f.v(own_sd.iat[j]),
+             f.v(t["theta_mean"].iat[j]), f.v(t["theta_sd"].iat[j], 1)]
+        if v.within != "known":
+            r += [f.v(t["sigma_mean"].iat[j]), _interval(f, t["sigma_low"].iat[j], t["sigma_high"].iat[j])]
+        moved = t["shrink_realised"].iat[j]
+        r += [f"{t['shrink_weight'].iat[j]:.2f}", f"{t['shrink_low'].iat[j]:.2f} to {t['shrink_high'].iat[j]:.2f}",
+              f"{moved:.2f}" if np.isfinite(moved) else "–"]
+        rows.append(r)
+    estimates = _table(head, rows, gap, hidden)
 
     # --- pictures of pulling and intervals -------------------------------------------------------
     add('<section id="pull"><h2>Pull toward the pool</h2>'
         "<p>Each group's own mean (open circle, area by the number of measurements) and where partial pooling puts it "
         "(filled dot). Small or noisy groups travel further toward the pooled mean.</p>"
         f'<div class="fig">{res.figures.get("shrinkage", "")}</div>'
+        "<h3>Estimates and shrinkage</h3><p>Shrinkage is the posterior mean of the weight "
+        "v<sub>j</sub>/(v<sub>j</sub>+tau²) that partial pooling gives the pooled mean, with v<sub>j</sub> = "
+        "sigma<sub>j</sub>²/n<sub>j</sub> (the squared standard error for given estimates): near 0 the group speaks "
+        "for itself, near 1 it is mostly the pool. <em>Moved</em> is the share of the way from the group's own mean "
+        "to mu that its estimate actually travelled (unsteady for groups whose own mean sits close to mu).</p>"
+        + estimates +
         f"<h3>Credible intervals</h3><div class=\"fig\">{res.figures.get('intervals', '')}</div></section>")
 
     # --- ranks ----------------------------------------------------------------------------------
@@ -290,8 +316,9 @@ def render(res: Results, summary: dict | None = None) -> str:
     # --- model checks ---------------------------------------------------------------------------
     sp = res.spread
     sdc = res.sd
-    msg = (f"Spread of the group means: observed {f.v(sp['observed'], 1)}, posterior predictive p = {sp['p_value']:.2f} "
-           f"({sp['draws']} draws; values near 0 or 1 say the model misjudges the spread between groups).")
+    msg = "" if sp is None else (
+        f"Spread of the group means: observed {f.v(sp['observed'], 1)}, posterior predictive p = {sp['p_value']:.2f} "
+        f"({sp['draws']} draws; values near 0 or 1 say the model misjudges the spread between groups).")
     if sdc is not None:
         msg += (f" Within-group sd: {sdc['outside']} of {len(sdc['groups'])} groups fall outside their {sdc['level']:.0%} "
                 f"replicated range and {sdc['extreme']} have p below 0.01 or above 0.99.")
@@ -311,6 +338,10 @@ def render(res: Results, summary: dict | None = None) -> str:
         + f'</dl><p class="note">Interval level {lvl}; k = {k}; best = {esc(o.best)}.</p></section>')
     add(f"<footer>Made by pooling {esc(__version__)}. {esc(CAUTION)}</footer></main></body></html>")
     return "".join(parts)
+
+
+def _n(n) -> str:
+    return f"{int(n)}" if n > 0 else "–"  # the known structure may not know the group sizes
 
 
 def plots_label(label: str) -> str:
@@ -345,7 +376,7 @@ def _limits(res: Results, f: Fmt, lvl: str) -> str:
                           " and the shared sigma")
                        + f", from a fixed-seed generator (seed {PREDICTION_SEED}).</p>")
         order = np.argsort(-t["outside_mean"].to_numpy(), kind="stable")[: min(25, v.J)]
-        rows = [[esc(v.labels[j]), f"{int(t['n'].iat[j])}", f.v(t["theta_mean"].iat[j]), f.v(t["sigma_mean"].iat[j]),
+        rows = [[esc(v.labels[j]), _n(t["n"].iat[j]), f.v(t["theta_mean"].iat[j]), f.v(t["sigma_mean"].iat[j]),
                  f"{100 * t['outside_mean'].iat[j]:.2f}%",
                  f"{100 * t['outside_low'].iat[j]:.2f}% to {100 * t['outside_high'].iat[j]:.2f}%"] for j in order]
         out.append(f"<h3>Groups with the largest predicted fraction outside (up to 25)</h3>"
@@ -417,7 +448,7 @@ def _labs(res: Results, f: Fmt, lvl: str) -> str:
     head += [("z", True), ("z signal", False)]
     body = []
     for j in shown:
-        r = [esc(v.labels[j]), f"{int(labs['n'].iat[j])}", f.v(labs["raw_mean"].iat[j]), f.v(labs["bias_mean"].iat[j]),
+        r = [esc(v.labels[j]), _n(labs["n"].iat[j]), f.v(labs["raw_mean"].iat[j]), f.v(labs["bias_mean"].iat[j]),
              _interval(f, labs["bias_low"].iat[j], labs["bias_high"].iat[j])]
         if o.allowed_bias is not None:
             r.append(Fmt.p(labs["p_bias_over"].iat[j]))

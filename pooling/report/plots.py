@@ -32,10 +32,10 @@ HEAT = LinearSegmentedColormap.from_list("pooling_heat", ["#fbfaf7", "#cfe4e1", 
 
 _RC = {
     "text.parse_math": False, "svg.fonttype": "none",
-    "font.family": "DejaVu Sans", "font.size": 9, "axes.edgecolor": "#9aa3ad", "axes.labelcolor": INK,
+    "font.family": "DejaVu Sans", "font.size": 10, "axes.edgecolor": "#9aa3ad", "axes.labelcolor": INK,
     "xtick.color": INK, "ytick.color": INK, "axes.titlesize": 10, "axes.titleweight": "bold",
     "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "grid.color": GRID,
-    "grid.linewidth": 0.7, "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 8,
+    "grid.linewidth": 0.7, "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 9,
 }
 
 
@@ -232,21 +232,24 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
         return _svg(fig, "hyper_traces")
 
 
-def predictive(spread: dict, sd: dict | None, labels) -> str:
+def predictive(spread: dict | None, sd: dict | None, labels) -> str:
     """Replicated against observed: the spread of the group means, and each group's within-group sd."""
+    panels = [name for name, x in (("spread", spread), ("sd", sd)) if x is not None]
+    if not panels:
+        return ""
     with plt.rc_context(_RC):
-        fig = _fig(WIDE, 3.4)
-        ncol = 2 if sd is not None else 1
-        axes = fig.subplots(1, ncol, squeeze=False, gridspec_kw={"width_ratios": [1, 1.25][:ncol]})[0]
-        ax = axes[0]
-        ax.hist(spread["replicated"], bins=40, color=POST, alpha=0.55, lw=0)
-        ax.axvline(spread["observed"], color=LIMIT, lw=1.6, label=f"observed (p = {spread['p_value']:.2f})")
-        ax.set_title("spread of the group means", loc="left")
-        ax.set_xlabel("sd over groups of the means, replicated")
-        ax.set_yticks([])
-        ax.legend(loc="upper right")
+        fig = _fig(WIDE if len(panels) == 2 else WIDE * 0.6, 3.4)
+        axes = dict(zip(panels, fig.subplots(1, len(panels), squeeze=False)[0]))
+        if spread is not None:
+            ax = axes["spread"]
+            ax.hist(spread["replicated"], bins=40, color=POST, alpha=0.55, lw=0)
+            ax.axvline(spread["observed"], color=LIMIT, lw=1.6, label=f"observed (p = {spread['p_value']:.2f})")
+            ax.set_title("spread of the group means", loc="left")
+            ax.set_xlabel("sd over groups of the means, replicated")
+            ax.set_yticks([])
+            ax.legend(loc="upper right")
         if sd is not None:
-            ax = axes[1]
+            ax = axes["sd"]
             order = np.argsort(sd["median"])
             x = np.arange(len(order))
             many = len(order) > MANY

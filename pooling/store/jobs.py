@@ -45,6 +45,9 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     if existed:
         open_store(store_path, busy_seconds=busy_seconds).close()  # a foreign store is refused before the read
     stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter)
+    if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
+        raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
+                         f"store keeps exactly; express them in other units (for example times {1 / stats.unit:.0e})")
     new = NewBatch(name=name, sha256=stats.file_sha256, source=str(file),
                    dated_at=dated or iso(datetime.now(timezone.utc)), group_column=group, value_column=value)
     with open_store(store_path, create=True, busy_seconds=busy_seconds) as st:

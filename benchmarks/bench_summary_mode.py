@@ -1,0 +1,160 @@
+"""Summary mode: peak memory and time per sweep against the number of groups J, from 1e3 to 1e6.
+
+Each case runs in a subprocess of its own, so that resource.getrusage(RUSAGE_SELF).ru_maxrss is that
+run's peak resident memory. A case is what `pooling fit --summary on` does: invented statistics
+(benchmarks/common.invented_groups, separate structure), pooling.fit with 4 chains on 2 threads,
+then the whole run folder (draws.nc, summary.json, groups.csv with every group, report.html).
+
+Reported per case:
+  rss_before_mb     resident memory after the data are built, before sampling (interpreter,
+                    libraries, compiled kernels, the statistics)
+  peak_mb           peak resident memory of the whole case
+  per_group_bytes   (peak - before) / J: what the run costs per group
+  sweep_seconds     sampling wall time / (warm-up + draws): one sweep of all 4 chains on 2 threads
+  ns_per_group      sweep_seconds * threads / (chains * J): the cost of one group in one chain's sweep
+  write_seconds     the run folder
+  full_draw_gb      what the draws of theta and sigma alone would take at the same length in full-draw mode
+A comparison row runs the full-draw mode where it fits (J <= 1e4), and an accuracy row compares
+summary mode with full draws of the same seed at J = 1e4 (largest limit error against its bound).
+
+    python benchmarks/bench_summary_mode.py          # J = 1e3, 1e4, 1e5 and the comparison rows
+    python benchmarks/bench_summary_mode.py --big    # adds J = 1e6 (a few minutes; run it once)
+
+Writes benchmarks/results/bench_summary_mode.json and prints a table.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+CHAINS, THREADS, WARMUP, DRAWS = 4, 2, 100, 200
+
+
+def _rss_mb() -> float:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def child(J: int, mode: str) -> dict:
+    """One case, in this process (run by the parent in a subprocess)."""
+    sys.path.insert(0, str(HERE))
+    import numpy as np
+
+    import pooling
+    from common import invented_groups
+    from pooling.output import write_run
+    from pooling.report import ReportOptions, write_report
+
+    stats = invented_groups(J, tau=1.0, sigma=2.0, n_lo=2, n_hi=12, seed=1)
+    settings = pooling.Settings(chains=CHAINS, warmup=WARMUP, draws=DRAWS, max_draws=DRAWS, seed=1, threads=THREADS)
+    options = ReportOptions(threshold=0.5)
+    # compile outside the measurement: a tiny fit of the same mode
+    pooling.fit(invented_groups(50, 1.0, 2.0, 2, 12, seed=2), None, settings, summary=mode != "full", options=options)
+    before = _rss_mb()
+    t0 = time.perf_counter()
+    fit = pooling.fit(stats, None, settings, summary=mode != "full", options=options)
+    t1 = time.perf_counter()
+    out = {"J": J, "mode": mode, "chains": CHAINS, "threads": THREADS, "warmup": WARMUP, "draws": DRAWS,
+           "rss_before_mb": round(before, 1), "fit_seconds": round(t1 - t0, 2),
+           "sampling_seconds": round(fit.raw.seconds, 2)}
+    if mode == "accuracy":
+        full = pooling.fit(stats, None, settings, summary=False)
+        out.update(_accuracy(fit, full, options))
+    else:
+        with tempfile.TemporaryDirectory() as tmp:
+            t2 = time.perf_counter()
+            write_run(fit, Path(tmp) / "run", extra=lambda f, folder: write_report(f, folder, options))
+            out["write_seconds"] = round(time.perf_counter() - t2, 2)
+            out["folder_mb"] = round(sum(p.stat().st_size for p in (Path(tmp) / "run").iterdir()) / 2**20, 1)
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux
+    sweeps = WARMUP + DRAWS
+    out.update(peak_mb=round(peak, 1), per_group_bytes=round((peak - before) * 2**20 / J),
+               sweep_seconds=round(fit.raw.seconds / sweeps, 4),
+               ns_per_group=round(fit.raw.seconds / sweeps * THREADS / (CHAINS * J) * 1e9, 1),
+               full_draw_gb=round(CHAINS * DRAWS * J * 8 * 2 / 2**30, 3),
+               load=round(os.getloadavg()[0], 2))
+    del np
+    return out
+
+
+def _accuracy(fit, full, options) -> dict:
+    """Summary against full draws of the same seed: means, probabilities, and limits against their bounds."""
+    import numpy as np
+
+    from pooling.report.groups import group_table
+
+    ref = group_table(full, options.level, options.k, options.best, options.threshold)
+    t = fit.table
+    others = np.setdiff1d(np.arange(len(t)), fit.kept)
+    sd = ref["theta_sd"].to_numpy()[others]
+    res = {"mean_max_abs_diff": float(np.max(np.abs(t["theta_mean"] - ref["theta_mean"]))),
+           "p_top_k_equal": bool(np.array_equal(t["p_top_k"], ref["p_top_k"])),
+           "p_above_equal": bool(np.array_equal(t["p_above"], ref["p_above"]))}
+    for col, err in (("theta_low", "theta_limit_error"), ("theta_high", "theta_limit_error"),
+                     ("sigma_low", "sigma_limit_error"), ("shrink_high", "shrink_limit_error")):
+        d = np.abs(t[col].to_numpy() - ref[col].to_numpy())[others]
+        b = t[err].to_numpy()[others]
+        res[col] = {"within_bound": bool(np.all(d <= b + 1e-12)), "max_error_over_bound": float(np.max(d / b)),
+                    "median_error_over_bound": float(np.median(d / b))}
+        if col.startswith("theta"):
+            res[col].update(median_error_sd=float(np.median(d / sd)), median_bound_sd=float(np.median(b / sd)))
+    d = np.abs(t["rank_mean"] - ref["rank_mean"]).to_numpy()[others]
+    res["rank_mean"] = {"within_bound": bool(np.all(d <= t["rank_mean_error"].to_numpy()[others] + 1e-9)),
+                        "max_abs_error": float(d.max()), "median_bound": float(np.median(t["rank_mean_error"]))}
+    return res
+
+
+def run_case(J: int, mode: str) -> dict:
+    env = dict(os.environ)
+    env.setdefault("NUMBA_CACHE_DIR", str(HERE.parent / ".numba-cache"))
+    proc = subprocess.run([sys.executable, __file__, "--child", str(J), mode], capture_output=True, text=True, env=env)
+    if proc.returncode != 0:
+        raise RuntimeError(f"case J={J} {mode} failed:\n{proc.stderr[-3000:]}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--child", nargs=2, metavar=("J", "MODE"))
+    ap.add_argument("--big", action="store_true", help="add J = 1e6")
+    args = ap.parse_args()
+    if args.child:
+        print(json.dumps(child(int(args.child[0]), args.child[1])))
+        return 0
+    cases = [(1_000, "summary"), (10_000, "summary"), (100_000, "summary")] + ([(1_000_000, "summary")] if args.big else [])
+    cases += [(1_000, "full"), (10_000, "full"), (10_000, "accuracy")]
+    rows = []
+    for J, mode in cases:
+        r = run_case(J, mode)
+        rows.append(r)
+        print(f"J={J:>9,} {mode:9} peak {r['peak_mb']:8.1f} MB  before {r['rss_before_mb']:7.1f} MB  "
+              f"{r['per_group_bytes']:>7} B/group  sweep {r['sweep_seconds']:.4f} s  {r['ns_per_group']:7.1f} ns/group  "
+              f"write {r.get('write_seconds', float('nan')):6.2f} s  full draws {r['full_draw_gb']:7.3f} GB  load {r['load']}",
+              flush=True)
+    result = {"machine": {"python": platform.python_version(), "cpus": os.cpu_count(), "platform": platform.platform()},
+              "settings": {"chains": CHAINS, "threads": THREADS, "warmup": WARMUP, "draws": DRAWS}, "cases": rows,
+              "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
+    out = HERE / "results" / "bench_summary_mode.json"
+    out.parent.mkdir(exist_ok=True)
+    if out.exists() and not args.big:  # keep an earlier J = 1e6 case when re-running the small ones
+        old = json.loads(out.read_text())
+        result["cases"] += [c for c in old.get("cases", []) if c["J"] >= 1_000_000]
+    out.write_text(json.dumps(result, indent=2) + "\n")
+    print(f"wrote {out}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,454 @@
+"""Hostile and odd input: any CSV or frame either fits or gives one clear line and exit code 2.
+
+The contract is the project's own (README, "Exit codes"): no traceback, no half-written run
+folder, and a file that is a valid table is read as that table whatever its dialect. The
+references for "valid table" are Python's csv module, which writes the files (RFC 4180 quoting),
+and numpy, which computes the expected group statistics from the very values that were written.
+Property tests run on the reading layer (pooling.read_table / from_frame); a few named cases run
+the whole command line with tiny chains.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import math
+import os
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
+
+import pooling
+from pooling import InputError, from_frame, read_table
+
+FAST = settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+
+# Characters that real labels hold and that break naive readers: separators, quotes, newlines,
+# markup and spreadsheet-formula starters, accents, CJK, an astral-plane letter.
+LABEL_CHARS = st.sampled_from(list("abcXYZ019 ,;|\t\n\"'=+-@<>&/\\#.éüß東京☃") + ["\U0001d518", "\u00a0"])
+LABEL = st.text(LABEL_CHARS, min_size=1, max_size=24).filter(lambda s: s.strip() != "")
+TRICKY = st.sampled_from(["NA", "null", "nan", "None", "N/A", "1", "01", "1.0", "-", "=1+1", "<b>x</b>", "TRUE"])
+
+
+def _expected(labels, values):
+    """(labels in order of first appearance, n, mean, M2) by numpy, two-pass."""
+    order = list(dict.fromkeys(labels))
+    lab = np.array(labels, dtype=object)
+    vals = np.asarray(values, dtype=np.float64)
+    n, mean, m2 = [], [], []
+    for g in order:
+        x = vals[lab == g]
+        n.append(len(x))
+        mu = float(np.mean(x))
+        mean.append(mu)
+        m2.append(float(np.sum((x - mu) ** 2)))
+    return tuple(order), np.array(n), np.array(mean), np.array(m2)
+
+
+def _assert_stats(s, labels, values):
+    want_labels, n, mean, m2 = _expected(labels, values)
+    assert s.labels == want_labels
+    assert s.n.tolist() == n.tolist()
+    scale = max(1.0, float(np.max(np.abs(values))))
+    # the reader and numpy sum in different orders: a few ulps of the largest value per group
+    np.testing.assert_allclose(s.raw_mean, mean, rtol=1e-12, atol=1e-12 * scale)
+    np.testing.assert_allclose(s.m2 * s.unit**2, m2, rtol=1e-9, atol=1e-9 * scale * scale)
+
+
+def _one_line(exc: BaseException) -> str:
+    text = str(exc)
+    assert "\n" not in text and "\r" not in text, repr(text)
+    assert text.startswith(("bad input", "bad option", "bad model")), text
+    return text
+
+
+@st.composite
+def tables(draw):
+    """A valid long table and a random but legal way of writing it."""
+    groups = draw(st.lists(st.one_of(LABEL, TRICKY), min_size=1, max_size=6, unique_by=lambda s: s.strip()))
+    rows = draw(st.lists(st.tuples(st.sampled_from(groups),
+                                   st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)),
+                         min_size=1, max_size=30))
+    fmt = {
+        "delimiter": draw(st.sampled_from([",", ";", "\t", "|"])),
+        "quoting": draw(st.sampled_from([csv.QUOTE_MINIMAL, csv.QUOTE_ALL])),
+        "lineterminator": draw(st.sampled_from(["\n", "\r\n"])),
+        "encoding": draw(st.sampled_from(["utf-8", "utf-8-sig", "utf-16", "cp1252"])),
+        "blank_lines": draw(st.lists(st.integers(0, len(rows)), max_size=3)),
+        "extra": draw(st.sampled_from([[], ["note"], ["note", "note"], ["x,y"]])),
+        "value_first": draw(st.booleans()),
+        "header_pad": draw(st.sampled_from(["", " "])),
+        "number": draw(st.sampled_from(["repr", "17g", "spaced", "thousands"])),
+    }
+    return rows, fmt
+
+
+def _write(path, rows, fmt):
+    head = ["grp", "val"][:: -1 if fmt["value_first"] else 1]
+    header = [fmt["header_pad"] + h + fmt["header_pad"] for h in head] + fmt["extra"]
+    buf = io.StringIO()
+    w = csv.writer(buf, delimiter=fmt["delimiter"], quoting=fmt["quoting"], lineterminator=fmt["lineterminator"])
+    w.writerow(header)
+    lines = [buf.getvalue()]
+    for i, (g, v) in enumerate(rows):
+        if fmt["number"] == "repr":
+            num = repr(v)
+        elif fmt["number"] == "17g":
+            num = f"{v:.17g}"
+        elif fmt["number"] == "spaced":
+            num = f"  {v!r}"
+        else:
+            num = f"{v:,.17g}" if abs(v) < 1e16 else repr(v)
+        cells = [g, num][:: -1 if fmt["value_first"] else 1] + [f"n{i}"] * len(fmt["extra"])
+        buf = io.StringIO()
+        csv.writer(buf, delimiter=fmt["delimiter"], quoting=fmt["quoting"],
+                   lineterminator=fmt["lineterminator"]).writerow(cells)
+        lines.append(buf.getvalue())
+    for k in sorted(fmt["blank_lines"], reverse=True):
+        lines.insert(k + 1, fmt["lineterminator"])
+    text = "".join(lines)
+    path.write_bytes(text.encode(fmt["encoding"]))
+
+
+@FAST
+@given(tables())
+def test_any_valid_table_is_read_as_written(tmp_path_factory, case):
+    """Property: a table written by the csv module in any legal dialect and encoding is read back
+    exactly (labels up to surrounding blanks, which a CSV cannot tell from formatting)."""
+    rows, fmt = case
+    labels = [g for g, _ in rows]
+    if fmt["encoding"] == "cp1252":
+        try:
+            "".join(labels).encode("cp1252")
+        except UnicodeEncodeError:
+            assume(False)
+    if fmt["number"] == "thousands" and fmt["delimiter"] == "," and fmt["quoting"] == csv.QUOTE_MINIMAL:
+        pass  # the csv module quotes "1,234.5" itself: still a legal table
+    path = tmp_path_factory.mktemp("t") / "table.csv"
+    _write(path, rows, fmt)
+    thousands = "," if fmt["number"] == "thousands" else None
+    encoding = "cp1252" if fmt["encoding"] == "cp1252" else None  # a cp1252 file that is also valid UTF-8 is ambiguous
+    s = read_table(path, "grp", "val", thousands=thousands, encoding=encoding)
+    _assert_stats(s, [g.strip() for g in labels], [v for _, v in rows])
+    assert s.file_sha256 and len(s.file_sha256) == 64
+
+
+@FAST
+@given(st.one_of(st.text(max_size=300), st.binary(max_size=300).map(lambda b: b.decode("latin-1"))))
+def test_any_text_fits_or_gives_one_line(tmp_path_factory, text):
+    """Property: whatever the file holds, the reader returns statistics or raises InputError with one line."""
+    path = tmp_path_factory.mktemp("g") / "junk.csv"
+    path.write_bytes(("a,b\n" + text).encode("utf-8", "surrogatepass") if text[:1] != "\x00" else text.encode("latin-1"))
+    try:
+        s = read_table(path, "a", "b")
+    except InputError as exc:
+        _one_line(exc)
+        return
+    assert s.J >= 1 and np.all(np.isfinite(s.raw_mean)) and np.all(s.n >= 1)
+
+
+@FAST
+@given(st.binary(min_size=1, max_size=400))
+def test_any_bytes_fit_or_give_one_line(tmp_path_factory, data):
+    path = tmp_path_factory.mktemp("b") / "blob.csv"
+    path.write_bytes(data)
+    try:
+        read_table(path, "a", "b")
+    except InputError as exc:
+        _one_line(exc)
+
+
+CELLS = st.one_of(st.none(), st.floats(), st.integers(-10, 10), st.booleans(), st.text(LABEL_CHARS, max_size=6),
+                  st.sampled_from(["", " ", "nan", "inf", "1e400", "\x00", "\ud800", "1,5"]))
+
+
+@FAST
+@given(st.lists(st.tuples(CELLS, CELLS), min_size=0, max_size=12))
+def test_any_frame_fits_or_gives_one_line(rows):
+    """Property: a data frame of mixed Python objects gives statistics or one clear line."""
+    df = pd.DataFrame(rows, columns=["g", "y"], dtype=object) if rows else pd.DataFrame({"g": [], "y": []})
+    try:
+        s = from_frame(df, "g", "y")
+    except InputError as exc:
+        _one_line(exc)
+        return
+    assert np.all(np.isfinite(s.raw_mean))
+    for lab in s.labels:
+        assert "\x00" not in lab and lab.strip()
+        lab.encode("utf-8")  # every label can be written to netCDF and JSON
+
+
+# ---------------------------------------------------------------------------------------------
+# named cases on the reading layer
+
+def _write_text(tmp_path, text, name="in.csv", encoding="utf-8"):
+    p = tmp_path / name
+    p.write_bytes(text.encode(encoding))
+    return p
+
+
+def test_semicolon_file_with_decimal_commas(tmp_path):
+    p = _write_text(tmp_path, "lab;y\nA;1,5\nA;2,25\nB;3,0\n")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "row 1" in _one_line(e.value) and "'1,5'" in str(e.value) and "--decimal-comma" in str(e.value)
+    s = read_table(p, "lab", "y", decimal=",")
+    _assert_stats(s, ["A", "A", "B"], [1.5, 2.25, 3.0])
+
+
+def test_thousands_and_decimal_comma_together(tmp_path):
+    p = _write_text(tmp_path, "lab;y\nA;1.234,5\nA;2.000\nB;-12.345.678,25\n")
+    s = read_table(p, "lab", "y", thousands=".", decimal=",")
+    _assert_stats(s, ["A", "A", "B"], [1234.5, 2000.0, -12345678.25])
+
+
+def test_quoted_thousands_in_a_comma_file(tmp_path):
+    p = _write_text(tmp_path, 'lab,y\nA,"1,234.5"\nB,"2,000"\nB,17\n')
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "--thousands" in _one_line(e.value)
+    _assert_stats(read_table(p, "lab", "y", thousands=","), ["A", "B", "B"], [1234.5, 2000.0, 17.0])
+
+
+def test_same_thousands_and_decimal_is_refused(tmp_path):
+    p = _write_text(tmp_path, "lab;y\nA;1\n")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y", thousands=",", decimal=",")
+    assert "both ','" in _one_line(e.value)
+
+
+@pytest.mark.parametrize("encoding", ["utf-8-sig", "utf-16", "utf-16-be", "cp1252", "latin-1"])
+def test_encodings_and_byte_order_marks(tmp_path, encoding):
+    text = "Prüfstelle,Wert\nMüller & Söhne,1.5\nMüller & Söhne,2.5\nÅström,3\n"
+    if encoding == "utf-16-be":
+        data = b"\xfe\xff" + text.encode("utf-16-be")  # big-endian with its byte-order mark
+    else:
+        data = text.encode(encoding)
+    p = tmp_path / "enc.csv"
+    p.write_bytes(data)
+    s = read_table(p, "Prüfstelle", "Wert")
+    _assert_stats(s, ["Müller & Söhne", "Müller & Söhne", "Åström"], [1.5, 2.5, 3.0])
+
+
+def test_utf16_without_bom_is_named(tmp_path):
+    p = tmp_path / "u16.csv"
+    p.write_bytes("lab,y\na,1\n".encode("utf-16-le"))
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "NUL bytes" in _one_line(e.value) and "--encoding utf-16" in str(e.value)
+    _assert_stats(read_table(p, "lab", "y", encoding="utf-16-le"), ["a"], [1.0])
+
+
+def test_wrong_encoding_named_by_the_user(tmp_path):
+    p = _write_text(tmp_path, "lab,y\nMüller,1\n", encoding="utf-8")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y", encoding="ascii")
+    assert "ascii" in _one_line(e.value) and "--encoding" in str(e.value)
+
+
+def test_quoted_fields_with_separators_quotes_and_newlines(tmp_path):
+    p = _write_text(tmp_path, 'lab,y\n"a,b",1\n"say ""hi""",2\n"two\nlines",3\n"two\nlines",5\n')
+    _assert_stats(read_table(p, "lab", "y"), ["a,b", 'say "hi"', "two\nlines", "two\nlines"], [1, 2, 3, 5])
+
+
+def test_blank_lines_anywhere(tmp_path):
+    p = _write_text(tmp_path, "\n\nlab,y\n\na,1\n\n\nb,2\n   \nb,4\n\n")
+    _assert_stats(read_table(p, "lab", "y"), ["a", "b", "b"], [1, 2, 4])
+
+
+def test_duplicated_header_names(tmp_path):
+    # a duplicated name the fit does not use is harmless; a duplicated name it uses is ambiguous
+    p = _write_text(tmp_path, "lab,y,note,note\na,1,x,y\nb,2,x,y\n")
+    _assert_stats(read_table(p, "lab", "y"), ["a", "b"], [1, 2])
+    p = _write_text(tmp_path, "lab,y, y\na,1,2\n", name="dup.csv")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "'y' appears 2 times" in _one_line(e.value)
+
+
+def test_numbers_as_text(tmp_path):
+    p = _write_text(tmp_path, 'lab,y\na," 1.5 "\na,"2e3"\nb,+4\nb,-.5\n')
+    _assert_stats(read_table(p, "lab", "y"), ["a", "a", "b", "b"], [1.5, 2000.0, 4.0, -0.5])
+
+
+def test_group_names_that_look_like_missing_values_or_numbers(tmp_path):
+    p = _write_text(tmp_path, "lab,y\nNA,1\nnull,2\nnan,3\n1,4\n01,5\n1.0,6\nTRUE,7\n")
+    s = read_table(p, "lab", "y")
+    assert s.labels == ("NA", "null", "nan", "1", "01", "1.0", "TRUE")
+
+
+@pytest.mark.parametrize("text,row", [("lab,y\na,1\n,2\n", 2), ("lab,y\na,1\n   ,2\n", 2), ('lab,y\na,1\nb,2\n"",3\n', 3)])
+def test_missing_group_values_name_the_row(tmp_path, text, row):
+    p = _write_text(tmp_path, text)
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert f"row {row}" in _one_line(e.value) and "column 'lab'" in str(e.value) and "empty" in str(e.value)
+
+
+def test_blanks_around_labels_are_formatting(tmp_path):
+    p = _write_text(tmp_path, 'lab,y\nA,1\nA ,2\n  A,3\n"  A  ",4\nB,5\n')
+    s = read_table(p, "lab", "y")
+    assert s.labels == ("A", "B") and s.n.tolist() == [4, 1]
+
+
+def test_very_long_labels(tmp_path):
+    # beyond the csv module's default field limit (128 KiB): pandas reads it, the checks cope
+    long = "L" * 200_000 + "-end"
+    p = _write_text(tmp_path, f"lab,y\n{long},1\n{long},2\nshort,3\n")
+    s = read_table(p, "lab", "y")
+    assert s.labels == (long, "short") and s.n.tolist() == [2, 1]
+    p = _write_text(tmp_path, f"lab,y\n{long},oops\n", name="bad.csv")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "'oops'" in _one_line(e.value)
+    with pytest.raises(InputError) as e:  # a long label in a message is cut, not printed whole
+        pooling.from_summaries(pd.DataFrame({"g": [long], "n": [0], "m": [1.0], "s": [1.0]}), "g", "n", "m", "s")
+    assert len(_one_line(e.value)) < 300
+
+
+@pytest.mark.parametrize("text,needle", [
+    ("lab,y\na,1,3\nb,2,4\n", "row 1: expected 2 fields"),        # pandas would shift every column by one
+    ("x,lab,y\n1,a,1,9\n2,b,2,9\n", "row 1: expected 3 fields"),
+    ("lab,y\na,1\nb,2,4\n", "line 3: expected 2 fields"),         # pandas would drop the surplus
+    ("lab,y\na,1,5\n", "row 1: expected 2 fields"),               # an unquoted decimal comma
+])
+def test_rows_longer_than_the_header_are_refused_not_shifted(tmp_path, text, needle):
+    p = _write_text(tmp_path, text)
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert needle in _one_line(e.value)
+
+
+def test_trailing_separators_are_tolerated(tmp_path):
+    p = _write_text(tmp_path, "lab,y\na,1,\nb,2,\n")
+    _assert_stats(read_table(p, "lab", "y"), ["a", "b"], [1, 2])
+    p = _write_text(tmp_path, "lab,y,\na,1,\nb,2,\n", name="t2.csv")
+    _assert_stats(read_table(p, "lab", "y"), ["a", "b"], [1, 2])
+
+
+def test_rows_shorter_than_the_header(tmp_path):
+    p = _write_text(tmp_path, "lab,y\na,1\nb\n")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "row 2" in _one_line(e.value) and "empty cell" in str(e.value)
+
+
+def test_separator_inside_labels_does_not_confuse_detection(tmp_path):
+    # the csv module's sniffer alone picks ';' or '|' here; the header names the columns and decides
+    p = _write_text(tmp_path, 'lab,y\n"a;b|c",1\n"d;e|f",2\n"g;h",3\n"i|j",4\n')
+    _assert_stats(read_table(p, "lab", "y"), ["a;b|c", "d;e|f", "g;h", "i|j"], [1, 2, 3, 4])
+
+
+@pytest.mark.parametrize("label,code", [("a\x00b", None), ("esc\x1b[2J", "U+001B"), ("bell\x07", "U+0007")])
+def test_control_characters_in_labels_are_refused(tmp_path, label, code):
+    # NUL ends a string in HDF5 (draws.nc could not be written); escape codes rewrite a terminal
+    df = pd.DataFrame({"g": [label, "ok", "ok"], "y": [1.0, 2.0, 3.0]})
+    with pytest.raises(InputError) as e:
+        from_frame(df, "g", "y")
+    assert "row 1" in _one_line(e.value) and "control character" in str(e.value)
+    if code:
+        assert code in str(e.value)
+        p = _write_text(tmp_path, f"lab,y\nok,1\n{label},2\n")
+        with pytest.raises(InputError) as e:
+            read_table(p, "lab", "y")
+        assert "row 2" in _one_line(e.value) and code in str(e.value)
+
+
+def test_lone_surrogate_in_a_frame_label_is_refused():
+    with pytest.raises(InputError) as e:
+        from_frame(pd.DataFrame({"g": ["\ud800x", "b"], "y": [1.0, 2.0]}, dtype=object), "g", "y")
+    assert "U+D800" in _one_line(e.value) and "row 1" in str(e.value)
+
+
+def test_tab_newline_and_cr_are_allowed_in_labels():
+    s = from_frame(pd.DataFrame({"g": ["a\tb", "c\nd", "e\r\nf"], "y": [1.0, 2.0, 3.0]}), "g", "y")
+    assert s.labels == ("a\tb", "c\nd", "e\r\nf")
+
+
+def test_frames_with_odd_columns():
+    df = pd.DataFrame({"g": pd.Categorical(["a", "b", "a"]), "y": pd.array([1, 2, 3], dtype="Int64")})
+    _assert_stats(from_frame(df, "g", "y"), ["a", "b", "a"], [1, 2, 3])
+    df = pd.DataFrame({"g": [1, 2, 1], "y": ["1.5", " 2 ", "3"]})
+    _assert_stats(from_frame(df, "g", "y"), ["1", "2", "1"], [1.5, 2.0, 3.0])
+    with pytest.raises(InputError) as e:
+        from_frame(pd.DataFrame({"g": ["a", None], "y": [1.0, 2.0]}), "g", "y")
+    assert "row 2" in _one_line(e.value)
+    with pytest.raises(InputError) as e:
+        from_frame(pd.DataFrame({"g": ["a", "b"], "y": [1.0, pd.NA]}, dtype=object), "g", "y")
+    assert "row 2" in _one_line(e.value) and "empty cell" in str(e.value)
+    with pytest.raises(InputError):
+        from_frame(pd.DataFrame({"g": [], "y": []}), "g", "y")
+
+
+def test_hand_made_statistics_are_checked_before_sampling():
+    """GroupStats built in Python skip the readers' checks; build() refuses what would give nonsense."""
+    from pooling.stats import GroupStats
+
+    ok = dict(labels=("a", "b", "c"), n=np.array([3, 3, 3]), mean=np.array([1.0, 2.0, 3.0]), m2=np.array([1.0, 1.0, 1.0]))
+    pooling.build(GroupStats(**ok))
+    for change, needle in [({"mean": np.array([1.0, np.nan, 3.0])}, "group 'b' has mean"),
+                           ({"n": np.array([3, 0, 3])}, "group 'b' has n = 0"),
+                           ({"m2": np.array([1.0, -1.0, 1.0])}, "group 'b' has m2"),
+                           ({"labels": ("a", "a", "c")}, "distinct strings")]:
+        with pytest.raises(pooling.ModelError) as e:
+            pooling.build(GroupStats(**{**ok, **change}))
+        assert needle in _one_line(e.value)
+
+
+# ---------------------------------------------------------------------------------------------
+# the whole command line on a few of them
+
+def _cli(run_cli, tmp_path, path, *opts):
+    out = tmp_path / "run"
+    code, _, err = run_cli("fit", path, "--out", out, "--quiet", "--chains", "2", "--draws", "40", "--warmup", "40",
+                           "--seed", "1", *opts)
+    return code, err, out
+
+
+def _no_partial(tmp_path):
+    return not [p for p in tmp_path.iterdir() if ".partial-" in p.name or ".old-" in p.name]
+
+
+@pytest.mark.parametrize("text,opts,needle", [
+    ("lab,y\na,1,3\nb,2,4\nc,3,3\n", [], "expected 2 fields"),
+    ("lab;y\nA;1,5\nB;2,5\nC;3,5\n", [], "--decimal-comma"),
+    ('lab,y\nA,"1,234.5"\nB,2\nC,3\n', [], "--thousands"),
+    ("\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", [], "not a text table"),
+    ("lab,y\na,1\n", ["--thousands", ".", "--decimal-comma"], None),
+])
+def test_cli_bad_tables_one_line_exit_2_nothing_written(run_cli, tmp_path, text, opts, needle):
+    p = tmp_path / "in.csv"
+    p.write_bytes(text.encode("latin-1"))
+    code, err, out = _cli(run_cli, tmp_path, p, "--group", "lab", "--value", "y", *opts)
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert code == 2 and len(lines) == 1 and "Traceback" not in err, err
+    if needle:
+        assert needle in lines[0]
+    assert not out.exists() and _no_partial(tmp_path)
+
+
+def test_cli_european_table_fits_with_its_options(run_cli, tmp_path):
+    rows = ["Labor;Messwert"] + [f"L{j};{1000 + j + 0.25 * k:.2f}".replace(".", ",") for j in range(4) for k in range(3)]
+    p = tmp_path / "eu.csv"
+    p.write_bytes(("\n".join(rows) + "\n").encode("cp1252"))
+    code, err, out = _cli(run_cli, tmp_path, p, "--group", "Labor", "--value", "Messwert", "--decimal-comma")
+    assert code in (0, 3), err
+    import json
+
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert summary["data"]["groups"] == 4 and summary["data"]["measurements"] == 12
+    post = pooling.read_table(p, "Labor", "Messwert", decimal=",")
+    np.testing.assert_allclose(post.raw_mean, [1000.25 + j for j in range(4)], rtol=1e-15)
+
+
+def test_cli_summaries_take_the_reading_options(run_cli, tmp_path):
+    p = tmp_path / "sum.csv"
+    p.write_bytes("lab;n;mittel;sd\nA;5;10,5;1,25\nB;7;11,0;0,5\nC;4;9,75;2,0\n".encode("cp1252"))
+    code, err, out = _cli(run_cli, tmp_path, p, "--group", "lab", "--size", "n", "--mean", "mittel", "--sd", "sd",
+                          "--decimal-comma", "--within", "shared")
+    assert code in (0, 3), err
+    s = pooling.from_summaries(p, "lab", "n", "mittel", "sd", decimal=",")
+    np.testing.assert_allclose(s.raw_mean, [10.5, 11.0, 9.75])
+    np.testing.assert_allclose(s.raw_sd, [1.25, 0.5, 2.0])
