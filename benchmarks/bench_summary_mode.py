@@ -11,7 +11,10 @@ Reported per case:
   peak_mb           peak resident memory of the whole case
   per_group_bytes   (peak - before) / J: what the run costs per group
   sweep_seconds     sampling wall time / (warm-up + draws): one sweep of all 4 chains on 2 threads
-  ns_per_group      sweep_seconds * threads / (chains * J): the cost of one group in one chain's sweep
+  ns_per_group      sweep_seconds * threads / (chains * J): the cost of one group in one chain's sweep,
+                    in wall time (inflated when others use the cores)
+  cpu_ns_per_group  the same from the process's CPU time during the fit (all threads), which
+                    other people's work does not inflate
   write_seconds     the run folder
   full_draw_gb      what the draws of theta and sigma alone would take at the same length in full-draw mode
 A comparison row runs the full-draw mode where it fits (J <= 1e4), and an accuracy row compares
@@ -55,6 +58,7 @@ def child(J: int, mode: str) -> dict:
     import pooling
     from common import invented_groups
     from pooling.output import write_run
+    from pooling import summary
     from pooling.report import ReportOptions, write_report
 
     stats = invented_groups(J, tau=1.0, sigma=2.0, n_lo=2, n_hi=12, seed=1)
@@ -63,11 +67,11 @@ def child(J: int, mode: str) -> dict:
     # compile outside the measurement: a tiny fit of the same mode
     pooling.fit(invented_groups(50, 1.0, 2.0, 2, 12, seed=2), None, settings, summary=mode != "full", options=options)
     before = _rss_mb()
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     fit = pooling.fit(stats, None, settings, summary=mode != "full", options=options)
-    t1 = time.perf_counter()
+    t1, c1 = time.perf_counter(), time.process_time()
     out = {"J": J, "mode": mode, "chains": CHAINS, "threads": THREADS, "warmup": WARMUP, "draws": DRAWS,
-           "rss_before_mb": round(before, 1), "fit_seconds": round(t1 - t0, 2),
+           "rss_before_mb": round(before, 1), "fit_seconds": round(t1 - t0, 2), "fit_cpu_seconds": round(c1 - c0, 2),
            "sampling_seconds": round(fit.raw.seconds, 2)}
     if mode == "accuracy":
         full = pooling.fit(stats, None, settings, summary=False)
@@ -83,6 +87,8 @@ def child(J: int, mode: str) -> dict:
     out.update(peak_mb=round(peak, 1), per_group_bytes=round((peak - before) * 2**20 / J),
                sweep_seconds=round(fit.raw.seconds / sweeps, 4),
                ns_per_group=round(fit.raw.seconds / sweeps * THREADS / (CHAINS * J) * 1e9, 1),
+               cpu_ns_per_group=round((c1 - c0) / (sweeps * CHAINS * J) * 1e9, 1),
+               accumulator_mb_estimate=round(summary.summary_bytes(J, "separate", CHAINS) / 2**20, 1),
                full_draw_gb=round(CHAINS * DRAWS * J * 8 * 2 / 2**30, 3),
                load=round(os.getloadavg()[0], 2))
     del np
@@ -140,7 +146,7 @@ def main() -> int:
         r = run_case(J, mode)
         rows.append(r)
         print(f"J={J:>9,} {mode:9} peak {r['peak_mb']:8.1f} MB  before {r['rss_before_mb']:7.1f} MB  "
-              f"{r['per_group_bytes']:>7} B/group  sweep {r['sweep_seconds']:.4f} s  {r['ns_per_group']:7.1f} ns/group  "
+              f"{r['per_group_bytes']:>7} B/group  sweep {r['sweep_seconds']:.4f} s  {r['cpu_ns_per_group']:7.1f} cpu ns/group  "
               f"write {r.get('write_seconds', float('nan')):6.2f} s  full draws {r['full_draw_gb']:7.3f} GB  load {r['load']}",
               flush=True)
     result = {"machine": {"python": platform.python_version(), "cpus": os.cpu_count(), "platform": platform.platform()},

@@ -31,11 +31,16 @@ ETA, MU, S2, NU_IDX, WIDTH, SIGMA2, JUMP_SUM, JUMP_COUNT = range(8)
 N_SCALARS = 8
 ETA_MIN, ETA_MAX = -40.0, 40.0  # log tau in internal units: tau from 4e-18 to 2e17 data spreads
 MAX_STEPS = 60
-LOG_BLOCK = 8  # terms multiplied before one log is taken (see log_tau_density)
+LOG_BLOCK = 16  # terms multiplied (in 4 interleaved products) before one log is taken (see sum_log_shifted)
 _PROD_MIN, _PROD_MAX = 1e-300, 1e300
+# Speed (see benchmarks/README.md). error_model="numpy" on the hot functions: a float division by
+# zero gives inf instead of raising, so numba emits no zero test per division and the elementwise
+# loops vectorise; no division here can have a zero divisor in a valid state. weighted_sums adds
+# fastmath "reassoc" only, so that its three sums vectorise (they are summed in another order, to
+# the same accuracy); no other function has any fastmath flag.
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def log_tau_density(eta, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, out):
     """log p(eta = log tau | v, y) up to a constant, with theta and mu integrated out.
 
@@ -45,38 +50,10 @@ def log_tau_density(eta, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, ta
     if eta < ETA_MIN or eta > ETA_MAX:
         return -np.inf
     tau2 = math.exp(2.0 * eta)
-    J = ybar.shape[0]
-    sw = 0.0
-    swd = 0.0
-    swdd = 0.0
-    slog = 0.0
-    # sum_j log(d_j) as one log per block of LOG_BLOCK products: the log call, not the division,
-    # dominated this O(J) loop (about 3x the cost). A product outside the normal range (extreme
-    # v_j) falls back to the plain sum of logs for that block, so no value can overflow.
-    top = J - J % LOG_BLOCK
-    for b in range(0, top, LOG_BLOCK):
-        prod = 1.0
-        for j in range(b, b + LOG_BLOCK):
-            d = v[j] + tau2
-            w = 1.0 / d
-            r = ybar[j] - shift
-            sw += w
-            swd += w * r
-            swdd += w * r * r
-            prod *= d
-        if prod > _PROD_MIN and prod < _PROD_MAX:
-            slog += math.log(prod)
-        else:
-            for j in range(b, b + LOG_BLOCK):
-                slog += math.log(v[j] + tau2)
-    for j in range(top, J):
-        d = v[j] + tau2
-        w = 1.0 / d
-        r = ybar[j] - shift
-        sw += w
-        swd += w * r
-        swdd += w * r * r
-        slog += math.log(d)
+    # two O(J) passes: the weighted sums (vectorised) and sum_j log(v_j + tau^2) (one log per block
+    # of products); the fused loop with one log per group cost about 5x as much
+    sw, swd, swdd = weighted_sums(ybar, v, tau2, shift)
+    slog = sum_log_shifted(v, tau2)
     if mu_kind == 1:
         w0 = 1.0 / (mu_scale * mu_scale)
         r0 = mu_loc - shift
@@ -96,27 +73,58 @@ def log_tau_density(eta, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, ta
     return lp
 
 
-@njit(nogil=True, cache=True)
-def sum_log(x):
-    """sum_j log(x_j) for x_j > 0, taking one log per block of LOG_BLOCK products.
+@njit(nogil=True, cache=True, error_model="numpy", fastmath={"reassoc"})
+def weighted_sums(ybar, v, tau2, shift):
+    """(sum_j w_j, sum_j w_j r_j, sum_j w_j r_j^2) with w_j = 1 / (v_j + tau^2), r_j = ybar_j - shift."""
+    sw = 0.0
+    swd = 0.0
+    swdd = 0.0
+    for j in range(ybar.shape[0]):
+        w = 1.0 / (v[j] + tau2)
+        r = ybar[j] - shift
+        sw += w
+        swd += w * r
+        swdd += w * r * r
+    return sw, swd, swdd
 
-    A block whose product leaves the normal range falls back to the plain sum of its logs.
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def sum_log_shifted(x, c):
+    """sum_j log(x_j + c) for x_j + c > 0, taking one log per block of LOG_BLOCK products.
+
+    The log call, not the arithmetic, dominated such a loop. The block's terms are multiplied in
+    four interleaved products (independent chains of multiplications run in parallel); a block whose
+    product leaves the normal range (extreme values) falls back to the plain sum of its logs, so
+    nothing can overflow or lose digits to underflow.
     """
     J = x.shape[0]
     total = 0.0
     top = J - J % LOG_BLOCK
     for b in range(0, top, LOG_BLOCK):
-        prod = 1.0
-        for j in range(b, b + LOG_BLOCK):
-            prod *= x[j]
+        p0 = 1.0
+        p1 = 1.0
+        p2 = 1.0
+        p3 = 1.0
+        for j in range(b, b + LOG_BLOCK, 4):
+            p0 *= x[j] + c
+            p1 *= x[j + 1] + c
+            p2 *= x[j + 2] + c
+            p3 *= x[j + 3] + c
+        prod = (p0 * p1) * (p2 * p3)
         if prod > _PROD_MIN and prod < _PROD_MAX:
             total += math.log(prod)
         else:
             for j in range(b, b + LOG_BLOCK):
-                total += math.log(x[j])
+                total += math.log(x[j] + c)
     for j in range(top, J):
-        total += math.log(x[j])
+        total += math.log(x[j] + c)
     return total
+
+
+@njit(nogil=True, cache=True)
+def sum_log(x):
+    """sum_j log(x_j) for x_j > 0 (see sum_log_shifted)."""
+    return sum_log_shifted(x, 0.0)
 
 
 @njit(nogil=True, cache=True)
@@ -160,7 +168,7 @@ def slice_eta(rng, eta0, width, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_k
             return eta0, evals
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def fill_v(within, n, v_known, state, sigma2, v):
     """v_j = sigma_j^2 / n_j (separate), sigma^2 / n_j (shared) or se_j^2 (known)."""
     J = v.shape[0]
@@ -175,7 +183,7 @@ def fill_v(within, n, v_known, state, sigma2, v):
             v[j] = v_known[j]
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv):
     """(tau, mu, theta) jointly given v: slice update of log tau, then mu | tau, then theta | mu, tau.
 
@@ -199,7 +207,7 @@ def block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
     return ev
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp):
     """The variances given theta: sigma_j^2, s^2 and nu (separate) or sigma^2 (shared); nothing for known."""
     J = ybar.shape[0]
@@ -322,7 +330,7 @@ def collapsed_nu_step(rng, n, ybar, m2, nu_grid, nu_logprior, table, state, thet
         state[NU_IDX] = k_new
 
 
-@njit(nogil=True, cache=True)
+@njit(nogil=True, cache=True, error_model="numpy")
 def scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2):
     """Rescale s^2 and every sigma_j^2 by one factor c drawn from its conditional (a group move).
 

@@ -94,7 +94,10 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
     """Create `out` by calling fill(tmp_dir) on a sibling temporary folder, then renaming it into place."""
     out = check_target(out, replace)
     parent = out.resolve().parent
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=parent))
+    try:  # the access check passed, but ACLs, read-only mounts or quotas can still refuse
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=parent))
+    except OSError as exc:
+        raise OutputError(f"cannot write the run folder '{out}': {exc.strerror or exc}; nothing was written") from None
     try:
         fill(tmp)
         mask = os.umask(0)  # mkdtemp makes the folder private (0700); a run folder gets the usual mode

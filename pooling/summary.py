@@ -137,8 +137,10 @@ def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bo
     rows = (1 + (2 if within == "separate" else 0) + (1 if limits and within != "known" else 0)
             + (1 if J < BIAS_HIST_GROUPS else 0))
     count = 2 if draw_cap <= np.iinfo(np.uint16).max else 4
-    per_chain = rows * (bins + 2) * count + rows * 16 + sk.N_R * 8 + sk.N_H * 4 + 4 + 8 + 3 * 8
-    return int(J * (chains * per_chain + rows * 16))
+    # per chain: histograms, out-of-grid extremes, running means, counters, bucket index and count,
+    # the chain's theta and sigma^2 and kernel.sweeps' two scratch arrays; shared: grid origin and widths
+    per_chain = rows * (bins + 2) * count + rows * 16 + sk.N_R * 8 + sk.N_H * 4 + 4 + 8 + 4 * 8
+    return int(J * (chains * per_chain + rows * 24))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -513,7 +515,7 @@ def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata
         est = np.empty((2, J))
         err = np.empty((2, J))
         sk.hist_quantiles(acc.hist, acc.ext, sh.glo, sh.gw, int(sh.rowmap[q]), probs, kind, scale, center, est, err)
-        return est[0], est[1], 0.3 * np.maximum(err[0], err[1]) * (1 + 1e-9)  # slack for the rounding of bin edges
+        return est[0], est[1], np.maximum(err[0], err[1]) * (1 + 1e-9)  # slack for the rounding of bin edges
 
     def cmean(row: int) -> np.ndarray:  # equal counts per chain: the mean of the chains' means
         return run[:, row].mean(axis=0)
@@ -651,8 +653,10 @@ METHODS = {
 
 @dataclass
 class SummaryFit(Fit):
-    """A summary-mode run: `idata` holds the hyperparameters and the kept groups only; `table` holds
-    every group's results (the reporter's columns, then summary.EXTRA_COLUMNS)."""
+    """A summary-mode run: `idata` (and so `draws`) holds the hyperparameters and the kept groups only,
+    `kept` their positions; `table` holds every group's results (the reporter's columns, then
+    summary.EXTRA_COLUMNS); `methods` and `figures` say how they were computed and how large each
+    error can be."""
 
     table: pd.DataFrame | None = None
     kept: np.ndarray | None = None
@@ -688,7 +692,6 @@ def fit_summary(problem: Problem, settings: Settings | None = None, options=None
     kept = acc.shared.kept
     sub = replace(problem, stats=problem.stats.subset(kept))
     idata = to_idata(raw, sub)
-    labels = list(idata.posterior["group"].values)
     idata.posterior["rank"] = (("chain", "draw", "group"), acc.ranks)
     if problem.within_code != 2:  # the typical within-group sd per draw, for the interlaboratory figures
         idata.posterior["within_sd"] = (("chain", "draw"), acc.within_sd * problem.scale)
@@ -700,7 +703,6 @@ def fit_summary(problem: Problem, settings: Settings | None = None, options=None
     idata.constant_data["kept_because"] = (("group",), np.array(acc.shared.kept_reason, dtype=object))
     misses = raw.rounds[-1]["missed_list"] if raw.rounds else []
     table, figures = build_table(problem, raw, acc, o, idata)
-    assert labels == [problem.stats.labels[j] for j in kept]
     bias = ("a histogram of theta_j - mu, as for the other limits" if acc.shared.rowmap[sk.Q_BIAS] >= 0 else
             "theta limits minus the posterior mean of mu: off by at most the theta bound plus "
             f"max_s |mu_s - mean mu| = {figures['mu_spread_D']:.3g}")

@@ -1,31 +1,38 @@
 """Each conditional update of the kernel against its closed form in scipy.stats.
 
-Method (the probability integral transform, PIT). Within one sweep every block is a fresh draw
-from a closed-form conditional whose inputs are all recorded in the kernel's output rows: theta
-at sweep t is drawn given (mu_t, tau_t, v_{t-1}), mu_t given (tau_t, v_{t-1}), sigma_j^2 at t
-given (theta_t, s^2_{t-1}, nu_{t-1}), s^2_t given (sigma^2_t, nu_{t-1}) and nu_t given
-(sigma^2_t, s^2_t). So U = F(draw | recorded inputs), with F the scipy.stats CDF of the closed
-form, is Uniform(0, 1) given everything drawn before it, and the U's of a run are independent
-(Rosenblatt 1952, Ann. Math. Statist. 23(3)): a Kolmogorov-Smirnov test of all of them against
-Uniform(0, 1) tests the update exactly, with no Markov-chain error at all. For the discrete nu
-we add a chi-square test of the counts on the grid against the sums of the exact per-draw
-probabilities. The reference formulas below are written independently of the kernel's algebra,
-through scipy.stats parametrisations.
+Direct draws, by the probability integral transform (PIT). theta, mu and the shared sigma^2 are
+tested on full sweeps: within a sweep each is a fresh draw from a closed-form conditional whose
+inputs are all in the kernel's output rows (theta at sweep t given mu_t, tau_t and v_{t-1}; mu_t
+given tau_t and v_{t-1}; the shared sigma^2_t given theta_t). So U = F(draw | recorded inputs),
+with F the scipy.stats CDF of the closed form, is Uniform(0, 1) given everything drawn before
+it, and the U's of a run are independent (Rosenblatt 1952, Ann. Math. Statist. 23(3)): a
+Kolmogorov-Smirnov test of all of them against Uniform(0, 1) tests the update exactly, with no
+Markov-chain error. For `separate` a sweep also makes moves between the variance draws (a
+collapsed move of nu before them and a common rescaling of s^2 and sigma^2 after), so the
+variance block (pooling.kernel.block_b) is called directly, many times from one fixed state:
+sigma_j^2 | theta, s^2, nu (i.i.d. draws, KS against one scipy.stats.invgamma per group),
+s^2 | sigma^2, nu (PIT against scipy.stats.gamma), nu | sigma^2, s^2 (chi-square of the grid
+counts against the summed exact probabilities, and a randomised PIT).
 
-The slice update of log tau is a Markov step, not a direct draw, so it is tested by its
-stationary distribution: independent chains of the `known` structure (no block B, mu and theta
-do not feed back) started from exact draws of p(tau | v, y) are moved 12 sweeps and must still
-follow p(tau | v, y), computed on a fine grid from independent formulas.
+Markov moves, by their stationary distribution: the slice update of log tau (independent chains
+of the `known` structure, where nothing feeds back into tau, started from exact draws of
+p(tau | v, y) and moved 12 sweeps), the collapsed Metropolis move of nu (chains started from
+exact draws of p(nu | s^2, theta, y), with the sigma_j^2 integrated out by scipy.integrate.quad)
+and the common rescaling of (s^2, sigma^2) (chains started from exact draws of
+p(s^2, sigma^2 | theta, nu, y)). After the moves the chains must still follow the target,
+computed on a fine grid from independent formulas.
 
 Significance: every test uses a fixed seed and rejects at p < 1e-3. Power: every test also runs
 the same statistic against a deliberately wrong closed form (an error a developer could make)
 and asserts that it IS rejected (p < 1e-3) -- so the test is shown to fail when the formula is
-wrong. Besides that, we ran these checks locally against mutated copies of pooling/kernel.py:
-theta's two weights swapped; nu + n_j - 1 degrees of freedom for sigma_j^2; N - J for the shared
-sigma^2; the "+ a" dropped from the shape of s^2; lgamma(nu) for lgamma(nu/2) in the nu weights;
-the normal prior on mu dropped (from mu's draw and from p(tau | v, y)); the Jacobian "eta +"
-dropped from log p(log tau); a half-Cauchy term in tau instead of tau^2. Each mutant failed the
-test aimed at it with p < 1e-10.
+wrong. Besides that, we ran this file locally against mutated copies of pooling/kernel.py
+(swapped in for pooling.kernel): theta's two weights swapped; nu + n_j - 1 degrees of freedom for
+sigma_j^2; N - J for the shared sigma^2; the "+ a" dropped from the shape of s^2; lgamma(nu) for
+lgamma(nu/2) in the nu weights; the normal prior on mu dropped (from mu's draw and from
+p(tau | v, y)); the Jacobian "eta +" dropped from log p(log tau); a half-Cauchy term in tau
+instead of tau^2; the lgamma(h + n_j/2) table dropped from the collapsed nu move; c^(-N/2) for
+c^(-N/2 - 1) in the rescaling; the prior weight dropped from the rescaling's acceptance. Each
+mutant failed the test aimed at it, and the unmodified kernel passes them all.
 
 Book references: BDA3 is Gelman, Carlin, Stern, Dunson, Vehtari and Rubin, Bayesian Data
 Analysis, 3rd ed. (2013); its section and equation numbers, and the other citations here, are
@@ -41,7 +48,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import integrate, stats
+from scipy import integrate, special, stats
 
 from pooling import kernel
 
@@ -142,7 +149,7 @@ def mu_pit(out, ybar, v_prev, mu_prior, drop_tau=False):
     return stats.norm.cdf(out["mu"][1:], loc=spy / sp, scale=np.sqrt(1.0 / sp))
 
 
-def sigma2_pit(out, n, ybar, m2, df_shift=0.0):
+def sigma2_law(n, ybar, m2, theta, s2, nu, df_shift=0.0):
     """sigma_j^2 | theta_j, s^2, nu ~ Inv-Gamma(a = (nu + n_j)/2, scale = (nu s^2 + M2_j + n_j (ybar_j - theta_j)^2)/2).
 
     This is Scaled-Inv-chi2(nu + n_j, ...) written as scipy.stats.invgamma. Source: BDA3 sec. 2.6
@@ -150,44 +157,53 @@ def sigma2_pit(out, n, ybar, m2, df_shift=0.0):
     scaled-inverse-chi-square to inverse-gamma identity is in BDA3 Appendix A. df_shift = -1 is
     the deliberate off-by-one error.
     """
-    sig2 = out["sigma"][1:] ** 2
-    s2 = out["s"][:-1, None] ** 2
-    nu = out["nu"][:-1, None]
-    theta = out["theta"][1:]
-    scale = (nu * s2 + m2 + n * (ybar - theta) ** 2) / 2.0
-    return stats.invgamma.cdf(sig2, a=(nu + n + df_shift) / 2.0, scale=scale)
+    return stats.invgamma(a=(nu + n + df_shift) / 2.0, scale=(nu * s2 + m2 + n * (ybar - theta) ** 2) / 2.0)
 
 
-def s2_pit(out, s2_prior, drop_prior_shape=False):
+def s2_pit(s2, sigma2, nu, s2_prior, drop_prior_shape=False):
     """s^2 | sigma^2, nu ~ Gamma(shape = J nu/2 + a, rate = nu/2 sum_j 1/sigma_j^2 + b).
 
     Source: the product of Scaled-Inv-chi2(nu, s^2) densities is, as a function of s^2,
     (s^2)^(J nu/2) exp(-s^2 nu/2 sum_j 1/sigma_j^2) (BDA3 Appendix A density), times the
     Gamma(a, b) prior (a = b = 0 for p(s^2) ∝ 1/s^2).
     """
-    J = out["sigma"].shape[1]
-    sig2 = out["sigma"][1:] ** 2
-    nu = out["nu"][:-1]
+    J = sigma2.shape[1]
     shape = J * nu / 2.0 + (0.0 if drop_prior_shape else s2_prior[0])
-    rate = nu / 2.0 * np.sum(1.0 / sig2, axis=1) + s2_prior[1]
-    return stats.gamma.cdf(out["s"][1:] ** 2, a=shape, scale=1.0 / rate)
+    rate = nu / 2.0 * np.sum(1.0 / sigma2, axis=1) + s2_prior[1]
+    return stats.gamma.cdf(s2, a=shape, scale=1.0 / rate)
 
 
-def nu_probs(out, nu_grid, nu_weights, wrong=False):
-    """p(nu_k | sigma^2, s^2) ∝ w_k prod_j Scaled-Inv-chi2(sigma_j^2 | nu_k, s^2), for the drawn sigma^2, s^2.
+def nu_probs(sigma2, s2, nu_grid, nu_weights, wrong=False):
+    """p(nu_k | sigma^2, s^2) ∝ w_k prod_j Scaled-Inv-chi2(sigma_j^2 | nu_k, s^2), row by row.
 
     Scaled-Inv-chi2(nu, s^2) is scipy.stats.invgamma(a = nu/2, scale = nu s^2/2) (BDA3 Appendix A).
     `wrong` uses a = nu (the deliberate error of taking nu for nu/2 in the shape).
     """
-    sig2 = out["sigma"] ** 2
-    s2 = out["s"] ** 2
     logp = np.empty((len(s2), len(nu_grid)))
     for k, nu in enumerate(nu_grid):
         a = nu if wrong else nu / 2.0
-        logp[:, k] = np.log(nu_weights[k]) + stats.invgamma.logpdf(sig2, a=a, scale=nu * s2[:, None] / 2.0).sum(axis=1)
+        logp[:, k] = np.log(nu_weights[k]) + stats.invgamma.logpdf(sigma2, a=a, scale=nu * s2[:, None] / 2.0).sum(axis=1)
     logp -= logp.max(axis=1, keepdims=True)
     p = np.exp(logp)
     return p / p.sum(axis=1, keepdims=True)
+
+
+def group_marginal(nu, s2, n_j, ss_j):
+    """log of the integral over sigma^2 of (sigma^2)^(-n_j/2) exp(-SS_j / (2 sigma^2)) Scaled-Inv-chi2(sigma^2 | nu, s^2).
+
+    By scipy.integrate.quad over log sigma^2 (an independent route, not the closed form), with
+    Scaled-Inv-chi2(nu, s^2) = scipy.stats.invgamma(a = nu/2, scale = nu s^2/2).
+    """
+    def logf(u):
+        x = np.exp(u)
+        return stats.invgamma.logpdf(x, a=nu / 2.0, scale=nu * s2 / 2.0) - 0.5 * n_j * u - ss_j / (2.0 * x) + u
+
+    grid = np.linspace(-30.0, 30.0, 6001)
+    top = float(np.max(logf(grid)))
+    u0 = float(grid[np.argmax(logf(grid))])
+    val, _ = integrate.quad(lambda u: np.exp(logf(u) - top), u0 - 30.0, u0 + 30.0, points=[u0], limit=200,
+                            epsabs=0.0, epsrel=1e-10)
+    return top + np.log(val)
 
 
 def shared_pit(out, n, ybar, m2, df_shift=0.0):
@@ -208,31 +224,35 @@ def shared_pit(out, n, ybar, m2, df_shift=0.0):
 N_SWEEPS = 20_000
 
 
+SEP_GRID = np.array([1.0, 2.0, 4.0, 8.0, 16.0, 40.0])
+SEP_WEIGHTS = np.array([1.0, 2.0, 3.0, 3.0, 2.0, 1.0]) / 12.0
+THETA_SHIFT = np.array([0.1, -0.2, 0.05, 0.3, -0.1, 0.0])  # theta_j - ybar_j: so that the n_j d^2 term matters
+
+
 @pytest.fixture(scope="module")
 def separate_grid_run():
-    """separate, nu on a grid with unequal weights, gamma prior on s^2, normal mu, half-Cauchy tau."""
+    """Full sweeps: separate, nu on a grid with unequal weights, gamma s^2 prior, normal mu, half-Cauchy tau."""
     n, ybar, m2 = _dyestuff_internal()
-    grid = (1.0, 2.0, 4.0, 8.0, 16.0, 40.0)
-    weights = (1.0, 2.0, 3.0, 3.0, 2.0, 1.0)
     out = run_kernel(0, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=20240611, mu_prior=(1, 0.3, 0.4),
-                     tau_prior=(2, 0.5), s2_prior=(2.0, 1.5), nu_grid=grid, nu_weights=weights)
-    return dict(out=out, n=n, ybar=ybar, m2=m2, grid=np.array(grid), weights=np.array(weights) / sum(weights),
-                mu_prior=(1, 0.3, 0.4), s2_prior=(2.0, 1.5))
+                     tau_prior=(2, 0.5), s2_prior=(2.0, 1.5), nu_grid=SEP_GRID, nu_weights=SEP_WEIGHTS)
+    return dict(out=out, n=n, ybar=ybar, mu_prior=(1, 0.3, 0.4))
 
 
 @pytest.fixture(scope="module")
 def separate_fixed_run():
-    """separate, nu fixed at 3, p(s^2) ∝ 1/s^2, flat mu, flat tau: the package defaults with nu fixed."""
+    """Full sweeps: separate, nu fixed at 3, p(s^2) ∝ 1/s^2, flat mu, flat tau."""
     n, ybar, m2 = _dyestuff_internal()
     out = run_kernel(0, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=7, nu_grid=(3.0,))
-    return dict(out=out, n=n, ybar=ybar, m2=m2, mu_prior=(0, 0.0, 1.0), s2_prior=(0.0, 0.0))
+    return dict(out=out, n=n, ybar=ybar, mu_prior=(0, 0.0, 1.0))
 
 
 @pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
 def test_theta_and_mu_given_separate_variances(which, request):
+    # theta and mu of sweep t are drawn given the variances as the previous sweep left them (after
+    # all of its variance moves), and those are the recorded sigma of row t - 1
     r = request.getfixturevalue(which)
     out, n = r["out"], r["n"]
-    v_prev = out["sigma"][:-1] ** 2 / n  # v_j = sigma_j^2 / n_j from the sweep before
+    v_prev = out["sigma"][:-1] ** 2 / n
     u = theta_pit(out, r["ybar"], v_prev)
     assert _ks_uniform(u) > ALPHA
     for j in range(u.shape[1]):  # per group too: an error in one group's index would hide in the pool
@@ -242,31 +262,64 @@ def test_theta_and_mu_given_separate_variances(which, request):
     assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], drop_tau=True)) < ALPHA
 
 
-@pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
-def test_sigma2_given_theta_s2_nu(which, request):
-    r = request.getfixturevalue(which)
-    u = sigma2_pit(r["out"], r["n"], r["ybar"], r["m2"])
-    assert _ks_uniform(u) > ALPHA
-    for j in range(u.shape[1]):
-        assert _ks_uniform(u[:, j]) > ALPHA / u.shape[1], j
-    assert _ks_uniform(sigma2_pit(r["out"], r["n"], r["ybar"], r["m2"], df_shift=-1.0)) < ALPHA
+def run_block_b(theta, s2, nu_idx, *, draws, seed, s2_prior, nu_grid, nu_weights, kern=kernel):
+    """Call kern.block_b `draws` times for `separate`, each time from the same (theta, s^2, nu).
+
+    In a sweep the variance block draws sigma_j^2 | theta, s^2, nu, then s^2 | sigma^2, nu, then
+    nu | sigma^2, s^2 (the extra moves of a sweep come before and after it). Returns, per call,
+    sigma^2 (draws, J), the new s^2 and the new nu.
+    """
+    n, ybar, m2 = _dyestuff_internal()
+    grid = np.asarray(nu_grid, dtype=float)
+    logprior = np.log(np.asarray(nu_weights) / np.sum(nu_weights))
+    rng = np.random.default_rng(seed)
+    state, sigma2, lp = np.zeros(kern.N_SCALARS), np.ones(len(n)), np.empty(len(grid))
+    out_sigma2, out_s2, out_nu = np.empty((draws, len(n))), np.empty(draws), np.empty(draws)
+    for i in range(draws):
+        state[kern.S2] = s2
+        state[kern.NU_IDX] = nu_idx
+        kern.block_b(rng, 0, n, ybar, m2, s2_prior[0], s2_prior[1], grid, logprior, state, theta, sigma2, lp)
+        out_sigma2[i] = sigma2
+        out_s2[i] = state[kern.S2]
+        out_nu[i] = grid[int(state[kern.NU_IDX])]
+    return out_sigma2, out_s2, out_nu
 
 
-@pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
-def test_s2_given_sigma2_nu(which, request):
-    r = request.getfixturevalue(which)
-    assert _ks_uniform(s2_pit(r["out"], r["s2_prior"])) > ALPHA
-    if r["s2_prior"][0] > 0:
-        assert _ks_uniform(s2_pit(r["out"], r["s2_prior"], drop_prior_shape=True)) < ALPHA
+BLOCK_B_CASES = [
+    # (nu index on SEP_GRID or None for nu fixed at 3, s^2 prior (a, b); (0, 0) is p(s^2) ∝ 1/s^2)
+    (2, (2.0, 1.5)),
+    (4, (2.0, 1.5)),
+    (None, (0.0, 0.0)),
+]
+
+
+@pytest.mark.parametrize("nu_idx,s2_prior", BLOCK_B_CASES)
+def test_variance_block_draws(nu_idx, s2_prior):
+    n, ybar, m2 = _dyestuff_internal()
+    theta = ybar + THETA_SHIFT
+    s2 = 0.8
+    grid, weights = (SEP_GRID, SEP_WEIGHTS) if nu_idx is not None else (np.array([3.0]), np.ones(1))
+    nu = float(grid[nu_idx or 0])
+    sig2, s2_new, nu_new = run_block_b(theta, s2, nu_idx or 0, draws=10_000, seed=41 + (nu_idx or 0),
+                                       s2_prior=s2_prior, nu_grid=grid, nu_weights=weights)
+    # sigma_j^2 | theta, s^2, nu: i.i.d. draws from one inverse gamma per group (KS, Bonferroni over groups)
+    right, wrong = sigma2_law(n, ybar, m2, theta, s2, nu), sigma2_law(n, ybar, m2, theta, s2, nu, df_shift=-1.0)
+    u = right.cdf(sig2)
+    for j in range(len(n)):
+        assert _ks_uniform(u[:, j]) > ALPHA / len(n), j
+    assert _ks_uniform(wrong.cdf(sig2)) < ALPHA
+    # s^2 | sigma^2, nu, given each call's own sigma^2
+    assert _ks_uniform(s2_pit(s2_new, sig2, nu, s2_prior)) > ALPHA
+    if s2_prior[0] > 0:
+        assert _ks_uniform(s2_pit(s2_new, sig2, nu, s2_prior, drop_prior_shape=True)) < ALPHA
     else:  # 1/s^2 prior: the wrong version takes shape J nu / 2 + 1 (a flat prior on s^2)
-        assert _ks_uniform(s2_pit(r["out"], (1.0, 0.0))) < ALPHA
-
-
-def test_nu_on_its_grid(separate_grid_run):
-    r = separate_grid_run
-    out, grid = r["out"], r["grid"]
-    k = np.searchsorted(grid, out["nu"])
-    assert np.all(grid[k] == out["nu"])
+        assert _ks_uniform(s2_pit(s2_new, sig2, nu, (1.0, 0.0))) < ALPHA
+    if nu_idx is None:
+        assert np.all(nu_new == 3.0)
+        return
+    # nu | sigma^2, s^2 on its grid, given each call's sigma^2 and s^2
+    k = np.searchsorted(grid, nu_new)
+    assert np.all(grid[k] == nu_new)
 
     def chi2_and_pit(p):
         # Chi-square of the counts against the summed exact probabilities. The draws are
@@ -276,10 +329,9 @@ def test_nu_on_its_grid(separate_grid_run):
         expected = p.sum(axis=0)
         observed = np.bincount(k, minlength=len(grid)).astype(float)
         keep = expected >= 5
-        e = np.append(expected[keep], expected[~keep].sum())
-        o = np.append(observed[keep], observed[~keep].sum())
-        if e[-1] == 0:
-            e, o = e[:-1], o[:-1]
+        e, o = expected[keep], observed[keep]
+        if (~keep).any():
+            e, o = np.append(e, expected[~keep].sum()), np.append(o, observed[~keep].sum())
         chi = stats.chisquare(o, e * o.sum() / e.sum()).pvalue
         # randomised PIT of a discrete draw: F(k - 1) + V p(k), V ~ U(0, 1) -- exactly uniform
         cdf = np.cumsum(p, axis=1)
@@ -288,11 +340,117 @@ def test_nu_on_its_grid(separate_grid_run):
         u = lower + np.random.default_rng(5).random(len(k)) * p[rows, k]
         return chi, _ks_uniform(u)
 
-    chi, ks = chi2_and_pit(nu_probs(out, grid, r["weights"]))
+    chi, ks = chi2_and_pit(nu_probs(sig2, s2_new, grid, weights))
     assert chi > ALPHA and ks > ALPHA
-    chi_w, ks_w = chi2_and_pit(nu_probs(out, grid, r["weights"], wrong=True))
+    chi_w, ks_w = chi2_and_pit(nu_probs(sig2, s2_new, grid, weights, wrong=True))
     assert chi_w < ALPHA and ks_w < ALPHA
     assert len(np.unique(k)) >= 3  # the grid is really explored, not stuck on one point
+
+
+def test_collapsed_nu_move_keeps_its_target():
+    # The Metropolis move of nu with every sigma_j^2 integrated out must leave
+    # p(nu | s^2, theta, y) ∝ w_k prod_j int N-likelihood x Scaled-Inv-chi2(sigma_j^2 | nu_k, s^2)
+    # invariant (the first half of a partially collapsed update; van Dyk and Park 2008, JASA 103).
+    # Independent chains start at exact draws of that target, make 10 moves, and the final nu's
+    # must still follow it (chi-square).
+    n, ybar, m2 = _dyestuff_internal()
+    theta, s2 = ybar + THETA_SHIFT, 0.8
+    ss = m2 + n * (ybar - theta) ** 2
+    logp = np.log(SEP_WEIGHTS) + np.array([sum(group_marginal(nu, s2, n[j], ss[j]) for j in range(len(n)))
+                                           for nu in SEP_GRID])
+    target = np.exp(logp - logp.max())
+    target /= target.sum()
+    assert target.max() < 0.9  # the target is spread over the grid, so the test has something to see
+    table, work = np.empty(len(SEP_GRID)), np.empty(len(n))
+    kernel.nu_lgamma_table(n, SEP_GRID, table)
+    rng = np.random.default_rng(2008)
+    chains, moves = 6000, 10
+    starts = rng.choice(len(SEP_GRID), size=chains, p=target)
+    finals = np.empty(chains, dtype=int)
+    state = np.zeros(kernel.N_SCALARS)
+    logprior = np.log(SEP_WEIGHTS)
+    for c in range(chains):
+        state[kernel.S2] = s2
+        state[kernel.NU_IDX] = starts[c]
+        for _ in range(moves):
+            kernel.collapsed_nu_step(rng, n, ybar, m2, SEP_GRID, logprior, table, state, theta, work)
+        finals[c] = int(state[kernel.NU_IDX])
+    counts = np.bincount(finals, minlength=len(SEP_GRID))
+    assert np.any(finals != starts)  # the move does move
+    assert stats.chisquare(counts, chains * target).pvalue > ALPHA
+    prior_only = SEP_WEIGHTS  # the deliberate error of ignoring the data in the move
+    assert stats.chisquare(counts, chains * prior_only).pvalue < ALPHA
+
+
+def s2_marginal_logpdf(log_s2, theta, nu, s2_prior):
+    """log p(log s^2 | theta, nu, y) + const with every sigma_j^2 integrated out, on a grid of log s^2.
+
+    Each group contributes (h s^2)^h / (h s^2 + SS_j/2)^(h + n_j/2) (h = nu/2; the normalising
+    constant of an inverse gamma, BDA3 Appendix A; checked against quadrature in the test); the
+    prior is 1/s^2 or Gamma(a, b), and "+ log s^2" is the Jacobian of the log.
+    """
+    n, ybar, m2 = _dyestuff_internal()
+    ss = m2 + n * (ybar - theta) ** 2
+    h = nu / 2.0
+    s2 = np.exp(log_s2)[:, None]
+    lp = np.sum(h * np.log(h * s2) - (h + n / 2.0) * np.log(h * s2 + ss / 2.0), axis=1)
+    if s2_prior[0] > 0:
+        lp += stats.gamma.logpdf(s2[:, 0], a=s2_prior[0], scale=1.0 / s2_prior[1]) + log_s2
+    return lp  # for 1/s^2 the prior and the Jacobian cancel
+
+
+@pytest.mark.parametrize("s2_prior,moves", [((0.0, 0.0), 1), ((2.0, 1.5), 10)])
+def test_common_scale_move_keeps_its_target(s2_prior, moves):
+    # The move that rescales s^2 and every sigma_j^2 by one factor must leave
+    # p(s^2, sigma^2 | theta, nu, y) invariant. Independent chains start at exact draws (s^2 by the
+    # inverse CDF of its marginal on a grid, then sigma_j^2 | s^2 from scipy.stats.invgamma), make
+    # `moves` moves (one suffices when the factor is an exact draw, as under 1/s^2; the gamma prior
+    # uses an accept/reject step), and s^2 and sigma_1^2 must still follow their exact marginals (KS).
+    n, ybar, m2 = _dyestuff_internal()
+    theta, nu = ybar + THETA_SHIFT, 4.0
+    ss = m2 + n * (ybar - theta) ** 2
+    h = nu / 2.0
+    # the closed form of the per-group integral against quadrature, at a few values of s^2
+    for s2 in (0.1, 0.8, 5.0):
+        closed = h * np.log(h * s2) - (h + n[3] / 2) * np.log(h * s2 + ss[3] / 2)
+        closed += special.gammaln(h + n[3] / 2) - special.gammaln(h)
+        assert closed == pytest.approx(group_marginal(nu, s2, n[3], ss[3]), abs=1e-7)
+    grid = np.linspace(-12.0, 8.0, 8001)
+    lp = s2_marginal_logpdf(grid, theta, nu, s2_prior)
+    dens = np.exp(lp - lp.max())
+    cdf = integrate.cumulative_trapezoid(dens, grid, initial=0.0)
+    cdf /= cdf[-1]
+    assert cdf[80] < 1e-6 and cdf[-81] > 1 - 1e-6
+    rng = np.random.default_rng(2000)
+    chains = 4000
+    log_s2 = np.interp(rng.random(chains), cdf, grid)
+    sigma2 = stats.invgamma.rvs(a=h + n / 2.0, scale=h * np.exp(log_s2)[:, None] + ss / 2.0,
+                                size=(chains, len(n)), random_state=rng)
+    state = np.zeros(kernel.N_SCALARS)
+    s2_after, sig1_after = np.empty(chains), np.empty(chains)
+    for c in range(chains):
+        state[kernel.S2] = np.exp(log_s2[c])
+        row = sigma2[c].copy()
+        for _ in range(moves):
+            kernel.scale_step(rng, n, ybar, m2, s2_prior[0], s2_prior[1], state, theta, row)
+        s2_after[c], sig1_after[c] = state[kernel.S2], row[0]
+    assert np.mean(s2_after != np.exp(log_s2)) > 0.5  # the move does move
+    assert stats.kstest(np.log(s2_after), lambda x: np.interp(x, grid, cdf)).pvalue > ALPHA
+    # sigma_1^2's marginal: the inverse gamma mixed over the s^2 grid
+    w = np.diff(cdf)
+    mid = np.exp(0.5 * (grid[1:] + grid[:-1]))
+    keep = w > 1e-12
+    w, mid = w[keep] / w[keep].sum(), mid[keep]
+
+    def sig1_cdf(x):
+        return stats.invgamma.cdf(np.asarray(x)[:, None], a=h + n[0] / 2.0, scale=h * mid + ss[0] / 2.0) @ w
+
+    assert stats.kstest(sig1_after, sig1_cdf).pvalue > ALPHA
+    # the deliberate error: a flat prior on s^2 in place of the one in force
+    wrong = np.exp(lp + grid - lp.max())
+    wrong_cdf = integrate.cumulative_trapezoid(wrong, grid, initial=0.0)
+    wrong_cdf /= wrong_cdf[-1]
+    assert stats.kstest(np.log(s2_after), lambda x: np.interp(x, grid, wrong_cdf)).pvalue < ALPHA
 
 
 def test_shared_sigma2_given_theta():

@@ -379,3 +379,18 @@ def test_many_groups_spanning_csv_chunks(tmp_path):
     np.testing.assert_array_equal(chunked.n, whole.n)
     np.testing.assert_allclose(chunked.raw_mean, whole.raw_mean, rtol=1e-15)
     np.testing.assert_allclose(chunked.m2, whole.m2, rtol=1e-7, atol=1e-12)
+
+
+def test_interlab_anova_is_in_user_units_at_extreme_scale():
+    """The classical ANOVA comparator reads the stored statistics; at 2^-997 its standard deviations
+    must be 2^-997 times those of the unscaled data (variances underflow, as any float64 would)."""
+    from pooling.report import interlab
+
+    g, y = _raw_table()
+    f = 2.0 ** -997
+    base = interlab(_fit_frame(g, y)[1])["anova"]
+    scaled = interlab(_fit_frame(g, y * f)[1])["anova"]
+    for k in ("grand_mean", "between_sd", "repeatability_sd", "reproducibility_sd"):
+        assert scaled[k] == pytest.approx(base[k] * f, rel=1e-12), k
+    for k in ("f", "p_value", "icc", "n0"):
+        assert scaled[k] == pytest.approx(base[k], rel=1e-12), k

@@ -157,6 +157,12 @@ def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assign
     stats = getattr(getattr(fit, "problem", None), "stats", None)
     if v.within != "known" and stats is not None:
         out["anova"] = oneway_anova(stats.n, stats.mean, stats.m2, stats.mean_lo)
+        u = getattr(stats, "unit", 1.0)  # statistics of 1e-300 or 1e300 data are held in a power-of-two unit
+        if out["anova"] is not None and u != 1.0:
+            for k in ("grand_mean", "between_sd", "repeatability_sd", "reproducibility_sd"):
+                out["anova"][k] *= u
+            for k in ("ss_between", "ss_within", "ms_between", "ms_within", "between_var", "within_var"):
+                out["anova"][k] *= u * u  # may under- or overflow: a variance of such data is not a float64
     elif v.within != "known":  # re-opened draws: rebuild M2_j from the stored sd
         m2 = np.where(v.n >= 2, v.raw_sd ** 2 * (v.n - 1), 0.0)
         out["anova"] = oneway_anova(v.n, v.raw_mean, np.nan_to_num(m2))

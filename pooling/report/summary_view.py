@@ -435,11 +435,13 @@ def print_summary(fit, out, stream=None) -> None:
     for name, s in fit.hyper_summary().items():
         w(f"{name:8}{g(s['mean']):>11}{g(s['sd']):>11}{g(s['q025']):>11}{g(s['q975']):>11}"
           f"{s['rhat']:>8.3f}{s['ess_bulk']:>10.0f}{s['ess_tail']:>10.0f}")
-    top, bottom = _ends(t, o.best)
+    order = np.argsort(t["theta_mean"].to_numpy(), kind="stable")
+    order = order[::-1] if o.best == "highest" else order
+    rows = order if len(order) <= 12 else np.concatenate([order[:6], order[-6:]])
     w()
     w(f"{'group':24}{'n':>7}{'raw mean':>11}{'posterior':>11}{'low':>11}{'high':>11}{'P(best)':>9}")
-    for i, (_, r) in enumerate(list(top.head(6).iterrows()) + list(bottom.head(6).iloc[::-1].iterrows())):
-        if i == 6:
+    for i, (_, r) in enumerate(t.iloc[rows].iterrows()):
+        if len(order) > 12 and i == 6:
             w("...")
         label = str(r["group"]).replace("\n", " ").replace("\r", " ").replace("\t", " ")
         label = label if len(label) <= 23 else label[:22] + "…"
