@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import io
 import re
+import warnings
 
 import matplotlib
 
@@ -48,7 +49,10 @@ def plain(label: str, width: int = 28) -> str:
 def _svg(fig: Figure, name: str) -> str:
     buf = io.StringIO()
     # a fixed salt for the ids matplotlib derives by hashing, so the same draws give the same file
-    with plt.rc_context({"svg.hashsalt": "pooling"}):
+    # labels in scripts the plotting font lacks (CJK, emoji) draw as boxes; the tables beside each
+    # picture carry the exact labels, so the per-glyph warnings would only be noise on a good run
+    with plt.rc_context({"svg.hashsalt": "pooling"}), warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from (current )?font", category=UserWarning)
         fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, dpi=150)
     plt.close(fig)
     text = buf.getvalue()
