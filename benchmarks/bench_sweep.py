@@ -79,7 +79,7 @@ def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) ->
 
 
 def run(quick: bool = False) -> dict:
-    budget, repeats = (0.04, 3) if quick else (0.15, 5)
+    budget, repeats = (0.04, 3) if quick else (0.1, 9)
     rows = []
     for J in J_QUICK if quick else J_ALL:
         stats = invented_groups(J, tau=0.5, sigma=1.0, n_lo=2, n_hi=20, seed=J)

@@ -1,8 +1,8 @@
-"""Summary mode: posterior summaries for 1e5 to 1e7 groups in memory that grows by about 2 kB a group.
+"""Summary mode: posterior summaries for 1e5 to 1e7 groups, in memory that grows by about 3 kB a group.
 
 Keeping every draw does not scale: 4 chains x 1,000 draws x 1e6 groups x 8 bytes is 32 GB for theta
-alone. In summary mode the chains run the same sweeps (pooling.summary_kernel calls kernel.py's
-fill_v, block_a and block_b on the same Generators), but each draw updates per-chain, per-group
+alone. In summary mode the chains run the same sweeps (pooling.summary_kernel calls kernel.sweeps
+itself, one sweep at a time, on the same Generators), but each draw updates per-chain, per-group
 running summaries; only the hyperparameters and a few kept groups keep every draw.
 
 When it is used. `pooling.fit(..., summary=None)` (and `pooling fit --summary auto`, the default)
@@ -47,7 +47,7 @@ How each per-group quantity is computed (user units; S = all draws of all chains
                      the reporter computes it from full draws (error 0).
 
 Kept groups: those named by the user, a default sample of KEEP_SAMPLE (200) groups drawn with
-numpy.random.default_rng(KEEP_SEED).choice(J, 200, replace=False) (the same for any run on the
+numpy.random.default_rng(KEEP_SEED = 20240715).choice(J, 200, replace=False) (the same for any run on the
 same number of groups), and up to TOP_KEEP (100) candidates for the top k chosen after warm-up:
 the groups whose optimistic reach (warm-up mean + 4 sd, in the direction of "best") is at least the
 k-th largest pessimistic reach (mean - 4 sd), the highest reaches first.
@@ -68,12 +68,11 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from . import kernel
 from . import summary_kernel as sk
 from .errors import InputError
 from .model import Problem
 from .posterior import Fit, _jsonable_miss, diagnose_raw, to_idata
-from .sampler import RawDraws, Settings, _Chain, _chunk_size, _progress, _run_phase
+from .sampler import RawDraws, Settings, _Chain, _progress, _run_phase
 
 AUTO_GROUPS = 20_000
 AUTO_BYTES = 8 * 2**30

@@ -32,7 +32,7 @@ import math
 import numpy as np
 from numba import njit
 
-from .kernel import ETA, MU, NU_IDX, S2, SIGMA2, sweeps
+from .kernel import ETA, MU, SIGMA2, sweeps
 
 # summarised quantities: rows of the pilot arrays and (through rowmap) of the histograms
 Q_THETA, Q_LOGSIGMA, Q_LOGITW, Q_LOGITF, Q_BIAS = range(5)
@@ -238,18 +238,19 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
         tau2 = math.exp(2.0 * eta)
         mu_u = state[MU] * scale + center
         row = it
-        out_hyper[row, Y_MU] = state[MU]
-        out_hyper[row, Y_TAU] = math.exp(eta)
-        out_hyper[row, Y_S] = math.sqrt(state[S2]) if within == 0 else 0.0
-        out_hyper[row, Y_NU] = nu_grid[int(state[NU_IDX])] if within == 0 else 0.0
-        out_hyper[row, Y_SIGMA] = math.sqrt(state[SIGMA2]) if within == 1 else 0.0
+        # the stored draws are what kernel.sweeps stores in a full run
+        out_hyper[row, Y_MU] = o_mu[0]
+        out_hyper[row, Y_TAU] = o_tau[0]
+        out_hyper[row, Y_S] = o_s[0] if within == 0 else 0.0
+        out_hyper[row, Y_NU] = o_nu[0] if within == 0 else 0.0
+        out_hyper[row, Y_SIGMA] = o_sigma[0, 0] if within == 1 else 0.0
         out_evals[row] = ev
         # kept groups first: their sorted values set up the exact-rank lookup for the pass over J
         for i in range(m):
             sv[i] = sign * theta[kept[i]]
-            out_theta[row, i] = theta[kept[i]]
+            out_theta[row, i] = o_theta[0, kept[i]]
             if within == 0:
-                out_sigma[row, i] = math.sqrt(sigma2[kept[i]])
+                out_sigma[row, i] = o_sigma[0, kept[i]]
         order = np.argsort(sv)
         for r in range(m):
             ss[r] = sv[order[r]]

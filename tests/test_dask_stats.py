@@ -178,12 +178,23 @@ def test_without_dask_the_message_says_what_to_install(monkeypatch):
         D.read_table_dask("whatever/*.csv", "lab", "y")
 
 
-def test_the_command_line_reads_a_quoted_glob(tmp_path, run_cli):
+def test_the_command_line_reads_a_quoted_glob_on_the_cluster(tmp_path, run_cli, cluster):
     folder = tmp_path / "cli"
     texts = _write_parts(folder, offset=1e9, seed=9, files=2, rows=300, groups=12)
     out = tmp_path / "run"
     code, _, err = run_cli("fit", str(folder / "part-*.csv"), "--group", "lab", "--value", "y", "--out", out,
-                           "--chains", 2, "--warmup", 200, "--draws", 200, "--max-draws", 200, "--seed", 1, "--quiet")
+                           "--cluster", cluster.scheduler_address, "--chains", 2, "--warmup", 200, "--draws", 200,
+                           "--max-draws", 200, "--seed", 1, "--quiet")
     assert code in (0, 3), err  # 3: written, but a short run may miss the diagnostics targets
     groups = pd.read_csv(out / "groups.csv")
     assert len(groups) == len(_exact(texts))
+
+
+def test_the_command_line_refuses_a_folder_of_summaries(tmp_path, run_cli):
+    folder = tmp_path / "summaries"
+    _write_parts(folder, offset=10.0, seed=10, files=2, rows=20)
+    code, _, err = run_cli("fit", folder, "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s",
+                           "--out", tmp_path / "never")
+    assert code == 2
+    assert "reads measurements (--value COL)" in err and "Traceback" not in err
+    assert not (tmp_path / "never").exists()

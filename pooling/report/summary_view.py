@@ -194,14 +194,18 @@ def _group_rows(t, f: Fmt, o, rows_of) -> tuple[list, list]:
             rank += f" ({int(r['rank_low'])}–{int(r['rank_high'])})"
         elif r["rank_mean_error"] > 0.05:
             rank += f" ± {r['rank_mean_error']:.1f}"
-        cells = [esc(plots_label(r["group"])), f"{int(r['n'])}", f.v(r["raw_mean"]), f.v(r["theta_mean"]),
+        cells = [_nowrap(plots_label(r["group"])), f"{int(r['n'])}", f.v(r["raw_mean"]), f.v(r["theta_mean"]),
                  f"{f.v(r['theta_low'])} to {f.v(r['theta_high'])}", f.v(r["theta_limit_error"], 1), f"{r['shrink_weight']:.2f}",
                  rank, Fmt.p(r["p_best"]), Fmt.p(r["p_top_k"])]
         if o.threshold is not None:
             cells.append(Fmt.p(r["p_above"]))
-        cells.append(esc(r["kept"]) if r["kept"] else "")
+        cells.append(_nowrap(r["kept"]) if r["kept"] else "")
         rows.append(cells)
     return head, rows
+
+
+def _nowrap(text) -> str:
+    return f'<span style="white-space:nowrap">{esc(text)}</span>'
 
 
 def render(fit, o, t, pairs, summary: dict | None = None) -> str:
