@@ -193,46 +193,62 @@ def _run_phase(chains, problem, n_sweeps, store, adapt, threads, bar):
             raise Interrupted("stopped by the user; the draws so far were discarded and nothing was written") from None
 
 
+def resolve_seed(settings: Settings) -> int:
+    """The run's seed: the one given, or a fresh one (recorded in the summary so the run can be repeated)."""
+    return settings.seed if settings.seed is not None else int(np.random.SeedSequence().entropy % (2**63))
+
+
+def draw_until_targets(chains, problem: Problem, settings: Settings, threads: int, bar, seed: int, start: float,
+                       diagnose, collect=None) -> tuple[RawDraws, list[dict], int]:
+    """Draw `settings.draws` per chain, then extend until `diagnose` reports no misses or the cap is reached.
+
+    `collect(chains, problem, seed, settings, rounds, start)` gathers the chains' draws (default: every
+    draw of every group). Returns the collected draws, the record of each round and the draws per chain.
+    """
+    collect = collect or _collect
+    rounds: list[dict] = []
+    todo, have = settings.draws, 0
+    while True:
+        _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar)
+        have += todo
+        raw = collect(chains, problem, seed, settings, rounds, start)
+        misses, record = diagnose(raw)
+        record["draws_per_chain"] = have
+        rounds.append(record)
+        if not misses or have >= settings.draw_cap:
+            raw.rounds = rounds
+            raw.seconds = time.perf_counter() - start
+            return raw, rounds, have
+        want = int(np.ceil(have * record.get("growth", 1.5)))
+        todo = int(min(max(want - have, have // 4, 1), settings.draw_cap - have))
+        if bar is not None:
+            bar.total += settings.chains * todo
+            bar.refresh()
+
+
 def sample_raw(problem: Problem, settings: Settings | None = None, progress: bool | None = None,
                init: list[dict] | None = None, diagnose=None) -> RawDraws:
     """Warm up, draw, and extend until `diagnose(draws)` reports no misses or the cap is reached.
 
-    diagnose takes a RawDraws and returns (misses, round_record); by default every chain is
-    checked on mu, tau, theta and sigma.
+    diagnose takes a RawDraws and returns (misses, round_record); by default
+    posterior.diagnose_raw with the settings' targets.
     """
     settings = settings or Settings()
     if diagnose is None:
         from .posterior import diagnose_raw
 
         diagnose = lambda raw: diagnose_raw(raw, settings.targets)  # noqa: E731
-    seed = settings.seed if settings.seed is not None else int(np.random.SeedSequence().entropy % (2**63))
+    seed = resolve_seed(settings)
     streams = np.random.SeedSequence(seed).spawn(settings.chains)
     chains = [_Chain(problem, s, None if init is None else init[i]) for i, s in enumerate(streams)]
     threads = settings.threads or min(settings.chains, os.cpu_count() or 1)
     start = time.perf_counter()
     bar = _progress(settings.chains * (settings.warmup + settings.draws), progress)
-    rounds = []
     try:
         if settings.warmup:
             _run_phase(chains, problem, settings.warmup, store=False, adapt=True, threads=threads, bar=bar)
-        todo = settings.draws
-        have = 0
-        while True:
-            _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar)
-            have += todo
-            raw = _collect(chains, problem, seed, settings, rounds, start)
-            misses, record = diagnose(raw)
-            record["draws_per_chain"] = have
-            rounds.append(record)
-            if not misses or have >= settings.draw_cap:
-                raw.rounds = rounds
-                raw.seconds = time.perf_counter() - start
-                return raw
-            want = int(np.ceil(have * record.get("growth", 1.5)))
-            todo = int(min(max(want - have, have // 4, 1), settings.draw_cap - have))
-            if bar is not None:
-                bar.total += settings.chains * todo
-                bar.refresh()
+        raw, _, _ = draw_until_targets(chains, problem, settings, threads, bar, seed, start, diagnose)
+        return raw
     finally:
         if bar is not None:
             bar.close()

@@ -72,7 +72,7 @@ from . import summary_kernel as sk
 from .errors import InputError
 from .model import Problem
 from .posterior import Fit, _jsonable_miss, diagnose_raw, to_idata
-from .sampler import RawDraws, Settings, _Chain, _progress, _run_phase
+from .sampler import RawDraws, Settings, _Chain, _progress, _run_phase, draw_until_targets, resolve_seed
 
 AUTO_GROUPS = 20_000
 AUTO_BYTES = 8 * 2**30
@@ -352,7 +352,7 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options=N
 
     k = check_k(o.k, problem.J)
     named = resolve_groups(problem.stats.labels, sopts.keep) if sopts.keep else np.zeros(0, dtype=np.int64)
-    seed = settings.seed if settings.seed is not None else int(np.random.SeedSequence().entropy % (2**63))
+    seed = resolve_seed(settings)
     streams = np.random.SeedSequence(seed).spawn(settings.chains)
     chains = [_SummaryChain(problem, s, None if init is None else init[i]) for i, s in enumerate(streams)]
     opt = _options_vector(problem, o)
@@ -364,7 +364,6 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options=N
     start = time.perf_counter()
     bar = _progress(settings.chains * (settings.warmup + settings.draws), progress)
     pilot = max(settings.warmup // 2, min(settings.warmup, 10))
-    rounds: list[dict] = []
     try:
         for mode, n_sweeps in (("warm", settings.warmup - pilot), ("pilot", pilot)):
             for c in chains:
@@ -387,27 +386,13 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options=N
             c.count[0] = 0.0
             c.acc = {"run": acc["run"][i], "hits": acc["hits"][i], "hist": acc["hist"][i], "ext": acc["ext"][i],
                      "bcnt": np.zeros(G, dtype=np.int64), "bidx": np.zeros(problem.J, dtype=np.int32)}
-        todo, have = settings.draws, 0
-        while True:
-            _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar)
-            have += todo
-            raw = _collect(chains, problem, seed, settings, rounds, start)
-            misses, record = diagnose_raw(raw, settings.targets)
-            record["draws_per_chain"] = have
-            rounds.append(record)
-            if not misses or have >= settings.draw_cap:
-                break
-            want = int(np.ceil(have * record.get("growth", 1.5)))
-            todo = int(min(max(want - have, have // 4, 1), settings.draw_cap - have))
-            if bar is not None:
-                bar.total += settings.chains * todo
-                bar.refresh()
+        raw, rounds, have = draw_until_targets(chains, problem, settings, threads, bar, seed, start,
+                                               lambda r: diagnose_raw(r, settings.targets), collect=_collect)
     finally:
         if bar is not None:
             bar.close()
     for c in chains:
         c.acc = None
-    raw.rounds = rounds
     raw.final_states = [c.export_state() for c in chains]
     raw.seconds = time.perf_counter() - start
     ranks = np.stack([np.concatenate([part["rank"] for part in c.parts], axis=0) for c in chains])
