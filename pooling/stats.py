@@ -69,8 +69,10 @@ class GroupStats:
         return len(self.labels)
 
     @property
-    def N(self) -> int:
-        return int(self.n.sum())
+    def N(self) -> float:
+        """Measurements in all; fractional when older batches are down-weighted (store half-life)."""
+        total = float(self.n.sum())
+        return int(total) if total == int(total) else total
 
     @property
     def sd(self) -> np.ndarray:

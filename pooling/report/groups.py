@@ -25,6 +25,13 @@ BEST = ("highest", "lowest")
 # ---------------------------------------------------------------------------------------------
 # ranks
 
+
+def _whole_or_fraction(n):
+    """Group sizes as whole numbers, unless down-weighting (a store's half-life) made them fractional."""
+    n = np.asarray(n)
+    return n.astype(np.int64) if np.all(n == np.round(n)) else n.astype(np.float64)
+
+
 def rank_draws(theta: np.ndarray, best: str = "highest", chunk: int = 256) -> np.ndarray:
     """Rank of each group within each draw, 1 = best: R[s, j] = 1 + #{k : theta_sk better than theta_sj}."""
     if best not in BEST:
@@ -214,7 +221,7 @@ def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", thr
     if allowed_bias is not None and not allowed_bias > 0:
         raise InputError(f"bad option: the allowed bias must be a positive number; found {allowed_bias:g}")
     J = v.J
-    cols: dict[str, np.ndarray] = {"group": np.array(v.labels, dtype=object), "n": v.n.astype(np.int64),
+    cols: dict[str, np.ndarray] = {"group": np.array(v.labels, dtype=object), "n": _whole_or_fraction(v.n),
                                    "raw_mean": v.raw_mean}
     if v.within == "known":
         cols["std_error"] = v.std_error

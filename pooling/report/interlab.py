@@ -16,6 +16,7 @@ from scipy import stats as sps
 
 from ..errors import InputError
 from .draws import BLOCK, View, interval, view
+from .groups import _whole_or_fraction
 
 LIMIT_FACTOR = 2.8  # ISO 5725-6: repeatability limit r = 2.8 s_r, reproducibility limit R = 2.8 s_R
 Z_WARNING, Z_ACTION = 2.0, 3.0  # ISO 13528:2015, 9.4.1
@@ -183,7 +184,7 @@ def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assign
         if allowed_bias is not None:
             pover[a:a + BLOCK] = (np.abs(bias) > allowed_bias).mean(axis=0)
     labs = pd.DataFrame({
-        "group": list(v.labels), "n": v.n.astype(np.int64), "raw_mean": v.raw_mean,
+        "group": list(v.labels), "n": _whole_or_fraction(v.n), "raw_mean": v.raw_mean,
         "bias_mean": bm, "bias_low": lo, "bias_high": hi,
     })
     if allowed_bias is not None:
