@@ -304,8 +304,11 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, str
     # Arrow-backed strings are valid UTF-8 already (no surrogates), and its regex scan is fast
     arrow = getattr(labels.dtype, "storage", None) == "pyarrow"
     pattern = _BAD_LABEL_CHARS.replace("\ud800-\udfff", "") if arrow else _BAD_LABEL_CHARS
-    bad = labels.str.contains(pattern, regex=True).to_numpy(dtype=bool, na_value=False)
-    if bad.any():
+    # labels repeat: scan each distinct one once, then find the first row that carries a bad one
+    distinct = pd.Series(labels.unique(), dtype=labels.dtype)
+    bad_distinct = distinct[distinct.str.contains(pattern, regex=True).to_numpy(dtype=bool, na_value=False)]
+    if len(bad_distinct):
+        bad = labels.isin(bad_distinct).to_numpy(dtype=bool)
         i = int(np.argmax(bad))
         ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()
         raise InputError(
