@@ -2,8 +2,8 @@
 
 Data. Source: the dyestuff experiment of Davies (1947), yield of dyestuff in grams of standard
 colour from 5 preparations of each of 6 batches of an intermediate product, as tabled in Box and
-Tiao (1973), "Bayesian Inference in Statistical Analysis", Table 5.1.1 (from memory). The
-transcription is checked below against the published analysis of variance (Box and Tiao sec. 5.1,
+Tiao (1973), "Bayesian Inference in Statistical Analysis", Table 5.1.1 (from memory). Our
+copy of these numbers is checked below against the published analysis of variance (Box and Tiao sec. 5.1,
 also from memory): a between-batch mean square of 11271.5 and a within mean square of 2451.25,
 on 5 and 24 degrees of freedom; the analysis of variance itself is computed with statsmodels.
 
@@ -58,7 +58,7 @@ def frame() -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["batch", "grams"])
 
 
-def test_transcription_matches_published_anova():
+def test_typed_data_match_published_anova():
     from statsmodels.formula.api import ols
     from statsmodels.stats.anova import anova_lm
 
