@@ -119,6 +119,16 @@ def _accuracy(fit, full, options) -> dict:
     d = np.abs(t["rank_mean"] - ref["rank_mean"]).to_numpy()[others]
     res["rank_mean"] = {"within_bound": bool(np.all(d <= t["rank_mean_error"].to_numpy()[others] + 1e-9)),
                         "max_abs_error": float(d.max()), "median_bound": float(np.median(t["rank_mean_error"]))}
+    # rank intervals of the groups not kept: contain the exact (full-draw) interval, ends within rank_limit_error
+    lo, hi = ref["rank_low"].to_numpy()[others], ref["rank_high"].to_numpy()[others]
+    g_lo, g_hi = t["rank_low"].to_numpy()[others].astype(float), t["rank_high"].to_numpy()[others].astype(float)
+    e = t["rank_limit_error"].to_numpy()[others]
+    res["rank_interval"] = {"contains_exact": bool(np.all(g_lo <= lo) and np.all(g_hi >= hi)),
+                            "within_bound": bool(np.all(lo - g_lo <= e) and np.all(g_hi - hi <= e)),
+                            "median_bound": float(np.median(e)), "max_bound": float(np.max(e)),
+                            "median_extra_width": float(np.median((g_hi - g_lo) - (hi - lo))),
+                            "median_exact_width": float(np.median(hi - lo)),
+                            "max_end_error": float(max(np.max(lo - g_lo), np.max(g_hi - hi)))}
     return res
 
 

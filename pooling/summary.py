@@ -1,4 +1,4 @@
-"""Summary mode: posterior summaries for 1e5 to 1e7 groups, in memory that grows by about 3 kB a group.
+"""Summary mode: posterior summaries for 1e5 to 1e7 groups, in memory that grows by about 4 kB a group.
 
 Keeping every draw does not scale: 4 chains x 1,000 draws x 1e6 groups x 8 bytes is 32 GB for theta
 alone. In summary mode the chains run the same sweeps (pooling.summary_kernel calls kernel.sweeps
@@ -42,7 +42,18 @@ How each per-group quantity is computed (user units; S = all draws of all chains
                      G = max(1024, J) equal buckets of sign * theta; a group's rank lies between
                      1 + (groups in better buckets) and that plus its bucket's count - 1; the midpoint
                      is averaged and so is the half-width, which bounds the error (rank_mean_error).
-  rank interval      kept groups only, exact (their rank is counted exactly in every draw).
+  rank interval      kept groups: exact (their rank is counted exactly in every draw). Every other group:
+                     the interval [rank_low, rank_high] contains the exact one (the inverted-CDF
+                     quantiles of the group's ranks over all S draws, as the reporter computes them).
+                     Per draw, lo = 1 + (groups in better buckets) <= rank <= lo + (bucket count - 1)
+                     <= lo + W_j, W_j the largest bucket count - 1 seen by j. lo is counted into a
+                     per-group histogram on one rank grid of RANK_BINS (96) bins: one rank a bin for
+                     ranks 1..RANK_EXACT (32), then geometric edges up to J (at J = 1e6 each bin about
+                     18% wider than the one before). The quantile's order statistic of lo is located
+                     in its bin [a, z] exactly, so the exact rank quantile is in [a, z + W_j]; rank_low
+                     is the a of the lower one, rank_high the z + W_j of the upper one, and
+                     rank_limit_error = max over both ends of (z + W_j - a): how far each end can be
+                     from the exact one. Memory: RANK_BINS uint16 counts + one uint32 per group and chain.
   kept groups        every draw of theta_j (and sigma_j), so every column of theirs is computed as
                      the reporter computes it from full draws (error 0).
 
@@ -80,6 +91,8 @@ KEEP_SAMPLE = 200
 KEEP_SEED = 20_240_715
 TOP_KEEP = 100
 BINS = 64
+RANK_BINS = 96  # bins of the shared rank grid for every group's rank interval
+RANK_EXACT = 32  # of which the first hold one rank each (ranks 1..32), the rest are geometric up to J
 MIN_WARMUP = 20
 BIAS_HIST_GROUPS = 100_000  # below this many groups the bias theta_j - mu gets its own histogram
 MAX_NAMED = 5_000
@@ -138,8 +151,10 @@ def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bo
     count = 2 if draw_cap <= np.iinfo(np.uint16).max else 4
     # per chain: histograms, out-of-grid extremes, running means, counters, bucket index and count,
     # the chain's theta and sigma^2 and kernel.sweeps' two scratch arrays; shared: grid origin and widths
-    per_chain = rows * (bins + 2) * count + rows * 16 + sk.N_R * 8 + sk.N_H * 4 + 4 + 8 + 4 * 8
-    return int(J * (chains * per_chain + rows * 24))
+    # and the rank interval's histogram of lower rank bounds and its largest bucket count (uint32)
+    rank_bins = len(rank_grid(J, RANK_BINS, RANK_EXACT)) - 1
+    per_chain = rows * (bins + 2) * count + rows * 16 + sk.N_R * 8 + sk.N_H * 4 + 4 + 8 + 4 * 8 + rank_bins * count + 4
+    return int(J * (chains * per_chain + rows * 24 + 4))  # + 4: the shared rank -> rank-bin table
 
 
 # ---------------------------------------------------------------------------------------------
@@ -191,7 +206,7 @@ class _SummaryChain(_Chain):
                               self.state, self.theta, self.sigma2, sh.logn, sh.opt, sh.k, self.count,
                               a["run"], a["hits"], sh.rowmap, sh.glo, sh.ginv, a["hist"], a["ext"], sh.bucket,
                               a["bcnt"], a["bidx"], sh.kept, out["hyper"][sl], out["evals"][sl], out["theta"][sl],
-                              out["sigma"][sl], out["rank"][sl])
+                              out["sigma"][sl], out["rank"][sl], sh.rank_bin, a["rhist"], a["wmax"], a["lobin"])
             done += k
             tick(k)
         self.parts.append(out)
@@ -216,6 +231,8 @@ class _Shared:
     gw: np.ndarray | None = None
     bucket: np.ndarray | None = None
     kept: np.ndarray | None = None
+    rank_edges: np.ndarray | None = None  # (RB + 1,) rank grid: bin b holds ranks edges[b] .. edges[b + 1] - 1
+    rank_bin: np.ndarray | None = None  # (J + 2,) the bin of each rank 1..J (0 and J + 1 unused)
     kept_reason: list[str] = field(default_factory=list)
 
 
@@ -292,6 +309,17 @@ def _rank_buckets(sh: _Shared, x_mean: np.ndarray, x_sd: np.ndarray) -> int:
     return G
 
 
+def rank_grid(J: int, bins: int = RANK_BINS, exact: int = RANK_EXACT) -> np.ndarray:
+    """Integer edges 1 = e_0 < ... < e_B = J + 1 of the rank grid: unit bins for ranks 1..exact, then
+    geometric (rounded, duplicates dropped) up to J; every rank its own bin when J <= bins."""
+    if J <= bins:
+        return np.arange(1, J + 2, dtype=np.int64)
+    exact = min(exact, bins - 1)
+    head = np.arange(1, exact + 2, dtype=np.int64)
+    tail = np.rint(np.geomspace(exact + 1, J + 1, bins - exact + 1)).astype(np.int64)
+    return np.unique(np.concatenate([head, tail, [J + 1]]))
+
+
 def _choose_kept(problem: Problem, sopts: SummaryOptions, named: np.ndarray, x_mean, x_sd, k: int):
     """Kept groups (sorted by position) and why each is kept: named, sample, or a top-k candidate."""
     J = problem.J
@@ -332,6 +360,8 @@ class Accumulated:
     ranks: np.ndarray  # (chains, draws, kept): exact ranks of the kept groups
     buckets: int
     within_sd: np.ndarray  # (chains, draws): sqrt(mean_j sigma_j^2), internal units (0 for known)
+    rhist: np.ndarray | None = None  # (chains, J, rank bins): counts of each draw's lower rank bound
+    wmax: np.ndarray | None = None  # (chains, J): largest bucket count - 1 seen
 
 
 def sample_summary(problem: Problem, settings: Settings | None = None, options=None,
@@ -378,6 +408,9 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options=N
         x_mean, x_sd = sign * mean[sk.Q_THETA], sd[sk.Q_THETA]
         del mean, sd
         G = _rank_buckets(sh, x_mean, x_sd)
+        sh.rank_edges = rank_grid(problem.J, RANK_BINS, RANK_EXACT)  # read at run time, so a test can shrink it
+        sh.rank_bin = (np.searchsorted(sh.rank_edges, np.arange(problem.J + 2), side="right") - 1).astype(np.int32)
+        sh.rank_bin[0], sh.rank_bin[-1] = 0, len(sh.rank_edges) - 2
         sh.kept, sh.kept_reason = _choose_kept(problem, sopts, named, x_mean, x_sd, k)
         del x_mean, x_sd
         acc = _allocate(problem, settings, sh, G)
@@ -385,7 +418,8 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options=N
             c.mode = "draw"
             c.count[0] = 0.0
             c.acc = {"run": acc["run"][i], "hits": acc["hits"][i], "hist": acc["hist"][i], "ext": acc["ext"][i],
-                     "bcnt": np.zeros(G, dtype=np.int64), "bidx": np.zeros(problem.J, dtype=np.int32)}
+                     "bcnt": np.zeros(G, dtype=np.int64), "bidx": np.zeros(problem.J, dtype=np.int32),
+                     "rhist": acc["rhist"][i], "wmax": acc["wmax"][i], "lobin": np.zeros(G, dtype=np.int64)}
         raw, rounds, have = draw_until_targets(chains, problem, settings, threads, bar, seed, start,
                                                lambda r: diagnose_raw(r, settings.targets), collect=_collect)
     finally:
@@ -397,7 +431,8 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options=N
     raw.seconds = time.perf_counter() - start
     ranks = np.stack([np.concatenate([part["rank"] for part in c.parts], axis=0) for c in chains])
     sr = np.stack([np.concatenate([part["hyper"][:, sk.Y_SR] for part in c.parts]) for c in chains])
-    return raw, Accumulated(acc["run"], acc["hits"], acc["hist"], acc["ext"], sh, have, grid, ranks, G, sr)
+    return raw, Accumulated(acc["run"], acc["hits"], acc["hist"], acc["ext"], sh, have, grid, ranks, G, sr,
+                            acc["rhist"], acc["wmax"])
 
 
 def _allocate(problem: Problem, settings: Settings, sh: _Shared, G: int) -> dict:
@@ -407,7 +442,8 @@ def _allocate(problem: Problem, settings: Settings, sh: _Shared, G: int) -> dict
     ext = np.empty((C, rows, J, 2))
     ext[..., 0], ext[..., 1] = np.inf, -np.inf
     return {"run": np.zeros((C, sk.N_R, J)), "hits": np.zeros((C, sk.N_H, J), dtype=np.uint32),
-            "hist": np.zeros((C, rows, J, sh.bins + 2), dtype=count), "ext": ext}
+            "hist": np.zeros((C, rows, J, sh.bins + 2), dtype=count), "ext": ext,
+            "rhist": np.zeros((C, J, len(sh.rank_edges) - 1), dtype=count), "wmax": np.zeros((C, J), dtype=np.uint32)}
 
 
 def _collect(chains, problem: Problem, seed, settings, rounds, start) -> RawDraws:
@@ -447,6 +483,9 @@ EXTRA_COLUMNS = {
                         "plus max |mu_s - mean mu|)",
     "rank_mean_error": "largest possible error of rank_mean (half the rank bucket's count - 1, averaged over draws); "
                        "0 for kept groups",
+    "rank_limit_error": "largest possible error of rank_low and rank_high, in ranks: the exact rank_low is in "
+                        "[rank_low, rank_low + e], the exact rank_high in [rank_high - e, rank_high] (rank grid bin "
+                        "plus the largest rank-bucket count - 1 seen); 0 for kept groups",
     "theta_rhat_classic": "classic R-hat of theta_j from the chains' means and variances (not split, not "
                           "rank-normalised): a screen for all groups",
 }
@@ -560,11 +599,17 @@ def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata
     if o.allowed_bias is not None:
         cols["p_bias_over"] = hits[sk.H_BIAS] / S
     cols["rank_mean"] = run[:, sk.R_RANK].sum(axis=0) / S
-    cols["rank_low"] = np.full(J, np.nan)
-    cols["rank_high"] = np.full(J, np.nan)
+    from .report.groups import _quantile_sorted_index
+
+    r_lo, r_hi, r_err = np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64)
+    sk.rank_intervals(acc.rhist, acc.wmax, sh.rank_edges, _quantile_sorted_index(S, probs[0]),
+                      _quantile_sorted_index(S, probs[1]), J, r_lo, r_hi, r_err)
+    cols["rank_low"] = r_lo.astype(float)
+    cols["rank_high"] = r_hi.astype(float)
     cols["p_best"] = hits[sk.H_BEST] / S
     cols["p_top_k"] = hits[sk.H_TOP] / S
     errors["rank_mean_error"] = run[:, sk.R_RANK_ERR].sum(axis=0) / S
+    errors["rank_limit_error"] = r_err.astype(float)
     z, signal, _ = z_scores(st.raw_mean, o.assigned, o.sigma_pt)
     cols["z_score"], cols["z_signal"] = z, signal
     # kept groups: every column from their stored draws, as the reporter computes it (errors 0)
@@ -577,13 +622,14 @@ def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata
         if name in cols and name in exact:
             cols[name][kept] = exact[name].to_numpy()
     for name in errors:
-        if name != "rank_mean_error":
+        if name not in ("rank_mean_error", "rank_limit_error"):
             errors[name][kept] = 0.0
     rk = rank_summary(acc.ranks.reshape(-1, len(kept)), o.level, sh.k)
     cols["rank_mean"][kept] = rk["rank_mean"]
     cols["rank_low"][kept] = rk["rank_low"]
     cols["rank_high"][kept] = rk["rank_high"]
     errors["rank_mean_error"][kept] = 0.0
+    errors["rank_limit_error"][kept] = 0.0
     with np.errstate(divide="ignore", invalid="ignore"):
         cols["shrink_realised"] = np.where(dist != 0, (st.raw_mean - cols["theta_mean"]) / dist, np.nan)
     table = pd.DataFrame(cols)
@@ -593,7 +639,7 @@ def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata
     reason[kept] = sh.kept_reason
     table["kept"] = reason
     for name in ("theta_limit_error", "sigma_limit_error", "shrink_limit_error", "outside_limit_error",
-                 "bias_limit_error", "rank_mean_error"):
+                 "bias_limit_error", "rank_mean_error", "rank_limit_error"):
         if name in errors:
             table[name] = errors[name]
     rhat = _classic_rhat(run, D)
@@ -602,6 +648,7 @@ def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata
     figures = {
         "draws_total": S, "kept_groups": int(len(kept)), "bins": sh.bins, "rank_buckets": acc.buckets,
         "grid_half_width_sd": acc.grid["grid_half_width_sd"], "mu_spread_D": D_mu,
+        "rank_grid_bins": int(len(sh.rank_edges) - 1),
         "limit_error": {name: {"max": float(np.max(e)), "median": float(np.median(e))} for name, e in errors.items()},
         "classic_rhat": {"max": float(finite.max()) if finite.size else None,
                          "above_1.01": int(np.sum(finite >= 1.01)), "groups": int(finite.size)},
@@ -627,7 +674,11 @@ METHODS = {
                           "known, where w_j is a decreasing function of one hyperparameter ratio",
     "rank_mean": "kept groups exact; others by a bucket count of all groups per draw ({G} buckets): the "
                  "midpoint of the possible ranks, off by at most rank_mean_error",
-    "rank_interval": "kept groups only, exact from their rank in every draw",
+    "rank_interval": "kept groups exact from their rank in every draw; others from a histogram, per group, of "
+                     "each draw's lower rank bound (1 + groups in better buckets) on one rank grid of {RB} bins "
+                     "({RGRID}), widened by the largest bucket "
+                     "count - 1 seen: the interval contains the exact one, each end off by at most "
+                     "rank_limit_error",
     "kept_groups": "named groups, {sample} groups from numpy.random.default_rng({seed}).choice(J, {sample}, "
                    "replace=False), and up to {top} top-k candidates chosen after warm-up",
     "diagnostics": "run-length control on mu, tau, the variance hyperparameters and the kept groups' stored draws; "
@@ -691,7 +742,10 @@ def fit_summary(problem: Problem, settings: Settings | None = None, options=None
             "theta limits minus the posterior mean of mu: off by at most the theta bound plus "
             f"max_s |mu_s - mean mu| = {figures['mu_spread_D']:.3g}")
     methods = {key: text.format(bins=acc.shared.bins, half=acc.grid["grid_half_width_sd"], bias=bias,
-                                G=acc.buckets, sample=sopts.sample, seed=KEEP_SEED, top=sopts.top)
+                                G=acc.buckets, sample=sopts.sample, seed=KEEP_SEED, top=sopts.top,
+                                RB=len(acc.shared.rank_edges) - 1,
+                                RGRID="one rank each" if len(acc.shared.rank_edges) - 1 == problem.J else
+                                f"one rank each up to rank {RANK_EXACT}, then geometric up to J")
                for key, text in METHODS.items()}
     return SummaryFit(idata, problem, raw, misses, table=table, kept=kept, options=o, summary_options=sopts,
                       figures=figures, methods=methods)

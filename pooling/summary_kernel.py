@@ -22,7 +22,10 @@ Ranks. Top k: a size-k min-heap scan over all J values (one comparison per group
 value enters the heap), exact. Mid-rank for every group: sign*theta is counted into G equal-width
 buckets fixed after warm-up; a group's rank is between 1 + (groups in better buckets) and that plus
 (its bucket's count - 1); the kernel adds the midpoint and half the width, so the mean rank carries
-its own error bound. Kept groups: exact ranks each draw from their sorted values and one O(J) pass
+its own error bound. Rank intervals for every group: each draw counts the group's lower rank bound
+into a per-group histogram on one shared rank grid (unit bins for the first ranks, then geometric)
+and keeps the largest bucket count - 1 seen, which bounds upper - lower in every draw; see
+rank_intervals. Kept groups: exact ranks each draw from their sorted values and one O(J) pass
 that counts how many kept values each group exceeds (a lookup table over the kept range).
 """
 from __future__ import annotations
@@ -194,7 +197,7 @@ def _sift_up(hx, hi, pos):
 def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
                    s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, logn, opt, k_top, count,
                    run, hits, rowmap, glo, ginv, hist, ext, bucket, bcnt, bidx, kept, out_hyper, out_evals,
-                   out_theta, out_sigma, out_rank):
+                   out_theta, out_sigma, out_rank, rank_bin, rhist, wmax, lobin):
     """Run n_sweeps post-warm-up sweeps, updating the running summaries (see the module notes).
 
     count[0]: draws accumulated so far by this chain. run (N_R, J) float64; hits (N_H, J) unsigned;
@@ -203,6 +206,10 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
     the rank buckets, bcnt (G,) and bidx (J,) scratch; kept (m,) group indices whose draws are stored
     row by row into out_theta, out_sigma (separate) and out_rank (m,); out_hyper (rows, N_Y) holds
     mu, tau, s, nu, shared sigma and sqrt(mean_j sigma_j^2); out_evals the slice evaluations.
+    Rank intervals of every group: rank_bin (J + 2,) maps a rank to its bin of the shared rank grid;
+    rhist (J, RB) counts the bins of each draw's lower rank bound 1 + (groups in better buckets); wmax
+    (J,) keeps the largest (bucket count - 1) seen, so upper bound <= lower bound + wmax in every draw;
+    lobin (G,) scratch.
     """
     J = ybar.shape[0]
     B = hist.shape[2] - 2
@@ -360,12 +367,16 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
         acc = 0
         for b in range(G - 1, -1, -1):
             above[b] = acc
+            lobin[b] = rank_bin[1 + acc]  # 1 + acc <= J + 1 always; only used when the bucket holds a group
             acc += bcnt[b]
         for j in range(J):
             b = bidx[j]
             c = bcnt[b]
             run[R_RANK, j] += above[b] + 0.5 * (c + 1)
             run[R_RANK_ERR, j] += 0.5 * (c - 1)
+            rhist[j, lobin[b]] += 1
+            if c - 1 > wmax[j]:
+                wmax[j] = c - 1
         # exact ranks of the kept groups: poscnt[p] counts the groups that exceed exactly p kept values,
         # so the kept value ss[r - 1] is exceeded by the groups with p >= r, and its rank is 1 + that
         acc = 0
@@ -453,3 +464,51 @@ def hist_quantiles(hist, ext, glo, gw, row, probs, kind, scale, center, est, err
             d1 = max(abs(_to_user(b1, kind, scale, center) - u1), abs(u1 - _to_user(a1, kind, scale, center)))
             est[q, j] = u0 + g * (u1 - u0)
             err[q, j] = (1.0 - g) * d0 + g * d1
+
+
+@njit(nogil=True, cache=True)
+def rank_intervals(rhist, wmax, edges, i_lo, i_hi, J, low, high, err):
+    """Per group, an interval [low, high] that contains the exact rank interval [r_(i_lo), r_(i_hi)]
+    (order statistics, 0-based, of the group's ranks over all draws), and err, the largest distance
+    from either reported end to the exact one.
+
+    In every draw s, lo_s <= r_s <= lo_s + W (W = wmax over chains), so the i-th smallest r lies
+    between the i-th smallest lo and that plus W. The counts locate the i-th smallest lo exactly in
+    its bin [edges[b], edges[b + 1] - 1]: so r_(i_lo) is in [edges[b], edges[b + 1] - 1 + W] and
+    r_(i_hi) in [edges[b'], edges[b' + 1] - 1 + W]; low is the first end, high the last (at most J).
+    rhist (C, J, RB), wmax (C, J).
+    """
+    C = rhist.shape[0]
+    RB = rhist.shape[2]
+    counts = np.empty(RB, dtype=np.int64)
+    for j in range(J):
+        W = 0
+        for c in range(C):
+            if wmax[c, j] > W:
+                W = wmax[c, j]
+        for b in range(RB):
+            s = 0
+            for c in range(C):
+                s += rhist[c, j, b]
+            counts[b] = s
+        cum = 0
+        b_lo = -1
+        b_hi = -1
+        for b in range(RB):
+            cum += counts[b]
+            if b_lo < 0 and cum > i_lo:
+                b_lo = b
+            if cum > i_hi:
+                b_hi = b
+                break
+        if b_lo < 0:  # fewer counts than draws (an interrupted chain): the widest honest answer
+            b_lo = 0
+        if b_hi < 0:
+            b_hi = RB - 1
+        a_lo = edges[b_lo]
+        z_lo = min(edges[b_lo + 1] - 1 + W, J)
+        a_hi = edges[b_hi]
+        z_hi = min(edges[b_hi + 1] - 1 + W, J)
+        low[j] = a_lo
+        high[j] = z_hi
+        err[j] = max(z_lo - a_lo, z_hi - a_hi)

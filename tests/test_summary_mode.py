@@ -282,3 +282,63 @@ def test_cli_bad_options(run_cli, small_csv, tmp_path):
                            "--summary", "on", "--keep", "P9", "--quiet")
     assert code == 2 and "P9" in err and err.count("\n") == 1
     assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+
+
+# --- rank intervals for every group -------------------------------------------------------------
+
+def _exact_ranks(theta: np.ndarray, sign: float = 1.0) -> np.ndarray:
+    # Source: ranks by numpy.argsort of each draw (stable), 1 = best
+    order = np.argsort(-sign * theta, axis=1, kind="stable")
+    ranks = np.empty_like(order)
+    np.put_along_axis(ranks, order, np.arange(1, theta.shape[1] + 1)[None, :], axis=1)
+    return ranks
+
+
+def _check_rank_intervals(part, ranks):
+    """The summary interval contains the exact one, each end within the stated rank_limit_error, and kept
+    groups carry the exact ends with error 0."""
+    t = part.table
+    # Source: numpy.quantile method 'inverted_cdf', the reporter's rank interval (whole ranks)
+    lo, hi = np.quantile(ranks, PROBS, axis=0, method="inverted_cdf")
+    got_lo, got_hi = t["rank_low"].to_numpy().astype(int), t["rank_high"].to_numpy().astype(int)
+    e = t["rank_limit_error"].to_numpy()
+    assert np.all(got_lo <= lo) and np.all(got_hi >= hi)  # contains the exact interval
+    assert np.all(lo - got_lo <= e) and np.all(got_hi - hi <= e)  # off by at most the stated bound
+    assert np.all(got_lo >= 1) and np.all(got_hi <= ranks.shape[1])
+    kept = part.kept
+    np.testing.assert_array_equal(got_lo[kept], lo[kept])
+    np.testing.assert_array_equal(got_hi[kept], hi[kept])
+    assert np.all(e[kept] == 0)
+    return lo, hi, e
+
+
+def test_rank_intervals_of_every_group(separate):
+    full, part, _ = separate
+    lo, hi, e = _check_rank_intervals(part, _exact_ranks(_draws(full, "theta")))
+    others = np.setdiff1d(np.arange(40), part.kept)
+    # J = 40 <= RANK_BINS: every rank has its own bin, so the only slack is the bucket count (with
+    # G = 1024 buckets for 40 groups, rarely more than one group a bucket): the bound must be small
+    assert np.median(e[others]) <= 2
+
+
+def test_rank_intervals_on_a_geometric_grid(monkeypatch):
+    """A coarse rank grid (4 unit bins, then geometric) on 60 groups: containment and the bound still hold."""
+    monkeypatch.setattr(summary, "RANK_BINS", 10)
+    monkeypatch.setattr(summary, "RANK_EXACT", 4)
+    stats = _stats(60, 8)
+    o = ReportOptions(level=LEVEL, k=3, best="lowest")
+    full = pooling.fit(stats, pooling.Model(within="shared"), SETTINGS, summary=False)
+    part = pooling.fit(stats, pooling.Model(within="shared"), SETTINGS, summary=True, options=o, keep=KEEP)
+    assert part.figures["rank_grid_bins"] <= 10
+    lo, hi, e = _check_rank_intervals(part, _exact_ranks(_draws(full, "theta"), sign=-1.0))
+    others = np.setdiff1d(np.arange(60), part.kept)
+    assert np.any(e[others] > 2)  # the coarse bins do show in the bound (else this test checks little)
+
+
+def test_rank_grid():
+    for J in (1, 5, 96, 97, 1000, 10**6):
+        e = summary.rank_grid(J)
+        assert e[0] == 1 and e[-1] == J + 1 and np.all(np.diff(e) >= 1)
+        assert len(e) - 1 <= max(summary.RANK_BINS, 1)
+        head = min(J, summary.RANK_EXACT)
+        np.testing.assert_array_equal(e[: head + 1], np.arange(1, head + 2))  # one rank a bin at the top

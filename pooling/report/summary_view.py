@@ -190,10 +190,12 @@ def _group_rows(t, f: Fmt, o, rows_of) -> tuple[list, list]:
     rows = []
     for _, r in rows_of.iterrows():
         rank = f"{r['rank_mean']:.1f}"
-        if r["kept"]:
-            rank += f" ({int(r['rank_low'])}–{int(r['rank_high'])})"
-        elif r["rank_mean_error"] > 0.05:
+        if not r["kept"] and r["rank_mean_error"] > 0.05:
             rank += f" ± {r['rank_mean_error']:.1f}"
+        rank += f" ({int(r['rank_low'])}–{int(r['rank_high'])}"
+        if not r["kept"] and r.get("rank_limit_error", 0) > 0:  # the interval's stated slack, in ranks
+            rank += f", ends ± {int(r['rank_limit_error'])}"
+        rank += ")"
         cells = [_nowrap(plots_label(r["group"])), f"{int(r['n'])}", f.v(r["raw_mean"]), f.v(r["theta_mean"]),
                  f"{f.v(r['theta_low'])} to {f.v(r['theta_high'])}", f.v(r["theta_limit_error"], 1), f"{r['shrink_weight']:.2f}",
                  rank, Fmt.p(r["p_best"]), Fmt.p(r["p_top_k"])]
@@ -301,8 +303,9 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
     _, rows_bottom = _group_rows(t, f, o, bottom)
     add('<section id="ends"><h2>Best and worst</h2>'
         f"<p>The {len(top)} groups with the {'highest' if o.best == 'highest' else 'lowest'} posterior means (best first; "
-        f"{esc(o.best)} theta is best), then the {len(bottom)} at the other end (worst first). Mean ranks of kept groups "
-        "are exact and carry their rank interval; the others carry their largest possible error.</p>"
+        f"{esc(o.best)} theta is best), then the {len(bottom)} at the other end (worst first). Mean ranks and rank intervals "
+        "of kept groups are exact; the others carry their largest possible error (the rank interval contains "
+        "the exact one).</p>"
         f"<h3>Best</h3>{_table(head, rows_top)}<h3>Worst</h3>{_table(head, rows_bottom)}</section>")
 
     # --- kept ------------------------------------------------------------------------------------
@@ -332,7 +335,8 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
 
     # --- how -------------------------------------------------------------------------------------
     err = fit.figures["limit_error"]
-    erows = [[esc(name.replace("_limit_error", "").replace("_error", "")), Fmt.g(e["median"], 3), Fmt.g(e["max"], 3)]
+    erows = [[esc("rank interval" if name == "rank_limit_error" else
+                  name.replace("_limit_error", "").replace("_error", "")), Fmt.g(e["median"], 3), Fmt.g(e["max"], 3)]
              for name, e in err.items()]
     add('<section id="how"><h2>How computed</h2><dl class="kv">'
         + "".join(f"<dt>{esc(k.replace('_', ' '))}</dt><dd>{esc(v)}</dd>" for k, v in fit.methods.items()) + "</dl>"
@@ -346,7 +350,8 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
     guide = {**COLUMNS, **EXTRA_COLUMNS}
     add('<section id="guide"><h2>Column guide (groups.csv)</h2><dl class="kv">'
         + "".join(f"<dt><code>{esc(c)}</code></dt><dd>{esc(guide[c])}</dd>" for c in t.columns if c in guide)
-        + '</dl><p class="note">rank_low and rank_high are given for kept groups only.</p></section>')
+        + '</dl><p class="note">rank_low and rank_high of groups that were not kept contain the exact rank '
+        "interval; rank_limit_error bounds how far each end can be from it.</p></section>")
     add(f"<footer>Made by pooling {esc(__version__)}. {esc(CAUTION)}</footer></main></body></html>")
     return "".join(parts)
 
