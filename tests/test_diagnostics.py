@@ -324,3 +324,26 @@ def test_bad_shapes_are_refused():
         dg.split_rhat(np.zeros(10))
     with pytest.raises(ValueError):
         dg.ess_bulk(np.array([["a", "b"]]))
+
+
+# --- blocks on threads (benchmarks/README.md, `pooling fit` whole process) ---------------------
+
+def test_threaded_blocks_give_the_same_numbers(monkeypatch):
+    # Source: the documented contract of diagnostics._run: blocks are independent and each writes
+    # its own slice, so the threaded path must equal the one-thread path bit for bit; an AR(1)
+    # draw (lfilter) makes the FFT fall-back run in some blocks too. Checked against arviz 0.23
+    # on a few columns as well (same tolerance as the tests above).
+    g = np.random.default_rng(11)
+    x = lfilter([1.0], [1.0, -0.9], g.standard_normal((4, 1000, 300)), axis=1)
+    x[:, :, 7] = 2.5  # a constant column in the threaded path
+    assert x.size >= dg._THREADED_MIN
+    monkeypatch.setattr(dg, "_THREADS", 1)
+    one = dg.rhat_ess(x), dg.ess_mean(x), dg.mcse_mean(x)
+    monkeypatch.setattr(dg, "_THREADS", 2)
+    two = dg.rhat_ess(x), dg.ess_mean(x), dg.mcse_mean(x)
+    for a, b in zip((*one[0], one[1], one[2]), (*two[0], two[1], two[2])):
+        np.testing.assert_array_equal(a, b)
+    for j in (0, 150, 299):
+        np.testing.assert_allclose([two[0][0][j], two[0][1][j], two[0][2][j]],
+                                   [_ref(x[:, :, j], az.rhat, method="rank"), _ref(x[:, :, j], az.ess, method="bulk"),
+                                    _ref(x[:, :, j], az.ess, method="tail")], rtol=RTOL)
