@@ -49,7 +49,9 @@ def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
         flat_x = x.reshape(x.shape[0] * x.shape[1], -1)
         # a quantity that never moved (nu pinned at one grid point) has nothing left to converge
         constant = (flat_x.max(axis=0) == flat_x.min(axis=0)).reshape(rhat.shape)
-        bad = ~constant & (~(rhat < targets.rhat_max) | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min))
+        # R-hat needs two chains; with one, only the ESS targets can be checked (the README says so)
+        rhat_bad = ~(rhat < targets.rhat_max) if x.shape[0] >= 2 else np.zeros(rhat.shape, dtype=bool)
+        bad = ~constant & (rhat_bad | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min))
         rest = x.shape[2:]
         for flat in np.flatnonzero(bad.ravel()):
             idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()

@@ -78,3 +78,15 @@ def test_interrupt_discards_the_draws(stats, monkeypatch):
         pooling.fit(stats, pooling.Model(), pooling.Settings(chains=2, draws=50, warmup=10, seed=1))
     assert calls["n"] >= 1
     monkeypatch.setattr(sampler._Chain, "run", real)
+
+
+def test_one_chain_checks_only_the_ess_targets(stats):
+    """R-hat needs two chains (NaN with one); a single long chain can still meet the ESS targets."""
+    loose = pooling.Targets(rhat_max=1.01, ess_min=50)
+    fit = pooling.fit(stats, pooling.Model(within="shared"),
+                      pooling.Settings(chains=1, draws=400, warmup=200, seed=4, max_draws=400, targets=loose))
+    assert fit.targets_met, fit.misses
+    tight = pooling.Targets(rhat_max=1.01, ess_min=1e9)
+    fit = pooling.fit(stats, pooling.Model(within="shared"),
+                      pooling.Settings(chains=1, draws=100, warmup=50, seed=4, max_draws=100, targets=tight))
+    assert not fit.targets_met and all(np.isnan(m["rhat"]) for m in fit.misses)
