@@ -27,16 +27,10 @@ import pytest
 from pooling.stats import read_table
 from pooling.store import combine, jobs, open_store
 from pooling.store.sqlite import PAUSE_AT_ENV, PAUSE_ENV, PAUSE_SECONDS_ENV
+from store_helpers import sql_dump as _dump
 
 BOUND = 120  # seconds any one subprocess may take before the test fails
 
-
-def _dump(path) -> list[str]:
-    con = sqlite3.connect(str(path))
-    try:
-        return list(con.iterdump())
-    finally:
-        con.close()
 
 
 def _integrity(path) -> str:

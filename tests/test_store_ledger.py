@@ -20,15 +20,8 @@ from pooling.stats import read_table
 from pooling.store import combine, forgetting_weights, open_store
 from pooling.store import jobs
 from pooling.store.combine import parse_when
+from store_helpers import sql_dump as _dump
 
-
-def _dump(path) -> list[str]:
-    """Every row of every table, as SQL text: 'the store exactly as before' means this is unchanged."""
-    con = sqlite3.connect(str(path))
-    try:
-        return list(con.iterdump())
-    finally:
-        con.close()
 
 
 def _write_batches(tmp: Path, rng, k: int, offset: float, spread: float, rows: int, groups: int):

@@ -148,6 +148,17 @@ def _card(k: str, v: str, i: str = "") -> str:
     return f'<div class="card"><div class="k">{k}</div><div class="v">{v}</div><div class="i">{i}</div></div>'
 
 
+def _best_and_shrink_cards(title: str, best: str, label: str, t, j: int, k: int) -> list[str]:
+    """The 'at a glance' cards shared by the full and the summary report: the group most often best
+    (row j of the group table t) and the spread of the shrinkage weights."""
+    w = t["shrink_weight"].to_numpy()
+    return [
+        _card(f"{title} ({esc(best)})", esc(plots_label(label)),
+              f"P(best) {Fmt.p(t['p_best'].iat[j])}; P(top {k}) {Fmt.p(t['p_top_k'].iat[j])}"),
+        _card("shrinkage weight", f"{np.median(w):.2f}", f"median over groups; range {w.min():.2f} to {w.max():.2f}"),
+    ]
+
+
 def _summ_cells(f: Fmt, s: dict | None, extra: int = 0) -> tuple[str, str]:
     if s is None:
         return "–", "–"
@@ -213,10 +224,7 @@ def render(res: Results, summary: dict | None = None) -> str:
     if lab["repeatability_sd"] is not None:
         r = lab["repeatability_sd"]
         cards.append(_card("typical within-group sd", f.v(r["mean"]), f"{lvl} interval {_interval(f, r['low'], r['high'])}"))
-    cards.append(_card(f"most likely best ({esc(o.best)})", esc(plots_label(v.labels[best_j])),
-                       f"P(best) {Fmt.p(t['p_best'].iat[best_j])}; P(top {int(min(o.k, v.J))}) {Fmt.p(t['p_top_k'].iat[best_j])}"))
-    w = t["shrink_weight"].to_numpy()
-    cards.append(_card("shrinkage weight", f"{np.median(w):.2f}", f"median over groups; range {w.min():.2f} to {w.max():.2f}"))
+    cards += _best_and_shrink_cards("most likely best", o.best, v.labels[best_j], t, best_j, int(min(o.k, v.J)))
     add(f'<section id="glance"><h2>At a glance</h2><div class="cards">{"".join(cards)}</div>'
         f'<p class="note">{st.J} groups' + (f", {st.N} measurements" if st.kind == "raw" else "")
         + f". Intervals are central {lvl} credible intervals; every probability is the share of "

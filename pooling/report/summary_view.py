@@ -21,7 +21,7 @@ from ..errors import InputError
 from . import plots
 from .export import records, write_csv
 from .groups import COLUMNS, pairwise
-from .page import CAUTION, CSS, Fmt, _card, _head_tail, _table, esc, plots_label
+from .page import CAUTION, CSS, Fmt, _best_and_shrink_cards, _card, _head_tail, _table, esc, plots_label
 
 SHOWN = 25  # rows of the best and of the worst groups
 KERNEL_FIELDS = ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias")
@@ -264,10 +264,7 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
         cards.append(_card("typical within-group sd", f.v(sr.mean()),
                            f"sqrt(mean of sigma²); {lvl} interval {f.v(np.quantile(sr, ql))} to {f.v(np.quantile(sr, qh))}"))
     jb = int(np.argmax(t["p_best"].to_numpy()))
-    cards.append(_card(f"most often best ({esc(o.best)})", esc(plots_label(t["group"].iat[jb])),
-                       f"P(best) {Fmt.p(t['p_best'].iat[jb])}; P(top {int(min(o.k, J))}) {Fmt.p(t['p_top_k'].iat[jb])}"))
-    w = t["shrink_weight"].to_numpy()
-    cards.append(_card("shrinkage weight", f"{np.median(w):.2f}", f"median over groups; range {w.min():.2f} to {w.max():.2f}"))
+    cards += _best_and_shrink_cards("most often best", o.best, t["group"].iat[jb], t, jb, int(min(o.k, J)))
     add(f'<section id="glance"><h2>At a glance</h2><div class="cards">{"".join(cards)}</div>'
         f'<p class="note">{J:,} groups' + (f", {st.N:,} measurements" if st.kind == "raw" else "")
         + f". Intervals are central {lvl} credible intervals; probabilities are shares of all "
