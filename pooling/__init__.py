@@ -54,7 +54,7 @@ def fit(stats, model=None, settings=None, progress: bool | None = None, init=Non
         return fit_summary(problem, settings, options, keep, progress=progress, init=init)
     # --- end of summary mode -----------------------------------------------------------------
     raw = sample_raw(problem, settings, progress=progress, init=init)
-    return finish(raw, problem)
+    return finish(raw, problem, consume=True)  # raw is ours: its group draws move into the fit, uncopied
 
 
 __all__ = [

@@ -50,6 +50,7 @@ from __future__ import annotations
 import os
 
 import numpy as np
+from numba import njit
 from scipy import fft as _fft
 from scipy.special import ndtri
 
@@ -65,7 +66,7 @@ __all__ = [
 ]
 
 _BLOCK = 64  # parameters per block: 4 x 1000 float64 draws of 64 parameters are 2 MB, cache-sized
-_LAGS = 10  # lags computed directly before falling back to FFT
+_LAGS = 32  # lags computed directly (compiled, stopping where Geyer's sequence stops) before falling back to FFT
 _THREADS = min(2, os.cpu_count() or 1)  # threads over blocks (2: more gained nothing on the 2-core benchmark machine)
 _THREADED_MIN = 1_000_000  # draws x parameters below which one thread is faster than starting a pool
 _MIN_DRAWS = 4
@@ -73,6 +74,124 @@ _MIN_DRAWS = 4
 
 # --------------------------------------------------------------------------------------------
 # building blocks; every array here has the parameter axis first
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _place_scores(vals, where, table, out):
+    """out[where[i]] = the normal score of sorted position i of `vals`, ties sharing their average
+    rank; table[2r] is the score of rank r (r a multiple of 1/2)."""
+    size = vals.shape[0]
+    i = 0
+    while i < size:
+        j = i
+        while j + 1 < size and vals[j + 1] == vals[i]:
+            j += 1
+        val = table[i + j + 2]  # positions i..j (0-based) have the average rank (i + j) / 2 + 1
+        for t in range(i, j + 1):
+            out[where[t]] = val
+        i = j + 1
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _rank_block(xs, orders, table, z, zf, srt):
+    """For each row of xs (P, S), given its sorting permutation `orders` (numpy's argsort, several
+    times faster than a compiled one): srt = the sorted values, z = normal scores of the values,
+    zf = normal scores of the values folded about their median (|x - median|)."""
+    p_rows, size = xs.shape
+    k = size // 2
+    folded = np.empty(size)
+    where_f = np.empty(size, dtype=np.int64)
+    for p in range(p_rows):
+        x = xs[p]
+        order = orders[p]
+        row = srt[p]
+        for i in range(size):
+            row[i] = x[order[i]]
+        _place_scores(row, order, table, z[p])
+        med = row[k] if size % 2 else (row[k - 1] + row[k]) / 2.0
+        # the folded values are two sorted runs: med - row[k-1], ..., med - row[0] and row[k] - med, ...;
+        # merging them, the first run first on ties, is the stable sort of their concatenation
+        i, j, m = 0, k, 0
+        while m < size:
+            if j >= size or (i < k and (med - row[k - 1 - i]) <= (row[j] - med)):
+                folded[m] = med - row[k - 1 - i]
+                where_f[m] = order[k - 1 - i]
+                i += 1
+            else:
+                folded[m] = row[j] - med
+                where_f[m] = order[j]
+                j += 1
+            m += 1
+        _place_scores(folded, where_f, table, zf[p])
+
+
+@njit(cache=True, nogil=True, fastmath={"reassoc"}, error_model="numpy")
+def _geyer_direct(y, const_seq, lags, ess, settled, w, var_plus):
+    """The multi-sequence ESS of each row of y (P, M, n) by Geyer's initial monotone sequence, on
+    autocovariances computed lag by lag and only as far as the sequence goes (a few lags for a
+    well-mixing chain). Rows whose sequence runs past `lags` are marked unsettled, for the FFT path;
+    w and var_plus are returned for it. Sums may be reassociated (SIMD): the results can differ
+    from a strict left-to-right sum in the last bits."""
+    p_rows, m, n = y.shape
+    size = m * n
+    npairs = max(0, (n - 3) // 2)
+    denom = n * m
+    floor = 1.0 / np.log10(size)
+    d = np.empty((m, n))
+    means = np.empty(m)
+    for p in range(p_rows):
+        for a in range(m):
+            acc = 0.0
+            for t in range(n):
+                acc += y[p, a, t]
+            means[a] = acc / n
+            if const_seq[p, a]:
+                d[a, :] = 0.0
+            else:
+                for t in range(n):
+                    d[a, t] = y[p, a, t] - means[a]
+        grand = means.sum() / m
+        bvar = 0.0
+        for a in range(m):
+            bvar += (means[a] - grand) ** 2
+        bvar /= m - 1
+        acc = 0.0
+        for a in range(m):
+            for t in range(n):
+                acc += d[a, t] * d[a, t]
+        wp = (acc / denom) * (n / (n - 1))
+        vp = (n - 1) / n * wp + bvar
+        w[p] = wp
+        var_plus[p] = vp
+        settled[p] = False
+        total = 0.0
+        mono = np.inf
+        k = 0
+        r = np.empty(2)
+        while 2 * k + 1 < lags:
+            for h in range(2):
+                lag = 2 * k + h
+                if lag == 0:
+                    r[h] = 1.0
+                    continue
+                acc = 0.0
+                for a in range(m):
+                    for t in range(n - lag):
+                        acc += d[a, t] * d[a, t + lag]
+                r[h] = 1.0 - (wp - acc / denom) / vp
+            pair = r[0] + r[1]
+            if not (pair > 0) or k == npairs:
+                tau = -1.0 + 2.0 * total
+                if pair > 0 or r[0] > 0:
+                    tau += r[0]
+                if tau < floor:
+                    tau = floor
+                ess[p] = size / tau
+                settled[p] = True
+                break
+            mono = min(mono, pair)
+            total += mono
+            k += 1
 
 
 def _normal_scores(where: np.ndarray, s: np.ndarray, shape) -> np.ndarray:
@@ -100,6 +219,19 @@ def _normal_scores(where: np.ndarray, s: np.ndarray, shape) -> np.ndarray:
         flat[where[rows, pos]] = val
         flat[where[rows, pos + 1]] = val
     return out
+
+
+_TABLES: dict[int, np.ndarray] = {}
+
+
+def _score_table(size: int) -> np.ndarray:
+    """table[i] = Phi^-1((i/2 - 3/8) / (size + 1/4)): the normal score of rank i/2 (ranks of tied values
+    are averages, so multiples of 1/2), computed as the untied and tied scores were before."""
+    table = _TABLES.get(size)
+    if table is None:
+        table = ndtri((np.arange(2 * size + 3) / 2.0 - 0.375) / (size + 0.25))
+        _TABLES[size] = table
+    return table
 
 
 def _quantile_sorted(s: np.ndarray, prob: float) -> np.ndarray:
@@ -159,20 +291,14 @@ def _ess(y: np.ndarray, const_seq: np.ndarray) -> np.ndarray:
     """ESS of sequences y (P, M, n) by the multi-sequence estimator and Geyer's monotone sequence."""
     p, m, n = y.shape
     size = m * n
-    means = y.mean(axis=-1)
-    d = y - means[..., None]
-    d[const_seq] = 0.0
-    w_lags = min(n, _LAGS)
-    acov = np.empty((p, w_lags))
-    for t in range(w_lags):
-        acov[:, t] = np.einsum("pmk,pmk->p", d[..., : n - t], d[..., t:])
-    acov /= n * m  # mean over sequences of acov_m(t)
-    w = acov[:, 0] * (n / (n - 1))
-    var_plus = (n - 1) / n * w + means.var(axis=-1, ddof=1)
-    ess, settled = _geyer(acov, w, var_plus, n, size)
+    ess, w, var_plus = np.empty(p), np.empty(p), np.empty(p)
+    settled = np.empty(p, dtype=np.bool_)
+    _geyer_direct(np.ascontiguousarray(y, dtype=np.float64), const_seq, min(n, _LAGS), ess, settled, w, var_plus)
     if not settled.all():
         rest = ~settled
-        dr = d[rest]
+        yr = y[rest]
+        dr = yr - yr.mean(axis=-1)[..., None]
+        dr[const_seq[rest]] = 0.0
         nfft = _fft.next_fast_len(2 * n, real=True)
         f = _fft.rfft(dr, nfft, axis=-1)
         power = (f.real**2 + f.imag**2).mean(axis=1)  # mean over sequences before inverting
@@ -208,28 +334,12 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
 
     srt = None
     if want & {"rhat", "bulk"}:
-        flat = xs.reshape(p, size)
-        # indices into the flattened block: faster than take/put_along_axis
-        order = np.argsort(flat, axis=1)
-        order += (np.arange(p) * size)[:, None]
-        srt = np.take(flat, order)
-        z = _normal_scores(order, srt, (p, m, h))
+        flat = np.ascontiguousarray(xs.reshape(p, size))
+        z, zf, srt = np.empty((p, size)), np.empty((p, size)), np.empty((p, size))
+        _rank_block(flat, np.argsort(flat, axis=1), _score_table(size), z, zf, srt)
+        z, zf = z.reshape(p, m, h), zf.reshape(p, m, h)
         if "rhat" in want:
             bulk = _rhat(z, const_seq)
-            # fold about the median; in sorted order the folded values are two sorted runs,
-            # the lower half read backwards and the upper half, so a stable sort merges them
-            k = size // 2
-            med = srt[:, k] if size % 2 else (srt[:, k - 1] + srt[:, k]) / 2.0
-            runs = np.empty_like(srt)
-            np.subtract(med[:, None], srt[:, k - 1 :: -1], out=runs[:, :k])
-            np.subtract(srt[:, k:], med[:, None], out=runs[:, k:])
-            order_f = np.argsort(runs, axis=1, kind="stable")
-            to_sorted = np.concatenate([np.arange(k - 1, -1, -1), np.arange(k, size)])
-            at = np.take(to_sorted, order_f)  # sorted position of the j-th smallest folded value
-            order_f += (np.arange(p) * size)[:, None]
-            folded_sorted = np.take(runs, order_f)
-            at += (np.arange(p) * size)[:, None]
-            zf = _normal_scores(np.take(order, at), folded_sorted, (p, m, h))
             tail = _rhat(zf, _const_seq(zf))
             r = np.fmax(bulk, tail)
             r[np.isnan(bulk) | np.isnan(tail)] = np.nan

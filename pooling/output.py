@@ -67,9 +67,28 @@ def summary_dict(fit: Fit, command: list[str] | None = None) -> dict:
 
 
 def write_json(path: Path, obj) -> None:
+    """JSON laid out for reading: nested objects indented, a list of records one record per line."""
     with open(path, "w", encoding="utf-8") as fh:
-        json.dump(obj, fh, indent=2, ensure_ascii=False, allow_nan=False)
+        fh.write(dumps_readable(obj))
         fh.write("\n")
+
+
+def _flat(x) -> str:
+    # no indent, so the json module's C encoder does the work (with indent it falls back to Python,
+    # ~0.2 s for a summary.json of 1,000 groups)
+    return json.dumps(x, ensure_ascii=False, allow_nan=False, separators=(", ", ": "))
+
+
+def dumps_readable(x, level: int = 0) -> str:
+    """Valid JSON equal to json.dumps(x): objects (to depth 4) are indented by two spaces per level,
+    a list of objects or lists has one element per line, everything else is written on one line."""
+    pad, inner = "  " * level, "  " * (level + 1)
+    if isinstance(x, dict) and x and level < 4:
+        items = [f"{inner}{json.dumps(str(k), ensure_ascii=False)}: {dumps_readable(v, level + 1)}" for k, v in x.items()]
+        return "{\n" + ",\n".join(items) + "\n" + pad + "}"
+    if isinstance(x, list) and x and all(isinstance(v, (dict, list)) for v in x):
+        return "[\n" + ",\n".join(inner + _flat(v) for v in x) + "\n" + pad + "]"
+    return _flat(x)
 
 
 def check_target(out: Path, replace: bool) -> Path:
@@ -138,8 +157,7 @@ REPORT_ROOM = 8 << 20
 
 
 def _check_space(fit: Fit, folder: Path) -> None:
-    need = REPORT_ROOM + sum(
-        int(v.nbytes) for g in fit.idata.groups() for v in fit.idata[g].variables.values())
+    need = REPORT_ROOM + sum(part.nbytes for part in fit.parts.values())
     need += 3 * sum(len(lab.encode("utf-8", "surrogatepass")) for lab in fit.labels)
     free = shutil.disk_usage(folder).free
     if free < need:
@@ -147,11 +165,72 @@ def _check_space(fit: Fit, folder: Path) -> None:
 
 
 def _write_draws(fit: Fit, path: Path) -> None:
-    """draws.nc: the InferenceData's groups as netCDF4 (HDF5) through h5netcdf, uncompressed."""
+    """draws.nc: the fit's groups (posterior, sample_stats, constant_data) as netCDF4 (HDF5) through
+    h5netcdf, uncompressed; arviz.from_netcdf and xarray.open_dataset(group=...) read it back."""
+    # Written with h5netcdf itself rather than through xarray: xarray asks dask (when installed) for a
+    # scheduler before each group, which imports dask.distributed, ~0.3 s of every run.
     # Uncompressed on purpose: draws of theta and sigma are float64 noise that zlib shrinks by only
     # ~9% (64 -> 59 MB at 1,000 groups x 4,000 draws) for ~2.0 s of CPU, most of a later run's
     # write time; shuffle + zlib level 1 gives 52 MB for ~0.9 s. Measured in benchmarks/README.md.
-    fit.idata.to_netcdf(str(path), engine="h5netcdf", compress=False)
+    import h5netcdf
+
+    with h5netcdf.File(str(path), "w") as f:
+        for name, part in fit.parts.items():
+            g = f.create_group(name)
+            for dim, values in part.coords.items():
+                g.dimensions[dim] = len(values)
+            for dim, values in part.coords.items():
+                _variable(g, dim, (dim,), values)
+            for var, (dims, values, attrs) in part.variables.items():
+                v = _variable(g, var, dims, values)
+                for key, val in attrs.items():
+                    v.attrs[key] = val
+            for key, val in part.attrs.items():
+                g.attrs[key] = val
+
+
+def _variable(g, name: str, dims, values: np.ndarray):
+    values = np.asarray(values)
+    if values.dtype == object or values.dtype.kind == "U":  # labels: variable-length UTF-8 strings
+        import h5py
+
+        data = np.asarray([str(x) for x in values.ravel()], dtype=object).reshape(values.shape)
+        return g.create_variable(name, dims, dtype=h5py.string_dtype("utf-8"), data=data)
+    return g.create_variable(name, dims, data=values)
+
+
+class _Background:
+    """fn(*args) on a thread of its own; join() waits, reraise() raises what fn raised, if anything."""
+
+    def __init__(self, fn, *args):
+        import threading
+
+        self.error: BaseException | None = None
+
+        def run():
+            try:
+                fn(*args)
+            except BaseException as exc:  # handed to the main thread by reraise()
+                self.error = exc
+
+        self.thread = threading.Thread(target=run, name="pooling-write-draws", daemon=True)
+        self.thread.start()
+
+    def join(self) -> None:
+        """Wait for the thread; a Ctrl-C meanwhile is raised once the thread is done (it is a short
+        write), so that the caller never removes a folder the thread is still writing into."""
+        stopped = None
+        while self.thread.is_alive():
+            try:
+                self.thread.join(0.1)
+            except KeyboardInterrupt as exc:
+                stopped = exc
+        if stopped is not None:
+            raise stopped
+
+    def reraise(self) -> None:
+        if self.error is not None:
+            raise self.error
 
 
 def write_run(fit: Fit, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
@@ -159,9 +238,16 @@ def write_run(fit: Fit, out, *, replace: bool = False, command: list[str] | None
 
     def fill(tmp: Path):
         _check_space(fit, tmp)
-        _write_draws(fit, tmp / "draws.nc")
-        write_json(tmp / "summary.json", summary_dict(fit, command))
-        if extra is not None:
-            extra(fit, tmp)
+        # draws.nc is written on a second thread while summary.json and the reporter's files are made:
+        # h5py and the kernel's page cache do most of that write without the GIL, so at 1,000 groups
+        # this hides ~0.2 s of a later run. Nothing is renamed into place before both are done.
+        writer = _Background(_write_draws, fit, tmp / "draws.nc")
+        try:
+            write_json(tmp / "summary.json", summary_dict(fit, command))
+            if extra is not None:
+                extra(fit, tmp)
+        finally:
+            writer.join()  # also on Ctrl-C or an error, so the folder is never removed under the writer
+        writer.reraise()
 
     return atomic_folder(Path(out), replace, fill)

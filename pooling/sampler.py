@@ -62,7 +62,10 @@ class Settings:
 
 @dataclass
 class RawDraws:
-    """Internal-unit draws, arrays shaped (chains, draws, ...), plus what the run did."""
+    """Internal-unit draws, arrays shaped (chains, draws, ...), plus what the run did.
+
+    In the `raw` of a Fit made by pooling.fit, theta (and sigma for `separate`) are None: those draws
+    were moved into the fit's posterior, in the user's units (posterior.finish with consume=True)."""
 
     mu: np.ndarray
     tau: np.ndarray
@@ -115,14 +118,11 @@ class _Chain:
     def run(self, p: Problem, n_sweeps: int, store: bool, adapt: bool, chunk: int, stop: threading.Event, tick):
         J = p.J
         within = p.within_code
-        if store:
-            out = {
-                "mu": np.empty(n_sweeps), "tau": np.empty(n_sweeps),
-                "theta": np.empty((n_sweeps, J)),
-                "sigma": np.empty((n_sweeps, J if within == 0 else 1 if within == 1 else 0)),
-                "s": np.empty(n_sweeps if within == 0 else 0), "nu": np.empty(n_sweeps if within == 0 else 0),
-                "evals": np.empty(n_sweeps),
-            }
+        into, self.into = getattr(self, "into", None), None
+        if store and into is not None:  # this chain's slice of arrays shared by all chains (_preallocate)
+            out = into
+        elif store:
+            out = {key: np.empty(shape) for key, shape in _shapes(n_sweeps, J, within).items()}
         else:
             out = {"mu": np.empty(0), "tau": np.empty(0), "theta": np.empty((0, J)), "sigma": np.empty((0, J)),
                    "s": np.empty(0), "nu": np.empty(0), "evals": np.empty(0)}
@@ -143,6 +143,23 @@ class _Chain:
 
     def export_state(self) -> dict:
         return {"state": self.state.tolist(), "theta": self.theta.tolist(), "sigma2": self.sigma2.tolist()}
+
+
+def _shapes(n_sweeps: int, J: int, within: int) -> dict[str, tuple[int, ...]]:
+    """Shapes of one chain's stored draws for n_sweeps sweeps."""
+    return {"mu": (n_sweeps,), "tau": (n_sweeps,), "theta": (n_sweeps, J),
+            "sigma": (n_sweeps, J if within == 0 else 1 if within == 1 else 0),
+            "s": (n_sweeps if within == 0 else 0,), "nu": (n_sweeps if within == 0 else 0,), "evals": (n_sweeps,)}
+
+
+def _preallocate(chains, problem: Problem, n_sweeps: int) -> dict[str, np.ndarray]:
+    """Arrays shaped (chains, n_sweeps, ...) that the chains fill in place, so that collecting the
+    draws afterwards copies nothing (at 1,000 groups x 4 x 1,000 draws a stack of the chains' own
+    arrays cost ~0.25 s, mostly touching fresh memory)."""
+    block = {key: np.empty((len(chains),) + shape) for key, shape in _shapes(n_sweeps, problem.J, problem.within_code).items()}
+    for i, c in enumerate(chains):
+        c.into = {key: arr[i] for key, arr in block.items()}
+    return block
 
 
 def _chunk_size(J: int) -> int:
@@ -205,10 +222,15 @@ def draw_until_targets(chains, problem: Problem, settings: Settings, threads: in
     `collect(chains, problem, seed, settings, rounds, start)` gathers the chains' draws (default: every
     draw of every group). Returns the collected draws, the record of each round and the draws per chain.
     """
-    collect = collect or _collect
+    blocks: list[dict] = []  # the default collection: arrays shared by the chains, one set per round
+    own = collect is None
+    if own:
+        collect = lambda *args: _collect(blocks, *args)  # noqa: E731
     rounds: list[dict] = []
     todo, have = settings.draws, 0
     while True:
+        if own:
+            blocks.append(_preallocate(chains, problem, todo))
         _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar)
         have += todo
         raw = collect(chains, problem, seed, settings, rounds, start)
@@ -254,9 +276,11 @@ def sample_raw(problem: Problem, settings: Settings | None = None, progress: boo
             bar.close()
 
 
-def _collect(chains, problem, seed, settings, rounds, start) -> RawDraws:
+def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws:
+    """Every draw of every group: the preallocated blocks of each round, joined along the draws."""
     def stack(key):
-        return np.stack([np.concatenate([part[key] for part in c.parts], axis=0) for c in chains])
+        parts = [b[key] for b in blocks]
+        return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
 
     within = problem.within_code
     sigma = stack("sigma") if within != 2 else None

@@ -82,7 +82,7 @@ import pandas as pd
 from . import summary_kernel as sk
 from .errors import InputError
 from .model import Problem
-from .posterior import Fit, _jsonable_miss, diagnose_raw, to_idata
+from .posterior import Fit, _jsonable_miss, diagnose_raw, to_parts
 from .sampler import RawDraws, Settings, _Chain, _progress, _run_phase, draw_until_targets, resolve_seed
 
 AUTO_GROUPS = 20_000
@@ -519,7 +519,7 @@ def _classic_rhat(run: np.ndarray, D: int) -> np.ndarray:
         return np.sqrt(((D - 1) / D * W + b_over_d) / W)
 
 
-def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata) -> tuple[pd.DataFrame, dict]:
+def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_parts) -> tuple[pd.DataFrame, dict]:
     """Every group's row, with the reporter's columns (pooling.report.groups.COLUMNS) where the quantity
     is available, then EXTRA_COLUMNS; and the figures of the methods' errors."""
     from .report.groups import group_table, rank_summary
@@ -614,7 +614,7 @@ def build_table(problem: Problem, raw: RawDraws, acc: Accumulated, o, kept_idata
     cols["z_score"], cols["z_signal"] = z, signal
     # kept groups: every column from their stored draws, as the reporter computes it (errors 0)
     kept = sh.kept
-    exact = group_table(kept_idata, o.level, min(o.k, len(kept)), o.best, o.threshold, o.lower, o.upper,
+    exact = group_table(kept_parts, o.level, min(o.k, len(kept)), o.best, o.threshold, o.lower, o.upper,
                         o.allowed_bias)
     for name in ("theta_mean", "theta_sd", "theta_low", "theta_high", "sigma_mean", "sigma_low", "sigma_high",
                  "shrink_weight", "shrink_low", "shrink_high", "outside_mean", "outside_low", "outside_high",
@@ -688,7 +688,7 @@ METHODS = {
 
 @dataclass
 class SummaryFit(Fit):
-    """A summary-mode run: `idata` (and so `draws`) holds the hyperparameters and the kept groups only,
+    """A summary-mode run: `parts` and `idata` (and so `draws`) hold the hyperparameters and the kept groups only,
     `kept` their positions; `table` holds every group's results (the reporter's columns, then
     summary.EXTRA_COLUMNS); `methods` and `figures` say how they were computed and how large each
     error can be."""
@@ -726,18 +726,19 @@ def fit_summary(problem: Problem, settings: Settings | None = None, options=None
     raw, acc = sample_summary(problem, settings, o, sopts, progress=progress, init=init)
     kept = acc.shared.kept
     sub = replace(problem, stats=problem.stats.subset(kept))
-    idata = to_idata(raw, sub)
-    idata.posterior["rank"] = (("chain", "draw", "group"), acc.ranks)
+    parts = to_parts(raw, sub)
+    post = parts["posterior"]
+    post.add("rank", ("chain", "draw", "group"), acc.ranks,
+             {"meaning": f"rank among all {problem.J} groups, 1 = {o.best} theta"})
     if problem.within_code != 2:  # the typical within-group sd per draw, for the interlaboratory figures
-        idata.posterior["within_sd"] = (("chain", "draw"), acc.within_sd * problem.scale)
+        post.add("within_sd", ("chain", "draw"), acc.within_sd * problem.scale)
     note = {"summary_mode": f"kept groups only: {len(kept)} of {problem.J}; every group is in groups.csv",
             "groups_total": str(problem.J), "data_fingerprint": problem.stats.fingerprint()}
-    for ds in (idata.posterior, idata.sample_stats, idata.constant_data):
-        ds.attrs.update(note)
-    idata.posterior["rank"].attrs["meaning"] = f"rank among all {problem.J} groups, 1 = {o.best} theta"
-    idata.constant_data["kept_because"] = (("group",), np.array(acc.shared.kept_reason, dtype=object))
+    for part in parts.values():
+        part.attrs.update(note)
+    parts["constant_data"].add("kept_because", ("group",), np.array(acc.shared.kept_reason, dtype=object))
     misses = raw.rounds[-1]["missed_list"] if raw.rounds else []
-    table, figures = build_table(problem, raw, acc, o, idata)
+    table, figures = build_table(problem, raw, acc, o, parts)
     bias = ("a histogram of theta_j - mu, as for the other limits" if acc.shared.rowmap[sk.Q_BIAS] >= 0 else
             "theta limits minus the posterior mean of mu: off by at most the theta bound plus "
             f"max_s |mu_s - mean mu| = {figures['mu_spread_D']:.3g}")
@@ -747,5 +748,5 @@ def fit_summary(problem: Problem, settings: Settings | None = None, options=None
                                 RGRID="one rank each" if len(acc.shared.rank_edges) - 1 == problem.J else
                                 f"one rank each up to rank {RANK_EXACT}, then geometric up to J")
                for key, text in METHODS.items()}
-    return SummaryFit(idata, problem, raw, misses, table=table, kept=kept, options=o, summary_options=sopts,
+    return SummaryFit(parts, problem, raw, misses, table=table, kept=kept, options=o, summary_options=sopts,
                       figures=figures, methods=methods)

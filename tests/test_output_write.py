@@ -44,3 +44,113 @@ def test_draws_nc_round_trips_uncompressed(tmp_path):
     p = subprocess.run([sys.executable, "-c", _SCRIPT, str(tmp_path / "run")], env=env, capture_output=True,
                        text=True, timeout=300)
     assert p.returncode == 0 and p.stdout.strip().endswith("ok"), p.stderr[-2000:]
+
+
+# ---------------------------------------------------------------------------------------------
+# the command line's path stays light, and the speed measures change nothing that is written
+
+_LIGHT = textwrap.dedent(r"""
+    import sys
+    import numpy as np
+    import pandas as pd
+    from pooling import cli
+    g = np.random.default_rng(4)  # invented: twelve groups of five measurements
+    pd.DataFrame({"g": np.repeat([f"g{j:02d}" for j in range(12)], 5), "y": g.normal(50.0, 2.0, 60)}).to_csv(
+        sys.argv[1], index=False)
+    code = cli.main(["fit", sys.argv[1], "--group", "g", "--value", "y", "--out", sys.argv[2], "--seed", "2",
+                     "--draws", "200", "--warmup", "200", "--max-draws", "200", "--quiet"])
+    heavy = sorted(m for m in ("arviz", "xarray", "matplotlib", "scipy.stats") if m in sys.modules)
+    print("exit", code, "heavy", ",".join(heavy) or "none")
+""")
+
+
+def test_a_run_from_the_command_line_imports_no_heavy_library(tmp_path):
+    # Source: benchmarks/README.md (`pooling fit`, whole process): arviz, xarray, scipy.stats and
+    # matplotlib cost ~1.7 s of imports, so the command line must not load them; a regression shows
+    # here as a name in the list rather than as a slower benchmark.
+    env = dict(os.environ, PYTHONWARNINGS="ignore")
+    p = subprocess.run([sys.executable, "-c", _LIGHT, str(tmp_path / "d.csv"), str(tmp_path / "run")], env=env,
+                       capture_output=True, text=True, timeout=300)
+    assert p.returncode == 0, p.stderr[-2000:]
+    assert p.stdout.split()[-2:] == ["heavy", "none"], p.stdout
+    assert (tmp_path / "run" / "draws.nc").exists() and (tmp_path / "run" / "report.html").exists()
+
+
+def _small_fit(seed=6):
+    import numpy as np
+    import pandas as pd
+
+    import pooling
+    from pooling import model, sampler, stats
+
+    g = np.random.default_rng(seed)  # invented: eight groups of three to six measurements
+    n = g.integers(3, 7, 8)
+    frame = pd.DataFrame({"g": np.repeat([f"g{j}" for j in range(8)], n), "y": g.normal(5.0, 1.0, n.sum())})
+    st = stats.from_frame(frame, "g", "y")
+    return pooling.fit(st, model.Model(), sampler.Settings(chains=2, draws=120, warmup=100, seed=seed,
+                                                           max_draws=120), progress=False)
+
+
+def test_consumed_draws_equal_copied_ones():
+    # Source: the contract of posterior.finish (consume=True converts in place instead of copying;
+    # the numbers are the same expression, so they must be equal bit for bit).
+    import numpy as np
+
+    from pooling import model, posterior, sampler, stats
+
+    fit = _small_fit()
+    assert fit.raw.theta is None and fit.raw.sigma is None  # handed over to the posterior
+    problem = fit.problem
+    raw = sampler.sample_raw(problem, sampler.Settings(chains=2, draws=120, warmup=100, seed=6, max_draws=120),
+                             progress=False)
+    kept = posterior.finish(raw, problem)  # default: copies, raw keeps its internal-unit draws
+    assert raw.theta is not None
+    np.testing.assert_array_equal(kept.parts["posterior"]["theta"], fit.parts["posterior"]["theta"])
+    np.testing.assert_array_equal(kept.parts["posterior"]["sigma"], fit.parts["posterior"]["sigma"])
+    np.testing.assert_array_equal(raw.theta * problem.scale + problem.center, fit.draws("theta").reshape(2, 120, -1))
+    del model, stats
+
+
+def test_a_failed_draws_write_leaves_no_folder(tmp_path, monkeypatch):
+    # Source: the documented contract of output.write_run (nothing half-written: the error of the
+    # draws.nc writer, which runs on its own thread, reaches the caller and no folder remains).
+    import pytest
+
+    from pooling import output
+    from pooling.errors import OutputError
+
+    fit = _small_fit()
+
+    def broken(fit, path):
+        path.write_bytes(b"partial")
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(output, "_write_draws", broken)
+    with pytest.raises(OutputError, match="disk is full"):
+        output.write_run(fit, tmp_path / "run")
+    assert not (tmp_path / "run").exists()
+    assert [p.name for p in tmp_path.iterdir()] == []
+
+
+def test_readable_json_is_the_same_json():
+    # Source: RFC 8259 (JSON) and the json module of the standard library as the reference: whatever
+    # the layout, json.loads must give back exactly what json.dumps would have written.
+    import json
+
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    from pooling.output import dumps_readable
+
+    values = st.recursive(
+        st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False, allow_infinity=False) | st.text(),
+        lambda c: st.lists(c, max_size=4) | st.dictionaries(st.text(max_size=5), c, max_size=4), max_leaves=30)
+
+    @settings(max_examples=300, deadline=None)
+    @given(values)
+    def check(x):
+        assert json.loads(dumps_readable(x)) == json.loads(json.dumps(x))
+
+    check()
+    records = {"rows": [{"a": 1, "b": "é"}, {"a": 2, "b": None}], "run": {"seed": 3}}
+    assert dumps_readable(records).splitlines()[2] == '    {"a": 1, "b": "é"},'  # one record per line

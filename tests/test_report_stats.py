@@ -234,3 +234,26 @@ def test_shrinkage_weight_is_the_posterior_mean_of_v_over_v_plus_tau2():
     np.testing.assert_allclose(t["shrink_weight"], ref, rtol=1e-12)
     mu_mean = 0.0
     np.testing.assert_allclose(t["shrink_realised"], (t["raw_mean"] - t["theta_mean"]) / (t["raw_mean"] - mu_mean))
+
+
+def test_group_table_is_the_same_on_one_thread_and_two(monkeypatch):
+    # Source: the contract of report.groups._over_blocks (each block of groups writes only its own
+    # columns, so sharing the blocks between threads cannot change a number): compared exactly.
+    from pooling.report import groups as G
+
+    rng = np.random.default_rng(21)
+    C, D, J = 2, 500, 3 * G.TABLE_BLOCK + 17  # several blocks and a ragged last one
+    theta = rng.normal(0.0, 1.0, (C, D, J)) + np.linspace(-2, 2, J)
+    sigma = np.exp(rng.normal(0.0, 0.2, (C, D, J)))
+    idata = make_idata(theta, rng.normal(0, 0.1, (C, D)), np.exp(rng.normal(0, 0.1, (C, D))), sigma=sigma)
+    kw = dict(level=0.9, k=4, threshold=0.5, lower=-3.0, upper=3.0, allowed_bias=1.0)
+    monkeypatch.setattr(G, "_THREADED_MIN", 1)
+    two = group_table(idata, **kw)
+    monkeypatch.setattr(G, "_THREADED_MIN", 10**18)
+    one = group_table(idata, **kw)
+    assert two.equals(one)
+    # and the blocks cover every group: the interval columns are numpy's quantiles (to rounding: numpy
+    # interpolates along a copied row in the table and down a column here, a few ulps apart)
+    lo, hi = np.quantile(theta.reshape(C * D, J), [0.05, 0.95], axis=0)
+    np.testing.assert_allclose(one["theta_low"].to_numpy(), lo, rtol=1e-12)
+    np.testing.assert_allclose(one["theta_high"].to_numpy(), hi, rtol=1e-12)

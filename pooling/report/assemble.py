@@ -10,7 +10,7 @@ import pandas as pd
 
 from ..errors import InputError
 from . import checks, plots
-from .draws import View, view
+from .draws import View, parts_of, view
 from .groups import (BEST, MAX_PAIRWISE, PREDICTION_SEED, check_k, check_level, check_limits, group_table,
                      new_group_outside, pairwise, rank_draws, rank_matrix)
 from .interlab import interlab
@@ -144,9 +144,9 @@ def make_figures(res: Results) -> dict[str, str]:
         "ranks": plots.rank_heat(res.heat["matrix"], [v.labels[j] for j in res.heat["rows"]], res.heat["columns"]),
         "predictive": plots.predictive(res.spread, res.sd, v.labels),
     }
-    post = getattr(res.fit, "idata", res.fit).posterior
+    post = parts_of(res.fit)["posterior"]
     names = ["mu", "tau"] + [x for x in ("s", "nu") if x in post] + (["sigma"] if v.within == "shared" else [])
-    figs["traces"] = plots.hyper_traces({x: post[x].values for x in names})
+    figs["traces"] = plots.hyper_traces({x: post[x] for x in names})
     return figs
 
 

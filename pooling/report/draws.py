@@ -62,25 +62,38 @@ def _stack(x: np.ndarray) -> np.ndarray:
     return x.reshape((-1,) + x.shape[2:])
 
 
+def parts_of(fit) -> dict:
+    """The draws of a `Fit` (its `parts`), of a dict of posterior.Part, or of an InferenceData laid out as
+    pooling writes it, as {group: Part}."""
+    if isinstance(fit, dict):
+        return fit
+    parts = getattr(fit, "parts", None)
+    if parts is not None:
+        return parts
+    from ..posterior import parts_from_idata
+
+    return parts_from_idata(fit)
+
+
 def view(fit) -> View:
-    """Build the reporter's view of a `Fit` or of an InferenceData laid out as pooling writes it."""
-    idata = getattr(fit, "idata", fit)
-    post, const = idata.posterior, idata.constant_data
-    labels = tuple(str(x) for x in post["group"].values)
-    theta = _stack(post["theta"].values)
-    sigma = _stack(post["sigma"].values) if "sigma" in post else None
+    """Build the reporter's view of a `Fit`, of its parts, or of an InferenceData laid out as pooling writes it."""
+    parts = parts_of(fit)
+    post, const = parts["posterior"], parts["constant_data"]
+    labels = tuple(str(x) for x in post.coords["group"])
+    theta = _stack(post["theta"])
+    sigma = _stack(post["sigma"]) if "sigma" in post else None
     if sigma is None:
         within = "known"
     else:
         within = "separate" if sigma.ndim == 2 else "shared"
-    get = lambda name: _stack(post[name].values) if name in post else None  # noqa: E731
+    get = lambda name: _stack(post[name]) if name in post else None  # noqa: E731
     return View(
-        labels=labels, within=within, mu=_stack(post["mu"].values), tau=_stack(post["tau"].values),
+        labels=labels, within=within, mu=_stack(post["mu"]), tau=_stack(post["tau"]),
         theta=theta, sigma=sigma, s=get("s"), nu=get("nu"),
-        n=np.asarray(const["n"].values, dtype=np.float64), raw_mean=np.asarray(const["raw_mean"].values, dtype=np.float64),
-        raw_sd=np.asarray(const["raw_sd"].values, dtype=np.float64) if "raw_sd" in const else None,
-        std_error=np.asarray(const["std_error"].values, dtype=np.float64) if "std_error" in const else None,
-        chains=int(post.sizes["chain"]),
+        n=np.asarray(const["n"], dtype=np.float64), raw_mean=np.asarray(const["raw_mean"], dtype=np.float64),
+        raw_sd=np.asarray(const["raw_sd"], dtype=np.float64) if "raw_sd" in const else None,
+        std_error=np.asarray(const["std_error"], dtype=np.float64) if "std_error" in const else None,
+        chains=int(post.coords["chain"].shape[0]),
     )
 
 

@@ -1,8 +1,8 @@
 """report.html: one self-contained page (inline CSS and SVG, no script, no network).
 
 Every piece of text that comes from the data or the command line passes through `esc`
-(html.escape with quotes), and the SVG pictures are written by matplotlib, which escapes its own
-text. Tables with many groups show the head and the tail; groups.csv holds every row.
+(html.escape with quotes), and the SVG pictures are written by report/svg.py, which escapes every
+text it draws. Tables with many groups show the head and the tail; groups.csv holds every row.
 """
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ import numpy as np
 from .. import __version__
 from .assemble import Results
 from .groups import COLUMNS, PREDICTION_SEED
-from .plots import HEAT, MANY
+from .plots import MANY, heat_hex
 
 TABLE_ROWS = 60  # rows shown per table; the rest is in groups.csv
 
@@ -409,8 +409,7 @@ def _pairs(res: Results) -> str:
             if not np.isfinite(x):
                 cells.append('<td class="n">·</td>')
                 continue
-            rgba = HEAT(0.1 + 0.8 * x)
-            bg = "#%02x%02x%02x" % tuple(int(255 * c) for c in rgba[:3])
+            bg = heat_hex(0.1 + 0.8 * x)
             fg = "#ffffff" if x > 0.6 else "#1f2a36"
             cells.append(f'<td class="n" style="background:{bg};color:{fg}">{Fmt.p(x)}</td>')
         body.append(f"<tr><th>{esc(plots_label(name))}</th>{''.join(cells)}</tr>")

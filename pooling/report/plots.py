@@ -1,23 +1,16 @@
-"""Pictures for the report, drawn with matplotlib's Agg machinery and returned as SVG text to be
-embedded inline. Labels from the data are drawn with mathtext parsing off, so a '$' in a group
-name is just a dollar sign; matplotlib escapes the SVG it writes.
+"""Pictures for the report, drawn with the project's own SVG layer (svg.py) and returned as SVG text
+to be embedded inline. Labels from the data are escaped by svg.text and clipped by `plain`.
 
-Above MANY groups the per-group pictures switch to forms that scale (a scatter, a band), drawn
-rasterised inside the SVG so a report for 10,000 groups stays a few megabytes.
+Above MANY groups the per-group pictures switch to forms that scale (a scatter, a band); they stay
+vector drawings, about 40 bytes a point, so a report for 10,000 groups stays a few megabytes.
 """
 from __future__ import annotations
 
-import io
 import re
-import warnings
 
-import matplotlib
+import numpy as np
 
-matplotlib.use("Agg", force=False)  # no display is ever needed; a no-op if a backend is already chosen
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-from matplotlib.colors import LinearSegmentedColormap, PowerNorm  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
+from .svg import Canvas, nice_ticks
 
 MANY = 60
 
@@ -29,15 +22,13 @@ RAW = "#a7763c"       # the groups' own means
 POOL = "#5a3d8a"      # mu, the pooled mean
 LIMIT = "#b23a2a"     # specification limits and thresholds
 CHAINS = ["#1f6f78", "#c0672a", "#5a3d8a", "#6b8e23", "#b23a2a", "#3b6ea8", "#8c6d1f", "#555f6b"]
-HEAT = LinearSegmentedColormap.from_list("pooling_heat", ["#fbfaf7", "#cfe4e1", "#5fa3a3", "#1f6f78", "#132f3a"])
+HEAT_STOPS = ["#fbfaf7", "#cfe4e1", "#5fa3a3", "#1f6f78", "#132f3a"]  # low to high, evenly spaced on 0..1
 
-_RC = {
-    "text.parse_math": False, "svg.fonttype": "none",
-    "font.family": "DejaVu Sans", "font.size": 10, "axes.edgecolor": "#9aa3ad", "axes.labelcolor": INK,
-    "xtick.color": INK, "ytick.color": INK, "axes.titlesize": 10, "axes.titleweight": "bold",
-    "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "grid.color": GRID,
-    "grid.linewidth": 0.7, "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 9,
-}
+WIDE = 960.0   # px; the report's column is about 1,000 px, so pictures show near their drawn size
+ROW = 18.0     # px per group in one-row-per-group pictures
+WHITE = "#ffffff"
+
+_STOP_RGB = np.array([[int(c[i:i + 2], 16) for i in (1, 3, 5)] for c in HEAT_STOPS], dtype=float)
 
 
 def plain(label: str, width: int = 28) -> str:
@@ -46,194 +37,180 @@ def plain(label: str, width: int = 28) -> str:
     return label if len(label) <= width else label[: width - 1] + "…"
 
 
-def _svg(fig: Figure, name: str) -> str:
-    buf = io.StringIO()
-    # a fixed salt for the ids matplotlib derives by hashing, so the same draws give the same file
-    # labels in scripts the plotting font lacks (CJK, emoji) draw as boxes; the tables beside each
-    # picture carry the exact labels, so the per-glyph warnings would only be noise on a good run
-    with plt.rc_context({"svg.hashsalt": "pooling"}), warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=r"Glyph \d+ .*missing from (current )?font", category=UserWarning)
-        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"}, dpi=150)
-    plt.close(fig)
-    text = buf.getvalue()
-    text = text[text.index("<svg"):]  # drop the XML prolog and doctype: the SVG goes inline into HTML
-    text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, count=1, flags=re.S)  # RDF boilerplate
-    # every picture shares one HTML document, where an id must be unique: prefix them all
-    text = re.sub(r'(\sid=")([^"]+)"', rf'\1{name}-\2"', text)
-    text = re.sub(r'(url\(#|href="#)([^)"]+)', rf'\1{name}-\2', text)
-    m = re.match(r'<svg([^>]*)width="([\d.]+)pt" height="([\d.]+)pt"', text)
-    if m:
-        w = float(m.group(2)) * 4 / 3
-        text = text.replace(f'width="{m.group(2)}pt" height="{m.group(3)}pt"',
-                            f'class="figure" style="max-width:{w:.0f}px" role="img"', 1)
-    return text
+def heat_rgb(x) -> np.ndarray:
+    """Colours of the heat scale at x in [0, 1] (clipped): linear interpolation between the
+    HEAT_STOPS, evenly spaced (a missing value takes the lowest colour); returns (..., 3) floats 0..255."""
+    x = np.clip(np.nan_to_num(np.asarray(x, dtype=float), nan=0.0), 0.0, 1.0)
+    pos = x * (len(HEAT_STOPS) - 1)
+    i = np.minimum(pos.astype(np.int64), len(HEAT_STOPS) - 2)
+    f = (pos - i)[..., None]
+    return _STOP_RGB[i] * (1.0 - f) + _STOP_RGB[i + 1] * f
 
 
-def _fig(w: float, h: float) -> Figure:
-    return plt.figure(figsize=(w, h), dpi=100, layout="constrained")
+def heat_hex(x):
+    """'#rrggbb' of the heat scale at x in [0, 1]; an array of them for an array x."""
+    rgb = np.rint(heat_rgb(x)).astype(np.int64)
+    flat = rgb.reshape(-1, 3)
+    out = np.array([f"#{r:02x}{g:02x}{b:02x}" for r, g, b in flat.tolist()], dtype=object)
+    return out[0] if rgb.ndim == 1 else out.reshape(rgb.shape[:-1])
 
 
-def _tick_labels(ax, labels, axis="y"):
-    labs = [plain(x) for x in labels]
-    if axis == "y":
-        ax.set_yticks(np.arange(len(labs)), labs)
-    else:
-        ax.set_xticks(np.arange(len(labs)), labs, rotation=90)
+def _labels(labels) -> list[str]:
+    return [plain(x) for x in labels]
 
 
-def _height(rows: int) -> float:
-    return max(2.6, 0.9 + 0.2 * rows)
+def _rows_height(rows: int, extra: float = 0.0) -> float:
+    return max(260.0, ROW * (rows + 0.4) + 84.0 + extra)
 
 
-WIDE = 10.0  # inches; the report's column is about 1,000 px, so pictures show near their drawn size
-
-
-def _legend_top(ax, ncol: int = 5):
-    ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=ncol, borderaxespad=0.3, handletextpad=0.4,
-              columnspacing=1.4)
+def _marker_area(n: np.ndarray, most: float) -> np.ndarray:
+    """Marker area in px^2 proportional to n (largest group: `most`), at least a visible dot."""
+    n = np.asarray(n, dtype=float)
+    top = np.nanmax(n) if n.size else 0.0
+    if not top > 0:
+        return np.full(n.shape, most / 3)
+    return np.maximum(most * n / top, 5.0)
 
 
 # ---------------------------------------------------------------------------------------------
 
 def shrinkage(table, mu_mean: float, title: str = "") -> str:
     """Each group's own mean pulled to its posterior mean; markers sized by n; mu drawn as a line."""
-    with plt.rc_context(_RC):
-        J = len(table)
-        size = 12 + 110 * np.sqrt(table["n"].to_numpy() / max(1, table["n"].max()))
-        if J <= MANY:
-            order = np.argsort(table["theta_mean"].to_numpy())
-            t = table.iloc[order]
-            fig = _fig(WIDE, _height(J))
-            ax = fig.add_subplot()
-            y = np.arange(J)
-            raw, post = t["raw_mean"].to_numpy(), t["theta_mean"].to_numpy()
-            ax.axvline(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)")
-            for yi, a, b in zip(y, raw, post):
-                if a != b:
-                    ax.annotate("", xy=(b, yi), xytext=(a, yi),
-                                arrowprops=dict(arrowstyle="-|>", color=MUTED, lw=0.9, shrinkA=3, shrinkB=2,
-                                                mutation_scale=8))
-            ax.scatter(raw, y, s=size[order], facecolor="white", edgecolor=RAW, lw=1.3, zorder=3,
-                       label="group's own mean (area ∝ n)")
-            ax.scatter(post, y, s=16, color=POST, zorder=4, label="posterior mean")
-            _tick_labels(ax, t["group"].tolist())
-            ax.set_ylim(-0.7, J - 0.3)
-            ax.grid(axis="y", visible=False)
-            ax.set_xlabel("theta")
-            _legend_top(ax)
-        else:
-            fig = _fig(7.0, 5.6)
-            ax = fig.add_subplot()
-            raw, post = table["raw_mean"].to_numpy(), table["theta_mean"].to_numpy()
-            lo, hi = np.nanmin(raw), np.nanmax(raw)
-            ax.plot([lo, hi], [lo, hi], color=MUTED, lw=1, label="no pooling (posterior = own mean)")
-            ax.axhline(mu_mean, color=POOL, lw=1.2, ls="--", label="complete pooling (mu)")
-            ax.scatter(raw, post, s=size * 0.35, color=POST, alpha=0.45, lw=0, rasterized=True,
-                       label="group (area ∝ n)")
-            ax.set_xlabel("group's own mean")
-            ax.set_ylabel("posterior mean")
-            ax.legend(loc="upper left")
-        if title:
-            ax.set_title(title, loc="left")
-        return _svg(fig, "shrinkage")
+    J = len(table)
+    if J <= MANY:
+        order = np.argsort(table["theta_mean"].to_numpy(), kind="stable")
+        t = table.iloc[order]
+        y = np.arange(J, dtype=float)
+        raw, post = t["raw_mean"].to_numpy(dtype=float), t["theta_mean"].to_numpy(dtype=float)
+        area = _marker_area(t["n"].to_numpy(dtype=float), 200.0)
+        h = _rows_height(J, 22.0 if title else 0.0)
+        c = Canvas(WIDE, h, "shrinkage", "Each group's own mean and its posterior mean")
+        p = c.panel(0, 0, WIDE, h, title=title, xlabel="theta", yticks=(y, _labels(t["group"])), ygrid=False,
+                    ylim=(-0.7, J - 0.3))
+        p.vline(mu_mean, POOL, 1.5, "dashed", key="pooled mean (mu)")
+        moved = raw != post
+        post_area = 18.0
+        p.arrows(raw[moved], y[moved], post[moved], y[moved], MUTED, 1.1, head=6.0,
+                 shrink_start=np.sqrt(area[moved] / np.pi) + 1.0, shrink_end=np.sqrt(post_area / np.pi) + 0.5)
+        p.points(raw, y, area, fill=WHITE, stroke=RAW, stroke_width=1.6, key="group's own mean (area ∝ n)",
+                 role="own-mean")
+        p.points(post, y, post_area, fill=POST, key="posterior mean", role="posterior-mean")
+    else:
+        raw, post = table["raw_mean"].to_numpy(dtype=float), table["theta_mean"].to_numpy(dtype=float)
+        area = _marker_area(table["n"].to_numpy(dtype=float), 40.0)
+        c = Canvas(720, 580 + (22 if title else 0), "shrinkage", "Posterior mean against own mean, every group")
+        p = c.panel(0, 0, 720, 580 + (22 if title else 0), title=title, xlabel="group's own mean",
+                    ylabel="posterior mean")
+        lo, hi = np.nanmin(raw), np.nanmax(raw)
+        p.line([lo, hi], [lo, hi], MUTED, 1.2, key="no pooling (posterior = own mean)")
+        p.hline(mu_mean, POOL, 1.5, "dashed", key="complete pooling (mu)")
+        p.points(raw, post, area, fill=POST, opacity=0.45, key="group (area ∝ n)", role="posterior-mean")
+    return c.svg()
 
 
 def intervals(table, mu_mean: float, level: float, lower=None, upper=None, threshold=None) -> str:
     """Credible intervals of theta_j sorted by posterior mean, with mu, limits and threshold drawn in."""
-    with plt.rc_context(_RC):
-        J = len(table)
-        order = np.argsort(table["theta_mean"].to_numpy())
-        t = table.iloc[order]
-        m, lo, hi = (t[c].to_numpy() for c in ("theta_mean", "theta_low", "theta_high"))
-        few = J <= MANY
-        fig = _fig(WIDE, _height(J) if few else 4.4)
-        ax = fig.add_subplot()
-        if few:  # one row per group, values across
-            y = np.arange(J)
-            ax.hlines(y, lo, hi, color=POST, lw=2.4, alpha=0.5, label=f"{level:.0%} credible interval")
-            ax.scatter(m, y, s=15, color=POST, zorder=3, label="posterior mean")
-            ax.scatter(t["raw_mean"].to_numpy(), y, marker="|", s=50, color=RAW, zorder=3, label="own mean")
-            _tick_labels(ax, t["group"].tolist())
-            ax.set_ylim(-0.7, J - 0.3)
-            ax.grid(axis="y", visible=False)
-            line = ax.axvline
-            ax.set_xlabel("theta")
-        else:  # groups along the bottom as a band: thousands of rows would be unreadable
-            x = np.arange(J)
-            ax.fill_between(x, lo, hi, color=POST, alpha=0.25, lw=0, rasterized=True, label=f"{level:.0%} credible interval")
-            ax.plot(x, m, color=POST, lw=1.2, rasterized=True, label="posterior mean")
-            ax.set_xlabel("groups, sorted by posterior mean")
-            ax.set_ylabel("theta")
-            line = ax.axhline
-        line(mu_mean, color=POOL, lw=1.2, ls="--", label="pooled mean (mu)")
-        for val, name, style in ((lower, "lower limit", "-"), (upper, "upper limit", "-"), (threshold, "threshold", ":")):
-            if val is not None:
-                line(val, color=LIMIT, lw=1.3, ls=style, label=f"{name} {val:g}")
-        _legend_top(ax)
-        return _svg(fig, "intervals")
+    J = len(table)
+    order = np.argsort(table["theta_mean"].to_numpy(), kind="stable")
+    t = table.iloc[order]
+    m, lo, hi = (t[col].to_numpy(dtype=float) for col in ("theta_mean", "theta_low", "theta_high"))
+    if J <= MANY:  # one row per group, values across
+        h = _rows_height(J)
+        c = Canvas(WIDE, h, "intervals", f"{level:.0%} credible intervals of theta, by group")
+        p = c.panel(0, 0, WIDE, h, xlabel="theta", yticks=(np.arange(J), _labels(t["group"])), ygrid=False,
+                    ylim=(-0.7, J - 0.3))
+        y = np.arange(J, dtype=float)
+        p.hsegments(y, lo, hi, POST, 3.4, 0.5, key=f"{level:.0%} credible interval", role="interval")
+        p.points(m, y, 18.0, fill=POST, key="posterior mean", role="posterior-mean")
+        p.vsegments(t["raw_mean"].to_numpy(dtype=float), y - 0.3, y + 0.3, RAW, 1.5, key="own mean",
+                    role="own-mean")
+        line = p.vline
+    else:  # groups along the bottom as a band: thousands of rows would be unreadable
+        c = Canvas(WIDE, 440, "intervals", f"{level:.0%} credible intervals of theta, groups sorted")
+        p = c.panel(0, 0, WIDE, 440, xlabel="groups, sorted by posterior mean", ylabel="theta", xpad=0.0)
+        x = np.arange(J, dtype=float)
+        p.band(x, lo, hi, POST, 0.25, key=f"{level:.0%} credible interval", role="interval")
+        p.line(x, m, POST, 1.3, key="posterior mean", role="posterior-mean")
+        line = p.hline
+    line(mu_mean, POOL, 1.5, "dashed", key="pooled mean (mu)")
+    for val, name, style in ((lower, "lower limit", "solid"), (upper, "upper limit", "solid"),
+                             (threshold, "threshold", "dotted")):
+        if val is not None:
+            line(val, LIMIT, 1.5, style, key=f"{name} {val:g}")
+    return c.svg()
 
 
 def rank_heat(matrix: np.ndarray, labels, columns) -> str:
     """P(rank = r) as a heat map: groups down the side in order of mean rank, ranks across."""
-    with plt.rc_context(_RC):
-        rows, cols = matrix.shape
-        fig = _fig(max(5.5, min(WIDE, 2.2 + 0.22 * cols)), _height(rows) + 0.3)
-        ax = fig.add_subplot()
-        # a square-root scale: with many groups most probabilities are small, and they are the story
-        im = ax.pcolormesh(np.arange(cols + 1) - 0.5, np.arange(rows + 1) - 0.5, matrix, cmap=HEAT,
-                           norm=PowerNorm(0.5, vmin=0.0, vmax=max(0.05, float(matrix.max()))), lw=0,
-                           rasterized=True)
-        ax.set_xlim(-0.5, cols - 0.5)
-        ax.set_ylim(rows - 0.5, -0.5)
-        _tick_labels(ax, labels)
-        step = max(1, int(np.ceil(cols / 20)))
-        ticks = np.arange(0, cols, step)
-        ax.set_xticks(ticks, [str(columns[i]) for i in ticks])
-        ax.grid(False)
-        ax.set_xlabel("rank (1 = best)")
-        ax.xaxis.set_label_position("top")
-        ax.xaxis.tick_top()
-        for sp in ax.spines.values():
-            sp.set_visible(False)
-        cb = fig.colorbar(im, ax=ax, fraction=0.03, pad=0.015, shrink=min(1.0, 4.0 / _height(rows)), anchor=(0, 1))
-        cb.set_label("probability")
-        cb.outline.set_visible(False)
-        return _svg(fig, "rank_heat")
+    matrix = np.asarray(matrix, dtype=float)
+    rows, cols = matrix.shape
+    vmax = max(0.05, float(np.nanmax(matrix))) if matrix.size else 0.05
+    # a square-root scale: with many groups most probabilities are small, and they are the story
+    colors = heat_hex(np.sqrt(np.clip(np.nan_to_num(matrix) / vmax, 0.0, 1.0)))
+    w = max(560.0, min(WIDE, 300.0 + 22.0 * cols))
+    top = 56.0
+    h = max(240.0, ROW * rows + top + 14.0)
+    c = Canvas(w, h, "rank_heat", "Probability of each rank, by group")
+    step = max(1, int(np.ceil(cols / 20)))
+    ticks = np.arange(0, cols, step)
+    p = c.panel(0, 0, w, h, xlabel="rank (1 = best)", xside="top", flip_y=True, frame=False, xgrid=False,
+                ygrid=False, xlim=(-0.5, cols - 0.5), ylim=(-0.5, rows - 0.5),
+                xticks=(ticks, [str(columns[i]) for i in ticks]), yticks=(np.arange(rows), _labels(labels)))
+    p.minimum["top"] = top  # room for the rank labels and the axis label above the cells
+    p.cells(np.arange(cols + 1) - 0.5, np.arange(rows + 1) - 0.5, colors, skip=HEAT_STOPS[0], role="cells")
+    vals, labs, _ = nice_ticks(0.0, vmax)
+    keep = vals <= vmax * (1 + 1e-9)
+    p.colorbar(HEAT_STOPS, np.sqrt(vals[keep] / vmax), [x for x, k in zip(labs, keep) if k], label="probability",
+               height=min(260.0, ROW * rows))
+    return c.svg()
 
 
 def hyper_traces(named: dict[str, np.ndarray]) -> str:
     """For each hyperparameter (chains, draws): the trace by chain and a rank histogram per chain."""
-    with plt.rc_context(_RC):
-        k = len(named)
-        fig = _fig(WIDE, 1.7 * k + 0.4)
-        rng = np.random.default_rng(0)  # breaks ties in the ranks of a discrete quantity (nu) at random
-        axes = fig.subplots(k, 2, squeeze=False, gridspec_kw={"width_ratios": [2.3, 1]})
-        for row, (name, x) in enumerate(named.items()):
-            C, D = x.shape
-            step = max(1, int(np.ceil(D / 500)))  # thinned for the picture only; every draw enters the ranks
-            flat = x.reshape(-1)
-            # tied draws (nu lives on a grid) get their order at random, so a rank histogram of a
-            # well-mixed discrete quantity is flat too (common practice)
-            ranks = np.empty(flat.size)
-            ranks[np.lexsort((rng.random(flat.size), flat))] = np.arange(1, flat.size + 1)
-            ranks = ranks.reshape(C, D)
-            edges = np.linspace(0.5, C * D + 0.5, 21)
-            for c in range(C):
-                col = CHAINS[c % len(CHAINS)]
-                axes[row, 0].plot(np.arange(0, D, step), x[c, ::step], color=col, lw=0.55, alpha=0.75)
-                h, _ = np.histogram(ranks[c], edges)
-                axes[row, 1].step(np.arange(20), h, where="mid", color=col, lw=1.1)
-            axes[row, 1].axhline(D / 20, color=MUTED, ls=":", lw=1)
-            axes[row, 1].set_ylim(0, D / 20 * 2)
-            axes[row, 0].set_ylabel(name)
-            axes[row, 1].set_yticks([])
-            axes[row, 1].set_xticks([])
-            if row == 0:
-                axes[row, 0].set_title("draws by chain", loc="left")
-                axes[row, 1].set_title("ranks by chain (flat = mixed)", loc="left")
-        axes[-1, 0].set_xlabel("draw")
-        axes[-1, 1].set_xlabel("rank bins over all chains")
-        return _svg(fig, "hyper_traces")
+    k = len(named)
+    row_h = 150.0
+    head = 24.0
+    foot = 34.0
+    h = head + row_h * k + foot
+    c = Canvas(WIDE, h, "hyper_traces", "Hyperparameter draws by chain, and rank histograms by chain")
+    left_w = WIDE * 2.3 / 3.3
+    rng = np.random.default_rng(0)  # breaks ties in the ranks of a discrete quantity (nu) at random
+    lefts, rights = [], []
+    for row, (name, x) in enumerate(named.items()):
+        x = np.asarray(x, dtype=float)
+        C, D = x.shape
+        last = row == k - 1
+        y = (0.0 if row == 0 else head) + row * row_h
+        hh = row_h + (head if row == 0 else 0.0) + (foot if last else 0.0)
+        a = c.panel(0, y, left_w, hh, title="draws by chain" if row == 0 else "", ylabel=name,
+                    xlabel="draw" if last else "", xpad=0.0, ypad=0.05)
+        b = c.panel(left_w, y, WIDE - left_w, hh, title="ranks by chain (flat = mixed)" if row == 0 else "",
+                    xlabel="rank bins over all chains" if last else "", xticks=False, yticks=False,
+                    xlim=(0, 20), ylim=(0, None), ypad=0.0)
+        lefts.append(a)
+        rights.append(b)
+        step = max(1, int(np.ceil(D / 500)))  # thinned for the picture only; every draw enters the ranks
+        flat = x.reshape(-1)
+        # tied draws (nu lives on a grid) get their order at random, so a rank histogram of a
+        # well-mixed discrete quantity is flat too (common practice)
+        ranks = np.empty(flat.size)
+        ranks[np.lexsort((rng.random(flat.size), flat))] = np.arange(1, flat.size + 1)
+        ranks = ranks.reshape(C, D)
+        edges = np.linspace(0.5, C * D + 0.5, 21)
+        tallest = D / 20 * 2
+        idx = np.arange(0, D, step)
+        for ch in range(C):
+            col = CHAINS[ch % len(CHAINS)]
+            a.line(idx, x[ch, ::step], col, 0.7, opacity=0.75, role="trace")
+            hist, _ = np.histogram(ranks[ch], edges)
+            tallest = max(tallest, float(hist.max()) * 1.05)
+            b.steps(np.arange(21), hist, color=col, width=1.2, closed=False, role="ranks")
+        b.hline(D / 20, MUTED, 1.0, "dotted")
+        b.lims["y"] = (0.0, tallest)
+    c.align(*lefts, sides="left")
+    for a, b in zip(lefts, rights):
+        c.align(a, b, sides="top bottom")
+    return c.svg()
 
 
 def predictive(spread: dict | None, sd: dict | None, labels) -> str:
@@ -241,27 +218,34 @@ def predictive(spread: dict | None, sd: dict | None, labels) -> str:
     panels = [name for name, x in (("spread", spread), ("sd", sd)) if x is not None]
     if not panels:
         return ""
-    with plt.rc_context(_RC):
-        fig = _fig(WIDE if len(panels) == 2 else WIDE * 0.6, 3.4)
-        axes = dict(zip(panels, fig.subplots(1, len(panels), squeeze=False)[0]))
-        if spread is not None:
-            ax = axes["spread"]
-            ax.hist(spread["replicated"], bins=40, color=POST, alpha=0.55, lw=0)
-            ax.axvline(spread["observed"], color=LIMIT, lw=1.6, label=f"observed (p = {spread['p_value']:.2f})")
-            ax.set_title("spread of the group means", loc="left")
-            ax.set_xlabel("sd over groups of the means, replicated")
-            ax.set_yticks([])
-            ax.legend(loc="upper right")
-        if sd is not None:
-            ax = axes["sd"]
-            order = np.argsort(sd["median"])
-            x = np.arange(len(order))
-            many = len(order) > MANY
-            ax.fill_between(x, sd["low"][order], sd["high"][order], color=POST, alpha=0.22, lw=0, step="mid",
-                            rasterized=many, label=f"replicated, {sd['level']:.0%}")
-            ax.scatter(x, sd["observed"][order], s=6 if many else 12, color=RAW, zorder=3, lw=0,
-                       rasterized=many, label="observed")
-            ax.set_title("within-group sd", loc="left")
-            ax.set_xlabel("groups with n ≥ 2, by replicated median")
-            ax.legend(loc="upper left")
-        return _svg(fig, "predictive")
+    w = WIDE if len(panels) == 2 else WIDE * 0.6
+    h = 340.0
+    c = Canvas(w, h, "predictive", "Posterior predictive checks: replicated against observed")
+    each = w / len(panels)
+    made = []
+    at = 0.0
+    if spread is not None:
+        p = c.panel(at, 0, each, h, title="spread of the group means", xlabel="sd over groups of the means, replicated",
+                    yticks=False, ylim=(0, None), ypad=0.05)
+        rep = np.asarray(spread["replicated"], dtype=float)
+        rep = rep[np.isfinite(rep)]
+        if rep.size:
+            counts, edges = np.histogram(rep, bins=40)
+            p.steps(edges, counts, fill=POST, opacity=0.55, role="replicated")
+        p.vline(spread["observed"], LIMIT, 2.0, key=f"observed (p = {spread['p_value']:.2f})", role="observed")
+        made.append(p)
+        at += each
+    if sd is not None:
+        p = c.panel(at, 0, each, h, title="within-group sd", xlabel="groups with n ≥ 2, by replicated median",
+                    xpad=0.01)
+        order = np.argsort(sd["median"], kind="stable")
+        x = np.arange(len(order), dtype=float)
+        many = len(order) > MANY
+        p.band(x, np.asarray(sd["low"])[order], np.asarray(sd["high"])[order], POST, 0.22, step=not many,
+               key=f"replicated, {sd['level']:.0%}", role="replicated")
+        p.points(x, np.asarray(sd["observed"])[order], 8.0 if many else 16.0, fill=RAW, key="observed",
+                 role="observed")
+        made.append(p)
+    if len(made) == 2:
+        c.align(*made, sides="top bottom")
+    return c.svg()

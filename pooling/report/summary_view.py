@@ -63,7 +63,7 @@ def _pairs(fit, o):
     if missing:
         raise InputError(f"bad option: summary mode compares only groups whose draws were kept; '{missing[0]}' was "
                          "not kept (name it with --keep, or pass it to --compare before the run)")
-    return pairwise(fit.idata, wanted)
+    return pairwise(fit, wanted)
 
 
 def summary_keys(fit, o, pairs) -> dict:
@@ -118,59 +118,34 @@ def write_summary_report(fit, folder, options=None):
 # ---------------------------------------------------------------------------------------------
 # pictures
 
-_RC = {"text.parse_math": False, "svg.fonttype": "none", "svg.hashsalt": "pooling-summary", "font.family": "DejaVu Sans",
-       "font.size": 9, "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "grid.color": "#e3e6ea",
-       "axes.axisbelow": True, "legend.frameon": False, "legend.fontsize": 8, "axes.titlesize": 10,
-       "axes.titleweight": "bold"}
-
-
-def _svg(fig, name: str) -> str:
-    """Inline SVG text of a figure; ids carry `name` so they stay unique within the page."""
-    import io
-    import re
-
-    import matplotlib.pyplot as plt
-
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "pooling"})
-    plt.close(fig)
-    text = buf.getvalue()
-    text = text[text.index("<svg"):]
-    text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, count=1, flags=re.S)
-    text = re.sub(r'(\sid=")([^"]+)"', rf'\1{name}-\2"', text)
-    text = re.sub(r'(url\(#|href="#)([^)"]+)', rf'\1{name}-\2', text)
-    m = re.match(r'<svg([^>]*)width="([\d.]+)pt" height="([\d.]+)pt"', text)
-    if m:
-        text = text.replace(f'width="{m.group(2)}pt" height="{m.group(3)}pt"',
-                            f'class="figure" style="max-width:{float(m.group(2)) * 4 / 3:.0f}px" role="img"', 1)
-    return text
-
-
 def histograms(t, mu_mean: float) -> str:
     """Two histograms over all groups: posterior means (own means drawn as a line) and shrinkage weights."""
-    import matplotlib.pyplot as plt
+    from .svg import Canvas
 
-    with plt.rc_context(_RC):
-        fig = plt.figure(figsize=(10.0, 3.4), dpi=100, layout="constrained")
-        a, b = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1.4, 1]})
-        post, raw = t["theta_mean"].to_numpy(), t["raw_mean"].to_numpy()
-        lo, hi = np.nanquantile(np.concatenate([post, raw]), [0.0005, 0.9995])
-        if not hi > lo:
-            lo, hi = lo - 0.5, hi + 0.5
-        edges = np.linspace(lo, hi, 81)
-        a.hist(np.clip(post, lo, hi), edges, color=plots.POST, alpha=0.6, lw=0, label="posterior means")
-        a.hist(np.clip(raw, lo, hi), edges, histtype="step", color=plots.RAW, lw=1.3, label="own means")
-        a.axvline(mu_mean, color=plots.POOL, lw=1.2, ls="--", label="pooled mean (mu)")
-        a.set_title("where the groups sit", loc="left")
-        a.set_xlabel("theta (the outermost 0.05% of each end folded into the end bins)")
-        a.set_ylabel("groups")
-        a.legend(loc="upper right")
-        w = t["shrink_weight"].to_numpy()
-        b.hist(w, np.linspace(0, 1, 51), color=plots.POST, alpha=0.6, lw=0)
-        b.set_title("how far each was pulled", loc="left")
-        b.set_xlabel("shrinkage weight v/(v + tau²): 0 own mean, 1 pooled mean")
-        b.set_ylabel("groups")
-        return _svg(fig, "summary-hist")
+    w, h = 960.0, 340.0
+    split = w * 1.4 / 2.4
+    c = Canvas(w, h, "summary-hist", "Histograms over all groups: posterior and own means, shrinkage weights")
+    a = c.panel(0, 0, split, h, title="where the groups sit", ylabel="groups", ylim=(0, None), ypad=0.05,
+                xlabel="theta (the outermost 0.05% of each end folded into the end bins)")
+    post, raw = t["theta_mean"].to_numpy(dtype=float), t["raw_mean"].to_numpy(dtype=float)
+    both = np.concatenate([post, raw])
+    both = both[np.isfinite(both)]
+    lo, hi = np.quantile(both, [0.0005, 0.9995]) if both.size else (0.0, 1.0)
+    if not hi > lo:
+        lo, hi = lo - 0.5, hi + 0.5
+    edges = np.linspace(lo, hi, 81)
+    a.steps(edges, np.histogram(np.clip(post[np.isfinite(post)], lo, hi), edges)[0], fill=plots.POST, opacity=0.6,
+            key="posterior means", role="posterior-means")
+    a.steps(edges, np.histogram(np.clip(raw[np.isfinite(raw)], lo, hi), edges)[0], color=plots.RAW, width=1.3,
+            key="own means", role="own-means")
+    a.vline(mu_mean, plots.POOL, 1.5, "dashed", key="pooled mean (mu)")
+    b = c.panel(split, 0, w - split, h, title="how far each was pulled", ylabel="groups", ylim=(0, None), ypad=0.05,
+                xlim=(0, 1), xlabel="shrinkage weight v/(v + tau²): 0 own mean, 1 pooled mean")
+    wt = t["shrink_weight"].to_numpy(dtype=float)
+    bins = np.linspace(0, 1, 51)
+    b.steps(bins, np.histogram(wt[np.isfinite(wt)], bins)[0], fill=plots.POST, opacity=0.6, role="weights")
+    c.align(a, b, sides="top bottom")
+    return c.svg()
 
 
 # ---------------------------------------------------------------------------------------------
@@ -219,7 +194,7 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
     f = Fmt(float(np.median(t["theta_sd"])))
     diag = fit.diagnostics()
     tg = diag["targets"]
-    post = fit.idata.posterior
+    post = fit.parts["posterior"]
     parts: list[str] = []
     add = parts.append
     created = (summary or {}).get("created_utc") or time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())
@@ -253,14 +228,14 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
             "was stored; the other groups are screened by a classic R-hat (Run health).</div>")
 
     # --- at a glance -----------------------------------------------------------------------------
-    mu = post["mu"].values.reshape(-1)
-    tau = post["tau"].values.reshape(-1)
+    mu = post["mu"].reshape(-1)
+    tau = post["tau"].reshape(-1)
     ql, qh = (1 - o.level) / 2, (1 + o.level) / 2
     cards = [_card("pooled mean mu", f.v(mu.mean()), f"{lvl} interval {f.v(np.quantile(mu, ql))} to {f.v(np.quantile(mu, qh))}"),
              _card("between-group sd tau", f.v(tau.mean()),
                    f"{lvl} interval {f.v(np.quantile(tau, ql))} to {f.v(np.quantile(tau, qh))}")]
     if "within_sd" in post:
-        sr = post["within_sd"].values.reshape(-1)
+        sr = post["within_sd"].reshape(-1)
         cards.append(_card("typical within-group sd", f.v(sr.mean()),
                            f"sqrt(mean of sigma²); {lvl} interval {f.v(np.quantile(sr, ql))} to {f.v(np.quantile(sr, qh))}"))
     jb = int(np.argmax(t["p_best"].to_numpy()))
@@ -354,11 +329,11 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
 
 
 def _hyper_named(fit) -> dict:
-    post = fit.idata.posterior
+    post = fit.parts["posterior"]
     names = ["mu", "tau"] + [x for x in ("s", "nu") if x in post]
     if fit.problem.model.within == "shared":
         names.append("sigma")
-    return {x: post[x].values for x in names}
+    return {x: post[x] for x in names}
 
 
 def _limits(t, f: Fmt, o, lvl: str, fit) -> str:
