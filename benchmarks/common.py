@@ -110,7 +110,7 @@ class KernelChain:
             views = [a[done:done + k] for a in out] if store else out
             kernel.sweeps(self.rng, k, adapt, p.within_code, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
                           p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
-                          self.state, self.theta, self.sigma2, *views, 0)
+                          p.nu_table, p.layout, self.state, self.theta, self.sigma2, *views, 0)
             done += k
         if store:
             return dict(zip(("mu", "tau", "theta", "sigma", "s", "nu", "evals"), out))

@@ -230,6 +230,16 @@ class Problem:
     s2_rate: float
     nu_grid: np.ndarray
     nu_logprior: np.ndarray
+    nu_table: np.ndarray = None  # kernel.prepare(n, nu_grid): computed once here, read by every sweep
+    layout: np.ndarray = None
+
+    def __post_init__(self):
+        if self.nu_table is None or self.layout is None:
+            from .kernel import prepare
+
+            table, layout = prepare(self.n, self.nu_grid)
+            object.__setattr__(self, "nu_table", table)
+            object.__setattr__(self, "layout", layout)
 
     @property
     def J(self) -> int:

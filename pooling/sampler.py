@@ -135,7 +135,7 @@ class _Chain:
             views = [out[key][done:done + k] for key in keys] if store else [out[key] for key in keys]
             kernel.sweeps(self.rng, k, adapt, within, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
                           p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
-                          self.state, self.theta, self.sigma2, *views, 0)
+                          p.nu_table, p.layout, self.state, self.theta, self.sigma2, *views, 0)
             done += k
             tick(k)
         if store:

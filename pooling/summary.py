@@ -185,7 +185,7 @@ class _SummaryChain(_Chain):
                 k = min(chunk, n_sweeps - done)
                 sk.pilot_sweeps(self.rng, k, p.within_code, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
                                 p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid,
-                                p.nu_logprior, self.state, self.theta, self.sigma2, sh.logn, sh.opt,
+                                p.nu_logprior, p.nu_table, p.layout, self.state, self.theta, self.sigma2, sh.logn, sh.opt,
                                 sh.rowmap[sk.Q_BIAS] >= 0, self.count, self.pilot_mean, self.pilot_msq)
                 done += k
                 tick(k)
@@ -203,7 +203,7 @@ class _SummaryChain(_Chain):
             sl = slice(done, done + k)
             sk.summary_sweeps(self.rng, k, p.within_code, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
                               p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
-                              self.state, self.theta, self.sigma2, sh.logn, sh.opt, sh.k, self.count,
+                              p.nu_table, p.layout, self.state, self.theta, self.sigma2, sh.logn, sh.opt, sh.k, self.count,
                               a["run"], a["hits"], sh.rowmap, sh.glo, sh.ginv, a["hist"], a["ext"], sh.bucket,
                               a["bcnt"], a["bidx"], sh.kept, out["hyper"][sl], out["evals"][sl], out["theta"][sl],
                               out["sigma"][sl], out["rank"][sl], sh.rank_bin, a["rhist"], a["wmax"], a["lobin"])

@@ -99,7 +99,8 @@ def _buffers(within, J, rows):
 
 @njit(nogil=True, cache=True)
 def pilot_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                 s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, logn, opt, bias_on, count, mean, msq):
+                 s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, logn, opt, bias_on, count,
+                 mean, msq):
     """Warm-up sweeps (the slice width still adapting) that keep, per group, the Welford mean and M2 of
     x_q for every summarised quantity q; the histogram grids are placed from them after warm-up.
 
@@ -112,7 +113,7 @@ def pilot_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, m
     limits = opt[O_LIMITS] > 0.0
     for it in range(n_sweeps):
         sweeps(rng, 1, True, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-               s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
+               s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
                o_nu, o_ev, 0)
         count[0] += 1.0
         inv = 1.0 / count[0]
@@ -195,7 +196,7 @@ def _sift_up(hx, hi, pos):
 
 @njit(nogil=True, cache=True)
 def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                   s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, logn, opt, k_top, count,
+                   s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, logn, opt, k_top, count,
                    run, hits, rowmap, glo, ginv, hist, ext, bucket, bcnt, bidx, kept, out_hyper, out_evals,
                    out_theta, out_sigma, out_rank, rank_bin, rhist, wmax, lobin):
     """Run n_sweeps post-warm-up sweeps, updating the running summaries (see the module notes).
@@ -236,7 +237,7 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
     poscnt = np.empty(m + 1, dtype=np.int64)
     for it in range(n_sweeps):
         sweeps(rng, 1, False, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-               s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
+               s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
                o_nu, o_ev, 0)
         ev = o_ev[0]
         count[0] += 1.0

@@ -106,7 +106,8 @@ def run_kernel(within, n, ybar, m2, v_known, *, n_sweeps, seed, mu_prior=(0, 0.0
     }
     rng = np.random.default_rng(seed)
     kern.sweeps(rng, n_sweeps, False, within, n, ybar, m2, v_known, mu_prior[0], mu_prior[1], mu_prior[2],
-                tau_prior[0], tau_prior[1], s2_prior[0], s2_prior[1], nu_grid, nu_logprior, state, theta, sigma2,
+                tau_prior[0], tau_prior[1], s2_prior[0], s2_prior[1], nu_grid, nu_logprior,
+                *kernel.prepare(n, nu_grid), state, theta, sigma2,
                 out["mu"], out["tau"], out["theta"], out["sigma"], out["s"], out["nu"], out["evals"], 0)
     return out
 
@@ -347,7 +348,8 @@ def test_variance_block_draws(nu_idx, s2_prior):
     assert len(np.unique(k)) >= 3  # the grid is really explored, not stuck on one point
 
 
-def test_collapsed_nu_move_keeps_its_target():
+@pytest.mark.parametrize("by_size", [True, False], ids=["sums by size class", "sums group by group"])
+def test_collapsed_nu_move_keeps_its_target(by_size):
     # The Metropolis move of nu with every sigma_j^2 integrated out must leave
     # p(nu | s^2, theta, y) ∝ w_k prod_j int N-likelihood x Scaled-Inv-chi2(sigma_j^2 | nu_k, s^2)
     # invariant (the first half of a partially collapsed update; van Dyk and Park 2008, JASA 103).
@@ -363,6 +365,10 @@ def test_collapsed_nu_move_keeps_its_target():
     assert target.max() < 0.9  # the target is spread over the grid, so the test has something to see
     table, work = np.empty(len(SEP_GRID)), np.empty(len(n))
     kernel.nu_lgamma_table(n, SEP_GRID, table)
+    J = len(n)
+    pos, firsts, sizes = np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64), np.empty(J)
+    n_classes = kernel.size_classes(n, pos, firsts, sizes) if by_size else -1
+    assert n_classes == (len(np.unique(n)) if by_size else -1)  # unbalanced dyestuff: several sizes
     rng = np.random.default_rng(2008)
     chains, moves = 6000, 10
     starts = rng.choice(len(SEP_GRID), size=chains, p=target)
@@ -373,7 +379,8 @@ def test_collapsed_nu_move_keeps_its_target():
         state[kernel.S2] = s2
         state[kernel.NU_IDX] = starts[c]
         for _ in range(moves):
-            kernel.collapsed_nu_step(rng, n, ybar, m2, SEP_GRID, logprior, table, state, theta, work)
+            kernel.collapsed_nu_step(rng, n, ybar, m2, SEP_GRID, logprior, table, state, theta, work, n_classes, pos,
+                                     firsts, sizes)
         finals[c] = int(state[kernel.NU_IDX])
     counts = np.bincount(finals, minlength=len(SEP_GRID))
     assert np.any(finals != starts)  # the move does move
@@ -539,7 +546,7 @@ def slice_finals(cdf, ybar, v, mu_prior, tau_prior, chains=3000, steps=12, seed=
     mu, tau, theta = np.empty(steps), np.empty(steps), np.empty((steps, J))
     sig, s, nu, ev = np.empty((steps, 0)), np.empty(0), np.empty(0), np.empty(steps)
     args = (2, np.ones(J), ybar, np.zeros(J), v, mu_prior[0], mu_prior[1], mu_prior[2], tau_prior[0], tau_prior[1],
-            0.0, 0.0, np.array([4.0]), np.zeros(1))
+            0.0, 0.0, np.array([4.0]), np.zeros(1), *kernel.prepare(np.ones(J), np.array([4.0])))
     for c in range(chains):
         state = np.zeros(kern.N_SCALARS)
         state[kern.ETA] = starts[c]

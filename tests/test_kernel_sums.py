@@ -70,3 +70,59 @@ def test_log_tau_density_equals_its_formula():
         assert got == pytest.approx(ref, rel=1e-12, abs=1e-9)
         assert out[0] == pytest.approx(m, rel=1e-12, abs=1e-12)
         assert out[1] == pytest.approx(V, rel=1e-12)
+
+
+def _classes(n):
+    J = len(n)
+    pos, starts, sizes = np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64), np.empty(J)
+    c = kernel.size_classes(np.asarray(n, dtype=float), pos, starts, sizes)
+    return c, pos, starts[: c + 1], sizes[: max(c, 0)]
+
+
+def test_size_classes_are_a_stable_counting_sort():
+    # Source: definition of a stable sort by key (common practice), checked against numpy's stable argsort.
+    g = np.random.default_rng(3)
+    n = g.integers(1, 40, 997).astype(float)
+    c, pos, starts, sizes = _classes(n)
+    order = np.argsort(n, kind="stable")
+    np.testing.assert_array_equal(pos[order], np.arange(len(n)))  # group order[i] goes to place i
+    np.testing.assert_array_equal(sizes, np.unique(n))
+    np.testing.assert_array_equal(np.diff(starts), np.unique(n, return_counts=True)[1])
+    assert c == len(np.unique(n)) and starts[-1] == len(n)
+    assert _classes(np.array([2.0, 3.5, 4.0]))[0] == -1  # a down-weighted (fractional) size: no classes
+
+
+@pytest.mark.parametrize("by_size", [True, False])
+def test_collapsed_nu_loglik_equals_the_plain_formula(by_size):
+    # Source: the closed form in collapsed_nu_loglik's docstring (the Scaled-Inv-chi2 marginal of
+    # a group's data, BDA3 Appendix A), evaluated with math.fsum and math.lgamma as the reference.
+    g = np.random.default_rng(8)
+    J = 1003
+    n = g.integers(1, 25, J).astype(float)
+    ss = g.gamma(2.0, 1.5, J)  # SS_j
+    grid = np.array([1.0, 2.0, 4.0, 8.0, 30.0])
+    logprior = np.log(np.full(len(grid), 1 / len(grid)))
+    table = np.empty(len(grid))
+    kernel.nu_lgamma_table(n, grid, table)
+    c, pos, starts, sizes = _classes(n) if by_size else (-1, np.arange(J), np.empty(1, dtype=np.int64), np.empty(0))
+    half = np.empty(J)
+    half[pos if by_size else np.arange(J)] = ss / 2.0
+    s2 = 0.9
+    for k, nu in enumerate(grid):
+        h = nu / 2.0
+        terms = [h * math.log(h * s2) - math.lgamma(h) + math.lgamma(h + n[j] / 2.0)
+                 - (h + n[j] / 2.0) * math.log(h * s2 + ss[j] / 2.0) for j in range(J)]
+        ref = logprior[k] + math.fsum(terms)
+        got = kernel.collapsed_nu_loglik(k, J, grid, logprior, table, s2, n, half, c, starts, sizes)
+        assert abs(got - ref) <= 1e-12 * math.fsum(abs(t) for t in terms)
+
+
+def test_prepare_uses_classes_only_where_they_pay():
+    grid = np.array([2.0, 4.0])
+    assert kernel.prepare(np.arange(1.0, 11.0), grid)[1].tolist() == [-1]  # ten sizes of one group each
+    layout = kernel.prepare(np.repeat([3.0, 7.0], 40), grid)[1]
+    assert layout[:6].tolist() == [2, 0, 40, 80, 3, 7]  # C, starts, sizes
+    assert kernel.prepare(np.full(50, 2.5), grid)[1].tolist() == [-1]  # down-weighted sizes
+    table = kernel.prepare(np.repeat([3.0, 7.0], 40), grid)[0]
+    # Source: definition of the table, sum_j lgamma(nu/2 + n_j/2), with math.lgamma as the reference
+    assert abs(table[1] - 40 * (math.lgamma(2.0 + 1.5) + math.lgamma(2.0 + 3.5))) < 1e-12 * abs(table[1])
