@@ -395,3 +395,36 @@ def test_interlab_anova_is_in_user_units_at_extreme_scale():
         assert scaled[k] == pytest.approx(base[k] * f, rel=1e-12), k
     for k in ("f", "p_value", "icc", "n0"):
         assert scaled[k] == pytest.approx(base[k], rel=1e-12), k
+
+
+def test_interlab_posterior_components_keep_their_digits_at_extreme_scale():
+    """The posterior's reproducibility sd and intra-class correlation from draws of tau and s_r near
+    2^-997, where tau^2 + s_r^2 underflows to 0: they must be 2^-997 times (the ICC: equal to) those
+    of the same draws unscaled. Source: exact rescaling of float64 by a power of two (IEEE 754)."""
+    from pooling.report import interlab
+
+    g, y = _raw_table()
+    st, fit = _fit_frame(g, y)
+    base = interlab(fit)
+    f = 2.0 ** -997
+    parts = {name: part for name, part in fit.parts.items()}
+    post = parts["posterior"]
+    scaled_vars = dict(post.variables)
+    for name in ("mu", "tau", "theta", "sigma", "s"):
+        dims, values, attrs = post.variables[name]
+        scaled_vars[name] = (dims, values * f, attrs)
+    const = parts["constant_data"]
+    cvars = dict(const.variables)
+    for name in ("raw_mean", "raw_sd"):
+        dims, values, attrs = const.variables[name]
+        cvars[name] = (dims, values * f, attrs)
+    from pooling.posterior import Part
+
+    scaled_parts = {"posterior": Part(scaled_vars, post.coords, post.attrs),
+                    "constant_data": Part(cvars, const.coords, const.attrs)}
+    scaled = interlab(scaled_parts)
+    for k in ("repeatability_sd", "reproducibility_sd", "between_sd"):
+        for q in ("mean", "low", "high"):
+            assert scaled[k][q] == pytest.approx(base[k][q] * f, rel=1e-12), (k, q)
+    for q in ("mean", "low", "high"):
+        assert scaled["icc"][q] == pytest.approx(base["icc"][q], rel=1e-12), q

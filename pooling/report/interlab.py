@@ -34,7 +34,11 @@ def repeatability_draws(v: View) -> np.ndarray | None:
         return None
     if v.sigma.ndim == 1:
         return v.sigma
-    return np.sqrt(np.mean(v.sigma ** 2, axis=1))
+    # scaled by each draw's largest sigma_j, so that sigma^2 neither under- nor overflows (data near 1e-300)
+    top = v.sigma.max(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel = v.sigma / top[:, None]
+    return top * np.sqrt(np.mean(rel * rel, axis=1))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -143,11 +147,13 @@ def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assign
     out: dict = {"level": level, "structure": v.within, "consensus": _summ(v.mu, level), "between_sd": _summ(v.tau, level)}
     sr = repeatability_draws(v)
     if sr is not None:
-        t2 = v.tau ** 2
-        sR = np.sqrt(t2 + sr ** 2)
+        # hypot and the ratio form keep their digits where tau^2 and s_r^2 would under- or overflow
+        sR = np.hypot(v.tau, sr)
+        with np.errstate(divide="ignore"):  # tau = 0 in a draw: s_r / tau = inf, icc = 0
+            icc = 1.0 / (1.0 + (sr / v.tau) ** 2)
         out["repeatability_sd"] = _summ(sr, level)
         out["reproducibility_sd"] = _summ(sR, level)
-        out["icc"] = _summ(t2 / (t2 + sr ** 2), level)
+        out["icc"] = _summ(icc, level)
         out["repeatability_limit"] = _summ(LIMIT_FACTOR * sr, level)
         out["reproducibility_limit"] = _summ(LIMIT_FACTOR * sR, level)
     else:
