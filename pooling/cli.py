@@ -270,10 +270,14 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
     if more is not None:
         extra = _chain_extra(extra, more)
     out = write_run(fit, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
-    if not args.quiet:
-        _print_run(fit, out, print_fit)
-    if after is not None:
-        after(fit, out)
+    try:
+        if not args.quiet:
+            _print_run(fit, out, print_fit)
+        if after is not None:
+            after(fit, out)
+    except KeyboardInterrupt:  # the folder is complete and in place: say so, not "nothing was written"
+        unrecorded = "; the store has not recorded this run, so the next refit fits again" if after else ""
+        raise E.Interrupted(f"stopped by the user after the run folder '{out}' was written{unrecorded}") from None
     if not fit.targets_met:
         print(f"warning: diagnostics targets missed for {len(fit.misses)} quantities after "
               f"{fit.raw.mu.shape[1]} draws per chain; results were written to '{out}' but need care "

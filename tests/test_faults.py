@@ -122,6 +122,23 @@ def test_interrupt_while_writing_leaves_no_folder(run_cli, small_csv, tmp_path, 
     assert not out.exists() and _leftovers(tmp_path) == []
 
 
+def test_interrupt_after_the_folder_is_in_place_says_so(run_cli, small_csv, tmp_path, monkeypatch):
+    """Ctrl-C while the run's table is printed: the folder is complete, and the message must not
+    claim that nothing was written (source: the documented exit codes and messages, README)."""
+    import pooling.cli as cli
+
+    def stopped(*a, **k):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(cli, "_print_run", stopped)
+    out = tmp_path / "run"
+    code, _, err = run_cli("fit", small_csv, "--group", "plant", "--value", "thickness", "--out", out,
+                           "--seed", "1", "--draws", "200", "--warmup", "200", "--max-draws", "200")
+    line = _one_line(err)
+    assert code == 5 and "after the run folder" in line and "was written" in line and "nothing" not in line
+    assert (out / "draws.nc").exists() and (out / "report.html").exists()
+
+
 def test_interrupt_while_replacing_keeps_the_old_folder(run_cli, small_csv, tmp_path, monkeypatch):
     out = tmp_path / "run"
     assert _fit(run_cli, small_csv, out)[0] in (0, 3)
