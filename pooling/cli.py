@@ -360,6 +360,10 @@ def _add_store_parsers(sub):
                    help="replace the batch of the same name, or take back content that was withdrawn")
     p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
     p.add_argument("--delimiter", help="CSV field separator (default: detected)")
+    p.add_argument("--thousands", metavar="SEP", help="digit-group separator inside numbers, e.g. ',' for "
+                   "1,234.5 or '.' for 1.234,5 (default: none)")
+    p.add_argument("--decimal-comma", dest="decimal_comma", action="store_true",
+                   help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
     p.add_argument("--quiet", action="store_true", help="print nothing on success")
     p = sub.add_parser("batches", help="list the ledger of a store: every batch, its status, and the recorded runs")
     p.add_argument("store", help="the store file")
@@ -406,7 +410,8 @@ def cmd_ingest(args, argv) -> int:
     from .store import jobs
 
     info, created = jobs.ingest_file(args.store, args.file, args.group, args.value, batch=args.batch, at=args.at,
-                                     replace=args.replace, encoding=args.encoding, delimiter=args.delimiter)
+                                     replace=args.replace, encoding=args.encoding, delimiter=args.delimiter,
+                                     thousands=args.thousands, decimal="," if args.decimal_comma else None)
     if not args.quiet:
         if created:
             print(f"created the store '{args.store}'")

@@ -91,6 +91,32 @@ def test_same_file_twice_changes_nothing(tmp_path):
     assert _dump(store) == before
 
 
+def test_a_batch_with_decimal_commas_ingests_the_same_numbers(tmp_path):
+    # Source: the number notation of ISO 80000-1 (decimal comma, digit groups), as `pooling fit`
+    # reads it (--thousands, --decimal-comma); the store must hold the same statistics as for the
+    # same measurements written with a decimal point.
+    point = tmp_path / "point.csv"
+    comma = tmp_path / "comma.csv"
+    values = [("A", "1234.5"), ("A", "1236.25"), ("B", "999.75"), ("B", "1001.5"), ("B", "1000.125")]
+    point.write_text("lab,y\n" + "".join(f"{g},{v}\n" for g, v in values))
+    def european(v):
+        whole, frac = v.split(".")
+        return (f"{whole[:-3]}.{whole[-3:]}" if len(whole) > 3 else whole) + "," + frac
+    comma.write_text("lab;y\n" + "".join(f"{g};{european(v)}\n" for g, v in values))
+    a, b = tmp_path / "a.store", tmp_path / "b.store"
+    assert cli.main(["ingest", str(a), str(point), "--group", "lab", "--value", "y", "--quiet"]) == 0
+    assert cli.main(["ingest", str(b), str(comma), "--group", "lab", "--value", "y", "--thousands", ".",
+                     "--decimal-comma", "--quiet"]) == 0
+    with open_store(a) as sa, open_store(b) as sb:
+        x, y = sa.snapshot(), sb.snapshot()
+    assert len(y.stats) == len(x.stats) == 1
+    for got, want in zip(y.stats, x.stats):
+        assert got.labels == want.labels
+        np.testing.assert_array_equal(got.n, want.n)
+        np.testing.assert_array_equal(got.mean, want.mean)
+        np.testing.assert_array_equal(got.m2, want.m2)
+
+
 def test_name_with_other_content_is_refused_unless_replaced(tmp_path, capsys):
     rng = np.random.default_rng(4)
     _write_batches(tmp_path, rng, k=2, offset=10.0, spread=1.0, rows=50, groups=4)

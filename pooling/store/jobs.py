@@ -28,6 +28,7 @@ CHANGES_CSV = "changes.csv"
 
 def ingest_file(store_path, file, group: str, value: str, *, batch: str | None = None, at: str | None = None,
                 replace: bool = False, encoding: str | None = None, delimiter: str | None = None,
+                thousands: str | None = None, decimal: str | None = None,
                 busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple[BatchInfo, bool]:
     """Read one delivery (long table: a group and a value column) and add it to the store as one batch.
 
@@ -44,7 +45,7 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     existed = store_path.exists()
     if existed:
         open_store(store_path, busy_seconds=busy_seconds).close()  # a foreign store is refused before the read
-    stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter)
+    stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter, thousands=thousands, decimal=decimal)
     if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
         raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
                          f"store keeps exactly; express them in other units (for example times {1 / stats.unit:.0e})")
