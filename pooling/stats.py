@@ -215,7 +215,42 @@ def _reduce_chunk(groups: pd.Series, values: np.ndarray):
     hi, lo = _two_sum(mean, corr)
     dev = (values - hi[codes]) - lo[codes]
     m2 = np.bincount(codes, weights=dev * dev, minlength=J)
-    return tuple(str(u) for u in uniques), n, hi, lo, m2
+    labels = uniques.tolist()  # a list at C speed; the labels are text already, as _check_groups left them
+    if not all(type(u) is str for u in labels):
+        labels = [str(u) for u in labels]
+    return tuple(labels), n, hi, lo, m2
+
+
+class _Running:
+    """Per-group (n, mean hi, mean lo, M2) merged chunk by chunk, with one label index kept across
+    chunks: each chunk costs O(its groups), not O(all groups so far) as a merge of two GroupStats
+    would (with 100,000 groups and chunks of 1e5 rows that rebuild was half of the reading time).
+    Groups that a chunk lacks are left as they are, which is what merge_moments does with an empty
+    side, so the numbers are those of merging the chunks' GroupStats one by one."""
+
+    def __init__(self):
+        self.index: dict[str, int] = {}
+        self.labels: list[str] = []
+        self.acc = np.zeros((4, 0))
+
+    def add(self, labels, n, hi, lo, m2) -> None:
+        idx = self.index
+        before = len(idx)
+        pos = np.fromiter((idx.setdefault(lab, len(idx)) for lab in labels), dtype=np.int64, count=len(labels))
+        if len(idx) > before:
+            self.labels.extend(lab for lab, j in zip(labels, pos) if j >= before)
+            if len(idx) > self.acc.shape[1]:
+                grown = np.zeros((4, max(len(idx), 2 * self.acc.shape[1])))
+                grown[:, : self.acc.shape[1]] = self.acc
+                self.acc = grown
+        a = self.acc[:, pos]
+        self.acc[0, pos], self.acc[1, pos], self.acc[2, pos], self.acc[3, pos] = merge_moments(*a, n, hi, lo, m2)
+
+    def stats(self, unit: float, source: str, sha: str | None) -> GroupStats:
+        J = len(self.labels)
+        n, hi, lo, m2 = (self.acc[k, :J].copy() for k in range(4))
+        return GroupStats(tuple(self.labels), n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source,
+                          file_sha256=sha)
 
 
 def _where(source: str) -> str:
@@ -538,18 +573,15 @@ def read_table(path, group: str, value: str, *, encoding: str | None = None, del
     Blanks around a group label in a CSV are not part of it.
     """
     src = str(path)
-    total = None
+    running = _Running()
     unit = None
     csv_file = not _is_parquet(_open_check(path))
     for offset, df in iter_table_chunks(path, [group, value], encoding, delimiter, chunk_rows, thousands, decimal):
         labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
         vals = _check_values(df[value], src, value, offset)
         unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
-        labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals)
-        part = GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=src)
-        total = part if total is None else merge(total, part, source=src)
-    return GroupStats(total.labels, total.n.copy(), total.mean.copy(), total.m2.copy(),
-                      mean_lo=total.mean_lo.copy(), unit=total.unit, source=src, file_sha256=_sha256_file(Path(path)))
+        running.add(*_reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals))
+    return running.stats(1.0 if unit is None else unit, src, _sha256_file(Path(path)))
 
 
 def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None) -> pd.DataFrame:

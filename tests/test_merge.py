@@ -133,6 +133,33 @@ def test_chunked_csv_reading_equals_whole(tmp_path):
         assert_close_rel(s.m2[i], m2)
 
 
+def test_chunked_reading_with_groups_that_come_and_go(tmp_path):
+    # Source: exact rational arithmetic (fractions) as the reference, and the documented order of
+    # groups (first appearance). Groups appear late, skip chunks or appear in one chunk only, so
+    # the running index must grow and leave absent groups exactly as they were.
+    g = np.random.default_rng(12)
+    rows = []
+    for block in range(9):  # 9 chunks of 40 rows; labels drawn from a pool that widens block by block
+        pool = [f"s{j:03d}" for j in range(3 + 30 * block)]
+        labs = g.choice(pool[-25:] if block % 3 == 2 else pool, size=40)
+        vals = 1e9 + g.normal(0.0, 0.1, 40).round(6)
+        rows += list(zip(labs, vals))
+    path = tmp_path / "come_and_go.csv"
+    path.write_text("lab,value\n" + "".join(f"{a},{float(v)!r}\n" for a, v in rows))
+    s = ps.read_table(path, group="lab", value="value", chunk_rows=40)
+    first_seen = list(dict.fromkeys(a for a, _ in rows))
+    assert list(s.labels) == first_seen
+    for i, lab in enumerate(s.labels):
+        xi = np.array([v for a, v in rows if a == lab])
+        mean, m2 = exact_moments(xi)
+        assert s.n[i] == len(xi)
+        assert_close_rel(merged_mean(s, i), mean)
+        if len(xi) > 1:
+            assert_close_rel(s.m2[i], m2)
+        else:
+            assert s.m2[i] == 0.0
+
+
 def test_merge_moments_with_an_empty_side_is_exact():
     n, hi, lo, m2 = ps.merge_moments(0, 0.0, 0.0, 0.0, 4, 1e9 + 0.25, 1e-8, 0.125)
     assert (float(n), float(hi), float(lo), float(m2)) == (4.0, 1e9 + 0.25, 1e-8, 0.125)
