@@ -34,11 +34,17 @@ def repeatability_draws(v: View) -> np.ndarray | None:
         return None
     if v.sigma.ndim == 1:
         return v.sigma
-    # scaled by each draw's largest sigma_j, so that sigma^2 neither under- nor overflows (data near 1e-300)
-    top = v.sigma.max(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rel = v.sigma / top[:, None]
-    return top * np.sqrt(np.mean(rel * rel, axis=1))
+    sig = v.sigma
+    ms = np.einsum("ij,ij->i", sig, sig) / sig.shape[1]  # one pass, no (draws x groups) temporary
+    odd = ~((ms > 1e-290) & (ms < 1e290))  # squares that under- or overflowed (data near 1e-300 or 1e300)
+    out = np.sqrt(ms)
+    if odd.any():  # those draws again, scaled by their largest sigma_j first
+        sub = sig[odd]
+        top = sub.max(axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = sub / top[:, None]
+        out[odd] = top * np.sqrt(np.mean(rel * rel, axis=1))
+    return out
 
 
 # ---------------------------------------------------------------------------------------------
