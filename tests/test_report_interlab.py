@@ -161,3 +161,65 @@ def test_algorithm_a_resists_an_outlier():
     xs, ss = algorithm_a(x)
     assert abs(xs - 10.0) < 0.2 and ss < 0.6
     assert abs(x.mean() - 10.0) > 4
+
+
+# ---------------------------------------------------------------------------------------------
+# the random-effects comparator for estimates with standard errors (known structure)
+
+def test_random_effects_dl_matches_statsmodels():
+    # Source: statsmodels.stats.meta_analysis.combine_effects(method_re="dl"), a general-purpose
+    # implementation of DerSimonian and Laird (1986). Heterogeneous estimates (invented, seeded), so
+    # that tau^2 > 0: statsmodels reports an untruncated tau^2, which differs from the method's
+    # max(0, .) only when Q < df.
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    from pooling.report.interlab import random_effects_dl
+
+    g = np.random.default_rng(4)
+    for offset in (0.0, 1e9):
+        se = g.uniform(0.5, 2.0, 12)
+        x = offset + g.normal(0.0, 2.5, 12) + g.normal(0.0, 1.0, 12) * se
+        ref = combine_effects(x - offset, se ** 2, method_re="dl")
+        got = random_effects_dl(x, se)
+        assert ref.tau2 > 0 and not got["truncated"]
+        assert got["between_sd"] ** 2 == pytest.approx(ref.tau2, rel=1e-10)
+        assert got["consensus"] - offset == pytest.approx(ref.mean_effect_re, rel=1e-9, abs=1e-6 if offset else 0)
+        assert got["consensus_se"] == pytest.approx(ref.sd_eff_w_re, rel=1e-10)
+        assert got["q"] == pytest.approx(ref.q, rel=1e-10)
+        assert got["i2"] == pytest.approx(ref.i2, rel=1e-10)
+        assert got["p_value"] == pytest.approx(stats.chi2.sf(ref.q, 11), rel=1e-10)
+
+
+def test_random_effects_dl_on_the_eight_schools():
+    # Source: Rubin (1981) eight schools estimates and standard errors, and the pooled estimate
+    # 7.7 with standard error 4.1 quoted for them in Gelman et al., Bayesian Data Analysis (3rd ed.),
+    # section 5.5 (values from memory): Q = 4.7 < 7 df, so tau^2 is truncated at 0 and the
+    # random-effects consensus is the fixed-effect one.
+    from pooling.report.interlab import random_effects_dl
+
+    y = np.array([28.0, 8.0, -3.0, 7.0, -1.0, 1.0, 18.0, 12.0])
+    se = np.array([15.0, 10.0, 16.0, 11.0, 9.0, 11.0, 10.0, 18.0])
+    got = random_effects_dl(y, se)
+    assert got["truncated"] and got["between_sd"] == 0.0 and got["i2"] == 0.0
+    assert round(got["consensus"], 1) == 7.7 and round(got["consensus_se"], 1) == 4.1
+    assert got["consensus"] == got["fixed_effect"]
+    assert random_effects_dl(y[:1], se[:1]) is None
+
+
+def test_known_structure_report_shows_the_random_effects_comparator(tmp_path):
+    # The report of estimates with standard errors carries the comparator (summary.json and page).
+    import json
+
+    from pooling import cli
+
+    path = tmp_path / "est.csv"
+    y = [28.0, 8.0, -3.0, 7.0, -1.0, 1.0, 18.0, 12.0]
+    se = [15.0, 10.0, 16.0, 11.0, 9.0, 11.0, 10.0, 18.0]
+    path.write_text("school,effect,se\n" + "".join(f"S{j},{a},{b}\n" for j, (a, b) in enumerate(zip(y, se))))
+    out = tmp_path / "run"
+    code = cli.main(["fit", str(path), "--group", "school", "--estimate", "effect", "--std-error", "se",
+                     "--tau", "half-cauchy:10", "--out", str(out), "--seed", "1", "--quiet"])
+    assert code in (0, 3)
+    re_ = json.loads((out / "summary.json").read_text())["interlab"]["random_effects"]
+    assert round(re_["consensus"], 1) == 7.7
+    assert "DerSimonian-Laird" in (out / "report.html").read_text()

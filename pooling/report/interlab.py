@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 import pandas as pd
-from scipy.special import fdtrc
+from scipy.special import chdtrc, fdtrc
 
 from ..errors import InputError
 from .draws import BLOCK, View, interval, view
@@ -49,6 +49,39 @@ def repeatability_draws(v: View) -> np.ndarray | None:
 
 # ---------------------------------------------------------------------------------------------
 # classical comparators
+
+def random_effects_dl(estimate, std_error) -> dict | None:
+    """The classical random-effects comparator for estimates with standard errors (the known
+    structure): DerSimonian and Laird (1986, Controlled Clinical Trials 7), by moments.
+
+    w_j = 1/se_j^2, Q = sum_j w_j (x_j - x_w)^2 about the weighted mean x_w, on k - 1 df;
+    tau^2 = max(0, (Q - (k - 1)) / (sum w - sum w^2 / sum w)); the consensus is the mean weighted by
+    1/(se_j^2 + tau^2), with standard error (sum of those weights)^(-1/2); I^2 = max(0, (Q - df)/Q).
+    Computed about the median and in units of the largest standard error, so that offsets of 1e9
+    and magnitudes of 1e-300 keep their digits. None with fewer than two estimates.
+    """
+    x = np.asarray(estimate, dtype=np.float64)
+    se = np.asarray(std_error, dtype=np.float64)
+    k = len(x)
+    if k < 2:
+        return None
+    c, u = float(np.median(x)), float(np.max(se))
+    y, e = (x - c) / u, se / u
+    w = 1.0 / (e * e)
+    sw = float(w.sum())
+    mean_w = float((w * y).sum() / sw)
+    q = float((w * (y - mean_w) ** 2).sum())
+    df = k - 1
+    raw_tau2 = (q - df) / (sw - float((w * w).sum()) / sw)
+    tau2 = max(0.0, raw_tau2)
+    ws = 1.0 / (e * e + tau2)
+    sws = float(ws.sum())
+    mu = float((ws * y).sum() / sws)
+    return {"consensus": c + u * mu, "consensus_se": u / math.sqrt(sws), "between_sd": u * math.sqrt(tau2),
+            "truncated": bool(raw_tau2 < 0), "fixed_effect": c + u * mean_w, "fixed_effect_se": u / math.sqrt(sw),
+            "q": q, "df": df, "p_value": float(chdtrc(df, q)), "i2": max(0.0, (q - df) / q) if q > 0 else 0.0,
+            "k": k}
+
 
 def oneway_anova(n, mean, m2, mean_lo=None) -> dict | None:
     """One-way ANOVA from group sufficient statistics, with the method-of-moments variance components.
@@ -141,7 +174,8 @@ def z_scores(x, assigned: float | None = None, sigma_pt: float | None = None):
 def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assigned: float | None = None,
              sigma_pt: float | None = None, table=None) -> dict:
     """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws;
-    the ANOVA comparators; and a per-lab table (bias with interval, P(|bias| > allowed), z, signal).
+    the classical comparators (one-way ANOVA for measurements, DerSimonian-Laird for estimates with
+    standard errors); and a per-lab table (bias with interval, P(|bias| > allowed), z, signal).
 
     `table` may be this fit's group_table at the same level and allowed bias, to reuse its bias columns."""
     from .groups import check_level
@@ -181,6 +215,7 @@ def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assign
         out["anova"] = oneway_anova(v.n, v.raw_mean, np.nan_to_num(m2))
     else:
         out["anova"] = None
+    out["random_effects"] = random_effects_dl(v.raw_mean, v.std_error) if v.within == "known" else None
     z, signal, basis = z_scores(v.raw_mean, assigned, sigma_pt)
     out["z_basis"] = basis
     J = v.J

@@ -428,8 +428,18 @@ def _labs(res: Results, f: Fmt, lvl: str) -> str:
         m, i = _summ_cells(f, s, extra)
         rows.append([name, m, i, classical])
 
-    row("consensus value (mu)", lab["consensus"], f.v(an["grand_mean"]) + " (grand mean)" if an else "–")
-    row("between-lab sd s<sub>L</sub> (tau)", lab["between_sd"], f.v(an["between_sd"]) + (" (truncated at 0)" if an and an["truncated"] else "") if an else "–")
+    re_ = lab.get("random_effects")
+    if an:
+        row("consensus value (mu)", lab["consensus"], f.v(an["grand_mean"]) + " (grand mean)")
+        row("between-lab sd s<sub>L</sub> (tau)", lab["between_sd"],
+            f.v(an["between_sd"]) + (" (truncated at 0)" if an["truncated"] else ""))
+    elif re_:
+        row("consensus value (mu)", lab["consensus"], f"{f.v(re_['consensus'])} ± {f.v(re_['consensus_se'], 1)} (se)")
+        row("between-lab sd s<sub>L</sub> (tau)", lab["between_sd"],
+            f.v(re_["between_sd"]) + (" (truncated at 0)" if re_["truncated"] else ""))
+    else:
+        row("consensus value (mu)", lab["consensus"], "–")
+        row("between-lab sd s<sub>L</sub> (tau)", lab["between_sd"], "–")
     if lab["repeatability_sd"] is not None:
         row("repeatability sd s<sub>r</sub>", lab["repeatability_sd"], f.v(an["repeatability_sd"]) if an else "–")
         row("reproducibility sd s<sub>R</sub>", lab["reproducibility_sd"], f.v(an["reproducibility_sd"]) if an else "–")
@@ -438,9 +448,16 @@ def _labs(res: Results, f: Fmt, lvl: str) -> str:
         icc = lab["icc"]
         rows.append(["intraclass correlation", f"{icc['mean']:.3f}", f"{icc['low']:.3f} to {icc['high']:.3f}",
                      f"{an['icc']:.3f}" if an else "–"])
+    classical = "one-way ANOVA (moments)" if an or not re_ else "DerSimonian-Laird (moments)"
     comp = _table([("quantity", False), ("posterior mean", True), (f"{lvl} interval", True),
-                   ("one-way ANOVA (moments)", True)], rows)
+                   (classical, True)], rows)
     anova_note = ""
+    if re_ and not an:
+        anova_note = (f"<p class=\"note\">DerSimonian-Laird random-effects estimate from the {re_['k']} estimates and their "
+                      f"standard errors: Q = {re_['q']:.3g} on {re_['df']} df, p {_p_eq(re_['p_value'])}, I² = "
+                      f"{re_['i2']:.0%}; tau² = max(0, (Q − df) / (Σw − Σw²/Σw)) with w = 1/se², and the consensus is "
+                      "the mean weighted by 1/(se² + tau²). Its standard error ignores the uncertainty of tau, which "
+                      "the posterior interval includes.</p>")
     if an:
         anova_note = (f"<p class=\"note\">ANOVA: MS between {Fmt.g(an['ms_between'], 5)} on {an['df_between']} df, MS within "
                       f"{Fmt.g(an['ms_within'], 5)} on {an['df_within']:g} df, F = {an['f']:.3g}, p {_p_eq(an['p_value'])}; "
