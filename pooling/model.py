@@ -22,7 +22,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from .errors import ModelError
-from .stats import GroupStats, _show
+from .stats import GroupStats, _show, check_unicode_twins
 
 # ---------------------------------------------------------------------------------------------
 # priors
@@ -255,6 +255,7 @@ def _check_statistics(stats: GroupStats):
     a NaN or a zero n would otherwise reach the kernel and come back as meaningless draws."""
     if len(set(stats.labels)) != stats.J or not all(isinstance(lab, str) for lab in stats.labels):
         _refuse("bad model: the group labels must be distinct strings")
+    check_unicode_twins(stats.labels, stats.source)  # every path to the sampler passes here
     checks = [("n", stats.n, stats.n > 0 if stats.kind == "raw" else stats.n >= 0, "a size above 0"),
               ("mean", stats.mean + stats.mean_lo, None, "a finite mean"),
               ("m2", stats.m2, stats.m2 >= 0, "a sum of squared deviations >= 0")]

@@ -318,6 +318,40 @@ def _show(text, limit: int = 60) -> str:
     return "'" + cut.replace("\\", "\\\\").replace("\n", "\\n").replace("\r", "\\r") + "'"
 
 
+def unicode_twins(labels) -> tuple[str, str] | None:
+    """The first two labels that differ only in their Unicode form (a composed "é" against "e" plus a
+    combining accent, a Kelvin sign against "K"): equal after NFC normalisation, different as text.
+    Labels are kept exactly as they come, so such a pair would silently be two groups. None if none."""
+    import unicodedata
+
+    present = set(labels)
+    first: dict[str, str] = {}
+    for lab in labels:
+        if lab.isascii():  # ASCII text is its own normal form
+            continue
+        key = unicodedata.normalize("NFC", lab)
+        if key != lab and key in present:
+            return key, lab
+        other = first.setdefault(key, lab)
+        if other != lab:
+            return other, lab
+    return None
+
+
+def _code_points(text: str) -> str:
+    return " ".join(f"U+{ord(ch):04X}" for ch in text[:12]) + (" …" if len(text) > 12 else "")
+
+
+def check_unicode_twins(labels, source: str, what: str = "the group labels") -> None:
+    """Refuse labels that unicode_twins finds, with one line naming both and their code points."""
+    pair = unicode_twins(labels)
+    if pair is not None:
+        a, b = pair
+        raise InputError(f"bad input in {_where(source)}: {what} {_show(a)} ({_code_points(a)}) and {_show(b)} "
+                         f"({_code_points(b)}) look the same but differ in their Unicode form, so they would be two "
+                         "groups; write every label one way (for example NFC, composed accents) and try again")
+
+
 # Control characters break the run folder (HDF5 strings end at NUL) or the terminal (escape codes);
 # tab, newline and carriage return are ordinary text in a label. Lone surrogates cannot be UTF-8.
 _BAD_LABEL_CHARS = "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\ud800-\udfff]"

@@ -38,6 +38,12 @@ CASES = [
      ["--group", "lab", "--estimate", "est", "--std-error", "se"], ["column 'se'", "group 'b'", "> 0", "found 0"]),
     ("one row per group, repeated", "lab,est,se\na,1.0,0.5\na,2.0,0.1\nc,1.5,0.2\n",
      ["--group", "lab", "--estimate", "est", "--std-error", "se"], ["row 2", "one row per group", "'a'"]),
+    # Source: Unicode Standard Annex #15 (normalisation forms): U+00FC and U+0075 U+0308 are
+    # canonically equivalent, and so are the Kelvin sign U+212A and the letter K.
+    ("composed and decomposed label", "lab,y\nZ\u00fcrich,1.0\nBern,2.0\nZu\u0308rich,1.5\nBern,2.5\n",
+     ["--group", "lab", "--value", "y"], ["Unicode form", "U+00FC", "U+0075 U+0308", "two groups"]),
+    ("Kelvin sign and K", "lab,y\nK,1.0\nL,2.0\n\u212a,1.5\nL,2.5\nK,1.2\n",
+     ["--group", "lab", "--value", "y"], ["Unicode form", "U+212A", "U+004B"]),
 ]
 
 
@@ -104,3 +110,30 @@ def test_no_traceback_in_a_real_process(tmp_path):
     assert proc.stderr.strip().count("\n") == 0 and "Traceback" not in proc.stderr
     assert "'oops'" in proc.stderr and "row 2" in proc.stderr
     assert not (tmp_path / "run").exists()
+
+
+def test_unicode_twins_finds_exactly_the_canonically_equivalent_pairs():
+    # Source: Python's unicodedata (the Unicode Character Database) as the reference for NFC: a list of
+    # distinct labels has twins exactly when NFC maps two of them to one text.
+    import unicodedata
+
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    from pooling.stats import unicode_twins
+
+    letters = st.sampled_from(["a", "e", "u", "K", "\u00e9", "\u00fc", "\u0301", "\u0308", "\u212a", "\u00c5",
+                               "\u212b", "A", "\u030a", "Z"])
+    label = st.lists(letters, min_size=1, max_size=4).map("".join)
+
+    @settings(max_examples=400, deadline=None)
+    @given(st.lists(label, min_size=1, max_size=8, unique=True))
+    def check(labels):
+        twins = unicode_twins(labels)
+        clash = len({unicodedata.normalize("NFC", x) for x in labels}) < len(labels)
+        assert (twins is not None) == clash
+        if twins is not None:
+            a, b = twins
+            assert a != b and unicodedata.normalize("NFC", a) == unicodedata.normalize("NFC", b)
+
+    check()

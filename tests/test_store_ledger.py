@@ -292,3 +292,24 @@ def test_bad_refit_options_are_refused_before_any_work(tmp_path, capsys):
         assert code == 2 and len(err) == 1 and word in err[0], (extra, err)
         assert not (tmp_path / "run").exists()
     assert _dump(store) == before
+
+
+def test_labels_in_two_unicode_forms_are_refused_at_ingest_and_at_refit(tmp_path, capsys):
+    # Source: Unicode Standard Annex #15: U+00E9 and U+0065 U+0301 are canonically equivalent, so a
+    # lab written both ways would silently become two groups.
+    one = tmp_path / "mixed.csv"
+    one.write_text("lab,y\nCaf\u00e9,1.0\nBar,2.0\nCafe\u0301,1.5\nBar,2.5\n")
+    store = tmp_path / "s.store"
+    code = cli.main(["ingest", str(store), str(one), "--group", "lab", "--value", "y"])
+    assert code == 2 and not store.exists()
+    assert "Unicode form" in capsys.readouterr().err
+    # each batch is consistent on its own; together they hold both forms: refit refuses before sampling
+    a, b = tmp_path / "a.csv", tmp_path / "b.csv"
+    a.write_text("lab,y\nCaf\u00e9,1.0\nBar,2.0\nQux,3.0\nCaf\u00e9,1.2\n")
+    b.write_text("lab,y\nCafe\u0301,1.5\nBar,2.5\nQux,2.9\n")
+    for f in (a, b):
+        assert cli.main(["ingest", str(store), str(f), "--group", "lab", "--value", "y", "--quiet"]) == 0
+    capsys.readouterr()
+    code = cli.main(["refit", str(store), "--out", str(tmp_path / "run"), "--quiet", "--tau", "half-cauchy:1"])
+    err = capsys.readouterr().err
+    assert code == 2 and "Unicode form" in err and not (tmp_path / "run").exists()

@@ -35,7 +35,7 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     Returns the ledger line and whether the store was created. The file is read and checked before
     the store is touched, and the batch is written in one transaction.
     """
-    from ..stats import read_table
+    from ..stats import check_unicode_twins, read_table
 
     store_path = Path(store_path)
     name = Path(file).name if batch is None else batch
@@ -46,6 +46,7 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     if existed:
         open_store(store_path, busy_seconds=busy_seconds).close()  # a foreign store is refused before the read
     stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter, thousands=thousands, decimal=decimal)
+    check_unicode_twins(stats.labels, str(file))  # within the batch; across batches refit checks (model.build)
     if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
         raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
                          f"store keeps exactly; express them in other units (for example times {1 / stats.unit:.0e})")
