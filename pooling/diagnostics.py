@@ -37,22 +37,24 @@ the rounding error of its chain variances. And when (chains*draws - 1)*p is a wh
 quantile can land an ulp below it, so the indicator, and the tail ESS, can differ there.
 
 Speed: parameters are handled in blocks of `_BLOCK` columns, so memory stays bounded, and nothing
-loops over single parameters in Python. One sort per parameter serves the ranks, the median and
-the quantiles; the folded draws are then ranked by merging the two sorted halves (a stable sort
-of two sorted runs). The tail ESS alone needs no sort: its quantiles come from np.quantile. The
-autocovariances of the first `_LAGS` lags are computed directly, which settles Geyer's sequence
-for most parameters of a well-mixing run; only the parameters whose sequence is still positive
-there get the full autocovariance by FFT. Large inputs (at least `_THREADED_MIN` numbers) have
-their blocks computed on two threads, with results identical to one thread.
+loops over single parameters in Python. One sort per parameter (numpy's argsort) serves the ranks,
+the median and the quantiles; the normal scores and the folded draws' ranks (a linear merge of the
+two sorted halves) are compiled loops (`_rank_block`). The tail ESS alone needs no sort: its
+quantiles come from np.quantile. The autocovariances are computed lag by lag up to `_LAGS` lags,
+stopping where Geyer's sequence stops (`_geyer_direct`), which settles most parameters of a
+well-mixing run; only the parameters whose sequence is still positive there get the full
+autocovariance by FFT. Large inputs (at least `_THREADED_MIN` numbers) have their blocks computed
+on two threads (pooling._blocks), with results identical to one thread.
 """
 from __future__ import annotations
 
-import os
 
 import numpy as np
 from numba import njit
 from scipy import fft as _fft
 from scipy.special import ndtri
+
+from ._blocks import each_block
 
 __all__ = [
     "split_rhat",
@@ -67,7 +69,6 @@ __all__ = [
 
 _BLOCK = 64  # parameters per block: 4 x 1000 float64 draws of 64 parameters are 2 MB, cache-sized
 _LAGS = 32  # lags computed directly (compiled, stopping where Geyer's sequence stops) before falling back to FFT
-_THREADS = min(2, os.cpu_count() or 1)  # threads over blocks (2: more gained nothing on the 2-core benchmark machine)
 _THREADED_MIN = 1_000_000  # draws x parameters below which one thread is faster than starting a pool
 _MIN_DRAWS = 4
 
@@ -192,33 +193,6 @@ def _geyer_direct(y, const_seq, lags, ess, settled, w, var_plus):
             mono = min(mono, pair)
             total += mono
             k += 1
-
-
-def _normal_scores(where: np.ndarray, s: np.ndarray, shape) -> np.ndarray:
-    """Rank-normalised draws: Phi^-1((r - 3/8)/(S + 1/4)) placed at flat indices `where`.
-
-    s (P, S) holds each parameter's values sorted, where[i, j] the flat index in the output of
-    s[i, j]. r is the 1-based position in s, except that a run of equal values all get the run's
-    average position.
-    """
-    p, size = s.shape
-    base = ndtri((np.arange(1, size + 1) - 0.375) / (size + 0.25))
-    out = np.empty(shape)
-    flat = out.reshape(-1)
-    flat[where] = base  # broadcast over the parameters
-    rows, pos = np.nonzero(s[:, 1:] == s[:, :-1])  # s[row, pos] == s[row, pos + 1]
-    if rows.size:
-        lin = rows * size + pos  # consecutive only within a row, as pos <= size - 2
-        first = np.diff(lin, prepend=-2) != 1  # the first tie of each run
-        run = np.cumsum(first) - 1  # run number of each tie
-        starts = np.flatnonzero(first)
-        ends = np.append(starts[1:], lin.size) - 1  # the last tie of each run
-        # the ties pos_a..pos_b of a run cover the 0-based positions pos_a..pos_b + 1
-        avg = (pos[starts] + pos[ends] + 1) / 2.0 + 1.0
-        val = ndtri((avg - 0.375) / (size + 0.25))[run]
-        flat[where[rows, pos]] = val
-        flat[where[rows, pos + 1]] = val
-    return out
 
 
 _TABLES: dict[int, np.ndarray] = {}
@@ -406,19 +380,7 @@ def _run(x, want: frozenset[str]) -> tuple[dict[str, np.ndarray], tuple[int, ...
         for k, v in got.items():
             res[k][j0:j1] = v
 
-    starts = range(0, p, _BLOCK)
-    workers = min(_THREADS, len(starts))
-    if workers > 1 and c * n * p >= _THREADED_MIN:
-        # Blocks are independent and numpy's sorts, takes, einsum and FFTs release the GIL, so blocks
-        # run on threads; each block writes its own slice of `res`, so the results are identical.
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(workers) as pool:
-            for f in [pool.submit(one, j0) for j0 in starts]:
-                f.result()
-    else:
-        for j0 in starts:
-            one(j0)
+    each_block(one, range(0, p, _BLOCK), threaded=c * n * p >= _THREADED_MIN)
     return res, rest
 
 

@@ -256,35 +256,24 @@ def block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, s
 
 @njit(nogil=True, cache=True)
 def nu_lgamma_table(n, nu_grid, table):
-    """table[k] = sum_j lgamma(nu_k / 2 + n_j / 2), by distinct group sizes when the sizes are whole numbers.
+    """table[k] = sum_j lgamma(nu_k / 2 + n_j / 2), by size class (size_classes) when the sizes are whole numbers.
 
-    Group sizes repeat, so counting them first costs O(J) plus one lgamma per distinct size and
+    Group sizes repeat, so grouping them first costs O(J) plus one lgamma per distinct size and
     grid point; down-weighted (fractional) sizes fall back to one lgamma per group and grid point.
     """
     J = n.shape[0]
     K = nu_grid.shape[0]
-    top = 0.0
-    whole = True
-    for j in range(J):
-        if n[j] != math.floor(n[j]):
-            whole = False
-        top = max(top, n[j])
-    if whole and top <= 10_000_000:
-        counts = np.zeros(int(top) + 1, dtype=np.int64)
-        for j in range(J):
-            counts[int(n[j])] += 1
-        for k in range(K):
-            acc = 0.0
-            for size in range(counts.shape[0]):
-                if counts[size] > 0:
-                    acc += counts[size] * math.lgamma(0.5 * (nu_grid[k] + size))
-            table[k] = acc
-    else:
-        for k in range(K):
-            acc = 0.0
+    pos, starts, sizes = np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64), np.empty(J)
+    c = size_classes(n, pos, starts, sizes)
+    for k in range(K):
+        acc = 0.0
+        if c >= 0:
+            for i in range(c):
+                acc += (starts[i + 1] - starts[i]) * math.lgamma(0.5 * (nu_grid[k] + sizes[i]))
+        else:
             for j in range(J):
                 acc += math.lgamma(0.5 * (nu_grid[k] + n[j]))
-            table[k] = acc
+        table[k] = acc
 
 
 @njit(nogil=True, cache=True)

@@ -163,20 +163,11 @@ def merge(a: GroupStats, b: GroupStats, source: str | None = None) -> GroupStats
         raise InputError("only raw-measurement statistics can be merged; estimates with standard errors cannot")
     if a.unit != b.unit:
         a, b = to_unit(a, max(a.unit, b.unit)), to_unit(b, max(a.unit, b.unit))
-    index = {lab: i for i, lab in enumerate(a.labels)}
-    new = [lab for lab in b.labels if lab not in index]
-    labels = a.labels + tuple(new)
-    J = len(labels)
-    A = np.zeros((4, J))
-    A[0, : a.J], A[1, : a.J], A[2, : a.J], A[3, : a.J] = a.n, a.mean, a.mean_lo, a.m2
-    for lab in new:
-        index[lab] = len(index)
-    pos = np.fromiter((index[lab] for lab in b.labels), dtype=np.int64, count=b.J)
-    B = np.zeros((4, J))
-    B[0, pos], B[1, pos], B[2, pos], B[3, pos] = b.n, b.mean, b.mean_lo, b.m2
-    n, hi, lo, m2 = merge_moments(*A, *B)
-    n = n.astype(np.int64) if a.n.dtype.kind in "iu" and b.n.dtype.kind in "iu" else n
-    return GroupStats(labels, n, hi, m2, mean_lo=lo, unit=a.unit, source=source or f"{a.source} + {b.source}")
+    running = _Running()
+    running.add(a.labels, a.n, a.mean, a.mean_lo, a.m2)
+    running.add(b.labels, b.n, b.mean, b.mean_lo, b.m2)
+    whole = a.n.dtype.kind in "iu" and b.n.dtype.kind in "iu"
+    return running.stats(a.unit, source or f"{a.source} + {b.source}", None, whole=whole)
 
 
 def to_unit(s: GroupStats, unit: float) -> GroupStats:
@@ -222,11 +213,11 @@ def _reduce_chunk(groups: pd.Series, values: np.ndarray):
 
 
 class _Running:
-    """Per-group (n, mean hi, mean lo, M2) merged chunk by chunk, with one label index kept across
-    chunks: each chunk costs O(its groups), not O(all groups so far) as a merge of two GroupStats
-    would (with 100,000 groups and chunks of 1e5 rows that rebuild was half of the reading time).
-    Groups that a chunk lacks are left as they are, which is what merge_moments does with an empty
-    side, so the numbers are those of merging the chunks' GroupStats one by one."""
+    """Per-group (n, mean hi, mean lo, M2) merged part by part (chunks of a file, or two GroupStats),
+    with one label index kept across parts: each part costs O(its groups), not O(all groups so far)
+    (with 100,000 groups and chunks of 1e5 rows a rebuild per chunk was half of the reading time).
+    Groups that a part lacks are left as they are, which is what merge_moments does with an empty
+    side; groups are kept in order of first appearance."""
 
     def __init__(self):
         self.index: dict[str, int] = {}
@@ -246,11 +237,12 @@ class _Running:
         a = self.acc[:, pos]
         self.acc[0, pos], self.acc[1, pos], self.acc[2, pos], self.acc[3, pos] = merge_moments(*a, n, hi, lo, m2)
 
-    def stats(self, unit: float, source: str, sha: str | None) -> GroupStats:
+    def stats(self, unit: float, source: str, sha: str | None, whole: bool = True) -> GroupStats:
+        """whole: the sizes are counts (int64); False keeps them as they are (down-weighted sizes)."""
         J = len(self.labels)
         n, hi, lo, m2 = (self.acc[k, :J].copy() for k in range(4))
-        return GroupStats(tuple(self.labels), n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source,
-                          file_sha256=sha)
+        return GroupStats(tuple(self.labels), n.astype(np.int64) if whole else n, hi, m2, mean_lo=lo, unit=unit,
+                          source=source, file_sha256=sha)
 
 
 def _where(source: str) -> str:

@@ -337,9 +337,11 @@ def test_threaded_blocks_give_the_same_numbers(monkeypatch):
     x = lfilter([1.0], [1.0, -0.9], g.standard_normal((4, 1000, 300)), axis=1)
     x[:, :, 7] = 2.5  # a constant column in the threaded path
     assert x.size >= dg._THREADED_MIN
-    monkeypatch.setattr(dg, "_THREADS", 1)
+    from pooling import _blocks
+
+    monkeypatch.setattr(_blocks, "THREADS", 1)
     one = dg.rhat_ess(x), dg.ess_mean(x), dg.mcse_mean(x)
-    monkeypatch.setattr(dg, "_THREADS", 2)
+    monkeypatch.setattr(_blocks, "THREADS", 2)
     two = dg.rhat_ess(x), dg.ess_mean(x), dg.mcse_mean(x)
     for a, b in zip((*one[0], one[1], one[2]), (*two[0], two[1], two[2])):
         np.testing.assert_array_equal(a, b)

@@ -237,7 +237,7 @@ def test_shrinkage_weight_is_the_posterior_mean_of_v_over_v_plus_tau2():
 
 
 def test_group_table_is_the_same_on_one_thread_and_two(monkeypatch):
-    # Source: the contract of report.groups._over_blocks (each block of groups writes only its own
+    # Source: the contract of pooling._blocks.each_block (each block of groups writes only its own
     # columns, so sharing the blocks between threads cannot change a number): compared exactly.
     from pooling.report import groups as G
 

@@ -8,12 +8,11 @@ a few hundred megabytes.
 """
 from __future__ import annotations
 
-import os
-
 import numpy as np
 import pandas as pd
 from scipy.special import ndtr
 
+from .._blocks import each_block
 from ..errors import InputError
 from .draws import BLOCK, View, interval, view
 
@@ -269,7 +268,7 @@ def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", thr
         if allowed_bias is not None:
             acc["p_bias_over"][a:b] = (np.abs(bias) > allowed_bias).mean(axis=0)
 
-    _over_blocks(block, J, v.S)
+    each_block(block, range(0, J, TABLE_BLOCK), threaded=v.S * J >= _THREADED_MIN)
     mu_mean = float(v.mu.mean())
     dist = v.raw_mean - mu_mean
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -296,24 +295,7 @@ def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", thr
 # and are reused from one block to the next; 1,024-column blocks were ~40% slower at 1,000 groups
 # (mostly first-touch page faults of 32 MB temporaries). benchmarks/README.md has the figures.
 TABLE_BLOCK = 128
-_THREADED_MIN = 1_000_000  # draws x groups from which the blocks are shared between two threads
-
-
-def _over_blocks(fn, J: int, S: int) -> None:
-    """Call fn(a) for a = 0, TABLE_BLOCK, ... < J; on two threads for large inputs. numpy's
-    reductions, partitions and ufuncs release the GIL, and each block writes its own columns of the
-    results, so the numbers are the same as on one thread."""
-    starts = range(0, J, TABLE_BLOCK)
-    threads = min(2, os.cpu_count() or 1, len(starts))
-    if threads > 1 and S * J >= _THREADED_MIN:
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(threads) as pool:
-            for f in [pool.submit(fn, a) for a in starts]:
-                f.result()
-    else:
-        for a in starts:
-            fn(a)
+_THREADED_MIN = 1_000_000  # draws x groups from which the blocks are shared between two threads (pooling._blocks)
 
 
 def check_level(level: float):

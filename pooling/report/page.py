@@ -356,6 +356,14 @@ def plots_label(label: str) -> str:
     return label if len(label) <= 40 else label[:39] + "…"
 
 
+def threshold_sentence(t, threshold: float, tail: str = "") -> str:
+    """How many groups are clearly above and below the threshold (probability over 0.95), as a paragraph."""
+    above = int(np.sum(t["p_above"] > 0.95))
+    below = int(np.sum(t["p_below"] > 0.95))
+    return (f"<p>Threshold {esc(f'{threshold:g}')}: {above:,} groups have P(theta above it) over 0.95, {below:,} have "
+            f"P(theta below it) over 0.95; {len(t) - above - below:,} are undecided.{' ' + tail if tail else ''}</p>")
+
+
 def _limits(res: Results, f: Fmt, lvl: str) -> str:
     o, t, v = res.options, res.table, res.view
     lim = []
@@ -365,10 +373,7 @@ def _limits(res: Results, f: Fmt, lvl: str) -> str:
         lim.append(f"upper limit {esc(f'{o.upper:g}')}")
     out = ['<section id="limits"><h2>Limits</h2>']
     if o.threshold is not None:
-        above = int(np.sum(t["p_above"] > 0.95))
-        below = int(np.sum(t["p_below"] > 0.95))
-        out.append(f"<p>Threshold {esc(f'{o.threshold:g}')}: {above} groups have P(theta above it) over 0.95, "
-                   f"{below} have P(theta below it) over 0.95; the rest are undecided. P(above) is in the Groups table.</p>")
+        out.append(threshold_sentence(t, o.threshold, "P(above) is in the Groups table."))
     if lim and "outside_mean" in t:
         ng = res.new_group
         out.append(f"<p>Specification: {' and '.join(lim)}. The predicted fraction outside is the posterior mean of "

@@ -21,7 +21,8 @@ from ..errors import InputError
 from . import plots
 from .export import records, write_csv
 from .groups import COLUMNS, pairwise
-from .page import CAUTION, CSS, Fmt, _best_and_shrink_cards, _card, _head_tail, _table, esc, plots_label
+from .page import (CAUTION, CSS, Fmt, _best_and_shrink_cards, _card, _head_tail, _table, esc, plots_label,
+                   threshold_sentence)
 
 SHOWN = 25  # rows of the best and of the worst groups
 KERNEL_FIELDS = ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias")
@@ -339,10 +340,7 @@ def _hyper_named(fit) -> dict:
 def _limits(t, f: Fmt, o, lvl: str, fit) -> str:
     out = ['<section id="limits"><h2>Limits</h2>']
     if o.threshold is not None:
-        above = int(np.sum(t["p_above"] > 0.95))
-        below = int(np.sum(t["p_below"] > 0.95))
-        out.append(f"<p>Threshold {esc(f'{o.threshold:g}')}: {above:,} groups have P(theta above it) over 0.95, "
-                   f"{below:,} have P(theta below it) over 0.95; {len(t) - above - below:,} are undecided.</p>")
+        out.append(threshold_sentence(t, o.threshold))
     if "outside_mean" in t:
         lim = [f"lower limit {esc(f'{o.lower:g}')}"] if o.lower is not None else []
         lim += [f"upper limit {esc(f'{o.upper:g}')}"] if o.upper is not None else []
