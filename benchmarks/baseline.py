@@ -106,9 +106,9 @@ def _ess_per_second(samples: list[dict], seconds: float) -> dict:
     mu = np.stack([s["mu"] for s in samples])
     tau = np.stack([s["tau"] for s in samples])
     theta = np.stack([s["theta"] for s in samples]).astype(np.float64)
-    ess_theta = dg.ess_bulk(theta)
+    ess_theta = dg.bulk_ess(theta)
     worst = int(np.argmin(ess_theta))
-    res = {"ess_tau": float(dg.ess_bulk(tau)), "ess_mu": float(dg.ess_bulk(mu)),
+    res = {"ess_tau": float(dg.bulk_ess(tau)), "ess_mu": float(dg.bulk_ess(mu)),
            "ess_theta_worst": float(ess_theta[worst]), "worst_group": worst, "seconds": seconds,
            "draws": int(tau.size), "tau_mean": float(tau.mean())}
     for key in ("tau", "mu", "theta_worst"):

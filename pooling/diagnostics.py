@@ -58,10 +58,10 @@ from ._blocks import each_block
 
 __all__ = [
     "split_rhat",
-    "ess_bulk",
-    "ess_tail",
-    "ess_mean",
-    "mcse_mean",
+    "bulk_ess",
+    "tail_ess",
+    "mean_ess",
+    "mean_mc_error",
     "rhat_ess",
     "check_targets",
     "worst",
@@ -398,32 +398,32 @@ def split_rhat(x):
     return _shaped(res["rhat"], rest)
 
 
-def ess_bulk(x):
+def bulk_ess(x):
     """Bulk ESS: the ESS of the rank-normalised split chains, per parameter."""
     res, rest = _run(x, frozenset({"bulk"}))
     return _shaped(res["bulk"], rest)
 
 
-def ess_tail(x):
+def tail_ess(x):
     """Tail ESS: the smaller ESS of the split indicators I(x <= q05) and I(x <= q95), per parameter."""
     res, rest = _run(x, frozenset({"tail"}))
     return _shaped(res["tail"], rest)
 
 
-def ess_mean(x):
+def mean_ess(x):
     """Mean ESS: the ESS of the raw split chains, per parameter."""
     res, rest = _run(x, frozenset({"mean"}))
     return _shaped(res["mean"], rest)
 
 
-def mcse_mean(x):
-    """Monte Carlo standard error of the mean: sd(x, ddof=1) / sqrt(ess_mean(x)), per parameter."""
+def mean_mc_error(x):
+    """Monte Carlo standard error of the mean: sd(x, ddof=1) / sqrt(mean_ess(x)), per parameter."""
     res, rest = _run(x, frozenset({"mcse"}))
     return _shaped(res["mcse"], rest)
 
 
 def rhat_ess(x):
-    """(split_rhat(x), ess_bulk(x), ess_tail(x)), computed together so the ranking is done once."""
+    """(split_rhat(x), bulk_ess(x), tail_ess(x)), computed together so the ranking is done once."""
     res, rest = _run(x, frozenset({"rhat", "bulk", "tail"}))
     return tuple(_shaped(res[k], rest) for k in ("rhat", "bulk", "tail"))
 
@@ -432,7 +432,7 @@ def check_targets(named: dict[str, np.ndarray], rhat_max: float = 1.01, ess_min:
     """Entries with split R-hat not below rhat_max, or bulk or tail ESS below ess_min (NaN misses).
 
     Each array in `named` has shape (chains, draws, *rest); a miss is reported as
-    {"name", "index" (a tuple into rest), "rhat", "ess_bulk", "ess_tail"}, in name then C order.
+    {"name", "index" (a tuple into rest), "rhat", "bulk_ess", "tail_ess"}, in name then C order.
     A NaN diagnostic (one chain, a NaN draw, a constant quantity) counts as a miss: the target
     cannot be shown to be met.
     """
@@ -444,16 +444,16 @@ def check_targets(named: dict[str, np.ndarray], rhat_max: float = 1.01, ess_min:
         for flat in np.flatnonzero(bad.ravel()):
             idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
             misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
-                           "ess_bulk": float(bulk.ravel()[flat]), "ess_tail": float(tail.ravel()[flat])})
+                           "bulk_ess": float(bulk.ravel()[flat]), "tail_ess": float(tail.ravel()[flat])})
     return misses
 
 
 def worst(named: dict[str, np.ndarray]) -> dict[str, dict[str, float]]:
-    """Per name: {"rhat_max", "ess_bulk_min", "ess_tail_min"} over its entries (NaN if any is NaN)."""
+    """Per name: {"rhat_max", "bulk_ess_min", "tail_ess_min"} over its entries (NaN if any is NaN)."""
     out = {}
     for name, x in named.items():
         rhat, bulk, tail = (np.asarray(v, dtype=float) for v in rhat_ess(x))
         out[name] = {"rhat_max": float(np.max(rhat)) if rhat.size else float("nan"),
-                     "ess_bulk_min": float(np.min(bulk)) if bulk.size else float("nan"),
-                     "ess_tail_min": float(np.min(tail)) if tail.size else float("nan")}
+                     "bulk_ess_min": float(np.min(bulk)) if bulk.size else float("nan"),
+                     "tail_ess_min": float(np.min(tail)) if tail.size else float("nan")}
     return out

@@ -59,13 +59,13 @@ def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
         for flat in np.flatnonzero(bad.ravel()):
             idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
             misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
-                           "ess_bulk": float(bulk.ravel()[flat]), "ess_tail": float(tail.ravel()[flat])})
+                           "bulk_ess": float(bulk.ravel()[flat]), "tail_ess": float(tail.ravel()[flat])})
         live = ~constant
         worst[name] = {"rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),
-                       "ess_bulk_min": float(np.min(bulk[live])) if live.any() else float("nan"),
-                       "ess_tail_min": float(np.min(tail[live])) if live.any() else float("nan")}
-    low = min((min(w["ess_bulk_min"], w["ess_tail_min"]) for w in worst.values()
-               if np.isfinite(w["ess_bulk_min"]) and np.isfinite(w["ess_tail_min"])), default=np.inf)
+                       "bulk_ess_min": float(np.min(bulk[live])) if live.any() else float("nan"),
+                       "tail_ess_min": float(np.min(tail[live])) if live.any() else float("nan")}
+    low = min((min(w["bulk_ess_min"], w["tail_ess_min"]) for w in worst.values()
+               if np.isfinite(w["bulk_ess_min"]) and np.isfinite(w["tail_ess_min"])), default=np.inf)
     growth = float(np.clip(1.15 * targets.ess_min / low, 1.25, 4.0)) if low > 0 else 4.0
     record = {"worst": worst, "misses": len(misses), "growth": growth, "missed_list": misses}
     return misses, record
@@ -160,7 +160,7 @@ def _jsonable_miss(m: dict, labels) -> dict:
         out["group"] = labels[int(idx[0])]
     if idx is not None:
         out["index"] = [int(i) for i in idx]
-    for k in ("rhat", "ess_bulk", "ess_tail"):
+    for k in ("rhat", "bulk_ess", "tail_ess"):
         if k in out:
             out[k] = float(out[k])
     return out
@@ -173,8 +173,8 @@ def summarize_draws(x: np.ndarray) -> dict:
     return {
         "mean": float(flat.mean()), "sd": float(flat.std(ddof=1)),
         **{f"q{int(round(p * 1000)):03d}": float(v) for p, v in zip(QUANTILES, q)},
-        "mcse_mean": float(dg.mcse_mean(x)), "rhat": float(dg.split_rhat(x)),
-        "ess_bulk": float(dg.ess_bulk(x)), "ess_tail": float(dg.ess_tail(x)),
+        "mean_mc_error": float(dg.mean_mc_error(x)), "rhat": float(dg.split_rhat(x)),
+        "bulk_ess": float(dg.bulk_ess(x)), "tail_ess": float(dg.tail_ess(x)),
     }
 
 

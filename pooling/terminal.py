@@ -56,10 +56,10 @@ def print_fit(fit: Fit, out, stream=None) -> None:
     w(f"data: {p.stats.J} groups" + (f", {p.stats.N} measurements" if p.stats.kind == "raw" else "")
       + f"; {fit.raw.settings.chains} chains x {fit.raw.mu.shape[1]} draws, seed {fit.raw.seed}", file=stream)
     w("", file=stream)
-    w(f"{'':8}{'mean':>11}{'sd':>11}{'2.5%':>11}{'97.5%':>11}{'R-hat':>8}{'ESS bulk':>10}{'ESS tail':>10}", file=stream)
+    w(f"{'':8}{'mean':>11}{'sd':>11}{'2.5%':>11}{'97.5%':>11}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}", file=stream)
     for name, s in fit.hyper_summary().items():
         w(f"{name:8}{_fmt(s['mean']):>11}{_fmt(s['sd']):>11}{_fmt(s['q025']):>11}{_fmt(s['q975']):>11}"
-          f"{s['rhat']:>8.3f}{s['ess_bulk']:>10.0f}{s['ess_tail']:>10.0f}", file=stream)
+          f"{s['rhat']:>8.3f}{s['bulk_ess']:>10.0f}{s['tail_ess']:>10.0f}", file=stream)
     theta = fit.draws("theta")
     post_mean = theta.mean(axis=0)
     lo, hi = np.quantile(theta, [0.025, 0.975], axis=0)

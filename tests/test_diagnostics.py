@@ -38,10 +38,10 @@ def _arviz_all(x):
 def _ours_all(x):
     return {
         "rhat": np.asarray(dg.split_rhat(x)),
-        "bulk": np.asarray(dg.ess_bulk(x)),
-        "tail": np.asarray(dg.ess_tail(x)),
-        "mean": np.asarray(dg.ess_mean(x)),
-        "mcse": np.asarray(dg.mcse_mean(x)),
+        "bulk": np.asarray(dg.bulk_ess(x)),
+        "tail": np.asarray(dg.tail_ess(x)),
+        "mean": np.asarray(dg.mean_ess(x)),
+        "mcse": np.asarray(dg.mean_mc_error(x)),
     }
 
 
@@ -136,7 +136,7 @@ def test_nan_and_inf_draws_follow_arviz():
 
 def test_tail_ess_uses_numpy_quantiles():
     # 1 chain of 41 draws: (S - 1) * 0.95 = 38 lands exactly on a draw. There arviz's own
-    # quantile can fall an ulp below that draw; ess_tail follows numpy's quantile instead, and is
+    # quantile can fall an ulp below that draw; tail_ess follows numpy's quantile instead, and is
     # checked here against arviz's mean-ESS of the two indicators built with np.quantile.
     rng = np.random.default_rng(5)
     x = rng.standard_normal((1, 41, 30))
@@ -144,7 +144,7 @@ def test_tail_ess_uses_numpy_quantiles():
     lo, hi = np.quantile(flat, [0.05, 0.95], axis=0)
     # Source: arviz 0.23 az.ess(method="mean") of I(x <= q05) and I(x <= q95).
     ref = np.minimum(_ref(x <= lo, az.ess, method="mean"), _ref(x <= hi, az.ess, method="mean"))
-    np.testing.assert_allclose(dg.ess_tail(x), ref, rtol=RTOL)
+    np.testing.assert_allclose(dg.tail_ess(x), ref, rtol=RTOL)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -163,7 +163,7 @@ def test_iid_ess_near_total_draws():
     size = c * n
     x = rng.standard_normal((c, n, reps))
     _, bulk, tail = dg.rhat_ess(x)
-    for name, ess, budget in [("bulk", bulk, 2 / np.sqrt(size)), ("mean", dg.ess_mean(x), 2 / np.sqrt(size)),
+    for name, ess, budget in [("bulk", bulk, 2 / np.sqrt(size)), ("mean", dg.mean_ess(x), 2 / np.sqrt(size)),
                               ("tail", tail, 4 / np.sqrt(size))]:
         ratio = ess / size
         mcse = ratio.std(ddof=1) / np.sqrt(reps)
@@ -179,14 +179,14 @@ def test_ar1_ess_matches_known_autocorrelation():
     t = np.arange(1, n)
     true = c * n / (1 + 2 * np.sum((1 - t / n) * phi**t))
     x = _ar1(rng, phi, (c, n, reps))
-    ratio = dg.ess_mean(x) / true
+    ratio = dg.mean_ess(x) / true
     mcse = ratio.std(ddof=1) / np.sqrt(reps)
     # Source: the variance of the mean of a stationary AR(1) process (e.g. Box, Jenkins and
     # Reinsel, Time Series Analysis, the autocorrelation rho_t = phi^t); tolerance 4 Monte
     # Carlo standard errors measured from the replicates.
     assert abs(ratio.mean() - 1.0) < 4 * mcse, (ratio.mean(), mcse)
     # Source: arviz 0.23 az.ess(method="mean") on a few of the same chains.
-    np.testing.assert_allclose(dg.ess_mean(x[:, :, :5]), _ref(x[:, :, :5], az.ess, method="mean"), rtol=RTOL)
+    np.testing.assert_allclose(dg.mean_ess(x[:, :, :5]), _ref(x[:, :, :5], az.ess, method="mean"), rtol=RTOL)
 
 
 def test_stuck_chain_gives_large_rhat():
@@ -241,7 +241,7 @@ def _draws(draw):
 @given(_draws())
 def test_shapes_and_values_for_any_trailing_dims(x):
     rest = x.shape[2:]
-    for f in (dg.split_rhat, dg.ess_bulk, dg.ess_tail, dg.ess_mean, dg.mcse_mean):
+    for f in (dg.split_rhat, dg.bulk_ess, dg.tail_ess, dg.mean_ess, dg.mean_mc_error):
         v = f(x)
         if rest:
             assert isinstance(v, np.ndarray) and v.shape == rest
@@ -259,11 +259,11 @@ def test_bulk_and_tail_ess_invariant_under_increasing_transforms(x, how):
     y = f(x)
     # Source: Vehtari et al. (2021): bulk ESS is computed from ranks only, so any strictly
     # increasing transform leaves it unchanged; the tail ESS uses indicators of order statistics.
-    np.testing.assert_allclose(dg.ess_bulk(y), dg.ess_bulk(x), rtol=1e-12)
-    np.testing.assert_allclose(dg.ess_tail(y), dg.ess_tail(x), rtol=1e-12)
+    np.testing.assert_allclose(dg.bulk_ess(y), dg.bulk_ess(x), rtol=1e-12)
+    np.testing.assert_allclose(dg.tail_ess(y), dg.tail_ess(x), rtol=1e-12)
     # The raw-scale mean ESS is not rank-based; arviz's value on the transformed draws confirms
     # the transform itself was applied as intended.
-    np.testing.assert_allclose(dg.ess_mean(y), _ref(y, az.ess, method="mean"), rtol=RTOL, equal_nan=True)
+    np.testing.assert_allclose(dg.mean_ess(y), _ref(y, az.ess, method="mean"), rtol=RTOL, equal_nan=True)
 
 
 @settings(max_examples=20, deadline=None)
@@ -310,11 +310,11 @@ def test_check_targets_and_worst():
     for m in misses:
         r, b, t = (np.ravel(a)[np.ravel_multi_index(m["index"], np.shape(a)) if m["index"] else 0]
                    for a in ref[m["name"]])
-        np.testing.assert_allclose([m["rhat"], m["ess_bulk"], m["ess_tail"]], [r, b, t], rtol=RTOL)
+        np.testing.assert_allclose([m["rhat"], m["bulk_ess"], m["tail_ess"]], [r, b, t], rtol=RTOL)
     w = dg.worst(named)
     for k, (r, b, t) in ref.items():
         # Source: arviz 0.23, the extremes over each variable's entries.
-        np.testing.assert_allclose([w[k]["rhat_max"], w[k]["ess_bulk_min"], w[k]["ess_tail_min"]],
+        np.testing.assert_allclose([w[k]["rhat_max"], w[k]["bulk_ess_min"], w[k]["tail_ess_min"]],
                                    [np.max(r), np.min(b), np.min(t)], rtol=RTOL)
 
 
@@ -323,7 +323,7 @@ def test_bad_shapes_are_refused():
     with pytest.raises(ValueError):
         dg.split_rhat(np.zeros(10))
     with pytest.raises(ValueError):
-        dg.ess_bulk(np.array([["a", "b"]]))
+        dg.bulk_ess(np.array([["a", "b"]]))
 
 
 # --- blocks on threads (benchmarks/README.md, `pooling fit` whole process) ---------------------
@@ -340,9 +340,9 @@ def test_threaded_blocks_give_the_same_numbers(monkeypatch):
     from pooling import _blocks
 
     monkeypatch.setattr(_blocks, "THREADS", 1)
-    one = dg.rhat_ess(x), dg.ess_mean(x), dg.mcse_mean(x)
+    one = dg.rhat_ess(x), dg.mean_ess(x), dg.mean_mc_error(x)
     monkeypatch.setattr(_blocks, "THREADS", 2)
-    two = dg.rhat_ess(x), dg.ess_mean(x), dg.mcse_mean(x)
+    two = dg.rhat_ess(x), dg.mean_ess(x), dg.mean_mc_error(x)
     for a, b in zip((*one[0], one[1], one[2]), (*two[0], two[1], two[2])):
         np.testing.assert_array_equal(a, b)
     for j in (0, 150, 299):

@@ -73,7 +73,7 @@ def test_refit_after_several_batches_matches_one_fit_of_the_concatenated_file(wo
         a = post[name] if lab is None else post[name].sel(group=lab)
         b = one.idata.posterior[name] if lab is None else one.idata.posterior[name].sel(group=lab)
         a, b = a.values, b.values
-        tol = 4.5 * np.hypot(dg.mcse_mean(a), dg.mcse_mean(b))
+        tol = 4.5 * np.hypot(dg.mean_mc_error(a), dg.mean_mc_error(b))
         assert abs(a.mean() - b.mean()) <= tol, (name, lab, a.mean(), b.mean(), tol)
     with open_store(store) as st:
         runs = st.runs()

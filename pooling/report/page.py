@@ -203,7 +203,7 @@ def render(res: Results, summary: dict | None = None) -> str:
     if missed:
         items = "".join(
             f"<li>{esc(m.get('name'))}{esc(' ' + repr(m['group'])) if 'group' in m else ''}: "
-            f"R-hat {Fmt.g(m.get('rhat'), 4)}, bulk ESS {Fmt.g(m.get('ess_bulk'), 4)}, tail ESS {Fmt.g(m.get('ess_tail'), 4)}</li>"
+            f"R-hat {Fmt.g(m.get('rhat'), 4)}, bulk ESS {Fmt.g(m.get('bulk_ess'), 4)}, tail ESS {Fmt.g(m.get('tail_ess'), 4)}</li>"
             for m in diag["missed"][:12])
         add('<div class="alarm"><h2>Diagnostics targets were MISSED</h2>'
             f"<p>{diag['missed_count']} quantities missed the targets (R-hat below {tg['rhat_below']}, bulk and tail "
@@ -234,14 +234,14 @@ def render(res: Results, summary: dict | None = None) -> str:
     rows = []
     for name, s in fit.hyper_summary().items():
         rows.append([esc(name), f.v(s["mean"], 1), f.v(s["sd"], 1), _interval(f, s["q025"], s["q975"], 1),
-                     Fmt.g(s["rhat"], 4), f"{s['ess_bulk']:.0f}", f"{s['ess_tail']:.0f}", Fmt.g(s["mcse_mean"], 2)])
+                     Fmt.g(s["rhat"], 4), f"{s['bulk_ess']:.0f}", f"{s['tail_ess']:.0f}", Fmt.g(s["mean_mc_error"], 2)])
     hyper_tab = _table([("quantity", False), ("mean", True), ("sd", True), ("95% interval", True), ("R-hat", True),
-                        ("ESS bulk", True), ("ESS tail", True), ("MC error of mean", True)], rows)
+                        ("bulk ESS", True), ("tail ESS", True), ("MC error of mean", True)], rows)
     wrows = []
     for name, wv in (diag.get("worst") or {}).items():
-        wrows.append([esc(name), Fmt.g(wv.get("rhat_max"), 4), Fmt.g(wv.get("ess_bulk_min"), 4), Fmt.g(wv.get("ess_tail_min"), 4)])
-    worst_tab = _table([("draws of", False), ("largest R-hat", True), ("smallest ESS bulk", True),
-                        ("smallest ESS tail", True)], wrows) if wrows else ""
+        wrows.append([esc(name), Fmt.g(wv.get("rhat_max"), 4), Fmt.g(wv.get("bulk_ess_min"), 4), Fmt.g(wv.get("tail_ess_min"), 4)])
+    worst_tab = _table([("draws of", False), ("largest R-hat", True), ("smallest bulk ESS", True),
+                        ("smallest tail ESS", True)], wrows) if wrows else ""
     rounds = ", ".join(str(r["draws_per_chain"]) for r in diag["rounds"])
     add('<section id="health"><h2>Run health</h2>'
         f"<p>Hyperparameters (nu, if drawn from a grid, is discrete: its R-hat and ESS are rough guides).</p>{hyper_tab}"

@@ -216,8 +216,8 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
     add(f'<div class="caution"><strong>Read this first</strong>{esc(CAUTION)}</div>')
     if not fit.targets_met:
         items = "".join(f"<li>{esc(m.get('name'))}{esc(' ' + repr(m['group'])) if 'group' in m else ''}: R-hat "
-                        f"{Fmt.g(m.get('rhat'), 4)}, bulk ESS {Fmt.g(m.get('ess_bulk'), 4)}, tail ESS "
-                        f"{Fmt.g(m.get('ess_tail'), 4)}</li>" for m in diag["missed"][:12])
+                        f"{Fmt.g(m.get('rhat'), 4)}, bulk ESS {Fmt.g(m.get('bulk_ess'), 4)}, tail ESS "
+                        f"{Fmt.g(m.get('tail_ess'), 4)}</li>" for m in diag["missed"][:12])
         add('<div class="alarm"><h2>Diagnostics targets were MISSED</h2>'
             f"<p>{diag['missed_count']} quantities missed the targets (R-hat below {tg['rhat_below']}, bulk and tail "
             f"effective sample size at least {tg['ess_at_least']:g}) after {fit.raw.mu.shape[1]} draws per chain. "
@@ -251,12 +251,12 @@ def render(fit, o, t, pairs, summary: dict | None = None) -> str:
     rows = []
     for name, s in fit.hyper_summary().items():
         rows.append([esc(name), f.v(s["mean"], 1), f.v(s["sd"], 1), f"{f.v(s['q025'], 1)} to {f.v(s['q975'], 1)}",
-                     Fmt.g(s["rhat"], 4), f"{s['ess_bulk']:.0f}", f"{s['ess_tail']:.0f}", Fmt.g(s["mcse_mean"], 2)])
+                     Fmt.g(s["rhat"], 4), f"{s['bulk_ess']:.0f}", f"{s['tail_ess']:.0f}", Fmt.g(s["mean_mc_error"], 2)])
     hyper = _table([("quantity", False), ("mean", True), ("sd", True), ("95% interval", True), ("R-hat", True),
-                    ("ESS bulk", True), ("ESS tail", True), ("MC error of mean", True)], rows)
-    wrows = [[esc(name), Fmt.g(wv.get("rhat_max"), 4), Fmt.g(wv.get("ess_bulk_min"), 4), Fmt.g(wv.get("ess_tail_min"), 4)]
+                    ("bulk ESS", True), ("tail ESS", True), ("MC error of mean", True)], rows)
+    wrows = [[esc(name), Fmt.g(wv.get("rhat_max"), 4), Fmt.g(wv.get("bulk_ess_min"), 4), Fmt.g(wv.get("tail_ess_min"), 4)]
              for name, wv in (diag.get("worst") or {}).items()]
-    worst = _table([("draws of", False), ("largest R-hat", True), ("smallest ESS bulk", True), ("smallest ESS tail", True)],
+    worst = _table([("draws of", False), ("largest R-hat", True), ("smallest bulk ESS", True), ("smallest tail ESS", True)],
                    wrows)
     cr = fit.figures["classic_rhat"]
     screen = (f"Every group, classic R-hat of theta from the chains' running means and variances (not split, not "
@@ -410,10 +410,10 @@ def print_summary(fit, out, stream=None) -> None:
     w(f"data: {p.stats.J} groups; {fit.raw.settings.chains} chains x {fit.raw.mu.shape[1]} draws, seed {fit.raw.seed}; "
       f"summary mode: every draw kept for the hyperparameters and {len(fit.kept)} groups")
     w()
-    w(f"{'':8}{'mean':>11}{'sd':>11}{'2.5%':>11}{'97.5%':>11}{'R-hat':>8}{'ESS bulk':>10}{'ESS tail':>10}")
+    w(f"{'':8}{'mean':>11}{'sd':>11}{'2.5%':>11}{'97.5%':>11}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}")
     for name, s in fit.hyper_summary().items():
         w(f"{name:8}{g(s['mean']):>11}{g(s['sd']):>11}{g(s['q025']):>11}{g(s['q975']):>11}"
-          f"{s['rhat']:>8.3f}{s['ess_bulk']:>10.0f}{s['ess_tail']:>10.0f}")
+          f"{s['rhat']:>8.3f}{s['bulk_ess']:>10.0f}{s['tail_ess']:>10.0f}")
     order = np.argsort(t["theta_mean"].to_numpy(), kind="stable")
     order = order[::-1] if o.best == "highest" else order
     rows = order if len(order) <= 12 else np.concatenate([order[:6], order[-6:]])
