@@ -5,6 +5,13 @@ from __future__ import annotations
 import os
 
 import pytest
+from hypothesis import settings
+
+# Property tests explore new examples on a developer's machine; in CI (the environment variable CI set)
+# the examples are derandomised, so that a run on a clean clone cannot fail by the luck of the draw.
+settings.register_profile("ci", derandomize=True, print_blob=True)
+if os.environ.get("CI"):
+    settings.load_profile("ci")
 
 # Keep numba's compiled kernel in one cache for the whole run (and the CLI subprocesses).
 os.environ.setdefault("NUMBA_CACHE_DIR", os.path.join(os.path.dirname(__file__), "..", ".numba-cache"))
