@@ -5,6 +5,8 @@ The public surface, in the order of the flow:
     stats = pooling.read_table("parts.csv", group="supplier", value="strength")
     model = pooling.Model(within="separate")            # priors: see pooling.model
     fit = pooling.fit(stats, model, pooling.Settings(chains=4, draws=1000, seed=1))
+    res = pooling.results.compute(fit, pooling.ReportOptions(threshold=400.0))
+    res.table                                           # every group's answers
     fit.idata.posterior["theta"]                        # labelled draws (arviz InferenceData)
 """
 from __future__ import annotations
@@ -19,13 +21,19 @@ _LAZY = {
     "InputError": "errors", "ModelError": "errors", "PoolingError": "errors",
     "Flat": "model", "Gamma": "model", "HalfCauchy": "model", "HalfNormal": "model", "Model": "model",
     "Normal": "model", "NuFixed": "model", "NuGrid": "model", "Reciprocal": "model", "build": "model",
+    "NormalBetween": "model", "HeavyBetween": "model", "ReportOptions": "asked",
     "Settings": "sampler", "Targets": "sampler",
     "GroupStats": "stats", "from_estimates": "stats", "from_frame": "stats", "from_summaries": "stats",
     "merge": "stats", "read_table": "stats",
 }
 
 
+_SUBMODULES = ("results", "report", "posterior", "summary", "sampler", "model", "stats", "diagnostics")
+
+
 def __getattr__(name: str):
+    if name in _SUBMODULES:
+        return importlib.import_module(f".{name}", __name__)
     if name in _LAZY:
         value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
         globals()[name] = value
@@ -35,30 +43,30 @@ def __getattr__(name: str):
 
 def fit(stats, model=None, settings=None, progress: bool | None = None, init=None, *, summary=None,
         options=None, keep=None):
-    """Build the problem, sample it with run-length control, and return a labelled `Fit`.
+    """Build the problem, sample it with run-length control, and return the run.
 
     stats: a GroupStats; model: a Model (default Model()); settings: a Settings (default Settings()).
     summary: None (automatic above pooling.summary.AUTO_GROUPS groups), True or False: summary mode,
-    which returns a pooling.summary.SummaryFit; options (pooling.report.ReportOptions) and keep (labels,
-    or a pooling.summary.SummaryOptions) are read in summary mode only.
+    which returns a pooling.summary.SummaryFit; options (pooling.ReportOptions) and keep (labels, or a
+    pooling.summary.SummaryOptions) are read in summary mode only, where some answers are counted while
+    the chains run. Otherwise a pooling.posterior.Fit. pooling.results.compute(run, options) gives the answers.
     """
     from .model import build
     from .posterior import finish
     from .sampler import sample_raw
 
     problem = build(stats, model)
-    # --- summary mode (pooling.summary): running per-group summaries instead of every draw -------
     from .summary import fit_summary, wants_summary
 
     if wants_summary(problem, settings, summary):
         return fit_summary(problem, settings, options, keep, progress=progress, init=init)
-    # --- end of summary mode -----------------------------------------------------------------
     raw = sample_raw(problem, settings, progress=progress, init=init)
-    return finish(raw, problem, consume=True)  # raw is ours: its group draws move into the fit, uncopied
+    return finish(raw, problem)
 
 
 __all__ = [
     "GroupStats", "read_table", "from_frame", "from_summaries", "from_estimates", "merge",
     "Model", "Flat", "Normal", "HalfNormal", "HalfCauchy", "Reciprocal", "Gamma", "NuFixed", "NuGrid", "build",
+    "NormalBetween", "HeavyBetween", "ReportOptions",
     "Settings", "Targets", "fit", "InputError", "ModelError", "PoolingError", "__version__",
 ]

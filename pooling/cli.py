@@ -86,6 +86,10 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     g = p.add_argument_group("model")
     g.add_argument("--within", choices=["separate", "shared", "known"],
                    help="within-group variance structure (default: separate; known with --estimate)")
+    g.add_argument("--between", default="heavy", metavar="FORM",
+                   help="between-group distribution: heavy (default: Student-t, its df learned from the data, so "
+                        "that an outlying group neither drags the others nor is dragged), heavy:DF (df fixed), or "
+                        "normal")
     g.add_argument("--mu", default="flat", help="prior on mu: flat (default) or normal:LOC:SCALE")
     g.add_argument("--tau", default="flat",
                    help="prior on tau: flat (default; needs 3+ groups), half-normal:SCALE or half-cauchy:SCALE")
@@ -152,6 +156,12 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
                    help="x_pt for z-scores (default: ISO 13528 Algorithm A robust mean of the group means)")
     q.add_argument("--sigma-pt", dest="sigma_pt", type=_positive, metavar="S",
                    help="sigma_pt for z-scores (default: ISO 13528 Algorithm A robust sd of the group means)")
+    q.add_argument("--decide-at", dest="decide_at", default="0.95", metavar="P",
+                   help="a group is on a side of --threshold (or outside or inside the limits) when its probability "
+                        "is at least P, otherwise undecided (default 0.95)")
+    q.add_argument("--labs", action="store_true",
+                   help="the groups are laboratories in a round: show the interlaboratory view (also shown when "
+                        "--assigned-value or --sigma-pt is given)")
     # --- end of reporter options -------------------------------------------------------------
     # --- summary mode (pooling.summary): many groups in bounded memory -------------------------
     m = p.add_argument_group("summary mode (many groups)")
@@ -220,12 +230,20 @@ def _stats_from_args(args):
     return S.from_estimates(args.data, args.group, args.estimate, args.std_error, **read)
 
 
+def _decide_at(text) -> float:
+    """--decide-at: a probability above 0.5 and below 1 (checked after parsing, so the message is one line)."""
+    x = _num(str(text), "--decide-at")
+    if not 0.5 < x < 1:
+        raise E.InputError(f"bad option --decide-at: expected a probability above 0.5 and below 1, found '{text}'")
+    return x
+
+
 def _model_from_args(args, stats):
     from .model import Model
 
     within = args.within or ("known" if stats.kind == "known" else "separate")
     return Model(within=within, mu=parse_prior(args.mu, "--mu"), tau=parse_prior(args.tau, "--tau"),
-                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args))
+                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args), between=getattr(args, "between", None) or "heavy")
 
 
 def _settings_from_args(args):
@@ -236,52 +254,42 @@ def _settings_from_args(args):
 
 
 def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
-    """Fit, write the run folder, print. `init`: chains' starting states; `more(fit, folder)` adds files
-    to the folder before it is renamed into place; `after(fit, out)` runs once the folder is in place."""
+    """Fit, compute the answers, write the run folder, print. `init`: chains' starting states; `more(fit, res,
+    folder)` adds files to the folder before it is renamed into place; `after(fit, res, out)` runs once the
+    folder is in place."""
     from . import fit as do_fit
+    from .asked import ReportOptions
     from .output import check_target, write_run
-    from .terminal import print_fit
+    from .results import compute, resolve_groups
+    from .terminal import print_results
 
     model = _model_from_args(args, stats)
     settings = _settings_from_args(args)
     check_target(Path(args.out), args.replace)  # refuse before sampling, not after
-    from .report import check_args as check_report_args
+    options = ReportOptions.from_args(args)  # every report option is checked before sampling
+    from .asked import split_compare
 
-    check_report_args(args, stats.labels)  # crossed limits, unknown --compare labels: before sampling too
-    # --- hardening: extreme magnitudes -------------------------------------------------------------
-    # The statistics and the sampler hold data of 1e-300 or 1e300 in a power-of-two unit, but the
-    # reporter computes in the user's units, where a variance of such numbers under- or overflows
-    # (wrong spreads at 1e-300, a crash at 1e300). Refuse before sampling rather than write a wrong report.
-    if stats.unit != 1.0:
-        raise E.InputError(
-            f"bad input in '{stats.source}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
-            f"report can show; express them in other units (for example times {1 / stats.unit:.0e}) and fit again, "
-            "or fit from Python with pooling.fit, whose draws keep these units")
-    # --- end of hardening block ----------------------------------------------------------------------
+    resolve_groups(tuple(stats.labels), split_compare(options.compare, tuple(stats.labels)))
     fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init,
-                 **_summary_args(args, stats, more))
-    extra = None
-    try:
-        from .report import write_report_files  # the reporter's files, when that stage is installed
-
-        extra = lambda f, folder: write_report_files(f, folder, args)  # noqa: E731
-    except ImportError:
-        pass
-    if more is not None:
-        extra = _chain_extra(extra, more)
-    out = write_run(fit, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
+                 **_summary_args(args, stats, more, options))
+    res = compute(fit, options)
+    extra = None if more is None else (lambda folder: more(fit, res, folder))
+    out = write_run(fit, res, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
     try:
         if not args.quiet:
-            _print_run(fit, out, print_fit)
+            print_results(res, out)
         if after is not None:
-            after(fit, out)
+            after(fit, res, out)
     except KeyboardInterrupt:  # the folder is complete and in place: say so, not "nothing was written"
         unrecorded = "; the store has not recorded this run, so the next refit fits again" if after else ""
         raise E.Interrupted(f"stopped by the user after the run folder '{out}' was written{unrecorded}") from None
-    if not fit.targets_met:
-        print(f"warning: diagnostics targets missed for {len(fit.misses)} quantities after "
-              f"{fit.raw.mu.shape[1]} draws per chain; results were written to '{out}' but need care "
-              "(see summary.json, 'diagnostics')", file=sys.stderr)
+    if not res.targets_met:
+        run = res.run
+        print(f"warning: diagnostics targets missed for {res.diagnostics['missed_count']} quantities after "
+              f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
+              f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
+              f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')",
+              file=sys.stderr)
         return E.EXIT_TARGETS_MISSED
     return E.EXIT_OK
 
@@ -305,7 +313,7 @@ def cmd_demo(args, argv) -> int:
 
 
 # --- summary mode (pooling.summary) -------------------------------------------------------------
-def _summary_args(args, stats, more) -> dict:
+def _summary_args(args, stats, more, options) -> dict:
     """pooling.fit's summary-mode arguments. A refit (`more` set) keeps every draw: its change report
     compares the draws of every group."""
     choice = getattr(args, "summary", None) or "auto"
@@ -314,34 +322,15 @@ def _summary_args(args, stats, more) -> dict:
             raise E.InputError("bad options: --summary on is not available with refit, whose change report "
                                "compares every group's draws; use --summary off or auto")
         return {"summary": False}
-    from .report import ReportOptions
-    from .report.assemble import split_compare
+    from .asked import split_compare
     from .summary import SummaryOptions
 
     keep = split_compare(list(getattr(args, "keep", None) or []) + list(getattr(args, "compare", None) or []),
                          stats.labels)
     sopts = SummaryOptions(keep=keep, sample=getattr(args, "keep_sample", 200),
                            bins=getattr(args, "summary_bins", 64))
-    return {"summary": choice, "options": ReportOptions.from_args(args), "keep": sopts}
-
-
-def _print_run(fit, out, print_fit) -> None:
-    if getattr(fit, "summary_mode", False):
-        from .report.summary_view import print_summary
-
-        print_summary(fit, out)
-    else:
-        print_fit(fit, out)
+    return {"summary": choice, "options": options, "keep": sopts}
 # --- end of summary mode ---------------------------------------------------------------------------
-
-
-def _chain_extra(first, second):
-    def both(fit, folder):
-        if first is not None:
-            first(fit, folder)
-        second(fit, folder)
-
-    return both
 
 
 # ---------------------------------------------------------------------------------------------
@@ -384,12 +373,7 @@ def _add_store_parsers(sub):
                    "since the last recorded run (otherwise exit 4)")
     f.add_argument("--fresh-start", dest="fresh_start", action="store_true",
                    help="start the chains afresh instead of from the last run's final states")
-    # the change report reads --threshold, --lower-limit, --upper-limit, --level and --best of the reporter
-    w = p.add_argument_group("what changed")
-    w.add_argument("--decide-at", dest="decide_at", default="0.95", metavar="P",
-                   help="a group is on a side of --threshold (or outside the limits) when its probability is at least "
-                        "P, on the other side when at most 1 - P, else unsure; changes of side are reported "
-                        "(default 0.95)")
+    # the change report reads --threshold, --lower-limit, --upper-limit, --level, --best and --decide-at
 
 
 def _opt_num(args, name, flag):
@@ -469,14 +453,14 @@ def cmd_refit(args, argv) -> int:
     settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
                 "seed": args.seed, "warm_start": init is not None}
 
-    def after(fit, out):
+    def after(fit, res, out):
         jobs.record_run(plan, fit, out, settings)
         if not args.quiet:
             for line in short_lines(plan.report):
                 print(line)
 
-    return run_fit(args, plan.stats, argv, init=init, more=lambda fit, folder: jobs.write_changes(plan, fit, watch, folder),
-                   after=after)
+    return run_fit(args, plan.stats, argv, init=init,
+                   more=lambda fit, res, folder: jobs.write_changes(plan, fit, watch, folder), after=after)
 
 
 STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_withdraw, "refit": cmd_refit}
@@ -493,6 +477,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
+        if getattr(args, "decide_at", None) is not None:
+            args.decide_at = _decide_at(args.decide_at)
         return {"fit": cmd_fit, "demo": cmd_demo, **STORE_COMMANDS}[args.command](args, argv)
     except E.PoolingError as exc:
         print(f"pooling: {exc}", file=sys.stderr)

@@ -1,76 +1,179 @@
-"""The blocked Gibbs sweep, compiled with numba. Pure functions of (state, statistics, rng).
+"""The blocked Gibbs sweep, compiled with numba. Pure functions of (data, state, rng).
 
-Internal units only (see model.build). With v_j = sigma_j^2 / n_j, one sweep is:
+Internal units only (see model.build). The kernel's inputs are one `Data` (statistics and priors),
+one `State` per chain (the chain's scalars and per-group arrays) and one `Work` per chain (scratch,
+allocated once); a sweep allocates nothing. With v_j = sigma_j^2 / n_j and, for the heavy-tailed
+between-group distribution, a latent precision lambda_j per group (t_j = tau^2 / lambda_j; for the
+normal one lambda_j = 1, t_j = tau^2), one sweep is:
 
-Block A, (tau, mu, theta) jointly given the within-group variances:
+Block A, (tau, mu, theta) jointly given the within-group variances and the lambda_j:
   1. log tau by slice sampling (stepping out and shrinkage, Neal 2003, Ann. Statist. 31(3)) on
-         p(tau | v, y) ∝ p(tau) V^(1/2) prod_j (v_j + tau^2)^(-1/2) exp(-1/2 sum_j (ybar_j - m)^2 / (v_j + tau^2)),
-     1/V = sum_j 1/(v_j + tau^2) [+ 1/s0^2],  m = V (sum_j ybar_j / (v_j + tau^2) [+ m0 / s0^2]).
+         p(tau | v, lambda, y) ∝ p(tau) V^(1/2) prod_j (v_j + t_j)^(-1/2) exp(-1/2 sum_j (ybar_j - m)^2 / (v_j + t_j)),
+     1/V = sum_j 1/(v_j + t_j) [+ 1/s0^2],  m = V (sum_j ybar_j / (v_j + t_j) [+ m0 / s0^2]).
      theta and mu are integrated out, which removes the tau-theta dependence that makes the
      one-at-a-time sampler crawl when tau is small against the standard errors.
-  2. mu | tau, v, y ~ N(m, V).
-  3. theta_j | mu, tau ~ N((mu v_j + ybar_j tau^2) / (v_j + tau^2), v_j tau^2 / (v_j + tau^2)).
+  2. mu | tau, v, lambda, y ~ N(m, V).
+  3. theta_j | mu, tau, lambda_j ~ N((mu v_j + ybar_j t_j) / (v_j + t_j), v_j t_j / (v_j + t_j)).
+Heavy tails (between = 1): theta_j | mu, tau, lambda_j ~ N(mu, tau^2 / lambda_j), lambda_j ~ Gamma(df/2, rate df/2),
+  so that theta_j | mu, tau, df is Student-t(df, mu, tau) (a scale mixture of normals).
+  4. df | theta, mu, tau with every lambda_j integrated out: an exact draw from its discrete
+     conditional on the grid, p(df_k) prod_j t_df_k(theta_j | mu, tau) (df = inf is the normal);
+  5. lambda_j | theta_j, mu, tau, df ~ Gamma((df + 1)/2, rate (df + (theta_j - mu)^2 / tau^2) / 2)
+     (lambda_j = 1 at df = inf). 4 then 5 is an exact partially collapsed update of (df, lambda).
 Block B, the variances given theta:
   separate: sigma_j^2 ~ Scaled-Inv-chi2(nu + n_j, (nu s^2 + M2_j + n_j (ybar_j - theta_j)^2) / (nu + n_j)),
             s^2 ~ Gamma(shape J nu / 2 + a, rate nu / 2 sum_j 1/sigma_j^2 + b),
-            nu  ~ its exact discrete conditional on the grid.
+            nu  ~ its exact discrete conditional on the grid (plus two exact moves, see below).
   shared:   sigma^2 ~ Scaled-Inv-chi2(N, (sum_j M2_j + sum_j n_j (ybar_j - theta_j)^2) / N).
   known:    no block B.
 
 A Scaled-Inv-chi2(k, S/k) draw is S / chi2(k) = S / (2 Gamma(k/2, 1)).
+
+With the normal between-group distribution the sweep consumes the random stream exactly as it did
+before heavy tails existed, draw for draw (tests/test_kernel_api.py pins the draws of a fixed seed).
 """
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numpy as np
 from numba import njit
 
 # layout of the per-chain scalar state vector
-ETA, MU, S2, NU_IDX, WIDTH, SIGMA2, JUMP_SUM, JUMP_COUNT = range(8)
-N_SCALARS = 8
+ETA, MU, S2, NU_IDX, WIDTH, SIGMA2, JUMP_SUM, JUMP_COUNT, DF_IDX = range(9)
+N_SCALARS = 9
 ETA_MIN, ETA_MAX = -40.0, 40.0  # log tau in internal units: tau from 4e-18 to 2e17 data spreads
 MAX_STEPS = 60
 LOG_BLOCK = 16  # terms multiplied (in 4 interleaved products) before one log is taken (see sum_log_shifted)
 _PROD_MIN, _PROD_MAX = 1e-300, 1e300
+_HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
 # Speed (see benchmarks/README.md). error_model="numpy" on the hot functions: a float division by
 # zero gives inf instead of raising, so numba emits no zero test per division and the elementwise
 # loops vectorise; no division here can have a zero divisor in a valid state. weighted_sums adds
 # fastmath "reassoc" only, so that its three sums vectorise (they are summed in another order, to
 # the same accuracy); no other function has any fastmath flag.
 
+WITHIN_SEPARATE, WITHIN_SHARED, WITHIN_KNOWN = 0, 1, 2
+BETWEEN_NORMAL, BETWEEN_HEAVY = 0, 1
 
-@njit(nogil=True, cache=True, error_model="numpy")
-def log_tau_density(eta, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, out):
-    """log p(eta = log tau | v, y) up to a constant, with theta and mu integrated out.
 
-    Writes m and V (the conditional mean and variance of mu given tau) into out[0], out[1].
-    Sums are taken about `shift` (the current mu) so that the quadratic form keeps its digits.
+class Data(NamedTuple):
+    """Everything a sweep reads and never writes: statistics and priors in internal units.
+
+    within: 0 separate, 1 shared, 2 known. n, ybar, m2: group sizes, means and sums of squared
+    deviations; v_known: se_j^2 (known). mu prior: kind 0 flat, 1 Normal(mu_loc, mu_scale).
+    tau prior: kind 0 flat, 1 half-normal, 2 half-Cauchy, scale tau_scale. s^2 prior Gamma(s2_shape,
+    s2_rate) (0, 0: p(s^2) ∝ 1/s^2). nu on nu_grid with log prior weights nu_logprior; nu_table and
+    layout from `prepare`. between: 0 normal, 1 heavy (Student-t by a scale mixture); df_grid (inf is
+    the normal limit) with log prior weights df_logprior and df_const[k] = log of the t density's
+    constant, lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2 (-log(2 pi)/2 at df = inf).
     """
-    if eta < ETA_MIN or eta > ETA_MAX:
-        return -np.inf
-    tau2 = math.exp(2.0 * eta)
-    # two O(J) passes: the weighted sums (vectorised) and sum_j log(v_j + tau^2) (one log per block
-    # of products); the fused loop with one log per group cost about 5x as much
-    sw, swd, swdd = weighted_sums(ybar, v, tau2, shift)
-    slog = sum_log_shifted(v, tau2)
-    if mu_kind == 1:
-        w0 = 1.0 / (mu_scale * mu_scale)
-        r0 = mu_loc - shift
-        sw += w0
-        swd += w0 * r0
-        swdd += w0 * r0 * r0
-    V = 1.0 / sw
-    mr = swd * V
-    q = swdd - sw * mr * mr
-    out[0] = shift + mr
-    out[1] = V
-    lp = eta + 0.5 * math.log(V) - 0.5 * slog - 0.5 * q  # "eta +": the Jacobian of tau = exp(eta)
-    if tau_kind == 1:
-        lp -= 0.5 * tau2 / (tau_scale * tau_scale)
-    elif tau_kind == 2:
-        lp -= math.log1p(tau2 / (tau_scale * tau_scale))
-    return lp
+
+    within: int
+    n: np.ndarray
+    ybar: np.ndarray
+    m2: np.ndarray
+    v_known: np.ndarray
+    mu_kind: int
+    mu_loc: float
+    mu_scale: float
+    tau_kind: int
+    tau_scale: float
+    s2_shape: float
+    s2_rate: float
+    nu_grid: np.ndarray
+    nu_logprior: np.ndarray
+    nu_table: np.ndarray
+    layout: np.ndarray
+    between: int
+    df_grid: np.ndarray
+    df_logprior: np.ndarray
+    df_const: np.ndarray
+
+
+class State(NamedTuple):
+    """One chain's state: the scalars (ETA ... DF_IDX), theta_j, sigma_j^2 (separate) and lambda_j (heavy)."""
+
+    scalars: np.ndarray
+    theta: np.ndarray
+    sigma2: np.ndarray
+    lam: np.ndarray
+
+
+class Work(NamedTuple):
+    """Scratch of one chain, allocated once (make_work): v_j, (m, V), nu and df weights, SS_j / 2 by size
+    class, 1/lambda_j and z_j^2 = (theta_j - mu)^2 / tau^2."""
+
+    v: np.ndarray
+    mv: np.ndarray
+    lp: np.ndarray
+    half_ss: np.ndarray
+    inv_lam: np.ndarray
+    z2: np.ndarray
+    lpd: np.ndarray
+
+
+class Draws(NamedTuple):
+    """Where stored sweeps go: row i of every array (sigma as a standard deviation, s as sqrt(s^2),
+    nu and df as their values, lam as lambda_j). Arrays of 0 rows store nothing; unused ones have 0 columns."""
+
+    mu: np.ndarray
+    tau: np.ndarray
+    theta: np.ndarray
+    sigma: np.ndarray
+    s: np.ndarray
+    nu: np.ndarray
+    df: np.ndarray
+    lam: np.ndarray
+    evals: np.ndarray
+
+
+def t_constants(df_grid: np.ndarray) -> np.ndarray:
+    """log of the Student-t density's normalising constant for each df (the normal's at df = inf)."""
+    out = np.empty(len(df_grid))
+    for k, df in enumerate(df_grid):
+        if math.isinf(df):
+            out[k] = -_HALF_LOG_2PI
+        else:
+            out[k] = math.lgamma(0.5 * (df + 1.0)) - math.lgamma(0.5 * df) - 0.5 * math.log(df * math.pi)
+    return out
+
+
+def make_work(d: Data) -> Work:
+    J = d.ybar.shape[0]
+    collapsed = d.within == WITHIN_SEPARATE and d.nu_grid.shape[0] > 1
+    heavy = d.between == BETWEEN_HEAVY
+    return Work(np.empty(J), np.empty(2), np.empty(d.nu_grid.shape[0]), np.empty(J if collapsed else 0),
+                np.ones(J if heavy else 0), np.empty(J if heavy else 0), np.empty(d.df_grid.shape[0]))
+
+
+def draws_shape(d: Data, rows: int) -> dict[str, tuple[int, ...]]:
+    """Shapes of the Draws arrays for `rows` stored sweeps of one chain."""
+    J = d.ybar.shape[0]
+    sep = d.within == WITHIN_SEPARATE
+    heavy = d.between == BETWEEN_HEAVY
+    return {"mu": (rows,), "tau": (rows,), "theta": (rows, J),
+            "sigma": (rows, J if sep else 1 if d.within == WITHIN_SHARED else 0),
+            "s": (rows if sep else 0,), "nu": (rows if sep else 0,), "df": (rows if heavy else 0,),
+            "lam": (rows, J if heavy else 0), "evals": (rows,)}
+
+
+DRAW_DTYPES: dict = {}  # every stored draw is float64 (lambda too: summary mode's running sums read the state's
+# float64 lambda_j, and both modes must give the same answers to rounding)
+
+
+def empty_draws(d: Data, rows: int) -> Draws:
+    return Draws(**{k: np.empty(s, dtype=DRAW_DTYPES.get(k, np.float64)) for k, s in draws_shape(d, rows).items()})
+
+
+def no_draws(d: Data) -> Draws:
+    """A Draws that stores nothing (0 rows), for warm-up."""
+    return empty_draws(d, 0)
+
+
+# ---------------------------------------------------------------------------------------------
+# sums over groups
 
 
 @njit(nogil=True, cache=True, error_model="numpy", fastmath={"reassoc"})
@@ -81,6 +184,21 @@ def weighted_sums(ybar, v, tau2, shift):
     swdd = 0.0
     for j in range(ybar.shape[0]):
         w = 1.0 / (v[j] + tau2)
+        r = ybar[j] - shift
+        sw += w
+        swd += w * r
+        swdd += w * r * r
+    return sw, swd, swdd
+
+
+@njit(nogil=True, cache=True, error_model="numpy", fastmath={"reassoc"})
+def weighted_sums_scaled(ybar, v, il, tau2, shift):
+    """weighted_sums with w_j = 1 / (v_j + tau^2 il_j): the heavy-tailed model, il_j = 1 / lambda_j."""
+    sw = 0.0
+    swd = 0.0
+    swdd = 0.0
+    for j in range(ybar.shape[0]):
+        w = 1.0 / (v[j] + tau2 * il[j])
         r = ybar[j] - shift
         sw += w
         swd += w * r
@@ -121,19 +239,88 @@ def sum_log_shifted(x, c):
     return total
 
 
+@njit(nogil=True, cache=True, error_model="numpy")
+def sum_log_scaled(x, il, c):
+    """sum_j log(x_j + c il_j), one log per block of LOG_BLOCK products (see sum_log_shifted)."""
+    J = x.shape[0]
+    total = 0.0
+    top = J - J % LOG_BLOCK
+    for b in range(0, top, LOG_BLOCK):
+        p0 = 1.0
+        p1 = 1.0
+        p2 = 1.0
+        p3 = 1.0
+        for j in range(b, b + LOG_BLOCK, 4):
+            p0 *= x[j] + c * il[j]
+            p1 *= x[j + 1] + c * il[j + 1]
+            p2 *= x[j + 2] + c * il[j + 2]
+            p3 *= x[j + 3] + c * il[j + 3]
+        prod = (p0 * p1) * (p2 * p3)
+        if prod > _PROD_MIN and prod < _PROD_MAX:
+            total += math.log(prod)
+        else:
+            for j in range(b, b + LOG_BLOCK):
+                total += math.log(x[j] + c * il[j])
+    for j in range(top, J):
+        total += math.log(x[j] + c * il[j])
+    return total
+
+
 @njit(nogil=True, cache=True)
 def sum_log(x):
     """sum_j log(x_j) for x_j > 0 (see sum_log_shifted)."""
     return sum_log_shifted(x, 0.0)
 
 
+# ---------------------------------------------------------------------------------------------
+# block A
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def log_tau_density(eta, d, v, il, shift, out):
+    """log p(eta = log tau | v, lambda, y) up to a constant, with theta and mu integrated out.
+
+    il holds 1/lambda_j (heavy tails; ignored for the normal model). Writes m and V (the conditional
+    mean and variance of mu given tau) into out[0], out[1]. Sums are taken about `shift` (the
+    current mu) so that the quadratic form keeps its digits.
+    """
+    if eta < ETA_MIN or eta > ETA_MAX:
+        return -np.inf
+    tau2 = math.exp(2.0 * eta)
+    # two O(J) passes: the weighted sums (vectorised) and sum_j log(v_j + t_j) (one log per block
+    # of products); the fused loop with one log per group cost about 5x as much
+    if d.between == BETWEEN_HEAVY:
+        sw, swd, swdd = weighted_sums_scaled(d.ybar, v, il, tau2, shift)
+        slog = sum_log_scaled(v, il, tau2)
+    else:
+        sw, swd, swdd = weighted_sums(d.ybar, v, tau2, shift)
+        slog = sum_log_shifted(v, tau2)
+    if d.mu_kind == 1:
+        w0 = 1.0 / (d.mu_scale * d.mu_scale)
+        r0 = d.mu_loc - shift
+        sw += w0
+        swd += w0 * r0
+        swdd += w0 * r0 * r0
+    V = 1.0 / sw
+    mr = swd * V
+    q = swdd - sw * mr * mr
+    out[0] = shift + mr
+    out[1] = V
+    lp = eta + 0.5 * math.log(V) - 0.5 * slog - 0.5 * q  # "eta +": the Jacobian of tau = exp(eta)
+    if d.tau_kind == 1:
+        lp -= 0.5 * tau2 / (d.tau_scale * d.tau_scale)
+    elif d.tau_kind == 2:
+        lp -= math.log1p(tau2 / (d.tau_scale * d.tau_scale))
+    return lp
+
+
 @njit(nogil=True, cache=True)
-def slice_eta(rng, eta0, width, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, mv):
+def slice_eta(rng, eta0, width, d, v, il, shift, mv):
     """One slice-sampling update of eta (stepping out, then shrinkage). Returns (eta, evaluations).
 
     On return mv holds (m, V) evaluated at the returned eta.
     """
-    f0 = log_tau_density(eta0, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, mv)
+    f0 = log_tau_density(eta0, d, v, il, shift, mv)
     level = f0 - rng.standard_exponential()
     evals = 1
     left = eta0 - width * rng.random()
@@ -143,19 +330,19 @@ def slice_eta(rng, eta0, width, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_k
     # every evaluation is counted, the one that ends a stepping-out loop included
     while steps_left > 0:
         evals += 1
-        if not log_tau_density(left, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, mv) > level:
+        if not log_tau_density(left, d, v, il, shift, mv) > level:
             break
         left -= width
         steps_left -= 1
     while steps_right > 0:
         evals += 1
-        if not log_tau_density(right, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, mv) > level:
+        if not log_tau_density(right, d, v, il, shift, mv) > level:
             break
         right += width
         steps_right -= 1
     while True:
         eta1 = left + (right - left) * rng.random()
-        f1 = log_tau_density(eta1, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, mv)
+        f1 = log_tau_density(eta1, d, v, il, shift, mv)
         evals += 1
         if f1 > level:
             return eta1, evals
@@ -164,67 +351,152 @@ def slice_eta(rng, eta0, width, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_k
         else:
             right = eta1
         if right - left < 1e-12:  # numerically collapsed: keep the current point (a valid draw)
-            log_tau_density(eta0, ybar, v, shift, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, mv)
+            log_tau_density(eta0, d, v, il, shift, mv)
             return eta0, evals
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def fill_v(within, n, v_known, state, sigma2, v):
+def fill_v(d, scalars, sigma2, v):
     """v_j = sigma_j^2 / n_j (separate), sigma^2 / n_j (shared) or se_j^2 (known)."""
     J = v.shape[0]
-    if within == 0:
+    if d.within == WITHIN_SEPARATE:
         for j in range(J):
-            v[j] = sigma2[j] / n[j]
-    elif within == 1:
+            v[j] = sigma2[j] / d.n[j]
+    elif d.within == WITHIN_SHARED:
         for j in range(J):
-            v[j] = state[SIGMA2] / n[j]
+            v[j] = scalars[SIGMA2] / d.n[j]
     else:
         for j in range(J):
-            v[j] = v_known[j]
+            v[j] = d.v_known[j]
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv):
-    """(tau, mu, theta) jointly given v: slice update of log tau, then mu | tau, then theta | mu, tau.
-
-    Returns the number of density evaluations the slice update used.
-    """
-    eta_old = state[ETA]
-    eta, ev = slice_eta(rng, eta_old, state[WIDTH], ybar, v, state[MU], mu_kind, mu_loc, mu_scale,
-                        tau_kind, tau_scale, mv)
-    state[ETA] = eta
+def block_a(rng, adapt, d, st, wk):
+    """(tau, mu, theta) jointly given v (wk.v) and lambda (wk.inv_lam): slice update of log tau, then
+    mu | tau, then theta | mu, tau. Returns the number of density evaluations the slice update used."""
+    sc = st.scalars
+    v = wk.v
+    mv = wk.mv
+    eta_old = sc[ETA]
+    eta, ev = slice_eta(rng, eta_old, sc[WIDTH], d, v, wk.inv_lam, sc[MU], mv)
+    sc[ETA] = eta
     if adapt:
-        state[JUMP_SUM] += abs(eta - eta_old)
-        state[JUMP_COUNT] += 1.0
-        if state[JUMP_COUNT] >= 20.0:
-            state[WIDTH] = min(10.0, max(0.02, 3.0 * state[JUMP_SUM] / state[JUMP_COUNT]))
+        sc[JUMP_SUM] += abs(eta - eta_old)
+        sc[JUMP_COUNT] += 1.0
+        if sc[JUMP_COUNT] >= 20.0:
+            sc[WIDTH] = min(10.0, max(0.02, 3.0 * sc[JUMP_SUM] / sc[JUMP_COUNT]))
     mu = mv[0] + math.sqrt(mv[1]) * rng.standard_normal()
-    state[MU] = mu
+    sc[MU] = mu
     tau2 = math.exp(2.0 * eta)
-    for j in range(ybar.shape[0]):
-        inv_d = 1.0 / (v[j] + tau2)  # one division serves the mean and the variance
-        theta[j] = (mu * v[j] + ybar[j] * tau2) * inv_d + math.sqrt(v[j] * tau2 * inv_d) * rng.standard_normal()
+    theta = st.theta
+    ybar = d.ybar
+    if d.between == BETWEEN_HEAVY:
+        il = wk.inv_lam
+        for j in range(ybar.shape[0]):
+            t = tau2 * il[j]
+            inv_d = 1.0 / (v[j] + t)
+            theta[j] = (mu * v[j] + ybar[j] * t) * inv_d + math.sqrt(v[j] * t * inv_d) * rng.standard_normal()
+    else:
+        for j in range(ybar.shape[0]):
+            inv_d = 1.0 / (v[j] + tau2)  # one division serves the mean and the variance
+            theta[j] = (mu * v[j] + ybar[j] * tau2) * inv_d + math.sqrt(v[j] * tau2 * inv_d) * rng.standard_normal()
     return ev
 
 
+# ---------------------------------------------------------------------------------------------
+# heavy tails: df and lambda
+
+
 @njit(nogil=True, cache=True, error_model="numpy")
-def block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp):
+def df_loglik(k, d, z2, sz, J):
+    """log p(df_k) + sum_j log t_df_k(z_j), z_j = (theta_j - mu) / tau, every lambda_j integrated out
+    (the -log tau per group is the same for every df and left out):
+
+        log t_df(z) = c(df) - (df + 1)/2 log(1 + z^2 / df),   c(df) = lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2,
+
+    summed as J c + J (df+1)/2 log df - (df+1)/2 sum_j log(df + z_j^2) (one log per block of products);
+    at df = inf the normal, J c - sum_j z_j^2 / 2. sz is sum_j z_j^2.
+    """
+    df = d.df_grid[k]
+    if math.isinf(df):
+        return d.df_logprior[k] + J * d.df_const[k] - 0.5 * sz
+    h = 0.5 * (df + 1.0)
+    return d.df_logprior[k] + J * (d.df_const[k] + h * math.log(df)) - h * sum_log_shifted(z2, df)
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def tail_step(rng, d, st, wk):
+    """df | theta, mu, tau (lambda integrated out; an exact draw on the grid), then every lambda_j | df."""
+    sc = st.scalars
+    theta = st.theta
+    z2 = wk.z2
+    J = theta.shape[0]
+    mu = sc[MU]
+    inv_tau2 = math.exp(-2.0 * sc[ETA])
+    sz = 0.0
+    for j in range(J):
+        r = theta[j] - mu
+        z2[j] = r * r * inv_tau2
+        sz += z2[j]
+    K = d.df_grid.shape[0]
+    if K > 1:
+        lp = wk.lpd
+        top = -np.inf
+        for k in range(K):
+            lp[k] = df_loglik(k, d, z2, sz, J)
+            top = max(top, lp[k])
+        total = 0.0
+        for k in range(K):
+            lp[k] = math.exp(lp[k] - top)
+            total += lp[k]
+        u = rng.random() * total
+        k_new = K - 1
+        acc = 0.0
+        for k in range(K):
+            acc += lp[k]
+            if u < acc:
+                k_new = k
+                break
+        sc[DF_IDX] = k_new
+    df = d.df_grid[int(sc[DF_IDX])]
+    lam = st.lam
+    il = wk.inv_lam
+    if math.isinf(df):
+        for j in range(J):
+            lam[j] = 1.0
+            il[j] = 1.0
+        return
+    a = 0.5 * (df + 1.0)
+    for j in range(J):
+        x = 2.0 * rng.standard_gamma(a) / (df + z2[j])
+        lam[j] = x
+        il[j] = 1.0 / x
+
+
+# ---------------------------------------------------------------------------------------------
+# block B
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def block_b(rng, d, scalars, theta, sigma2, lp):
     """The variances given theta: sigma_j^2, s^2 and nu (separate) or sigma^2 (shared); nothing for known."""
+    ybar, n, m2 = d.ybar, d.n, d.m2
+    nu_grid, nu_logprior = d.nu_grid, d.nu_logprior
     J = ybar.shape[0]
     K = nu_grid.shape[0]
-    if within == 0:
-        nu = nu_grid[int(state[NU_IDX])]
-        nus2 = nu * state[S2]
+    if d.within == WITHIN_SEPARATE:
+        nu = nu_grid[int(scalars[NU_IDX])]
+        nus2 = nu * scalars[S2]
         inv_sum = 0.0
         for j in range(J):
             r = ybar[j] - theta[j]
             ss = nus2 + m2[j] + n[j] * r * r
             sigma2[j] = ss / (2.0 * rng.standard_gamma(0.5 * (nu + n[j])))
             inv_sum += 1.0 / sigma2[j]
-        state[S2] = rng.standard_gamma(0.5 * J * nu + s2_shape) / (0.5 * nu * inv_sum + s2_rate)
+        scalars[S2] = rng.standard_gamma(0.5 * J * nu + d.s2_shape) / (0.5 * nu * inv_sum + d.s2_rate)
         if K > 1:
             log_sum = sum_log(sigma2)
-            s2 = state[S2]
+            s2 = scalars[S2]
             top = -np.inf
             for k in range(K):
                 h = 0.5 * nu_grid[k]
@@ -243,15 +515,15 @@ def block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, s
                 if u < acc:
                     k_new = k
                     break
-            state[NU_IDX] = k_new
-    elif within == 1:
+            scalars[NU_IDX] = k_new
+    elif d.within == WITHIN_SHARED:
         ss = 0.0
         n_tot = 0.0
         for j in range(J):
             r = ybar[j] - theta[j]
             ss += m2[j] + n[j] * r * r
             n_tot += n[j]
-        state[SIGMA2] = ss / (2.0 * rng.standard_gamma(0.5 * n_tot))
+        scalars[SIGMA2] = ss / (2.0 * rng.standard_gamma(0.5 * n_tot))
 
 
 @njit(nogil=True, cache=True)
@@ -313,11 +585,10 @@ def size_classes(n, pos, starts, sizes):
 
 
 def prepare(n: np.ndarray, nu_grid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """What `sweeps` needs beyond the statistics and priors, computed once per problem (not per call:
-    at 1e6 groups the sampler calls sweeps once per sweep): the lgamma table of the collapsed nu
-    move and the groups' size layout, one int64 array [C, starts (C + 1), sizes (C), pos (J)] from
-    size_classes, or [-1] (sums group by group) when the sizes are not whole numbers or the classes
-    hold fewer than LOG_BLOCK groups on average."""
+    """What a sweep needs beyond the statistics and priors, computed once per problem: the lgamma
+    table of the collapsed nu move and the groups' size layout, one int64 array [C, starts (C + 1),
+    sizes (C), pos (J)] from size_classes, or [-1] (sums group by group) when the sizes are not whole
+    numbers or the classes hold fewer than LOG_BLOCK groups on average."""
     n = np.ascontiguousarray(n, dtype=np.float64)
     nu_grid = np.ascontiguousarray(nu_grid, dtype=np.float64)
     table = np.empty(nu_grid.shape[0])
@@ -355,35 +626,43 @@ def collapsed_nu_loglik(k, J, nu_grid, nu_logprior, table, s2, n, half_ss, n_cla
 
 
 @njit(nogil=True, cache=True)
-def collapsed_nu_step(rng, n, ybar, m2, nu_grid, nu_logprior, table, state, theta, half_ss, n_classes, pos, starts,
-                      sizes):
+def collapsed_nu_step(rng, d, scalars, theta, half_ss):
     """Metropolis move of nu to a neighbouring grid point, with the sigma_j^2 integrated out.
 
     With many groups the sigma_j^2 pin nu down, so the draw of nu given them barely moves; this
     move targets p(nu | s^2, theta, y) instead. It must be followed at once by the draw of every
     sigma_j^2 given the new nu (block_b does that first), which makes the pair an exact
     partially collapsed update of (nu, sigma^2). The proposal (k - 1 or k + 1, each with
-    probability 1/2; off the grid is rejected) is symmetric. n_classes, pos, starts and sizes come
-    from size_classes (n_classes = -1: group by group); half_ss is work space of J numbers.
+    probability 1/2; off the grid is rejected) is symmetric. The size classes come from d.layout
+    (n_classes = -1: group by group); half_ss is work space of J numbers.
     """
+    n, ybar, m2 = d.n, d.ybar, d.m2
+    layout = d.layout
+    n_classes = layout[0]
+    c = max(n_classes, 0)
+    starts = layout[1:c + 2]
+    sizes = layout[c + 2:2 * c + 2]
+    pos = layout[2 * c + 2:]
     J = n.shape[0]
-    K = nu_grid.shape[0]
-    k = int(state[NU_IDX])
+    K = d.nu_grid.shape[0]
+    k = int(scalars[NU_IDX])
     k_new = k - 1 if rng.random() < 0.5 else k + 1
     if k_new < 0 or k_new >= K:
         return
     for j in range(J):
         r = ybar[j] - theta[j]
         half_ss[pos[j] if n_classes >= 0 else j] = 0.5 * (m2[j] + n[j] * r * r)
-    s2 = state[S2]
-    diff = (collapsed_nu_loglik(k_new, J, nu_grid, nu_logprior, table, s2, n, half_ss, n_classes, starts, sizes)
-            - collapsed_nu_loglik(k, J, nu_grid, nu_logprior, table, s2, n, half_ss, n_classes, starts, sizes))
+    s2 = scalars[S2]
+    diff = (collapsed_nu_loglik(k_new, J, d.nu_grid, d.nu_logprior, d.nu_table, s2, n, half_ss, n_classes, starts,
+                                sizes)
+            - collapsed_nu_loglik(k, J, d.nu_grid, d.nu_logprior, d.nu_table, s2, n, half_ss, n_classes, starts,
+                                  sizes))
     if math.log(rng.random()) < diff:
-        state[NU_IDX] = k_new
+        scalars[NU_IDX] = k_new
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2):
+def scale_step(rng, d, scalars, theta, sigma2):
     """Rescale s^2 and every sigma_j^2 by one factor c drawn from its conditional (a group move).
 
     Under (s^2, sigma_j^2) -> (c s^2, c sigma_j^2), with the Jacobian c^(J+1) and the invariant
@@ -393,6 +672,7 @@ def scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2):
     the inverse gamma is an independence proposal, accepted with min(1, w(c) / w(1)),
     w(c) = c^a exp(-b c s^2). It moves the common scale that the Gibbs draws shift only slowly.
     """
+    n, ybar, m2 = d.n, d.ybar, d.m2
     J = n.shape[0]
     A = 0.0
     n_tot = 0.0
@@ -403,62 +683,65 @@ def scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2):
     if A <= 0.0:
         return
     c = A / rng.standard_gamma(0.5 * n_tot)
-    if s2_shape > 0.0 or s2_rate > 0.0:
-        s2 = state[S2]
-        log_w = s2_shape * math.log(c) - s2_rate * s2 * (c - 1.0)
+    if d.s2_shape > 0.0 or d.s2_rate > 0.0:
+        s2 = scalars[S2]
+        log_w = d.s2_shape * math.log(c) - d.s2_rate * s2 * (c - 1.0)
         if math.log(rng.random()) >= log_w:
             return
-    state[S2] *= c
+    scalars[S2] *= c
     for j in range(J):
         sigma2[j] *= c
 
 
+# ---------------------------------------------------------------------------------------------
+# the sweep
+
+
 @njit(nogil=True, cache=True)
-def sweeps(rng, n_sweeps, adapt, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-           s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2,
-           out_mu, out_tau, out_theta, out_sigma, out_s, out_nu, out_evals, offset):
-    """Run `n_sweeps` sweeps from `state`, `theta` and `sigma2` (updated in place).
+def sweep(rng, adapt, d, st, wk):
+    """One sweep from `st` (updated in place). Returns the slice update's density evaluations."""
+    fill_v(d, st.scalars, st.sigma2, wk.v)
+    ev = block_a(rng, adapt, d, st, wk)
+    if d.between == BETWEEN_HEAVY:
+        tail_step(rng, d, st, wk)
+    if d.within == WITHIN_SEPARATE:
+        if d.nu_grid.shape[0] > 1:
+            collapsed_nu_step(rng, d, st.scalars, st.theta, wk.half_ss)
+        block_b(rng, d, st.scalars, st.theta, st.sigma2, wk.lp)
+        scale_step(rng, d, st.scalars, st.theta, st.sigma2)
+    else:
+        block_b(rng, d, st.scalars, st.theta, st.sigma2, wk.lp)
+    return ev
 
-    nu_table and layout are `prepare(n, nu_grid)` (used by `separate` with a grid of nu only).
 
-    When out_mu has rows, sweep i writes row offset + i of every out_* array (sigma as a standard
-    deviation, s as sqrt(s^2), nu as its value). With adapt set (warm-up), the slice width follows
-    three times the mean absolute jump of log tau.
-    """
-    J = ybar.shape[0]
-    v = np.empty(J)
-    mv = np.empty(2)
-    lp = np.empty(nu_grid.shape[0])
-    store = out_mu.shape[0] > 0
-    collapsed = within == 0 and nu_grid.shape[0] > 1
-    ss = np.empty(J if collapsed else 0)
-    n_classes = layout[0]
-    c = max(n_classes, 0)
-    starts = layout[1:c + 2]
-    sizes = layout[c + 2:2 * c + 2]
-    pos = layout[2 * c + 2:]
+@njit(nogil=True, cache=True)
+def store(d, st, ev, out, row):
+    """Write the state after a sweep into row `row` of the Draws."""
+    sc = st.scalars
+    J = st.theta.shape[0]
+    out.mu[row] = sc[MU]
+    out.tau[row] = math.exp(sc[ETA])
+    for j in range(J):
+        out.theta[row, j] = st.theta[j]
+    if d.within == WITHIN_SEPARATE:
+        for j in range(J):
+            out.sigma[row, j] = math.sqrt(st.sigma2[j])
+        out.s[row] = math.sqrt(sc[S2])
+        out.nu[row] = d.nu_grid[int(sc[NU_IDX])]
+    elif d.within == WITHIN_SHARED:
+        out.sigma[row, 0] = math.sqrt(sc[SIGMA2])
+    if d.between == BETWEEN_HEAVY:
+        out.df[row] = d.df_grid[int(sc[DF_IDX])]
+        for j in range(J):
+            out.lam[row, j] = st.lam[j]
+    out.evals[row] = ev
+
+
+@njit(nogil=True, cache=True)
+def sweeps(rng, n_sweeps, adapt, d, st, wk, out, offset):
+    """Run `n_sweeps` sweeps from `st`; when out has rows, sweep i is stored in row offset + i."""
+    keep = out.mu.shape[0] > 0
     for it in range(n_sweeps):
-        fill_v(within, n, v_known, state, sigma2, v)
-        ev = block_a(rng, adapt, ybar, v, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale, state, theta, mv)
-        if within == 0:
-            if nu_grid.shape[0] > 1:
-                collapsed_nu_step(rng, n, ybar, m2, nu_grid, nu_logprior, nu_table, state, theta, ss, n_classes, pos,
-                                  starts, sizes)
-            block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
-            scale_step(rng, n, ybar, m2, s2_shape, s2_rate, state, theta, sigma2)
-        else:
-            block_b(rng, within, n, ybar, m2, s2_shape, s2_rate, nu_grid, nu_logprior, state, theta, sigma2, lp)
-        if store:
-            row = offset + it
-            out_mu[row] = state[MU]
-            out_tau[row] = math.exp(state[ETA])
-            for j in range(J):
-                out_theta[row, j] = theta[j]
-            if within == 0:
-                for j in range(J):
-                    out_sigma[row, j] = math.sqrt(sigma2[j])
-                out_s[row] = math.sqrt(state[S2])
-                out_nu[row] = nu_grid[int(state[NU_IDX])]
-            elif within == 1:
-                out_sigma[row, 0] = math.sqrt(state[SIGMA2])
-            out_evals[row] = ev
+        ev = sweep(rng, adapt, d, st, wk)
+        if keep:
+            store(d, st, ev, out, offset + it)

@@ -1,7 +1,10 @@
-"""Model specifications: the within-group variance structure and the priors, as frozen values.
+"""Model specifications: the within-group variance structure, the between-group distribution and the
+priors, as frozen values.
 
     level 1   y_ij    ~ N(theta_j, sigma_j^2)
-    level 2   theta_j ~ N(mu, tau^2)
+    level 2   theta_j ~ N(mu, tau^2)                                       (between = normal)
+              theta_j ~ N(mu, tau^2 / lambda_j), lambda_j ~ Gamma(df/2, rate df/2)  (between = heavy:
+              a Student-t with df degrees of freedom, centre mu and scale tau, as a scale mixture)
 
 Structures for the within-group variance:
 
@@ -18,11 +21,15 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .errors import ModelError
 from .stats import GroupStats, _show, check_unicode_twins
+
+if TYPE_CHECKING:
+    from . import kernel
 
 # ---------------------------------------------------------------------------------------------
 # priors
@@ -117,13 +124,133 @@ class NuGrid:
 
 STRUCTURES = ("separate", "shared", "known")
 
+# ---------------------------------------------------------------------------------------------
+# the between-group distribution
+
+
+def _gamma2_cdf(x: float, rate: float) -> float:
+    """CDF of Gamma(shape 2, rate): 1 - exp(-rate x) (1 + rate x)."""
+    if math.isinf(x):
+        return 1.0
+    return 1.0 - math.exp(-rate * x) * (1.0 + rate * x)
+
+
+DF_PRIOR_RATE = 0.1
+DF_NORMAL_FROM = 40.0  # prior mass of df above this goes to df = inf (the normal limit)
+DEFAULT_DF_GRID = (1.0, 1.5, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 24.0, 32.0, math.inf)
+
+
+def gamma_df_weights(grid: tuple[float, ...], rate: float = DF_PRIOR_RATE, normal_from: float = DF_NORMAL_FROM
+                     ) -> tuple[float, ...]:
+    """Prior weights on a df grid from the Gamma(2, rate) density on df: each finite point gets the mass of
+    its cell (edges at the geometric midpoints between neighbours; the first cell from 0, the last finite
+    one up to `normal_from`), and df = inf gets the mass above `normal_from`."""
+    finite = [g for g in grid if not math.isinf(g)]
+    edges = [0.0] + [math.sqrt(a * b) for a, b in zip(finite, finite[1:])] + [normal_from]
+    out = []
+    for g in grid:
+        if math.isinf(g):
+            out.append(1.0 - _gamma2_cdf(normal_from, rate))
+        else:
+            i = finite.index(g)
+            out.append(_gamma2_cdf(edges[i + 1], rate) - _gamma2_cdf(edges[i], rate))
+    return tuple(out)
+
+
+@dataclass(frozen=True)
+class NormalBetween:
+    """theta_j | mu, tau ~ N(mu, tau^2): the normal between-group distribution."""
+
+    def describe(self) -> str:
+        return "normal: theta_j ~ N(mu, tau^2)"
+
+    @property
+    def name(self) -> str:
+        return "normal"
+
+
+@dataclass(frozen=True)
+class HeavyBetween:
+    """theta_j | mu, tau, lambda_j ~ N(mu, tau^2 / lambda_j), lambda_j ~ Gamma(df/2, rate df/2): theta_j is
+    Student-t(df) about mu with scale tau, so that one far group neither drags the others nor is dragged.
+
+    df: a fixed number of degrees of freedom, or None to learn it on `grid` (inf is the normal limit)
+    with prior `weights` (default: Gamma(2, rate 0.1) on df, discretised on the grid; see README).
+    """
+
+    df: float | None = None
+    grid: tuple[float, ...] = DEFAULT_DF_GRID
+    weights: tuple[float, ...] | None = None
+
+    def __post_init__(self):
+        if self.df is not None:
+            if not (isinstance(self.df, (int, float)) and not math.isnan(self.df) and self.df > 0):
+                raise ModelError(f"bad model: the degrees of freedom of the between-group distribution must be a "
+                                 f"number above 0 (or inf for the normal); found {self.df!r}")
+            return
+        vals = tuple(float(x) for x in self.grid)
+        if not vals or any(math.isnan(x) or x <= 0 for x in vals) or len(set(vals)) != len(vals):
+            raise ModelError(f"bad model: the df grid must hold distinct numbers above 0 (inf allowed); found {self.grid}")
+        object.__setattr__(self, "grid", vals)
+        if self.weights is not None:
+            w = tuple(float(x) for x in self.weights)
+            if len(w) != len(vals) or any(not math.isfinite(x) or x < 0 for x in w) or sum(w) <= 0:
+                raise ModelError("bad model: the df grid weights must be one non-negative number per grid point, "
+                                 f"not all zero; found {self.weights}")
+            object.__setattr__(self, "weights", w)
+
+    @property
+    def name(self) -> str:
+        return "heavy" if self.df is None else f"heavy:{self.df:g}"
+
+    def grid_and_weights(self) -> tuple[tuple[float, ...], tuple[float, ...]]:
+        if self.df is not None:
+            return (float(self.df),), (1.0,)
+        w = self.weights if self.weights is not None else gamma_df_weights(self.grid)
+        return self.grid, w
+
+    def describe(self) -> str:
+        if self.df is not None:
+            return f"heavy tails: theta_j ~ Student-t(df = {self.df:g}, mu, tau), df fixed"
+        grid, w = self.grid_and_weights()
+        points = ", ".join("inf" if math.isinf(g) else f"{g:g}" for g in grid)
+        if self.weights is None:
+            how = (f"prior weights from Gamma(2, rate {DF_PRIOR_RATE:g}) on df over each point's cell, the mass above "
+                   f"{DF_NORMAL_FROM:g} on df = inf (the normal); P(df = inf) = {w[-1]:.3f}" if math.isinf(grid[-1]) else
+                   f"prior weights from Gamma(2, rate {DF_PRIOR_RATE:g}) on df over each point's cell")
+        else:
+            how = "prior weights " + ", ".join(f"{x:g}" for x in w)
+        return f"heavy tails: theta_j ~ Student-t(df, mu, tau), df learned on the grid {{{points}}}; {how}"
+
+
+def parse_between(text) -> NormalBetween | HeavyBetween:
+    """'normal', 'heavy' (df learned) or 'heavy:DF' (df fixed; 'heavy:inf' is the normal limit as a t model)."""
+    if isinstance(text, (NormalBetween, HeavyBetween)):
+        return text
+    if not isinstance(text, str):
+        raise ModelError(f"bad model: the between-group distribution must be normal, heavy or heavy:DF; found {text!r}")
+    t = text.strip().lower()
+    if t == "normal":
+        return NormalBetween()
+    if t == "heavy":
+        return HeavyBetween()
+    if t.startswith("heavy:"):
+        raw = t[6:]
+        try:
+            df = float(raw)
+        except ValueError:
+            raise ModelError(f"bad model: heavy:DF needs a number of degrees of freedom after ':'; found '{text}'") from None
+        return HeavyBetween(df=df)
+    raise ModelError(f"bad model: the between-group distribution must be normal, heavy or heavy:DF; found '{text}'")
+
 
 @dataclass(frozen=True)
 class Model:
     """A complete specification: within-group structure and every prior. Defaults are stated here.
 
-    Defaults: mu flat; tau flat (needs at least 3 groups); s^2 ∝ 1/s^2; nu on the grid
-    DEFAULT_NU_GRID with equal weights; shared log sigma flat.
+    Defaults: between heavy (Student-t, df learned on DEFAULT_DF_GRID with Gamma(2, 0.1) prior weights);
+    mu flat; tau flat (needs at least 3 groups); s^2 ∝ 1/s^2; nu on the grid DEFAULT_NU_GRID with equal
+    weights; shared log sigma flat. `between` also takes the strings 'normal', 'heavy' and 'heavy:DF'.
     """
 
     within: str = "separate"
@@ -131,8 +258,10 @@ class Model:
     tau: Flat | HalfNormal | HalfCauchy = field(default_factory=Flat)
     s2: Reciprocal | Gamma = field(default_factory=Reciprocal)
     nu: NuFixed | NuGrid = field(default_factory=NuGrid)
+    between: NormalBetween | HeavyBetween | str = field(default_factory=HeavyBetween)
 
     def __post_init__(self):
+        object.__setattr__(self, "between", parse_between(self.between))
         if self.within not in STRUCTURES:
             raise ModelError(f"bad model: within-group structure must be one of {', '.join(STRUCTURES)}; found '{self.within}'")
         if not isinstance(self.mu, (Flat, Normal)):
@@ -164,7 +293,7 @@ class Model:
 
     def priors(self) -> dict[str, str]:
         """Plain statements of every prior in force, for summaries and reports."""
-        out = {"mu": self.mu.describe(), "tau": self.tau.describe()}
+        out = {"between": self.between.describe(), "mu": self.mu.describe(), "tau": self.tau.describe()}
         if self.within == "separate":
             out["s2"] = self.s2.describe()
             out["nu"] = self.nu.describe()
@@ -180,21 +309,39 @@ class Model:
             d["kind"] = type(p).__name__
             return d
 
-        return {"within": self.within, "mu": enc(self.mu), "tau": enc(self.tau), "s2": enc(self.s2), "nu": enc(self.nu)}
+        def enc_between(b):
+            d = enc(b)
+            for key in ("df", "grid"):  # inf is not JSON: written as the string "inf"
+                if key == "df" and d.get("df") is not None and math.isinf(d["df"]):
+                    d["df"] = "inf"
+                if key == "grid" and "grid" in d:
+                    d["grid"] = ["inf" if math.isinf(g) else g for g in d["grid"]]
+            return d
+
+        return {"within": self.within, "between": enc_between(self.between), "mu": enc(self.mu), "tau": enc(self.tau),
+                "s2": enc(self.s2), "nu": enc(self.nu)}
 
     @staticmethod
     def from_dict(d: dict) -> "Model":
-        kinds = {c.__name__: c for c in (Flat, Normal, HalfNormal, HalfCauchy, Reciprocal, Gamma, NuFixed, NuGrid)}
+        """The inverse of to_dict. A record without 'between' (written before heavy tails existed) was a normal fit."""
+        kinds = {c.__name__: c for c in (Flat, Normal, HalfNormal, HalfCauchy, Reciprocal, Gamma, NuFixed, NuGrid,
+                                         NormalBetween, HeavyBetween)}
+
+        def num(v):
+            return math.inf if v == "inf" else v
 
         def dec(x):
             x = dict(x)
             cls = kinds[x.pop("kind")]
             for k, v in x.items():
                 if isinstance(v, list):
-                    x[k] = tuple(v)
+                    x[k] = tuple(num(e) for e in v)
+                else:
+                    x[k] = num(v)
             return cls(**x)
 
-        return Model(d["within"], dec(d["mu"]), dec(d["tau"]), dec(d["s2"]), dec(d["nu"]))
+        between = dec(d["between"]) if "between" in d else NormalBetween()
+        return Model(d["within"], dec(d["mu"]), dec(d["tau"]), dec(d["s2"]), dec(d["nu"]), between=between)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -207,43 +354,64 @@ WITHIN_CODE = {"separate": 0, "shared": 1, "known": 2}
 
 @dataclass(frozen=True, eq=False)
 class Problem:
-    """Data and priors in internal units: y' = (y - center) / scale. Arrays are float64.
-
-    For `known`, v holds se_j^2 in internal units and n/m2 are unused.
-    """
+    """Data and priors in internal units, y' = (y - center) / scale, as the kernel reads them (`data`, one
+    kernel.Data), with the statistics and the specification they came from."""
 
     model: Model
     stats: GroupStats
     center: float
     scale: float
-    n: np.ndarray
-    ybar: np.ndarray
-    m2: np.ndarray
-    v_known: np.ndarray
-    within_code: int
-    mu_kind: int
-    mu_loc: float
-    mu_scale: float
-    tau_kind: int
-    tau_scale: float
-    s2_shape: float
-    s2_rate: float
-    nu_grid: np.ndarray
-    nu_logprior: np.ndarray
-    nu_table: np.ndarray = None  # kernel.prepare(n, nu_grid): computed once here, read by every sweep
-    layout: np.ndarray = None
-
-    def __post_init__(self):
-        if self.nu_table is None or self.layout is None:
-            from .kernel import prepare
-
-            table, layout = prepare(self.n, self.nu_grid)
-            object.__setattr__(self, "nu_table", table)
-            object.__setattr__(self, "layout", layout)
+    data: "kernel.Data"
 
     @property
     def J(self) -> int:
         return self.stats.J
+
+    # the statistics in internal units, read by the sampler's starting points and the reporter
+    @property
+    def n(self) -> np.ndarray:
+        return self.data.n
+
+    @property
+    def ybar(self) -> np.ndarray:
+        return self.data.ybar
+
+    @property
+    def m2(self) -> np.ndarray:
+        return self.data.m2
+
+    @property
+    def v_known(self) -> np.ndarray:
+        return self.data.v_known
+
+    @property
+    def within_code(self) -> int:
+        return self.data.within
+
+    @property
+    def nu_grid(self) -> np.ndarray:
+        return self.data.nu_grid
+
+    @property
+    def df_grid(self) -> np.ndarray:
+        return self.data.df_grid
+
+    @property
+    def heavy(self) -> bool:
+        return self.data.between == 1
+
+    def subset(self, idx) -> "Problem":
+        """The same problem restricted to the groups at positions `idx` (the same centre, scale and priors):
+        what the answers of a subset of groups (summary mode's kept groups) are computed against."""
+        from . import kernel
+
+        idx = np.asarray(idx, dtype=np.int64)
+        d = self.data
+        n = np.ascontiguousarray(d.n[idx])
+        table, layout = kernel.prepare(n, d.nu_grid)
+        data = d._replace(n=n, ybar=np.ascontiguousarray(d.ybar[idx]), m2=np.ascontiguousarray(d.m2[idx]),
+                          v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout)
+        return Problem(self.model, self.stats.subset(idx), self.center, self.scale, data)
 
 
 def _refuse(msg: str):
@@ -307,6 +475,8 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
     >>> build(s, Model(within="shared")).J
     3
     """
+    from . import kernel
+
     model = model or Model()
     _check_identifiable(stats, model)
     center, scale = _center_scale(stats)
@@ -331,8 +501,24 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
         grid, logp = np.array([model.nu.value], dtype=float), np.zeros(1)
     else:
         grid, logp = np.asarray(model.nu.values, dtype=float), model.nu.log_prior()
-    return Problem(model, stats, center, scale, n, ybar, m2, v_known, WITHIN_CODE[model.within], mu_kind, mu_loc,
-                   mu_scale, tau_kind, tau_scale, s2_shape, s2_rate, grid, logp)
+    table, layout = kernel.prepare(n, grid)
+    if isinstance(model.between, HeavyBetween):
+        dfg, dfw = model.between.grid_and_weights()
+        df_grid = np.asarray(dfg, dtype=np.float64)
+        w = np.asarray(dfw, dtype=np.float64)
+        with np.errstate(divide="ignore"):
+            df_logprior = np.log(w / w.sum())
+        between = kernel.BETWEEN_HEAVY
+    else:
+        df_grid, df_logprior, between = np.array([math.inf]), np.zeros(1), kernel.BETWEEN_NORMAL
+    data = kernel.Data(
+        within=int(WITHIN_CODE[model.within]), n=np.ascontiguousarray(n), ybar=np.ascontiguousarray(ybar, dtype=np.float64),
+        m2=np.ascontiguousarray(m2, dtype=np.float64), v_known=np.ascontiguousarray(v_known, dtype=np.float64),
+        mu_kind=int(mu_kind), mu_loc=float(mu_loc), mu_scale=float(mu_scale), tau_kind=int(tau_kind),
+        tau_scale=float(tau_scale), s2_shape=float(s2_shape), s2_rate=float(s2_rate), nu_grid=grid,
+        nu_logprior=np.asarray(logp, dtype=np.float64), nu_table=table, layout=layout, between=int(between),
+        df_grid=df_grid, df_logprior=df_logprior, df_const=kernel.t_constants(df_grid))
+    return Problem(model, stats, center, scale, data)
 
 
 def _center_scale(stats: GroupStats) -> tuple[float, float]:

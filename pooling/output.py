@@ -19,7 +19,6 @@ import numpy as np
 
 from . import __version__
 from .errors import OutputError
-from .posterior import Fit
 
 SUMMARY_FORMAT = 1
 
@@ -40,30 +39,80 @@ def _clean(x):
     return x
 
 
-def summary_dict(fit: Fit, command: list[str] | None = None) -> dict:
-    """What summary.json holds: model, priors, data fingerprint, run settings, diagnostics, hyperparameters."""
-    p = fit.problem
-    st = p.stats
-    s = fit.raw.settings
-    return _clean({
+def summary_dict(res, command: list[str] | None = None) -> dict:
+    """What summary.json holds, from a results.Results: model, priors, data fingerprint, run settings,
+    diagnostics, hyperparameters (mean, sd, median and the level's interval), every group's row, the
+    interlaboratory view, heavy tails, checks and predictions. Written once per run."""
+    from .asked import level_key
+    from .report.export import records
+
+    p = res.problem
+    L = level_key(res.options.level)
+    hyper = {}
+    for name, h in res.hyper.items():
+        h = dict(h)
+        h[f"low_{L}"] = h.pop("low")
+        h[f"high_{L}"] = h.pop("high")
+        hyper[name] = h
+    lab = {k: v for k, v in res.lab.items() if k != "interval_excludes_0"}
+    for key in ("consensus", "between_sd", "repeatability_sd", "reproducibility_sd", "icc", "repeatability_limit",
+                "reproducibility_limit", "s"):
+        v = lab.get(key)
+        if isinstance(v, dict):
+            v = dict(v)
+            v[f"low_{L}"] = v.pop("low")
+            v[f"high_{L}"] = v.pop("high")
+            lab[key] = v
+    checks = None
+    if res.checks is not None:
+        ch = res.checks
+        checks = {"draws": ch["draws"]}
+        if "spread" in ch:
+            checks["spread_of_means"] = {"observed": ch["spread"]["observed"], "p_value": ch["spread"]["p_value"]}
+        if "extreme" in ch:
+            ex = ch["extreme"]
+            checks["most_extreme_group"] = {"p_value": ex["p_value"], "observed_median": ex["observed_median"],
+                                            "group": res.labels[ex["group"]], "group_share": ex["group_share"]}
+        if "sd" in ch:
+            sd = ch["sd"]
+            checks["within_sd"] = {"groups_checked": int(len(sd["groups"])), "outside_interval": sd["outside"],
+                                   "extreme_p": sd["extreme"], "level": sd["level"]}
+    out = {
         "format": SUMMARY_FORMAT,
         "pooling_version": __version__,
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "command": command,
-        "model": {"within": p.model.within, "priors": p.model.priors(), "spec": p.model.to_dict()},
-        "data": {
-            "source": st.source, "file_sha256": st.file_sha256, "statistics_sha256": st.fingerprint(),
-            "groups": st.J, "measurements": st.N if st.kind == "raw" else None, "kind": st.kind,
-        },
-        "run": {
-            "chains": s.chains, "warmup": s.warmup, "draws_requested": s.draws,
-            "draws_per_chain": int(fit.raw.mu.shape[1]), "draw_cap": s.draw_cap, "seed": fit.raw.seed,
-            "seconds": round(fit.raw.seconds, 3), "tau_evaluations_per_sweep": float(fit.raw.evals.mean()),
-            "internal_center": p.center, "internal_scale": p.scale,
-        },
-        "diagnostics": fit.diagnostics(),
-        "hyperparameters": fit.hyper_summary(),
-    })
+        "mode": res.mode,
+        "model": {"within": p.model.within, "between": p.model.between.name, "priors": p.model.priors(),
+                  "spec": p.model.to_dict()},
+        "data": res.data,
+        "run": res.run,
+        "report_options": res.options.to_dict(),
+        "diagnostics": res.diagnostics,
+        "hyperparameters": hyper,
+        "heavy_tails": res.tail,
+        "interlab": lab,
+        "new_group_outside": res.new_group,
+        "predictive_checks": checks,
+        "groups_table": records(res.table),
+    }
+    if res.pairs is not None:
+        out["pairwise"] = {"groups": list(res.pairs.index), "p_row_greater": res.pairs.to_numpy()}
+    if res.summary is not None:
+        out["summary_mode"] = {k: v for k, v in res.summary.items() if k != "kept_labels"}
+    return _clean(out)
+
+
+def write_results_files(res, folder: Path, command: list[str] | None = None) -> dict:
+    """summary.json, groups.csv and report.html of a Results, into `folder`; returns the summary."""
+    from .report import render_html
+    from .report.export import write_csv
+
+    summary = summary_dict(res, command)
+    write_json(folder / "summary.json", summary)
+    write_csv(res.table, folder / "groups.csv")
+    (folder / "report.html").write_text(render_html(res, summary["created_utc"], command), encoding="utf-8")
+    return summary
 
 
 def write_json(path: Path, obj) -> None:
@@ -156,17 +205,42 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
 REPORT_ROOM = 8 << 20
 
 
-def _check_space(fit: Fit, folder: Path) -> None:
-    need = REPORT_ROOM + sum(part.nbytes for part in fit.parts.values())
-    need += 3 * sum(len(lab.encode("utf-8", "surrogatepass")) for lab in fit.labels)
+def draws_parts(fit) -> dict:
+    """What draws.nc holds: the draws in internal units with the CF attributes scale_factor and add_offset
+    (readers decode the user's units; the file keeps every digit at any offset). A summary-mode fit: its
+    kept groups and hyperparameters, the kept groups' exact ranks among all groups, the typical within-group
+    sd per draw, and why each group was kept."""
+    from .posterior import parts
+
+    if not getattr(fit, "summary_mode", False):
+        return parts(fit.raw, fit.problem, packed=True)
+    kept = fit.kept
+    out = parts(kept.raw, kept.problem, packed=True)
+    post = out["posterior"]
+    acc = fit.acc
+    post.add("rank", ("chain", "draw", "group"), acc.ranks,
+             {"meaning": f"rank among all {fit.J} groups, 1 = {fit.options.best} theta"})
+    if fit.problem.within_code != 2:
+        post.add("within_sd", ("chain", "draw"), acc.within_sd, {"scale_factor": float(fit.problem.scale)})
+    note = {"summary_mode": f"kept groups only: {len(fit.kept_index)} of {fit.J}; every group is in groups.csv",
+            "groups_total": str(fit.J)}
+    for part in out.values():
+        part.attrs.update(note)
+    out["constant_data"].add("kept_because", ("group",), np.array(acc.setup.kept_reason, dtype=object))
+    return out
+
+
+def _check_space(parts: dict, labels, folder: Path) -> None:
+    need = REPORT_ROOM + sum(part.nbytes for part in parts.values())
+    need += 3 * sum(len(lab.encode("utf-8", "surrogatepass")) for lab in labels)
     free = shutil.disk_usage(folder).free
     if free < need:
         raise OSError(errno.ENOSPC, f"{free / 2**20:.1f} MiB free, the run needs up to {need / 2**20:.1f} MiB")
 
 
-def _write_draws(fit: Fit, path: Path) -> None:
-    """draws.nc: the fit's groups (posterior, sample_stats, constant_data) as netCDF4 (HDF5) through
-    h5netcdf, uncompressed; arviz.from_netcdf and xarray.open_dataset(group=...) read it back."""
+def _write_draws(parts: dict, path: Path) -> None:
+    """draws.nc: the parts (posterior, sample_stats, constant_data) as netCDF4 (HDF5) through h5netcdf,
+    uncompressed; arviz.from_netcdf and xarray.open_dataset(group=...) read it back in the user's units."""
     # Written with h5netcdf itself rather than through xarray: xarray asks dask (when installed) for a
     # scheduler before each group, which imports dask.distributed, ~0.3 s of every run.
     # Uncompressed on purpose: draws of theta and sigma are float64 noise that zlib shrinks by only
@@ -175,7 +249,7 @@ def _write_draws(fit: Fit, path: Path) -> None:
     import h5netcdf
 
     with h5netcdf.File(str(path), "w") as f:
-        for name, part in fit.parts.items():
+        for name, part in parts.items():
             g = f.create_group(name)
             for dim, values in part.coords.items():
                 g.dimensions[dim] = len(values)
@@ -233,19 +307,21 @@ class _Background:
             raise self.error
 
 
-def write_run(fit: Fit, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
-    """Write draws.nc and summary.json (and whatever `extra(fit, folder)` adds) as one atomic folder."""
+def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
+    """Write the run folder as one atomic folder: draws.nc (from the fit), summary.json, groups.csv and
+    report.html (from its results), and whatever `extra(folder)` adds."""
+    parts = draws_parts(fit)
 
     def fill(tmp: Path):
-        _check_space(fit, tmp)
-        # draws.nc is written on a second thread while summary.json and the reporter's files are made:
-        # h5py and the kernel's page cache do most of that write without the GIL, so at 1,000 groups
-        # this hides ~0.2 s of a later run. Nothing is renamed into place before both are done.
-        writer = _Background(_write_draws, fit, tmp / "draws.nc")
+        _check_space(parts, fit.labels, tmp)
+        # draws.nc is written on a second thread while summary.json and the report are made: h5py and the
+        # kernel's page cache do most of that write without the GIL. Nothing is renamed into place
+        # before both are done.
+        writer = _Background(_write_draws, parts, tmp / "draws.nc")
         try:
-            write_json(tmp / "summary.json", summary_dict(fit, command))
+            write_results_files(res, tmp, command)
             if extra is not None:
-                extra(fit, tmp)
+                extra(tmp)
         finally:
             writer.join()  # also on Ctrl-C or an error, so the folder is never removed under the writer
         writer.reraise()

@@ -1,74 +1,42 @@
-"""Labelled draws in the user's units, their diagnostics, and summaries of the hyperparameters.
+"""A finished run: its draws in the engine's internal units, labelled, and their layout in the user's units.
 
-The posterior of a fit is laid out as an arviz InferenceData (`Fit.idata`, built on first use):
+A full run (`Fit`) keeps every draw in internal units (y' = (y - center) / scale, model.build): that is
+what every answer is computed from (pooling.results) and what draws.nc stores, with the CF attributes
+`scale_factor` and `add_offset` so that netCDF readers (xarray, arviz) decode the user's units. At an
+offset of 1e12 a float64 in user units keeps only about four digits of a spread of 1e-2; the internal
+draws keep all of them.
+
+The user's layout (an arviz InferenceData, `Fit.idata`, or plain numpy parts, `Fit.parts`) is built on
+first use:
 
     posterior     mu, tau (chain, draw); theta (chain, draw, group);
                   sigma (chain, draw, group) for `separate`, (chain, draw) for `shared`;
-                  s, nu (chain, draw) for `separate`
+                  s, nu (chain, draw) for `separate`; df (chain, draw) and lambda (chain, draw, group)
+                  for the heavy-tailed between-group distribution
     sample_stats  tau_evaluations (chain, draw): density evaluations of the slice update of log tau
     constant_data n, raw_mean, raw_sd (or std_error for `known`), each (group)
 
-Group labels are the `group` coordinate, kept exactly as they came in.
-
-The same layout is kept as plain numpy arrays (`Fit.parts`, one `Part` per group of the file), which is
-what the reporter and the writer of draws.nc read: building the InferenceData costs importing arviz,
-xarray and scipy.stats (~1.2 s of a run), so the command line never does it.
+Group labels are the `group` coordinate, kept exactly as they came in. A summary-mode run (pooling.summary)
+is a different object that holds a `Fit` of its kept groups.
 """
 from __future__ import annotations
 
 import functools
 import json
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from . import diagnostics as dg
 from .model import Problem
-from .sampler import RawDraws, Targets
+from .sampler import RawDraws
 
-QUANTILES = (0.025, 0.25, 0.5, 0.75, 0.975)
+if TYPE_CHECKING:
+    from ._compat import az
 
-
-def _checked(raw: RawDraws) -> dict[str, np.ndarray]:
-    """What run-length control checks: mu, tau, every theta_j and sigma_j, and s and nu (separate)."""
-    named = {"mu": raw.mu, "tau": raw.tau, "theta": raw.theta}
-    if raw.sigma is not None:
-        named["sigma"] = raw.sigma
-    if raw.s is not None:
-        named["s"] = raw.s
-        named["nu"] = raw.nu
-    return named
-
-
-def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
-    """Misses of the run-length targets on mu, tau, theta and sigma, and a record of this round.
-
-    The record's `growth` is how many times longer the chains should be for the worst ESS to
-    reach its target (ESS grows about linearly with the draws), used to size an extension.
-    """
-    misses, worst = [], {}
-    for name, x in _checked(raw).items():  # one ranking pass per variable serves both views
-        rhat, bulk, tail = (np.atleast_1d(np.asarray(v, dtype=float)) for v in dg.rhat_ess(x))
-        flat_x = x.reshape(x.shape[0] * x.shape[1], -1)
-        # a quantity that never moved (nu pinned at one grid point) has nothing left to converge
-        constant = (flat_x.max(axis=0) == flat_x.min(axis=0)).reshape(rhat.shape)
-        # R-hat needs two chains; with one, only the ESS targets can be checked (the README says so)
-        rhat_bad = ~(rhat < targets.rhat_max) if x.shape[0] >= 2 else np.zeros(rhat.shape, dtype=bool)
-        bad = ~constant & (rhat_bad | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min))
-        rest = x.shape[2:]
-        for flat in np.flatnonzero(bad.ravel()):
-            idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
-            misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
-                           "bulk_ess": float(bulk.ravel()[flat]), "tail_ess": float(tail.ravel()[flat])})
-        live = ~constant
-        worst[name] = {"rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),
-                       "bulk_ess_min": float(np.min(bulk[live])) if live.any() else float("nan"),
-                       "tail_ess_min": float(np.min(tail[live])) if live.any() else float("nan")}
-    low = min((min(w["bulk_ess_min"], w["tail_ess_min"]) for w in worst.values()
-               if np.isfinite(w["bulk_ess_min"]) and np.isfinite(w["tail_ess_min"])), default=np.inf)
-    growth = float(np.clip(1.15 * targets.ess_min / low, 1.25, 4.0)) if low > 0 else 4.0
-    record = {"worst": worst, "misses": len(misses), "growth": growth, "missed_list": misses}
-    return misses, record
+# how each posterior variable maps to the user's units: x_user = x * scale (+ center)
+SCALED = {"mu": True, "theta": True, "tau": False, "sigma": False, "s": False}
 
 
 @dataclass
@@ -100,19 +68,28 @@ class Part:
         return sum(int(v.nbytes) for _, v, _ in self.variables.values()) + sum(int(c.nbytes) for c in self.coords.values())
 
 
+def _jsonable_miss(m: dict, labels) -> dict:
+    out = dict(m)
+    idx = out.get("index")
+    if idx is not None and out.get("name") in ("theta", "sigma") and len(idx) == 1:
+        out["group"] = labels[int(idx[0])]
+    if idx is not None:
+        out["index"] = [int(i) for i in idx]
+    for k in ("rhat", "bulk_ess", "tail_ess"):
+        if k in out:
+            out[k] = float(out[k])
+    return out
+
+
 @dataclass(eq=False)
 class Fit:
-    """A finished run: the labelled posterior, the problem it came from, and what the run did."""
+    """A finished full run: the problem, every draw in internal units (`raw`), and what missed the targets."""
 
-    parts: dict[str, Part]
     problem: Problem
     raw: RawDraws
     misses: list[dict]
 
-    @functools.cached_property
-    def idata(self) -> "az.InferenceData":
-        """The posterior as an arviz InferenceData (built on first use; imports arviz)."""
-        return idata_from_parts(self.parts)
+    summary_mode = False
 
     @property
     def targets_met(self) -> bool:
@@ -122,23 +99,29 @@ class Fit:
     def labels(self) -> tuple[str, ...]:
         return self.problem.stats.labels
 
-    def draws(self, name: str) -> np.ndarray:
-        """Draws of a posterior variable in user units, chains stacked: shape (samples, ...)."""
-        x = self.parts["posterior"][name]
-        return x.reshape((-1,) + x.shape[2:])
+    @property
+    def J(self) -> int:
+        return self.problem.J
 
-    def hyper_summary(self) -> dict[str, dict]:
-        """Posterior mean, sd, quantiles, MCSE, R-hat and ESS of mu, tau and the variance hyperparameters."""
-        post = self.parts["posterior"]
-        names = ["mu", "tau"]
-        if self.problem.model.within == "separate":
-            names += ["s", "nu"]
-        elif self.problem.model.within == "shared":
-            names += ["sigma"]
-        out = {}
-        for name in names:
-            out[name] = summarize_draws(post[name])
-        return out
+    @functools.cached_property
+    def parts(self) -> dict[str, Part]:
+        """The draws in the user's units, labelled (copies of the internal draws, made on first use)."""
+        return user_parts(self.raw, self.problem)
+
+    @functools.cached_property
+    def idata(self) -> "az.InferenceData":
+        """The posterior as an arviz InferenceData in the user's units (built on first use; imports arviz)."""
+        return idata_from_parts(self.parts)
+
+    def draws(self, name: str) -> np.ndarray:
+        """Draws of a posterior variable in the user's units, chains stacked: shape (samples, ...)."""
+        x = internal_draws(self.raw, name)
+        p = self.problem
+        if name in SCALED:
+            x = x * p.scale + (p.center if SCALED[name] else 0.0)
+        elif name == "lambda":
+            x = x.astype(np.float64)
+        return x.reshape((-1,) + x.shape[2:])
 
     def diagnostics(self) -> dict:
         """Worst R-hat and ESS per checked variable, the targets, and what still misses."""
@@ -153,69 +136,77 @@ class Fit:
         }
 
 
-def _jsonable_miss(m: dict, labels) -> dict:
-    out = dict(m)
-    idx = out.get("index")
-    if idx is not None and out.get("name") in ("theta", "sigma") and len(idx) == 1:
-        out["group"] = labels[int(idx[0])]
-    if idx is not None:
-        out["index"] = [int(i) for i in idx]
-    for k in ("rhat", "bulk_ess", "tail_ess"):
-        if k in out:
-            out[k] = float(out[k])
-    return out
+def internal_draws(raw: RawDraws, name: str) -> np.ndarray:
+    """A posterior variable's draws as the sampler left them, (chains, draws, ...), internal units."""
+    key = "lam" if name == "lambda" else name
+    x = getattr(raw, key, None)
+    if x is None:
+        raise KeyError(f"this fit has no draws of '{name}'")
+    return x
 
 
-def summarize_draws(x: np.ndarray) -> dict:
-    """Summary of one scalar quantity's draws shaped (chains, draws)."""
-    flat = x.reshape(-1)
-    q = np.quantile(flat, QUANTILES)
-    return {
-        "mean": float(flat.mean()), "sd": float(flat.std(ddof=1)),
-        **{f"q{int(round(p * 1000)):03d}": float(v) for p, v in zip(QUANTILES, q)},
-        "mean_mc_error": float(dg.mean_mc_error(x)), "rhat": float(dg.split_rhat(x)),
-        "bulk_ess": float(dg.bulk_ess(x)), "tail_ess": float(dg.tail_ess(x)),
-    }
+def hyper_names(problem: Problem) -> list[str]:
+    """The hyperparameters of a fit, in the order a report shows them."""
+    names = ["mu", "tau"]
+    if problem.model.within == "separate":
+        names += ["s", "nu"]
+    elif problem.model.within == "shared":
+        names += ["sigma"]
+    return names
 
 
-def _affine(x: np.ndarray, k: float, c: float, in_place: bool = False) -> np.ndarray:
-    """x * k + c (the same numbers as the expression), into a new array or into x itself."""
-    out = np.multiply(x, k, out=x if in_place else None)
-    if c != 0.0:
-        out += c
-    return out
+def _base_attrs(raw: RawDraws, problem: Problem) -> dict:
+    return {"created_by": "pooling", "model": json.dumps(problem.model.to_dict()), "seed": str(raw.seed),
+            "data_fingerprint": problem.stats.fingerprint(), "internal_center": repr(problem.center),
+            "internal_scale": repr(problem.scale)}
 
 
-def to_parts(raw: RawDraws, problem: Problem, consume: bool = False) -> dict[str, Part]:
-    """Map internal-unit draws back to the user's units and label them: the layout of draws.nc.
-
-    consume=True converts raw.theta and raw.sigma (the large arrays) in place and hands them over:
-    they are set to None in `raw`, so nothing is copied (at 1,000 groups x 4 x 1,000 draws a copy
-    is 64 MB of fresh memory and ~0.2 s)."""
+def parts(raw: RawDraws, problem: Problem, packed: bool) -> dict[str, Part]:
+    """The layout of draws.nc. packed=True: the internal draws themselves, each scaled variable carrying the
+    CF attributes scale_factor (and add_offset), which netCDF readers apply to give the user's units;
+    packed=False: the user's units (new arrays)."""
     c, k = problem.center, problem.scale
     st = problem.stats
     labels = np.array(st.labels, dtype=object)
     C, D = raw.mu.shape
     chain, draw = np.arange(C), np.arange(D)
-    attrs = {
-        "created_by": "pooling",
-        "model": json.dumps(problem.model.to_dict()),
-        "seed": str(raw.seed),
-        "data_fingerprint": st.fingerprint(),
-    }
+    attrs = _base_attrs(raw, problem)
     post = Part({}, {"chain": chain, "draw": draw, "group": labels}, dict(attrs))
-    post.add("mu", ("chain", "draw"), raw.mu * k + c)
-    post.add("tau", ("chain", "draw"), raw.tau * k)
-    post.add("theta", ("chain", "draw", "group"), _affine(raw.theta, k, c, consume))
+
+    def add(name, dims, x):
+        if name not in SCALED:
+            post.add(name, dims, x)
+            return
+        offset = c if SCALED[name] else 0.0
+        if packed:
+            cf = {"scale_factor": float(k)}
+            if SCALED[name]:
+                cf["add_offset"] = float(offset)
+            post.add(name, dims, x, cf)
+        else:
+            out = np.multiply(x, k)
+            if offset != 0.0:
+                out += offset
+            post.add(name, dims, out)
+
+    add("mu", ("chain", "draw"), raw.mu)
+    add("tau", ("chain", "draw"), raw.tau)
+    add("theta", ("chain", "draw", "group"), raw.theta)
     within = problem.model.within
     if within == "separate":
-        post.add("sigma", ("chain", "draw", "group"), _affine(raw.sigma, k, 0.0, consume))
-        post.add("s", ("chain", "draw"), raw.s * k)
-        post.add("nu", ("chain", "draw"), raw.nu)
+        add("sigma", ("chain", "draw", "group"), raw.sigma)
+        add("s", ("chain", "draw"), raw.s)
+        add("nu", ("chain", "draw"), raw.nu)
     elif within == "shared":
-        post.add("sigma", ("chain", "draw"), raw.sigma * k)
-    stats = Part({}, {"chain": chain, "draw": draw}, dict(attrs))
-    stats.add("tau_evaluations", ("chain", "draw"), raw.evals)
+        add("sigma", ("chain", "draw"), raw.sigma)
+    if raw.df is not None:
+        post.add("df", ("chain", "draw"), raw.df, {"meaning": "degrees of freedom of the between-group Student-t; "
+                                                             "inf is the normal limit"})
+        post.add("lambda", ("chain", "draw", "group"), raw.lam,
+                 {"meaning": "latent precision of each group in the between-group distribution: "
+                             "theta_j ~ N(mu, tau^2 / lambda_j)"})
+    sstats = Part({}, {"chain": chain, "draw": draw}, dict(attrs))
+    sstats.add("tau_evaluations", ("chain", "draw"), raw.evals)
     const = Part({}, {"group": labels}, dict(attrs))
     const.add("n", ("group",), st.n)
     const.add("raw_mean", ("group",), st.raw_mean)
@@ -223,21 +214,22 @@ def to_parts(raw: RawDraws, problem: Problem, consume: bool = False) -> dict[str
         const.add("std_error", ("group",), st.raw_se)
     else:
         const.add("raw_sd", ("group",), st.raw_sd)
-    if consume:
-        raw.theta = None
-        if within == "separate":
-            raw.sigma = None
-    return {"posterior": post, "sample_stats": stats, "constant_data": const}
+    return {"posterior": post, "sample_stats": sstats, "constant_data": const}
 
 
-def idata_from_parts(parts: dict[str, Part]) -> "az.InferenceData":
+def user_parts(raw: RawDraws, problem: Problem) -> dict[str, Part]:
+    """The draws in the user's units, labelled (new arrays)."""
+    return parts(raw, problem, packed=False)
+
+
+def idata_from_parts(parts_: dict[str, Part]) -> "az.InferenceData":
     """An arviz InferenceData holding the same arrays (not copied)."""
     import xarray as xr
 
     from ._compat import az
 
     groups = {}
-    for name, part in parts.items():
+    for name, part in parts_.items():
         data = {v: xr.Variable(dims, values, attrs) for v, (dims, values, attrs) in part.variables.items()}
         used = {d for dims, _, _ in part.variables.values() for d in dims}
         coords = {d: values for d, values in part.coords.items() if d in used}
@@ -245,26 +237,34 @@ def idata_from_parts(parts: dict[str, Part]) -> "az.InferenceData":
     return az.InferenceData(**groups)
 
 
-def parts_from_idata(idata) -> dict[str, Part]:
-    """The reverse of idata_from_parts, for an InferenceData laid out as pooling writes it."""
+def summarize_draws(x: np.ndarray, level: float = 0.95, scale: float = 1.0, center: float = 0.0) -> dict:
+    """Summary of one scalar quantity's draws shaped (chains, draws), computed on x (internal units) and
+    mapped to x * scale + center at the end: mean, sd, median, the central interval at `level` (keys
+    low and high), the Monte Carlo error of the mean, R-hat, bulk and tail ESS."""
+    flat = x.reshape(-1)
+    lo, med, hi = np.quantile(flat, [(1 - level) / 2, 0.5, (1 + level) / 2])
+    return {
+        "mean": float(flat.mean()) * scale + center, "sd": float(flat.std(ddof=1)) * scale,
+        "median": float(med) * scale + center, "low": float(lo) * scale + center, "high": float(hi) * scale + center,
+        "mean_mc_error": float(dg.mean_mc_error(x)) * scale, "rhat": float(dg.split_rhat(x)),
+        "bulk_ess": float(dg.bulk_ess(x)), "tail_ess": float(dg.tail_ess(x)),
+    }
+
+
+def hyper_summary(raw: RawDraws, problem: Problem, level: float = 0.95) -> dict[str, dict]:
+    """Summaries of mu, tau and the variance hyperparameters, computed in internal units."""
+    c, k = problem.center, problem.scale
     out = {}
-    for name in idata.groups():
-        ds = idata[name]
-        coords = {d: np.asarray(ds[d].values) for d in ds.dims}
-        out[name] = Part({v: (tuple(ds[v].dims), ds[v].values, dict(ds[v].attrs)) for v in ds.data_vars},
-                         coords, dict(ds.attrs))
+    for name in hyper_names(problem):
+        x = internal_draws(raw, name)
+        if name == "nu":
+            out[name] = summarize_draws(x, level)
+        else:
+            out[name] = summarize_draws(x, level, k, c if SCALED.get(name) else 0.0)
     return out
 
 
-def to_idata(raw: RawDraws, problem: Problem) -> "az.InferenceData":
-    """The labelled draws as an arviz InferenceData (imports arviz)."""
-    return idata_from_parts(to_parts(raw, problem))
-
-
-def finish(raw: RawDraws, problem: Problem, consume: bool = False) -> Fit:
-    """Label the draws; the misses are those of the sampler's last diagnostics round.
-
-    consume=True (what pooling.fit does, as it owns `raw`) moves the per-group draws into the fit
-    instead of copying them: raw.theta and raw.sigma (separate) become None; see to_parts."""
+def finish(raw: RawDraws, problem: Problem) -> Fit:
+    """A Fit of the sampler's draws; the misses are those of its last diagnostics round."""
     misses = raw.rounds[-1]["missed_list"] if raw.rounds else []
-    return Fit(to_parts(raw, problem, consume), problem, raw, misses)
+    return Fit(problem, raw, misses)

@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import diagnostics as dg
 from . import kernel
 from .errors import Interrupted, InputError
 from .model import Problem
@@ -79,85 +80,101 @@ class RawDraws:
     rounds: list[dict]
     seconds: float
     final_states: list[dict]
+    df: np.ndarray | None = None  # heavy tails: df per draw (inf: the normal limit)
+    lam: np.ndarray | None = None  # heavy tails: lambda_j per draw
 
 
 class _Chain:
-    """One chain's generator, state and accumulated draws."""
+    """One chain's generator, kernel state and scratch, and where its stored draws go."""
 
     def __init__(self, problem: Problem, seed_seq: np.random.SeedSequence, init: dict | None):
         self.rng = np.random.default_rng(seed_seq)
         p = problem
         J = p.J
-        self.state = np.zeros(kernel.N_SCALARS)
-        self.theta = p.ybar.copy()
-        self.sigma2 = np.ones(J)
+        sc = np.zeros(kernel.N_SCALARS)
+        theta = p.ybar.copy()
+        sigma2 = np.ones(J)
         rng = self.rng
         pooled = float(np.sum(p.m2) / max(np.sum(p.n) - J, 1.0)) if p.within_code != 2 else 1.0
         if not pooled > 0:
             pooled = 1.0
         spread = float(np.std(p.ybar)) if J > 1 else 1.0
         # over-dispersed starting points, so that R-hat can see chains that have not met
-        self.state[kernel.ETA] = np.clip(np.log(max(spread, 0.05)) + rng.normal(0.0, 1.0), -10.0, 10.0)
-        self.state[kernel.MU] = float(np.mean(p.ybar)) + rng.normal(0.0, max(spread, 0.1))
-        self.state[kernel.S2] = pooled * np.exp(rng.normal(0.0, 0.5))
-        self.state[kernel.NU_IDX] = len(p.nu_grid) // 2
-        self.state[kernel.WIDTH] = 1.0
-        self.state[kernel.SIGMA2] = pooled * np.exp(rng.normal(0.0, 0.5))
+        sc[kernel.ETA] = np.clip(np.log(max(spread, 0.05)) + rng.normal(0.0, 1.0), -10.0, 10.0)
+        sc[kernel.MU] = float(np.mean(p.ybar)) + rng.normal(0.0, max(spread, 0.1))
+        sc[kernel.S2] = pooled * np.exp(rng.normal(0.0, 0.5))
+        sc[kernel.NU_IDX] = len(p.nu_grid) // 2
+        sc[kernel.WIDTH] = 1.0
+        sc[kernel.SIGMA2] = pooled * np.exp(rng.normal(0.0, 0.5))
         if p.within_code == 0:
             own = np.where(p.n >= 2, p.m2 / np.maximum(p.n - 1.0, 1.0), pooled)
-            self.sigma2 = (0.5 * own + 0.5 * pooled) * np.exp(rng.normal(0.0, 0.5, J))
-            self.sigma2 = np.maximum(self.sigma2, 1e-12 * pooled)
+            sigma2 = (0.5 * own + 0.5 * pooled) * np.exp(rng.normal(0.0, 0.5, J))
+            sigma2 = np.maximum(sigma2, 1e-12 * pooled)
+        # heavy tails start at the grid's middle with every lambda_j = 1 (no random numbers: the normal
+        # model's chains start exactly as they always did)
+        sc[kernel.DF_IDX] = len(p.df_grid) // 2
+        lam = np.ones(J if p.heavy else 0)
         if init is not None:
-            self.state[:] = init["state"]
-            self.theta[:] = init["theta"]
-            self.sigma2[:] = init["sigma2"]
-            self.state[kernel.JUMP_SUM] = 0.0
-            self.state[kernel.JUMP_COUNT] = 0.0
+            st = np.asarray(init["state"], dtype=float)
+            sc[: len(st)] = st
+            sc[kernel.JUMP_SUM] = 0.0
+            sc[kernel.JUMP_COUNT] = 0.0
+            if len(st) <= kernel.DF_IDX or not 0 <= sc[kernel.DF_IDX] < len(p.df_grid):
+                sc[kernel.DF_IDX] = len(p.df_grid) // 2
+            theta[:] = init["theta"]
+            sigma2[:] = init["sigma2"]
+            if p.heavy and len(init.get("lam") or []) == J:
+                lam[:] = init["lam"]
+        self.state = kernel.State(sc, theta, sigma2, lam)
+        self.work = kernel.make_work(p.data)
+        if p.heavy:
+            self.work.inv_lam[:] = 1.0 / lam
         self.parts: list[dict] = []
         self.into: dict | None = None  # set by _preallocate: where the next stored run writes its draws
 
+    @property
+    def theta(self) -> np.ndarray:
+        return self.state.theta
+
+    @property
+    def sigma2(self) -> np.ndarray:
+        return self.state.sigma2
+
     def run(self, p: Problem, n_sweeps: int, store: bool, adapt: bool, chunk: int, stop: threading.Event, tick):
-        J = p.J
-        within = p.within_code
+        d = p.data
         into, self.into = self.into, None
         if store and into is not None:  # this chain's slice of arrays shared by all chains (_preallocate)
             out = into
         elif store:
-            out = {key: np.empty(shape) for key, shape in _shapes(n_sweeps, J, within).items()}
+            out = kernel.empty_draws(d, n_sweeps)._asdict()
         else:
-            out = {"mu": np.empty(0), "tau": np.empty(0), "theta": np.empty((0, J)), "sigma": np.empty((0, J)),
-                   "s": np.empty(0), "nu": np.empty(0), "evals": np.empty(0)}
+            out = None
+        none = kernel.no_draws(d)
         done = 0
         while done < n_sweeps:
             if stop.is_set():
                 return
             k = min(chunk, n_sweeps - done)
-            keys = ("mu", "tau", "theta", "sigma", "s", "nu", "evals")
-            views = [out[key][done:done + k] for key in keys] if store else [out[key] for key in keys]
-            kernel.sweeps(self.rng, k, adapt, within, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
-                          p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
-                          p.nu_table, p.layout, self.state, self.theta, self.sigma2, *views, 0)
+            rows = kernel.Draws(**{key: arr[done:done + k] for key, arr in out.items()}) if store else none
+            kernel.sweeps(self.rng, k, adapt, d, self.state, self.work, rows, 0)
             done += k
             tick(k)
         if store:
             self.parts.append(out)
 
     def export_state(self) -> dict:
-        return {"state": self.state.tolist(), "theta": self.theta.tolist(), "sigma2": self.sigma2.tolist()}
-
-
-def _shapes(n_sweeps: int, J: int, within: int) -> dict[str, tuple[int, ...]]:
-    """Shapes of one chain's stored draws for n_sweeps sweeps."""
-    return {"mu": (n_sweeps,), "tau": (n_sweeps,), "theta": (n_sweeps, J),
-            "sigma": (n_sweeps, J if within == 0 else 1 if within == 1 else 0),
-            "s": (n_sweeps if within == 0 else 0,), "nu": (n_sweeps if within == 0 else 0,), "evals": (n_sweeps,)}
+        st = self.state
+        return {"state": st.scalars.tolist(), "theta": st.theta.tolist(), "sigma2": st.sigma2.tolist(),
+                "lam": st.lam.tolist()}
 
 
 def _preallocate(chains, problem: Problem, n_sweeps: int) -> dict[str, np.ndarray]:
     """Arrays shaped (chains, n_sweeps, ...) that the chains fill in place, so that collecting the
     draws afterwards copies nothing (at 1,000 groups x 4 x 1,000 draws a stack of the chains' own
     arrays cost ~0.25 s, mostly touching fresh memory)."""
-    block = {key: np.empty((len(chains),) + shape) for key, shape in _shapes(n_sweeps, problem.J, problem.within_code).items()}
+    shapes = kernel.draws_shape(problem.data, n_sweeps)
+    block = {key: np.empty((len(chains),) + shape, dtype=kernel.DRAW_DTYPES.get(key, np.float64))
+             for key, shape in shapes.items()}
     for i, c in enumerate(chains):
         c.into = {key: arr[i] for key, arr in block.items()}
     return block
@@ -253,13 +270,11 @@ def sample_raw(problem: Problem, settings: Settings | None = None, progress: boo
                init: list[dict] | None = None, diagnose=None) -> RawDraws:
     """Warm up, draw, and extend until `diagnose(draws)` reports no misses or the cap is reached.
 
-    diagnose takes a RawDraws and returns (misses, round_record); by default
-    posterior.diagnose_raw with the settings' targets.
+    diagnose takes a RawDraws and returns (misses, round_record); by default `diagnose_raw` with the
+    settings' targets.
     """
     settings = settings or Settings()
     if diagnose is None:
-        from .posterior import diagnose_raw
-
         diagnose = lambda raw: diagnose_raw(raw, settings.targets)  # noqa: E731
     seed = resolve_seed(settings)
     streams = np.random.SeedSequence(seed).spawn(settings.chains)
@@ -287,9 +302,61 @@ def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws
     sigma = stack("sigma") if within != 2 else None
     if within == 1:
         sigma = sigma[:, :, 0]
+    heavy = problem.heavy
     return RawDraws(
         mu=stack("mu"), tau=stack("tau"), theta=stack("theta"), sigma=sigma,
         s=stack("s") if within == 0 else None, nu=stack("nu") if within == 0 else None,
         evals=stack("evals"), seed=seed, settings=settings, rounds=list(rounds),
         seconds=time.perf_counter() - start, final_states=[c.export_state() for c in chains],
+        df=stack("df") if heavy else None, lam=stack("lam") if heavy else None,
     )
+
+
+# ---------------------------------------------------------------------------------------------
+# run-length control
+
+
+def checked(raw: RawDraws) -> dict[str, np.ndarray]:
+    """What run-length control checks: mu, tau, every theta_j and sigma_j, s and nu (separate), and the
+    tail index 1/df (heavy tails with df learned; 0 is the normal limit, so the draws stay finite)."""
+    named = {"mu": raw.mu, "tau": raw.tau, "theta": raw.theta}
+    if raw.sigma is not None:
+        named["sigma"] = raw.sigma
+    if raw.s is not None:
+        named["s"] = raw.s
+        named["nu"] = raw.nu
+    if raw.df is not None:
+        named["1/df"] = 1.0 / raw.df
+    return named
+
+
+def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
+    """Misses of the run-length targets on the checked quantities, and a record of this round.
+
+    The record's `growth` is how many times longer the chains should be for the worst ESS to
+    reach its target (ESS grows about linearly with the draws), used to size an extension.
+    R-hat and ESS do not depend on the units, so the internal-unit draws serve.
+    """
+    misses, worst = [], {}
+    for name, x in checked(raw).items():  # one ranking pass per variable serves both views
+        rhat, bulk, tail = (np.atleast_1d(np.asarray(v, dtype=float)) for v in dg.rhat_ess(x))
+        flat_x = x.reshape(x.shape[0] * x.shape[1], -1)
+        # a quantity that never moved (nu pinned at one grid point) has nothing left to converge
+        constant = (flat_x.max(axis=0) == flat_x.min(axis=0)).reshape(rhat.shape)
+        # R-hat needs two chains; with one, only the ESS targets can be checked (the README says so)
+        rhat_bad = ~(rhat < targets.rhat_max) if x.shape[0] >= 2 else np.zeros(rhat.shape, dtype=bool)
+        bad = ~constant & (rhat_bad | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min))
+        rest = x.shape[2:]
+        for flat in np.flatnonzero(bad.ravel()):
+            idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
+            misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
+                           "bulk_ess": float(bulk.ravel()[flat]), "tail_ess": float(tail.ravel()[flat])})
+        live = ~constant
+        worst[name] = {"rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),
+                       "bulk_ess_min": float(np.min(bulk[live])) if live.any() else float("nan"),
+                       "tail_ess_min": float(np.min(tail[live])) if live.any() else float("nan")}
+    low = min((min(w["bulk_ess_min"], w["tail_ess_min"]) for w in worst.values()
+               if np.isfinite(w["bulk_ess_min"]) and np.isfinite(w["tail_ess_min"])), default=np.inf)
+    growth = float(np.clip(1.15 * targets.ess_min / low, 1.25, 4.0)) if low > 0 else 4.0
+    record = {"worst": worst, "misses": len(misses), "growth": growth, "missed_list": misses}
+    return misses, record

@@ -1,21 +1,20 @@
-"""Summary mode's kernel: the sweeps of kernel.py, with running per-group summaries instead of stored draws.
+"""Summary mode's sink: after each sweep of kernel.sweep, running per-group summaries instead of stored draws.
 
-Each draw is one call of kernel.sweeps itself (n_sweeps = 1) on the chain's Generator, so the sweep's
-mathematics exist once, in kernel.py, whatever changes there, and a chain run here consumes its random
-stream draw for draw like a full-draw chain with the same seed: the draws are the same, only what is
-kept of them differs.
+The sweep itself is kernel.sweep, called on the chain's own State, Work and Generator, so a chain run
+here consumes its random stream draw for draw like a full-draw chain with the same seed: the draws are
+the same, only what is kept of them differs. Nothing is allocated per sweep.
 
-What each draw updates, per chain and per group j (internal units unless said otherwise):
+What each draw updates, per chain and per group j (internal units):
 
-* Welford running mean (and M2 for theta) of theta_j, sigma_j, the shrinkage weight
-  w_j = v_j / (v_j + tau^2) and the out-of-specification fraction
-  f_j = Phi((L - theta_j) / sigma_j) + Phi((theta_j - U) / sigma_j) (user units);
-* counters of theta_j > threshold, theta_j < threshold, |theta_j - mu| > allowed bias (user units,
-  the same arithmetic as the reporter's), membership of the top k and being the best;
+* pooling.answers.accumulate: Welford running means of theta_j (and its M2), sigma_j, the shrinkage
+  weight, the out-of-specification fraction and lambda_j, and the counts of theta_j above / below the
+  threshold, |theta_j - mu| above the allowed bias and lambda_j below its outlying cut (the same
+  function a full run applies to its stored draws);
+* counters of membership of the top k and of being the best;
 * a histogram of x_q,j on a per-group grid fixed after warm-up, for theta_j (x = theta_j),
-  sigma_j (x = log sigma_j), w_j (x = logit w_j = log v_j - log tau^2), f_j (x = logit f_j) and,
-  when asked, the bias theta_j - mu, with an underflow and an overflow bin and the smallest and
-  largest x seen;
+  sigma_j (x = log sigma_j), the shrinkage weight (x = its logit), the outside fraction (x = its
+  logit) and, when asked, the bias theta_j - mu, with an underflow and an overflow bin and the
+  smallest and largest x seen;
 * the mid-rank of j in a bucket count of all groups (see below).
 
 Ranks. Top k: a size-k min-heap scan over all J values (one comparison per group unless the
@@ -31,120 +30,120 @@ that counts how many kept values each group exceeds (a lookup table over the kep
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numpy as np
 from numba import njit
 
-from .kernel import ETA, MU, SIGMA2, sweeps
+from . import answers as A
+from .kernel import DF_IDX, ETA, MU, S2, NU_IDX, SIGMA2, sweep
 
 # summarised quantities: rows of the pilot arrays and (through rowmap) of the histograms
 Q_THETA, Q_LOGSIGMA, Q_LOGITW, Q_LOGITF, Q_BIAS = range(5)
 N_Q = 5
-# running means, rows of `run`
-R_THETA, R_THETA_M2, R_SIGMA, R_SHRINK, R_OUT, R_RANK, R_RANK_ERR = range(7)
-N_R = 7
-# counters, rows of `hits`
-H_ABOVE, H_BELOW, H_BIAS, H_TOP, H_BEST = range(5)
-N_H = 5
-# the options vector
-(O_CENTER, O_SCALE, O_SIGN, O_THR, O_LOWER, O_UPPER, O_BIAS, O_HAS_THR, O_HAS_LOWER, O_HAS_UPPER, O_HAS_BIAS,
- O_LIMITS) = range(12)
-N_O = 12
 # columns of the hyperparameter draws; Y_SR is the typical within-group sd sqrt(mean_j sigma_j^2)
-Y_MU, Y_TAU, Y_S, Y_NU, Y_SIGMA, Y_SR = range(6)
-N_Y = 6
-# the smallest probability kept apart from 0 on the logit scale of f (ndtr underflows below ~1e-300 anyway)
-TINY = 1e-300
-_SQRT1_2 = 0.7071067811865476
+Y_MU, Y_TAU, Y_S, Y_NU, Y_SIGMA, Y_SR, Y_DF = range(7)
+N_Y = 7
+
+
+class Shared(NamedTuple):
+    """Read by every chain: what was asked (answers.A_* vector), the outlying cut per df grid point, k of the
+    top k, log n_j, the histogram rows of the quantities, the grids, the rank buckets (lo, 1/width), the
+    kept groups and the rank -> rank-bin table."""
+
+    asked: np.ndarray
+    cuts: np.ndarray
+    k_top: int
+    logn: np.ndarray
+    rowmap: np.ndarray
+    glo: np.ndarray
+    ginv: np.ndarray
+    bucket: np.ndarray
+    kept: np.ndarray
+    rank_bin: np.ndarray
+
+
+class Acc(NamedTuple):
+    """One chain's running summaries and scratch: run (N_R, J), hits (N_H, J), hist (rows, J, B + 2),
+    ext (rows, J, 2), rhist (J, RB), wmax (J,); scratch sg (J,), bcnt (G,), bidx (J,), lobin (G,), count (1,)."""
+
+    run: np.ndarray
+    hits: np.ndarray
+    hist: np.ndarray
+    ext: np.ndarray
+    rhist: np.ndarray
+    wmax: np.ndarray
+    sg: np.ndarray
+    bcnt: np.ndarray
+    bidx: np.ndarray
+    lobin: np.ndarray
+    count: np.ndarray
+
+
+class KeptRows(NamedTuple):
+    """Stored rows of one chain: hyper (rows, N_Y), evals (rows,), and the kept groups' theta, sigma,
+    lambda and exact rank (rows, m) (sigma and lambda have 0 columns when the model has none per group)."""
+
+    hyper: np.ndarray
+    evals: np.ndarray
+    theta: np.ndarray
+    sigma: np.ndarray
+    lam: np.ndarray
+    rank: np.ndarray
 
 
 @njit(nogil=True, cache=True)
-def phi(x):
-    """Standard normal cdf Phi(x) = erfc(-x / sqrt(2)) / 2."""
-    return 0.5 * math.erfc(-x * _SQRT1_2)
+def fill_sigma(d, st, sg):
+    """sg[j] = sigma_j (separate) or sg[0] = sigma (shared); nothing for known."""
+    if d.within == 0:
+        for j in range(sg.shape[0]):
+            sg[j] = math.sqrt(st.sigma2[j])
+    elif d.within == 1:
+        sg[0] = math.sqrt(st.scalars[SIGMA2])
 
 
 @njit(nogil=True, cache=True)
-def outside(th_u, sg_u, opt):
-    """(f, 1 - f) for f = P(y outside [L, U] | theta, sigma) = Phi((L - theta)/sigma) + Phi((theta - U)/sigma),
-    y ~ N(theta, sigma^2), each with its own relative precision: when f >= 1/2 the inside probability
-    Phi((U - theta)/sigma) - Phi((L - theta)/sigma) is computed, not formed as 1 - f."""
-    has_l = opt[O_HAS_LOWER] > 0.0
-    has_u = opt[O_HAS_UPPER] > 0.0
-    a = (opt[O_LOWER] - th_u) / sg_u
-    b = (th_u - opt[O_UPPER]) / sg_u
-    pa = phi(a) if has_l else 0.0
-    pb = phi(b) if has_u else 0.0
-    f = pa + pb
-    if f < 0.5:
-        return f, 1.0 - f  # 1 - f >= 1/2 carries full relative precision
-    g = (phi(-b) if has_u else 1.0) - pa
-    return f, g
-
-
-@njit(nogil=True, cache=True)
-def logit_pair(f, g):
-    """log(f / g) with both floored at TINY: the logit of f when g = 1 - f."""
-    return math.log(max(f, TINY)) - math.log(max(g, TINY))
-
-
-@njit(nogil=True, cache=True)
-def _buffers(within, J, rows):
-    """Output rows for kernel.sweeps, shaped as the sampler's (rows = 0: nothing is stored)."""
-    sig = J if within == 0 else 1 if within == 1 else 0
-    hyp = rows if within == 0 else 0
-    return (np.empty(rows), np.empty(rows), np.empty((rows, J)), np.empty((rows, sig)), np.empty(hyp),
-            np.empty(hyp), np.empty(rows))
-
-
-@njit(nogil=True, cache=True)
-def pilot_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                 s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, logn, opt, bias_on, count,
-                 mean, msq):
+def pilot(rng, n_sweeps, d, st, wk, sg, asked, logn, bias_on, limits, count, mean, msq):
     """Warm-up sweeps (the slice width still adapting) that keep, per group, the Welford mean and M2 of
     x_q for every summarised quantity q; the histogram grids are placed from them after warm-up.
 
-    count[0] is the number of sweeps accumulated so far; mean and msq are (N_Q, J); bias_on: keep
-    the bias row too.
+    count[0] is the number of sweeps accumulated so far; mean and msq are (N_Q, J).
     """
-    J = ybar.shape[0]
-    o_mu, o_tau, o_theta, o_sigma, o_s, o_nu, o_ev = _buffers(within, J, 0)
-    center, scale = opt[O_CENTER], opt[O_SCALE]
-    limits = opt[O_LIMITS] > 0.0
+    J = d.ybar.shape[0]
+    heavy = st.lam.shape[0] > 0
     for it in range(n_sweeps):
-        sweeps(rng, 1, True, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-               s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
-               o_nu, o_ev, 0)
+        sweep(rng, True, d, st, wk)
+        fill_sigma(d, st, sg)
         count[0] += 1.0
         inv = 1.0 / count[0]
-        eta = state[ETA]
+        tau2 = math.exp(2.0 * st.scalars[ETA])
         for j in range(J):
-            x = theta[j]
-            d = x - mean[Q_THETA, j]
-            mean[Q_THETA, j] += d * inv
-            msq[Q_THETA, j] += d * (x - mean[Q_THETA, j])
+            x = st.theta[j]
+            dl = x - mean[Q_THETA, j]
+            mean[Q_THETA, j] += dl * inv
+            msq[Q_THETA, j] += dl * (x - mean[Q_THETA, j])
             if bias_on:
-                x = theta[j] - state[MU]
-                d = x - mean[Q_BIAS, j]
-                mean[Q_BIAS, j] += d * inv
-                msq[Q_BIAS, j] += d * (x - mean[Q_BIAS, j])
-            if within == 0:
-                ls = math.log(sigma2[j])
-                x = 0.5 * ls
-                d = x - mean[Q_LOGSIGMA, j]
-                mean[Q_LOGSIGMA, j] += d * inv
-                msq[Q_LOGSIGMA, j] += d * (x - mean[Q_LOGSIGMA, j])
-                x = ls - logn[j] - 2.0 * eta
-                d = x - mean[Q_LOGITW, j]
-                mean[Q_LOGITW, j] += d * inv
-                msq[Q_LOGITW, j] += d * (x - mean[Q_LOGITW, j])
+                x = st.theta[j] - st.scalars[MU]
+                dl = x - mean[Q_BIAS, j]
+                mean[Q_BIAS, j] += dl * inv
+                msq[Q_BIAS, j] += dl * (x - mean[Q_BIAS, j])
+            if d.within == 0:
+                x = math.log(sg[j])
+                dl = x - mean[Q_LOGSIGMA, j]
+                mean[Q_LOGSIGMA, j] += dl * inv
+                msq[Q_LOGSIGMA, j] += dl * (x - mean[Q_LOGSIGMA, j])
+                t = tau2 / st.lam[j] if heavy else tau2
+                x = A.logit_shrink(A.v_of(0, d.n, d.v_known, j, sg[j]), t)
+                dl = x - mean[Q_LOGITW, j]
+                mean[Q_LOGITW, j] += dl * inv
+                msq[Q_LOGITW, j] += dl * (x - mean[Q_LOGITW, j])
             if limits:
-                s2j = sigma2[j] if within == 0 else state[SIGMA2]
-                f, g = outside(theta[j] * scale + center, math.sqrt(s2j) * scale, opt)
-                x = logit_pair(f, g)
-                d = x - mean[Q_LOGITF, j]
-                mean[Q_LOGITF, j] += d * inv
-                msq[Q_LOGITF, j] += d * (x - mean[Q_LOGITF, j])
+                s = sg[j] if d.within == 0 else sg[0]
+                f, g = A.outside(st.theta[j], s, asked)
+                x = A.logit_pair(f, g)
+                dl = x - mean[Q_LOGITF, j]
+                mean[Q_LOGITF, j] += dl * inv
+                msq[Q_LOGITF, j] += dl * (x - mean[Q_LOGITF, j])
 
 
 @njit(nogil=True, cache=True, inline="always")
@@ -184,6 +183,7 @@ def _sift_down(hx, hi, size):
 
 @njit(nogil=True, cache=True)
 def _sift_up(hx, hi, pos):
+    """Restore the min-heap property after an element was added at `pos` (moves it toward the root)."""
     while pos > 0:
         parent = (pos - 1) // 2
         if hx[pos] < hx[parent]:
@@ -195,39 +195,30 @@ def _sift_up(hx, hi, pos):
 
 
 @njit(nogil=True, cache=True)
-def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-                   s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, logn, opt, k_top, count,
-                   run, hits, rowmap, glo, ginv, hist, ext, bucket, bcnt, bidx, kept, out_hyper, out_evals,
-                   out_theta, out_sigma, out_rank, rank_bin, rhist, wmax, lobin):
-    """Run n_sweeps post-warm-up sweeps, updating the running summaries (see the module notes).
-
-    count[0]: draws accumulated so far by this chain. run (N_R, J) float64; hits (N_H, J) unsigned;
-    rowmap (N_Q,) the histogram row of each quantity or -1; glo, ginv (rows, J) grid origin and
-    1 / bin width; hist (rows, J, B + 2); ext (rows, J, 2) min and max; bucket = (lo, 1 / width) of
-    the rank buckets, bcnt (G,) and bidx (J,) scratch; kept (m,) group indices whose draws are stored
-    row by row into out_theta, out_sigma (separate) and out_rank (m,); out_hyper (rows, N_Y) holds
-    mu, tau, s, nu, shared sigma and sqrt(mean_j sigma_j^2); out_evals the slice evaluations.
-    Rank intervals of every group: rank_bin (J + 2,) maps a rank to its bin of the shared rank grid;
-    rhist (J, RB) counts the bins of each draw's lower rank bound 1 + (groups in better buckets); wmax
-    (J,) keeps the largest (bucket count - 1) seen, so upper bound <= lower bound + wmax in every draw;
-    lobin (G,) scratch.
-    """
-    J = ybar.shape[0]
+def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
+    """Run n_sweeps post-warm-up sweeps, updating the running summaries (see the module notes) and storing
+    the hyperparameters and the kept groups' draws in rows 0 .. n_sweeps - 1 of `out` (KeptRows)."""
+    J = d.ybar.shape[0]
+    hist = acc.hist
+    ext = acc.ext
     B = hist.shape[2] - 2
+    bcnt = acc.bcnt
+    bidx = acc.bidx
     G = bcnt.shape[0]
+    kept = sh.kept
     m = kept.shape[0]
-    # one stored row, so that kernel.sweeps reports its slice evaluations
-    o_mu, o_tau, o_theta, o_sigma, o_s, o_nu, o_ev = _buffers(within, J, 1)
-    center, scale, sign = opt[O_CENTER], opt[O_SCALE], opt[O_SIGN]
-    has_thr = opt[O_HAS_THR] > 0.0
-    has_bias = opt[O_HAS_BIAS] > 0.0
-    limits = opt[O_LIMITS] > 0.0
-    thr, allowed = opt[O_THR], opt[O_BIAS]
+    glo, ginv, rowmap = sh.glo, sh.ginv, sh.rowmap
+    asked = sh.asked
+    sign = asked[A.A_SIGN]
+    limits = asked[A.A_LIMITS] > 0.0
     r_sig, r_w, r_f, r_bias = rowmap[Q_LOGSIGMA], rowmap[Q_LOGITW], rowmap[Q_LOGITF], rowmap[Q_BIAS]
-    k = min(k_top, J)
+    heavy = st.lam.shape[0] > 0
+    sg = acc.sg
+    run, hits = acc.run, acc.hits
+    k = min(sh.k_top, J)
     hx = np.empty(k)
     hi = np.empty(k, dtype=np.int64)
-    blo, binv = bucket[0], bucket[1]
+    blo, binv = sh.bucket[0], sh.bucket[1]
     above = np.empty(G, dtype=np.int64)
     # kept groups: sorted values, and a lookup table from a value to its count of smaller kept values
     L = 4 * m if m > 0 else 1
@@ -235,30 +226,35 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
     ss = np.empty(m)
     cell = np.empty(L, dtype=np.int64)
     poscnt = np.empty(m + 1, dtype=np.int64)
+    theta = st.theta
+    sc = st.scalars
     for it in range(n_sweeps):
-        sweeps(rng, 1, False, within, n, ybar, m2, v_known, mu_kind, mu_loc, mu_scale, tau_kind, tau_scale,
-               s2_shape, s2_rate, nu_grid, nu_logprior, nu_table, layout, state, theta, sigma2, o_mu, o_tau, o_theta, o_sigma, o_s,
-               o_nu, o_ev, 0)
-        ev = o_ev[0]
-        count[0] += 1.0
-        inv = 1.0 / count[0]
-        eta = state[ETA]
+        ev = sweep(rng, False, d, st, wk)
+        fill_sigma(d, st, sg)
+        acc.count[0] += 1.0
+        inv = 1.0 / acc.count[0]
+        eta = sc[ETA]
         tau2 = math.exp(2.0 * eta)
-        mu_u = state[MU] * scale + center
+        mu = sc[MU]
+        cut = sh.cuts[int(sc[DF_IDX])] if heavy else 0.0
+        A.accumulate(d.within, d.n, d.v_known, mu, tau2, theta, sg, st.lam, cut, asked, inv, run, hits)
         row = it
-        # the stored draws are what kernel.sweeps stores in a full run
-        out_hyper[row, Y_MU] = o_mu[0]
-        out_hyper[row, Y_TAU] = o_tau[0]
-        out_hyper[row, Y_S] = o_s[0] if within == 0 else 0.0
-        out_hyper[row, Y_NU] = o_nu[0] if within == 0 else 0.0
-        out_hyper[row, Y_SIGMA] = o_sigma[0, 0] if within == 1 else 0.0
-        out_evals[row] = ev
+        h = out.hyper
+        h[row, Y_MU] = mu
+        h[row, Y_TAU] = math.exp(eta)
+        h[row, Y_S] = math.sqrt(sc[S2]) if d.within == 0 else 0.0
+        h[row, Y_NU] = d.nu_grid[int(sc[NU_IDX])] if d.within == 0 else 0.0
+        h[row, Y_SIGMA] = sg[0] if d.within == 1 else 0.0
+        h[row, Y_DF] = d.df_grid[int(sc[DF_IDX])] if heavy else math.inf
+        out.evals[row] = ev
         # kept groups first: their sorted values set up the exact-rank lookup for the pass over J
         for i in range(m):
             sv[i] = sign * theta[kept[i]]
-            out_theta[row, i] = o_theta[0, kept[i]]
-            if within == 0:
-                out_sigma[row, i] = o_sigma[0, kept[i]]
+            out.theta[row, i] = theta[kept[i]]
+            if d.within == 0:
+                out.sigma[row, i] = sg[kept[i]]
+            if heavy:
+                out.lam[row, i] = st.lam[kept[i]]
         order = np.argsort(sv)
         for r in range(m):
             ss[r] = sv[order[r]]
@@ -278,46 +274,21 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
         size = 0
         best_x = -np.inf
         best_j = 0
-        s2_shared = state[SIGMA2]
         s2_sum = 0.0
         for j in range(J):
             th = theta[j]
-            d = th - run[R_THETA, j]
-            run[R_THETA, j] += d * inv
-            run[R_THETA_M2, j] += d * (th - run[R_THETA, j])
             _hist_add(hist, ext, glo, ginv, 0, j, th, B)
             if r_bias >= 0:
-                _hist_add(hist, ext, glo, ginv, r_bias, j, th - state[MU], B)
-            if within == 0:
-                s2j = sigma2[j]
-                vj = s2j / n[j]
-            elif within == 1:
-                s2j = s2_shared
-                vj = s2j / n[j]
-            else:
-                s2j = 1.0
-                vj = v_known[j]
-            w = vj / (vj + tau2)
-            run[R_SHRINK, j] += (w - run[R_SHRINK, j]) * inv
-            if within == 0:
-                s2_sum += s2j
-                ls = math.log(s2j)
-                sg = math.sqrt(s2j)
-                run[R_SIGMA, j] += (sg - run[R_SIGMA, j]) * inv
-                _hist_add(hist, ext, glo, ginv, r_sig, j, 0.5 * ls, B)
-                _hist_add(hist, ext, glo, ginv, r_w, j, ls - logn[j] - 2.0 * eta, B)
-            th_u = th * scale + center  # the reporter's arithmetic on draws in user units
+                _hist_add(hist, ext, glo, ginv, r_bias, j, th - mu, B)
+            if d.within == 0:
+                s = sg[j]
+                s2_sum += s * s
+                _hist_add(hist, ext, glo, ginv, r_sig, j, math.log(s), B)
+                t = tau2 / st.lam[j] if heavy else tau2
+                _hist_add(hist, ext, glo, ginv, r_w, j, A.logit_shrink(A.v_of(0, d.n, d.v_known, j, s), t), B)
             if limits:
-                f, g = outside(th_u, math.sqrt(s2j) * scale, opt)
-                run[R_OUT, j] += (f - run[R_OUT, j]) * inv
-                _hist_add(hist, ext, glo, ginv, r_f, j, logit_pair(f, g), B)
-            if has_thr:
-                if th_u > thr:
-                    hits[H_ABOVE, j] += 1
-                if th_u < thr:
-                    hits[H_BELOW, j] += 1
-            if has_bias and abs(th_u - mu_u) > allowed:
-                hits[H_BIAS, j] += 1
+                f, g = A.outside(th, sg[j] if d.within == 0 else sg[0], asked)
+                _hist_add(hist, ext, glo, ginv, r_f, j, A.logit_pair(f, g), B)
             # ranks: x = sign * theta, larger is better
             x = sign * th
             if x > best_x:  # strict: among equal values the first group wins, as a stable sort does
@@ -356,34 +327,34 @@ def summary_sweeps(rng, n_sweeps, within, n, ybar, m2, v_known, mu_kind, mu_loc,
                     while pos < m and ss[pos] < x:
                         pos += 1
                 poscnt[pos] += 1
-        if within == 0:
-            out_hyper[row, Y_SR] = math.sqrt(s2_sum / J)
-        elif within == 1:
-            out_hyper[row, Y_SR] = math.sqrt(s2_shared)
+        if d.within == 0:
+            h[row, Y_SR] = math.sqrt(s2_sum / J)
+        elif d.within == 1:
+            h[row, Y_SR] = sg[0]
         else:
-            out_hyper[row, Y_SR] = 0.0
-        for t in range(size):
-            hits[H_TOP, hi[t]] += 1
-        hits[H_BEST, best_j] += 1
-        acc = 0
+            h[row, Y_SR] = 0.0
+        for t_ in range(size):
+            hits[A.H_TOP, hi[t_]] += 1
+        hits[A.H_BEST, best_j] += 1
+        cum = 0
         for b in range(G - 1, -1, -1):
-            above[b] = acc
-            lobin[b] = rank_bin[1 + acc]  # 1 + acc <= J + 1 always; only used when the bucket holds a group
-            acc += bcnt[b]
+            above[b] = cum
+            acc.lobin[b] = sh.rank_bin[1 + cum]  # 1 + cum <= J + 1 always; only used when the bucket holds a group
+            cum += bcnt[b]
         for j in range(J):
             b = bidx[j]
             c = bcnt[b]
-            run[R_RANK, j] += above[b] + 0.5 * (c + 1)
-            run[R_RANK_ERR, j] += 0.5 * (c - 1)
-            rhist[j, lobin[b]] += 1
-            if c - 1 > wmax[j]:
-                wmax[j] = c - 1
+            run[A.R_RANK, j] += above[b] + 0.5 * (c + 1)
+            run[A.R_RANK_ERR, j] += 0.5 * (c - 1)
+            acc.rhist[j, acc.lobin[b]] += 1
+            if c - 1 > acc.wmax[j]:
+                acc.wmax[j] = c - 1
         # exact ranks of the kept groups: poscnt[p] counts the groups that exceed exactly p kept values,
         # so the kept value ss[r - 1] is exceeded by the groups with p >= r, and its rank is 1 + that
-        acc = 0
+        cum = 0
         for r in range(m, 0, -1):
-            acc += poscnt[r]
-            out_rank[row, order[r - 1]] = 1 + acc
+            cum += poscnt[r]
+            out.rank[row, order[r - 1]] = 1 + cum
 
 
 @njit(nogil=True, cache=True)
@@ -409,13 +380,13 @@ def _order_stat(counts, r, mn, mx, lo0, w, B):
 
 
 @njit(nogil=True, cache=True)
-def _to_user(x, kind, scale, center):
-    """x in the histogram's scale -> the user's quantity: 0 theta (x scale + center), 1 sigma
-    (exp(x) scale), 2 a weight or a fraction (1 / (1 + exp(-x)))."""
+def _to_quantity(x, kind):
+    """x in the histogram's scale -> the quantity in internal units: 0 theta or bias (x), 1 sigma
+    (exp(x)), 2 a weight or a fraction (1 / (1 + exp(-x)))."""
     if kind == 0:
-        return x * scale + center
+        return x
     if kind == 1:
-        return math.exp(x) * scale
+        return math.exp(x)
     if x >= 0:
         return 1.0 / (1.0 + math.exp(-x))
     e = math.exp(x)
@@ -423,15 +394,15 @@ def _to_user(x, kind, scale, center):
 
 
 @njit(nogil=True, cache=True)
-def hist_quantiles(hist, ext, glo, gw, row, probs, kind, scale, center, est, err):
+def hist_quantiles(hist, ext, glo, gw, row, probs, kind, est, err):
     """Per group, the quantiles `probs` of the pooled draws of one quantity, estimated from the chains'
-    histograms; est and err are (len(probs), J).
+    histograms; est and err are (len(probs), J), in internal units.
 
     The quantile is numpy's default (linear): with S draws, h = (S - 1) p, i = floor(h), g = h - i,
     q = x_(i) + g (x_(i+1) - x_(i)). Each order statistic x_(i) is located exactly in its bin by the
     counts and estimated by linear interpolation inside the bin, so it is off by at most the bin's
-    width; err is (1 - g) e_i + g e_(i+1), e_i the largest distance, in the user's units, from the
-    estimate to either end of x_(i)'s bin (the transform to user units is monotone).
+    width; err is (1 - g) e_i + g e_(i+1), e_i the largest distance, in the quantity's units, from the
+    estimate to either end of x_(i)'s bin (the transform to the quantity is monotone).
     """
     C = hist.shape[0]
     J = hist.shape[2]
@@ -459,10 +430,10 @@ def hist_quantiles(hist, ext, glo, gw, row, probs, kind, scale, center, est, err
             i1 = min(i0 + 1, total - 1)
             e0, a0, b0 = _order_stat(counts, i0, mn, mx, lo0, w, B)
             e1, a1, b1 = _order_stat(counts, i1, mn, mx, lo0, w, B)
-            u0 = _to_user(e0, kind, scale, center)
-            u1 = _to_user(e1, kind, scale, center)
-            d0 = max(abs(_to_user(b0, kind, scale, center) - u0), abs(u0 - _to_user(a0, kind, scale, center)))
-            d1 = max(abs(_to_user(b1, kind, scale, center) - u1), abs(u1 - _to_user(a1, kind, scale, center)))
+            u0 = _to_quantity(e0, kind)
+            u1 = _to_quantity(e1, kind)
+            d0 = max(abs(_to_quantity(b0, kind) - u0), abs(u0 - _to_quantity(a0, kind)))
+            d1 = max(abs(_to_quantity(b1, kind) - u1), abs(u1 - _to_quantity(a1, kind)))
             est[q, j] = u0 + g * (u1 - u0)
             err[q, j] = (1.0 - g) * d0 + g * d1
 

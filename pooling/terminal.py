@@ -1,83 +1,161 @@
-"""The short table printed after a run (plain text, no colours)."""
+"""The short table printed after a run (plain text, no colours), from a results.Results: the same for both ways
+of running. It presents; it computes nothing from draws."""
 from __future__ import annotations
 
+import math
 import sys
 
 import numpy as np
 
-from .posterior import Fit
+from .asked import level_label
 
 MAX_ROWS = 12
 
 
-def _fmt(x: float) -> str:
+def plural(n, one: str, many: str | None = None) -> str:
+    """'1 group', '2 groups', '1,234 measurements', '58.9 measurements' (down-weighted counts)."""
+    x = float(n)
+    word = one if x == 1 else (many or one + "s")
+    text = f"{int(x):,}" if x == int(x) else f"{x:,.1f}"
+    return f"{text} {word}"
+
+
+class Numbers:
+    """Numbers shown to the precision of the data's own spread: decimals from a typical posterior sd (two
+    significant digits of it), so 1e7 + 0.123 with an sd of 0.01 prints 10000000.123, never '1e+07'."""
+
+    def __init__(self, typical_sd: float):
+        if typical_sd > 0 and math.isfinite(typical_sd):
+            self.dec = int(min(12, max(0, 1 - math.floor(math.log10(typical_sd)))))
+        else:
+            self.dec = 4
+
+    def __call__(self, x, extra: int = 0) -> str:
+        if x is None or not np.isfinite(x):
+            return "-"
+        text = f"{x:.{self.dec + extra}f}"
+        if text.startswith("-") and not any(c in "123456789" for c in text):
+            text = text[1:]
+        return text
+
+
+def prob(x) -> str:
+    """A probability to three decimals; below 0.0005 '<0.001', above 0.9995 '>0.999' (so 0.9995 never reads 1.000)."""
     if x is None or not np.isfinite(x):
         return "-"
-    return f"{x:.4g}"
+    if x < 0.0005:
+        return "<0.001"
+    if x >= 0.9995:
+        return ">0.999" if x < 1.0 else "1"
+    return f"{x:.3f}"
+
+
+def _weight(x) -> str:
+    return "-" if x is None or not np.isfinite(x) else f"{x:.2f}"
 
 
 def _clip(label: str, width: int = 24) -> str:
-    label = label.replace("\n", " ").replace("\r", " ").replace("\t", " ")
+    label = str(label).replace("\n", " ").replace("\r", " ").replace("\t", " ")
     return label if len(label) <= width else label[: width - 1] + "…"
 
 
-# --- reporter columns: shrinkage weight and P(best), read from the run's summary.json ----------
-def _report_columns(out, J: int):
-    """(shrink_weight, p_best) arrays in group order from the reporter's summary keys, or (None, None)."""
-    import json
-    from pathlib import Path
-
-    try:
-        with open(Path(out) / "summary.json", encoding="utf-8") as fh:
-            rows = json.load(fh).get("groups_table")
-    except (OSError, ValueError, TypeError):
-        return None, None
-    if not rows or len(rows) != J:
-        return None, None
-    nan = float("nan")
-    shrink = np.array([nan if r.get("shrink_weight") is None else r["shrink_weight"] for r in rows], dtype=float)
-    p_best = np.array([nan if r.get("p_best") is None else r["p_best"] for r in rows], dtype=float)
-    return shrink, p_best
-
-
-def _fmt_p(x: float) -> str:
-    if not np.isfinite(x):
-        return "-"
-    return "<0.001" if x < 0.0005 else ">0.999" if x > 0.9995 else f"{x:.3f}"
-# --- end of reporter columns --------------------------------------------------------------------
-
-
-def print_fit(fit: Fit, out, stream=None) -> None:
+def print_results(res, out, stream=None) -> None:
+    """The terminal summary of a run whose folder is `out`."""
     stream = stream or sys.stdout
-    p = fit.problem
-    w = print
-    w(f"model: {p.model.within} within-group variances; priors: "
-      + "; ".join(f"{k} {v}" for k, v in p.model.priors().items()), file=stream)
-    w(f"data: {p.stats.J} groups" + (f", {p.stats.N} measurements" if p.stats.kind == "raw" else "")
-      + f"; {fit.raw.settings.chains} chains x {fit.raw.mu.shape[1]} draws, seed {fit.raw.seed}", file=stream)
-    w("", file=stream)
-    w(f"{'':8}{'mean':>11}{'sd':>11}{'2.5%':>11}{'97.5%':>11}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}", file=stream)
-    for name, s in fit.hyper_summary().items():
-        w(f"{name:8}{_fmt(s['mean']):>11}{_fmt(s['sd']):>11}{_fmt(s['q025']):>11}{_fmt(s['q975']):>11}"
-          f"{s['rhat']:>8.3f}{s['bulk_ess']:>10.0f}{s['tail_ess']:>10.0f}", file=stream)
-    theta = fit.draws("theta")
-    post_mean = theta.mean(axis=0)
-    lo, hi = np.quantile(theta, [0.025, 0.975], axis=0)
-    order = np.argsort(-post_mean)
-    rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2:]])
-    w("", file=stream)
+    o, t = res.options, res.table
+    p = res.problem
     st = p.stats
-    shrink, p_best = _report_columns(out, st.J)
-    more = f"{'shrink':>8}{'P(best)':>9}" if shrink is not None else ""
-    w(f"{'group':24}{'n':>7}{'raw mean':>11}{'posterior':>11}{'2.5%':>11}{'97.5%':>11}{more}", file=stream)
-    for k, j in enumerate(rows):
-        if len(order) > MAX_ROWS and k == MAX_ROWS // 2:
-            w(f"{'...':24}", file=stream)
-        more = f"{shrink[j]:>8.2f}{_fmt_p(p_best[j]):>9}" if shrink is not None else ""
-        w(f"{_clip(st.labels[j]):24}{st.n[j]:>7.6g}{_fmt(st.raw_mean[j]):>11}{_fmt(post_mean[j]):>11}"
-          f"{_fmt(lo[j]):>11}{_fmt(hi[j]):>11}{more}", file=stream)
-    status = "met" if fit.targets_met else f"MISSED for {len(fit.misses)} quantities"
-    w("", file=stream)
-    w(f"diagnostics targets (R-hat < {fit.raw.settings.targets.rhat_max}, ESS >= {fit.raw.settings.targets.ess_min:g}): "
-      f"{status}", file=stream)
-    w(f"run folder: {out}", file=stream)
+    run = res.run
+    lvl = level_label(o.level)
+
+    def w(text=""):
+        print(text, file=stream)
+
+    num = Numbers(float(np.median(t["theta_sd"])) if len(t) else 1.0)
+    w(f"model: {p.model.within} within-group variances, {p.model.between.name} between-group distribution; priors: "
+      + "; ".join(f"{k} {v}" for k, v in p.model.priors().items() if k != "between"))
+    data = plural(st.J, "group") + (f", {plural(st.N, 'measurement')}" if st.kind == "raw" else "")
+    mode = (f"; summary mode: every draw kept for the hyperparameters and {res.summary['kept_groups']} groups"
+            if res.mode == "summary" else "")
+    w(f"data: {data}; {run['chains']} chains x {run['draws_per_chain']} draws, seed {run['seed']}{mode}")
+    w()
+    head = f"{'':8}{'mean':>14}{'sd':>12}{lvl + ' interval':>31}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}"
+    w(head)
+    for name, s in res.hyper.items():
+        f = (lambda x: f"{x:.4g}") if name == "nu" else num
+        interval = f"{f(s['low'])} to {f(s['high'])}"
+        w(f"{name:8}{f(s['mean']):>14}{f(s['sd']) if name == 'nu' else num(s['sd'], 1):>12}{interval:>31}"
+          f"{s['rhat']:>8.3f}{s['bulk_ess']:>10.0f}{s['tail_ess']:>10.0f}")
+    if res.tail is not None:
+        tl = res.tail
+        df_txt = (f"df fixed at {tl['fixed_df']:g}" if tl["fixed_df"] is not None else
+                  f"df median {tl['median_df']:g}, P(normal) {prob(tl['p_normal'])}")
+        flagged = tl["outlying"]
+        names = ", ".join(_clip(x, 20) for x in flagged[:5]) + (" ..." if len(flagged) > 5 else "")
+        w(f"heavy tails: {df_txt}; {plural(len(flagged), 'group')} flagged outlying" + (f": {names}" if flagged else ""))
+    # the groups, best first
+    order = np.argsort(t["rank_mean"].to_numpy(), kind="stable")
+    rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2:]])
+    lo, hi = res.col("theta_low"), res.col("theta_high")
+    known = st.kind == "known"
+    cols = [("group", 24, "<"), ("n", 7, ">")] if not known else [("group", 24, "<")]
+    cols += [("own mean", 14, ">"), ("posterior", 14, ">"), (f"{lvl} interval", 31, ">"), ("shrink", 8, ">"),
+             ("P(best)", 8, ">")]
+    if o.threshold is not None:
+        cols.append((f"vs {o.threshold:g}", 11, ">"))
+    if o.limits:
+        cols.append(("limits", 11, ">"))
+    if "outlying" in t:
+        cols.append(("outlying", 9, ">"))
+    w()
+    w("groups, best first (" + ("highest" if o.best == "highest" else "lowest") + " is best; shrink: the weight "
+      "of the pooled mean in the group's estimate, 0 own mean to 1 pooled mean)"
+      + ("" if len(order) <= MAX_ROWS else f"; the {MAX_ROWS // 2} best and the {MAX_ROWS // 2} worst of {len(order):,}"))
+    w("".join(f"{name:{align}{width}}" for name, width, align in cols))
+    for i, j in enumerate(rows):
+        if len(order) > MAX_ROWS and i == MAX_ROWS // 2:
+            w("...")
+        cells = [_clip(t["group"].iat[j])]
+        if not known:
+            n = float(t["n"].iat[j])
+            cells.append(f"{int(n)}" if n == int(n) else f"{n:.1f}")
+        cells += [num(t["raw_mean"].iat[j]), num(t["theta_mean"].iat[j]),
+                  f"{num(t[lo].iat[j])} to {num(t[hi].iat[j])}", _weight(t["shrink_weight"].iat[j]),
+                  prob(t["p_best"].iat[j])]
+        if o.threshold is not None:
+            cells.append(str(t["threshold_side"].iat[j]))
+        if o.limits:
+            cells.append(str(t["limits_side"].iat[j]))
+        if "outlying" in t:
+            cells.append("yes" if t["outlying"].iat[j] else "")
+        w("".join(f"{c:{align}{width}}" for c, (_, width, align) in zip(cells, cols)))
+    if o.threshold is not None:
+        side = t["threshold_side"]
+        w(f"threshold {o.threshold:g}: {plural(int(np.sum(side == 'above')), 'group')} above and "
+          f"{plural(int(np.sum(side == 'below')), 'group')} below with probability >= {o.decide_at:g}; "
+          f"{int(np.sum(side == 'undecided')):,} undecided")
+    if o.limits:
+        side = t["limits_side"]
+        w(f"limits: by their means, {plural(int(np.sum(side == 'outside')), 'group')} outside and "
+          f"{plural(int(np.sum(side == 'inside')), 'group')} inside with probability >= {o.decide_at:g}; "
+          f"{int(np.sum(side == 'undecided')):,} undecided")
+    w()
+    diag = res.diagnostics
+    tg = diag["targets"]
+    if res.targets_met:
+        scope = "hyperparameters and kept groups" if res.mode == "summary" else "every checked quantity"
+        w(f"diagnostics targets met ({scope}; R-hat < {tg['rhat_below']}, ESS >= {tg['ess_at_least']:g})")
+    else:
+        worst = diag["missed"][0] if diag["missed"] else {}
+        what = worst.get("name", "")
+        if "group" in worst:
+            what += f" of {_clip(worst['group'], 20)}"
+        w(f"diagnostics targets MISSED for {plural(diag['missed_count'], 'quantity', 'quantities')} after "
+          f"{run['draws_per_chain']} draws per chain (worst: {what}, R-hat {worst.get('rhat', float('nan')):.3f}, "
+          f"bulk ESS {worst.get('bulk_ess', float('nan')):.0f}); run again with more draws, for example "
+          f"--draws {2 * run['draws_requested']} --max-draws {8 * run['draws_requested']}, or a proper prior on tau")
+    if res.mode == "summary":
+        cr = res.summary["figures"]["classic_rhat"]
+        if cr["groups"]:
+            w(f"all groups, classic R-hat of theta: largest {cr['max']:.4g}, {cr['above_1.01']:,} at 1.01 or more")
+    w(f"run folder: {out}" + (" (groups.csv has every group)" if res.mode == "summary" else ""))

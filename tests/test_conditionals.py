@@ -12,7 +12,14 @@ collapsed move of nu before them and a common rescaling of s^2 and sigma^2 after
 variance block (pooling.kernel.block_b) is called directly, many times from one fixed state:
 sigma_j^2 | theta, s^2, nu (i.i.d. draws, KS against one scipy.stats.invgamma per group),
 s^2 | sigma^2, nu (PIT against scipy.stats.gamma), nu | sigma^2, s^2 (chi-square of the grid
-counts against the summed exact probabilities, and a randomised PIT).
+counts against the summed exact probabilities, and a randomised PIT). The heavy-tailed between-group
+distribution's move (pooling.kernel.tail_step) is called the same way: df | theta, mu, tau against the
+product of scipy.stats.t densities, and lambda_j | theta_j, mu, tau, df against scipy.stats.gamma.
+
+Every run goes through model.build, with priors stated in the user's units (the defaults where a
+test says so, as the README states them); the references convert those priors to the kernel's units
+themselves (tests/kernel_helpers.internal), so a wrong conversion or a wrong default in model.build
+fails here too.
 
 Markov moves, by their stationary distribution: the slice update of log tau (independent chains
 of the `known` structure, where nothing feeds back into tau, started from exact draws of
@@ -51,65 +58,18 @@ import pytest
 from scipy import integrate, special, stats
 
 from pooling import kernel
+from tests.kernel_helpers import (README_DEFAULT, SCHOOLS_SE, SCHOOLS_Y, Gamma, HalfCauchy, HalfNormal, Model, Normal,
+                                  NuFixed, NuGrid, dyestuff_problem, internal, run, schools_problem, start_state)
 
 ALPHA = 1e-3  # rejection level of every goodness-of-fit test in this file
 
-# Source: Rubin (1981), Table 2 (eight schools; estimate and standard error), from memory.
-SCHOOLS_Y = np.array([28.0, 8.0, -3.0, 7.0, -1.0, 1.0, 18.0, 12.0])
-SCHOOLS_SE = np.array([15.0, 10.0, 16.0, 11.0, 9.0, 11.0, 10.0, 18.0])
-
-# Source: Davies (1947) dyestuff yields, 6 batches of 5 (Box and Tiao 1973, Table 5.1.1), from
-# memory. We keep the first n_j of each batch (n = 1..5, 5) so that the group sizes differ and a
-# group with one observation (M2 = 0) is included.
-DYESTUFF = [
-    [1545, 1440, 1440, 1520, 1580],
-    [1540, 1555, 1490, 1560, 1495],
-    [1595, 1550, 1605, 1510, 1560],
-    [1445, 1440, 1595, 1465, 1545],
-    [1595, 1630, 1515, 1635, 1625],
-    [1520, 1455, 1450, 1480, 1445],
-]
-CUT = [1, 2, 3, 4, 5, 5]
+# The old internal units of these tests were (yield - 1527.5) / 64 for the dyestuff and y / 16 for the
+# schools; the priors below are the same priors stated in the user's units.
+DYE_C, DYE_K = 1527.5, 64.0
 
 
-def _dyestuff_internal():
-    """Unbalanced dyestuff statistics in internal units: (y - 1527.5) / 64."""
-    groups = [(np.array(b[:k], dtype=float) - 1527.5) / 64.0 for b, k in zip(DYESTUFF, CUT)]
-    n = np.array([len(g) for g in groups], dtype=float)
-    ybar = np.array([g.mean() for g in groups])
-    m2 = np.array([np.sum((g - g.mean()) ** 2) for g in groups])
-    return n, ybar, m2
-
-
-def run_kernel(within, n, ybar, m2, v_known, *, n_sweeps, seed, mu_prior=(0, 0.0, 1.0), tau_prior=(0, 1.0),
-               s2_prior=(0.0, 0.0), nu_grid=(4.0,), nu_weights=None, init_sigma2=None, kern=kernel):
-    """Run kern.sweeps once for n_sweeps from a fixed start; return the out_* arrays (internal units)."""
-    J = len(ybar)
-    nu_grid = np.asarray(nu_grid, dtype=float)
-    w = np.ones(len(nu_grid)) if nu_weights is None else np.asarray(nu_weights, dtype=float)
-    nu_logprior = np.log(w / w.sum())
-    state = np.zeros(kern.N_SCALARS)
-    state[kern.ETA] = 0.0
-    state[kern.MU] = float(np.mean(ybar))
-    state[kern.S2] = 1.0
-    state[kern.NU_IDX] = len(nu_grid) // 2
-    state[kern.WIDTH] = 1.0
-    state[kern.SIGMA2] = 1.0
-    theta = ybar.copy()
-    sigma2 = np.ones(J) if init_sigma2 is None else init_sigma2.copy()
-    width_sigma = J if within == 0 else 1 if within == 1 else 0
-    out = {
-        "mu": np.empty(n_sweeps), "tau": np.empty(n_sweeps), "theta": np.empty((n_sweeps, J)),
-        "sigma": np.empty((n_sweeps, width_sigma)),
-        "s": np.empty(n_sweeps if within == 0 else 0), "nu": np.empty(n_sweeps if within == 0 else 0),
-        "evals": np.empty(n_sweeps),
-    }
-    rng = np.random.default_rng(seed)
-    kern.sweeps(rng, n_sweeps, False, within, n, ybar, m2, v_known, mu_prior[0], mu_prior[1], mu_prior[2],
-                tau_prior[0], tau_prior[1], s2_prior[0], s2_prior[1], nu_grid, nu_logprior,
-                *kernel.prepare(n, nu_grid), state, theta, sigma2,
-                out["mu"], out["tau"], out["theta"], out["sigma"], out["s"], out["nu"], out["evals"], 0)
-    return out
+def dye_model(**kw) -> Model:
+    return Model(**kw)
 
 
 def _ks_uniform(u):
@@ -120,27 +80,35 @@ def _ks_uniform(u):
 # reference closed forms (scipy.stats parametrisations)
 
 
-def theta_pit(out, ybar, v_prev, swap=False):
-    """theta_j | mu, tau, v ~ N(w_j, 1/p_j), p_j = 1/tau^2 + 1/v_j, w_j = (mu/tau^2 + ybar_j/v_j)/p_j.
+def _t2(out, lam_prev):
+    """The prior variance of theta_j in each row: tau^2, or tau^2 / lambda_j (heavy tails, lambda of the row before)."""
+    tau2 = out["tau"][1:, None] ** 2
+    return tau2 if lam_prev is None else tau2 / lam_prev
+
+
+def theta_pit(out, ybar, v_prev, swap=False, lam_prev=None):
+    """theta_j | mu, tau, v ~ N(w_j, 1/p_j), p_j = 1/t_j + 1/v_j, w_j = (mu/t_j + ybar_j/v_j)/p_j, t_j = tau^2
+    (or tau^2 / lambda_j for the heavy-tailed between-group distribution).
 
     Source: the posterior of a normal mean under a normal prior (precision-weighted average);
     Gelman et al., Bayesian Data Analysis 3rd ed. (BDA3), eq. (5.17). `swap` is the deliberate
     error of exchanging the two weights.
     """
     mu = out["mu"][1:, None]
-    tau2 = out["tau"][1:, None] ** 2
+    tau2 = _t2(out, lam_prev)
     p = 1.0 / tau2 + 1.0 / v_prev
     w = (mu / v_prev + ybar / tau2) / p if swap else (mu / tau2 + ybar / v_prev) / p
     return stats.norm.cdf(out["theta"][1:], loc=w, scale=np.sqrt(1.0 / p))
 
 
-def mu_pit(out, ybar, v_prev, mu_prior, drop_tau=False):
-    """mu | tau, v ~ N(m, V), 1/V = sum_j 1/(v_j + tau^2) [+ 1/s0^2], m = V (sum_j ybar_j/(v_j + tau^2) [+ m0/s0^2]).
+def mu_pit(out, ybar, v_prev, mu_prior, drop_tau=False, lam_prev=None):
+    """mu | tau, v ~ N(m, V), 1/V = sum_j 1/(v_j + t_j) [+ 1/s0^2], m = V (sum_j ybar_j/(v_j + t_j) [+ m0/s0^2]),
+    t_j = tau^2 (or tau^2 / lambda_j).
 
     Source: BDA3 eq. (5.20) (flat prior on mu), with a N(m0, s0^2) prior entering as one more
     observation. `drop_tau` is the deliberate error of leaving tau^2 out of the weights.
     """
-    tau2 = out["tau"][1:, None] ** 2 * (0.0 if drop_tau else 1.0)
+    tau2 = _t2(out, lam_prev) * (0.0 if drop_tau else 1.0)
     prec = 1.0 / (v_prev + tau2)
     sp = prec.sum(axis=1)
     spy = (prec * ybar).sum(axis=1)
@@ -232,77 +200,103 @@ THETA_SHIFT = np.array([0.1, -0.2, 0.05, 0.3, -0.1, 0.0])  # theta_j - ybar_j: s
 
 @pytest.fixture(scope="module")
 def separate_grid_run():
-    """Full sweeps: separate, nu on a grid with unequal weights, gamma s^2 prior, normal mu, half-Cauchy tau."""
-    n, ybar, m2 = _dyestuff_internal()
-    out = run_kernel(0, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=20240611, mu_prior=(1, 0.3, 0.4),
-                     tau_prior=(2, 0.5), s2_prior=(2.0, 1.5), nu_grid=SEP_GRID, nu_weights=SEP_WEIGHTS)
-    return dict(out=out, n=n, ybar=ybar, mu_prior=(1, 0.3, 0.4))
+    """Full sweeps: separate, nu on a grid with unequal weights, gamma s^2 prior, normal mu, half-Cauchy tau,
+    the normal between-group distribution."""
+    model = Model(within="separate", between="normal", mu=Normal(DYE_C + 0.3 * DYE_K, 0.4 * DYE_K),
+                  tau=HalfCauchy(0.5 * DYE_K), s2=Gamma(2.0, 1.5 / DYE_K ** 2),
+                  nu=NuGrid(tuple(SEP_GRID), tuple(SEP_WEIGHTS)))
+    p = dyestuff_problem(model)
+    out = run(p, n_sweeps=N_SWEEPS, seed=20240611)
+    return dict(out=out, n=p.n, ybar=p.ybar, mu_prior=internal(p, model)["mu"], lam=None)
 
 
 @pytest.fixture(scope="module")
 def separate_fixed_run():
-    """Full sweeps: separate, nu fixed at 3, p(s^2) ∝ 1/s^2, flat mu, flat tau."""
-    n, ybar, m2 = _dyestuff_internal()
-    out = run_kernel(0, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=7, nu_grid=(3.0,))
-    return dict(out=out, n=n, ybar=ybar, mu_prior=(0, 0.0, 1.0))
+    """Full sweeps through the defaults (README: heavy tails with df learned, flat mu, flat tau,
+    p(s^2) ∝ 1/s^2), nu fixed at 3."""
+    model = Model(nu=NuFixed(3.0))
+    p = dyestuff_problem(model)
+    assert p.heavy and internal(p, model)["mu"] == (0, 0.0, 1.0)
+    out = run(p, n_sweeps=N_SWEEPS, seed=7)
+    return dict(out=out, n=p.n, ybar=p.ybar, mu_prior=(0, 0.0, 1.0), lam=out["lam"][:-1])
 
 
 @pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
 def test_theta_and_mu_given_separate_variances(which, request):
-    # theta and mu of sweep t are drawn given the variances as the previous sweep left them (after
-    # all of its variance moves), and those are the recorded sigma of row t - 1
+    # theta and mu of sweep t are drawn given the variances (and, for heavy tails, the lambda_j) as the
+    # previous sweep left them (after all of its moves), and those are the recorded rows t - 1
     r = request.getfixturevalue(which)
-    out, n = r["out"], r["n"]
+    out, n, lam = r["out"], r["n"], r["lam"]
     v_prev = out["sigma"][:-1] ** 2 / n
-    u = theta_pit(out, r["ybar"], v_prev)
+    u = theta_pit(out, r["ybar"], v_prev, lam_prev=lam)
     assert _ks_uniform(u) > ALPHA
     for j in range(u.shape[1]):  # per group too: an error in one group's index would hide in the pool
         assert _ks_uniform(u[:, j]) > ALPHA / u.shape[1], j
-    assert _ks_uniform(theta_pit(out, r["ybar"], v_prev, swap=True)) < ALPHA
-    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"])) > ALPHA
-    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], drop_tau=True)) < ALPHA
+    assert _ks_uniform(theta_pit(out, r["ybar"], v_prev, swap=True, lam_prev=lam)) < ALPHA
+    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], lam_prev=lam)) > ALPHA
+    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], drop_tau=True, lam_prev=lam)) < ALPHA
+    if lam is not None:  # heavy tails: leaving the lambda_j out of theta's prior variance is caught where they
+        # matter, in the draws whose lambda_j (of the sweep before: a selection that keeps U uniform) is small
+        small = lam < 0.5
+        assert small.sum() > 500
+        assert _ks_uniform(u[small]) > ALPHA
+        assert _ks_uniform(theta_pit(out, r["ybar"], v_prev)[small]) < ALPHA
 
 
-def run_block_b(theta, s2, nu_idx, *, draws, seed, s2_prior, nu_grid, nu_weights, kern=kernel):
-    """Call kern.block_b `draws` times for `separate`, each time from the same (theta, s^2, nu).
+def run_block_b(theta, s2, nu_idx, *, draws, seed, model):
+    """Call kernel.block_b `draws` times for `separate`, each time from the same (theta, s^2, nu), with the
+    kernel's data made by model.build from `model`.
 
     In a sweep the variance block draws sigma_j^2 | theta, s^2, nu, then s^2 | sigma^2, nu, then
     nu | sigma^2, s^2 (the extra moves of a sweep come before and after it). Returns, per call,
     sigma^2 (draws, J), the new s^2 and the new nu.
     """
-    n, ybar, m2 = _dyestuff_internal()
-    grid = np.asarray(nu_grid, dtype=float)
-    logprior = np.log(np.asarray(nu_weights) / np.sum(nu_weights))
+    p = dyestuff_problem(model)
+    d = p.data
+    grid = p.nu_grid
     rng = np.random.default_rng(seed)
-    state, sigma2, lp = np.zeros(kern.N_SCALARS), np.ones(len(n)), np.empty(len(grid))
-    out_sigma2, out_s2, out_nu = np.empty((draws, len(n))), np.empty(draws), np.empty(draws)
+    st = start_state(p)
+    lp = np.empty(len(grid))
+    out_sigma2, out_s2, out_nu = np.empty((draws, p.J)), np.empty(draws), np.empty(draws)
     for i in range(draws):
-        state[kern.S2] = s2
-        state[kern.NU_IDX] = nu_idx
-        kern.block_b(rng, 0, n, ybar, m2, s2_prior[0], s2_prior[1], grid, logprior, state, theta, sigma2, lp)
-        out_sigma2[i] = sigma2
-        out_s2[i] = state[kern.S2]
-        out_nu[i] = grid[int(state[kern.NU_IDX])]
+        st.scalars[kernel.S2] = s2
+        st.scalars[kernel.NU_IDX] = nu_idx
+        kernel.block_b(rng, d, st.scalars, theta, st.sigma2, lp)
+        out_sigma2[i] = st.sigma2
+        out_s2[i] = st.scalars[kernel.S2]
+        out_nu[i] = grid[int(st.scalars[kernel.NU_IDX])]
     return out_sigma2, out_s2, out_nu
 
 
 BLOCK_B_CASES = [
-    # (nu index on SEP_GRID or None for nu fixed at 3, s^2 prior (a, b); (0, 0) is p(s^2) ∝ 1/s^2)
+    # (nu index on SEP_GRID or None for nu fixed at 3, s^2 prior (a, b) in internal units; None: the default
+    # prior, which the README states as p(s^2) ∝ 1/s^2, i.e. (a, b) = (0, 0))
     (2, (2.0, 1.5)),
     (4, (2.0, 1.5)),
-    (None, (0.0, 0.0)),
+    (None, None),
 ]
+
+
+def _dye_internal():
+    p = dyestuff_problem(Model(nu=NuFixed(3.0)))
+    return p.n, p.ybar, p.m2
 
 
 @pytest.mark.parametrize("nu_idx,s2_prior", BLOCK_B_CASES)
 def test_variance_block_draws(nu_idx, s2_prior):
-    n, ybar, m2 = _dyestuff_internal()
+    n, ybar, m2 = _dye_internal()
     theta = ybar + THETA_SHIFT
     s2 = 0.8
     grid, weights = (SEP_GRID, SEP_WEIGHTS) if nu_idx is not None else (np.array([3.0]), np.ones(1))
     nu = float(grid[nu_idx or 0])
-    sig2, s2_new, nu_new = run_block_b(theta, s2, nu_idx or 0, draws=10_000, seed=41 + (nu_idx or 0),
-                                       s2_prior=s2_prior, nu_grid=grid, nu_weights=weights)
+    if s2_prior is None:
+        model = Model(nu=NuFixed(3.0))  # the default prior on s^2
+        s2_prior = {"reciprocal": (0.0, 0.0)}[type(README_DEFAULT["s2"]).__name__.lower()]
+    else:
+        p0 = dyestuff_problem(Model(nu=NuFixed(3.0)))
+        model = Model(s2=Gamma(s2_prior[0], s2_prior[1] / p0.scale ** 2),
+                      nu=NuGrid(tuple(grid), tuple(weights)) if nu_idx is not None else NuFixed(3.0))
+    sig2, s2_new, nu_new = run_block_b(theta, s2, nu_idx or 0, draws=10_000, seed=41 + (nu_idx or 0), model=model)
     # sigma_j^2 | theta, s^2, nu: i.i.d. draws from one inverse gamma per group (KS, Bonferroni over groups)
     right, wrong = sigma2_law(n, ybar, m2, theta, s2, nu), sigma2_law(n, ybar, m2, theta, s2, nu, df_shift=-1.0)
     u = right.cdf(sig2)
@@ -355,7 +349,8 @@ def test_collapsed_nu_move_keeps_its_target(by_size):
     # invariant (the first half of a partially collapsed update; van Dyk and Park 2008, JASA 103).
     # Independent chains start at exact draws of that target, make 10 moves, and the final nu's
     # must still follow it (chi-square).
-    n, ybar, m2 = _dyestuff_internal()
+    p = dyestuff_problem(Model(nu=NuGrid(tuple(SEP_GRID), tuple(SEP_WEIGHTS))))
+    n, ybar, m2 = p.n, p.ybar, p.m2
     theta, s2 = ybar + THETA_SHIFT, 0.8
     ss = m2 + n * (ybar - theta) ** 2
     logp = np.log(SEP_WEIGHTS) + np.array([sum(group_marginal(nu, s2, n[j], ss[j]) for j in range(len(n)))
@@ -363,24 +358,23 @@ def test_collapsed_nu_move_keeps_its_target(by_size):
     target = np.exp(logp - logp.max())
     target /= target.sum()
     assert target.max() < 0.9  # the target is spread over the grid, so the test has something to see
-    table, work = np.empty(len(SEP_GRID)), np.empty(len(n))
-    kernel.nu_lgamma_table(n, SEP_GRID, table)
     J = len(n)
     pos, firsts, sizes = np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64), np.empty(J)
-    n_classes = kernel.size_classes(n, pos, firsts, sizes) if by_size else -1
-    assert n_classes == (len(np.unique(n)) if by_size else -1)  # unbalanced dyestuff: several sizes
+    n_classes = kernel.size_classes(n, pos, firsts, sizes)
+    assert n_classes == len(np.unique(n))  # unbalanced dyestuff: several sizes
+    layout = np.concatenate([[n_classes], firsts[: n_classes + 1], sizes[:n_classes].astype(np.int64), pos])
+    d = p.data._replace(layout=layout.astype(np.int64) if by_size else np.array([-1], dtype=np.int64))
+    work = np.empty(J)
     rng = np.random.default_rng(2008)
     chains, moves = 6000, 10
     starts = rng.choice(len(SEP_GRID), size=chains, p=target)
     finals = np.empty(chains, dtype=int)
     state = np.zeros(kernel.N_SCALARS)
-    logprior = np.log(SEP_WEIGHTS)
     for c in range(chains):
         state[kernel.S2] = s2
         state[kernel.NU_IDX] = starts[c]
         for _ in range(moves):
-            kernel.collapsed_nu_step(rng, n, ybar, m2, SEP_GRID, logprior, table, state, theta, work, n_classes, pos,
-                                     firsts, sizes)
+            kernel.collapsed_nu_step(rng, d, state, theta, work)
         finals[c] = int(state[kernel.NU_IDX])
     counts = np.bincount(finals, minlength=len(SEP_GRID))
     assert np.any(finals != starts)  # the move does move
@@ -396,7 +390,7 @@ def s2_marginal_logpdf(log_s2, theta, nu, s2_prior):
     constant of an inverse gamma, BDA3 Appendix A; checked against quadrature in the test); the
     prior is 1/s^2 or Gamma(a, b), and "+ log s^2" is the Jacobian of the log.
     """
-    n, ybar, m2 = _dyestuff_internal()
+    n, ybar, m2 = _dye_internal()
     ss = m2 + n * (ybar - theta) ** 2
     h = nu / 2.0
     s2 = np.exp(log_s2)[:, None]
@@ -413,10 +407,14 @@ def test_common_scale_move_keeps_its_target(s2_prior, moves):
     # inverse CDF of its marginal on a grid, then sigma_j^2 | s^2 from scipy.stats.invgamma), make
     # `moves` moves (one suffices when the factor is an exact draw, as under 1/s^2; the gamma prior
     # uses an accept/reject step), and s^2 and sigma_1^2 must still follow their exact marginals (KS).
-    n, ybar, m2 = _dyestuff_internal()
+    n, ybar, m2 = _dye_internal()
     theta, nu = ybar + THETA_SHIFT, 4.0
     ss = m2 + n * (ybar - theta) ** 2
     h = nu / 2.0
+    p0 = dyestuff_problem(Model(nu=NuFixed(4.0)))
+    model = Model(nu=NuFixed(4.0), **({} if s2_prior[0] == 0 else {"s2": Gamma(s2_prior[0], s2_prior[1] / p0.scale ** 2)}))
+    d = dyestuff_problem(model).data
+    assert (d.s2_shape, d.s2_rate) == pytest.approx(s2_prior)
     # the closed form of the per-group integral against quadrature, at a few values of s^2
     for s2 in (0.1, 0.8, 5.0):
         closed = h * np.log(h * s2) - (h + n[3] / 2) * np.log(h * s2 + ss[3] / 2)
@@ -439,7 +437,7 @@ def test_common_scale_move_keeps_its_target(s2_prior, moves):
         state[kernel.S2] = np.exp(log_s2[c])
         row = sigma2[c].copy()
         for _ in range(moves):
-            kernel.scale_step(rng, n, ybar, m2, s2_prior[0], s2_prior[1], state, theta, row)
+            kernel.scale_step(rng, d, state, theta, row)
         s2_after[c], sig1_after[c] = state[kernel.S2], row[0]
     assert np.mean(s2_after != np.exp(log_s2)) > 0.5  # the move does move
     assert stats.kstest(np.log(s2_after), lambda x: np.interp(x, grid, cdf)).pvalue > ALPHA
@@ -461,26 +459,36 @@ def test_common_scale_move_keeps_its_target(s2_prior, moves):
 
 
 def test_shared_sigma2_given_theta():
-    n, ybar, m2 = _dyestuff_internal()
-    out = run_kernel(1, n, ybar, m2, np.zeros(len(n)), n_sweeps=N_SWEEPS, seed=11)
+    # the defaults (README: heavy tails, flat mu and tau) with the shared structure
+    p = dyestuff_problem(Model(within="shared"))
+    n, ybar, m2 = p.n, p.ybar, p.m2
+    out = run(p, n_sweeps=N_SWEEPS, seed=11)
     assert _ks_uniform(shared_pit(out, n, ybar, m2)) > ALPHA
     assert _ks_uniform(shared_pit(out, n, ybar, m2, df_shift=-len(n))) < ALPHA
     v_prev = out["sigma"][:-1, :1] ** 2 / n
-    assert _ks_uniform(theta_pit(out, ybar, v_prev)) > ALPHA
-    assert _ks_uniform(mu_pit(out, ybar, v_prev, (0, 0.0, 1.0))) > ALPHA
+    lam = out["lam"][:-1]
+    assert _ks_uniform(theta_pit(out, ybar, v_prev, lam_prev=lam)) > ALPHA
+    assert _ks_uniform(mu_pit(out, ybar, v_prev, (0, 0.0, 1.0), lam_prev=lam)) > ALPHA
 
 
-@pytest.mark.parametrize("mu_prior", [(0, 0.0, 1.0), (1, -0.2, 0.3)])
-def test_theta_and_mu_given_known_variances(mu_prior):
-    ybar, v = SCHOOLS_Y / 16.0, (SCHOOLS_SE / 16.0) ** 2
-    out = run_kernel(2, np.ones(8), ybar, np.zeros(8), v, n_sweeps=N_SWEEPS, seed=3, mu_prior=mu_prior,
-                     tau_prior=(1, 0.8))
-    assert _ks_uniform(theta_pit(out, ybar, v)) > ALPHA
-    assert _ks_uniform(theta_pit(out, ybar, v, swap=True)) < ALPHA
-    assert _ks_uniform(mu_pit(out, ybar, v, mu_prior)) > ALPHA
-    assert _ks_uniform(mu_pit(out, ybar, v, mu_prior, drop_tau=True)) < ALPHA
-    if mu_prior[0] == 1:  # the normal prior's term matters: leaving it out is caught
-        assert _ks_uniform(mu_pit(out, ybar, v, (0, 0.0, 1.0))) < ALPHA
+@pytest.mark.parametrize("between", ["normal", "heavy"])
+@pytest.mark.parametrize("mu_prior", [None, (-3.2, 4.8)])
+def test_theta_and_mu_given_known_variances(mu_prior, between):
+    # user units: mu ~ N(-3.2, 4.8^2) (or flat), tau ~ half-normal(12.8)
+    model = Model(within="known", between=between, tau=HalfNormal(12.8),
+                  **({} if mu_prior is None else {"mu": Normal(*mu_prior)}))
+    p = schools_problem(model)
+    pri = internal(p, model)
+    ybar, v = p.ybar, p.v_known
+    assert v == pytest.approx((SCHOOLS_SE / p.scale) ** 2) and ybar == pytest.approx((SCHOOLS_Y - p.center) / p.scale)
+    out = run(p, n_sweeps=N_SWEEPS, seed=3)
+    lam = out["lam"][:-1] if p.heavy else None
+    assert _ks_uniform(theta_pit(out, ybar, v, lam_prev=lam)) > ALPHA
+    assert _ks_uniform(theta_pit(out, ybar, v, swap=True, lam_prev=lam)) < ALPHA
+    assert _ks_uniform(mu_pit(out, ybar, v, pri["mu"], lam_prev=lam)) > ALPHA
+    assert _ks_uniform(mu_pit(out, ybar, v, pri["mu"], drop_tau=True, lam_prev=lam)) < ALPHA
+    if pri["mu"][0] == 1:  # the normal prior's term matters: leaving it out is caught
+        assert _ks_uniform(mu_pit(out, ybar, v, (0, 0.0, 1.0), lam_prev=lam)) < ALPHA
 
 
 # ---------------------------------------------------------------------------------------------
@@ -527,44 +535,111 @@ def grid_cdf(lp):
 
 
 TAU_CASES = [
-    ((0, 0.0, 1.0), (0, 1.0)),    # flat mu, flat tau (the package default)
-    ((1, 0.0, 0.3125), (2, 0.3125)),  # the eight-schools priors N(0, 5^2), half-Cauchy(5), in units of 16
+    # (mu prior, tau prior) in the user's units; None: the default (README: flat)
+    (None, None),
+    (Normal(0.0, 5.0), HalfCauchy(5.0)),  # the eight-schools priors N(0, 5^2), half-Cauchy(5)
     # normal mu, half-normal tau; the mu prior sits away from the data, so that its term in
     # p(tau | v, y) matters (dropping it fails this case)
-    ((1, 1.0, 0.15), (1, 0.5)),
+    (Normal(16.0, 2.4), HalfNormal(8.0)),
 ]
 
 
-def slice_finals(cdf, ybar, v, mu_prior, tau_prior, chains=3000, steps=12, seed=99, kern=kernel):
+def slice_finals(cdf, problem, chains=3000, steps=12, seed=99):
     """Last log tau of `chains` independent chains of the known structure, each started at an exact draw."""
     rng = np.random.default_rng(seed)
     starts = np.interp(rng.random(chains), cdf, ETA_GRID)  # exact draws of eta by the inverse CDF
     finals = np.empty(chains)
     # one compiled call per chain; each chain runs `steps` sweeps with the slice width fixed (no
     # adaptation), then its last log tau is kept
-    J = len(ybar)
-    mu, tau, theta = np.empty(steps), np.empty(steps), np.empty((steps, J))
-    sig, s, nu, ev = np.empty((steps, 0)), np.empty(0), np.empty(0), np.empty(steps)
-    args = (2, np.ones(J), ybar, np.zeros(J), v, mu_prior[0], mu_prior[1], mu_prior[2], tau_prior[0], tau_prior[1],
-            0.0, 0.0, np.array([4.0]), np.zeros(1), *kernel.prepare(np.ones(J), np.array([4.0])))
+    d = problem.data
+    out = kernel.empty_draws(d, steps)
+    wk = kernel.make_work(d)
     for c in range(chains):
-        state = np.zeros(kern.N_SCALARS)
-        state[kern.ETA] = starts[c]
-        state[kern.MU] = float(np.mean(ybar))
-        state[kern.WIDTH] = 1.0
-        kern.sweeps(rng, steps, False, *args, state, ybar.copy(), np.ones(J), mu, tau, theta, sig, s, nu, ev, 0)
-        finals[c] = np.log(tau[-1])
+        st = start_state(problem, eta=starts[c])
+        kernel.sweeps(rng, steps, False, d, st, wk, out, 0)
+        finals[c] = np.log(out.tau[-1])
     return finals
 
 
 @pytest.mark.parametrize("mu_prior,tau_prior", TAU_CASES)
 def test_slice_update_of_log_tau_keeps_its_target(mu_prior, tau_prior):
-    ybar, v = SCHOOLS_Y / 16.0, (SCHOOLS_SE / 16.0) ** 2
-    lp = log_p_eta(ETA_GRID, ybar, v, mu_prior, tau_prior)
+    model = Model(within="known", between="normal", **({} if mu_prior is None else {"mu": mu_prior}),
+                  **({} if tau_prior is None else {"tau": tau_prior}))
+    p = schools_problem(model)
+    pri = internal(p, model)
+    ybar, v = p.ybar, p.v_known
+    lp = log_p_eta(ETA_GRID, ybar, v, pri["mu"], pri["tau"])
     cdf = grid_cdf(lp)
     # the grid reaches far enough: almost no mass in its first and last 1% of length
     assert cdf[80] < 1e-6 and cdf[-81] > 1 - 1e-6
-    finals = slice_finals(cdf, ybar, v, mu_prior, tau_prior)
+    finals = slice_finals(cdf, p)
     assert stats.kstest(finals, lambda x: np.interp(x, ETA_GRID, cdf)).pvalue > ALPHA
     wrong = grid_cdf(lp - ETA_GRID)  # the same density without the Jacobian of tau = exp(eta)
     assert stats.kstest(finals, lambda x: np.interp(x, ETA_GRID, wrong)).pvalue < ALPHA
+
+
+# ---------------------------------------------------------------------------------------------
+# heavy tails: df and lambda given theta, mu, tau
+
+
+def df_probs(z, grid, weights, normal_for_t=False):
+    """p(df_k | theta, mu, tau) ∝ w_k prod_j t_df_k(z_j) / tau, z_j = (theta_j - mu) / tau: the lambda_j
+    integrated out, scipy.stats.t (df = inf: scipy.stats.norm). `normal_for_t` is the deliberate error of
+    using the normal density for every df."""
+    logp = np.empty(len(grid))
+    for k, df in enumerate(grid):
+        dens = stats.norm if (np.isinf(df) or normal_for_t) else stats.t(df)
+        logp[k] = np.log(weights[k]) + dens.logpdf(z).sum()
+    p = np.exp(logp - logp.max())
+    return p / p.sum()
+
+
+@pytest.mark.parametrize("theta_shift", [0.0, 6.0])
+def test_tail_step_draws(theta_shift):
+    # From one fixed (theta, mu, tau), the tail move draws df from its discrete conditional with every
+    # lambda_j integrated out (a product of Student-t densities), then each lambda_j | df from
+    # Gamma((df + 1)/2, rate (df + z_j^2)/2) (the normal-gamma conjugate update; BDA3 sec. 17.2, from
+    # memory). theta_shift moves one group far out, which moves df toward heavy tails.
+    model = Model(within="known")  # the default between-group distribution: df learned on its grid, stated prior
+    p = schools_problem(model)
+    between = model.between
+    grid, weights = (np.asarray(x, dtype=float) for x in between.grid_and_weights())
+    d = p.data
+    assert np.array_equal(d.df_grid, grid) and np.allclose(np.exp(d.df_logprior), weights / weights.sum())
+    theta = p.ybar.copy()
+    theta[0] += theta_shift
+    mu, eta = float(np.mean(p.ybar)), np.log(0.6)
+    z = (theta - mu) / np.exp(eta)
+    probs = df_probs(z, grid, weights)
+    st = start_state(p)
+    wk = kernel.make_work(d)
+    rng = np.random.default_rng(17)
+    draws = 12_000
+    ks, lams = np.empty(draws, dtype=int), np.empty((draws, p.J))
+    for i in range(draws):
+        st.theta[:] = theta
+        st.scalars[kernel.MU], st.scalars[kernel.ETA] = mu, eta
+        kernel.tail_step(rng, d, st, wk)
+        ks[i] = int(st.scalars[kernel.DF_IDX])
+        lams[i] = st.lam
+        assert np.allclose(wk.inv_lam, 1.0 / st.lam)
+    counts = np.bincount(ks, minlength=len(grid)).astype(float)
+    keep = probs * draws >= 5  # cells with expected count < 5 are pooled (common practice)
+    e, o = probs[keep] * draws, counts[keep]
+    if (~keep).any():
+        e, o = np.append(e, probs[~keep].sum() * draws), np.append(o, counts[~keep].sum())
+    assert stats.chisquare(o, e).pvalue > ALPHA
+    wrong = df_probs(z, grid, weights, normal_for_t=True)
+    ew = wrong[keep] * draws
+    if (~keep).any():
+        ew = np.append(ew, wrong[~keep].sum() * draws)
+    assert stats.chisquare(o, ew * o.sum() / ew.sum()).pvalue < ALPHA
+    # lambda_j | df: the PIT of each draw given its own df (at df = inf every lambda_j is 1)
+    df = grid[ks]
+    fin = np.isfinite(df)
+    assert np.all(lams[~fin] == 1.0)
+    a = (df[fin, None] + 1.0) / 2.0
+    rate = (df[fin, None] + z[None, :] ** 2) / 2.0
+    u = stats.gamma.cdf(lams[fin], a=a, scale=1.0 / rate)
+    assert _ks_uniform(u) > ALPHA
+    assert _ks_uniform(stats.gamma.cdf(lams[fin], a=df[fin, None] / 2.0, scale=1.0 / rate)) < ALPHA  # shape df/2

@@ -49,7 +49,7 @@ def y(reference):
 def ours(reference, y):
     schools = [str(s) for s in reference.posterior["school"].values]
     est = pooling.from_estimates(pd.DataFrame({"school": schools, "y": y, "se": SIGMA}), "school", "y", "se")
-    model = pooling.Model(within="known", mu=pooling.Normal(MU0, S0), tau=pooling.HalfCauchy(TAU_SCALE))
+    model = pooling.Model(within="known", between="normal", mu=pooling.Normal(MU0, S0), tau=pooling.HalfCauchy(TAU_SCALE))
     # 4 x 10,000 draws: our MCSEs are then a third of arviz's, so the comparison with arviz is
     # limited by the reference draws and the comparison with the exact posterior is tight
     fit = pooling.fit(est, model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=8, max_draws=10_000))

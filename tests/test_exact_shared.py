@@ -46,10 +46,11 @@ DYESTUFF = {
 }
 PROBS = (0.1, 0.5, 0.9)
 CASES = {
-    # the package defaults for `shared`: mu flat, tau flat, p(log sigma) flat
-    "defaults": pooling.Model(within="shared"),
+    # the package defaults for `shared` (mu flat, tau flat, p(log sigma) flat), normal between-group distribution
+    "defaults": pooling.Model(within="shared", between="normal"),
     # proper priors on mu and tau, so that their terms in the exact density are exercised too
-    "proper": pooling.Model(within="shared", mu=pooling.Normal(1500.0, 50.0), tau=pooling.HalfCauchy(25.0)),
+    "proper": pooling.Model(within="shared", between="normal", mu=pooling.Normal(1500.0, 50.0),
+                            tau=pooling.HalfCauchy(25.0)),
 }
 
 

@@ -130,7 +130,7 @@ def test_known_structure_matches_the_exact_posterior(case):
     else:  # every estimate the same: tau's posterior piles up at zero
         se = np.full(6, 0.3)
         y = np.full(6, 12.5)
-    fit = _fit(_estimates(y, se), Model(within="known"))
+    fit = _fit(_estimates(y, se), Model(within="known", between="normal"))
     _compare_known(fit, y, se, _exact_known(y, se))
 
 
@@ -139,7 +139,7 @@ def test_known_structure_with_a_proper_tau_prior_on_two_groups():
     with pytest.raises(ModelError, match="fewer than 3 groups"):
         pooling.build(_estimates(y, se), Model(within="known"))
     scale = 2.0
-    fit = _fit(_estimates(y, se), Model(within="known", tau=pooling.HalfCauchy(scale)))
+    fit = _fit(_estimates(y, se), Model(within="known", between="normal", tau=pooling.HalfCauchy(scale)))
     ex = _exact_known(y, se, tau_prior=lambda t: -np.log1p((t / scale) ** 2))
     _compare_known(fit, y, se, ex)
 
@@ -150,7 +150,7 @@ def test_many_groups_known_structure_matches_the_exact_posterior():
     J = 5_000
     se = rng.uniform(0.5, 2.0, J)
     y = rng.normal(3.0, 0.4, J) + rng.normal(0.0, se)
-    fit = _fit(_estimates(y, se), Model(within="known"), chains=2, draws=400, warmup=200)
+    fit = _fit(_estimates(y, se), Model(within="known", between="normal"), chains=2, draws=400, warmup=200)
     _compare_known(fit, y, se, _exact_known(y, se), groups=(0, J - 1))
 
 
@@ -245,7 +245,7 @@ def test_command_line_at_extreme_scale_is_right_or_refused(run_cli, tmp_path, fa
     assert code0 in (0, 3), err0
     a = pd.read_csv(tmp_path / "scaled-run" / "groups.csv")
     b = pd.read_csv(tmp_path / "plain-run" / "groups.csv")
-    for col in ("raw_mean", "raw_sd", "theta_mean", "theta_sd", "theta_low", "theta_high"):
+    for col in ("raw_mean", "raw_sd", "theta_mean", "theta_sd", "theta_low_95", "theta_high_95"):
         np.testing.assert_allclose(a[col] / factor, b[col], rtol=1e-6, err_msg=col)
     for col in ("shrink_weight", "p_best", "rank_mean"):
         np.testing.assert_allclose(a[col], b[col], rtol=1e-6, atol=1e-9, err_msg=col)
@@ -280,7 +280,8 @@ def test_one_observation_per_group():
     assert np.all(np.isfinite(fit.draws("theta"))) and np.all(fit.draws("sigma") > 0)
     # single measurements with known standard errors are the known structure: exact check
     se = np.full(6, 0.8)
-    _compare_known(_fit(_estimates(y, se), Model(within="known")), np.array(y), se, _exact_known(np.array(y), se))
+    _compare_known(_fit(_estimates(y, se), Model(within="known", between="normal")), np.array(y), se,
+                   _exact_known(np.array(y), se))
 
 
 def test_a_group_of_a_million_beside_groups_of_two():
@@ -400,29 +401,19 @@ def test_interlab_anova_is_in_user_units_at_extreme_scale():
 def test_interlab_posterior_components_keep_their_digits_at_extreme_scale():
     """The posterior's reproducibility sd and intra-class correlation from draws of tau and s_r near
     2^-997, where tau^2 + s_r^2 underflows to 0: they must be 2^-997 times (the ICC: equal to) those
-    of the same draws unscaled. Source: exact rescaling of float64 by a power of two (IEEE 754)."""
+    of the same draws unscaled. The same internal-unit draws with the scale multiplied by 2^-997 are
+    that fit. Source: exact rescaling of float64 by a power of two (IEEE 754)."""
+    from dataclasses import replace
+
+    from pooling.posterior import Fit
     from pooling.report import interlab
 
     g, y = _raw_table()
     st, fit = _fit_frame(g, y)
     base = interlab(fit)
     f = 2.0 ** -997
-    parts = {name: part for name, part in fit.parts.items()}
-    post = parts["posterior"]
-    scaled_vars = dict(post.variables)
-    for name in ("mu", "tau", "theta", "sigma", "s"):
-        dims, values, attrs = post.variables[name]
-        scaled_vars[name] = (dims, values * f, attrs)
-    const = parts["constant_data"]
-    cvars = dict(const.variables)
-    for name in ("raw_mean", "raw_sd"):
-        dims, values, attrs = const.variables[name]
-        cvars[name] = (dims, values * f, attrs)
-    from pooling.posterior import Part
-
-    scaled_parts = {"posterior": Part(scaled_vars, post.coords, post.attrs),
-                    "constant_data": Part(cvars, const.coords, const.attrs)}
-    scaled = interlab(scaled_parts)
+    p = fit.problem
+    scaled = interlab(Fit(replace(p, center=p.center * f, scale=p.scale * f), fit.raw, fit.misses))
     for k in ("repeatability_sd", "reproducibility_sd", "between_sd"):
         for q in ("mean", "low", "high"):
             assert scaled[k][q] == pytest.approx(base[k][q] * f, rel=1e-12), (k, q)

@@ -110,12 +110,12 @@ def test_signal_during_sampling_leaves_nothing_and_exits_5(tmp_path, small_csv, 
 
 def test_interrupt_while_writing_leaves_no_folder(run_cli, small_csv, tmp_path, monkeypatch):
     """Ctrl-C after sampling, while the files are being written (the reporter's step)."""
-    import pooling.report as report
+    import pooling.output as output
 
     def stopped(*a, **k):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(report, "write_report_files", stopped)
+    monkeypatch.setattr(output, "write_results_files", stopped)
     out = tmp_path / "run"
     code, _, err = _fit(run_cli, small_csv, out)
     assert code == 5 and "stopped by the user" in _one_line(err)
@@ -125,12 +125,12 @@ def test_interrupt_while_writing_leaves_no_folder(run_cli, small_csv, tmp_path, 
 def test_interrupt_after_the_folder_is_in_place_says_so(run_cli, small_csv, tmp_path, monkeypatch):
     """Ctrl-C while the run's table is printed: the folder is complete, and the message must not
     claim that nothing was written (source: the documented exit codes and messages, README)."""
-    import pooling.cli as cli
+    import pooling.terminal as terminal
 
     def stopped(*a, **k):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(cli, "_print_run", stopped)
+    monkeypatch.setattr(terminal, "print_results", stopped)
     out = tmp_path / "run"
     code, _, err = run_cli("fit", small_csv, "--group", "plant", "--value", "thickness", "--out", out,
                            "--seed", "1", "--draws", "200", "--warmup", "200", "--max-draws", "200")
@@ -252,7 +252,7 @@ def test_full_disk_preflight_without_mount(run_cli, small_csv, tmp_path, monkeyp
 def test_disk_fills_during_the_write(run_cli, small_csv, tmp_path, monkeypatch, where):
     """ENOSPC from an ordinary write after the check passed (another process filled the disk)."""
     import pooling.output as output
-    import pooling.report as report
+    import pooling.report.export as export
 
     def full(*a, **k):
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
@@ -260,7 +260,7 @@ def test_disk_fills_during_the_write(run_cli, small_csv, tmp_path, monkeypatch, 
     if where == "summary":
         monkeypatch.setattr(output, "write_json", full)
     else:
-        monkeypatch.setattr(report, "write_report_files", full)
+        monkeypatch.setattr(export, "write_csv", full)
     out = tmp_path / "run"
     code, _, err = _fit(run_cli, small_csv, out)
     assert code == 6 and "disk is full" in _one_line(err)
@@ -313,6 +313,7 @@ def test_folder_made_by_someone_else_during_the_fit_is_not_overwritten(small_csv
     import pooling
     from pooling.errors import OutputError
     from pooling.output import write_run
+    from pooling.results import compute
 
     fit = pooling.fit(pooling.read_table(small_csv, "plant", "thickness"),
                       settings=pooling.Settings(chains=2, draws=30, warmup=30, seed=1), progress=False)
@@ -320,7 +321,7 @@ def test_folder_made_by_someone_else_during_the_fit_is_not_overwritten(small_csv
     out.mkdir()
     (out / "theirs.txt").write_text("theirs")
     with pytest.raises(OutputError, match="exists already"):
-        write_run(fit, out)
+        write_run(fit, compute(fit), out)
     assert [p.name for p in out.iterdir()] == ["theirs.txt"] and _leftovers(tmp_path) == []
 
 

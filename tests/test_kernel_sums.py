@@ -53,6 +53,48 @@ def test_weighted_sums_equal_the_plain_sums():
         assert abs(a - math.fsum(terms)) <= 1e-13 * math.fsum(np.abs(terms))
 
 
+def _known_data(ybar, v, between=0, df_grid=(math.inf,)):
+    """kernel.Data for the known structure with flat priors on mu and tau."""
+    J = len(ybar)
+    grid = np.asarray(df_grid, dtype=float)
+    table, layout = kernel.prepare(np.ones(J), np.array([4.0]))
+    return kernel.Data(2, np.ones(J), np.asarray(ybar, dtype=float), np.zeros(J), np.asarray(v, dtype=float), 0, 0.0,
+                       1.0, 0, 1.0, 0.0, 0.0, np.array([4.0]), np.zeros(1), table, layout, between, grid,
+                       np.full(len(grid), -math.log(len(grid))), kernel.t_constants(grid))
+
+
+def test_log_tau_density_with_heavy_tails_equals_its_formula():
+    # with lambda_j: each group's marginal variance is v_j + tau^2 / lambda_j (the same formula, t_j for tau^2)
+    g = np.random.default_rng(4)
+    J = 131
+    ybar, v, lam = g.normal(0.0, 1.0, J), g.uniform(0.05, 2.0, J), g.gamma(2.0, 0.5, J)
+    out = np.empty(2)
+    d = _known_data(ybar, v, between=1, df_grid=(4.0,))
+    for eta in (-2.0, 0.3):
+        t = math.exp(2 * eta) / lam
+        w = 1.0 / (v + t)
+        V = 1.0 / w.sum()
+        m = V * np.sum(w * ybar)
+        ref = eta + 0.5 * math.log(V) - 0.5 * np.sum(np.log(v + t)) - 0.5 * np.sum(w * (ybar - m) ** 2)
+        got = kernel.log_tau_density(eta, d, v, 1.0 / lam, 0.05, out)
+        assert got == pytest.approx(ref, rel=1e-12, abs=1e-9)
+        assert out[0] == pytest.approx(m, rel=1e-12, abs=1e-12)
+
+
+def test_df_loglik_is_a_sum_of_t_log_densities():
+    # Source: scipy.stats.t.logpdf and norm.logpdf; the kernel's sum takes one log per block of products
+    from scipy import stats
+
+    g = np.random.default_rng(9)
+    z = g.standard_t(3.0, 200)
+    grid = np.array([1.0, 2.5, 7.0, math.inf])
+    d = _known_data(np.zeros(200), np.ones(200), between=1, df_grid=grid)
+    z2 = z * z
+    for k, df in enumerate(grid):
+        ref = d.df_logprior[k] + (stats.norm.logpdf(z).sum() if math.isinf(df) else stats.t(df).logpdf(z).sum())
+        assert kernel.df_loglik(k, d, z2, float(z2.sum()), 200) == pytest.approx(ref, rel=1e-12)
+
+
 def test_log_tau_density_equals_its_formula():
     # log p(eta | v, y) = eta + log V / 2 - sum log(v_j + tau^2) / 2 - sum (ybar_j - m)^2 / (v_j + tau^2) / 2
     # for a flat mu and tau prior (the design notes' formula), written here with numpy directly
@@ -66,7 +108,8 @@ def test_log_tau_density_equals_its_formula():
         V = 1.0 / w.sum()
         m = V * np.sum(w * ybar)
         ref = eta + 0.5 * math.log(V) - 0.5 * np.sum(np.log(v + tau2)) - 0.5 * np.sum(w * (ybar - m) ** 2)
-        got = kernel.log_tau_density(eta, ybar, v, 0.05, 0, 0.0, 1.0, 0, 1.0, out)
+        d = _known_data(ybar, v)
+        got = kernel.log_tau_density(eta, d, v, np.empty(0), 0.05, out)
         assert got == pytest.approx(ref, rel=1e-12, abs=1e-9)
         assert out[0] == pytest.approx(m, rel=1e-12, abs=1e-12)
         assert out[1] == pytest.approx(V, rel=1e-12)

@@ -25,6 +25,7 @@ from hypothesis import strategies as st
 import pooling
 from pooling._compat import az
 from pooling.output import write_run
+from pooling.results import compute
 from pooling.posterior import finish
 from pooling.sampler import RawDraws, Settings
 
@@ -84,16 +85,14 @@ def cli_run(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def api_run(tmp_path_factory):
-    """The same through the Python API, with labels only a frame can carry, and the reporter's hook."""
-    from pooling import report
-
+    """The same through the Python API, with labels only a frame can carry."""
     labels = HOSTILE + FRAME_ONLY
     df = pd.DataFrame(_table(labels, np.random.default_rng(8)), columns=["g", "y"])
     stats = pooling.from_frame(df, "g", "y")
     assert stats.labels == tuple(labels)
     fit = pooling.fit(stats, pooling.Model(), Settings(chains=2, draws=100, warmup=100, seed=4), progress=False)
     out = tmp_path_factory.mktemp("api") / "run"
-    write_run(fit, out, extra=lambda f, folder: report.write_report(f, folder))
+    write_run(fit, compute(fit), out)
     return out, labels
 
 
@@ -166,20 +165,20 @@ def test_groups_csv_neutralises_formulas_and_keeps_the_text(run, request):
 
 
 def test_terminal_table_keeps_one_line_per_group(api_run):
-    from pooling.terminal import print_fit
+    from pooling.terminal import print_results
 
     out, labels = api_run
     fit_like = az.from_netcdf(str(out / "draws.nc"))
     assert fit_like.posterior.sizes["group"] == len(labels)
-    # print_fit needs a Fit; rebuild the small one from the statistics of the same labels
+    # the terminal presents a run's results; rebuild the small run from the statistics of the same labels
     df = pd.DataFrame(_table(labels, np.random.default_rng(8)), columns=["g", "y"])
     fit = pooling.fit(pooling.from_frame(df, "g", "y"), settings=Settings(chains=2, draws=20, warmup=20, seed=1),
                       progress=False)
     buf = io.StringIO()
-    print_fit(fit, out, stream=buf)
+    print_results(compute(fit), out, stream=buf)
     lines = buf.getvalue().splitlines()
     assert "\r" not in buf.getvalue() and "\t" not in buf.getvalue()
-    start = lines.index(next(ln for ln in lines if ln.startswith("group"))) + 1
+    start = lines.index(next(ln for ln in lines if ln.startswith("group "))) + 1  # the header row
     rows = lines[start:lines.index("", start)]
     # 24 groups: the 6 best, a '...' line, the 6 worst; a label's newline would add a line
     assert len(rows) == 13 and rows[6].strip() == "..."
@@ -195,7 +194,7 @@ LABEL = st.text(st.characters(blacklist_categories=("Cs",), blacklist_characters
 def _fake_fit(labels):
     J = len(labels)
     stats = pooling.GroupStats(tuple(labels), np.full(J, 3), np.linspace(0.0, 1.0, J), np.ones(J))
-    problem = pooling.build(stats, pooling.Model(within="shared", tau=pooling.HalfNormal(1.0)))
+    problem = pooling.build(stats, pooling.Model(within="shared", tau=pooling.HalfNormal(1.0), between="normal"))
     rng = np.random.default_rng(0)
     C, D = 2, 8
     raw = RawDraws(mu=rng.normal(size=(C, D)), tau=rng.gamma(2.0, size=(C, D)), theta=rng.normal(size=(C, D, J)),
@@ -212,7 +211,8 @@ def test_any_accepted_label_round_trips(tmp_path_factory, labels):
     except pooling.InputError:
         return  # refused at the edge with one line (tested in test_hostile_input): never reaches a folder
     out = tmp_path_factory.mktemp("p") / "run"
-    write_run(_fake_fit(labels), out)
+    fit = _fake_fit(labels)
+    write_run(fit, compute(fit), out)
     with xr.open_dataset(out / "draws.nc", group="posterior", engine="h5netcdf") as ds:
         assert [str(x) for x in ds["group"].values] == labels
     summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))

@@ -1,7 +1,8 @@
-"""How output.write_run writes draws.nc: uncompressed.
+"""How output.write_run writes draws.nc: the internal-unit draws with the CF attributes scale_factor and
+add_offset (so every digit survives any offset, and netCDF readers decode the user's units), uncompressed.
 
-That is a speed choice measured in benchmarks/README.md (`pooling fit`, whole process); this test
-checks that it does not change what is written or leave the interpreter in a changed state.
+Uncompressed is a speed choice measured in benchmarks/README.md (`pooling fit`, whole process); these
+tests check that it does not change what is written or leave the interpreter in a changed state.
 """
 from __future__ import annotations
 
@@ -26,13 +27,21 @@ _SCRIPT = textwrap.dedent(r"""
     st = stats.from_frame(frame, "g", "y")
     fit = pooling.fit(st, model.Model(), sampler.Settings(chains=2, draws=100, warmup=100, seed=5,
                                                           max_draws=100), progress=False)
-    out = output.write_run(fit, sys.argv[1])
+    from pooling.results import compute
+
+    out = output.write_run(fit, compute(fit), sys.argv[1])
     back = az.from_netcdf(str(out / "draws.nc"))
     for grp in fit.idata.groups():
         assert back[grp].identical(fit.idata[grp]), grp
     with h5py.File(out / "draws.nc", "r") as fh:
         for name in ("theta", "sigma", "mu"):
             assert fh["posterior"][name].compression is None, name
+            # stored: the internal-unit draws themselves, bit for bit
+            raw = getattr(fit.raw, name)
+            assert np.array_equal(fh["posterior"][name][...], raw), name
+        assert fh["posterior"]["theta"].attrs["add_offset"] == fit.problem.center
+        assert fh["posterior"]["theta"].attrs["scale_factor"] == fit.problem.scale
+        assert "add_offset" not in fh["posterior"]["sigma"].attrs
     print("ok")
 """)
 
@@ -91,24 +100,17 @@ def _small_fit(seed=6):
                                                            max_draws=120), progress=False)
 
 
-def test_consumed_draws_equal_copied_ones():
-    # Source: the contract of posterior.finish (consume=True converts in place instead of copying;
-    # the numbers are the same expression, so they must be equal bit for bit).
+def test_user_draws_are_the_internal_draws_mapped():
+    # Source: the contract of posterior.Fit (every draw kept in internal units; the user's units are
+    # center + scale * x for locations and scale * x for spreads, computed on request)
     import numpy as np
 
-    from pooling import model, posterior, sampler, stats
-
     fit = _small_fit()
-    assert fit.raw.theta is None and fit.raw.sigma is None  # handed over to the posterior
-    problem = fit.problem
-    raw = sampler.sample_raw(problem, sampler.Settings(chains=2, draws=120, warmup=100, seed=6, max_draws=120),
-                             progress=False)
-    kept = posterior.finish(raw, problem)  # default: copies, raw keeps its internal-unit draws
-    assert raw.theta is not None
-    np.testing.assert_array_equal(kept.parts["posterior"]["theta"], fit.parts["posterior"]["theta"])
-    np.testing.assert_array_equal(kept.parts["posterior"]["sigma"], fit.parts["posterior"]["sigma"])
-    np.testing.assert_array_equal(raw.theta * problem.scale + problem.center, fit.draws("theta").reshape(2, 120, -1))
-    del model, stats
+    p = fit.problem
+    np.testing.assert_array_equal(fit.draws("theta"), (fit.raw.theta * p.scale + p.center).reshape(240, -1))
+    np.testing.assert_array_equal(fit.draws("sigma"), (fit.raw.sigma * p.scale).reshape(240, -1))
+    np.testing.assert_array_equal(fit.parts["posterior"]["mu"], fit.raw.mu * p.scale + p.center)
+    assert fit.draws("lambda").dtype == np.float64 and fit.parts["posterior"]["lambda"].dtype == np.float64
 
 
 def test_a_failed_draws_write_leaves_no_folder(tmp_path, monkeypatch):
@@ -121,13 +123,15 @@ def test_a_failed_draws_write_leaves_no_folder(tmp_path, monkeypatch):
 
     fit = _small_fit()
 
-    def broken(fit, path):
+    def broken(parts, path):
         path.write_bytes(b"partial")
         raise OSError(28, "No space left on device")
 
+    from pooling.results import compute
+
     monkeypatch.setattr(output, "_write_draws", broken)
     with pytest.raises(OutputError, match="disk is full"):
-        output.write_run(fit, tmp_path / "run")
+        output.write_run(fit, compute(fit), tmp_path / "run")
     assert not (tmp_path / "run").exists()
     assert [p.name for p in tmp_path.iterdir()] == []
 

@@ -44,7 +44,8 @@ def _table(labels, seed=0):
     post = 100 + w * (raw - 100)
     sd = 4 / np.sqrt(n + 4)
     return pd.DataFrame({"group": list(labels), "n": n, "raw_mean": raw, "theta_mean": post,
-                         "theta_low": post - 2 * sd, "theta_high": post + 2 * sd, "shrink_weight": 1 - w})
+                         "theta_low_95": post - 2 * sd, "theta_high_95": post + 2 * sd, "shrink_weight": 1 - w,
+                         "outlying": np.arange(J) % 7 == 3})
 
 
 def _predictive(J, seed=1):
@@ -72,14 +73,15 @@ def _all_figures(labels):
     t = _table(labels)
     spread, sd = _predictive(len(labels))
     m, _, cols = _heat(len(labels))
-    from pooling.report.summary_view import histograms
-
+    rng = np.random.default_rng(5)
+    extreme = {"observed": 2 + rng.random(300), "replicated": 2 + rng.random(300), "p_value": 0.4, "group": 0}
     return {"shrinkage": plots.shrinkage(t, 100.0, title="pull"),
             "intervals": plots.intervals(t, 100.0, 0.95, lower=95.0, upper=106.0, threshold=101.0),
             "rank_heat": plots.rank_heat(m, labels, cols),
-            "predictive": plots.predictive(spread, sd, labels),
+            "predictive": plots.predictive(spread, sd, labels, extreme),
             "hyper_traces": plots.hyper_traces(_traces()),
-            "summary-hist": histograms(t, 100.0)}
+            "summary-hist": plots.histograms(t, 100.0),
+            "df_posterior": plots.df_posterior([1.0, 4.0, 16.0, np.inf], [0.1, 0.3, 0.4, 0.2], [0.5, 0.3, 0.1, 0.1])}
 
 
 def _parse(text):
@@ -281,7 +283,7 @@ def test_ten_thousand_groups_stay_small():
 
 
 def test_no_plotting_library_is_imported():
-    code = ("import sys, pooling.report, pooling.report.plots, pooling.report.page, pooling.report.summary_view; "
+    code = ("import sys, pooling.report, pooling.report.plots, pooling.report.page; "
             "print(sorted(m for m in sys.modules if m.split('.')[0] == 'matplotlib'))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"

@@ -102,9 +102,11 @@ def test_summary_json_keeps_labels_as_they_are(run):
     assert summary["report_options"]["compare"] == ["=1+2", "plain-name", "@cmd", 'A "quoted", label']
     assert summary["pairwise"]["groups"] == summary["report_options"]["compare"]
     lab = summary["interlab"]
-    for key in ("consensus", "between_sd", "repeatability_sd", "reproducibility_sd", "icc", "anova", "z_basis", "labs"):
+    for key in ("consensus", "between_sd", "repeatability_sd", "reproducibility_sd", "icc", "anova", "z_basis",
+                "agreement"):
         assert lab[key] is not None, key
-    assert {r["group"] for r in lab["labs"]} == set(LABELS)
+    # the per-lab bias and z-scores are columns of every group's row
+    assert {"bias_mean", "bias_low_90", "bias_high_90", "z_score", "z_signal"} <= set(summary["groups_table"][0])
 
 
 def test_csv_columns_agree_with_the_draws(run):
@@ -124,8 +126,8 @@ def test_csv_columns_agree_with_the_draws(run):
     np.testing.assert_allclose(table["p_above"], (theta > THRESHOLD).mean(axis=0), atol=1e-15)
     np.testing.assert_allclose(table["p_bias_over"], (np.abs(theta - mu[:, None]) > 0.5).mean(axis=0), atol=1e-15)
     lo, hi = np.quantile(theta, [0.05, 0.95], axis=0)
-    np.testing.assert_allclose(table["theta_low"], lo, rtol=1e-12)
-    np.testing.assert_allclose(table["theta_high"], hi, rtol=1e-12)
+    np.testing.assert_allclose(table["theta_low_90"], lo, rtol=1e-12)
+    np.testing.assert_allclose(table["theta_high_90"], hi, rtol=1e-12)
     assert abs(table["p_best"].sum() - 1) < 1e-12
     # and groups.csv holds the same numbers, at full precision
     rows = _csv_rows(run / "groups.csv")

@@ -1,43 +1,53 @@
-"""Reporter statistics against outside references: ranks, head-to-head probabilities and the
+"""Per-group answers against outside references: ranks, head-to-head probabilities and the
 predicted out-of-spec fraction, each computed from draws.
 
-These tests feed the reporter hand-made draws (an InferenceData with pooling's layout) whose
-posterior is known in closed form, so the references are exact formulas evaluated by scipy.stats
-and the tolerances are Monte Carlo errors of the draws.
+These tests feed the results core hand-made draws (a posterior.Fit made from them, the draws carried
+into the problem's internal units as a run keeps them) whose posterior is known in closed form, so the
+references are exact formulas evaluated by scipy.stats and the tolerances are Monte Carlo errors of the draws.
 """
 from __future__ import annotations
 
 import numpy as np
 import pytest
-import xarray as xr
 from scipy import integrate, stats
 
-from pooling._compat import az
+import pooling
+from pooling.posterior import Fit
 from pooling.report import group_table, pairwise, rank_probabilities
-from pooling.report.draws import view
-from pooling.report.groups import new_group_outside, outside_fraction, rank_draws
+from pooling.report.groups import outside_fraction
+from pooling.results import TABLE_BLOCK, compute, rank_draws
+from pooling.sampler import RawDraws, Settings
 
 
 def make_idata(theta, mu, tau, sigma=None, s=None, nu=None, n=None, raw_mean=None, labels=None):
-    """Draws shaped (chains, draws, ...) laid out as pooling.posterior.to_idata writes them."""
+    """A Fit holding draws shaped (chains, draws, ...) given in the user's units: known structure without
+    sigma (every se_j = 1), separate with sigma per group, shared with one sigma; the normal between-group
+    distribution. The draws are carried into the problem's internal units, as a run keeps them."""
     C, D, J = theta.shape
-    labels = np.array(labels if labels is not None else [f"g{j}" for j in range(J)], dtype=object)
-    post = {"mu": (("chain", "draw"), mu), "tau": (("chain", "draw"), tau), "theta": (("chain", "draw", "group"), theta)}
-    if sigma is not None:
-        post["sigma"] = (("chain", "draw", "group"), sigma) if sigma.ndim == 3 else (("chain", "draw"), sigma)
-    if s is not None:
-        post["s"] = (("chain", "draw"), s)
-        post["nu"] = (("chain", "draw"), nu)
-    n = np.full(J, 5) if n is None else n
-    raw_mean = theta.mean(axis=(0, 1)) if raw_mean is None else raw_mean
-    const = {"n": (("group",), n), "raw_mean": (("group",), raw_mean)}
+    labels = tuple(labels if labels is not None else [f"g{j}" for j in range(J)])
+    n = np.full(J, 5) if n is None else np.asarray(n)
+    raw_mean = theta.mean(axis=(0, 1)) if raw_mean is None else np.asarray(raw_mean, dtype=float)
     if sigma is None:
-        const["std_error"] = (("group",), np.ones(J))
+        st = pooling.GroupStats(labels, np.zeros(J, dtype=np.int64), raw_mean, np.zeros(J), se=np.ones(J),
+                                kind="known")
+        within = "known"
     else:
-        const["raw_sd"] = (("group",), np.ones(J))
-    coords = {"chain": np.arange(C), "draw": np.arange(D), "group": labels}
-    return az.InferenceData(posterior=xr.Dataset(post, coords=coords),
-                            constant_data=xr.Dataset(const, coords={"group": labels}))
+        st = pooling.GroupStats(labels, n, raw_mean, (n - 1.0) * 1.0)  # raw sd 1 in every group
+        within = "separate" if sigma.ndim == 3 else "shared"
+    if within == "separate" and s is None:  # hyperparameters the answers do not read
+        s, nu = np.ones((C, D)), np.full((C, D), 4.0)
+    model = pooling.Model(within=within, between="normal", tau=pooling.HalfNormal(1.0),
+                          **({"nu": pooling.NuGrid(tuple(np.unique(nu)))} if nu is not None else {}))
+    p = pooling.build(st, model)
+    c, k = p.center, p.scale
+    raw = RawDraws(mu=(mu - c) / k, tau=tau / k, theta=(theta - c) / k, sigma=None if sigma is None else sigma / k,
+                   s=None if s is None else s / k, nu=nu, evals=np.ones((C, D)), seed=1,
+                   settings=Settings(chains=C, draws=D, warmup=0), rounds=[], seconds=0.0, final_states=[])
+    return Fit(p, raw, [])
+
+
+def view_theta(fit):
+    return fit.draws("theta")
 
 
 def normal_groups(means, sds, draws, seed, chains=2):
@@ -70,14 +80,14 @@ def test_rank_columns_match_scipy_rankdata_draw_by_draw():
     # table's mean rank, P(best), P(top k) and rank interval must equal what those ranks give.
     idata = normal_groups(np.array([0.0, 0.3, 0.3, 1.0, -0.5, 0.1]), np.array([0.2, 1.0, 0.5, 0.4, 0.9, 0.05]),
                           2000, seed=3)
-    theta = view(idata).theta
+    theta = view_theta(idata)
     ref = stats.rankdata(-theta, axis=1, method="ordinal")  # 1 = highest
     t = group_table(idata, level=0.9, k=2, best="highest")
     np.testing.assert_allclose(t["rank_mean"], ref.mean(axis=0), rtol=0, atol=1e-12)
     np.testing.assert_allclose(t["p_best"], (ref == 1).mean(axis=0), atol=1e-15)
     np.testing.assert_allclose(t["p_top_k"], (ref <= 2).mean(axis=0), atol=1e-15)
-    np.testing.assert_array_equal(t["rank_low"], np.quantile(ref, 0.05, axis=0, method="inverted_cdf"))
-    np.testing.assert_array_equal(t["rank_high"], np.quantile(ref, 0.95, axis=0, method="inverted_cdf"))
+    np.testing.assert_array_equal(t["rank_low_90"], np.quantile(ref, 0.05, axis=0, method="inverted_cdf"))
+    np.testing.assert_array_equal(t["rank_high_90"], np.quantile(ref, 0.95, axis=0, method="inverted_cdf"))
     assert abs(t["p_best"].sum() - 1.0) < 1e-12  # exactly one best group per draw
     low = group_table(idata, best="lowest")
     ref_low = stats.rankdata(theta, axis=1, method="ordinal")
@@ -94,7 +104,7 @@ def test_rank_matrix_with_a_tail_column_still_sums_to_one():
     P = rank_probabilities(idata, groups=["g29", "g0", "g7"], max_rank=10)
     assert list(P.columns)[-1] == ">10" and P.shape == (3, 11)
     np.testing.assert_allclose(P.to_numpy().sum(axis=1), 1.0, atol=1e-12)
-    ranks = rank_draws(view(idata).theta)
+    ranks = rank_draws(view_theta(idata))
     np.testing.assert_allclose(P.loc["g29", 1], (ranks[:, 29] == 1).mean(), atol=1e-15)
 
 
@@ -156,7 +166,7 @@ def test_outside_fraction_in_the_table_with_all_draws_equal():
     idata = make_idata(th, 10 * one, one, sigma=sg, s=one, nu=5 * one)
     t = group_table(idata, lower=8.0, upper=12.0)
     ref = stats.norm.cdf(8.0, th[0, 0], sg[0, 0]) + stats.norm.sf(12.0, th[0, 0], sg[0, 0])
-    for col in ("outside_mean", "outside_low", "outside_high"):
+    for col in ("outside_mean", "outside_low_95", "outside_high_95"):
         np.testing.assert_allclose(t[col], ref, rtol=1e-12)
 
 
@@ -174,7 +184,7 @@ def test_outside_fraction_with_uncertain_theta_matches_the_predictive():
     one = np.ones((C, D))
     idata = make_idata(th, 10 * one, one, sigma=np.broadcast_to(sig, (C, D, 2)).copy(), s=one, nu=5 * one)
     t = group_table(idata, lower=8.5, upper=12.0)
-    f = outside_fraction(view(idata).theta, sig, 8.5, 12.0)
+    f = outside_fraction(view_theta(idata), sig, 8.5, 12.0)
     mcse = f.std(axis=0, ddof=1) / np.sqrt(C * D)
     sd_pred = np.sqrt(v + sig ** 2)
     ref = stats.norm.cdf(8.5, m, sd_pred) + stats.norm.sf(12.0, m, sd_pred)
@@ -207,7 +217,7 @@ def test_new_group_fraction_matches_numerical_integration():
     one = np.ones((C, D))
     th = np.full((C, D, 3), mu)
     idata = make_idata(th, mu * one, tau * one, sigma=np.full((C, D, 3), s), s=s * one, nu=nu * one)
-    got = new_group_outside(view(idata), L, U, 0.95)
+    got = compute(idata, pooling.ReportOptions(lower=L, upper=U)).new_group
     ig = stats.invgamma(a=nu / 2, scale=nu * s * s / 2)
 
     def tail(w):
@@ -236,24 +246,19 @@ def test_shrinkage_weight_is_the_posterior_mean_of_v_over_v_plus_tau2():
     np.testing.assert_allclose(t["shrink_realised"], (t["raw_mean"] - t["theta_mean"]) / (t["raw_mean"] - mu_mean))
 
 
-def test_group_table_is_the_same_on_one_thread_and_two(monkeypatch):
-    # Source: the contract of pooling._blocks.each_block (each block of groups writes only its own
-    # columns, so sharing the blocks between threads cannot change a number): compared exactly.
-    from pooling.report import groups as G
-
+def test_interval_blocks_cover_every_group():
+    # Source: numpy's quantile (linear interpolation, its default) of each group's draws: the table's
+    # interval columns, computed block by block of groups, must equal it for every group (to rounding: the
+    # table computes in internal units and maps back, a few ulps apart).
     rng = np.random.default_rng(21)
-    C, D, J = 2, 500, 3 * G.TABLE_BLOCK + 17  # several blocks and a ragged last one
+    C, D, J = 2, 500, 3 * TABLE_BLOCK + 17  # several blocks and a ragged last one
     theta = rng.normal(0.0, 1.0, (C, D, J)) + np.linspace(-2, 2, J)
     sigma = np.exp(rng.normal(0.0, 0.2, (C, D, J)))
     idata = make_idata(theta, rng.normal(0, 0.1, (C, D)), np.exp(rng.normal(0, 0.1, (C, D))), sigma=sigma)
-    kw = dict(level=0.9, k=4, threshold=0.5, lower=-3.0, upper=3.0, allowed_bias=1.0)
-    monkeypatch.setattr(G, "_THREADED_MIN", 1)
-    two = group_table(idata, **kw)
-    monkeypatch.setattr(G, "_THREADED_MIN", 10**18)
-    one = group_table(idata, **kw)
-    assert two.equals(one)
-    # and the blocks cover every group: the interval columns are numpy's quantiles (to rounding: numpy
-    # interpolates along a copied row in the table and down a column here, a few ulps apart)
+    one = group_table(idata, level=0.9, k=4, threshold=0.5, lower=-3.0, upper=3.0, allowed_bias=1.0)
     lo, hi = np.quantile(theta.reshape(C * D, J), [0.05, 0.95], axis=0)
-    np.testing.assert_allclose(one["theta_low"].to_numpy(), lo, rtol=1e-12)
-    np.testing.assert_allclose(one["theta_high"].to_numpy(), hi, rtol=1e-12)
+    np.testing.assert_allclose(one["theta_low_90"].to_numpy(), lo, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(one["theta_high_90"].to_numpy(), hi, rtol=1e-12, atol=1e-15)
+    slo, shi = np.quantile(sigma.reshape(C * D, J), [0.05, 0.95], axis=0)
+    np.testing.assert_allclose(one["sigma_low_90"].to_numpy(), slo, rtol=1e-12)
+    np.testing.assert_allclose(one["sigma_high_90"].to_numpy(), shi, rtol=1e-12)

@@ -41,7 +41,10 @@ def test_layout_of_the_posterior(stats):
     assert post["mu"].dims == ("chain", "draw") and post["tau"].dims == ("chain", "draw")
     assert post["theta"].dims == ("chain", "draw", "group") and post["sigma"].dims == ("chain", "draw", "group")
     assert list(post["group"].values) == list(stats.labels)
-    assert set(post.data_vars) == {"mu", "tau", "theta", "sigma", "s", "nu"}
+    # the default between-group distribution is heavy-tailed: df per draw and lambda_j per draw and group
+    assert set(post.data_vars) == {"mu", "tau", "theta", "sigma", "s", "nu", "df", "lambda"}
+    assert post["lambda"].dims == ("chain", "draw", "group") and (post["lambda"].values > 0).all()
+    assert set(np.unique(post["df"].values)) <= set(pooling.model.DEFAULT_DF_GRID)
     assert (post["tau"].values > 0).all() and (post["sigma"].values > 0).all()
     assert set(np.unique(post["nu"].values)) <= set(pooling.model.DEFAULT_NU_GRID)
 

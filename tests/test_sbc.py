@@ -9,22 +9,31 @@ draws are close to independent (Talts et al. sec. 5.1: autocorrelation makes ran
 falsely non-uniform), bin the ranks into 10 equal bins and test uniformity by chi-square, rejecting
 at p < 1e-3 (a fixed seed, so the outcome is reproducible).
 
-Structures and priors (user units; the engine centres and scales internally):
+Structures and priors (user units; the engine centres and scales internally). Unless said otherwise the
+between-group distribution is the default, heavy tails with df learned: df from its default grid with
+its default prior weights (README), lambda_j ~ Gamma(df/2, rate df/2), theta_j ~ N(mu, tau^2 / lambda_j):
   separate, nu fixed:  mu ~ N(0, 1), tau ~ half-normal(1), s^2 ~ Gamma(3, 3), nu = 5,
                        sigma_j^2 ~ Scaled-Inv-chi2(nu, s^2), y_ij ~ N(theta_j, sigma_j^2)
-  separate, nu grid:   the same with nu uniform on {3, 6, 12}
+  separate, nu grid:   the same with nu from the default grid and its uniform weights (README)
   known:               mu ~ N(0, 1), tau ~ half-normal(1), y_j ~ N(theta_j, se_j^2), se_j given
-  shared:              mu ~ N(0, 1), tau ~ half-normal(1), p(log sigma) flat.
+  known, normal:       the same with the normal between-group distribution
+  shared:              mu ~ N(0, 1), tau ~ half-normal(1), p(log sigma) flat, normal between-group
+                       distribution (see below for why not heavy tails).
 The `shared` structure has only the flat prior on log sigma, which is improper, so its prior
 cannot be simulated. We calibrate it conditionally on a fixed first batch D0 instead: the
 parameters are drawn from p(. | D0) -- an exact draw, from a fine 2-D grid over (log tau,
 log sigma) with mu and theta then drawn from their normal conditionals -- a second batch D1 is
 simulated given them, and the fit uses D0 and D1 merged (pooling.stats.merge). Because D0 and D1
 are independent given the parameters, p(. | D0) is the prior of a proper model for D1 whose
-posterior is p(. | D0, D1), so Theorem 1 applies exactly. The numbers in D0 are arbitrary.
+posterior is p(. | D0, D1), so Theorem 1 applies exactly. The numbers in D0 are arbitrary. With heavy
+tails p(. | D0) has no tractable exact draw (every lambda_j and df would have to be integrated over
+with mu inside a product of t-normal convolutions), so the shared structure is calibrated with the
+normal between-group distribution; the heavy-tail moves are the same code for every structure and
+are calibrated with df learned in the separate and known structures.
 
-Ranks are taken for mu, tau, theta_1 and sigma_1 (sigma for shared; none for known), and for s
-and nu in the separate structures (ties of the discrete nu broken at random). A power
+Ranks are taken for mu, tau, theta_1 and sigma_1 (sigma for shared; none for known), for s
+and nu in the separate structures, and for df with heavy tails (ties of the discrete nu and df broken
+at random; df = inf, the normal limit, ranks above every finite df). A power
 check fits the `known` simulations with a wrong prior (tau ~ half-normal(0.3) while the truth is
 drawn from half-normal(1)) and asserts that the tau ranks are rejected: the test can fail.
 
@@ -38,7 +47,7 @@ from scipy import stats
 
 import pooling
 from pooling import posterior, sampler
-from pooling.model import build
+from pooling.model import HeavyBetween, build
 from pooling.stats import GroupStats, merge
 
 ALPHA = 1e-3
@@ -48,7 +57,7 @@ SE_KNOWN = np.array([0.5, 0.8, 1.0, 1.5])
 LABELS = ("g1", "g2", "g3", "g4")
 MU_PRIOR, TAU_PRIOR = pooling.Normal(0.0, 1.0), pooling.HalfNormal(1.0)
 S2_PRIOR = pooling.Gamma(3.0, 3.0)
-NU_GRID = (3.0, 6.0, 12.0)
+DEFAULT_HEAVY = HeavyBetween()  # the default between-group distribution, its grid and prior weights
 
 # the fixed first batch of the shared calibration (arbitrary numbers): 3 measurements per group
 D0 = GroupStats(LABELS, np.array([3, 3, 3, 3]), np.array([0.3, -0.2, 0.1, -0.4]), np.array([2.0, 1.0, 3.0, 2.0]),
@@ -58,11 +67,23 @@ N1_SHARED = (2, 3, 4, 6)  # the second batch
 MODELS = {
     "separate-nu-fixed": pooling.Model(within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR,
                                        nu=pooling.NuFixed(5.0)),
-    "separate-nu-grid": pooling.Model(within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR,
-                                      nu=pooling.NuGrid(NU_GRID)),
-    "shared": pooling.Model(within="shared", mu=MU_PRIOR, tau=TAU_PRIOR),
+    "separate-nu-grid": pooling.Model(within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR),
+    "shared": pooling.Model(within="shared", mu=MU_PRIOR, tau=TAU_PRIOR, between="normal"),
     "known": pooling.Model(within="known", mu=MU_PRIOR, tau=TAU_PRIOR),
+    "known-normal": pooling.Model(within="known", mu=MU_PRIOR, tau=TAU_PRIOR, between="normal"),
 }
+assert MODELS["separate-nu-grid"].between == DEFAULT_HEAVY  # the default is what is calibrated
+
+
+def _between_draw(structure: str, J: int, rng) -> tuple[np.ndarray, float | None]:
+    """The scale of each group's deviation, 1 / sqrt(lambda_j), and df (None for the normal model)."""
+    if MODELS[structure].between.name == "normal":
+        return np.ones(J), None
+    grid, w = (np.asarray(x, dtype=float) for x in DEFAULT_HEAVY.grid_and_weights())
+    df = float(rng.choice(grid, p=w / w.sum()))
+    if np.isinf(df):
+        return np.ones(J), df
+    return 1.0 / np.sqrt(rng.gamma(df / 2.0, 2.0 / df, J)), df
 
 
 def _raw_stats(theta, sigma, n, rng) -> GroupStats:
@@ -137,16 +158,20 @@ def simulate(structure: str, rng) -> tuple[GroupStats, dict]:
         return merge(D0, d1, source="D0 + D1"), {"mu": mu, "tau": tau, "theta": theta[0], "sigma": sigma}
     mu = MU_PRIOR.loc + MU_PRIOR.scale * rng.standard_normal()
     tau = abs(TAU_PRIOR.scale * rng.standard_normal())
-    theta = mu + tau * rng.standard_normal(J)
-    if structure == "known":
+    widen, df = _between_draw(structure, J, rng)
+    theta = mu + tau * widen * rng.standard_normal(J)
+    extra = {} if df is None else {"df": df}
+    if structure.startswith("known"):
         y = theta + SE_KNOWN * rng.standard_normal(J)
         est = GroupStats(LABELS, np.zeros(J, dtype=np.int64), y, np.zeros(J), se=SE_KNOWN.copy(), kind="known",
                          source="simulated")
-        return est, {"mu": mu, "tau": tau, "theta": theta[0]}
+        return est, {"mu": mu, "tau": tau, "theta": theta[0], **extra}
     s2 = rng.gamma(S2_PRIOR.shape, 1.0 / S2_PRIOR.rate)  # numpy's gamma takes a scale = 1 / rate
-    nu = 5.0 if structure == "separate-nu-fixed" else float(rng.choice(NU_GRID))
+    nu_grid = np.asarray(pooling.NuGrid().values)
+    nu = 5.0 if structure == "separate-nu-fixed" else float(rng.choice(nu_grid))  # the default grid, equal weights
     sigma2 = nu * s2 / rng.chisquare(nu, J)  # Scaled-Inv-chi2(nu, s^2)
-    truth = {"mu": mu, "tau": tau, "theta": theta[0], "sigma": float(np.sqrt(sigma2[0])), "s": float(np.sqrt(s2))}
+    truth = {"mu": mu, "tau": tau, "theta": theta[0], "sigma": float(np.sqrt(sigma2[0])), "s": float(np.sqrt(s2)),
+             **extra}
     if structure == "separate-nu-grid":
         truth["nu"] = nu
     return _raw_stats(theta, np.sqrt(sigma2), N_GROUPS, rng), truth
@@ -157,7 +182,7 @@ def sbc_ranks(structure: str, reps: int, seed: int, kept: int = 99, thin: int = 
     """Ranks (0..kept) of the true values among `kept` draws (every `thin`-th of one chain), per parameter."""
     model = model or MODELS[structure]
     ranks: dict[str, list[int]] = {}
-    no_extension = lambda raw: ([], {})  # noqa: E731  fixed run length: SBC needs no run-length control
+    no_extension = lambda raw: ([], {"missed_list": []})  # noqa: E731  fixed run length: no run-length control
     for r in range(reps):
         ss = np.random.SeedSequence([seed, r])
         sim_seq, fit_seq, tie_seq = ss.spawn(3)
@@ -167,11 +192,11 @@ def sbc_ranks(structure: str, reps: int, seed: int, kept: int = 99, thin: int = 
         settings = sampler.Settings(chains=1, draws=kept * thin, warmup=warmup, seed=int(fit_seq.generate_state(1)[0]),
                                     threads=1)
         raw = sampler.sample_raw(problem, settings, progress=False, diagnose=no_extension)
-        post = posterior.to_idata(raw, problem).posterior
+        fit = posterior.finish(raw, problem)
         for name, value in truth.items():
-            x = post[name].values
-            if name in ("theta", "sigma") and x.ndim == 3:
-                x = x[:, :, 0]
+            x = fit.draws(name)
+            if name in ("theta", "sigma") and x.ndim == 2:
+                x = x[:, 0]
             draws = x.reshape(-1)[thin - 1::thin]
             # ties happen only for the discrete nu: break them at random, which keeps the rank
             # uniform under a calibrated sampler
@@ -193,9 +218,10 @@ REPS = 400  # per structure: about 4 s each on one core
 @pytest.mark.parametrize("structure", list(MODELS))
 def test_ranks_are_uniform(structure):
     ranks = sbc_ranks(structure, REPS, seed=1804)
-    want = {"mu", "tau", "theta"} | ({"sigma"} if structure != "known" else set())
+    want = {"mu", "tau", "theta"} | ({"sigma"} if not structure.startswith("known") else set())
     want |= {"s"} if structure.startswith("separate") else set()
     want |= {"nu"} if structure == "separate-nu-grid" else set()
+    want |= {"df"} if MODELS[structure].between.name != "normal" else set()
     assert set(ranks) == want
     for name, r in ranks.items():
         assert r.min() >= 0 and r.max() <= 99

@@ -4,6 +4,7 @@ The design makes the two modes draw the same numbers (same start, same sweeps, s
 most checks are exact or to rounding, and the interval limits are checked against each limit's
 stated bound. The references are computed here, from the full-draw fit's arrays, with numpy alone
 (numpy.quantile's default linear method, numpy.argsort for ranks): not with the code under test.
+Both runs go through pooling.results, which must give every group's row for both.
 """
 from __future__ import annotations
 
@@ -17,8 +18,9 @@ import xarray as xr
 import pooling
 from pooling import summary
 from pooling import summary_kernel as sk
+from pooling.asked import PURPOSE_KEPT, ReportOptions, derived_rng
 from pooling.model import build
-from pooling.report.assemble import ReportOptions
+from pooling.results import compute
 
 LEVEL = 0.9
 PROBS = [(1 - LEVEL) / 2, (1 + LEVEL) / 2]
@@ -44,39 +46,57 @@ SETTINGS = pooling.Settings(chains=2, warmup=60, draws=200, max_draws=200, seed=
 KEEP = summary.SummaryOptions(sample=4, top=3)
 
 
+class Part:
+    """A summary-mode run with its results: the SummaryFit, its table, and the kept groups' positions."""
+
+    def __init__(self, fit, o):
+        self.fit = fit
+        self.res = compute(fit, o)
+        self.table = self.res.table
+        self.kept = fit.kept_index
+        self.idata = fit.kept.idata
+
+
 @pytest.fixture(scope="module")
 def separate():
     stats = _stats(40, 1)
-    model = pooling.Model(within="separate")
+    model = pooling.Model(within="separate")  # the default between-group distribution: heavy tails
     o = ReportOptions(level=LEVEL, k=3, threshold=100.5, lower=96.0, upper=104.0, allowed_bias=1.0)
     full = pooling.fit(stats, model, SETTINGS, summary=False)
-    part = pooling.fit(stats, model, SETTINGS, summary=True, options=o, keep=KEEP)
+    part = Part(pooling.fit(stats, model, SETTINGS, summary=True, options=o, keep=KEEP), o)
     return full, part, o
 
 
 def _draws(fit, name):
-    x = fit.idata.posterior[name].values
-    return x.reshape((-1,) + x.shape[2:])
+    return fit.draws(name)
+
+
+def _t2(full):
+    """tau^2 / lambda_j per draw (heavy tails) or tau^2, the prior variance of theta_j in a draw."""
+    tau2 = _draws(full, "tau")[:, None] ** 2
+    return tau2 / _draws(full, "lambda") if full.problem.heavy else tau2
 
 
 def test_same_seed_same_draws(separate):
     """Hyperparameters and the kept groups' draws are the full-draw chains' own numbers."""
     full, part, _ = separate
     # Source: the design (pooling.summary docstring): the same sweeps on the same Generators
-    for name in ("mu", "tau", "s", "nu"):
+    for name in ("mu", "tau", "s", "nu", "df"):
         np.testing.assert_array_equal(full.idata.posterior[name].values, part.idata.posterior[name].values)
     kept = part.kept
     assert 0 < len(kept) < 40 // 2  # most groups must go through the summaries, or the test checks little
     np.testing.assert_array_equal(full.idata.posterior["theta"].values[:, :, kept], part.idata.posterior["theta"].values)
     np.testing.assert_array_equal(full.idata.posterior["sigma"].values[:, :, kept], part.idata.posterior["sigma"].values)
+    np.testing.assert_array_equal(full.idata.posterior["lambda"].values[:, :, kept],
+                                  part.idata.posterior["lambda"].values)
 
 
 def test_means_and_probabilities_match_full_draws(separate):
     full, part, o = separate
     t = part.table
-    theta, sigma, mu, tau = (_draws(full, x) for x in ("theta", "sigma", "mu", "tau"))
+    theta, sigma, mu = (_draws(full, x) for x in ("theta", "sigma", "mu"))
     v = sigma ** 2 / full.problem.stats.n[None, :]
-    w = v / (v + tau[:, None] ** 2)
+    w = v / (v + _t2(full))
     from scipy.special import ndtr
 
     f = ndtr((o.lower - theta) / sigma) + ndtr((theta - o.upper) / sigma)
@@ -92,6 +112,12 @@ def test_means_and_probabilities_match_full_draws(separate):
     np.testing.assert_array_equal(t["p_above"], (theta > o.threshold).mean(axis=0))
     np.testing.assert_array_equal(t["p_below"], (theta < o.threshold).mean(axis=0))
     np.testing.assert_array_equal(t["p_bias_over"], (np.abs(theta - mu[:, None]) > o.allowed_bias).mean(axis=0))
+    np.testing.assert_array_equal(t["p_mean_outside"], ((theta < o.lower) | (theta > o.upper)).mean(axis=0))
+    # and the full run's own table, through the same results code, agrees
+    ft = compute(full, o).table
+    for col in ("theta_mean", "shrink_weight", "p_above", "p_bias_over", "p_best", "p_top_k", "tail_weight",
+                "p_outlying"):
+        np.testing.assert_allclose(t[col], ft[col], rtol=0, atol=1e-10, err_msg=col)
 
 
 def test_top_k_and_best_exact(separate):
@@ -105,7 +131,7 @@ def test_top_k_and_best_exact(separate):
     np.testing.assert_array_equal(part.table["p_best"], (ranks == 1).mean(axis=0))
     np.testing.assert_array_equal(part.table["p_top_k"], (ranks <= 3).mean(axis=0))
     kept = part.kept
-    np.testing.assert_array_equal(part.idata.posterior["rank"].values.reshape(-1, len(kept)), ranks[:, kept])
+    np.testing.assert_array_equal(part.fit.acc.ranks.reshape(-1, len(kept)), ranks[:, kept])
     # mean rank: exact for kept groups, within its stated bound for the others
     exact_mean = ranks.mean(axis=0)
     err = np.abs(part.table["rank_mean"].to_numpy() - exact_mean)
@@ -113,21 +139,21 @@ def test_top_k_and_best_exact(separate):
     assert np.all(err[kept] < 1e-9)
     # Source: the inverted empirical CDF (numpy.quantile method 'inverted_cdf'), the reporter's rank interval
     lo, hi = np.quantile(ranks[:, kept], PROBS, axis=0, method="inverted_cdf")
-    np.testing.assert_array_equal(part.table["rank_low"].to_numpy()[kept].astype(int), lo)
-    np.testing.assert_array_equal(part.table["rank_high"].to_numpy()[kept].astype(int), hi)
+    np.testing.assert_array_equal(part.table["rank_low_90"].to_numpy()[kept].astype(int), lo)
+    np.testing.assert_array_equal(part.table["rank_high_90"].to_numpy()[kept].astype(int), hi)
 
 
 def test_interval_limits_within_their_stated_error(separate):
     full, part, o = separate
     t = part.table
-    theta, sigma, mu, tau = (_draws(full, x) for x in ("theta", "sigma", "mu", "tau"))
+    theta, sigma, mu = (_draws(full, x) for x in ("theta", "sigma", "mu"))
     v = sigma ** 2 / full.problem.stats.n[None, :]
     from scipy.special import ndtr
 
     exact = {  # Source: numpy.quantile, default linear method (Hyndman and Fan type 7), on the same draws
         "theta": np.quantile(theta, PROBS, axis=0),
         "sigma": np.quantile(sigma, PROBS, axis=0),
-        "shrink": np.quantile(v / (v + tau[:, None] ** 2), PROBS, axis=0),
+        "shrink": np.quantile(v / (v + _t2(full)), PROBS, axis=0),
         "outside": np.quantile(ndtr((o.lower - theta) / sigma) + ndtr((theta - o.upper) / sigma), PROBS, axis=0),
         "bias": np.quantile(theta - mu[:, None], PROBS, axis=0),
     }
@@ -135,7 +161,7 @@ def test_interval_limits_within_their_stated_error(separate):
     for name, q in exact.items():
         bound = t[f"{name}_limit_error"].to_numpy()
         for side, col in enumerate(("low", "high")):
-            got = t[f"{name}_{col}"].to_numpy()
+            got = t[f"{name}_{col}_90"].to_numpy()
             # the stated error of the method: at most one histogram bin (rounding of bin edges aside)
             assert np.all(np.abs(got - q[side]) <= bound + 1e-12), (name, col)
         assert np.all(bound[part.kept] == 0)
@@ -149,23 +175,23 @@ def test_interval_limits_within_their_stated_error(separate):
 def test_shared_and_known_exact_parts(within):
     """For shared and known, the shrinkage interval (and shared sigma) come exactly from hyperparameter draws."""
     stats = _stats(30, 2, known=within == "known")
-    model = pooling.Model(within=within)
+    model = pooling.Model(within=within, between="normal")  # with heavy tails the weight has no such shortcut
     o = ReportOptions(level=LEVEL, k=2, best="lowest")
     full = pooling.fit(stats, model, SETTINGS, summary=False)
-    part = pooling.fit(stats, model, SETTINGS, summary=True, options=o, keep=KEEP)
+    part = Part(pooling.fit(stats, model, SETTINGS, summary=True, options=o, keep=KEEP), o)
     t = part.table
     theta, tau = _draws(full, "theta"), _draws(full, "tau")
     if within == "shared":
         sig = _draws(full, "sigma")
         v = sig[:, None] ** 2 / stats.n[None, :]
-        np.testing.assert_allclose(t["sigma_low"], np.quantile(sig, PROBS[0]), rtol=1e-14)
-        np.testing.assert_allclose(t["sigma_high"], np.quantile(sig, PROBS[1]), rtol=1e-14)
+        np.testing.assert_allclose(t["sigma_low_90"], np.quantile(sig, PROBS[0]), rtol=1e-14)
+        np.testing.assert_allclose(t["sigma_high_90"], np.quantile(sig, PROBS[1]), rtol=1e-14)
     else:
         v = np.broadcast_to(stats.raw_se[None, :] ** 2, theta.shape)
     w = v / (v + tau[:, None] ** 2)
     # Source: numpy.quantile of the per-draw weights; equal to rounding (1e-12 absolute on a weight in [0, 1])
-    np.testing.assert_allclose(t["shrink_low"], np.quantile(w, PROBS[0], axis=0), rtol=0, atol=1e-12)
-    np.testing.assert_allclose(t["shrink_high"], np.quantile(w, PROBS[1], axis=0), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(t["shrink_low_90"], np.quantile(w, PROBS[0], axis=0), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(t["shrink_high_90"], np.quantile(w, PROBS[1], axis=0), rtol=0, atol=1e-12)
     assert np.all(t["shrink_limit_error"] == 0)
     # best = lowest: P(best) is the share of draws where the group has the smallest theta
     np.testing.assert_array_equal(t["p_best"], np.bincount(np.argmin(theta, axis=1), minlength=30) / theta.shape[0])
@@ -174,8 +200,9 @@ def test_shared_and_known_exact_parts(within):
 def test_same_results_whatever_the_threads():
     stats = _stats(25, 3)
     o = ReportOptions(level=LEVEL, threshold=100.0)
-    runs = [pooling.fit(stats, pooling.Model(), pooling.Settings(chains=3, warmup=40, draws=80, max_draws=80, seed=5,
-                                                                 threads=th), summary=True, options=o, keep=KEEP)
+    runs = [Part(pooling.fit(stats, pooling.Model(), pooling.Settings(chains=3, warmup=40, draws=80, max_draws=80,
+                                                                      seed=5, threads=th),
+                             summary=True, options=o, keep=KEEP), o)
             for th in (1, 3)]
     pd.testing.assert_frame_equal(runs[0].table, runs[1].table, check_exact=True)
     np.testing.assert_array_equal(runs[0].idata.posterior["theta"].values, runs[1].idata.posterior["theta"].values)
@@ -201,7 +228,7 @@ def test_histogram_quantiles_against_numpy():
                 sk._hist_add(hist[c], ext[c], glo, ginv, 0, j, x[s, j], B)
     probs = np.array([0.025, 0.5, 0.9, 0.975])
     est, err = np.empty((4, J)), np.empty((4, J))
-    sk.hist_quantiles(hist, ext, glo, gw, 0, probs, 0, 1.0, 0.0, est, err)
+    sk.hist_quantiles(hist, ext, glo, gw, 0, probs, 0, est, err)
     ref = np.quantile(x, probs, axis=0)  # Source: numpy.quantile, linear method
     assert np.all(np.abs(est - ref) <= err * (1 + 1e-9) + 1e-12)
     inside = (ref > glo + gw) & (ref < glo + (B - 1) * gw)  # both order statistics inside the grid
@@ -223,9 +250,10 @@ def test_automatic_switch():
 
 def test_kept_sample_follows_the_stated_rule(separate):
     _, part, _ = separate
-    rule = np.random.default_rng(summary.KEEP_SEED).choice(40, size=4, replace=False)
+    # the stated rule: a sample from a stream of the run's own seed (asked.derived_rng, purpose 'kept')
+    rule = derived_rng(SETTINGS.seed, PURPOSE_KEPT).choice(40, size=4, replace=False)
     assert set(rule) <= set(part.kept.tolist())
-    reasons = dict(zip(part.kept.tolist(), part.idata.constant_data["kept_because"].values))
+    reasons = dict(zip(part.kept.tolist(), part.fit.acc.setup.kept_reason))
     assert all(reasons[j] == "sample" for j in rule)
 
 
@@ -266,7 +294,7 @@ def test_cli_run_folder(cli_runs):
     assert "'=SUM(A1:A9)" in labels and "=SUM(A1:A9)" not in labels
     html = (on / "report.html").read_text(encoding="utf-8")
     assert "<b>bold</b>" not in html and "&lt;b&gt;bold&lt;/b&gt;" in html
-    assert 'id="kept"' in html and 'id="all"' in html and "summary-hist" in html
+    assert 'id="groups"' in html and "Kept groups" in html and "summary-hist" in html
     draws = xr.open_dataset(on / "draws.nc", engine="h5netcdf", group="posterior")
     kept = list(draws["group"].values)
     assert "line-05" in kept and len(kept) < 30
@@ -300,7 +328,7 @@ def _check_rank_intervals(part, ranks):
     t = part.table
     # Source: numpy.quantile method 'inverted_cdf', the reporter's rank interval (whole ranks)
     lo, hi = np.quantile(ranks, PROBS, axis=0, method="inverted_cdf")
-    got_lo, got_hi = t["rank_low"].to_numpy().astype(int), t["rank_high"].to_numpy().astype(int)
+    got_lo, got_hi = t["rank_low_90"].to_numpy().astype(int), t["rank_high_90"].to_numpy().astype(int)
     e = t["rank_limit_error"].to_numpy()
     assert np.all(got_lo <= lo) and np.all(got_hi >= hi)  # contains the exact interval
     assert np.all(lo - got_lo <= e) and np.all(got_hi - hi <= e)  # off by at most the stated bound
@@ -328,8 +356,8 @@ def test_rank_intervals_on_a_geometric_grid(monkeypatch):
     stats = _stats(60, 8)
     o = ReportOptions(level=LEVEL, k=3, best="lowest")
     full = pooling.fit(stats, pooling.Model(within="shared"), SETTINGS, summary=False)
-    part = pooling.fit(stats, pooling.Model(within="shared"), SETTINGS, summary=True, options=o, keep=KEEP)
-    assert part.figures["rank_grid_bins"] <= 10
+    part = Part(pooling.fit(stats, pooling.Model(within="shared"), SETTINGS, summary=True, options=o, keep=KEEP), o)
+    assert part.res.summary["figures"]["rank_grid_bins"] <= 10
     lo, hi, e = _check_rank_intervals(part, _exact_ranks(_draws(full, "theta"), sign=-1.0))
     others = np.setdiff1d(np.arange(60), part.kept)
     assert np.any(e[others] > 2)  # the coarse bins do show in the bound (else this test checks little)

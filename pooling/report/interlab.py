@@ -1,6 +1,6 @@
-"""The interlaboratory view: consensus value, variance components in the terms of ISO 5725, each
-lab's bias, and the classical comparators (one-way ANOVA by the method of moments, z-scores with
-the ISO 13528 signal limits) side by side with the posterior.
+"""The classical comparators of the interlaboratory view (pooling.results.interlab_view computes the view
+itself from the draws): one-way ANOVA by the method of moments, the DerSimonian-Laird random-effects
+estimate, ISO 13528 Algorithm A and z-scores with their signal limits.
 
 ISO 5725 terms used here: repeatability sd s_r (within a lab), between-lab sd s_L, reproducibility
 sd s_R = sqrt(s_L^2 + s_r^2); the repeatability and reproducibility limits are 2.8 s_r and 2.8 s_R
@@ -11,40 +11,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import pandas as pd
 from scipy.special import chdtrc, fdtrc
 
 from ..errors import InputError
-from .draws import BLOCK, View, interval, view
-from .groups import _whole_or_fraction
 
 LIMIT_FACTOR = 2.8  # ISO 5725-6: repeatability limit r = 2.8 s_r, reproducibility limit R = 2.8 s_R
 Z_WARNING, Z_ACTION = 2.0, 3.0  # ISO 13528:2015, 9.4.1
-
-
-def _summ(x: np.ndarray, level: float) -> dict:
-    lo, hi = interval(x, level)
-    return {"mean": float(x.mean()), "median": float(np.median(x)), "sd": float(x.std(ddof=1)),
-            "low": float(lo), "high": float(hi)}
-
-
-def repeatability_draws(v: View) -> np.ndarray | None:
-    """Per draw, the typical within-lab sd s_r = sqrt(mean_j sigma_j^2) (separate), sigma (shared); None when known."""
-    if v.sigma is None:
-        return None
-    if v.sigma.ndim == 1:
-        return v.sigma
-    sig = v.sigma
-    ms = np.einsum("ij,ij->i", sig, sig) / sig.shape[1]  # one pass, no (draws x groups) temporary
-    odd = ~((ms > 1e-290) & (ms < 1e290))  # squares that under- or overflowed (data near 1e-300 or 1e300)
-    out = np.sqrt(ms)
-    if odd.any():  # those draws again, scaled by their largest sigma_j first
-        sub = sig[odd]
-        top = sub.max(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rel = sub / top[:, None]
-        out[odd] = top * np.sqrt(np.mean(rel * rel, axis=1))
-    return out
 
 
 # ---------------------------------------------------------------------------------------------
@@ -166,85 +138,3 @@ def z_scores(x, assigned: float | None = None, sigma_pt: float | None = None):
     with np.errstate(divide="ignore", invalid="ignore"):
         z = (x - x_pt) / s_pt if s_pt > 0 else np.full(len(x), np.nan)
     return z, z_signal(z), basis
-
-
-# ---------------------------------------------------------------------------------------------
-# the view
-
-def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assigned: float | None = None,
-             sigma_pt: float | None = None, table=None) -> dict:
-    """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws;
-    the classical comparators (one-way ANOVA for measurements, DerSimonian-Laird for estimates with
-    standard errors); and a per-lab table (bias with interval, P(|bias| > allowed), z, signal).
-
-    `table` may be this fit's group_table at the same level and allowed bias, to reuse its bias columns."""
-    from .groups import check_level
-
-    check_level(level)
-    if allowed_bias is not None and not allowed_bias > 0:
-        raise InputError(f"bad option: the allowed bias must be a positive number; found {allowed_bias:g}")
-    v = view(fit)
-    out: dict = {"level": level, "structure": v.within, "consensus": _summ(v.mu, level), "between_sd": _summ(v.tau, level)}
-    sr = repeatability_draws(v)
-    if sr is not None:
-        # hypot and the ratio form keep their digits where tau^2 and s_r^2 would under- or overflow
-        sR = np.hypot(v.tau, sr)
-        with np.errstate(divide="ignore"):  # tau = 0 in a draw: s_r / tau = inf, icc = 0
-            icc = 1.0 / (1.0 + (sr / v.tau) ** 2)
-        out["repeatability_sd"] = _summ(sr, level)
-        out["reproducibility_sd"] = _summ(sR, level)
-        out["icc"] = _summ(icc, level)
-        out["repeatability_limit"] = _summ(LIMIT_FACTOR * sr, level)
-        out["reproducibility_limit"] = _summ(LIMIT_FACTOR * sR, level)
-    else:
-        out["repeatability_sd"] = out["reproducibility_sd"] = out["icc"] = None
-        out["repeatability_limit"] = out["reproducibility_limit"] = None
-    if v.s is not None:
-        out["s"] = _summ(v.s, level)
-    stats = getattr(getattr(fit, "problem", None), "stats", None)
-    if v.within != "known" and stats is not None:
-        out["anova"] = oneway_anova(stats.n, stats.mean, stats.m2, stats.mean_lo)
-        u = getattr(stats, "unit", 1.0)  # statistics of 1e-300 or 1e300 data are held in a power-of-two unit
-        if out["anova"] is not None and u != 1.0:
-            for k in ("grand_mean", "between_sd", "repeatability_sd", "reproducibility_sd"):
-                out["anova"][k] *= u
-            for k in ("ss_between", "ss_within", "ms_between", "ms_within", "between_var", "within_var"):
-                out["anova"][k] *= u * u  # may under- or overflow: a variance of such data is not a float64
-    elif v.within != "known":  # re-opened draws: rebuild M2_j from the stored sd
-        m2 = np.where(v.n >= 2, v.raw_sd ** 2 * (v.n - 1), 0.0)
-        out["anova"] = oneway_anova(v.n, v.raw_mean, np.nan_to_num(m2))
-    else:
-        out["anova"] = None
-    out["random_effects"] = random_effects_dl(v.raw_mean, v.std_error) if v.within == "known" else None
-    z, signal, basis = z_scores(v.raw_mean, assigned, sigma_pt)
-    out["z_basis"] = basis
-    J = v.J
-    bm, lo, hi, pover = np.empty(J), np.empty(J), np.empty(J), np.empty(J)
-    if table is not None:
-        bm, lo, hi = (table[c].to_numpy() for c in ("bias_mean", "bias_low", "bias_high"))
-        if allowed_bias is not None:
-            pover = table["p_bias_over"].to_numpy()
-    for a in range(0, J if table is None else 0, BLOCK):
-        bias = v.theta[:, a:a + BLOCK] - v.mu[:, None]
-        bm[a:a + BLOCK] = bias.mean(axis=0)
-        lo[a:a + BLOCK], hi[a:a + BLOCK] = interval(bias, level)
-        if allowed_bias is not None:
-            pover[a:a + BLOCK] = (np.abs(bias) > allowed_bias).mean(axis=0)
-    labs = pd.DataFrame({
-        "group": list(v.labels), "n": _whole_or_fraction(v.n), "raw_mean": v.raw_mean,
-        "bias_mean": bm, "bias_low": lo, "bias_high": hi,
-    })
-    if allowed_bias is not None:
-        labs["p_bias_over"] = pover
-    labs["interval_excludes_0"] = (lo > 0) | (hi < 0)
-    labs["z_score"] = z
-    labs["z_signal"] = signal
-    out["allowed_bias"] = allowed_bias
-    out["labs"] = labs
-    flagged_z = signal == "action"
-    out["agreement"] = {
-        "z_action": int(np.sum(flagged_z)), "z_warning": int(np.sum(signal == "warning")),
-        "interval_excludes_0": int(labs["interval_excludes_0"].sum()),
-        "both": int(np.sum(flagged_z & labs["interval_excludes_0"].to_numpy())),
-    }
-    return out

@@ -74,8 +74,13 @@ def _marker_area(n: np.ndarray, most: float) -> np.ndarray:
 
 # ---------------------------------------------------------------------------------------------
 
+def _outlying(table) -> np.ndarray:
+    return table["outlying"].to_numpy(dtype=bool) if "outlying" in table else np.zeros(len(table), dtype=bool)
+
+
 def shrinkage(table, mu_mean: float, title: str = "") -> str:
-    """Each group's own mean pulled to its posterior mean; markers sized by n; mu drawn as a line."""
+    """Each group's own mean pulled to its posterior mean; markers sized by n; mu drawn as a line; groups
+    flagged outlying (heavy tails) ringed."""
     J = len(table)
     if J <= MANY:
         order = np.argsort(table["theta_mean"].to_numpy(), kind="stable")
@@ -95,6 +100,10 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
         p.points(raw, y, area, fill=WHITE, stroke=RAW, stroke_width=1.6, key="group's own mean (area ∝ n)",
                  role="own-mean")
         p.points(post, y, post_area, fill=POST, key="posterior mean", role="posterior-mean")
+        out = _outlying(t)
+        if out.any():
+            p.points(post[out], y[out], 150.0, fill="none", stroke=LIMIT, stroke_width=2.0,
+                     key="flagged outlying", role="outlying")
     else:
         raw, post = table["raw_mean"].to_numpy(dtype=float), table["theta_mean"].to_numpy(dtype=float)
         area = _marker_area(table["n"].to_numpy(dtype=float), 40.0)
@@ -105,15 +114,21 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
         p.line([lo, hi], [lo, hi], MUTED, 1.2, key="no pooling (posterior = own mean)")
         p.hline(mu_mean, POOL, 1.5, "dashed", key="complete pooling (mu)")
         p.points(raw, post, area, fill=POST, opacity=0.45, key="group (area ∝ n)", role="posterior-mean")
+        out = _outlying(table)
+        if out.any():
+            p.points(raw[out], post[out], 90.0, fill="none", stroke=LIMIT, stroke_width=1.6,
+                     key="flagged outlying", role="outlying")
     return c.svg()
 
 
-def intervals(table, mu_mean: float, level: float, lower=None, upper=None, threshold=None) -> str:
-    """Credible intervals of theta_j sorted by posterior mean, with mu, limits and threshold drawn in."""
+def intervals(table, mu_mean: float, level: float, lower=None, upper=None, threshold=None, key: str = "95") -> str:
+    """Credible intervals of theta_j sorted by posterior mean, with mu, limits and threshold drawn in; groups
+    flagged outlying drawn in the limit colour. `key` names the interval columns (theta_low_<key>)."""
     J = len(table)
     order = np.argsort(table["theta_mean"].to_numpy(), kind="stable")
     t = table.iloc[order]
-    m, lo, hi = (t[col].to_numpy(dtype=float) for col in ("theta_mean", "theta_low", "theta_high"))
+    m, lo, hi = (t[col].to_numpy(dtype=float) for col in ("theta_mean", f"theta_low_{key}", f"theta_high_{key}"))
+    out = _outlying(t)
     if J <= MANY:  # one row per group, values across
         h = _rows_height(J)
         c = Canvas(WIDE, h, "intervals", f"{level:.0%} credible intervals of theta, by group")
@@ -124,6 +139,8 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
         p.points(m, y, 18.0, fill=POST, key="posterior mean", role="posterior-mean")
         p.vsegments(t["raw_mean"].to_numpy(dtype=float), y - 0.3, y + 0.3, RAW, 1.5, key="own mean",
                     role="own-mean")
+        if out.any():
+            p.hsegments(y[out], lo[out], hi[out], LIMIT, 3.4, 0.8, key="flagged outlying", role="outlying")
         line = p.vline
     else:  # groups along the bottom as a band: thousands of rows would be unreadable
         c = Canvas(WIDE, 440, "intervals", f"{level:.0%} credible intervals of theta, groups sorted")
@@ -213,12 +230,13 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
     return c.svg()
 
 
-def predictive(spread: dict | None, sd: dict | None, labels) -> str:
-    """Replicated against observed: the spread of the group means, and each group's within-group sd."""
-    panels = [name for name, x in (("spread", spread), ("sd", sd)) if x is not None]
+def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | None = None) -> str:
+    """Replicated against observed: the spread of the group means, the most extreme standardised deviation
+    (observed and replicated, draw by draw) and each group's within-group sd."""
+    panels = [name for name, x in (("spread", spread), ("extreme", extreme), ("sd", sd)) if x is not None]
     if not panels:
         return ""
-    w = WIDE if len(panels) == 2 else WIDE * 0.6
+    w = WIDE if len(panels) >= 2 else WIDE * 0.6
     h = 340.0
     c = Canvas(w, h, "predictive", "Posterior predictive checks: replicated against observed")
     each = w / len(panels)
@@ -235,6 +253,18 @@ def predictive(spread: dict | None, sd: dict | None, labels) -> str:
         p.vline(spread["observed"], LIMIT, 2.0, key=f"observed (p = {spread['p_value']:.2f})", role="observed")
         made.append(p)
         at += each
+    if extreme is not None:
+        who = plain(labels[extreme["group"]], 18)
+        p = c.panel(at, 0, each, h, title="most extreme group", ylabel="replicated",
+                    xlabel=f"observed max |own mean − mu| / sd (mostly {who})", ypad=0.05, xpad=0.05)
+        obs = np.asarray(extreme["observed"], dtype=float)
+        rep = np.asarray(extreme["replicated"], dtype=float)
+        ok = np.isfinite(obs) & np.isfinite(rep)
+        top = float(max(np.max(obs[ok]), np.max(rep[ok]))) if ok.any() else 1.0
+        p.line([0.0, top], [0.0, top], MUTED, 1.0, key=f"replicated = observed (p = {extreme['p_value']:.2f})")
+        p.points(obs[ok], rep[ok], 6.0, fill=POST, opacity=0.4, role="draws")
+        made.append(p)
+        at += each
     if sd is not None:
         p = c.panel(at, 0, each, h, title="within-group sd", xlabel="groups with n ≥ 2, by replicated median",
                     xpad=0.01)
@@ -246,6 +276,70 @@ def predictive(spread: dict | None, sd: dict | None, labels) -> str:
         p.points(x, np.asarray(sd["observed"])[order], 8.0 if many else 16.0, fill=RAW, key="observed",
                  role="observed")
         made.append(p)
-    if len(made) == 2:
+    if len(made) >= 2:
         c.align(*made, sides="top bottom")
     return c.svg()
+
+
+def df_posterior(grid, prior, post) -> str:
+    """The posterior of the between-group df over its grid, beside its prior (inf drawn as 'normal')."""
+    from .svg import Canvas
+
+    k = len(grid)
+    labels = ["normal" if not np.isfinite(g) else f"{g:g}" for g in grid]
+    c = Canvas(WIDE * 0.7, 300, "df_posterior", "Posterior and prior probability of each df of the between-group tail")
+    p = c.panel(0, 0, WIDE * 0.7, 300, xlabel="degrees of freedom of the between-group distribution (heavier tail left)",
+                ylabel="probability", xticks=(np.arange(k), labels), xlim=(-0.6, k - 0.4), ylim=(0, None), ypad=0.05)
+    x = np.arange(k, dtype=float)
+    p.vsegments(x - 0.15, np.zeros(k), np.asarray(prior, dtype=float), MUTED, 9.0, key="prior", role="prior")
+    p.vsegments(x + 0.15, np.zeros(k), np.asarray(post, dtype=float), POST, 9.0, key="posterior", role="posterior")
+    return c.svg()
+
+
+def histograms(t, mu_mean: float) -> str:
+    """Two histograms over all groups: posterior means (own means drawn as a line) and shrinkage weights."""
+    w, h = 960.0, 340.0
+    split = w * 1.4 / 2.4
+    c = Canvas(w, h, "summary-hist", "Histograms over all groups: posterior and own means, shrinkage weights")
+    a = c.panel(0, 0, split, h, title="where the groups sit", ylabel="groups", ylim=(0, None), ypad=0.05,
+                xlabel="theta (the outermost 0.05% of each end folded into the end bins)")
+    post, raw = t["theta_mean"].to_numpy(dtype=float), t["raw_mean"].to_numpy(dtype=float)
+    both = np.concatenate([post, raw])
+    both = both[np.isfinite(both)]
+    lo, hi = np.quantile(both, [0.0005, 0.9995]) if both.size else (0.0, 1.0)
+    if not hi > lo:
+        lo, hi = lo - 0.5, hi + 0.5
+    edges = np.linspace(lo, hi, 81)
+    a.steps(edges, np.histogram(np.clip(post[np.isfinite(post)], lo, hi), edges)[0], fill=POST, opacity=0.6,
+            key="posterior means", role="posterior-means")
+    a.steps(edges, np.histogram(np.clip(raw[np.isfinite(raw)], lo, hi), edges)[0], color=RAW, width=1.3,
+            key="own means", role="own-means")
+    a.vline(mu_mean, POOL, 1.5, "dashed", key="pooled mean (mu)")
+    b = c.panel(split, 0, w - split, h, title="how far each was pulled", ylabel="groups", ylim=(0, None), ypad=0.05,
+                xlim=(0, 1), xlabel="shrinkage weight: 0 own mean, 1 pooled mean")
+    wt = t["shrink_weight"].to_numpy(dtype=float)
+    bins = np.linspace(0, 1, 51)
+    b.steps(bins, np.histogram(wt[np.isfinite(wt)], bins)[0], fill=POST, opacity=0.6, role="weights")
+    c.align(a, b, sides="top bottom")
+    return c.svg()
+
+
+def make_figures(res) -> dict[str, str]:
+    """Every picture of a Results, as SVG text."""
+    o, t = res.options, res.table
+    mu = res.lab["consensus"]["mean"]
+    figs = {}
+    if res.mode == "full":
+        figs["shrinkage"] = shrinkage(t, mu)
+        figs["intervals"] = intervals(t, mu, o.level, o.lower, o.upper, o.threshold, key=res.key)
+        if res.heat is not None:
+            figs["ranks"] = rank_heat(res.heat["matrix"], [res.labels[j] for j in res.heat["rows"]],
+                                      res.heat["columns"])
+        ch = res.checks or {}
+        figs["predictive"] = predictive(ch.get("spread"), ch.get("sd"), res.labels, ch.get("extreme"))
+    else:
+        figs["histograms"] = histograms(t, mu)
+    figs["traces"] = hyper_traces({k: v for k, v in res.hyper_draws.items() if k != "within_sd"})
+    if res.tail is not None and res.tail["fixed_df"] is None:
+        figs["df"] = df_posterior(res.tail["grid"], res.tail["prior"], res.tail["posterior"])
+    return figs

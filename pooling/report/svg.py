@@ -565,7 +565,7 @@ class Panel:
             ty = y0 + h - ticks * h
             out = [f'<defs><linearGradient id="{gid}" x1="0" y1="1" x2="0" y2="0">{grad}</linearGradient></defs>',
                    f'<rect x="{num(bx)}" y="{num(y0)}" width="{width:g}" height="{num(h)}" fill="url(#{gid})"/>',
-                   f'<path d="' + "".join(f"M{num(bx + width)} {v}h{TICK:g}" for v in nums(ty))
+                   '<path d="' + "".join(f"M{num(bx + width)} {v}h{TICK:g}" for v in nums(ty))
                    + f'" stroke="{AXIS}" fill="none"/>',
                    f'<g fill="{TEXT}">' + "".join(
                        f'<text x="{num(bx + width + TICK + GAP)}" y="{v}" dy=".35em">{text(s)}</text>'

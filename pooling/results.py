@@ -1,0 +1,983 @@
+"""Every answer of a run, computed once, in the engine's internal units, and mapped to the user's at the end.
+
+    res = results.compute(fit, ReportOptions(level=0.9, threshold=400.0))
+    res.table            # one row per group, every group, user units (also for summary mode)
+    res.hyper            # mu, tau, ... : mean, sd, median, the level's interval, MC error, R-hat, ESS
+    res.tail             # heavy tails: the posterior of df and the outlying groups
+    res.lab, res.checks, res.new_group, res.pairs, res.heat, res.diagnostics, res.methods
+
+Both ways of running produce the same `Results`: a full run (`posterior.Fit`) from its stored draws, a
+summary-mode run (`summary.SummaryFit`) from the running summaries its chains kept, with its kept groups'
+columns from their stored draws. The page (report/page.py), the terminal (terminal.py) and the run folder
+(output.py) only present a Results; nothing there computes a number from draws.
+
+Internal units: y' = (y - center) / scale with scale a power of two (model.build). Means, intervals,
+probabilities and ranks are computed from internal-unit draws; thresholds, limits and the allowed bias are
+carried into those units (asked.ReportOptions.internal); a location x maps back as center + scale * x,
+a spread as scale * x. At offsets of 1e12 this is the difference between the right answer and one off by
+tens of posterior sds (a float64 near 1e12 has steps of 1.2e-4).
+
+Where a new per-group answer goes: its per-draw formula in pooling/answers.py (accumulate for means and
+counts, derived for exact intervals), summary mode's histogram in summary_kernel.py if it needs an
+interval there, and its column in `_assemble` below, with its description in COLUMNS. Both modes then
+have it.
+"""
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+import pandas as pd
+
+from . import answers as A
+from .asked import (PURPOSE_CHECKS, PURPOSE_PREDICTION, ReportOptions, check_k, derived_rng, level_key, level_label,
+                    resolve_groups, split_compare)
+from .errors import InputError
+from .posterior import Fit, SCALED, hyper_names, hyper_summary
+
+MAX_PAIRWISE = 400
+HEAT_ROWS_MANY = 40  # above HEAT_ALL groups the heat map shows the best 40 over ranks 1..HEAT_ALL
+HEAT_ALL = 60
+TABLE_BLOCK = 128  # groups per block of the interval computations (4,000 draws x 128 groups stay in cache)
+OUTLYING_AT = 0.5  # a group is flagged outlying when P(outlying) is at least this
+CHECK_DRAWS = 1000  # the model checks use at most this many evenly spaced draws
+
+
+# ---------------------------------------------------------------------------------------------
+# the column guide: every column of groups.csv, in words ({L} is the interval level, e.g. 95%)
+
+COLUMNS = {
+    "group": "group label, exactly as in the data (in groups.csv, text cells beginning with = + - @, a tab or a "
+             "carriage return carry a leading apostrophe so that spreadsheets do not run them as formulas)",
+    "n": "number of measurements in the group (fractional when a store's half-life down-weights old batches)",
+    "raw_mean": "the group's own mean (or its given estimate, for the known structure)",
+    "raw_sd": "the group's own standard deviation (n - 1 divisor); empty for a single measurement",
+    "std_error": "the given standard error of the estimate (known structure)",
+    "theta_mean": "posterior mean of the group mean theta_j",
+    "theta_sd": "posterior standard deviation of theta_j",
+    "theta_low": "lower end of the central {L} credible interval of theta_j",
+    "theta_high": "upper end of the central {L} credible interval of theta_j",
+    "sigma_mean": "posterior mean of the within-group sd sigma_j",
+    "sigma_low": "lower end of the {L} credible interval of sigma_j",
+    "sigma_high": "upper end of the {L} credible interval of sigma_j",
+    "shrink_weight": "posterior mean of the shrinkage weight v_j / (v_j + tau^2 / lambda_j), v_j = sigma_j^2 / n_j "
+                     "(se_j^2 when known; lambda_j = 1 for the normal between-group distribution): 0 keeps the "
+                     "group's own mean, 1 replaces it with the pooled mean",
+    "shrink_low": "lower end of the {L} credible interval of the shrinkage weight",
+    "shrink_high": "upper end of the {L} credible interval of the shrinkage weight",
+    "shrink_realised": "(own mean - posterior mean) / (own mean - posterior mean of mu): the share of the way "
+                       "to the pooled mean the estimate actually moved (0: not at all, 1: all the way); unsteady "
+                       "for own means close to mu",
+    "p_above": "P(theta_j > threshold)",
+    "p_below": "P(theta_j < threshold)",
+    "threshold_side": "above or below the threshold when P(above) or P(below) is at least decide_at, else undecided",
+    "p_mean_outside": "P(theta_j outside the specification limits): the group's mean, not its single measurements",
+    "limits_side": "outside when p_mean_outside is at least decide_at, inside when it is at most 1 - decide_at, "
+                   "else undecided",
+    "outside_mean": "predicted fraction of the group's future measurements outside the specification limits "
+                    "(posterior mean of P(y_new outside | theta_j, sigma_j))",
+    "outside_low": "lower end of the {L} credible interval of that fraction",
+    "outside_high": "upper end of the {L} credible interval of that fraction",
+    "bias_mean": "posterior mean of theta_j - mu (bias against the consensus value)",
+    "bias_low": "lower end of the {L} credible interval of the bias",
+    "bias_high": "upper end of the {L} credible interval of the bias",
+    "p_bias_over": "P(|theta_j - mu| > allowed bias)",
+    "tail_weight": "posterior mean of lambda_j, the group's weight in the heavy-tailed between-group distribution "
+                   "theta_j ~ N(mu, tau^2 / lambda_j): about 1 for an ordinary group; a weight w lets the group's "
+                   "deviation from mu be about 1/sqrt(w) times as wide as tau (0.04: five times)",
+    "p_outlying": "P(lambda_j is below the 5% point of its prior at the drawn df): the probability that the group "
+                  "needs a wider allowance than 95% of groups would get",
+    "outlying": "true when p_outlying is at least 0.5: the group sits outside the between-group distribution of "
+                "the others, more likely than not",
+    "rank_mean": "posterior mean rank (1 = best)",
+    "rank_low": "lower end of the {L} rank interval (whole ranks)",
+    "rank_high": "upper end of the {L} rank interval (whole ranks)",
+    "p_best": "probability of being the best group",
+    "p_top_k": "probability of being among the k best",
+    "z_score": "(own mean - assigned value) / sigma_pt",
+    "z_signal": "ISO 13528: none for |z| <= 2, warning for 2 < |z| < 3, action for |z| >= 3",
+    "kept": "summary mode: why every draw of this group was kept (named, sample, top candidate); empty when only "
+            "summaries were kept",
+    "theta_limit_error": "summary mode: largest possible error of theta_low and theta_high (histogram bin width); "
+                         "0 for kept groups",
+    "sigma_limit_error": "summary mode: largest possible error of sigma_low and sigma_high; 0 when exact",
+    "shrink_limit_error": "summary mode: largest possible error of shrink_low and shrink_high; 0 when exact",
+    "outside_limit_error": "summary mode: largest possible error of outside_low and outside_high; 0 for kept groups",
+    "bias_limit_error": "summary mode: largest possible error of bias_low and bias_high (above 100,000 groups: "
+                        "theta's bound plus max |mu_s - mean mu|)",
+    "rank_mean_error": "summary mode: largest possible error of rank_mean (half the rank bucket's count - 1, "
+                       "averaged over draws); 0 for kept groups",
+    "rank_limit_error": "summary mode: largest possible error of rank_low and rank_high, in ranks: the exact "
+                        "rank_low is in [rank_low, rank_low + e], the exact rank_high in [rank_high - e, rank_high]; "
+                        "0 for kept groups",
+    "theta_rhat_classic": "summary mode: classic R-hat of theta_j from the chains' means and variances (not split, "
+                          "not rank-normalised): a screen for all groups",
+}
+
+
+def column_base(name: str) -> str:
+    """'theta_low_95' -> 'theta_low' (the COLUMNS key of a level-named column)."""
+    head, _, tail = name.rpartition("_")
+    if head and head.endswith(("_low", "_high")) and tail.replace("_", "").isdigit():
+        return head
+    for stem in ("_low_", "_high_"):
+        i = name.find(stem)
+        if i > 0 and name[i + len(stem):].replace("_", "").isdigit():
+            return name[: i + len(stem) - 1]
+    return name
+
+
+def describe_column(name: str, level: float) -> str | None:
+    text = COLUMNS.get(column_base(name))
+    return None if text is None else text.replace("{L}", level_label(level))
+
+
+# ---------------------------------------------------------------------------------------------
+# the results object
+
+
+@dataclass
+class Results:
+    """Every answer of one run, in the user's units (see the module notes)."""
+
+    options: ReportOptions
+    mode: str  # "full" or "summary"
+    model: object
+    problem: object
+    table: pd.DataFrame
+    hyper: dict
+    hyper_draws: dict
+    diagnostics: dict
+    run: dict
+    data: dict
+    lab: dict
+    tail: dict | None
+    new_group: dict | None
+    checks: dict | None
+    pairs: pd.DataFrame | None
+    heat: dict | None
+    methods: dict = field(default_factory=dict)
+    summary: dict | None = None  # summary mode: kept groups, error figures, classic R-hat screen
+    seconds: dict = field(default_factory=dict)
+
+    @property
+    def J(self) -> int:
+        return len(self.table)
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        return tuple(self.table["group"])
+
+    @property
+    def targets_met(self) -> bool:
+        return bool(self.diagnostics["met"])
+
+    @property
+    def key(self) -> str:
+        """The suffix of this run's interval columns: '95' at level 0.95."""
+        return level_key(self.options.level)
+
+    def col(self, base: str) -> str:
+        """The table column of an interval end at this run's level: col('theta_low') -> 'theta_low_95'."""
+        return f"{base}_{self.key}"
+
+
+# ---------------------------------------------------------------------------------------------
+# the internal-unit view of a full run's draws
+
+
+@dataclass(frozen=True, eq=False)
+class Draws:
+    """A full run's draws stacked over chains, internal units: mu, tau (S,); theta (S, J); sigma (S, J), (S, 1)
+    or (S, 0); lam (S, J) or (S, 0); df (S,) or None; per-chain shapes kept for the accumulators."""
+
+    mu: np.ndarray
+    tau: np.ndarray
+    theta: np.ndarray
+    sigma: np.ndarray
+    lam: np.ndarray
+    df: np.ndarray | None
+    chains: int
+    per_chain: int
+
+    @property
+    def S(self) -> int:
+        return self.mu.shape[0]
+
+
+def _stacked(raw) -> Draws:
+    C, D = raw.mu.shape
+    J = raw.theta.shape[2]
+    S = C * D
+    if raw.sigma is None:
+        sigma = np.empty((S, 0))
+    elif raw.sigma.ndim == 2:
+        sigma = raw.sigma.reshape(S, 1)
+    else:
+        sigma = raw.sigma.reshape(S, J)
+    lam = raw.lam.reshape(S, J) if raw.lam is not None else np.empty((S, 0))
+    return Draws(raw.mu.reshape(S), raw.tau.reshape(S), raw.theta.reshape(S, J), sigma, lam,
+                 None if raw.df is None else raw.df.reshape(S), C, D)
+
+
+def _quantiles(x: np.ndarray, probs) -> np.ndarray:
+    """numpy's default (linear) quantiles of each column of x (S, m): rows of the result follow probs."""
+    xt = np.array(x.T, order="C")  # selecting along contiguous memory is several times faster
+    return np.quantile(xt, probs, axis=1, overwrite_input=True)
+
+
+def quantile_index(S: int, q: float) -> int:
+    """Index into the sorted draws of the q quantile by the inverted empirical CDF (an integer rank)."""
+    return int(min(S - 1, max(0, np.ceil(q * S) - 1)))
+
+
+def rank_draws(x: np.ndarray, chunk: int = 256) -> np.ndarray:
+    """Rank of each group within each draw, 1 = best (the largest x): R[s, j] = 1 + #{k : x_sk > x_sj},
+    ties broken by position (a stable sort of -x)."""
+    S, J = x.shape
+    dtype = np.uint16 if J < np.iinfo(np.uint16).max else np.int32
+    ranks = np.empty((S, J), dtype=dtype)
+    counting = np.broadcast_to(np.arange(1, J + 1, dtype=dtype), (chunk, J))
+    for a in range(0, S, chunk):
+        block = x[a:a + chunk]
+        order = np.argsort(-block, axis=1, kind="stable")
+        np.put_along_axis(ranks[a:a + chunk], order, counting[: block.shape[0]], axis=1)
+    return ranks
+
+
+def rank_summary(ranks: np.ndarray, level: float, k: int) -> dict[str, np.ndarray]:
+    """Mean rank, the central rank interval (inverted empirical CDF, so the bounds are whole ranks),
+    P(rank = 1) and P(rank <= k), per group."""
+    S, J = ranks.shape
+    i_lo = quantile_index(S, (1 - level) / 2)
+    i_hi = quantile_index(S, (1 + level) / 2)
+    out = {"rank_mean": np.empty(J), "rank_low": np.empty(J), "rank_high": np.empty(J),
+           "p_best": np.empty(J), "p_top_k": np.empty(J)}
+    for a in range(0, J, 1024):
+        r = np.ascontiguousarray(ranks[:, a:a + 1024].T)  # (groups, draws): selection runs along memory
+        out["rank_mean"][a:a + 1024] = r.mean(axis=1, dtype=np.float64)
+        out["p_best"][a:a + 1024] = (r == 1).mean(axis=1)
+        out["p_top_k"][a:a + 1024] = (r <= k).mean(axis=1)
+        r.partition([i_lo, i_hi], axis=1)
+        out["rank_low"][a:a + 1024] = r[:, i_lo]
+        out["rank_high"][a:a + 1024] = r[:, i_hi]
+    return out
+
+
+def rank_matrix(ranks: np.ndarray, rows: np.ndarray | None = None, max_rank: int | None = None) -> np.ndarray:
+    """P(rank_j = r) for the groups `rows` (default all) and r = 1..max_rank; when max_rank < J one
+    more column holds P(rank_j > max_rank), so every row sums to 1."""
+    S, J = ranks.shape
+    rows = np.arange(J) if rows is None else np.asarray(rows, dtype=np.int64)
+    m = J if max_rank is None else int(min(max_rank, J))
+    width = m + (1 if m < J else 0)
+    sub = np.minimum(ranks[:, rows].astype(np.int64), m + 1) - 1  # ranks beyond m share the last column
+    codes = np.arange(len(rows))[None, :] * width + sub
+    counts = np.bincount(codes.ravel(), minlength=len(rows) * width).reshape(len(rows), width)
+    return counts / S
+
+
+def prob_greater(theta: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """M[a, b] = P(theta_a > theta_b) = fraction of draws with theta_a > theta_b; NaN on the diagonal."""
+    sub = theta[:, idx]
+    m = len(idx)
+    out = np.empty((m, m))
+    for a in range(m):
+        out[a] = (sub[:, a:a + 1] > sub).mean(axis=0)
+    out[np.arange(m), np.arange(m)] = np.nan
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# per-group answers, internal units
+
+
+def _merge_chains(run: np.ndarray, D: int) -> dict[str, np.ndarray]:
+    """Means over all chains of the running means (equal counts per chain) and the pooled sd of theta
+    (Chan, Golub and LeVeque's merge of the chains' M2)."""
+    C = run.shape[0]
+    S = C * D
+    th_mean = run[:, A.R_THETA].mean(axis=0)
+    m2 = run[:, A.R_THETA_M2].sum(axis=0) + D * ((run[:, A.R_THETA] - th_mean) ** 2).sum(axis=0)
+    return {"theta_mean": th_mean, "theta_sd": np.sqrt(m2 / max(S - 1, 1)),
+            "sigma_mean": run[:, A.R_SIGMA].mean(axis=0), "shrink_weight": run[:, A.R_SHRINK].mean(axis=0),
+            "outside_mean": run[:, A.R_OUT].mean(axis=0), "tail_weight": run[:, A.R_LAM].mean(axis=0)}
+
+
+def _df_cuts(problem, df: np.ndarray | None, S: int) -> np.ndarray:
+    """The outlying cut on lambda for each draw's df (0 when the model has no lambda)."""
+    if df is None:
+        return np.zeros(S)
+    grid = problem.df_grid
+    cuts = A.lambda_cuts(grid)
+    idx = np.searchsorted(grid, df)  # the grid is increasing and every draw is one of its points
+    idx = np.minimum(idx, len(grid) - 1)
+    return cuts[idx]
+
+
+def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
+    """Per-group answers of a full run, internal units: means and counts by answers.accumulate over the
+    stored draws (the function summary mode runs while sampling), intervals exact from the stored draws."""
+    p = fit.problem
+    raw = fit.raw
+    d = p.data
+    J = p.J
+    C, D = raw.mu.shape
+    S = C * D
+    a = o.internal(p.center, p.scale, limits_apply=p.within_code != 2)
+    dr = _stacked(raw)
+    run = np.zeros((C, A.N_R, J))
+    hits = np.zeros((C, A.N_H, J), dtype=np.uint32)
+    cuts = _df_cuts(p, dr.df, S).reshape(C, D)
+    for c in range(C):
+        sig = dr.sigma[c * D:(c + 1) * D]
+        lam = dr.lam[c * D:(c + 1) * D]
+        A.accumulate_stored(d.within, d.n, d.v_known, raw.mu[c], raw.tau[c], raw.theta[c], sig, lam, cuts[c], a,
+                            run[c], hits[c])
+    out = _merge_chains(run, D)
+    h = hits.sum(axis=0, dtype=np.int64)
+    out["hits"] = h
+    probs = [(1 - o.level) / 2, (1 + o.level) / 2]
+    lows = {name: np.empty(J) for name in ("theta", "sigma", "shrink", "outside", "bias")}
+    highs = {name: np.empty(J) for name in lows}
+    buf = np.empty((S, TABLE_BLOCK))
+    heavy_lam = dr.lam
+    for j0 in range(0, J, TABLE_BLOCK):
+        j1 = min(J, j0 + TABLE_BLOCK)
+        m = j1 - j0
+        qs = _quantiles(dr.theta[:, j0:j1], probs)
+        lows["theta"][j0:j1], highs["theta"][j0:j1] = qs
+        if p.within_code == 0:
+            qs = _quantiles(dr.sigma[:, j0:j1], probs)
+            lows["sigma"][j0:j1], highs["sigma"][j0:j1] = qs
+        for name, kind in (("shrink", A.D_SHRINK), ("bias", A.D_BIAS)) + (
+                (("outside", A.D_OUT),) if a[A.A_LIMITS] > 0 else ()):
+            b = buf[:, :m]
+            A.derived(kind, d.within, d.n, d.v_known, dr.mu, dr.tau, dr.theta, dr.sigma, heavy_lam, a, j0, b)
+            qs = _quantiles(b, probs)
+            lows[name][j0:j1], highs[name][j0:j1] = qs
+    if p.within_code == 1:
+        lo, hi = np.quantile(dr.sigma[:, 0], probs)
+        lows["sigma"][:], highs["sigma"][:] = lo, hi
+    out["low"], out["high"] = lows, highs
+    ranks = rank_draws(dr.theta if o.best == "highest" else -dr.theta)
+    out.update(rank_summary(ranks, o.level, k))
+    out["ranks"] = ranks
+    return out, {"draws_total": S}
+
+
+def _classic_rhat(run: np.ndarray, D: int) -> np.ndarray:
+    """sqrt(((D - 1) / D W + B / D) / W) from per-chain means and M2 (Gelman and Rubin 1992)."""
+    C = run.shape[0]
+    if C < 2 or D < 2:
+        return np.full(run.shape[2], np.nan)
+    means = run[:, A.R_THETA]
+    W = (run[:, A.R_THETA_M2] / (D - 1)).mean(axis=0)
+    b_over_d = means.var(axis=0, ddof=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.sqrt(((D - 1) / D * W + b_over_d) / W)
+
+
+def _exact_weight_interval(rho_sorted: np.ndarray, a: np.ndarray, probs) -> tuple[np.ndarray, ...]:
+    """Quantiles over draws of w_j = a_j / (a_j + rho) (decreasing in rho), exactly as numpy's linear
+    quantile of the w draws: the i-th smallest w is w at the (S - 1 - i)-th smallest rho."""
+    S = rho_sorted.shape[0]
+    out = []
+    for p in probs:
+        h = (S - 1) * p
+        i = int(math.floor(h))
+        g = h - i
+        i1 = min(i + 1, S - 1)
+        w0 = a / (a + rho_sorted[S - 1 - i])
+        w1 = a / (a + rho_sorted[S - 1 - i1])
+        out.append(w0 + g * (w1 - w0))
+    return tuple(out)
+
+
+def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
+    """Per-group answers of a summary-mode run, internal units: means and counts from the chains' running
+    summaries, intervals from their histograms (each with its error bound), ranks from the bucket counts;
+    then every column of the kept groups from their stored draws (exact)."""
+    from . import summary_kernel as sk
+    from .summary import BIAS_HIST_GROUPS, RANK_EXACT
+
+    p = fit.problem
+    acc = fit.acc
+    sh = acc.setup
+    raw = fit.raw
+    J = p.J
+    C, D = raw.mu.shape[0], acc.draws
+    S = C * D
+    probs = np.array([(1 - o.level) / 2, (1 + o.level) / 2])
+    out = _merge_chains(acc.run, D)
+    h = acc.hits.sum(axis=0, dtype=np.int64)
+    out["hits"] = h
+    errors: dict[str, np.ndarray] = {}
+
+    def hist_interval(q: int, kind: int):
+        est = np.empty((2, J))
+        err = np.empty((2, J))
+        sk.hist_quantiles(acc.hist, acc.ext, sh.glo, sh.gw, int(sh.rowmap[q]), probs, kind, est, err)
+        return est[0], est[1], np.maximum(err[0], err[1]) * (1 + 1e-9)  # slack for the rounding of bin edges
+
+    lows, highs = {}, {}
+    lows["theta"], highs["theta"], errors["theta"] = hist_interval(sk.Q_THETA, 0)
+    if p.within_code == 0:
+        lows["sigma"], highs["sigma"], errors["sigma"] = hist_interval(sk.Q_LOGSIGMA, 1)
+        lows["shrink"], highs["shrink"], errors["shrink"] = hist_interval(sk.Q_LOGITW, 2)
+    else:
+        tau2 = raw.tau.reshape(-1) ** 2
+        if p.within_code == 1:
+            sig = raw.sigma.reshape(-1)
+            lo, hi = np.quantile(sig, probs)
+            lows["sigma"], highs["sigma"], errors["sigma"] = np.full(J, lo), np.full(J, hi), np.zeros(J)
+        if p.heavy:  # lambda_j varies by group and draw: no one-parameter shortcut
+            lows["shrink"] = highs["shrink"] = np.full(J, np.nan)
+            errors["shrink"] = np.full(J, np.nan)
+        else:
+            if p.within_code == 1:  # w = 1 / (1 + n rho), rho = tau^2 / sigma^2
+                rho, av = np.sort(tau2 / raw.sigma.reshape(-1) ** 2), 1.0 / p.n
+            else:
+                rho, av = np.sort(tau2), p.v_known
+            lows["shrink"], highs["shrink"] = _exact_weight_interval(rho, av, probs)
+            errors["shrink"] = np.zeros(J)
+    if sh.rowmap[sk.Q_LOGITF] >= 0:
+        lows["outside"], highs["outside"], errors["outside"] = hist_interval(sk.Q_LOGITF, 2)
+    mu_mean = float(raw.mu.mean())
+    D_mu = float(np.max(np.abs(raw.mu - mu_mean)))
+    if sh.rowmap[sk.Q_BIAS] >= 0:
+        lows["bias"], highs["bias"], errors["bias"] = hist_interval(sk.Q_BIAS, 0)
+    else:
+        lows["bias"], highs["bias"] = lows["theta"] - mu_mean, highs["theta"] - mu_mean
+        errors["bias"] = errors["theta"] + D_mu
+    out["rank_mean"] = acc.run[:, A.R_RANK].sum(axis=0) / S
+    r_lo, r_hi, r_err = np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64)
+    sk.rank_intervals(acc.rhist, acc.wmax, sh.rank_edges, quantile_index(S, probs[0]), quantile_index(S, probs[1]), J,
+                      r_lo, r_hi, r_err)
+    out["rank_low"], out["rank_high"] = r_lo.astype(float), r_hi.astype(float)
+    out["p_best"] = h[A.H_BEST] / S
+    out["p_top_k"] = h[A.H_TOP] / S
+    errors["rank_mean"] = acc.run[:, A.R_RANK_ERR].sum(axis=0) / S
+    errors["rank_limit"] = r_err.astype(float)
+    # kept groups: every column from their stored draws, as a full run computes it (error 0)
+    kept = sh.kept
+    ex, _ = _full_group_answers(fit.kept, o, min(k, len(kept)))
+    for name in ("theta_mean", "theta_sd", "sigma_mean", "shrink_weight", "outside_mean", "tail_weight"):
+        out[name][kept] = ex[name]
+    for name in lows:
+        lows[name][kept] = ex["low"][name]
+        highs[name][kept] = ex["high"][name]
+        errors[name][kept] = 0.0
+    kh = ex["hits"]
+    for row in (A.H_ABOVE, A.H_BELOW, A.H_BIAS, A.H_OUTLYING, A.H_MEAN_OUT):
+        h[row, kept] = kh[row]
+    rk = rank_summary(acc.ranks.reshape(-1, len(kept)), o.level, sh.k)  # ranks among all groups, exact
+    out["rank_mean"][kept] = rk["rank_mean"]
+    out["rank_low"][kept] = rk["rank_low"]
+    out["rank_high"][kept] = rk["rank_high"]
+    errors["rank_mean"][kept] = 0.0
+    errors["rank_limit"][kept] = 0.0
+    out["low"], out["high"] = lows, highs
+    rhat = _classic_rhat(acc.run, D)
+    finite = rhat[np.isfinite(rhat)]
+    figures = {
+        "draws_total": S, "kept_groups": int(len(kept)), "bins": int(sh.bins), "rank_buckets": int(acc.buckets),
+        "grid_half_width_sd": acc.grid["grid_half_width_sd"], "mu_spread_D": D_mu * p.scale,
+        "rank_grid_bins": int(len(sh.rank_edges) - 1), "bias_from_histogram": bool(sh.rowmap[sk.Q_BIAS] >= 0),
+        "classic_rhat": {"max": float(finite.max()) if finite.size else None,
+                         "above_1.01": int(np.sum(finite >= 1.01)), "groups": int(finite.size)},
+        "rank_exact_up_to": RANK_EXACT, "bias_hist_groups": BIAS_HIST_GROUPS,
+    }
+    out["errors"] = errors
+    out["classic_rhat"] = rhat
+    return out, figures
+
+
+# ---------------------------------------------------------------------------------------------
+# the table in the user's units
+
+
+def _decide(p_yes: np.ndarray, p_no: np.ndarray, at: float, yes: str, no: str) -> np.ndarray:
+    out = np.full(len(p_yes), "undecided", dtype=object)
+    out[p_no >= at] = no
+    out[p_yes >= at] = yes
+    return out
+
+
+def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.DataFrame:
+    """The per-group table, every group, user units; interval columns named by the level."""
+    c, k = p.center, p.scale
+    st = p.stats
+    L = level_key(o.level)
+    J = p.J
+    within = p.model.within
+    h = g["hits"]
+    cols: dict[str, object] = {"group": np.array(st.labels, dtype=object), "n": _whole_or_fraction(st.n),
+                               "raw_mean": st.raw_mean}
+    if st.kind == "known":
+        cols["std_error"] = st.raw_se
+    else:
+        cols["raw_sd"] = st.raw_sd
+    cols["theta_mean"] = g["theta_mean"] * k + c
+    cols["theta_sd"] = g["theta_sd"] * k
+    cols[f"theta_low_{L}"] = g["low"]["theta"] * k + c
+    cols[f"theta_high_{L}"] = g["high"]["theta"] * k + c
+    if within != "known":
+        cols["sigma_mean"] = g["sigma_mean"] * k
+        cols[f"sigma_low_{L}"] = g["low"]["sigma"] * k
+        cols[f"sigma_high_{L}"] = g["high"]["sigma"] * k
+    cols["shrink_weight"] = g["shrink_weight"]
+    cols[f"shrink_low_{L}"] = g["low"]["shrink"]
+    cols[f"shrink_high_{L}"] = g["high"]["shrink"]
+    mu_mean_i = g["mu_mean"]
+    ybar = p.ybar  # internal own means: their digits survive any offset
+    dist = ybar - mu_mean_i
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cols["shrink_realised"] = np.where(dist != 0, (ybar - g["theta_mean"]) / dist, np.nan)
+    if o.threshold is not None:
+        cols["p_above"] = h[A.H_ABOVE] / S
+        cols["p_below"] = h[A.H_BELOW] / S
+        cols["threshold_side"] = _decide(cols["p_above"], cols["p_below"], o.decide_at, "above", "below")
+    if o.limits:
+        pm = h[A.H_MEAN_OUT] / S
+        cols["p_mean_outside"] = pm
+        cols["limits_side"] = _decide(pm, 1.0 - pm, o.decide_at, "outside", "inside")
+        if within != "known":
+            cols["outside_mean"] = g["outside_mean"]
+            cols[f"outside_low_{L}"] = g["low"]["outside"]
+            cols[f"outside_high_{L}"] = g["high"]["outside"]
+    cols["bias_mean"] = (g["theta_mean"] - mu_mean_i) * k
+    cols[f"bias_low_{L}"] = g["low"]["bias"] * k
+    cols[f"bias_high_{L}"] = g["high"]["bias"] * k
+    if o.allowed_bias is not None:
+        cols["p_bias_over"] = h[A.H_BIAS] / S
+    if p.heavy:
+        cols["tail_weight"] = g["tail_weight"]
+        cols["p_outlying"] = h[A.H_OUTLYING] / S
+        cols["outlying"] = cols["p_outlying"] >= OUTLYING_AT
+    cols["rank_mean"] = g["rank_mean"]
+    cols[f"rank_low_{L}"] = np.asarray(g["rank_low"]).astype(np.int64)
+    cols[f"rank_high_{L}"] = np.asarray(g["rank_high"]).astype(np.int64)
+    cols["p_best"] = g["p_best"]
+    cols["p_top_k"] = g["p_top_k"]
+    z, signal, _ = z_basis(p, o)
+    cols["z_score"], cols["z_signal"] = z, signal
+    table = pd.DataFrame(cols)
+    if summary_fit is not None:
+        e = g["errors"]
+        reason = np.full(J, "", dtype=object)
+        reason[summary_fit.kept_index] = summary_fit.acc.setup.kept_reason
+        table["kept"] = reason
+        table["theta_limit_error"] = e["theta"] * k
+        if "sigma" in e:
+            table["sigma_limit_error"] = e["sigma"] * k
+        table["shrink_limit_error"] = e["shrink"]
+        if "outside" in e and "outside_mean" in table:
+            table["outside_limit_error"] = e["outside"]
+        table["bias_limit_error"] = e["bias"] * k
+        table["rank_mean_error"] = e["rank_mean"]
+        table["rank_limit_error"] = e["rank_limit"]
+        table["theta_rhat_classic"] = g["classic_rhat"]
+    return table
+
+
+def _whole_or_fraction(n):
+    """Group sizes as whole numbers, unless down-weighting (a store's half-life) made them fractional."""
+    n = np.asarray(n)
+    return n.astype(np.int64) if np.all(n == np.round(n)) else n.astype(np.float64)
+
+
+def z_basis(p, o: ReportOptions):
+    """z-scores of the own means with their signals and basis, computed on the internal means (ISO 13528
+    Algorithm A is location-scale equivariant) and the basis mapped to the user's units."""
+    from .report.interlab import z_scores
+
+    c, k = p.center, p.scale
+    assigned = None if o.assigned is None else (o.assigned - c) / k
+    spt = None if o.sigma_pt is None else o.sigma_pt / k
+    z, signal, basis = z_scores(p.ybar, assigned, spt)
+    basis = dict(basis)
+    basis["assigned"] = basis["assigned"] * k + c
+    basis["sigma_pt"] = basis["sigma_pt"] * k
+    return z, signal, basis
+
+
+# ---------------------------------------------------------------------------------------------
+# beyond the table: heavy tails, the interlaboratory view, predictions, checks
+
+
+def tail_summary(problem, raw, table: pd.DataFrame) -> dict | None:
+    """The posterior of df (how heavy the between-group tail is) and the outlying groups."""
+    if not problem.heavy:
+        return None
+    between = problem.model.between
+    grid = problem.df_grid
+    df = raw.df.reshape(-1)
+    post = np.array([np.mean(df == g) for g in grid])
+    _, prior = between.grid_and_weights()
+    prior = np.asarray(prior, dtype=float)
+    prior = prior / prior.sum()
+    cum = np.cumsum(post)
+    median = float(grid[min(int(np.searchsorted(cum, 0.5)), len(grid) - 1)])
+    flagged = table.loc[table["outlying"], "group"].tolist()
+    return {
+        "between": between.name, "fixed_df": between.df, "grid": [float(x) for x in grid],
+        "prior": prior.tolist(), "posterior": post.tolist(),
+        "p_normal": float(post[np.isinf(grid)].sum()) if np.isinf(grid).any() else 0.0,
+        "p_df_at_most_4": float(post[grid <= 4].sum()), "median_df": median,
+        "outlying": flagged, "outlying_rule": f"p_outlying >= {OUTLYING_AT:g}",
+        "cut_tail": A.OUTLYING_PRIOR_TAIL,
+    }
+
+
+def _summ(x: np.ndarray, level: float, scale: float = 1.0, center: float = 0.0) -> dict:
+    lo, med, hi = np.quantile(x, [(1 - level) / 2, 0.5, (1 + level) / 2])
+    return {"mean": float(x.mean()) * scale + center, "median": float(med) * scale + center,
+            "sd": float(x.std(ddof=1)) * scale, "low": float(lo) * scale + center, "high": float(hi) * scale + center}
+
+
+def _repeatability_draws(problem, raw, within_sd=None) -> np.ndarray | None:
+    """Per draw, the typical within-group sd s_r = sqrt(mean_j sigma_j^2) (separate), sigma (shared); None when
+    known. Internal units, so the squares neither under- nor overflow."""
+    if problem.within_code == 2:
+        return None
+    if within_sd is not None:
+        return within_sd.reshape(-1)
+    if problem.within_code == 1:
+        return raw.sigma.reshape(-1)
+    sig = raw.sigma.reshape(-1, raw.sigma.shape[2])
+    return np.sqrt(np.einsum("ij,ij->i", sig, sig) / sig.shape[1])
+
+
+def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd=None) -> dict:
+    """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws; the classical
+    comparators (one-way ANOVA for measurements, DerSimonian-Laird for estimates with standard errors); the
+    per-lab bias table and its agreement with the z-scores. Internal units, mapped at the end."""
+    from .report.interlab import LIMIT_FACTOR, oneway_anova, random_effects_dl
+
+    c, k = problem.center, problem.scale
+    level = o.level
+    L = level_key(level)
+    mu, tau = raw.mu.reshape(-1), raw.tau.reshape(-1)
+    out: dict = {"level": level, "structure": problem.model.within, "between": problem.model.between.name,
+                 "consensus": _summ(mu, level, k, c), "between_sd": _summ(tau, level, k)}
+    sr = _repeatability_draws(problem, raw, within_sd)
+    if sr is not None:
+        sR = np.hypot(tau, sr)
+        with np.errstate(divide="ignore"):  # tau = 0 in a draw: s_r / tau = inf, icc = 0
+            icc = 1.0 / (1.0 + (sr / tau) ** 2)
+        out["repeatability_sd"] = _summ(sr, level, k)
+        out["reproducibility_sd"] = _summ(sR, level, k)
+        out["icc"] = _summ(icc, level)
+        out["repeatability_limit"] = _summ(LIMIT_FACTOR * sr, level, k)
+        out["reproducibility_limit"] = _summ(LIMIT_FACTOR * sR, level, k)
+    else:
+        out["repeatability_sd"] = out["reproducibility_sd"] = out["icc"] = None
+        out["repeatability_limit"] = out["reproducibility_limit"] = None
+    if raw.s is not None:
+        out["s"] = _summ(raw.s.reshape(-1), level, k)
+    if problem.within_code != 2:
+        an = oneway_anova(problem.n, problem.ybar, problem.m2)
+        if an is not None:
+            an["grand_mean"] = an["grand_mean"] * k + c
+            for key in ("between_sd", "repeatability_sd", "reproducibility_sd"):
+                an[key] *= k
+            for key in ("ss_between", "ss_within", "ms_between", "ms_within", "between_var", "within_var"):
+                an[key] *= k * k  # may under- or overflow for data near 1e-300 or 1e300: shown as given
+        out["anova"] = an
+        out["random_effects"] = None
+    else:
+        out["anova"] = None
+        re_ = random_effects_dl(problem.ybar, np.sqrt(problem.v_known))
+        if re_ is not None:
+            for key in ("consensus", "fixed_effect"):
+                re_[key] = re_[key] * k + c
+            for key in ("consensus_se", "between_sd", "fixed_effect_se"):
+                re_[key] *= k
+        out["random_effects"] = re_
+    _, _, basis = z_basis(problem, o)
+    out["z_basis"] = basis
+    lo, hi = table[f"bias_low_{L}"].to_numpy(), table[f"bias_high_{L}"].to_numpy()
+    excludes = (lo > 0) | (hi < 0)
+    signal = table["z_signal"].to_numpy()
+    flagged_z = signal == "action"
+    out["allowed_bias"] = o.allowed_bias
+    out["agreement"] = {
+        "z_action": int(np.sum(flagged_z)), "z_warning": int(np.sum(signal == "warning")),
+        "interval_excludes_0": int(excludes.sum()), "both": int(np.sum(flagged_z & excludes)),
+    }
+    out["interval_excludes_0"] = excludes
+    return out
+
+
+def new_group_outside(problem, raw, o: ReportOptions, seed: int) -> dict | None:
+    """The out-of-specification fraction of a group not yet seen: per draw theta_new from the between-group
+    distribution (N(mu, tau^2), or Student-t(df, mu, tau) for heavy tails), sigma_new^2 ~ Scaled-Inv-chi2(nu, s^2)
+    (separate) or the shared sigma; the fraction's posterior mean, interval and MC error. Internal units."""
+    if problem.within_code == 2 or not o.limits:
+        return None
+    rng = derived_rng(seed, PURPOSE_PREDICTION)
+    mu, tau = raw.mu.reshape(-1), raw.tau.reshape(-1)
+    S = mu.shape[0]
+    z = rng.standard_normal(S)
+    if raw.df is not None:
+        df = raw.df.reshape(-1)
+        lam = np.ones(S)
+        finite = np.isfinite(df)
+        lam[finite] = rng.standard_gamma(df[finite] / 2.0) / (df[finite] / 2.0)
+        z = z / np.sqrt(lam)
+    theta_new = mu + tau * z
+    if problem.within_code == 0:
+        nu, s = raw.nu.reshape(-1), raw.s.reshape(-1)
+        sigma_new = np.sqrt(nu * s ** 2 / rng.chisquare(nu))
+    else:
+        sigma_new = raw.sigma.reshape(-1)
+    a = o.internal(problem.center, problem.scale)
+    from scipy.special import ndtr
+
+    f = np.zeros(S)
+    if o.lower is not None:
+        f += ndtr((a[A.A_LOWER] - theta_new) / sigma_new)
+    if o.upper is not None:
+        f += ndtr((theta_new - a[A.A_UPPER]) / sigma_new)
+    lo, hi = np.quantile(f, [(1 - o.level) / 2, (1 + o.level) / 2])
+    k, c = problem.scale, problem.center
+    return {"mean": float(f.mean()), "low": float(lo), "high": float(hi),
+            "mc_error": float(f.std(ddof=1) / np.sqrt(S)),
+            "theta_new": _summ(theta_new, o.level, k, c), "sigma_new_median": float(np.median(sigma_new)) * k}
+
+
+def _thin(S: int) -> np.ndarray:
+    return np.unique(np.linspace(0, S - 1, min(S, CHECK_DRAWS)).round().astype(np.int64))
+
+
+def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
+    """Posterior predictive checks (Gelman, Meng and Stern 1996, Statistica Sinica 6), each a p-value
+    P(T_rep >= T_obs) over at most CHECK_DRAWS draws, with replicates from the fitted model:
+
+    * spread of the group means, T = sd_j(own mean_j); replicated group means ybar_rep_j = theta_rep_j +
+      sqrt(v_j) z_j with theta_rep_j from the fitted between-group distribution (normal, or Student-t);
+    * the most extreme standardised deviation, T = max_j |ybar_j - mu| / sqrt(tau^2 + v_j), against the
+      same with replicated group means: a normal between-group distribution facing one far group fails it;
+    * within-group sd (measurements, groups with n_j >= 2): the replicated sample sd of n_j new values is
+      sigma_j sqrt(chi2(n_j - 1) / (n_j - 1)).
+    """
+    rng = derived_rng(seed, PURPOSE_CHECKS)
+    mu, tau = raw.mu.reshape(-1), raw.tau.reshape(-1)
+    S = mu.shape[0]
+    J = problem.J
+    idx = _thin(S)
+    m = len(idx)
+    ybar = problem.ybar
+    n = problem.n
+    if problem.within_code == 2:
+        v = np.broadcast_to(problem.v_known[None, :], (m, J))
+    elif problem.within_code == 1:
+        v = (raw.sigma.reshape(-1)[idx] ** 2)[:, None] / n[None, :]
+    else:
+        v = raw.sigma.reshape(S, J)[idx] ** 2 / n[None, :]
+    mu_t, tau_t = mu[idx, None], tau[idx, None]
+    z = rng.standard_normal((m, J))
+    if raw.df is not None:
+        df = raw.df.reshape(-1)[idx]
+        lam = np.ones((m, J))
+        fin = np.isfinite(df)
+        if fin.any():
+            lam[fin] = rng.standard_gamma(np.broadcast_to(df[fin, None] / 2.0, (int(fin.sum()), J))) / (df[fin, None] / 2.0)
+        z = z / np.sqrt(lam)
+    rep = mu_t + tau_t * z + np.sqrt(v) * rng.standard_normal((m, J))
+    out: dict = {"draws": m}
+    if J >= 2:
+        t_rep = rep.std(axis=1, ddof=1)
+        t_obs = float(np.std(ybar, ddof=1))
+        out["spread"] = {"observed": t_obs * problem.scale, "replicated": t_rep * problem.scale,
+                         "p_value": float(np.mean(t_rep >= t_obs))}
+    scale_j = np.sqrt(tau_t ** 2 + v)
+    dev_obs = np.abs(ybar[None, :] - mu_t) / scale_j
+    t_obs_draw = dev_obs.max(axis=1)
+    who = dev_obs.argmax(axis=1)
+    t_rep = (np.abs(rep - mu_t) / scale_j).max(axis=1)
+    counts = np.bincount(who, minlength=J)
+    out["extreme"] = {"observed": t_obs_draw, "replicated": t_rep, "p_value": float(np.mean(t_rep >= t_obs_draw)),
+                      "observed_median": float(np.median(t_obs_draw)), "group": int(np.argmax(counts)),
+                      "group_share": float(counts.max() / m)}
+    if problem.within_code != 2:
+        keep = np.flatnonzero(n >= 2)
+        if keep.size:
+            sig = (raw.sigma.reshape(-1)[idx][:, None] if problem.within_code == 1
+                   else raw.sigma.reshape(S, J)[idx][:, keep])
+            dfw = n[keep] - 1
+            rep_sd = sig * np.sqrt(rng.chisquare(np.broadcast_to(dfw, (m, keep.size))) / dfw)
+            obs = np.sqrt(problem.m2[keep] / dfw)
+            p = np.mean(rep_sd >= obs[None, :], axis=0)
+            lo, hi = np.quantile(rep_sd, [(1 - level) / 2, (1 + level) / 2], axis=0)
+            k = problem.scale
+            out["sd"] = {"groups": keep, "observed": obs * k, "low": lo * k, "high": hi * k,
+                         "median": np.median(rep_sd, axis=0) * k, "p_value": p, "level": level,
+                         "outside": int(np.sum((obs < lo) | (obs > hi))),
+                         "extreme": int(np.sum((p < 0.01) | (p > 0.99)))}
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# the methods text of summary mode
+
+SUMMARY_METHODS = {
+    "means_and_sd": "Welford running mean and M2 per chain and group, merged across chains (Chan, Golub and "
+                    "LeVeque): equal to the mean and sd of all draws to rounding",
+    "probabilities": "exact counts of the draws: P(above / below the threshold), P(|bias| > allowed), P(outside "
+                     "the limits), P(outlying), P(best), P(top k) (a size-k heap scan per draw)",
+    "interval_limits": "per group and quantity a histogram of {bins} equal bins on a grid fixed after warm-up "
+                       "(centre +- {half:.2f} warm-up sd, in the scale theta, log sigma, logit shrinkage, logit "
+                       "outside fraction), with underflow and overflow bins bounded by the extreme draws; each "
+                       "order statistic is located exactly and interpolated inside its bin, so a limit is off by "
+                       "at most one bin width (the *_limit_error columns)",
+    "bias_limits": "{bias}",
+    "shrinkage_interval": "histogram of logit w_j (separate); exact from the tau (and sigma) draws for shared and "
+                          "known with the normal between-group distribution, where w_j is a decreasing function of "
+                          "one hyperparameter ratio; not given for shared and known with heavy tails (kept groups "
+                          "have it)",
+    "rank_mean": "kept groups exact; others by a bucket count of all groups per draw ({G} buckets): the "
+                 "midpoint of the possible ranks, off by at most rank_mean_error",
+    "rank_interval": "kept groups exact from their rank in every draw; others from a histogram, per group, of "
+                     "each draw's lower rank bound (1 + groups in better buckets) on one rank grid of {RB} bins "
+                     "({RGRID}), widened by the largest bucket count - 1 seen: the interval contains the exact "
+                     "one, each end off by at most rank_limit_error",
+    "kept_groups": "named groups, {sample} groups drawn from the run's own seed, and up to {top} top-k candidates "
+                   "chosen after warm-up",
+    "diagnostics": "run-length control on mu, tau, the variance hyperparameters and the kept groups' stored draws; "
+                   "a classic R-hat from chain means for every group as a screen",
+}
+
+
+# ---------------------------------------------------------------------------------------------
+# compute
+
+
+def _check_summary_options(fit, o: ReportOptions) -> ReportOptions:
+    """Summary mode counted some answers while sampling: those options cannot change afterwards."""
+    applied = fit.options
+    for name in ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias"):
+        a, b = getattr(o, name), getattr(applied, name)
+        if a != b and not (name == "k" and min(a, fit.J) == min(b, fit.J)):
+            raise InputError(f"bad option: summary mode applied {name} = {b!r} while sampling; a report with "
+                             f"{name} = {a!r} needs a new run")
+    return o
+
+
+def compute(fit, options: ReportOptions | None = None) -> Results:
+    """Every answer of a run (a posterior.Fit or a summary.SummaryFit) for the given options."""
+    clock = [time.perf_counter()]
+    summary_mode = getattr(fit, "summary_mode", False)
+    if options is None:
+        options = fit.options if summary_mode else ReportOptions()
+    o = options
+    if summary_mode:
+        _check_summary_options(fit, o)
+    p = fit.problem
+    J = p.J
+    k = check_k(o.k, J)
+    compare = split_compare(o.compare, p.stats.labels)
+    o = replace(o, compare=compare)  # as resolved, for the summary
+    if len(compare) > MAX_PAIRWISE:
+        raise InputError(f"bad option: at most {MAX_PAIRWISE} groups can be compared pairwise; found {len(compare)}")
+    pair_idx = resolve_groups(p.stats.labels, compare) if compare else None
+    raw = fit.raw  # every draw (full), or the hyperparameters and the kept groups (summary)
+    if summary_mode:
+        g, figures = _summary_group_answers(fit, o, k)
+    else:
+        g, figures = _full_group_answers(fit, o, k)
+    S = figures["draws_total"]
+    g["mu_mean"] = float(raw.mu.mean())
+    clock.append(time.perf_counter())
+    table = _assemble(p, o, g, S, fit if summary_mode else None)
+    hyper = hyper_summary(raw, p, o.level)
+    hyper_draws = {}
+    for name in hyper_names(p):
+        x = getattr(raw, name)
+        hyper_draws[name] = x * p.scale + (p.center if SCALED.get(name) else 0.0) if name in SCALED else x
+    within_sd = fit.acc.within_sd if summary_mode else None
+    lab = interlab_view(p, raw, table, o, within_sd)
+    if within_sd is not None:
+        hyper_draws["within_sd"] = within_sd * p.scale
+    tail = tail_summary(p, raw, table)
+    new_group = new_group_outside(p, raw, o, raw.seed)
+    checks = None if summary_mode else model_checks(p, raw, raw.seed)
+    clock.append(time.perf_counter())
+    heat = None
+    pairs = None
+    if summary_mode:
+        if pair_idx is not None:
+            kept = {lab: i for i, lab in enumerate(fit.kept_labels)}
+            missing = [lab for lab in compare if lab not in kept]
+            if missing:
+                raise InputError(f"bad option: summary mode compares only groups whose draws were kept; "
+                                 f"'{missing[0]}' was not kept (name it with --keep, or pass it to --compare before "
+                                 "the run)")
+            idx = np.array([kept[lab] for lab in compare], dtype=np.int64)
+            th = fit.raw.theta.reshape(-1, fit.raw.theta.shape[2])
+            pairs = pd.DataFrame(prob_greater(th, idx), index=pd.Index(list(compare), name="group"),
+                                 columns=list(compare))
+    else:
+        ranks = g.pop("ranks")
+        order = np.argsort(table["rank_mean"].to_numpy(), kind="stable")
+        rows, max_rank = (order, None) if J <= HEAT_ALL else (order[:HEAT_ROWS_MANY], HEAT_ALL)
+        mat = rank_matrix(ranks, rows, max_rank)
+        del ranks
+        m = mat.shape[1] if max_rank is None else max_rank
+        heat = {"rows": rows, "matrix": mat,
+                "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else [])}
+        if pair_idx is not None:
+            th = fit.raw.theta.reshape(-1, J)
+            pairs = pd.DataFrame(prob_greater(th, pair_idx), index=pd.Index(list(compare), name="group"),
+                                 columns=list(compare))
+    clock.append(time.perf_counter())
+    st = p.stats
+    s = raw.settings
+    run = {"chains": s.chains, "warmup": s.warmup, "draws_requested": s.draws,
+           "draws_per_chain": int(raw.mu.shape[1]), "draw_cap": s.draw_cap, "seed": raw.seed,
+           "seconds": round(raw.seconds, 3), "tau_evaluations_per_sweep": float(raw.evals.mean()),
+           "internal_center": p.center, "internal_scale": p.scale, "draws_total": S}
+    data = {"source": st.source, "file_sha256": st.file_sha256, "statistics_sha256": st.fingerprint(),
+            "groups": st.J, "measurements": float(st.N) if st.kind == "raw" else None, "kind": st.kind}
+    methods: dict = {}
+    summary_info = None
+    if summary_mode:
+        sh = fit.acc.setup
+        bias = ("a histogram of theta_j - mu, as for the other limits" if figures["bias_from_histogram"] else
+                "theta limits minus the posterior mean of mu: off by at most the theta bound plus "
+                f"max_s |mu_s - mean mu| = {figures['mu_spread_D']:.3g}")
+        RB = figures["rank_grid_bins"]
+        methods = {key: text.format(bins=sh.bins, half=figures["grid_half_width_sd"], bias=bias, G=fit.acc.buckets,
+                                    sample=fit.summary_options.sample, top=fit.summary_options.top, RB=RB,
+                                    RGRID="one rank each" if RB == J else
+                                    f"one rank each up to rank {figures['rank_exact_up_to']}, then geometric up to J")
+                   for key, text in SUMMARY_METHODS.items()}
+        errs = {c: table[c].to_numpy(dtype=float) for c in table.columns if c.endswith("_error")}
+        figures["limit_error"] = {name: {"max": float(np.nanmax(e)) if np.isfinite(e).any() else None,
+                                         "median": float(np.nanmedian(e)) if np.isfinite(e).any() else None}
+                                  for name, e in errs.items()}
+        summary_info = {"groups": J, "kept_groups": int(len(fit.kept_index)), "kept_labels": fit.kept_labels,
+                        "figures": figures, "methods": methods,
+                        "settings": {"bins": fit.summary_options.bins, "sample": fit.summary_options.sample,
+                                     "top_candidates": fit.summary_options.top,
+                                     "named": list(fit.summary_options.keep)}}
+    diag = fit.diagnostics()
+    if summary_mode:
+        diag["classic_rhat_all_groups"] = figures["classic_rhat"]
+    names = ("groups", "interlab_and_checks", "ranks_and_pairs")
+    seconds = {n: round(b - a, 3) for n, a, b in zip(names, clock, clock[1:])}
+    return Results(options=o, mode="summary" if summary_mode else "full", model=p.model, problem=p, table=table,
+                   hyper=hyper, hyper_draws=hyper_draws, diagnostics=diag, run=run, data=data, lab=lab, tail=tail,
+                   new_group=new_group, checks=checks, pairs=pairs, heat=heat, methods=methods, summary=summary_info,
+                   seconds=seconds)
+
+
+def needs_draws(fit, what: str) -> None:
+    """Refuse a summary-mode fit where every group's draws are needed, pointing to its table."""
+    if getattr(fit, "summary_mode", False):
+        raise InputError(f"{what} needs every group's draws, which a summary-mode run does not keep; use the "
+                         "per-group table (pooling.results.compute(fit).table, groups.csv), or refit with "
+                         "--summary off")
