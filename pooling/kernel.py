@@ -17,7 +17,9 @@ Block A, (tau, mu, theta) jointly given the within-group variances and the lambd
 Heavy tails (between = 1): theta_j | mu, tau, lambda_j ~ N(mu, tau^2 / lambda_j), lambda_j ~ Gamma(df/2, rate df/2),
   so that theta_j | mu, tau, df is Student-t(df, mu, tau) (a scale mixture of normals).
   4. df | theta, mu, tau with every lambda_j integrated out: an exact draw from its discrete
-     conditional on the grid, p(df_k) prod_j t_df_k(theta_j | mu, tau) (df = inf is the normal);
+     conditional p(df_k) prod_j t_df_k(theta_j | mu, tau) (df = inf is the normal), restricted to a
+     random window of DF_WINDOW neighbouring grid points around the current one (a move that keeps
+     the conditional invariant; see tail_step);
   5. lambda_j | theta_j, mu, tau, df ~ Gamma((df + 1)/2, rate (df + (theta_j - mu)^2 / tau^2) / 2)
      (lambda_j = 1 at df = inf). 4 then 5 is an exact partially collapsed update of (df, lambda).
 Block B, the variances given theta:
@@ -45,6 +47,8 @@ ETA, MU, S2, NU_IDX, WIDTH, SIGMA2, JUMP_SUM, JUMP_COUNT, DF_IDX = range(9)
 N_SCALARS = 9
 ETA_MIN, ETA_MAX = -40.0, 40.0  # log tau in internal units: tau from 4e-18 to 2e17 data spreads
 MAX_STEPS = 60
+DF_WINDOW = 16  # at most this many grid points of df are evaluated per sweep (see tail_step): the default grid
+# (12 points) is drawn from its whole conditional; a longer grid given by the user gets random windows
 LOG_BLOCK = 16  # terms multiplied (in 4 interleaved products) before one log is taken (see sum_log_shifted)
 _PROD_MIN, _PROD_MAX = 1e-300, 1e300
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -424,6 +428,25 @@ def df_loglik(k, d, z2, sz, J):
     return d.df_logprior[k] + J * (d.df_const[k] + h * math.log(df)) - h * sum_log_shifted(z2, df)
 
 
+@njit(nogil=True, cache=True, error_model="numpy", inline="always")
+def gamma_mt(rng, dd, cc):
+    """A Gamma(a, 1) draw for a >= 1 by Marsaglia and Tsang (2000, ACM TOMS 26(3)), with dd = a - 1/3 and
+    cc = 1 / sqrt(9 dd) computed once for many draws of the same shape (numpy's standard_gamma uses the
+    same method but recomputes them at every call, which made the lambda_j draws twice as costly)."""
+    while True:
+        x = rng.standard_normal()
+        v = 1.0 + cc * x
+        if v <= 0.0:
+            continue
+        v = v * v * v
+        u = rng.random()
+        x2 = x * x
+        if u < 1.0 - 0.0331 * x2 * x2:
+            return dd * v
+        if math.log(u) < 0.5 * x2 + dd * (1.0 - v + math.log(v)):
+            return dd * v
+
+
 @njit(nogil=True, cache=True, error_model="numpy")
 def tail_step(rng, d, st, wk):
     """df | theta, mu, tau (lambda integrated out; an exact draw on the grid), then every lambda_j | df."""
@@ -440,19 +463,28 @@ def tail_step(rng, d, st, wk):
         sz += z2[j]
     K = d.df_grid.shape[0]
     if K > 1:
+        # A random window of DF_WINDOW neighbouring grid points that holds the current one (its start
+        # uniform among the DF_WINDOW starts that do, cells off the grid left out), then an exact draw from
+        # the collapsed conditional restricted to it. Every state of a window chooses that window with the
+        # same probability, so the move keeps p(df | theta, mu, tau) invariant (detailed balance); it costs
+        # DF_WINDOW sums over the groups instead of K, and moves up to DF_WINDOW - 1 points a sweep.
+        lo, hi = 0, K
+        if K > DF_WINDOW:
+            start = int(sc[DF_IDX]) - int(rng.random() * DF_WINDOW)
+            lo, hi = max(start, 0), min(start + DF_WINDOW, K)
         lp = wk.lpd
         top = -np.inf
-        for k in range(K):
+        for k in range(lo, hi):
             lp[k] = df_loglik(k, d, z2, sz, J)
             top = max(top, lp[k])
         total = 0.0
-        for k in range(K):
+        for k in range(lo, hi):
             lp[k] = math.exp(lp[k] - top)
             total += lp[k]
         u = rng.random() * total
-        k_new = K - 1
+        k_new = hi - 1
         acc = 0.0
-        for k in range(K):
+        for k in range(lo, hi):
             acc += lp[k]
             if u < acc:
                 k_new = k
@@ -467,10 +499,18 @@ def tail_step(rng, d, st, wk):
             il[j] = 1.0
         return
     a = 0.5 * (df + 1.0)
-    for j in range(J):
-        x = 2.0 * rng.standard_gamma(a) / (df + z2[j])
-        lam[j] = x
-        il[j] = 1.0 / x
+    if a >= 1.0:
+        dd = a - 1.0 / 3.0
+        cc = 1.0 / math.sqrt(9.0 * dd)
+        for j in range(J):
+            x = 2.0 * gamma_mt(rng, dd, cc) / (df + z2[j])
+            lam[j] = x
+            il[j] = 1.0 / x
+    else:
+        for j in range(J):
+            x = 2.0 * rng.standard_gamma(a) / (df + z2[j])
+            lam[j] = x
+            il[j] = 1.0 / x
 
 
 # ---------------------------------------------------------------------------------------------

@@ -144,8 +144,11 @@ def gamma_df_weights(grid: tuple[float, ...], rate: float = DF_PRIOR_RATE, norma
                      ) -> tuple[float, ...]:
     """Prior weights on a df grid from the Gamma(2, rate) density on df: each finite point gets the mass of
     its cell (edges at the geometric midpoints between neighbours; the first cell from 0, the last finite
-    one up to `normal_from`), and df = inf gets the mass above `normal_from`."""
-    finite = [g for g in grid if not math.isinf(g)]
+    one up to `normal_from`, or up to the last finite point if that is larger), and df = inf gets the mass
+    above that edge."""
+    finite = sorted(g for g in grid if not math.isinf(g))
+    if finite:
+        normal_from = max(normal_from, finite[-1])
     edges = [0.0] + [math.sqrt(a * b) for a, b in zip(finite, finite[1:])] + [normal_from]
     out = []
     for g in grid:

@@ -643,3 +643,46 @@ def test_tail_step_draws(theta_shift):
     u = stats.gamma.cdf(lams[fin], a=a, scale=1.0 / rate)
     assert _ks_uniform(u) > ALPHA
     assert _ks_uniform(stats.gamma.cdf(lams[fin], a=df[fin, None] / 2.0, scale=1.0 / rate)) < ALPHA  # shape df/2
+
+
+def test_df_window_move_keeps_its_target():
+    # A grid longer than kernel.DF_WINDOW is moved by an exact draw within a random window around the
+    # current point. From independent chains started at exact draws of p(df | theta, mu, tau), a few
+    # moves must leave that distribution in place (chi-square over the grid), and the chains must move.
+    from pooling.model import HeavyBetween
+
+    grid = tuple(float(x) for x in np.geomspace(1.0, 60.0, kernel.DF_WINDOW + 6)) + (np.inf,)
+    weights = np.full(len(grid), 1.0 / len(grid))
+    model = Model(within="known", between=HeavyBetween(grid=grid, weights=tuple(weights)))
+    p = schools_problem(model)
+    d = p.data
+    assert len(d.df_grid) > kernel.DF_WINDOW
+    theta = p.ybar.copy()
+    theta[0] += 3.0
+    mu, eta = float(np.mean(p.ybar)), np.log(0.6)
+    probs = df_probs((theta - mu) / np.exp(eta), np.asarray(grid), weights)
+    rng = np.random.default_rng(33)
+    chains, moves = 8000, 3
+    starts = rng.choice(len(grid), size=chains, p=probs)
+    finals = np.empty(chains, dtype=int)
+    st = start_state(p)
+    wk = kernel.make_work(d)
+    for c in range(chains):
+        st.scalars[kernel.DF_IDX] = starts[c]
+        for _ in range(moves):
+            st.theta[:] = theta
+            st.scalars[kernel.MU], st.scalars[kernel.ETA] = mu, eta
+            kernel.tail_step(rng, d, st, wk)
+        finals[c] = int(st.scalars[kernel.DF_IDX])
+    assert np.mean(finals != starts) > 0.3
+    counts = np.bincount(finals, minlength=len(grid)).astype(float)
+    keep = probs * chains >= 5
+    e, o = probs[keep] * chains, counts[keep]
+    if (~keep).any():
+        e, o = np.append(e, probs[~keep].sum() * chains), np.append(o, counts[~keep].sum())
+    assert stats.chisquare(o, e).pvalue > ALPHA
+    prior_only = np.full(len(grid), 1.0 / len(grid))  # the deliberate error of ignoring the data
+    ew = prior_only[keep] * chains
+    if (~keep).any():
+        ew = np.append(ew, prior_only[~keep].sum() * chains)
+    assert stats.chisquare(o, ew).pvalue < ALPHA
