@@ -759,8 +759,10 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
 
     * spread of the group means, T = sd_j(own mean_j); replicated group means ybar_rep_j = theta_rep_j +
       sqrt(v_j) z_j with theta_rep_j from the fitted between-group distribution (normal, or Student-t);
-    * the most extreme standardised deviation, T = max_j |ybar_j - mu| / sqrt(tau^2 + v_j), against the
-      same with replicated group means: a normal between-group distribution facing one far group fails it;
+    * the most extreme group against the typical one, T = max_j |d_j| / median_j |d_j| with the standardised
+      deviations d_j = (ybar_j - mu) / sqrt(tau^2 + v_j), against the same with replicated group means. The
+      ratio does not depend on tau, so a normal between-group distribution that widened tau to take in one
+      far group still fails it (its replicates seldom hold a group that far beyond the typical one);
     * within-group sd (measurements, groups with n_j >= 2): the replicated sample sd of n_j new values is
       sigma_j sqrt(chi2(n_j - 1) / (n_j - 1)).
     """
@@ -796,9 +798,11 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
                          "p_value": float(np.mean(t_rep >= t_obs))}
     scale_j = np.sqrt(tau_t ** 2 + v)
     dev_obs = np.abs(ybar[None, :] - mu_t) / scale_j
-    t_obs_draw = dev_obs.max(axis=1)
+    dev_rep = np.abs(rep - mu_t) / scale_j
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t_obs_draw = dev_obs.max(axis=1) / np.median(dev_obs, axis=1)
+        t_rep = dev_rep.max(axis=1) / np.median(dev_rep, axis=1)
     who = dev_obs.argmax(axis=1)
-    t_rep = (np.abs(rep - mu_t) / scale_j).max(axis=1)
     counts = np.bincount(who, minlength=J)
     out["extreme"] = {"observed": t_obs_draw, "replicated": t_rep, "p_value": float(np.mean(t_rep >= t_obs_draw)),
                       "observed_median": float(np.median(t_obs_draw)), "group": int(np.argmax(counts)),

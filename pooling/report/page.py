@@ -629,9 +629,10 @@ def _checks(res: Results, f: Fmt, figs: dict) -> str:
                 f"{sp['p_value']:.2f}. ")
     if ex is not None:
         who = res.labels[ex["group"]]
-        msg += (f"Most extreme group (mostly {esc(plots_label(who))}, in {ex['group_share']:.0%} of the draws): "
-                f"max |own mean − mu| / sqrt(tau² + v<sub>j</sub>) has p = {ex['p_value']:.3f}; a p below 0.05 says "
-                "the fitted between-group distribution cannot produce a group that far. ")
+        msg += (f"Most extreme group (mostly {esc(plots_label(who))}, in {ex['group_share']:.0%} of the draws): its "
+                "standardised deviation |own mean − mu| / sqrt(tau² + v<sub>j</sub>) against the median one has "
+                f"p = {ex['p_value']:.3f}; a p below 0.05 says the fitted between-group distribution seldom "
+                "produces a group that far beyond the typical one. ")
     if sdc is not None:
         msg += (f"Within-group sd: {sdc['outside']} of {len(sdc['groups'])} groups fall outside their {sdc['level']:.0%} "
                 f"replicated range and {sdc['extreme']} have p below 0.01 or above 0.99. ")

@@ -256,7 +256,7 @@ def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | Non
     if extreme is not None:
         who = plain(labels[extreme["group"]], 18)
         p = c.panel(at, 0, each, h, title="most extreme group", ylabel="replicated",
-                    xlabel=f"observed max |own mean − mu| / sd (mostly {who})", ypad=0.05, xpad=0.05)
+                    xlabel=f"observed: most extreme / typical deviation (mostly {who})", ypad=0.05, xpad=0.05)
         obs = np.asarray(extreme["observed"], dtype=float)
         rep = np.asarray(extreme["replicated"], dtype=float)
         ok = np.isfinite(obs) & np.isfinite(rep)

@@ -1,0 +1,84 @@
+"""One outlying lab in a round: what the defaults must do with it (the acceptance case of heavy tails).
+
+Invented round (a behaviour check, not a statistical reference): 15 labs with 2 to 6 replicates each,
+between-lab sd 0.15 and within-lab sd 0.3, and one lab (Lab 10) 3 units high with an ordinary spread.
+Under a normal between-group distribution such a lab either drags the consensus value and every other
+lab or is dragged itself (and the chains cannot decide which); the defaults (Student-t between-group
+distribution, df learned) must instead: meet the diagnostics targets, keep the lab near its own mean with
+a bias interval that excludes zero, flag it (and no other lab), and leave mu at the other labs' mean.
+"""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+OUTLIER = "Lab 10"
+
+
+def _round(path, seed=3):
+    rng = np.random.default_rng(seed)
+    rows = []
+    for j in range(15):
+        n = 2 + (j * 7) % 5
+        th = 50.0 + rng.normal(0, 0.15) + (3.0 if j == 9 else 0.0)
+        rows += [(f"Lab {j + 1:02d}", round(th + rng.normal(0, 0.3), 3)) for _ in range(n)]
+    pd.DataFrame(rows, columns=["lab", "result"]).to_csv(path, index=False)
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory):
+    from pooling.cli import main
+
+    d = tmp_path_factory.mktemp("round")
+    _round(d / "round.csv")
+    codes = {}
+    for between in ("heavy", "normal"):
+        codes[between] = main(["fit", str(d / "round.csv"), "--group", "lab", "--value", "result", "--labs",
+                               "--out", str(d / between), "--seed", "2", "--quiet", "--between", between])
+    tables = {b: pd.DataFrame(json.loads((d / b / "summary.json").read_text())["groups_table"]) for b in codes}
+    summaries = {b: json.loads((d / b / "summary.json").read_text()) for b in codes}
+    return codes, tables, summaries
+
+
+def test_defaults_meet_the_targets_and_keep_the_outlier_apart(runs):
+    codes, tables, summaries = runs
+    assert codes["heavy"] == 0  # the diagnostics targets are met with the defaults
+    assert summaries["heavy"]["model"]["between"] == "heavy"
+    t = tables["heavy"]
+    lab = t[t.group == OUTLIER].iloc[0]
+    others = t[t.group != OUTLIER]
+    mu = summaries["heavy"]["hyperparameters"]["mu"]
+    # it keeps its own mean: it moved less than a tenth of the way to mu
+    assert lab.shrink_realised < 0.1 and abs(lab.theta_mean - lab.raw_mean) < 0.1 * abs(lab.raw_mean - mu["mean"])
+    # its bias against the consensus value is decided
+    assert lab.bias_low_95 > 0
+    # it is flagged, and no other lab is
+    assert bool(lab.outlying) and lab.p_outlying > 0.9 and not others.outlying.any()
+    assert summaries["heavy"]["heavy_tails"]["outlying"] == [OUTLIER]
+    # mu stays at the other labs' mean: within two of its own posterior sds of their size-weighted mean
+    ref = float(np.average(others.raw_mean, weights=others.n))
+    assert abs(mu["mean"] - ref) < 2 * mu["sd"]
+
+
+def test_the_normal_model_is_dragged(runs):
+    # the contrast that motivates the default: the normal model pulls the outlier halfway in, its bias
+    # interval reaches zero, and mu moves toward the outlier
+    codes, tables, summaries = runs
+    t = tables["normal"]
+    lab = t[t.group == OUTLIER].iloc[0]
+    assert lab.shrink_realised > 0.2
+    assert summaries["normal"]["hyperparameters"]["mu"]["mean"] > summaries["heavy"]["hyperparameters"]["mu"]["mean"]
+    assert "outlying" not in t  # the normal model has no tail weights
+
+
+def test_the_extreme_group_check_sees_the_outlier(runs):
+    # the posterior predictive check of the most extreme group names it under both models
+    _, _, summaries = runs
+    for b in ("heavy", "normal"):
+        ex = summaries[b]["predictive_checks"]["most_extreme_group"]
+        assert ex["group"] == OUTLIER and ex["group_share"] > 0.9
+    # and the normal model cannot produce a lab that far beyond the typical one
+    assert summaries["normal"]["predictive_checks"]["most_extreme_group"]["p_value"] < 0.05
