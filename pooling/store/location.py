@@ -87,6 +87,9 @@ def parse_location(arg) -> Location:
     text = str(arg)
     if text.startswith(URL_PREFIXES):
         url, _, name = text.partition("#")
+        if "password" in name.lower():  # never echo what follows: it may be the password itself
+            raise InputError(f"bad store '{_strip_password(url)[0]}#...': the store name after '#' holds 'password'; "
+                             "a password goes in the password file (~/.pgpass, or the file PGPASSFILE names)")
         shown, had_password = _strip_password(url)
         name = name or DEFAULT_NAME
         display = shown if name == DEFAULT_NAME else f"{shown}#{name}"
