@@ -504,8 +504,8 @@ def cmd_refit(args, argv) -> int:
                 print(line)
 
     argv = [shown if a == args.store else a for a in argv]  # summary.json records the command as shown
-    return run_fit(args, plan.stats, argv, init=init, more=lambda fit, folder: jobs.write_changes(plan, fit, watch, folder),
-                   after=after)
+    return run_fit(args, plan.stats, argv, init=init,
+                   more=lambda fit, folder: jobs.write_changes(plan, fit, watch, folder), after=after)
 
 
 def cmd_checkup(args, argv) -> int:

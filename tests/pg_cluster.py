@@ -93,7 +93,8 @@ class Cluster:
         self._check(r, "initdb")
         hba = self.data / "pg_hba.conf"
         # the superuser without a password (for set-up only), every other role by password
-        self._as_server_user(["sh", "-c", f"printf 'local all postgres trust\\nlocal all all scram-sha-256\\n' > {hba}"])
+        rules = "local all postgres trust\\nlocal all all scram-sha-256\\n"
+        self._as_server_user(["sh", "-c", f"printf '{rules}' > {hba}"])
         self.start()
         sql = (f"CREATE ROLE {ROLE} LOGIN PASSWORD '{PASSWORD}'; "
                f"CREATE DATABASE {DATABASE} OWNER {ROLE} ENCODING 'UTF8' TEMPLATE template0;")

@@ -17,13 +17,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from store_helpers import execute, sql_dump, store_exists
 
 from pooling import cli
 from pooling.errors import InputError, OutputError
 from pooling.stats import read_table
 from pooling.store import GroupResult, RunRecord, jobs, open_store
 from pooling.store.location import parse_location
-from store_helpers import execute, sql_dump, store_exists
 
 V1 = Path(__file__).parent / "data" / "store-v1"
 TINY = ["--chains", "2", "--warmup", "100", "--draws", "100", "--max-draws", "100", "--seed", "7", "--quiet"]
@@ -45,7 +45,8 @@ def _run_record(batch_ids, n_groups=6) -> RunRecord:
     groups = tuple(GroupResult(f"L{j}", 4.0 + j, 50.0 + j, 50.5 + j, 0.7, 49.0 + j, 52.0 + j, 1.0 + j, 0.4,
                                p_above=0.25 * (j % 4), p_outside=float("nan")) for j in range(n_groups))
     # (a 'shared' run's state: a refit of the default 'separate' structure starts afresh from it)
-    state = {"within": "shared", "center": 52.0, "scale": 2.0, "nu_grid": [1.0, 2.0], "labels": [g.label for g in groups],
+    state = {"within": "shared", "center": 52.0, "scale": 2.0, "nu_grid": [1.0, 2.0],
+             "labels": [g.label for g in groups],
              "chains": [{"state": [0.1, -0.2, 0.3], "theta": [0.5] * n_groups, "sigma2": [1.5] * n_groups}]}
     return RunRecord("2026-11-05T02:30:00+00:00", "/srv/runs/2026-11-05", "ab" * 32, tuple(batch_ids),
                      "2026-11-05T02:30:00+00:00", 30.0, True, {"model": {"within": "separate"}, "mu": [50.1, 0.3]},
@@ -80,7 +81,8 @@ CHANGES = {
     "n": ("UPDATE batch_groups SET n = n + 1 WHERE batch_id = 1 AND position = 2", "statistics of batch 1"),
     "mean": ("UPDATE batch_groups SET mean = mean * (1 + 1e-15) WHERE batch_id = 1 AND position = 0",
              "statistics of batch 1"),
-    "mean_lo": ("UPDATE batch_groups SET mean_lo = 1e-300 WHERE batch_id = 4 AND position = 1", "statistics of batch 4"),
+    "mean_lo": ("UPDATE batch_groups SET mean_lo = 1e-300 WHERE batch_id = 4 AND position = 1",
+                "statistics of batch 4"),
     "m2": ("UPDATE batch_groups SET m2 = 0 WHERE batch_id = 1 AND position = 3", "statistics of batch 1"),
     "label": ("UPDATE batch_groups SET label = 'L9' WHERE batch_id = 1 AND position = 4", "statistics of batch 1"),
     "a group row gone": ("DELETE FROM batch_groups WHERE batch_id = 4 AND position = 5", "statistics of batch 4"),
@@ -358,7 +360,8 @@ def test_a_store_copied_to_postgresql_and_back_is_the_same_bit_for_bit(tmp_path,
         return [ln for ln in sql_dump(where) if "copied_" not in ln]
 
     assert rows(first) == rows(pg) == rows(back)
-    assert len([ln for ln in rows(pg) if ln.startswith("batch_groups")]) == sum(len(s.labels) for s in ca.stats.values())
+    stored = sum(len(s.labels) for s in ca.stats.values())
+    assert len([ln for ln in rows(pg) if ln.startswith("batch_groups")]) == stored
     with open_store(first) as a, open_store(pg) as b:
         sa, sb = a.snapshot(), b.snapshot()
         assert [x.to_dict() for x in a.batches()] == [x.to_dict() for x in b.batches()]
@@ -414,7 +417,7 @@ def test_several_stores_share_one_database_and_a_foreign_schema_is_refused(tmp_p
     assert code == 2 and "not a pooling store" in line
     code, _, line = _one_line(capsys, ["batches", pg_cluster.url("nothing_here")])
     assert code == 2 and "no store 'nothing_here'" in line
-    code, _, line = _one_line(capsys, ["batches", pg_cluster.url().replace("postgresql://", "postgresql://x@", 0) + "#Bad"])
+    code, _, line = _one_line(capsys, ["batches", pg_cluster.url("Bad")])
     assert code == 2 and "store name" in line
 
 
@@ -492,3 +495,35 @@ def test_the_command_line_imports_psycopg_only_for_a_postgresql_store(tmp_path):
              "print('psycopg' in sys.modules, code)")
     out = subprocess.run([sys.executable, "-c", probe, str(store)], capture_output=True, text=True, timeout=120).stdout
     assert out.strip().splitlines()[-1] == "False 0"
+
+
+def test_the_readme_team_commands_run_against_a_server(tmp_path, pg_cluster):
+    """The README's PostgreSQL section, as written: its service file, its nightly lines and its copies, with the
+    example server replaced by the throwaway cluster (the password comes from the cluster's password file)."""
+    from pg_cluster import DATABASE, PORT, ROLE
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("<!-- team store section -->")[1].split("<!-- /team store section -->")[0]
+    service = section[section.index("[plant]"):].split("\n\n")[0]
+    values = {"host": str(pg_cluster.sock), "port": str(PORT), "dbname": DATABASE, "user": ROLE}
+    lines = [ln.strip() for ln in service.splitlines()]
+    assert [ln.split("=")[0] for ln in lines[1:]] == list(values)
+    (tmp_path / "services.conf").write_text("[plant]\n" + "".join(f"{k}={v}\n" for k, v in values.items()))
+    commands = [ln.strip() for ln in section.splitlines() if ln.strip().startswith(".venv/bin/pooling")]
+    assert len(commands) == 4
+    example = "postgresql://quality@db.plant.example/quality"
+    day = "2026-12-01"
+    (tmp_path / "incoming").mkdir()
+    (tmp_path / "incoming" / f"{day}.csv").write_text(
+        "supplier,strength\n" + "".join(f"S{j},{400 + j + 0.5 * k}\n" for j in range(5) for k in range(4)))
+    jobs.ingest_file(tmp_path / "parts.store", tmp_path / "incoming" / f"{day}.csv", "supplier", "strength")
+    env = dict(os.environ, PGSERVICEFILE=str(tmp_path / "services.conf"))
+    for cmd in commands:
+        # (the cluster's URL holds '&', which the shell must not see unquoted)
+        cmd = cmd.replace(".venv/bin/pooling", f"{sys.executable} -m pooling.cli")
+        cmd = cmd.replace(example, f"'{pg_cluster.url()}'")
+        cmd = cmd.replace("$day", day) + (" --draws 200 --warmup 200" if " refit " in cmd else "")
+        proc = subprocess.run(["bash", "-c", cmd], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
+        assert proc.returncode in (0, 3), f"{cmd}\n{proc.stdout}\n{proc.stderr}"
+    assert (tmp_path / "castings-2026-12.store").exists() and (tmp_path / "runs" / day / "changes.json").exists()
+    assert store_exists(pg_cluster.url("parts")) and store_exists(pg_cluster.url("castings"))

@@ -184,7 +184,8 @@ def check_store(store_path, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple
         if not problems:
             lines, runs = st.batches(), st.runs()
             active = sum(b.status == "active" for b in lines)
-            facts = (f"{len(lines)} batches in the ledger ({active} active, {sum(b.groups for b in lines)} group rows), "
+            rows = sum(b.groups for b in lines)
+            facts = (f"{len(lines)} batches in the ledger ({active} active, {rows} group rows), "
                      f"{len(runs)} recorded runs")
         return st.path, problems, facts
 

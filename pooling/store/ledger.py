@@ -138,7 +138,7 @@ class SqlLedger(BatchStore):
     # -- what a driver provides ----------------------------------------------------------------
 
     @contextmanager
-    def _write(self):  # yields a transaction object: one(sql, p), all(sql, p), run(sql, p), bulk(table, cols, rows, types)
+    def _write(self):  # yields a transaction: one(sql, p), all(sql, p), run(sql, p), bulk(table, cols, rows, types)
         raise NotImplementedError
 
     @contextmanager
@@ -207,7 +207,8 @@ class SqlLedger(BatchStore):
 
     def _bump_head(self, tx, *, batch: tuple = (), run: tuple = ()) -> None:
         """Apply changes to the head: `batch` / `run` are (count change, sums added, sums removed)."""
-        head = tx.one(f"SELECT batch_lines, batch_acc, run_lines, run_acc FROM store_head WHERE one = 1{self._FOR_UPDATE}")
+        head = tx.one("SELECT batch_lines, batch_acc, run_lines, run_acc FROM store_head WHERE one = 1"
+                      + self._FOR_UPDATE)
         if head is None:
             raise self._damaged("the ledger head is missing")
         bl, ba, rl, ra = head

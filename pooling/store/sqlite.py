@@ -254,7 +254,8 @@ def _create(path: Path, busy_seconds: float, fill=None) -> bool:
             # the file is private until linked into place, so no transaction is needed here
             con.executescript(SCHEMA)
             con.executemany("INSERT INTO pooling_store (key, value) VALUES (?, ?)",
-                            [("format", str(FORMAT)), ("created_at", now_utc()), ("created_by", f"pooling {__version__}")])
+                            [("format", str(FORMAT)), ("created_at", now_utc()),
+                             ("created_by", f"pooling {__version__}")])
             con.execute("INSERT INTO store_head (one, batch_lines, batch_acc, run_lines, run_acc) "
                         "VALUES (1, 0, '0000000000000000', 0, '0000000000000000')")
         finally:
@@ -381,8 +382,10 @@ class SqliteStore(SqlLedger):
                 raise OutputError(f"cannot use the store '{self.path}': {msg} (check the permissions of the file "
                                   "and of its folder, which must take the -wal and -shm files)") from None
             if "full" in msg:
-                raise OutputError(f"cannot write the store '{self.path}': the disk is full; nothing was changed") from None
-            raise InputError(f"bad store '{self.path}': the file is damaged or not a pooling store (SQLite: {msg})") from None
+                raise OutputError(f"cannot write the store '{self.path}': the disk is full; "
+                                  "nothing was changed") from None
+            raise InputError(f"bad store '{self.path}': the file is damaged or not a pooling store "
+                             f"(SQLite: {msg})") from None
         except (sqlite3.DatabaseError, ValueError, OverflowError) as exc:
             # ValueError/OverflowError: sqlite3 could not convert a stored value (damaged text or numbers)
             raise InputError(f"bad store '{self.path}': the file is damaged (SQLite: {exc}); "
@@ -417,14 +420,17 @@ class SqliteStore(SqlLedger):
         con = self._con
         tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
         if "pooling_store" not in tables:
-            raise InputError(f"bad store '{self.path}': an SQLite database, but not a pooling store (no pooling_store table)")
+            raise InputError(f"bad store '{self.path}': an SQLite database, but not a pooling store "
+                             "(no pooling_store table)")
         row = con.execute("SELECT value FROM pooling_store WHERE key = 'format'").fetchone()
         if row is None:
-            raise InputError(f"bad store '{self.path}': the pooling_store table has no schema version; the file is damaged")
+            raise InputError(f"bad store '{self.path}': the pooling_store table has no schema version; "
+                             "the file is damaged")
         try:
             fmt = int(row[0])
         except (TypeError, ValueError):
-            raise InputError(f"bad store '{self.path}': unreadable schema version {row[0]!r}; the file is damaged") from None
+            raise InputError(f"bad store '{self.path}': unreadable schema version {row[0]!r}; "
+                             "the file is damaged") from None
         if fmt > FORMAT:
             raise InputError(f"bad store '{self.path}': schema version {fmt} was written by a newer pooling; "
                              f"this version ({__version__}) reads versions up to {FORMAT}; upgrade pooling")
@@ -432,7 +438,8 @@ class SqliteStore(SqlLedger):
             raise InputError(f"bad store '{self.path}': unknown schema version {fmt}; the file is damaged")
         missing = {"batches", "batch_groups", "runs", "run_groups"} - tables
         if missing:
-            raise InputError(f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing; the file is damaged")
+            raise InputError(f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing; "
+                             "the file is damaged")
         return fmt
 
     def _check_format(self):
