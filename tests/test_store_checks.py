@@ -527,3 +527,31 @@ def test_the_readme_team_commands_run_against_a_server(tmp_path, pg_cluster):
         assert proc.returncode in (0, 3), f"{cmd}\n{proc.stdout}\n{proc.stderr}"
     assert (tmp_path / "castings-2026-12.store").exists() and (tmp_path / "runs" / day / "changes.json").exists()
     assert store_exists(pg_cluster.url("parts")) and store_exists(pg_cluster.url("castings"))
+
+
+def test_without_psycopg_a_postgresql_store_is_one_line(tmp_path):
+    probe = ("import sys; sys.modules['psycopg'] = None; from pooling.cli import main; "
+             "sys.exit(main(['batches', 'postgresql://quality@db.plant.example/quality#castings']))")
+    p = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=120)
+    lines = p.stderr.strip().splitlines()
+    assert p.returncode == 2 and len(lines) == 1 and "pip install 'pooling[postgresql]'" in lines[0], p.stderr
+
+
+def test_a_postgresql_store_held_too_long_is_busy_exit_6(tmp_path, pg_cluster):
+    """Two jobs with the same delivery name meet on an advisory lock; past the busy timeout: exit 6, nothing changed."""
+    import psycopg
+
+    store = pg_cluster.new_url()
+    files = _days(tmp_path, k=2)
+    jobs.ingest_file(store, files[0], "lab", "y")
+    before = sql_dump(store)
+    loc = parse_location(store)
+    with psycopg.connect(loc.conninfo) as other:  # another job, inside its transaction, holding the name
+        other.execute("SELECT pg_advisory_xact_lock(hashtextextended(%s, 0))", (f"pooling:{loc.name}:name:late",))
+        with pytest.raises(OutputError, match="is busy: another job held it for more than 1 s"):
+            jobs.ingest_file(store, files[1], "lab", "y", batch="late", busy_seconds=1.0)
+        # a delivery of another name is not held up
+        jobs.ingest_file(store, files[1], "lab", "y", batch="other", busy_seconds=1.0)
+    assert len(sql_dump(store)) > len(before)
+    with open_store(store) as st:
+        assert [b.name for b in st.batches()] == ["day-0.csv", "other"]

@@ -244,7 +244,11 @@ def copy_store(source, target, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tu
             raise RuntimeError(f"the copy differs from '{shown}': {'; '.join(diff[:3])}")
 
     if dst_loc.is_postgresql:
-        from .postgres import create_pg_copy
+        try:
+            from .postgres import create_pg_copy
+        except ImportError:
+            raise InputError(f"bad store '{dst_loc.display}': a PostgreSQL store needs psycopg, which is not "
+                             "installed: pip install 'pooling[postgresql]'") from None
 
         create_pg_copy(dst_loc, content, shown, verify, busy_seconds=busy_seconds)
     else:

@@ -597,7 +597,11 @@ def open_store(where, *, create: bool = False, missing_ok: bool = False,
 
     loc = parse_location(where)
     if loc.is_postgresql:
-        from .postgres import open_pg
+        try:
+            from .postgres import open_pg
+        except ImportError:
+            raise InputError(f"bad store '{loc.display}': a PostgreSQL store needs psycopg, which is not installed: "
+                             "pip install 'pooling[postgresql]'") from None
 
         return open_pg(loc, create=create, missing_ok=missing_ok, busy_seconds=busy_seconds)
     from .sqlite import open_sqlite
