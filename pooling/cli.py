@@ -334,11 +334,17 @@ def _summary_args(args, stats, more, options) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------
-# the store of batches (nightly reruns): pooling ingest | batches | withdraw | refit
+# the store of batches (nightly reruns): pooling ingest | batches | withdraw | refit | checkup | copy-store
+
+STORE_HELP = ("the store: a file path (SQLite; created by ingest), a PostgreSQL URL postgresql://HOST/DATABASE "
+              "or a libpq service written service=NAME, either followed by #STORE to choose the store inside the "
+              "database (default #pooling). Passwords come from the password file or a service file, never from "
+              "the command line")
+
 
 def _add_store_parsers(sub):
     p = sub.add_parser("ingest", help="add one delivery of measurements to a store of batches (creating the store)")
-    p.add_argument("store", help="the store file (SQLite); created when it does not exist")
+    p.add_argument("store", help=STORE_HELP)
     p.add_argument("file", help="CSV or Parquet file: one row per measurement")
     p.add_argument("--group", required=True, help="column holding the group label")
     p.add_argument("--value", required=True, help="column of measurements")
@@ -355,15 +361,15 @@ def _add_store_parsers(sub):
                    help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
     p.add_argument("--quiet", action="store_true", help="print nothing on success")
     p = sub.add_parser("batches", help="list the ledger of a store: every batch, its status, and the recorded runs")
-    p.add_argument("store", help="the store file")
+    p.add_argument("store", help=STORE_HELP)
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p = sub.add_parser("withdraw", help="withdraw a batch (a bad delivery); the ledger keeps its record")
-    p.add_argument("store", help="the store file")
+    p.add_argument("store", help=STORE_HELP)
     p.add_argument("batch", help="name of the batch, as `pooling batches` shows it")
     p.add_argument("--reason", help="a note kept in the ledger")
     p = sub.add_parser("refit", help="merge every active batch, fit, write the run folder and what changed, "
                        "and record the run in the store")
-    p.add_argument("store", help="the store file")
+    p.add_argument("store", help=STORE_HELP)
     _add_fit_options(p, data=False)
     f = p.add_argument_group("store")
     f.add_argument("--half-life", dest="half_life", metavar="DAYS", help="forget old batches: a batch DAYS old counts with weight "
@@ -374,6 +380,16 @@ def _add_store_parsers(sub):
     f.add_argument("--fresh-start", dest="fresh_start", action="store_true",
                    help="start the chains afresh instead of from the last run's final states")
     # the change report reads --threshold, --lower-limit, --upper-limit, --level, --best and --decide-at
+    p = sub.add_parser("checkup", help="check a whole store: every checksum, the schema version and (SQLite) the "
+                       "file's integrity; one line per problem",
+                       epilog="exit codes: 0 the store is sound; 2 problems were found (each printed on its own line) "
+                              "or it is not a store; 6 the store cannot be reached, try again later")
+    p.add_argument("store", help=STORE_HELP)
+    p = sub.add_parser("copy-store", help="copy a whole store, with its history and recorded runs, into a new store "
+                       "(SQLite to PostgreSQL or back); verified number by number before it is committed")
+    p.add_argument("source", help="the store to copy (" + STORE_HELP + ")")
+    p.add_argument("target", help="the new store: a file that does not exist yet, or a store name not yet used in "
+                   "a PostgreSQL database")
 
 
 def _opt_num(args, name, flag):
@@ -390,6 +406,13 @@ def _watch_from_args(args):
                  level=_opt_num(args, "level", "--level") or 0.95, best=getattr(args, "best", None) or "highest")
 
 
+def _shown(store: str) -> str:
+    """The store argument as it may be printed (a URL's password is refused before anything is printed)."""
+    from .store.location import parse_location
+
+    return parse_location(store).display
+
+
 def cmd_ingest(args, argv) -> int:
     from .store import jobs
 
@@ -398,7 +421,7 @@ def cmd_ingest(args, argv) -> int:
                                      thousands=args.thousands, decimal="," if args.decimal_comma else None)
     if not args.quiet:
         if created:
-            print(f"created the store '{args.store}'")
+            print(f"created the store '{_shown(args.store)}'")
         print(f"ingested batch '{info.name}': {info.rows} measurements in {info.groups} groups, dated {info.dated_at} "
               f"(sha256 {info.sha256[:12]})")
     return E.EXIT_OK
@@ -411,7 +434,7 @@ def cmd_batches(args, argv) -> int:
 
     batches, runs = jobs.list_batches(args.store)
     if args.json:
-        print(json.dumps({"store": args.store, "batches": [b.to_dict() for b in batches],
+        print(json.dumps({"store": _shown(args.store), "batches": [b.to_dict() for b in batches],
                           "runs": [{"id": r.id, "created_at": r.created_at, "folder": r.folder,
                                     "state_sha256": r.state_sha256, "batch_ids": list(r.batch_ids),
                                     "half_life_days": r.half_life_days, "targets_met": r.targets_met} for r in runs]},
@@ -448,22 +471,52 @@ def cmd_refit(args, argv) -> int:
         raise E.InputError("bad options: refit needs --out DIR, the run folder to create")
     half = _opt_num(args, "half_life", "--half-life")
     watch = _watch_from_args(args)
+    shown = _shown(args.store)  # refuses a URL holding a password before anything is read or written
     plan = jobs.plan_refit(args.store, half_life_days=half, as_of=args.as_of, force=args.force)
     init = None if args.fresh_start else plan.init_for(_model_from_args(args, plan.stats), args.chains)
     settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
                 "seed": args.seed, "warm_start": init is not None}
 
     def after(fit, res, out):
-        jobs.record_run(plan, fit, out, settings)
+        try:
+            jobs.record_run(plan, fit, out, settings)
+        except E.PoolingError as exc:  # the folder is complete: say so, and that the next refit fits again
+            exc.args = (f"the run folder '{out}' was written, but the store did not record the run: {exc}",)
+            raise
         if not args.quiet:
             for line in short_lines(plan.report):
                 print(line)
 
+    argv = [shown if a == args.store else a for a in argv]  # summary.json records the command as shown
     return run_fit(args, plan.stats, argv, init=init,
                    more=lambda fit, res, folder: jobs.write_changes(plan, fit, watch, folder), after=after)
 
 
-STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_withdraw, "refit": cmd_refit}
+def cmd_checkup(args, argv) -> int:
+    from .store import jobs
+
+    shown, problems, facts = jobs.check_store(args.store)
+    if problems:
+        for line in problems:
+            print(f"{shown}: {line}")
+        raise E.InputError(f"bad store '{shown}': {len(problems)} problem(s) found (listed above); restore the store "
+                           "from a backup, or copy what is sound elsewhere")
+    print(f"{shown}: sound: every checksum matches; {facts}")
+    return E.EXIT_OK
+
+
+def cmd_copy_store(args, argv) -> int:
+    from .store import jobs
+
+    source, target, content = jobs.copy_store(args.source, args.target)
+    groups = sum(len(s.labels) for s in content.stats.values())
+    print(f"copied '{source}' to '{target}': {len(content.lines)} batches ({groups} group rows) and "
+          f"{len(content.runs)} recorded runs, read back and identical to the original")
+    return E.EXIT_OK
+
+
+STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_withdraw, "refit": cmd_refit,
+                  "checkup": cmd_checkup, "copy-store": cmd_copy_store}
 
 
 def _on_sigterm(signum, frame):

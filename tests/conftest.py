@@ -41,3 +41,60 @@ def small_csv(tmp_path):
     p = tmp_path / "plants.csv"
     p.write_text("\n".join(rows) + "\n")
     return p
+
+
+# ---------------------------------------------------------------------------------------------
+# the store tests run on both stores: the embedded SQLite file and a throwaway PostgreSQL cluster
+
+STORE_BACKENDS = ["sqlite", "postgresql"]
+
+
+@pytest.fixture(scope="session")
+def pg_cluster():
+    """A PostgreSQL cluster of our own for the whole session (tests/pg_cluster.py), or a skip that says why.
+    With CI set, a missing server is a failure: CI must run these tests."""
+    from pg_cluster import Cluster, why_unavailable
+
+    why = why_unavailable()
+    if why:
+        if os.environ.get("CI"):
+            pytest.fail(f"the PostgreSQL store tests cannot run: {why}")
+        pytest.skip(f"the PostgreSQL store tests need a server: {why}")
+    cluster = Cluster()
+    before = os.environ.get("PGPASSFILE")
+    os.environ.update(cluster.env())  # the password file; subprocesses inherit it
+    try:
+        yield cluster
+    finally:
+        cluster.destroy()
+        if before is None:
+            os.environ.pop("PGPASSFILE", None)
+        else:
+            os.environ["PGPASSFILE"] = before
+
+
+@pytest.fixture(scope="module", params=STORE_BACKENDS)
+def backend(request):
+    """The store implementation a store test runs on."""
+    if request.param == "postgresql":
+        request.getfixturevalue("pg_cluster")
+    return request.param
+
+
+def _new_location(request, backend: str, folder, name: str) -> str:
+    if backend == "postgresql":
+        return request.getfixturevalue("pg_cluster").new_url()
+    return str(folder / f"{name}.store")
+
+
+@pytest.fixture
+def new_store(request, backend, tmp_path):
+    """A factory of fresh, not yet existing stores on this test's backend: new_store() -> store argument."""
+    return lambda name="s": _new_location(request, backend, tmp_path, name)
+
+
+@pytest.fixture(scope="module")
+def new_module_store(request, backend, tmp_path_factory):
+    """The same, for module-scoped fixtures."""
+    folder = tmp_path_factory.mktemp("stores")
+    return lambda name="s": _new_location(request, backend, folder, name)

@@ -1,6 +1,7 @@
 """The store's ledger: exact merges, idempotent ingestion, replacement, withdrawal, forgetting, bad stores.
 
-No sampling here; these run in a few seconds.
+Every test that takes `new_store` runs on both stores (SQLite and PostgreSQL; conftest.py). No
+sampling here; these run in a few seconds.
 """
 from __future__ import annotations
 
@@ -13,15 +14,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from store_helpers import sql_dump as _dump
+from store_helpers import store_exists
 
 from pooling import cli
 from pooling.errors import InputError, NothingNew
 from pooling.stats import read_table
-from pooling.store import combine, forgetting_weights, open_store
-from pooling.store import jobs
+from pooling.store import combine, forgetting_weights, jobs, open_store
 from pooling.store.combine import parse_when
-from store_helpers import sql_dump as _dump
-
 
 
 def _write_batches(tmp: Path, rng, k: int, offset: float, spread: float, rows: int, groups: int):
@@ -40,10 +40,10 @@ def _write_batches(tmp: Path, rng, k: int, offset: float, spread: float, rows: i
 
 
 @pytest.mark.parametrize("offset,spread", [(0.0, 1.0), (1e9, 0.1), (-3e9, 1e-3)])
-def test_merged_batches_equal_statistics_of_concatenated_data(tmp_path, offset, spread):
+def test_merged_batches_equal_statistics_of_concatenated_data(tmp_path, offset, spread, new_store):
     rng = np.random.default_rng(11)
     whole = _write_batches(tmp_path, rng, k=5, offset=offset, spread=spread, rows=400, groups=9)
-    store = tmp_path / "s.store"
+    store = new_store()
     for b in range(5):
         jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y")
     with open_store(store) as st:
@@ -73,10 +73,10 @@ def test_merged_batches_equal_statistics_of_concatenated_data(tmp_path, offset, 
     np.testing.assert_allclose(merged.m2, one.m2[order], rtol=1e-12, atol=0)
 
 
-def test_same_file_twice_changes_nothing(tmp_path):
+def test_same_file_twice_changes_nothing(tmp_path, new_store):
     rng = np.random.default_rng(3)
     _write_batches(tmp_path, rng, k=2, offset=10.0, spread=1.0, rows=50, groups=4)
-    store = tmp_path / "s.store"
+    store = new_store()
     jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y")
     before = _dump(store)
     with pytest.raises(NothingNew, match="in the store already as batch 'batch-0.csv'"):
@@ -91,7 +91,7 @@ def test_same_file_twice_changes_nothing(tmp_path):
     assert _dump(store) == before
 
 
-def test_a_batch_with_decimal_commas_ingests_the_same_numbers(tmp_path):
+def test_a_batch_with_decimal_commas_ingests_the_same_numbers(tmp_path, new_store):
     # Source: the number notation of ISO 80000-1 (decimal comma, digit groups), as `pooling fit`
     # reads it (--thousands, --decimal-comma); the store must hold the same statistics as for the
     # same measurements written with a decimal point.
@@ -103,7 +103,7 @@ def test_a_batch_with_decimal_commas_ingests_the_same_numbers(tmp_path):
         whole, frac = v.split(".")
         return (f"{whole[:-3]}.{whole[-3:]}" if len(whole) > 3 else whole) + "," + frac
     comma.write_text("lab;y\n" + "".join(f"{g};{european(v)}\n" for g, v in values))
-    a, b = tmp_path / "a.store", tmp_path / "b.store"
+    a, b = new_store("a"), new_store("b")
     assert cli.main(["ingest", str(a), str(point), "--group", "lab", "--value", "y", "--quiet"]) == 0
     assert cli.main(["ingest", str(b), str(comma), "--group", "lab", "--value", "y", "--thousands", ".",
                      "--decimal-comma", "--quiet"]) == 0
@@ -117,10 +117,10 @@ def test_a_batch_with_decimal_commas_ingests_the_same_numbers(tmp_path):
         np.testing.assert_array_equal(got.m2, want.m2)
 
 
-def test_name_with_other_content_is_refused_unless_replaced(tmp_path, capsys):
+def test_name_with_other_content_is_refused_unless_replaced(tmp_path, capsys, new_store):
     rng = np.random.default_rng(4)
     _write_batches(tmp_path, rng, k=2, offset=10.0, spread=1.0, rows=50, groups=4)
-    store = tmp_path / "s.store"
+    store = new_store()
     jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y", batch="monday")
     before = _dump(store)
     code = cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
@@ -138,10 +138,10 @@ def test_name_with_other_content_is_refused_unless_replaced(tmp_path, capsys):
     assert snap.stats[0].n.sum() == 50
 
 
-def test_withdraw_is_recorded_and_leaves_the_batch_out(tmp_path, capsys):
+def test_withdraw_is_recorded_and_leaves_the_batch_out(tmp_path, capsys, new_store):
     rng = np.random.default_rng(5)
     _write_batches(tmp_path, rng, k=3, offset=0.0, spread=1.0, rows=60, groups=5)
-    store = tmp_path / "s.store"
+    store = new_store()
     for b in range(3):
         jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y")
     with open_store(store) as st:
@@ -180,10 +180,10 @@ def test_withdraw_is_recorded_and_leaves_the_batch_out(tmp_path, capsys):
     assert [b["status"] for b in listed["batches"]] == ["active", "replaced", "active", "active"]
 
 
-def test_forgetting_is_the_weighted_likelihood_of_the_raw_data(tmp_path):
+def test_forgetting_is_the_weighted_likelihood_of_the_raw_data(tmp_path, new_store):
     rng = np.random.default_rng(6)
     whole = _write_batches(tmp_path, rng, k=3, offset=500.0, spread=2.0, rows=120, groups=4)
-    store = tmp_path / "s.store"
+    store = new_store()
     days = ["2024-03-01", "2024-03-11", "2024-03-21"]
     for b, day in enumerate(days):
         jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y", at=day)
@@ -264,23 +264,23 @@ def test_foreign_and_damaged_store_files_give_one_line_and_exit_2(tmp_path, caps
     assert "newer pooling" in _one_line_exit_2(capsys, ["batches", str(newer)])
 
 
-def test_bad_dates_and_names_are_refused_before_the_store_changes(tmp_path, capsys):
+def test_bad_dates_and_names_are_refused_before_the_store_changes(tmp_path, capsys, new_store):
     rng = np.random.default_rng(8)
     _write_batches(tmp_path, rng, k=1, offset=0.0, spread=1.0, rows=40, groups=3)
-    store = tmp_path / "s.store"
+    store = new_store()
     code = cli.main(["ingest", str(store), str(tmp_path / "batch-0.csv"), "--group", "lab", "--value", "y",
                      "--at", "last tuesday"])
     assert code == 2 and "--at" in capsys.readouterr().err
-    assert not store.exists()  # nothing was created for a refused ingest
+    assert not store_exists(store)  # nothing was created for a refused ingest
     with pytest.raises(InputError, match="column 'nope'"):
         jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "nope")
-    assert not store.exists()
+    assert not store_exists(store)
 
 
-def test_bad_refit_options_are_refused_before_any_work(tmp_path, capsys):
+def test_bad_refit_options_are_refused_before_any_work(tmp_path, capsys, new_store):
     rng = np.random.default_rng(9)
     _write_batches(tmp_path, rng, k=1, offset=0.0, spread=1.0, rows=40, groups=3)
-    store = tmp_path / "s.store"
+    store = new_store()
     jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y")
     before = _dump(store)
     for extra, word in ((["--half-life", "0"], "--half-life"), (["--half-life", "soon"], "--half-life"),
@@ -294,14 +294,14 @@ def test_bad_refit_options_are_refused_before_any_work(tmp_path, capsys):
     assert _dump(store) == before
 
 
-def test_labels_in_two_unicode_forms_are_refused_at_ingest_and_at_refit(tmp_path, capsys):
+def test_labels_in_two_unicode_forms_are_refused_at_ingest_and_at_refit(tmp_path, capsys, new_store):
     # Source: Unicode Standard Annex #15: U+00E9 and U+0065 U+0301 are canonically equivalent, so a
     # lab written both ways would silently become two groups.
     one = tmp_path / "mixed.csv"
     one.write_text("lab,y\nCaf\u00e9,1.0\nBar,2.0\nCafe\u0301,1.5\nBar,2.5\n")
-    store = tmp_path / "s.store"
+    store = new_store()
     code = cli.main(["ingest", str(store), str(one), "--group", "lab", "--value", "y"])
-    assert code == 2 and not store.exists()
+    assert code == 2 and not store_exists(store)
     assert "Unicode form" in capsys.readouterr().err
     # each batch is consistent on its own; together they hold both forms: refit refuses before sampling
     a, b = tmp_path / "a.csv", tmp_path / "b.csv"

@@ -2,6 +2,7 @@
 the change report, forgetting, warm starts, and the run recorded only once its folder exists.
 
 The data are the embedded demo (36 invented casting suppliers), dealt into batches at random.
+Every test runs on both stores (SQLite and PostgreSQL; the `backend` fixture of conftest.py).
 """
 from __future__ import annotations
 
@@ -31,7 +32,7 @@ def _posterior(folder: Path) -> xr.Dataset:
 
 
 @pytest.fixture(scope="module")
-def world(tmp_path_factory):
+def world(tmp_path_factory, new_module_store):
     """A store holding the demo data in four batches, refitted once, and a one-shot fit of the same rows."""
     d = tmp_path_factory.mktemp("refit")
     df = pd.read_csv(cli.demo_path())
@@ -40,7 +41,7 @@ def world(tmp_path_factory):
     for k in range(4):
         df[part == k].to_csv(d / f"day-{k}.csv", index=False)
     df.to_csv(d / "all.csv", index=False)
-    store = d / "castings.store"
+    store = new_module_store("castings")
     for k in range(4):
         assert cli.main(["ingest", str(store), str(d / f"day-{k}.csv"), "--group", GROUP, "--value", VALUE,
                          "--at", f"2024-06-0{k + 1}", "--quiet"]) == 0

@@ -2,11 +2,13 @@
 
 A store keeps a ledger of batches (each one delivery of measurements) with their per-group
 statistics (n, mean as hi + lo, M2), and a record of every refit with the group-level results
-that the next refit compares against. The embedded implementation is SQLite (`sqlite.py`); a
-server database can be added later by writing another subclass of `BatchStore`: the commands
-and the pure computations (`combine.py`, `changes.py`) only see the records defined here.
+that the next refit compares against. Two implementations share one SQL core (`ledger.py`): the
+embedded SQLite file (`sqlite.py`) and a PostgreSQL schema (`postgres.py`). The commands and the
+pure computations (`combine.py`, `changes.py`) only see the records defined here.
 
-Every method that changes the store is atomic: it lands whole or not at all.
+Every method that changes the store is atomic: it lands whole or not at all. Every method that
+reads verifies what it read against the checksums written with it (`checksums.py`), and refuses
+(InputError, one line naming the batch or run) what does not match.
 """
 from __future__ import annotations
 
@@ -119,10 +121,25 @@ class NewBatch:
     meta: dict = field(default_factory=dict)
 
 
+@dataclass(frozen=True, eq=False)
+class StoreContent:
+    """A whole store as stored: rows of every table, checksums included (see ledger.LINE_COLS and friends).
+
+    `stats` maps a batch id to its statistics; `run_groups` a run id to its rows. Copying a store
+    writes exactly these values, so the copy has the same checksums as the original.
+    """
+
+    meta: dict
+    lines: tuple
+    stats: dict
+    runs: tuple
+    run_groups: dict
+
+
 class BatchStore(abc.ABC):
     """A ledger of batches and runs. Implementations raise pooling errors with one clear line."""
 
-    path: str
+    path: str  # how messages name the store (a file path, or a URL or service without a password)
 
     @abc.abstractmethod
     def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, replace: bool = False) -> BatchInfo:
@@ -156,6 +173,15 @@ class BatchStore(abc.ABC):
     @abc.abstractmethod
     def record_run(self, run: RunRecord) -> int:
         """Record a finished run (after its folder is in place); returns its id."""
+
+    @abc.abstractmethod
+    def check(self) -> list[str]:
+        """Every problem found in the whole store (checksums, schema version, the database's own checks), one
+        line each; an empty list when the store is sound."""
+
+    @abc.abstractmethod
+    def export(self) -> "StoreContent":
+        """Everything the store keeps, as stored, read consistently and verified (for copying)."""
 
     @abc.abstractmethod
     def close(self) -> None:

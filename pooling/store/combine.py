@@ -40,7 +40,11 @@ def parse_when(text: str, what: str) -> datetime:
                          f"found '{text}'") from None
     if t.tzinfo is None:
         t = t.replace(tzinfo=timezone.utc)
-    return t.astimezone(timezone.utc)
+    try:
+        return t.astimezone(timezone.utc)
+    except OverflowError:  # e.g. 9999-12-31T23:59-14:00 is past the last instant a datetime holds in UTC
+        raise InputError(f"bad option {what}: '{text}' is outside the dates this program can hold "
+                         "(0001-01-01 to 9999-12-31 in UTC)") from None
 
 
 def iso(t: datetime) -> str:

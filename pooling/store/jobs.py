@@ -16,11 +16,14 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
+import numpy as np
+
 from ..errors import InputError, NothingNew
-from .base import BatchInfo, GroupResult, NewBatch, RunRecord, Snapshot
+from .base import BatchInfo, GroupResult, NewBatch, RunRecord, Snapshot, StoreContent
 from .changes import Watch, changes_csv, compare, digest
 from .combine import combine, final_state_record, forgetting_weights, iso, parse_when, warm_start
-from .sqlite import DEFAULT_BUSY_SECONDS, open_store
+from .ledger import DEFAULT_BUSY_SECONDS, open_store
+from .location import parse_location
 
 CHANGES_JSON = "changes.json"
 CHANGES_CSV = "changes.csv"
@@ -37,24 +40,30 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     """
     from ..stats import check_unicode_twins, read_table
 
-    store_path = Path(store_path)
+    loc = parse_location(store_path)
     name = Path(file).name if batch is None else batch
     if not name.strip() or any(ord(ch) < 32 for ch in name):
         raise InputError(f"bad option --batch: expected a name of printable characters; found {name!r}")
     dated = iso(parse_when(at, "--at")) if at is not None else None
-    existed = store_path.exists()
-    if existed:
-        open_store(store_path, busy_seconds=busy_seconds).close()  # a foreign store is refused before the read
-    stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter, thousands=thousands, decimal=decimal)
-    check_unicode_twins(stats.labels, str(file))  # within the batch; across batches refit checks (model.build)
-    if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
-        raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
-                         f"store keeps exactly; express them in other units (for example times {1 / stats.unit:.0e})")
-    new = NewBatch(name=name, sha256=stats.file_sha256, source=str(file),
-                   dated_at=dated or iso(datetime.now(timezone.utc)), group_column=group, value_column=value)
-    with open_store(store_path, create=True, busy_seconds=busy_seconds) as st:
+    # a foreign or unreachable store is refused before the file is read
+    st = open_store(loc, missing_ok=True, busy_seconds=busy_seconds)
+    try:
+        stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter, thousands=thousands,
+                           decimal=decimal)
+        check_unicode_twins(stats.labels, str(file))  # within the batch; across batches refit checks (model.build)
+        if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
+            raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what "
+                             f"the store keeps exactly; express them in other units (for example times "
+                             f"{1 / stats.unit:.0e})")
+        new = NewBatch(name=name, sha256=stats.file_sha256, source=str(file),
+                       dated_at=dated or iso(datetime.now(timezone.utc)), group_column=group, value_column=value)
+        if st is None:
+            st = open_store(loc, create=True, busy_seconds=busy_seconds)
         info = st.add_batch(new, stats.labels, stats.n, stats.mean, stats.mean_lo, stats.m2, replace=replace)
-    return info, not existed
+        return info, st.created
+    finally:
+        if st is not None:
+            st.close()
 
 
 def withdraw_batch(store_path, name: str, note: str | None = None) -> BatchInfo:
@@ -72,6 +81,7 @@ class RefitPlan:
     """Everything a refit decided before sampling: the snapshot, the merged statistics, the last run."""
 
     store_path: str
+    store_shown: str  # how messages and changes.json name the store (no password, ever)
     snapshot: Snapshot
     ledger: list[BatchInfo]
     last: RunRecord | None
@@ -99,20 +109,26 @@ def plan_refit(store_path, *, half_life_days: float | None = None, as_of: str | 
     """Read the store, refuse (NothingNew) when no batch changed since the last run, merge the statistics."""
     t0 = time.perf_counter()
     with open_store(store_path) as st:
+        shown = st.path
         snap = st.snapshot()
         ledger = st.batches()
         last = st.last_run()
     if not snap.batches:
-        raise InputError(f"bad input: the store '{store_path}' holds no active batch; "
-                         f"ingest one with `pooling ingest {store_path} FILE --group COL --value COL`")
+        raise InputError(f"bad input: the store '{shown}' holds no active batch; "
+                         f"ingest one with `pooling ingest {shown} FILE --group COL --value COL`")
     if last is not None and last.state_sha256 == snap.state_sha256 and not force:
-        raise NothingNew(f"nothing new in the store '{store_path}' since run {last.id} of {last.created_at} "
+        raise NothingNew(f"nothing new in the store '{shown}' since run {last.id} of {last.created_at} "
                          f"(folder '{last.folder}'): no batch added or withdrawn; pass --force to refit anyway")
     reference = parse_when(as_of, "--as-of") if as_of is not None else datetime.now(timezone.utc)
     weights = forgetting_weights(list(snap.batches), reference, half_life_days)
-    stats = combine(snap.stats, weights, source=f"store '{store_path}' ({len(snap.batches)} active batches)")
-    return RefitPlan(str(store_path), snap, ledger, last, reference, half_life_days, [float(w) for w in weights],
-                     stats, seconds_merge=time.perf_counter() - t0)
+    stats = combine(snap.stats, weights, source=f"store '{shown}' ({len(snap.batches)} active batches)")
+    return RefitPlan(str(store_path), shown, snap, ledger, last, reference, half_life_days,
+                     [float(w) for w in weights], stats, seconds_merge=time.perf_counter() - t0)
+
+
+def _shown_path(plan: RefitPlan) -> str:
+    loc = parse_location(plan.store_path)
+    return plan.store_shown if loc.is_postgresql else str(Path(loc.path).resolve())
 
 
 def write_changes(plan: RefitPlan, fit, watch: Watch, folder: Path) -> dict:
@@ -120,7 +136,7 @@ def write_changes(plan: RefitPlan, fit, watch: Watch, folder: Path) -> dict:
     summary, groups = digest(fit, watch)
     report = compare(fit, watch, groups, plan.last, plan.snapshot.batches, plan.ledger)
     report["store"] = {
-        "path": str(Path(plan.store_path).resolve()), "state_sha256": plan.snapshot.state_sha256,
+        "path": _shown_path(plan), "state_sha256": plan.snapshot.state_sha256,
         "reference_at": iso(plan.reference), "half_life_days": plan.half_life_days,
         "forgetting": None if plan.half_life_days is None else "w_b = 0.5 ** (age_b_days / half_life_days); "
                       "n and M2 of batch b scaled by w_b, its means kept",
@@ -151,3 +167,92 @@ def record_run(plan: RefitPlan, fit, out: Path, settings_dict: dict) -> int:
     )
     with open_store(plan.store_path) as st:
         return st.record_run(run)
+
+
+# ---------------------------------------------------------------------------------------------
+# checking a whole store, and copying one between SQLite and PostgreSQL
+
+def check_store(store_path, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple[str, list[str], str]:
+    """Check a whole store: (how it is named, every problem found, one line of what it holds when sound).
+
+    Opening it already refuses (InputError) what is not a store at all, or one of a newer schema
+    version; an older schema version is upgraded on opening, as by every command.
+    """
+    with open_store(store_path, busy_seconds=busy_seconds) as st:
+        problems = st.check()
+        facts = ""
+        if not problems:
+            lines, runs = st.batches(), st.runs()
+            active = sum(b.status == "active" for b in lines)
+            rows = sum(b.groups for b in lines)
+            facts = (f"{len(lines)} batches in the ledger ({active} active, {rows} group rows), "
+                     f"{len(runs)} recorded runs")
+        return st.path, problems, facts
+
+
+def _exact(x):
+    """A stored value with its type, floats by their bits (so -0.0, 0.0 and NaN payloads are told apart)."""
+    if isinstance(x, float):
+        return ("float", np.float64(x).view(np.uint64).item())
+    return (type(x).__name__, x)
+
+
+def content_differences(a: StoreContent, b: StoreContent) -> list[str]:
+    """Where two stores' contents differ: every ledger field, every statistic bit for bit, every label, every
+    run field and group result. An empty list means the stores hold the same thing."""
+    out = []
+
+    def rows_differ(x, y) -> bool:
+        return len(x) != len(y) or any(len(r) != len(t) or [*map(_exact, r)] != [*map(_exact, t)] for r, t in zip(x, y))
+
+    if rows_differ(a.lines, b.lines):
+        out.append("the ledger lines differ")
+    for bid, sa in a.stats.items():
+        sb = b.stats.get(bid)
+        if sb is None or sa.labels != sb.labels or not all(type(x) is str for x in sb.labels):
+            out.append(f"batch {bid}: the labels differ")
+            continue
+        if sa.n.dtype != sb.n.dtype or not np.array_equal(sa.n, sb.n):
+            out.append(f"batch {bid}: n differs")
+        for what in ("mean", "mean_lo", "m2"):
+            x, y = getattr(sa, what), getattr(sb, what)
+            if x.shape != y.shape or not np.array_equal(x.view(np.uint64), y.view(np.uint64)):
+                out.append(f"batch {bid}: {what} differs")
+    if set(b.stats) - set(a.stats):
+        out.append("the copy holds statistics of batches the original does not")
+    if rows_differ(a.runs, b.runs):
+        out.append("the recorded runs differ")
+    if set(a.run_groups) != set(b.run_groups) or any(rows_differ(a.run_groups[k], b.run_groups[k])
+                                                     for k in a.run_groups):
+        out.append("the runs' group results differ")
+    return out
+
+
+def copy_store(source, target, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple[str, str, StoreContent]:
+    """Copy a whole store into a new one (SQLite or PostgreSQL, either way): every batch with its statistics and
+    checksums, the ledger's history and every recorded run, with their ids. The new store is written in one
+    transaction (a file linked into place once complete), read back and compared with the original before it is
+    committed. Returns (source as shown, target as shown, the content copied)."""
+    src_loc, dst_loc = parse_location(source), parse_location(target)
+    with open_store(src_loc, busy_seconds=busy_seconds) as src:
+        content = src.export()
+        shown = src.path
+
+    def verify(st) -> None:
+        diff = content_differences(content, st.export())
+        if diff:  # a bug of ours, never the user's: refuse to leave a copy that differs
+            raise RuntimeError(f"the copy differs from '{shown}': {'; '.join(diff[:3])}")
+
+    if dst_loc.is_postgresql:
+        try:
+            from .postgres import create_pg_copy
+        except ImportError:
+            raise InputError(f"bad store '{dst_loc.display}': a PostgreSQL store needs psycopg, which is not "
+                             "installed: pip install 'pooling[postgresql]'") from None
+
+        create_pg_copy(dst_loc, content, shown, verify, busy_seconds=busy_seconds)
+    else:
+        from .sqlite import create_sqlite_copy
+
+        create_sqlite_copy(dst_loc, content, shown, verify, busy_seconds=busy_seconds)
+    return shown, dst_loc.display, content

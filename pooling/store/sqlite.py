@@ -9,49 +9,44 @@ Why these choices:
 - synchronous=FULL, because a nightly job that printed "ingested" must not lose the batch on a
   power cut;
 - the file is marked as ours twice: the SQLite header's application id, and a `pooling_store`
-  table holding the format number. Anything else given as a store is refused with one line.
+  table holding the schema version. Anything else given as a store is refused with one line.
 
-Tables (format 1):
-    pooling_store  key/value: format, created_at, created_by
-    batches        the ledger: one line per delivery, never deleted; status active, withdrawn or
-                   replaced, with when and why it changed
-    batch_groups   per batch and group: n, mean (hi), mean_lo (its double-double low part), m2
-    runs           one line per refit: when, folder, state fingerprint, the active batch ids, the
-                   reference date and half-life, whether targets were met, a JSON summary (model,
-                   settings, mu/tau summaries, change settings) and, for the latest run only, the
-                   chains' final state (JSON)
-    run_groups     per run and group: the results the next run's change report compares against
+The tables and their checksums are described in `ledger.py`, which holds the SQL shared with the
+PostgreSQL store. Schema versions: 1 (no checksums; stores made before them) and 2. A version-1
+file is upgraded in place by the first command that opens it, in one transaction, after SQLite's
+quick check; a file of a newer version is refused.
+
+A new store is built in a hidden sibling `.NAME.new-XXXXXXXXXXXX` and linked into place, so a
+half-made store is never seen. Its maker holds an exclusive flock on it meanwhile; a maker killed
+with SIGKILL leaves it behind, and the next command that creates or opens the store removes
+such leftovers when no process holds them.
 """
 from __future__ import annotations
 
-import json
-import math
+import fcntl
 import os
+import re
 import sqlite3
-import time
 import uuid
 from contextlib import contextmanager
-from datetime import datetime, timezone
 from pathlib import Path
 
-import numpy as np
-
 from .. import __version__
-from ..errors import InputError, NothingNew, OutputError
-from .base import BatchInfo, BatchStats, BatchStore, GroupResult, NewBatch, RunRecord, Snapshot, state_fingerprint
+from ..errors import InputError, OutputError
+from .ledger import DEFAULT_BUSY_SECONDS, SCHEMA_VERSION, SqlLedger, _test_pause, now_utc
+from .location import Location, parse_location
 
-FORMAT = 1
+FORMAT = SCHEMA_VERSION  # the schema version, kept under the key 'format' (the name stores of version 1 use)
 APPLICATION_ID = int.from_bytes(b"pool", "big")  # lets `file`-like tools and our own check tell the file apart
 SQLITE_MAGIC = b"SQLite format 3\x00"
-DEFAULT_BUSY_SECONDS = 60.0
-
-# test-only hook: when set, ingest pauses inside its transaction so that a test can kill it there
-PAUSE_ENV = "POOLING_TEST_INGEST_PAUSE"            # file to create when the pause starts
-PAUSE_AT_ENV = "POOLING_TEST_INGEST_PAUSE_AT"      # "middle" (half the group rows written) or "before-commit"
-PAUSE_SECONDS_ENV = "POOLING_TEST_INGEST_PAUSE_SECONDS"
 
 SCHEMA = """
 CREATE TABLE pooling_store (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE store_head (
+    one INTEGER PRIMARY KEY CHECK (one = 1),
+    batch_lines INTEGER NOT NULL, batch_acc TEXT NOT NULL,
+    run_lines INTEGER NOT NULL, run_acc TEXT NOT NULL
+);
 CREATE TABLE batches (
     id INTEGER PRIMARY KEY,
     name TEXT NOT NULL,
@@ -59,13 +54,15 @@ CREATE TABLE batches (
     source TEXT NOT NULL,
     group_column TEXT NOT NULL,
     value_column TEXT NOT NULL,
-    rows INTEGER NOT NULL,
-    groups INTEGER NOT NULL,
+    "rows" INTEGER NOT NULL,
+    "groups" INTEGER NOT NULL,
     dated_at TEXT NOT NULL,
     ingested_at TEXT NOT NULL,
     status TEXT NOT NULL CHECK (status IN ('active', 'withdrawn', 'replaced')),
     changed_at TEXT,
-    note TEXT
+    note TEXT,
+    stats_sum TEXT NOT NULL,
+    line_sum TEXT NOT NULL
 );
 CREATE UNIQUE INDEX batches_one_per_name ON batches (name) WHERE status != 'replaced';
 CREATE UNIQUE INDEX batches_content_once ON batches (sha256) WHERE status = 'active';
@@ -89,7 +86,10 @@ CREATE TABLE runs (
     half_life_days REAL,
     targets_met INTEGER NOT NULL,
     summary TEXT NOT NULL,
-    final_state TEXT
+    groups_sum TEXT NOT NULL,
+    line_sum TEXT NOT NULL,
+    final_state TEXT,
+    state_sum TEXT
 );
 CREATE TABLE run_groups (
     run_id INTEGER NOT NULL REFERENCES runs (id),
@@ -101,19 +101,19 @@ CREATE TABLE run_groups (
 ) WITHOUT ROWID;
 """
 
-
-def now_utc() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
-
-
-def _real(x) -> float | None:
-    """SQLite keeps NaN as NULL anyway; say so explicitly."""
-    x = float(x)
-    return x if math.isfinite(x) else None
-
-
-def _unreal(x) -> float:
-    return float("nan") if x is None else float(x)
+# version 1 -> 2: the checksums and the head (ledger.SqlLedger.fill_checksums computes them)
+UPGRADE_1_TO_2 = """
+ALTER TABLE batches ADD COLUMN stats_sum TEXT NOT NULL DEFAULT '';
+ALTER TABLE batches ADD COLUMN line_sum TEXT NOT NULL DEFAULT '';
+ALTER TABLE runs ADD COLUMN groups_sum TEXT NOT NULL DEFAULT '';
+ALTER TABLE runs ADD COLUMN line_sum TEXT NOT NULL DEFAULT '';
+ALTER TABLE runs ADD COLUMN state_sum TEXT;
+CREATE TABLE store_head (
+    one INTEGER PRIMARY KEY CHECK (one = 1),
+    batch_lines INTEGER NOT NULL, batch_acc TEXT NOT NULL,
+    run_lines INTEGER NOT NULL, run_acc TEXT NOT NULL
+);
+"""
 
 
 def _identify(path: Path) -> None:
@@ -146,62 +146,222 @@ def _connect(path: Path, busy_seconds: float) -> sqlite3.Connection:
     return con
 
 
-def _create(path: Path, busy_seconds: float) -> None:
-    """Make a new store beside `path` and link it into place; a store made meanwhile by another job wins."""
-    tmp = path.with_name(f".{path.name}.new-{uuid.uuid4().hex[:12]}")
+# -- the hidden siblings a store is built in ---------------------------------------------------
+
+_SIBLINGS = ("-wal", "-shm", "-journal")
+
+
+def _temp_name(path: Path) -> Path:
+    return path.with_name(f".{path.name}.new-{uuid.uuid4().hex[:12]}")
+
+
+def _claim(path: Path) -> tuple[Path, int]:
+    """A fresh hidden sibling, created and flock-ed by us (so that no sweep removes it while we build it)."""
+    for _ in range(8):
+        tmp = _temp_name(path)
+        fd = os.open(tmp, os.O_RDWR | os.O_CREAT | os.O_EXCL, 0o666)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            if os.stat(tmp).st_ino == os.fstat(fd).st_ino:  # not swept away between open and flock
+                return tmp, fd
+        except OSError:
+            pass
+        os.close(fd)
+    raise OutputError(f"cannot create the store '{path}': could not claim a temporary file beside it")
+
+
+def _looks_ours(tmp: Path) -> bool:
+    """A hidden sibling this program made: empty (killed before SQLite wrote), or an SQLite file that is
+    ours or not yet marked (the application id is written with the first page)."""
+    try:
+        with open(tmp, "rb") as fh:
+            head = fh.read(100)
+    except OSError:
+        return False
+    if not head:
+        return True
+    if not head.startswith(SQLITE_MAGIC[:len(head)]):
+        return False
+    return len(head) < 72 or int.from_bytes(head[68:72], "big") in (0, APPLICATION_ID)
+
+
+def sweep_leftovers(path: Path) -> list[str]:
+    """Remove the hidden siblings `.NAME.new-*` (and their -wal, -shm, -journal) left by store creations that
+    were killed: only files this program made, and only when no process holds them. Returns the names removed."""
+    folder = path.parent if str(path.parent) else Path(".")
+    prefix = f".{path.name}.new-"
+    pattern = re.compile(re.escape(prefix) + r"([0-9a-f]{12})(-wal|-shm|-journal)?")
+    try:
+        names = [e.name for e in os.scandir(folder) if e.name.startswith(prefix)]
+    except OSError:
+        return []
+    removed = []
+    for name in sorted(names):
+        m = pattern.fullmatch(name)
+        if not m or m.group(2):
+            continue
+        tmp = folder / name
+        if not _looks_ours(tmp):
+            continue
+        try:
+            fd = os.open(tmp, os.O_RDWR)
+        except OSError:
+            continue
+        try:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except OSError:
+                continue  # its maker is alive and building it
+            try:
+                if os.stat(tmp).st_ino != os.fstat(fd).st_ino:
+                    continue
+            except OSError:
+                continue
+            for suffix in ("", *_SIBLINGS):
+                try:
+                    os.unlink(f"{tmp}{suffix}")
+                    removed.append(f"{name}{suffix}")
+                except OSError:
+                    pass
+        finally:
+            os.close(fd)
+    # siblings whose main file is gone (a maker killed while it removed them)
+    for name in sorted(names):
+        m = pattern.fullmatch(name)
+        if m and m.group(2) and not (folder / f"{prefix}{m.group(1)}").exists():
+            try:
+                os.unlink(folder / name)
+                removed.append(name)
+            except OSError:
+                pass
+    return removed
+
+
+def _create(path: Path, busy_seconds: float, fill=None) -> bool:
+    """Make a new store beside `path` and link it into place; a store made meanwhile by another job wins.
+
+    `fill(store)`, when given, writes content into the new store before it is linked (a copy). Returns
+    whether this call put the store in place."""
+    tmp, fd = _claim(path)
+    placed = False
     try:
         con = sqlite3.connect(str(tmp), isolation_level=None)
         try:
             con.execute(f"PRAGMA application_id = {APPLICATION_ID}")
             con.execute(f"PRAGMA user_version = {FORMAT}")
             con.execute("PRAGMA journal_mode = WAL")  # persistent: recorded in the file
+            _test_pause("create")
             # the file is private until linked into place, so no transaction is needed here
             con.executescript(SCHEMA)
             con.executemany("INSERT INTO pooling_store (key, value) VALUES (?, ?)",
-                            [("format", str(FORMAT)), ("created_at", now_utc()), ("created_by", f"pooling {__version__}")])
+                            [("format", str(FORMAT)), ("created_at", now_utc()),
+                             ("created_by", f"pooling {__version__}")])
+            con.execute("INSERT INTO store_head (one, batch_lines, batch_acc, run_lines, run_acc) "
+                        "VALUES (1, 0, '0000000000000000', 0, '0000000000000000')")
         finally:
             con.close()  # the last connection checkpoints the WAL into the file and removes it
+        if fill is not None:
+            with SqliteStore(tmp, busy_seconds, shown=str(path)) as st:
+                fill(st)
         try:
             os.link(tmp, path)  # fails if a store appeared meanwhile: never clobber one
+            placed = True
         except FileExistsError:
             pass
         except OSError:
             if not path.exists():  # a file system without hard links
                 os.replace(tmp, path)
+                placed = True
     except sqlite3.Error as exc:
         raise OutputError(f"cannot create the store '{path}': {exc}") from None
     except OSError as exc:
         raise OutputError(f"cannot create the store '{path}': {exc.strerror or exc}") from None
     finally:
-        for suffix in ("", "-wal", "-shm", "-journal"):
+        for suffix in ("", *_SIBLINGS):
             try:
                 os.unlink(f"{tmp}{suffix}")
             except OSError:
                 pass
+        os.close(fd)
+    return placed
 
 
-def open_store(path, *, create: bool = False, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> "SqliteStore":
-    """Open the store at `path` (creating it when `create` and it does not exist)."""
-    path = Path(path)
+def open_sqlite(where, *, create: bool = False, missing_ok: bool = False,
+                busy_seconds: float = DEFAULT_BUSY_SECONDS) -> "SqliteStore | None":
+    """Open the store file at `where` (creating it when `create` and it does not exist)."""
+    loc = parse_location(where) if not isinstance(where, Location) else where
+    path = loc.path
+    created = False
+    if path.parent.is_dir():
+        sweep_leftovers(path)
     if not path.exists():
+        if missing_ok and not create:
+            return None
         if not create:
             raise InputError(f"bad store '{path}': no such file; `pooling ingest {path} FILE ...` creates a store")
         parent = path.resolve().parent
         if not parent.is_dir():
             raise OutputError(f"cannot create the store '{path}': the folder '{parent}' does not exist")
-        _create(path, busy_seconds)
+        created = _create(path, busy_seconds)
     _identify(path)
-    return SqliteStore(path, busy_seconds)
+    store = SqliteStore(path, busy_seconds)
+    store.created = created
+    return store
 
 
-class SqliteStore(BatchStore):
+def create_sqlite_copy(where, content, copied_from: str, verify, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> None:
+    """Write a whole store's content as a new store file (refused if the file exists), linked into place whole."""
+    loc = parse_location(where) if not isinstance(where, Location) else where
+    path = loc.path
+    if path.exists():
+        raise InputError(f"bad store '{path}': the file exists already; copy into a new store")
+    parent = path.resolve().parent
+    if not parent.is_dir():
+        raise OutputError(f"cannot create the store '{path}': the folder '{parent}' does not exist")
+    sweep_leftovers(path)
+    def fill(st):
+        st.load(content, copied_from)
+        verify(st)  # read back from the new file before it is linked into place
+
+    if not _create(path, busy_seconds, fill=fill):
+        raise InputError(f"bad store '{path}': the file appeared while the copy was written; nothing was changed")
+
+
+class _Tx:
+    """One SQLite transaction, as the shared ledger uses it."""
+
+    def __init__(self, con: sqlite3.Connection):
+        self.con = con
+
+    def one(self, sql, params=()):
+        return self.con.execute(sql, params).fetchone()
+
+    def all(self, sql, params=()):
+        return self.con.execute(sql, params).fetchall()
+
+    def run(self, sql, params=(), many: bool = False):
+        if many:
+            self.con.executemany(sql, params)
+        else:
+            self.con.execute(sql, params)
+
+    def bulk(self, table, columns, rows, types=None):
+        if rows:
+            names = ", ".join(f'"{c}"' for c in columns)
+            self.con.executemany(f"INSERT INTO {table} ({names}) VALUES ({', '.join('?' * len(columns))})", rows)
+
+
+class SqliteStore(SqlLedger):
     """The embedded store. Use `open_store`, which checks the file first."""
 
-    def __init__(self, path: Path, busy_seconds: float = DEFAULT_BUSY_SECONDS):
-        self.path = str(path)
+    def __init__(self, path: Path, busy_seconds: float = DEFAULT_BUSY_SECONDS, shown: str | None = None):
+        self.path = shown or str(path)
+        self.file = Path(path)
         self.busy_seconds = busy_seconds
+        self.created = False
+        self.location = parse_location(self.file)
         with self._guard():
-            self._con = _connect(path, busy_seconds)
+            self._con = _connect(self.file, busy_seconds)
             self._check_format()
 
     # -- plumbing -------------------------------------------------------------------------------
@@ -222,9 +382,12 @@ class SqliteStore(BatchStore):
                 raise OutputError(f"cannot use the store '{self.path}': {msg} (check the permissions of the file "
                                   "and of its folder, which must take the -wal and -shm files)") from None
             if "full" in msg:
-                raise OutputError(f"cannot write the store '{self.path}': the disk is full; nothing was changed") from None
-            raise InputError(f"bad store '{self.path}': the file is damaged or not a pooling store (SQLite: {msg})") from None
-        except sqlite3.DatabaseError as exc:
+                raise OutputError(f"cannot write the store '{self.path}': the disk is full; "
+                                  "nothing was changed") from None
+            raise InputError(f"bad store '{self.path}': the file is damaged or not a pooling store "
+                             f"(SQLite: {msg})") from None
+        except (sqlite3.DatabaseError, ValueError, OverflowError) as exc:
+            # ValueError/OverflowError: sqlite3 could not convert a stored value (damaged text or numbers)
             raise InputError(f"bad store '{self.path}': the file is damaged (SQLite: {exc}); "
                              "restore it from a backup") from None
 
@@ -234,7 +397,7 @@ class SqliteStore(BatchStore):
         with self._guard():
             self._con.execute("BEGIN IMMEDIATE")
             try:
-                yield self._con
+                yield _Tx(self._con)
             except BaseException:
                 self._con.execute("ROLLBACK")
                 raise
@@ -246,185 +409,79 @@ class SqliteStore(BatchStore):
         with self._guard():
             self._con.execute("BEGIN")
             try:
-                yield self._con
+                yield _Tx(self._con)
             finally:
                 self._con.execute("COMMIT")
 
-    def _check_format(self):
+    def _next_id(self, tx, table: str) -> int:
+        return int(tx.one(f"SELECT coalesce(max(id), 0) + 1 FROM {table}")[0])
+
+    def _format(self) -> int:
         con = self._con
         tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
         if "pooling_store" not in tables:
-            raise InputError(f"bad store '{self.path}': an SQLite database, but not a pooling store (no pooling_store table)")
+            raise InputError(f"bad store '{self.path}': an SQLite database, but not a pooling store "
+                             "(no pooling_store table)")
         row = con.execute("SELECT value FROM pooling_store WHERE key = 'format'").fetchone()
         if row is None:
-            raise InputError(f"bad store '{self.path}': the pooling_store table has no format number; the file is damaged")
+            raise InputError(f"bad store '{self.path}': the pooling_store table has no schema version; "
+                             "the file is damaged")
         try:
             fmt = int(row[0])
-        except ValueError:
-            raise InputError(f"bad store '{self.path}': unreadable format number {row[0]!r}; the file is damaged") from None
+        except (TypeError, ValueError):
+            raise InputError(f"bad store '{self.path}': unreadable schema version {row[0]!r}; "
+                             "the file is damaged") from None
         if fmt > FORMAT:
-            raise InputError(f"bad store '{self.path}': store format {fmt} was written by a newer pooling; "
-                             f"this version ({__version__}) reads format {FORMAT}; upgrade pooling")
+            raise InputError(f"bad store '{self.path}': schema version {fmt} was written by a newer pooling; "
+                             f"this version ({__version__}) reads versions up to {FORMAT}; upgrade pooling")
+        if fmt < 1:
+            raise InputError(f"bad store '{self.path}': unknown schema version {fmt}; the file is damaged")
         missing = {"batches", "batch_groups", "runs", "run_groups"} - tables
         if missing:
-            raise InputError(f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing; the file is damaged")
-        mode = con.execute("PRAGMA journal_mode").fetchone()[0]
+            raise InputError(f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing; "
+                             "the file is damaged")
+        return fmt
+
+    def _check_format(self):
+        if self._format() < FORMAT:
+            self._upgrade()
+        if "store_head" not in {r[0] for r in self._con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}:
+            raise InputError(f"bad store '{self.path}': the table store_head is missing; the file is damaged")
+        mode = self._con.execute("PRAGMA journal_mode").fetchone()[0]
         if mode.lower() != "wal":
-            con.execute("PRAGMA journal_mode = WAL")
+            self._con.execute("PRAGMA journal_mode = WAL")
+
+    def _upgrade(self) -> None:
+        """An older store, upgraded in place in one transaction (after SQLite's quick check, so that damage is
+        not sealed with fresh checksums)."""
+        problems = [r[0] for r in self._con.execute("PRAGMA quick_check")]
+        if problems != ["ok"]:
+            raise InputError(f"bad store '{self.path}': the file is damaged (SQLite: {problems[0]}); it was not "
+                             "upgraded; restore it from a backup")
+        with self._write() as tx:
+            fmt = self._format()  # another job may have upgraded it while we waited for the lock
+            if fmt == 1:  # executescript would COMMIT: the statements run one by one inside this transaction
+                for stmt in UPGRADE_1_TO_2.split(";"):
+                    if stmt.strip():
+                        tx.run(stmt)
+                self.fill_checksums(tx)
+                tx.run("UPDATE pooling_store SET value = ? WHERE key = 'format'", (str(FORMAT),))
+                tx.run("INSERT OR REPLACE INTO pooling_store (key, value) VALUES ('upgraded_at', ?)", (now_utc(),))
+                tx.run(f"PRAGMA user_version = {FORMAT}")
+
+    def _own_problems(self) -> list[str]:
+        try:
+            rows = [r[0] for r in self._con.execute("PRAGMA integrity_check")]
+            user_version = self._con.execute("PRAGMA user_version").fetchone()[0]
+        except sqlite3.DatabaseError as exc:  # damage that stops the check itself
+            return [f"SQLite's integrity check: {exc}"]
+        out = [] if rows == ["ok"] else [f"SQLite's integrity check: {r}" for r in rows]
+        if user_version != FORMAT:
+            out.append(f"the file header's schema version is {user_version}, expected {FORMAT}")
+        return out
 
     def close(self) -> None:
         con = getattr(self, "_con", None)
         if con is not None:
             con.close()
             self._con = None
-
-    # -- ledger ---------------------------------------------------------------------------------
-
-    _BATCH_COLS = "id, name, sha256, source, rows, groups, dated_at, ingested_at, status, changed_at, note"
-
-    @staticmethod
-    def _info(row) -> BatchInfo:
-        return BatchInfo(*row)
-
-    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, replace: bool = False) -> BatchInfo:
-        labels = list(labels)
-        n = np.asarray(n)
-        rows = int(n.sum())
-        when = now_utc()
-        with self._write() as con:
-            same = con.execute(f"SELECT {self._BATCH_COLS} FROM batches WHERE sha256 = ? AND status = 'active'",
-                               (new.sha256,)).fetchone()
-            if same is not None:
-                b = self._info(same)
-                raise NothingNew(f"the content of '{new.source}' is in the store already as batch '{b.name}' "
-                                 f"(ingested {b.ingested_at}); nothing changed")
-            current = con.execute(f"SELECT {self._BATCH_COLS} FROM batches WHERE name = ? AND status != 'replaced'",
-                                  (new.name,)).fetchone()
-            if current is not None and not replace:
-                b = self._info(current)
-                raise InputError(f"bad input: a batch named '{new.name}' is in the store '{self.path}' already "
-                                 f"({b.status}, {b.rows} rows, sha256 {b.sha256[:12]}) with other content; "
-                                 "name this one with --batch NAME, or pass --replace to replace it")
-            gone = con.execute(f"SELECT {self._BATCH_COLS} FROM batches WHERE sha256 = ? AND status = 'withdrawn'",
-                               (new.sha256,)).fetchone()
-            if gone is not None and not replace:
-                b = self._info(gone)
-                raise InputError(f"bad input: the content of '{new.source}' was withdrawn as batch '{b.name}' at "
-                                 f"{b.changed_at}; pass --replace to take it back")
-            if current is not None:
-                con.execute("UPDATE batches SET status = 'replaced', changed_at = ?, note = ? WHERE id = ?",
-                            (when, f"replaced by a new delivery of the same name at {when}", current[0]))
-            cur = con.execute(
-                "INSERT INTO batches (name, sha256, source, group_column, value_column, rows, groups, dated_at, "
-                "ingested_at, status) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, 'active')",
-                (new.name, new.sha256, new.source, new.group_column, new.value_column, rows, len(labels),
-                 new.dated_at, when))
-            bid = cur.lastrowid
-            payload = [(bid, i, lab, int(n[i]), float(mean[i]), float(mean_lo[i]), float(m2[i]))
-                       for i, lab in enumerate(labels)]
-            half = len(payload) // 2
-            con.executemany("INSERT INTO batch_groups (batch_id, position, label, n, mean, mean_lo, m2) "
-                            "VALUES (?, ?, ?, ?, ?, ?, ?)", payload[:half])
-            _test_pause("middle")
-            con.executemany("INSERT INTO batch_groups (batch_id, position, label, n, mean, mean_lo, m2) "
-                            "VALUES (?, ?, ?, ?, ?, ?, ?)", payload[half:])
-            _test_pause("before-commit")
-            row = con.execute(f"SELECT {self._BATCH_COLS} FROM batches WHERE id = ?", (bid,)).fetchone()
-        return self._info(row)
-
-    def withdraw(self, name: str, note: str | None = None) -> BatchInfo:
-        when = now_utc()
-        with self._write() as con:
-            row = con.execute(f"SELECT {self._BATCH_COLS} FROM batches WHERE name = ? AND status != 'replaced'",
-                              (name,)).fetchone()
-            if row is None:
-                raise InputError(f"bad input: no batch named '{name}' in the store '{self.path}'; "
-                                 f"`pooling batches {self.path}` lists them")
-            b = self._info(row)
-            if b.status == "withdrawn":
-                raise NothingNew(f"batch '{name}' was withdrawn already at {b.changed_at}; nothing changed")
-            con.execute("UPDATE batches SET status = 'withdrawn', changed_at = ?, note = ? WHERE id = ?",
-                        (when, note, b.id))
-            row = con.execute(f"SELECT {self._BATCH_COLS} FROM batches WHERE id = ?", (b.id,)).fetchone()
-        return self._info(row)
-
-    def batches(self) -> list[BatchInfo]:
-        with self._read() as con:
-            return [self._info(r) for r in con.execute(f"SELECT {self._BATCH_COLS} FROM batches ORDER BY id")]
-
-    def snapshot(self) -> Snapshot:
-        with self._read() as con:
-            infos = tuple(self._info(r) for r in con.execute(
-                f"SELECT {self._BATCH_COLS} FROM batches WHERE status = 'active' ORDER BY id"))
-            rows = con.execute(
-                "SELECT g.batch_id, g.label, g.n, g.mean, g.mean_lo, g.m2 FROM batch_groups g "
-                "JOIN batches b ON b.id = g.batch_id WHERE b.status = 'active' ORDER BY g.batch_id, g.position"
-            ).fetchall()
-        stats = []
-        if rows:
-            bid = np.fromiter((r[0] for r in rows), dtype=np.int64, count=len(rows))
-            cut = np.flatnonzero(np.diff(bid)) + 1
-            starts = np.concatenate([[0], cut])
-            ends = np.concatenate([cut, [len(rows)]])
-            cols = list(zip(*rows))
-            n = np.asarray(cols[2], dtype=np.int64)
-            mean, lo, m2 = (np.asarray(cols[k], dtype=np.float64) for k in (3, 4, 5))
-            for s, e in zip(starts, ends):
-                stats.append(BatchStats(int(bid[s]), tuple(cols[1][s:e]), n[s:e], mean[s:e], lo[s:e], m2[s:e]))
-        return Snapshot(infos, tuple(stats), state_fingerprint(infos))
-
-    # -- runs -----------------------------------------------------------------------------------
-
-    _RUN_COLS = ("id, created_at, folder, state_sha256, batch_ids, reference_at, half_life_days, targets_met, "
-                 "summary")
-
-    @staticmethod
-    def _run(row, groups=(), final_state=None) -> RunRecord:
-        (rid, created, folder, sha, ids, ref, hl, met, summary) = row
-        return RunRecord(created_at=created, folder=folder, state_sha256=sha, batch_ids=tuple(json.loads(ids)),
-                         reference_at=ref, half_life_days=hl, targets_met=bool(met), summary=json.loads(summary),
-                         groups=tuple(groups), final_state=final_state, id=rid)
-
-    def runs(self) -> list[RunRecord]:
-        with self._read() as con:
-            return [self._run(r) for r in con.execute(f"SELECT {self._RUN_COLS} FROM runs ORDER BY id")]
-
-    def last_run(self) -> RunRecord | None:
-        with self._read() as con:
-            row = con.execute(f"SELECT {self._RUN_COLS}, final_state FROM runs ORDER BY id DESC LIMIT 1").fetchone()
-            if row is None:
-                return None
-            groups = [GroupResult(r[0], *(_unreal(x) for x in r[1:])) for r in con.execute(
-                "SELECT label, n, raw_mean, post_mean, post_sd, q_lo, q_hi, rank_mean, rank_sd, p_above, p_outside "
-                "FROM run_groups WHERE run_id = ? ORDER BY position", (row[0],))]
-        fs = json.loads(row[-1]) if row[-1] else None
-        return self._run(row[:-1], groups, fs)
-
-    def record_run(self, run: RunRecord) -> int:
-        with self._write() as con:
-            cur = con.execute(
-                "INSERT INTO runs (created_at, folder, state_sha256, batch_ids, reference_at, half_life_days, "
-                "targets_met, summary, final_state) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (run.created_at, run.folder, run.state_sha256, json.dumps(list(run.batch_ids)), run.reference_at,
-                 run.half_life_days, int(run.targets_met), json.dumps(run.summary, allow_nan=False),
-                 None if run.final_state is None else json.dumps(run.final_state, allow_nan=False)))
-            rid = cur.lastrowid
-            # only the latest run's chain states are ever used (to start the next refit); older ones
-            # would make the file grow by chains x groups numbers every night
-            con.execute("UPDATE runs SET final_state = NULL WHERE id < ?", (rid,))
-            con.executemany(
-                "INSERT INTO run_groups (run_id, position, label, n, raw_mean, post_mean, post_sd, q_lo, q_hi, "
-                "rank_mean, rank_sd, p_above, p_outside) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [(rid, i, g.label, _real(g.n), _real(g.raw_mean), _real(g.post_mean), _real(g.post_sd), _real(g.q_lo),
-                  _real(g.q_hi), _real(g.rank_mean), _real(g.rank_sd), _real(g.p_above), _real(g.p_outside))
-                 for i, g in enumerate(run.groups)])
-        return rid
-
-
-def _test_pause(point: str) -> None:
-    """Tests only: stop here (inside the open transaction) so that a test can SIGKILL the process."""
-    marker = os.environ.get(PAUSE_ENV)
-    if not marker or os.environ.get(PAUSE_AT_ENV, "middle") != point:
-        return
-    Path(marker).write_text(str(os.getpid()))
-    time.sleep(float(os.environ.get(PAUSE_SECONDS_ENV, "60")))
