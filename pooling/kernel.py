@@ -22,6 +22,10 @@ Heavy tails (between = 1): theta_j | mu, tau, lambda_j ~ N(mu, tau^2 / lambda_j)
      the conditional invariant; see tail_step);
   5. lambda_j | theta_j, mu, tau, df ~ Gamma((df + 1)/2, rate (df + (theta_j - mu)^2 / tau^2) / 2)
      (lambda_j = 1 at df = inf). 4 then 5 is an exact partially collapsed update of (df, lambda).
+     Between 4 and 5, a joint move of (df, tau) with the lambda_j still integrated out: df to a
+     neighbouring grid point and tau rescaled so that the quartiles of the t stay put (tail_step): given
+     theta the data fix the spread of the groups, so df and tau are tied and the draws of each given the
+     other move along that ridge only slowly.
 Block B, the variances given theta:
   separate: sigma_j^2 ~ Scaled-Inv-chi2(nu + n_j, (nu s^2 + M2_j + n_j (ybar_j - theta_j)^2) / (nu + n_j)),
             s^2 ~ Gamma(shape J nu / 2 + a, rate nu / 2 sum_j 1/sigma_j^2 + b),
@@ -70,8 +74,9 @@ class Data(NamedTuple):
     tau prior: kind 0 flat, 1 half-normal, 2 half-Cauchy, scale tau_scale. s^2 prior Gamma(s2_shape,
     s2_rate) (0, 0: p(s^2) ∝ 1/s^2). nu on nu_grid with log prior weights nu_logprior; nu_table and
     layout from `prepare`. between: 0 normal, 1 heavy (Student-t by a scale mixture); df_grid (inf is
-    the normal limit) with log prior weights df_logprior and df_const[k] = log of the t density's
-    constant, lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2 (-log(2 pi)/2 at df = inf).
+    the normal limit) with log prior weights df_logprior, df_const[k] = log of the t density's
+    constant, lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2 (-log(2 pi)/2 at df = inf), and df_logq[k] the
+    log of the standard t's upper quartile (t_quartile_logs).
     """
 
     within: int
@@ -94,6 +99,7 @@ class Data(NamedTuple):
     df_grid: np.ndarray
     df_logprior: np.ndarray
     df_const: np.ndarray
+    df_logq: np.ndarray
 
 
 class State(NamedTuple):
@@ -142,6 +148,14 @@ def t_constants(df_grid: np.ndarray) -> np.ndarray:
         else:
             out[k] = math.lgamma(0.5 * (df + 1.0)) - math.lgamma(0.5 * df) - 0.5 * math.log(df * math.pi)
     return out
+
+
+def t_quartile_logs(df_grid: np.ndarray) -> np.ndarray:
+    """log of the upper quartile of the standard Student-t for each df (the normal's at df = inf)."""
+    from scipy.special import stdtrit
+
+    return np.array([math.log(float(stdtrit(df, 0.75))) if math.isfinite(df) else math.log(0.6744897501960817)
+                     for df in df_grid])
 
 
 def make_work(d: Data) -> Work:
@@ -428,6 +442,57 @@ def df_loglik(k, d, z2, sz, J):
     return d.df_logprior[k] + J * (d.df_const[k] + h * math.log(df)) - h * sum_log_shifted(z2, df)
 
 
+@njit(nogil=True, cache=True, error_model="numpy")
+def tau_part(eta, d, J):
+    """The terms of log p(df, eta = log tau | theta, mu) that depend on tau but not on the t's shape:
+    log p_tau(tau) + eta (the Jacobian of tau = exp(eta)) - J eta (each group's t density carries 1/tau)."""
+    tau2 = math.exp(2.0 * eta)
+    lp = eta - J * eta
+    if d.tau_kind == 1:
+        lp -= 0.5 * tau2 / (d.tau_scale * d.tau_scale)
+    elif d.tau_kind == 2:
+        lp -= math.log1p(tau2 / (d.tau_scale * d.tau_scale))
+    return lp
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def df_tau_step(rng, d, sc, z2, sz):
+    """Metropolis move of (df, tau) jointly, every lambda_j integrated out: df to a neighbouring grid point
+    (each side with probability 1/2; off the grid is rejected) and log tau shifted by log q(df) - log q(df'),
+    q the upper quartile of the standard t (d.df_logq), so that the t's quartiles, which the groups fix,
+    stay put. The proposal is its own inverse with a unit Jacobian in (k, log tau), so the acceptance
+    ratio is the ratio of p(df, tau | theta, mu). z2 and sz hold (theta_j - mu)^2 / tau^2 at the current tau.
+    Returns whether the move was accepted (tau then changed)."""
+    K = d.df_grid.shape[0]
+    J = z2.shape[0]
+    k = int(sc[DF_IDX])
+    k_new = k - 1 if rng.random() < 0.5 else k + 1
+    if k_new < 0 or k_new >= K:
+        return False
+    eta = sc[ETA]
+    shift = d.df_logq[k] - d.df_logq[k_new]
+    eta_new = eta + shift
+    if eta_new < ETA_MIN or eta_new > ETA_MAX:
+        return False
+    # the t terms at (df', tau'): z'^2 = z2 e^(-a), a = 2 shift, and
+    # sum_j log(df' + z'^2) = sum_j log(df' e^a + z2) - J a (one log per block of products, as in df_loglik)
+    a = 2.0 * shift
+    old = df_loglik(k, d, z2, sz, J) + tau_part(eta, d, J)
+    df_new = d.df_grid[k_new]
+    if math.isinf(df_new):
+        t_new = d.df_logprior[k_new] + J * d.df_const[k_new] - 0.5 * sz * math.exp(-a)
+    else:
+        h = 0.5 * (df_new + 1.0)
+        t_new = (d.df_logprior[k_new] + J * (d.df_const[k_new] + h * math.log(df_new))
+                 - h * (sum_log_shifted(z2, df_new * math.exp(a)) - J * a))
+    new = t_new + tau_part(eta_new, d, J)
+    if math.log(rng.random()) < new - old:
+        sc[DF_IDX] = k_new
+        sc[ETA] = eta_new
+        return True
+    return False
+
+
 @njit(nogil=True, cache=True, error_model="numpy", inline="always")
 def gamma_mt(rng, dd, cc):
     """A Gamma(a, 1) draw for a >= 1 by Marsaglia and Tsang (2000, ACM TOMS 26(3)), with dd = a - 1/3 and
@@ -448,51 +513,62 @@ def gamma_mt(rng, dd, cc):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def tail_step(rng, d, st, wk):
-    """df | theta, mu, tau (lambda integrated out; an exact draw on the grid), then every lambda_j | df."""
+def fill_z2(st, z2):
+    """z2_j = (theta_j - mu)^2 / tau^2; returns their sum."""
     sc = st.scalars
-    theta = st.theta
-    z2 = wk.z2
-    J = theta.shape[0]
     mu = sc[MU]
     inv_tau2 = math.exp(-2.0 * sc[ETA])
     sz = 0.0
-    for j in range(J):
-        r = theta[j] - mu
+    for j in range(z2.shape[0]):
+        r = st.theta[j] - mu
         z2[j] = r * r * inv_tau2
         sz += z2[j]
+    return sz
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def df_draw(rng, d, sc, z2, sz, lp):
+    """df | theta, mu, tau with every lambda_j integrated out: an exact draw from its discrete conditional.
+
+    A grid longer than DF_WINDOW is drawn within a random window of DF_WINDOW neighbouring points that
+    holds the current one (its start uniform among the DF_WINDOW starts that do, cells off the grid left
+    out). Every state of a window chooses that window with the same probability, so the move keeps
+    p(df | theta, mu, tau) invariant (detailed balance), at DF_WINDOW sums over the groups instead of K.
+    """
     K = d.df_grid.shape[0]
-    if K > 1:
-        # A random window of DF_WINDOW neighbouring grid points that holds the current one (its start
-        # uniform among the DF_WINDOW starts that do, cells off the grid left out), then an exact draw from
-        # the collapsed conditional restricted to it. Every state of a window chooses that window with the
-        # same probability, so the move keeps p(df | theta, mu, tau) invariant (detailed balance); it costs
-        # DF_WINDOW sums over the groups instead of K, and moves up to DF_WINDOW - 1 points a sweep.
-        lo, hi = 0, K
-        if K > DF_WINDOW:
-            start = int(sc[DF_IDX]) - int(rng.random() * DF_WINDOW)
-            lo, hi = max(start, 0), min(start + DF_WINDOW, K)
-        lp = wk.lpd
-        top = -np.inf
-        for k in range(lo, hi):
-            lp[k] = df_loglik(k, d, z2, sz, J)
-            top = max(top, lp[k])
-        total = 0.0
-        for k in range(lo, hi):
-            lp[k] = math.exp(lp[k] - top)
-            total += lp[k]
-        u = rng.random() * total
-        k_new = hi - 1
-        acc = 0.0
-        for k in range(lo, hi):
-            acc += lp[k]
-            if u < acc:
-                k_new = k
-                break
-        sc[DF_IDX] = k_new
-    df = d.df_grid[int(sc[DF_IDX])]
+    J = z2.shape[0]
+    lo, hi = 0, K
+    if K > DF_WINDOW:
+        start = int(sc[DF_IDX]) - int(rng.random() * DF_WINDOW)
+        lo, hi = max(start, 0), min(start + DF_WINDOW, K)
+    top = -np.inf
+    for k in range(lo, hi):
+        lp[k] = df_loglik(k, d, z2, sz, J)
+        top = max(top, lp[k])
+    total = 0.0
+    for k in range(lo, hi):
+        lp[k] = math.exp(lp[k] - top)
+        total += lp[k]
+    u = rng.random() * total
+    k_new = hi - 1
+    acc = 0.0
+    for k in range(lo, hi):
+        acc += lp[k]
+        if u < acc:
+            k_new = k
+            break
+    sc[DF_IDX] = k_new
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def lambda_draw(rng, d, st, wk):
+    """Every lambda_j | theta_j, mu, tau, df ~ Gamma((df + 1)/2, rate (df + z_j^2)/2) (1 at df = inf), with
+    wk.z2 holding z_j^2 at the current mu and tau; wk.inv_lam gets 1 / lambda_j."""
+    df = d.df_grid[int(st.scalars[DF_IDX])]
     lam = st.lam
     il = wk.inv_lam
+    z2 = wk.z2
+    J = lam.shape[0]
     if math.isinf(df):
         for j in range(J):
             lam[j] = 1.0
@@ -511,6 +587,22 @@ def tail_step(rng, d, st, wk):
             x = 2.0 * rng.standard_gamma(a) / (df + z2[j])
             lam[j] = x
             il[j] = 1.0 / x
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def tail_step(rng, d, st, wk):
+    """The heavy tails' moves after block A, every lambda_j integrated out until the last: df | theta, mu, tau
+    (df_draw), then (df, tau) jointly (df_tau_step), then every lambda_j | df, theta, mu, tau (lambda_draw).
+    The first two keep p(df, tau | theta, mu) invariant and the last draws lambda from its conditional:
+    together an exact partially collapsed update of (df, tau, lambda)."""
+    sc = st.scalars
+    z2 = wk.z2
+    sz = fill_z2(st, z2)
+    if d.df_grid.shape[0] > 1:
+        df_draw(rng, d, sc, z2, sz, wk.lpd)
+        if df_tau_step(rng, d, sc, z2, sz):
+            sz = fill_z2(st, z2)  # tau moved
+    lambda_draw(rng, d, st, wk)
 
 
 # ---------------------------------------------------------------------------------------------

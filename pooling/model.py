@@ -520,7 +520,8 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
         mu_kind=int(mu_kind), mu_loc=float(mu_loc), mu_scale=float(mu_scale), tau_kind=int(tau_kind),
         tau_scale=float(tau_scale), s2_shape=float(s2_shape), s2_rate=float(s2_rate), nu_grid=grid,
         nu_logprior=np.asarray(logp, dtype=np.float64), nu_table=table, layout=layout, between=int(between),
-        df_grid=df_grid, df_logprior=df_logprior, df_const=kernel.t_constants(df_grid))
+        df_grid=df_grid, df_logprior=df_logprior, df_const=kernel.t_constants(df_grid),
+        df_logq=kernel.t_quartile_logs(df_grid))
     return Problem(model, stats, center, scale, data)
 
 

@@ -619,7 +619,9 @@ def test_tail_step_draws(theta_shift):
     for i in range(draws):
         st.theta[:] = theta
         st.scalars[kernel.MU], st.scalars[kernel.ETA] = mu, eta
-        kernel.tail_step(rng, d, st, wk)
+        sz = kernel.fill_z2(st, wk.z2)
+        kernel.df_draw(rng, d, st.scalars, wk.z2, sz, wk.lpd)
+        kernel.lambda_draw(rng, d, st, wk)
         ks[i] = int(st.scalars[kernel.DF_IDX])
         lams[i] = st.lam
         assert np.allclose(wk.inv_lam, 1.0 / st.lam)
@@ -672,7 +674,8 @@ def test_df_window_move_keeps_its_target():
         for _ in range(moves):
             st.theta[:] = theta
             st.scalars[kernel.MU], st.scalars[kernel.ETA] = mu, eta
-            kernel.tail_step(rng, d, st, wk)
+            sz = kernel.fill_z2(st, wk.z2)
+            kernel.df_draw(rng, d, st.scalars, wk.z2, sz, wk.lpd)
         finals[c] = int(st.scalars[kernel.DF_IDX])
     assert np.mean(finals != starts) > 0.3
     counts = np.bincount(finals, minlength=len(grid)).astype(float)
@@ -686,3 +689,73 @@ def test_df_window_move_keeps_its_target():
     if (~keep).any():
         ew = np.append(ew, prior_only[~keep].sum() * chains)
     assert stats.chisquare(o, ew).pvalue < ALPHA
+
+
+def df_tau_logp(eta_grid, grid, weights, theta, mu, tau_prior, drop_jacobian=False):
+    """log p(df_k, eta = log tau | theta, mu) on grid x eta_grid: log w_k + log p_tau(tau) + eta + sum_j
+    log t_df_k(theta_j | mu, tau), scipy.stats.t with scale tau (scipy.stats.norm at df = inf), every lambda_j
+    integrated out (the t is their mixture). `drop_jacobian` leaves out the eta of tau = exp(eta): the
+    deliberate error."""
+    tau = np.exp(eta_grid)
+    out = np.empty((len(grid), len(eta_grid)))
+    for k, df in enumerate(grid):
+        dist = stats.norm if np.isinf(df) else stats.t(df)
+        ll = dist.logpdf((theta[None, :] - mu) / tau[:, None]).sum(axis=1) - len(theta) * np.log(tau)
+        out[k] = np.log(weights[k]) + ll + (0.0 if drop_jacobian else eta_grid)
+        if tau_prior is not None:
+            out[k] += stats.halfnorm.logpdf(tau, scale=tau_prior)
+    return out
+
+
+@pytest.mark.parametrize("tau_prior", [None, 0.8])
+def test_joint_df_tau_move_keeps_its_target(tau_prior):
+    # The Metropolis move of (df, tau) with the quartiles of the t kept in place must leave
+    # p(df, tau | theta, mu) (every lambda_j integrated out) invariant. Independent chains start at exact
+    # draws of it (df by its mass, then log tau by the inverse CDF on a fine grid) and make 6 moves; the
+    # final df (chi-square) and log tau (KS against the mixture CDF) must still follow it.
+    from scipy.integrate import cumulative_trapezoid
+
+    model = Model(within="known", **({} if tau_prior is None else {"tau": HalfNormal(tau_prior * 16.0)}))
+    p = schools_problem(model)
+    d = p.data
+    pri = internal(p, model)
+    theta = p.ybar + np.array([0.3, -0.2, 0.1, 0.0, -0.1, 0.2, -0.3, 0.05])
+    mu = float(np.mean(p.ybar))
+    grid = d.df_grid
+    weights = np.exp(d.df_logprior)
+    eta = np.linspace(-7.0, 5.0, 8001)
+    lp = df_tau_logp(eta, grid, weights, theta, mu, None if tau_prior is None else pri["tau"][1])
+    dens = np.exp(lp - lp.max())
+    mass = np.trapezoid(dens, eta, axis=1)
+    probs = mass / mass.sum()
+    cdfs = cumulative_trapezoid(dens, eta, axis=1, initial=0.0) / mass[:, None]
+    assert dens[:, [0, -1]].max() < 1e-8  # the eta grid holds the mass
+    assert probs.max() < 0.6  # spread over the grid: the test has something to see
+    rng = np.random.default_rng(2468)
+    chains, moves = 6000, 6
+    ks = rng.choice(len(grid), size=chains, p=probs)
+    etas = np.array([np.interp(rng.random(), cdfs[k], eta) for k in ks])
+    st = start_state(p)
+    wk = kernel.make_work(d)
+    moved = 0
+    for c in range(chains):
+        st.theta[:] = theta
+        st.scalars[kernel.MU], st.scalars[kernel.ETA], st.scalars[kernel.DF_IDX] = mu, etas[c], ks[c]
+        for _ in range(moves):
+            sz = kernel.fill_z2(st, wk.z2)
+            moved += kernel.df_tau_step(rng, d, st.scalars, wk.z2, sz)
+        ks[c], etas[c] = int(st.scalars[kernel.DF_IDX]), st.scalars[kernel.ETA]
+    assert moved > chains  # the move is accepted often enough to matter
+    counts = np.bincount(ks, minlength=len(grid)).astype(float)
+    keep = probs * chains >= 5
+    e, o = probs[keep] * chains, counts[keep]
+    if (~keep).any():
+        e, o = np.append(e, probs[~keep].sum() * chains), np.append(o, counts[~keep].sum())
+    assert stats.chisquare(o, e).pvalue > ALPHA
+    marginal = (cdfs * probs[:, None]).sum(axis=0)
+    assert stats.kstest(etas, lambda x: np.interp(x, eta, marginal)).pvalue > ALPHA
+    wrong = np.exp(df_tau_logp(eta, grid, weights, theta, mu, None if tau_prior is None else pri["tau"][1],
+                               drop_jacobian=True) - lp.max())
+    wm = cumulative_trapezoid(wrong, eta, axis=1, initial=0.0)
+    wmarg = wm.sum(axis=0) / wm[:, -1].sum()
+    assert stats.kstest(etas, lambda x: np.interp(x, eta, wmarg)).pvalue < ALPHA

@@ -60,7 +60,8 @@ def _known_data(ybar, v, between=0, df_grid=(math.inf,)):
     table, layout = kernel.prepare(np.ones(J), np.array([4.0]))
     return kernel.Data(2, np.ones(J), np.asarray(ybar, dtype=float), np.zeros(J), np.asarray(v, dtype=float), 0, 0.0,
                        1.0, 0, 1.0, 0.0, 0.0, np.array([4.0]), np.zeros(1), table, layout, between, grid,
-                       np.full(len(grid), -math.log(len(grid))), kernel.t_constants(grid))
+                       np.full(len(grid), -math.log(len(grid))), kernel.t_constants(grid),
+                       kernel.t_quartile_logs(grid))
 
 
 def test_log_tau_density_with_heavy_tails_equals_its_formula():
