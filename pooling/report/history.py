@@ -202,10 +202,10 @@ def _latest(h: _Runs, v, lvl: str) -> str:
         line = f"<li><strong>Against {what} ({esc(val)})</strong>: {tally} now. "
         if ch:
             shown = ", ".join(
-                f"{esc(label(h.group_labels[g]))} <span class=\"p\">"
-                + "; ".join(f"{esc(a)} → {esc(b)} at {esc(h.labels[i])}" for i, a, b in moves[-2:]) + "</span>"
-                for g, moves in ch[:10])
-            line += (f"{plural(len(ch), 'group')} changed side over the runs: {shown}"
+                f"{esc(label(h.group_labels[g]))} <span class=\"p\">{esc(moves[-1][1])} → {esc(moves[-1][2])} at "
+                f"{esc(h.labels[moves[-1][0]])}" + (f", {len(moves)} changes in all" if len(moves) > 1 else "")
+                + "</span>" for g, moves in ch[:10])
+            line += (f"{plural(len(ch), 'group')} changed side over the runs (the latest change shown): {shown}"
                      + (f" and {whole(len(ch) - 10)} more" if len(ch) > 10 else "") + ".")
         else:
             line += "No group changed side over the runs."

@@ -397,6 +397,11 @@ def _undecided(x) -> str:
     return "undecided" if x == "unsure" else ("–" if x is None else str(x))
 
 
+def _signed(x: float, show) -> str:
+    """+0.05 or −0.05 (a true minus sign), the size written by show."""
+    return ("+" if x >= 0 else "−") + show(abs(x))
+
+
 def _changes(ch: dict, v, res: Results) -> str:
     prev = ch.get("previous_run")
     b = ch.get("batches", {})
@@ -429,9 +434,10 @@ def _changes(ch: dict, v, res: Results) -> str:
             for name, h in hyp.items():
                 s = h.get("shift_in_sd")
                 bits.append(f"{esc(name)} {v(h['then_mean'])} → <strong>{v(h['now_mean'])}</strong> "
-                            f"<span class=\"p\">({'+' if h['shift'] >= 0 else '−'}{v(abs(h['shift']), 1)}"
-                            + (f", {s:+.2f} posterior sd" if s is not None else "") + ")</span>")
-            parts.append("<p><strong>Pooled figures.</strong> " + "; ".join(bits) + ".</p>")
+                            f"<span class=\"p\">({_signed(h['shift'], lambda x: v(x, 1))}"
+                            + (f", {_signed(s, lambda x: f'{x:.2f}')} posterior sd" if s is not None else "")
+                            + ")</span>")
+            parts.append("<p><strong>Pooled figures</strong> (posterior means). " + "; ".join(bits) + ".</p>")
         crossings = ([("threshold", c, "p_above") for c in ch.get("threshold_crossings", [])]
                      + [("limits", c, "p_mean_outside") for c in ch.get("limit_crossings", [])])
         if crossings:
