@@ -193,7 +193,7 @@ def build_parser() -> argparse.ArgumentParser:
     p_demo = sub.add_parser("demo", help="fit the embedded demo data (36 invented suppliers) and write a run folder")
     _add_fit_options(p_demo, data=False)
     p_demo.set_defaults(seed=1)
-    _add_store_parsers(sub)  # the store of batches: ingest, batches, withdraw, refit
+    _add_store_parsers(sub)  # the store of batches: ingest, batches, withdraw, refit, history
     return parser
 
 
@@ -285,7 +285,10 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
         raise E.Interrupted(f"stopped by the user after the run folder '{out}' was written{unrecorded}") from None
     if not res.targets_met:
         run = res.run
-        print(f"warning: diagnostics targets missed for {res.diagnostics['missed_count']} quantities after "
+        from .report.numbers import plural
+
+        missed = plural(res.diagnostics["missed_count"], "quantity", "quantities")
+        print(f"warning: diagnostics targets missed for {missed} after "
               f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
               f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
               f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')",
@@ -334,7 +337,7 @@ def _summary_args(args, stats, more, options) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------
-# the store of batches (nightly reruns): pooling ingest | batches | withdraw | refit | checkup | copy-store
+# the store of batches (nightly reruns): pooling ingest | batches | withdraw | refit | history | checkup | copy-store
 
 STORE_HELP = ("the store: a file path (SQLite; created by ingest), a PostgreSQL URL postgresql://HOST/DATABASE "
               "or a libpq service written service=NAME, either followed by #STORE to choose the store inside the "
@@ -367,8 +370,11 @@ def _add_store_parsers(sub):
     p.add_argument("store", help=STORE_HELP)
     p.add_argument("batch", help="name of the batch, as `pooling batches` shows it")
     p.add_argument("--reason", help="a note kept in the ledger")
-    p = sub.add_parser("refit", help="merge every active batch, fit, write the run folder and what changed, "
-                       "and record the run in the store")
+    p = sub.add_parser("history", help="write one page of how the answers moved over a store's recorded runs")
+    p.add_argument("store", help=STORE_HELP)
+    p.add_argument("--out", required=True, help="the page to write, for example history.html (replaced if it exists)")
+    p = sub.add_parser("refit", help="merge every active batch, fit, write the run folder (with what changed and "
+                       "the history so far) and record the run in the store")
     p.add_argument("store", help=STORE_HELP)
     _add_fit_options(p, data=False)
     f = p.add_argument_group("store")
@@ -487,9 +493,36 @@ def cmd_refit(args, argv) -> int:
             for line in short_lines(plan.report):
                 print(line)
 
+    def more(fit, res, folder):
+        report = jobs.write_changes(plan, fit, watch, folder)
+        # the history as it will stand once this run is recorded: the recorded runs and this one
+        from .report.history import HISTORY_FILE, write_history
+
+        ledger, runs = jobs.list_batches(plan.store_path)
+        write_history(folder / HISTORY_FILE, _store_name(shown), ledger,
+                      runs + [jobs.run_record(plan, fit, Path(args.out), settings)])
+        return report
+
     argv = [shown if a == args.store else a for a in argv]  # summary.json records the command as shown
-    return run_fit(args, plan.stats, argv, init=init,
-                   more=lambda fit, res, folder: jobs.write_changes(plan, fit, watch, folder), after=after)
+    return run_fit(args, plan.stats, argv, init=init, more=more, after=after)
+
+
+def _store_name(shown: str) -> str:
+    """The store as a page names it: a file's name, or the shown location of a database store."""
+    return f"'{Path(shown).name}'" if "://" not in shown and not shown.startswith("service=") else f"'{shown}'"
+
+
+def cmd_history(args, argv) -> int:
+    from .output import check_parent
+    from .report.history import write_history
+    from .store import jobs
+
+    shown = _shown(args.store)
+    ledger, runs = jobs.list_batches(args.store)
+    out = check_parent(Path(args.out))
+    write_history(out, _store_name(shown), ledger, runs)
+    print(f"wrote '{out}': {len(runs)} recorded runs of the store '{shown}'")
+    return E.EXIT_OK
 
 
 def cmd_checkup(args, argv) -> int:
@@ -516,7 +549,7 @@ def cmd_copy_store(args, argv) -> int:
 
 
 STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_withdraw, "refit": cmd_refit,
-                  "checkup": cmd_checkup, "copy-store": cmd_copy_store}
+                  "history": cmd_history, "checkup": cmd_checkup, "copy-store": cmd_copy_store}
 
 
 def _on_sigterm(signum, frame):

@@ -103,15 +103,16 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
     return _clean(out)
 
 
-def write_results_files(res, folder: Path, command: list[str] | None = None) -> dict:
-    """summary.json, groups.csv and report.html of a Results, into `folder`; returns the summary."""
+def write_results_files(res, folder: Path, command: list[str] | None = None, changes: dict | None = None) -> dict:
+    """summary.json, groups.csv and report.html of a Results, into `folder`; returns the summary. `changes`: a
+    refit's change report (store/changes.py), which the page then opens with."""
     from .report import render_html
     from .report.export import write_csv
 
     summary = summary_dict(res, command)
     write_json(folder / "summary.json", summary)
     write_csv(res.table, folder / "groups.csv")
-    (folder / "report.html").write_text(render_html(res, summary["created_utc"], command), encoding="utf-8")
+    (folder / "report.html").write_text(render_html(res, summary["created_utc"], command, changes), encoding="utf-8")
     return summary
 
 
@@ -138,6 +139,22 @@ def dumps_readable(x, level: int = 0) -> str:
     if isinstance(x, list) and x and all(isinstance(v, (dict, list)) for v in x):
         return "[\n" + ",\n".join(inner + _flat(v) for v in x) + "\n" + pad + "]"
     return _flat(x)
+
+
+def check_parent(path: Path) -> Path:
+    """Refuse, before any work, a single output file that cannot be written: a folder in its place, or a parent
+    folder that cannot be created or written. An existing file is replaced (atomically, by the writer)."""
+    path = Path(path)
+    if path.is_dir():
+        raise OutputError(f"cannot write '{path}': it is a folder; give a file name such as history.html")
+    parent = path.resolve().parent
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create the folder '{parent}': {exc.strerror}") from None
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputError(f"cannot write '{path}': the folder '{parent}' is not writable")
+    return path
 
 
 def check_target(out: Path, replace: bool) -> Path:
@@ -309,7 +326,8 @@ class _Background:
 
 def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
     """Write the run folder as one atomic folder: draws.nc (from the fit), summary.json, groups.csv and
-    report.html (from its results), and whatever `extra(folder)` adds."""
+    report.html (from its results), and whatever `extra(folder)` adds. When `extra` returns a dict (a refit's
+    change report), report.html opens with it, so extra runs first."""
     parts = draws_parts(fit)
 
     def fill(tmp: Path):
@@ -319,9 +337,8 @@ def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None
         # before both are done.
         writer = _Background(_write_draws, parts, tmp / "draws.nc")
         try:
-            write_results_files(res, tmp, command)
-            if extra is not None:
-                extra(tmp)
+            added = extra(tmp) if extra is not None else None
+            write_results_files(res, tmp, command, added if isinstance(added, dict) else None)
         finally:
             writer.join()  # also on Ctrl-C or an error, so the folder is never removed under the writer
         writer.reraise()

@@ -84,6 +84,8 @@ COLUMNS = {
     "bias_low": "lower end of the {L} credible interval of the bias",
     "bias_high": "upper end of the {L} credible interval of the bias",
     "p_bias_over": "P(|theta_j - mu| > allowed bias)",
+    "bias_side": "over when p_bias_over is at least decide_at, within when it is at most 1 - decide_at, else "
+                 "undecided",
     "tail_weight": "posterior mean of lambda_j, the group's weight in the heavy-tailed between-group distribution "
                    "theta_j ~ N(mu, tau^2 / lambda_j): about 1 for an ordinary group; a weight w lets the group's "
                    "deviation from mu be about 1/sqrt(w) times as wide as tau (0.04: five times)",
@@ -553,6 +555,7 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
     cols[f"bias_high_{L}"] = g["high"]["bias"] * k
     if o.allowed_bias is not None:
         cols["p_bias_over"] = h[A.H_BIAS] / S
+        cols["bias_side"] = _decide(cols["p_bias_over"], 1.0 - cols["p_bias_over"], o.decide_at, "over", "within")
     if p.heavy:
         cols["tail_weight"] = g["tail_weight"]
         cols["p_outlying"] = h[A.H_OUTLYING] / S

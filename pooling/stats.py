@@ -621,6 +621,9 @@ def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, de
 def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", **read) -> GroupStats:
     """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1).
 
+    A group of one measurement has no sample sd, and tables write it as an empty cell: with n = 1 an empty sd
+    is taken as it is meant (M2 = 0). Such a group informs its mean theta_j, not the within-group variance.
+
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
     if not isinstance(data, pd.DataFrame):
         source = str(data)
@@ -633,7 +636,11 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
     _check_unique(labels, source, group)
     nv = _check_values(data[n], source, n, 0)
     mv = _check_values(data[mean], source, mean, 0)
-    sv = _check_values(data[sd], source, sd, 0)
+    sd_cells = data[sd]
+    single_empty = (nv == 1) & _empty_cells(sd_cells)
+    if single_empty.any():  # n = 1 with no sd: nothing to check, and M2 = 0 whatever the cell says
+        sd_cells = sd_cells.astype(object).where(~single_empty, 0.0)
+    sv = _check_values(sd_cells, source, sd, 0)
     for i in range(len(nv)):
         if nv[i] < 1 or nv[i] != np.round(nv[i]):
             raise InputError(f"bad input in {_where(source)}, column '{n}', group {_show(labels.iloc[i])}: "
@@ -645,6 +652,14 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
     mv, sv = mv / unit, sv / unit
     m2 = sv * sv * np.maximum(nv - 1, 0)
     return GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
+
+
+def _empty_cells(col: pd.Series) -> np.ndarray:
+    """True where a cell holds nothing: missing, or only white space."""
+    empty = col.isna().to_numpy()
+    if col.dtype == object or str(col.dtype) == "string":
+        empty |= col.astype("string").str.strip().fillna("").eq("").to_numpy(dtype=bool)
+    return empty
 
 
 def from_estimates(data, group: str, estimate: str, std_error: str, source: str = "<frame>",

@@ -1,53 +1,29 @@
 """The short table printed after a run (plain text, no colours), from a results.Results: the same for both ways
-of running. It presents; it computes nothing from draws."""
+of running. It presents; it computes nothing from draws.
+
+What it follows: the interval level (columns named by it), --best (best first), the threshold and limit sides
+(decision columns and a line each, naming the few groups on the smaller sides), the interlaboratory signals when
+the groups are labs, the number rules of report/numbers.py (decimals from the data's own spread, no scientific
+notation for ordinary numbers, probabilities whose ends are told apart), estimates without n, and a missed-targets
+line that says what to do.
+"""
 from __future__ import annotations
 
-import math
 import sys
 
 import numpy as np
 
 from .asked import level_label
+from .report.numbers import Values, ess, plural, prob, rhat, sig, typical_sd, whole
 
 MAX_ROWS = 12
+NAMED = 5  # names listed on a side of a decision before "and N more"
 
-
-def plural(n, one: str, many: str | None = None) -> str:
-    """'1 group', '2 groups', '1,234 measurements', '58.9 measurements' (down-weighted counts)."""
-    x = float(n)
-    word = one if x == 1 else (many or one + "s")
-    text = f"{int(x):,}" if x == int(x) else f"{x:,.1f}"
-    return f"{text} {word}"
-
-
-class Numbers:
-    """Numbers shown to the precision of the data's own spread: decimals from a typical posterior sd (two
-    significant digits of it), so 1e7 + 0.123 with an sd of 0.01 prints 10000000.123, never '1e+07'."""
+class Numbers(Values):
+    """Values for the terminal: decimals from a typical posterior sd, no digit-group separators."""
 
     def __init__(self, typical_sd: float):
-        if typical_sd > 0 and math.isfinite(typical_sd):
-            self.dec = int(min(12, max(0, 1 - math.floor(math.log10(typical_sd)))))
-        else:
-            self.dec = 4
-
-    def __call__(self, x, extra: int = 0) -> str:
-        if x is None or not np.isfinite(x):
-            return "-"
-        text = f"{x:.{self.dec + extra}f}"
-        if text.startswith("-") and not any(c in "123456789" for c in text):
-            text = text[1:]
-        return text
-
-
-def prob(x) -> str:
-    """A probability to three decimals; below 0.0005 '<0.001', above 0.9995 '>0.999' (so 0.9995 never reads 1.000)."""
-    if x is None or not np.isfinite(x):
-        return "-"
-    if x < 0.0005:
-        return "<0.001"
-    if x >= 0.9995:
-        return ">0.999" if x < 1.0 else "1"
-    return f"{x:.3f}"
+        super().__init__(typical_sd, sep="", dash="-")
 
 
 def _weight(x) -> str:
@@ -59,6 +35,22 @@ def _clip(label: str, width: int = 24) -> str:
     return label if len(label) <= width else label[: width - 1] + "…"
 
 
+def _side_line(t, col: str, sides: tuple[str, ...], what: str, decide_at: float, noun: str) -> str:
+    """'threshold 400: 46 groups above, 1 below (V47), 13 undecided; a side needs ...': a side other than the
+    largest names its groups when it holds at most NAMED."""
+    values = t[col].to_numpy()
+    counts = {s: int(np.sum(values == s)) for s in sides}
+    biggest = max(counts, key=lambda s: counts[s])
+    bits = []
+    for i, s in enumerate(sides):
+        c = counts[s]
+        text = f"{plural(c, noun)} {s}" if i == 0 else f"{whole(c)} {s}"
+        if 0 < c <= NAMED and s != biggest:
+            text += " (" + ", ".join(_clip(x, 20) for x in t.loc[values == s, "group"].tolist()) + ")"
+        bits.append(text)
+    return f"{what}: " + ", ".join(bits) + f"; a side needs a probability of at least {decide_at:g}"
+
+
 def print_results(res, out, stream=None) -> None:
     """The terminal summary of a run whose folder is `out`."""
     stream = stream or sys.stdout
@@ -67,78 +59,102 @@ def print_results(res, out, stream=None) -> None:
     st = p.stats
     run = res.run
     lvl = level_label(o.level)
+    noun = "lab" if o.interlab else "group"
 
     def w(text=""):
         print(text, file=stream)
 
-    num = Numbers(float(np.median(t["theta_sd"])) if len(t) else 1.0)
+    num = Numbers(typical_sd(t["theta_sd"]) if len(t) else 1.0)
     w(f"model: {p.model.within} within-group variances, {p.model.between.name} between-group distribution; priors: "
       + "; ".join(f"{k} {v}" for k, v in p.model.priors().items() if k != "between"))
-    data = plural(st.J, "group") + (f", {plural(st.N, 'measurement')}" if st.kind == "raw" else "")
-    mode = (f"; summary mode: every draw kept for the hyperparameters and {res.summary['kept_groups']} groups"
+    data = plural(st.J, noun) + (f", {plural(st.N, 'measurement')}" if st.kind == "raw" else
+                                 ", estimates with standard errors")
+    mode = (f"; summary mode: every draw kept for the hyperparameters and {plural(res.summary['kept_groups'], 'group')}"
             if res.mode == "summary" else "")
     w(f"data: {data}; {run['chains']} chains x {run['draws_per_chain']} draws, seed {run['seed']}{mode}")
     w()
-    head = f"{'':8}{'mean':>14}{'sd':>12}{lvl + ' interval':>31}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}"
+    head = (f"{'':8}{'median':>14}{lvl + ' interval':>31}{'mean':>14}{'sd':>12}{'R-hat':>8}{'bulk ESS':>10}"
+            f"{'tail ESS':>10}")
     w(head)
     for name, s in res.hyper.items():
-        f = (lambda x: f"{x:.4g}") if name == "nu" else num
+        f = (lambda x, extra=0: sig(x, 4, dash="-")) if name == "nu" else num
         interval = f"{f(s['low'])} to {f(s['high'])}"
-        w(f"{name:8}{f(s['mean']):>14}{f(s['sd']) if name == 'nu' else num(s['sd'], 1):>12}{interval:>31}"
-          f"{s['rhat']:>8.3f}{s['bulk_ess']:>10.0f}{s['tail_ess']:>10.0f}")
+        w(f"{name:8}{f(s['median']):>14}{interval:>31}{f(s['mean']):>14}{f(s['sd'], 1):>12}"
+          f"{rhat(s['rhat'], '-'):>8}{ess(s['bulk_ess'], '-'):>10}{ess(s['tail_ess'], '-'):>10}")
     if res.tail is not None:
         tl = res.tail
+        median = "normal" if not np.isfinite(tl["median_df"]) else f"{tl['median_df']:g}"
         df_txt = (f"df fixed at {tl['fixed_df']:g}" if tl["fixed_df"] is not None else
-                  f"df median {tl['median_df']:g}, P(normal) {prob(tl['p_normal'])}")
+                  f"df median {median}, P(normal) {prob(tl['p_normal'], '-')}")
         flagged = tl["outlying"]
         names = ", ".join(_clip(x, 20) for x in flagged[:5]) + (" ..." if len(flagged) > 5 else "")
-        w(f"heavy tails: {df_txt}; {plural(len(flagged), 'group')} flagged outlying" + (f": {names}" if flagged else ""))
-    # the groups, best first
-    order = np.argsort(t["rank_mean"].to_numpy(), kind="stable")
+        w(f"heavy tails: {df_txt}; {plural(len(flagged), noun)} flagged outlying" + (f": {names}" if flagged else ""))
+    # the groups: best first, or for labs in a round the largest bias first
+    if o.interlab:
+        order = np.argsort(-np.abs(t["bias_mean"].to_numpy(dtype=float)), kind="stable")
+    else:
+        order = np.argsort(t["rank_mean"].to_numpy(), kind="stable")
     rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2:]])
     lo, hi = res.col("theta_low"), res.col("theta_high")
     known = st.kind == "known"
-    cols = [("group", 24, "<"), ("n", 7, ">")] if not known else [("group", 24, "<")]
-    cols += [("own mean", 14, ">"), ("posterior", 14, ">"), (f"{lvl} interval", 31, ">"), ("shrink", 8, ">"),
-             ("P(best)", 8, ">")]
+    cols = [(noun, 24, "<"), ("n", 7, ">")] if not known else [(noun, 24, "<")]
+    cols += [("own mean", 14, ">"), ("posterior", 14, ">"), (f"{lvl} interval", 31, ">")]
+    cols += [("bias", 12, ">"), ("z", 8, ">")] if o.interlab else [("shrink", 8, ">"), ("P(best)", 8, ">")]
     if o.threshold is not None:
         cols.append((f"vs {o.threshold:g}", 11, ">"))
     if o.limits:
         cols.append(("limits", 11, ">"))
+    if o.interlab and o.allowed_bias is not None:
+        cols.append(("bias side", 11, ">"))
     if "outlying" in t:
         cols.append(("outlying", 9, ">"))
     w()
-    w("groups, best first (" + ("highest" if o.best == "highest" else "lowest") + " is best; shrink: the weight "
-      "of the pooled mean in the group's estimate, 0 own mean to 1 pooled mean)"
-      + ("" if len(order) <= MAX_ROWS else f"; the {MAX_ROWS // 2} best and the {MAX_ROWS // 2} worst of {len(order):,}"))
+    half = MAX_ROWS // 2
+    cut = "" if len(order) <= MAX_ROWS else f"; the first {half} and the last {half} of {whole(len(order))}"
+    if o.interlab:
+        w(f"labs, largest bias first (bias: posterior mean of theta - mu; z against x_pt and sigma_pt){cut}")
+    else:
+        w(f"{noun}s, best first (" + ("highest" if o.best == "highest" else "lowest") + " is best; shrink: the weight "
+          f"of the pooled mean in the estimate, 0 own mean to 1 pooled mean){cut}")
     w("".join(f"{name:{align}{width}}" for name, width, align in cols))
     for i, j in enumerate(rows):
         if len(order) > MAX_ROWS and i == MAX_ROWS // 2:
             w("...")
         cells = [_clip(t["group"].iat[j])]
         if not known:
-            n = float(t["n"].iat[j])
-            cells.append(f"{int(n)}" if n == int(n) else f"{n:.1f}")
-        cells += [num(t["raw_mean"].iat[j]), num(t["theta_mean"].iat[j]),
-                  f"{num(t[lo].iat[j])} to {num(t[hi].iat[j])}", _weight(t["shrink_weight"].iat[j]),
-                  prob(t["p_best"].iat[j])]
+            cells.append(whole(t["n"].iat[j], "-").replace(",", ""))
+        cells += [num(t["raw_mean"].iat[j]), num(t["theta_mean"].iat[j]), f"{num(t[lo].iat[j])} to {num(t[hi].iat[j])}"]
+        if o.interlab:
+            z = t["z_score"].iat[j]
+            cells += [num(t["bias_mean"].iat[j]), f"{z:.2f}" if np.isfinite(z) else "-"]
+        else:
+            cells += [_weight(t["shrink_weight"].iat[j]), prob(t["p_best"].iat[j], "-")]
         if o.threshold is not None:
             cells.append(str(t["threshold_side"].iat[j]))
         if o.limits:
             cells.append(str(t["limits_side"].iat[j]))
+        if o.interlab and o.allowed_bias is not None:
+            cells.append(str(t["bias_side"].iat[j]))
         if "outlying" in t:
             cells.append("yes" if t["outlying"].iat[j] else "")
         w("".join(f"{c:{align}{width}}" for c, (_, width, align) in zip(cells, cols)))
     if o.threshold is not None:
-        side = t["threshold_side"]
-        w(f"threshold {o.threshold:g}: {plural(int(np.sum(side == 'above')), 'group')} above and "
-          f"{plural(int(np.sum(side == 'below')), 'group')} below with probability >= {o.decide_at:g}; "
-          f"{int(np.sum(side == 'undecided')):,} undecided")
+        w(_side_line(t, "threshold_side", ("above", "below", "undecided"), f"threshold {o.threshold:g}", o.decide_at,
+                     noun))
     if o.limits:
-        side = t["limits_side"]
-        w(f"limits: by their means, {plural(int(np.sum(side == 'outside')), 'group')} outside and "
-          f"{plural(int(np.sum(side == 'inside')), 'group')} inside with probability >= {o.decide_at:g}; "
-          f"{int(np.sum(side == 'undecided')):,} undecided")
+        w(_side_line(t, "limits_side", ("outside", "inside", "undecided"), "limits, by the mean", o.decide_at, noun))
+    if o.interlab:
+        sig_ = t["z_signal"].to_numpy()
+        act = t.loc[sig_ == "action", "group"].tolist()
+        warn = t.loc[sig_ == "warning", "group"].tolist()
+        def few(names):
+            return f" ({', '.join(_clip(x, 20) for x in names[:NAMED])}{' ...' if len(names) > NAMED else ''})" \
+                if names else ""
+
+        w(f"z-scores: {plural(len(act), 'action signal')}{few(act)}, {plural(len(warn), 'warning')}{few(warn)}")
+        if o.allowed_bias is not None:
+            w(_side_line(t, "bias_side", ("over", "within", "undecided"), f"bias beyond +-{o.allowed_bias:g}",
+                         o.decide_at, noun))
     w()
     diag = res.diagnostics
     tg = diag["targets"]
@@ -150,12 +166,15 @@ def print_results(res, out, stream=None) -> None:
         what = worst.get("name", "")
         if "group" in worst:
             what += f" of {_clip(worst['group'], 20)}"
+        bulk = worst.get("bulk_ess")
         w(f"diagnostics targets MISSED for {plural(diag['missed_count'], 'quantity', 'quantities')} after "
-          f"{run['draws_per_chain']} draws per chain (worst: {what}, R-hat {worst.get('rhat', float('nan')):.3f}, "
-          f"bulk ESS {worst.get('bulk_ess', float('nan')):.0f}); run again with more draws, for example "
-          f"--draws {2 * run['draws_requested']} --max-draws {8 * run['draws_requested']}, or a proper prior on tau")
+          f"{run['draws_per_chain']} draws per chain (worst: {what}, R-hat {rhat(worst.get('rhat'), '-')}, bulk ESS "
+          f"{ess(bulk, '-')}); do not use these results yet: run again with more draws, "
+          f"for example --draws {2 * run['draws_requested']} --max-draws {8 * run['draws_requested']}, or with a "
+          "proper prior on tau (--tau half-cauchy:SCALE)")
     if res.mode == "summary":
         cr = res.summary["figures"]["classic_rhat"]
         if cr["groups"]:
-            w(f"all groups, classic R-hat of theta: largest {cr['max']:.4g}, {cr['above_1.01']:,} at 1.01 or more")
+            w(f"all groups, classic R-hat of theta: largest {rhat(cr['max'], '-')}, {whole(cr['above_1.01'])} at 1.01 "
+              "or more")
     w(f"run folder: {out}" + (" (groups.csv has every group)" if res.mode == "summary" else ""))

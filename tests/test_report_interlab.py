@@ -207,7 +207,8 @@ def test_random_effects_dl_on_the_eight_schools():
 
 
 def test_known_structure_report_shows_the_random_effects_comparator(tmp_path):
-    # The report of estimates with standard errors carries the comparator (summary.json and page).
+    # The report of estimates with standard errors carries the comparator (summary.json, and the page when the
+    # groups are labs in a round: --labs).
     import json
 
     from pooling import cli
@@ -218,7 +219,7 @@ def test_known_structure_report_shows_the_random_effects_comparator(tmp_path):
     path.write_text("school,effect,se\n" + "".join(f"S{j},{a},{b}\n" for j, (a, b) in enumerate(zip(y, se))))
     out = tmp_path / "run"
     code = cli.main(["fit", str(path), "--group", "school", "--estimate", "effect", "--std-error", "se",
-                     "--tau", "half-cauchy:10", "--out", str(out), "--seed", "1", "--quiet"])
+                     "--tau", "half-cauchy:10", "--out", str(out), "--seed", "1", "--quiet", "--labs"])
     assert code in (0, 3)
     re_ = json.loads((out / "summary.json").read_text())["interlab"]["random_effects"]
     assert round(re_["consensus"], 1) == 7.7

@@ -223,3 +223,55 @@ def test_the_run_is_recorded_only_once_its_folder_is_in_place(world, monkeypatch
         from pooling.output import check_target
 
         check_target(d / "run-1", replace=False)
+
+
+def test_the_first_refit_page_history_and_the_recorded_intervals(world, tmp_path):
+    d, store, _ = world
+    page = (d / "run-1" / "report.html").read_text(encoding="utf-8")
+    # the page of a refit opens with what changed (here: the first recorded run) and says how batches count
+    assert page.index('id="changes"') < page.index('id="verdict"')
+    assert "First recorded run of this store" in page and "every active batch counts fully" in page
+    # the run folder holds the history as it stood with this run
+    hist = (d / "run-1" / "history.html").read_text(encoding="utf-8")
+    assert "<script" not in hist.lower() and "this run" in hist
+    # the store recorded each group's mean and interval at the watched level (for the history page), the same
+    # numbers the change report compares against
+    with open_store(store) as st:
+        first = st.runs()[0]
+    gi = first.summary["group_intervals"]
+    table = pd.read_csv(d / "run-1" / "changes.csv", keep_default_na=False, na_values=[""]).set_index("group")
+    assert gi["level"] == 0.95 and len(gi["labels"]) == len(table)
+    for lab, mean in zip(gi["labels"], gi["mean"]):
+        assert mean == pytest.approx(table.loc[lab, "mean_now"], rel=1e-12)
+    assert gi["p_above"] == pytest.approx([table.loc[lab, "p_above_now"] for lab in gi["labels"]], abs=1e-12)
+    assert "p_mean_outside" not in gi  # no limits were watched
+    # `pooling history` writes the page from the recorded runs; a folder in its place is refused (exit 6)
+    out = tmp_path / "pages" / "history.html"
+    assert cli.main(["history", str(store), "--out", str(out)]) == 0
+    text = out.read_text(encoding="utf-8")
+    with open_store(store) as st:
+        n_runs = len(st.runs())
+    assert f"{n_runs} run" in text and "Each group over the runs" in text
+    (tmp_path / "taken").mkdir()
+    assert cli.main(["history", str(store), "--out", str(tmp_path / "taken")]) == 6
+
+
+def test_history_of_runs_recorded_before_group_intervals():
+    # Runs recorded by an earlier version kept no per-group intervals: the page still draws mu and tau and says so.
+    from pooling.report.history import render_history
+    from pooling.store.base import BatchInfo, RunRecord
+
+    ledger = [BatchInfo(i, f"b{i}.csv", "0" * 64, f"b{i}.csv", 10, 3, f"2024-06-0{i}T00:00:00+00:00",
+                        f"2024-06-0{i}T01:00:00+00:00", "withdrawn" if i == 1 else "active") for i in (1, 2, 3)]
+    hyper = {"mu": {"mean": 10.0, "sd": 0.5, "q_lo": 9.0, "q_hi": 11.0},
+             "tau": {"mean": 1.0, "sd": 0.3, "q_lo": 0.5, "q_hi": 1.6}}
+    runs = [RunRecord(f"2024-06-0{k}T02:00:00+00:00", f"/runs/{k}", "x", ids, f"2024-06-0{k}T00:00:00+00:00", None,
+                      True, {"hyperparameters": hyper, "watch": {"threshold": 10.0, "level": 0.9}, "groups": 3},
+                      id=k)
+            for k, ids in ((1, (1, 2)), (2, (2, 3)))]
+    page = render_history("'old.store'", ledger, runs)
+    assert "2 runs from 2024-06-01 to 2024-06-02" in page
+    assert "None of the recorded runs kept its groups" in page
+    assert "withdrawn or replaced b1.csv (withdrawn)" in page
+    assert page.count("<svg") == 1
+    assert "no recorded run yet" in render_history("'new.store'", ledger, [])

@@ -99,11 +99,12 @@ def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assign
     return out
 
 
-def render_html(res, created: str | None = None, command=None) -> str:
-    """report.html as a string, from computed results (pooling.results.compute)."""
+def render_html(res, created: str | None = None, command=None, changes: dict | None = None) -> str:
+    """report.html as a string, from computed results (pooling.results.compute); `changes`: a refit's change
+    report, shown first."""
     from .page import render
 
-    return render(res, created, command)
+    return render(res, created, command, changes)
 
 
 def write_report(fit, folder, options: ReportOptions | None = None, command=None):

@@ -78,16 +78,27 @@ def _outlying(table) -> np.ndarray:
     return table["outlying"].to_numpy(dtype=bool) if "outlying" in table else np.zeros(len(table), dtype=bool)
 
 
+def marker_size(table) -> tuple[np.ndarray, str]:
+    """What a group's marker area shows: n, or, for estimates with standard errors (no n), the precision
+    1/se^2, the weight the estimate carries."""
+    if "std_error" in table:
+        se = table["std_error"].to_numpy(dtype=float)
+        with np.errstate(divide="ignore"):
+            return 1.0 / se ** 2, "area ∝ 1/se²"
+    return table["n"].to_numpy(dtype=float), "area ∝ n"
+
+
 def shrinkage(table, mu_mean: float, title: str = "") -> str:
-    """Each group's own mean pulled to its posterior mean; markers sized by n; mu drawn as a line; groups
-    flagged outlying (heavy tails) ringed."""
+    """Each group's own mean pulled to its posterior mean; markers sized by n (by 1/se^2 for estimates); mu
+    drawn as a line; groups flagged outlying (heavy tails) ringed."""
     J = len(table)
+    size, size_key = marker_size(table)
     if J <= MANY:
         order = np.argsort(table["theta_mean"].to_numpy(), kind="stable")
         t = table.iloc[order]
         y = np.arange(J, dtype=float)
         raw, post = t["raw_mean"].to_numpy(dtype=float), t["theta_mean"].to_numpy(dtype=float)
-        area = _marker_area(t["n"].to_numpy(dtype=float), 200.0)
+        area = _marker_area(size[order], 200.0)
         h = _rows_height(J, 22.0 if title else 0.0)
         c = Canvas(WIDE, h, "shrinkage", "Each group's own mean and its posterior mean")
         p = c.panel(0, 0, WIDE, h, title=title, xlabel="theta", yticks=(y, _labels(t["group"])), ygrid=False,
@@ -97,7 +108,7 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
         post_area = 18.0
         p.arrows(raw[moved], y[moved], post[moved], y[moved], MUTED, 1.1, head=6.0,
                  shrink_start=np.sqrt(area[moved] / np.pi) + 1.0, shrink_end=np.sqrt(post_area / np.pi) + 0.5)
-        p.points(raw, y, area, fill=WHITE, stroke=RAW, stroke_width=1.6, key="group's own mean (area ∝ n)",
+        p.points(raw, y, area, fill=WHITE, stroke=RAW, stroke_width=1.6, key=f"group's own mean ({size_key})",
                  role="own-mean")
         p.points(post, y, post_area, fill=POST, key="posterior mean", role="posterior-mean")
         out = _outlying(t)
@@ -106,14 +117,14 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
                      key="flagged outlying", role="outlying")
     else:
         raw, post = table["raw_mean"].to_numpy(dtype=float), table["theta_mean"].to_numpy(dtype=float)
-        area = _marker_area(table["n"].to_numpy(dtype=float), 40.0)
+        area = _marker_area(size, 40.0)
         c = Canvas(720, 580 + (22 if title else 0), "shrinkage", "Posterior mean against own mean, every group")
         p = c.panel(0, 0, 720, 580 + (22 if title else 0), title=title, xlabel="group's own mean",
                     ylabel="posterior mean")
         lo, hi = np.nanmin(raw), np.nanmax(raw)
         p.line([lo, hi], [lo, hi], MUTED, 1.2, key="no pooling (posterior = own mean)")
         p.hline(mu_mean, POOL, 1.5, "dashed", key="complete pooling (mu)")
-        p.points(raw, post, area, fill=POST, opacity=0.45, key="group (area ∝ n)", role="posterior-mean")
+        p.points(raw, post, area, fill=POST, opacity=0.45, key=f"group ({size_key})", role="posterior-mean")
         out = _outlying(table)
         if out.any():
             p.points(raw[out], post[out], 90.0, fill="none", stroke=LIMIT, stroke_width=1.6,
@@ -159,25 +170,35 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
 
 def rank_heat(matrix: np.ndarray, labels, columns) -> str:
     """P(rank = r) as a heat map: groups down the side in order of mean rank, ranks across."""
+    return heat(matrix, labels, columns, "rank (1 = best)", "rank_heat", "Probability of each rank, by group",
+                sqrt_scale=True)
+
+
+def heat(matrix: np.ndarray, labels, columns, xlabel: str, name: str, description: str,
+         sqrt_scale: bool = False, vmax: float | None = None) -> str:
+    """A matrix of probabilities as coloured cells: rows down the side, columns across the top. sqrt_scale:
+    colours on a square-root scale (with many groups most probabilities are small, and they are the story)."""
     matrix = np.asarray(matrix, dtype=float)
     rows, cols = matrix.shape
-    vmax = max(0.05, float(np.nanmax(matrix))) if matrix.size else 0.05
-    # a square-root scale: with many groups most probabilities are small, and they are the story
-    colors = heat_hex(np.sqrt(np.clip(np.nan_to_num(matrix) / vmax, 0.0, 1.0)))
+    if vmax is None:
+        vmax = max(0.05, float(np.nanmax(matrix))) if np.isfinite(matrix).any() else 0.05
+    frac = np.clip(np.nan_to_num(matrix) / vmax, 0.0, 1.0)
+    colors = heat_hex(np.sqrt(frac) if sqrt_scale else frac)
     w = max(560.0, min(WIDE, 300.0 + 22.0 * cols))
     top = 56.0
     h = max(240.0, ROW * rows + top + 14.0)
-    c = Canvas(w, h, "rank_heat", "Probability of each rank, by group")
+    c = Canvas(w, h, name, description)
     step = max(1, int(np.ceil(cols / 20)))
     ticks = np.arange(0, cols, step)
-    p = c.panel(0, 0, w, h, xlabel="rank (1 = best)", xside="top", flip_y=True, frame=False, xgrid=False,
+    p = c.panel(0, 0, w, h, xlabel=xlabel, xside="top", flip_y=True, frame=False, xgrid=False,
                 ygrid=False, xlim=(-0.5, cols - 0.5), ylim=(-0.5, rows - 0.5),
                 xticks=(ticks, [str(columns[i]) for i in ticks]), yticks=(np.arange(rows), _labels(labels)))
     p.minimum["top"] = top  # room for the rank labels and the axis label above the cells
     p.cells(np.arange(cols + 1) - 0.5, np.arange(rows + 1) - 0.5, colors, skip=HEAT_STOPS[0], role="cells")
     vals, labs, _ = nice_ticks(0.0, vmax)
     keep = vals <= vmax * (1 + 1e-9)
-    p.colorbar(HEAT_STOPS, np.sqrt(vals[keep] / vmax), [x for x, k in zip(labs, keep) if k], label="probability",
+    where = np.sqrt(vals[keep] / vmax) if sqrt_scale else vals[keep] / vmax
+    p.colorbar(HEAT_STOPS, where, [x for x, k in zip(labs, keep) if k], label="probability",
                height=min(260.0, ROW * rows))
     return c.svg()
 
@@ -266,15 +287,19 @@ def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | Non
         made.append(p)
         at += each
     if sd is not None:
-        p = c.panel(at, 0, each, h, title="within-group sd", xlabel="groups with n ≥ 2, by replicated median",
-                    xpad=0.01)
+        p = c.panel(at, 0, each, h, title="within-group sd", ylabel="sd",
+                    xlabel="groups with n ≥ 2, in order of replicated median sd", xpad=0.01)
         order = np.argsort(sd["median"], kind="stable")
         x = np.arange(len(order), dtype=float)
         many = len(order) > MANY
-        p.band(x, np.asarray(sd["low"])[order], np.asarray(sd["high"])[order], POST, 0.22, step=not many,
-               key=f"replicated, {sd['level']:.0%}", role="replicated")
-        p.points(x, np.asarray(sd["observed"])[order], 8.0 if many else 16.0, fill=RAW, key="observed",
-                 role="observed")
+        lo, hi = np.asarray(sd["low"])[order], np.asarray(sd["high"])[order]
+        obs = np.asarray(sd["observed"])[order]
+        p.band(x, lo, hi, POST, 0.22, step=not many, key=f"replicated, {sd['level']:.0%}", role="replicated")
+        inside = (obs >= lo) & (obs <= hi)
+        p.points(x[inside], obs[inside], 8.0 if many else 16.0, fill=RAW, key="observed", role="observed")
+        if (~inside).any():
+            p.points(x[~inside], obs[~inside], 12.0 if many else 22.0, fill=LIMIT, key="observed, outside its band",
+                     role="observed-outside")
         made.append(p)
     if len(made) >= 2:
         c.align(*made, sides="top bottom")
@@ -324,6 +349,20 @@ def histograms(t, mu_mean: float) -> str:
     return c.svg()
 
 
+PAIRS_AS_TABLE = 8  # head to head: up to this many groups a table of numbers, beyond it a picture
+
+
+def constant_draws(named: dict) -> list[str]:
+    """Names whose every draw is the same value (a fixed nu, or one pinned at the end of its grid): a trace
+    of them is a flat line that says nothing."""
+    out = []
+    for k, v in named.items():
+        x = np.asarray(v, dtype=float)
+        if x.size and np.nanmin(x) == np.nanmax(x):
+            out.append(k)
+    return out
+
+
 def make_figures(res) -> dict[str, str]:
     """Every picture of a Results, as SVG text."""
     o, t = res.options, res.table
@@ -339,7 +378,93 @@ def make_figures(res) -> dict[str, str]:
         figs["predictive"] = predictive(ch.get("spread"), ch.get("sd"), res.labels, ch.get("extreme"))
     else:
         figs["histograms"] = histograms(t, mu)
-    figs["traces"] = hyper_traces({k: v for k, v in res.hyper_draws.items() if k != "within_sd"})
+    named = {k: v for k, v in res.hyper_draws.items() if k != "within_sd"}
+    flat = constant_draws(named)
+    moving = {k: v for k, v in named.items() if k not in flat}
+    if moving:
+        figs["traces"] = hyper_traces(moving)
     if res.tail is not None and res.tail["fixed_df"] is None:
         figs["df"] = df_posterior(res.tail["grid"], res.tail["prior"], res.tail["posterior"])
+    if res.pairs is not None and len(res.pairs) > PAIRS_AS_TABLE:
+        names = [plain(x, 18) for x in res.pairs.index]
+        figs["pairs"] = heat(res.pairs.to_numpy(dtype=float), names, names, "column group",
+                             "head_to_head", "P(theta of the row group > theta of the column group)", vmax=1.0)
     return figs
+
+
+# ---------------------------------------------------------------------------------------------
+# the history of a store: runs along x
+
+def _run_ticks(labels: list[str], most: int = 10) -> tuple[np.ndarray, list[str]]:
+    """At most `most` evenly spaced run labels (always the first and the last)."""
+    R = len(labels)
+    if R <= most:
+        idx = np.arange(R)
+    else:
+        idx = np.unique(np.round(np.linspace(0, R - 1, most)).astype(np.int64))
+    return idx.astype(float), [labels[i] for i in idx]
+
+
+def history_pooled(run_labels: list[str], series: dict, added: np.ndarray, withdrawn: np.ndarray,
+                   level: float) -> str:
+    """mu and tau over the runs (posterior mean and interval at each run), and below them a strip of the batches
+    added (up) and withdrawn (down) since the previous run. series: name -> (mean, low, high) arrays."""
+    R = len(run_labels)
+    x = np.arange(R, dtype=float)
+    ticks = _run_ticks(run_labels)
+    names = list(series)
+    row_h, strip_h, foot = 190.0, 110.0, 40.0
+    h = row_h * len(names) + strip_h + foot + 24.0
+    c = Canvas(WIDE, h, "history_pooled", "The pooled mean and the between-group spread over the runs")
+    made = []
+    for i, name in enumerate(names):
+        mean, lo, hi = (np.asarray(a, dtype=float) for a in series[name])
+        p = c.panel(0, 24.0 + i * row_h if i else 0.0, WIDE, row_h + (24.0 if i == 0 else 0.0),
+                    title=f"{name} over the runs" if i == 0 else "", ylabel=name,
+                    xticks=(ticks[0], [""] * len(ticks[0])),
+                    xlim=(-0.5, R - 0.5))
+        p.vsegments(x, lo, hi, POST, 5.0 if R <= 60 else 2.0, 0.45, key=f"{level:.0%} interval", role="interval")
+        p.line(x, mean, POST, 1.2, opacity=0.6)
+        p.points(x, mean, 16.0 if R <= 60 else 6.0, fill=POST, key="posterior mean", role="mean")
+        made.append(p)
+    y0 = 24.0 + row_h * len(names)
+    up, down = np.asarray(added, dtype=float), np.asarray(withdrawn, dtype=float)
+    top, bottom = int(max(1, up.max() if R else 1)), int(down.max() if R else 0)
+    step = max(1, int(np.ceil((top + bottom) / 4)))
+    counts = np.arange(-(bottom // step) * step, top + 1, step)
+    s = c.panel(0, y0, WIDE, strip_h + foot, ylabel="batches", xlabel="run (its date)", xticks=ticks,
+                xlim=(-0.5, R - 0.5), ylim=(-bottom - 0.2 if bottom else -0.2, top + 0.2), ygrid=False,
+                yticks=(counts.astype(float), [str(abs(int(k))) for k in counts]))
+    s.hline(0.0, MUTED, 1.0)
+    s.vsegments(x, np.zeros(R), up, MUTED, 7.0 if R <= 60 else 2.0, key="added since the previous run", role="added")
+    if down.any():
+        s.vsegments(x, np.zeros(R), -down, LIMIT, 7.0 if R <= 60 else 2.0, key="withdrawn or replaced",
+                    role="withdrawn")
+    made.append(s)
+    c.align(*made, sides="left right")
+    return c.svg()
+
+
+def history_group(name: str, run_labels: list[str], mean, lo, hi, withdrawn_at, threshold=None,
+                  limits=(None, None)) -> str:
+    """One group's posterior mean and interval over the runs (gaps where it had no data), with the runs at which
+    batches were withdrawn marked and the threshold or limits drawn in: a small picture for a grid of them."""
+    R = len(run_labels)
+    x = np.arange(R, dtype=float)
+    mean, lo, hi = (np.asarray(a, dtype=float) for a in (mean, lo, hi))
+    w, h = 300.0, 170.0
+    c = Canvas(w, h, "history_group", f"{plain(name, 60)} over the runs")
+    first, last = run_labels[0] if R else "", run_labels[-1] if R else ""
+    p = c.panel(0, 0, w, h, title=plain(name, 34), xticks=(np.array([0.0, R - 1.0]) if R > 1 else np.array([0.0]),
+                                                           [first, last] if R > 1 else [first]),
+                xlim=(-0.5, R - 0.5), xgrid=False)
+    for i in np.flatnonzero(np.asarray(withdrawn_at, dtype=bool)):
+        p.vline(float(i), LIMIT, 1.0, "dashed")
+    if threshold is not None:
+        p.hline(threshold, LIMIT, 1.0, "dotted")
+    for val in limits:
+        if val is not None:
+            p.hline(val, LIMIT, 1.0)
+    p.vsegments(x, lo, hi, POST, 4.0 if R <= 40 else 1.6, 0.45, role="interval")
+    p.points(x, mean, 10.0 if R <= 40 else 4.0, fill=POST, role="mean")
+    return c.svg()

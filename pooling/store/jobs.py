@@ -151,20 +151,36 @@ def write_changes(plan: RefitPlan, fit, watch: Watch, folder: Path) -> dict:
     return report
 
 
-def record_run(plan: RefitPlan, fit, out: Path, settings_dict: dict) -> int:
-    """Record the run in the store; call only once its folder is in place."""
+def run_record(plan: RefitPlan, fit, out: Path, settings_dict: dict) -> RunRecord:
+    """The record of this run as `record_run` stores it (not yet stored). Its summary also keeps each group's
+    posterior mean and interval at the watch's level (`group_intervals`), so that a history page can be drawn
+    from the recorded summaries alone."""
     from ..output import _clean
 
     summary = dict(plan.summary)
     summary.update(model=fit.problem.model.to_dict(), settings=settings_dict,
                    statistics_sha256=fit.problem.stats.fingerprint(), groups=fit.problem.stats.J,
                    weights=plan.weights, seed=int(fit.raw.seed))
-    run = RunRecord(
+    g = plan.groups
+    intervals = {"level": summary.get("watch", {}).get("level"), "labels": [x.label for x in g],
+                 "n": [x.n for x in g], "mean": [x.post_mean for x in g], "low": [x.q_lo for x in g],
+                 "high": [x.q_hi for x in g], "rank_mean": [x.rank_mean for x in g]}
+    if any(x.p_above == x.p_above for x in g):  # not NaN: a threshold was watched
+        intervals["p_above"] = [x.p_above for x in g]
+    if any(x.p_outside == x.p_outside for x in g):
+        intervals["p_mean_outside"] = [x.p_outside for x in g]
+    summary["group_intervals"] = intervals
+    return RunRecord(
         created_at=iso(datetime.now(timezone.utc)), folder=str(Path(out).resolve()),
         state_sha256=plan.snapshot.state_sha256, batch_ids=tuple(b.id for b in plan.snapshot.batches),
         reference_at=iso(plan.reference), half_life_days=plan.half_life_days, targets_met=bool(fit.targets_met),
         summary=_clean(summary), groups=tuple(plan.groups), final_state=_clean(final_state_record(fit)),
     )
+
+
+def record_run(plan: RefitPlan, fit, out: Path, settings_dict: dict) -> int:
+    """Record the run in the store; call only once its folder is in place."""
+    run = run_record(plan, fit, out, settings_dict)
     with open_store(plan.store_path) as st:
         return st.record_run(run)
 

@@ -1,0 +1,127 @@
+"""How numbers are written on the page, in the terminal and on the history page: one set of rules.
+
+* values of the measured quantity get their decimals from the data's own spread (two significant digits of
+  a typical posterior sd), so 1e7 + 0.123 with an sd of 0.01 reads 10000000.123, never 1e+07;
+* probabilities get three decimals, with the ends told apart: exactly 0 is '0', exactly 1 is '1', a value
+  that would round to either end reads '<0.001' or '>0.999' (so 0.9995 never reads 1.000);
+* other figures (R-hat, effective sample sizes, error bounds, mean squares) are written in plain decimals
+  with a few significant digits; scientific notation only for magnitudes no plain decimal can carry
+  (at least 1e12, or below 1e-5 and not zero);
+* counts carry thousands separators; down-weighted counts (a store's half-life) one decimal.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+DASH = "–"
+PLAIN_ABOVE = 1e12  # from here on, scientific notation
+PLAIN_BELOW = 1e-5  # and below this (except 0)
+
+
+def _bad(x) -> bool:
+    try:
+        return x is None or not math.isfinite(float(x))
+    except (TypeError, ValueError):
+        return True
+
+
+class Values:
+    """Values of the measured quantity at the precision of their uncertainty: two significant digits of
+    a typical posterior sd, so 412.37 ± 3 reads 412.4 and 1000000000.123 ± 0.01 keeps its last digits."""
+
+    def __init__(self, typical_sd: float, sep: str = "\u2009", dash: str = DASH):
+        if typical_sd > 0 and math.isfinite(typical_sd):
+            self.dec = int(min(12, max(0, 1 - math.floor(math.log10(typical_sd)))))
+        else:
+            self.dec = 4
+        self.sep, self.dash = sep, dash
+
+    def __call__(self, x, extra: int = 0) -> str:
+        if _bad(x):
+            return self.dash
+        text = f"{float(x):,.{self.dec + extra}f}".replace(",", self.sep)
+        if text.startswith("-") and not any(c in "123456789" for c in text):
+            text = text[1:]  # no "-0.0"
+        return text
+
+    v = __call__
+
+
+def prob(x, dash: str = DASH) -> str:
+    """A probability: '0', '<0.001', three decimals, '>0.999', '1'."""
+    if _bad(x):
+        return dash
+    x = float(x)
+    if x <= 0.0:
+        return "0"
+    if x >= 1.0:
+        return "1"
+    if x < 0.0005:
+        return "<0.001"
+    if x >= 0.9995:
+        return ">0.999"
+    return f"{x:.3f}"
+
+
+def prob_eq(x) -> str:
+    """'= 0.042', '< 0.001', '> 0.999' for prose: 'p = 0.042'."""
+    text = prob(x)
+    return text[0] + " " + text[1:] if text[0] in "<>" else "= " + text
+
+
+def sig(x, digits: int = 3, dash: str = DASH) -> str:
+    """x with `digits` significant digits in plain decimals (1.42e+03 reads 1420, 0.000123 reads 0.000123);
+    scientific notation only beyond PLAIN_ABOVE or below PLAIN_BELOW."""
+    if _bad(x):
+        return dash
+    x = float(x)
+    if x == 0.0:
+        return "0"
+    a = abs(x)
+    if a >= PLAIN_ABOVE or a < PLAIN_BELOW:
+        return f"{x:.{max(digits - 1, 0)}e}"
+    dec = max(0, digits - 1 - math.floor(math.log10(a)))
+    text = f"{x:,.{dec}f}"
+    if "." in text and dec > 0:
+        text = text.rstrip("0").rstrip(".")
+    return text
+
+
+def whole(x, dash: str = DASH) -> str:
+    """A count with separators: 12,345; a fractional (down-weighted) count with one decimal."""
+    if _bad(x):
+        return dash
+    x = float(x)
+    return f"{round(x):,}" if x == round(x) else f"{x:,.1f}"
+
+
+def plural(n, one: str, many: str | None = None) -> str:
+    """'1 group', '2 groups', '1,234 measurements', '58.9 measurements' (down-weighted counts)."""
+    x = float(n)
+    word = one if x == 1 else (many or one + "s")
+    return f"{whole(x)} {word}"
+
+
+def rhat(x, dash: str = DASH) -> str:
+    """R-hat to three decimals (from 10 on, three significant digits)."""
+    if _bad(x):
+        return dash
+    return f"{float(x):.3f}" if float(x) < 10 else sig(x, 3)
+
+
+def ess(x, dash: str = DASH) -> str:
+    """An effective sample size: a whole number with separators."""
+    return dash if _bad(x) else f"{float(x):,.0f}"
+
+
+def percent(x, digits: int = 2) -> str:
+    return DASH if _bad(x) else f"{100 * float(x):.{digits}f}%"
+
+
+def typical_sd(values) -> float:
+    """The spread the value formats are set by: the median posterior sd, or 1 without one."""
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v) & (v > 0)]
+    return float(np.median(v)) if v.size else 1.0
