@@ -272,9 +272,15 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
     resolve_groups(tuple(stats.labels), split_compare(options.compare, tuple(stats.labels)))
     fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init,
                  **_summary_args(args, stats, more, options))
-    res = compute(fit, options)
-    extra = None if more is None else (lambda folder: more(fit, res, folder))
-    out = write_run(fit, res, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
+    holder: dict = {}
+
+    def answers():  # computed while draws.nc is written (output.write_run)
+        holder["res"] = compute(fit, options)
+        return holder["res"]
+
+    extra = None if more is None else (lambda folder: more(fit, holder["res"], folder))
+    out = write_run(fit, answers, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
+    res = holder["res"]
     try:
         if not args.quiet:
             print_results(res, out)

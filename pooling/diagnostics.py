@@ -51,7 +51,6 @@ from __future__ import annotations
 
 import numpy as np
 from numba import njit
-from scipy import fft as _fft
 from scipy.special import ndtri
 
 from ._blocks import each_block
@@ -273,6 +272,8 @@ def _ess(y: np.ndarray, const_seq: np.ndarray) -> np.ndarray:
         yr = y[rest]
         dr = yr - yr.mean(axis=-1)[..., None]
         dr[const_seq[rest]] = 0.0
+        from scipy import fft as _fft  # only for sequences still positive after 32 lags: most runs never need it
+
         nfft = _fft.next_fast_len(2 * n, real=True)
         f = _fft.rfft(dr, nfft, axis=-1)
         power = (f.real**2 + f.imag**2).mean(axis=1)  # mean over sequences before inverting

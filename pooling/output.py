@@ -327,18 +327,23 @@ class _Background:
 def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
     """Write the run folder as one atomic folder: draws.nc (from the fit), summary.json, groups.csv and
     report.html (from its results), and whatever `extra(folder)` adds. When `extra` returns a dict (a refit's
-    change report), report.html opens with it, so extra runs first."""
+    change report), report.html opens with it, so extra runs first.
+
+    `res` may also be a function of no arguments that computes the results: it is then called while draws.nc
+    is being written on the second thread (the write and the answers overlap), and the command line gets the
+    results back through it (pooling.cli.run_fit)."""
     parts = draws_parts(fit)
 
     def fill(tmp: Path):
         _check_space(parts, fit.labels, tmp)
-        # draws.nc is written on a second thread while summary.json and the report are made: h5py and the
-        # kernel's page cache do most of that write without the GIL. Nothing is renamed into place
-        # before both are done.
+        # draws.nc is written on a second thread while the answers, summary.json and the report are made:
+        # h5py and the kernel's page cache do most of that write without the GIL. Nothing is renamed into
+        # place before both are done.
         writer = _Background(_write_draws, parts, tmp / "draws.nc")
         try:
+            results = res() if callable(res) else res
             added = extra(tmp) if extra is not None else None
-            write_results_files(res, tmp, command, added if isinstance(added, dict) else None)
+            write_results_files(results, tmp, command, added if isinstance(added, dict) else None)
         finally:
             writer.join()  # also on Ctrl-C or an error, so the folder is never removed under the writer
         writer.reraise()

@@ -81,6 +81,7 @@ class RawDraws:
     seconds: float
     final_states: list[dict]
     df: np.ndarray | None = None  # heavy tails: df per draw (inf: the normal limit)
+    sweep_seconds: float = float("nan")  # wall time in the sweeps alone (warm-up and draws), without diagnostics
     lam: np.ndarray | None = None  # heavy tails: lambda_j per draw
 
 
@@ -195,8 +196,18 @@ def _progress(total: int, enabled: bool | None):
     return tqdm(total=total, unit="sweep", file=sys.stderr, leave=False, dynamic_ncols=True, desc="sampling")
 
 
-def _run_phase(chains, problem, n_sweeps, store, adapt, threads, bar):
-    """Run every chain for n_sweeps in a thread pool; Ctrl-C stops all of them between chunks."""
+def _run_phase(chains, problem, n_sweeps, store, adapt, threads, bar, timer: list | None = None):
+    """Run every chain for n_sweeps in a thread pool; Ctrl-C stops all of them between chunks. The phase's
+    wall time is added to timer[0] when a timer is given (the sampling time that benchmarks compare with)."""
+    t0 = time.perf_counter()
+    try:
+        _run_phase_timed(chains, problem, n_sweeps, store, adapt, threads, bar)
+    finally:
+        if timer is not None:
+            timer[0] += time.perf_counter() - t0
+
+
+def _run_phase_timed(chains, problem, n_sweeps, store, adapt, threads, bar):
     stop = threading.Event()
     lock = threading.Lock()
     counter = [0]
@@ -234,7 +245,7 @@ def resolve_seed(settings: Settings) -> int:
 
 
 def draw_until_targets(chains, problem: Problem, settings: Settings, threads: int, bar, seed: int, start: float,
-                       diagnose, collect=None) -> tuple[RawDraws, list[dict], int]:
+                       diagnose, collect=None, timer: list | None = None) -> tuple[RawDraws, list[dict], int]:
     """Draw `settings.draws` per chain, then extend until `diagnose` reports no misses or the cap is reached.
 
     `collect(chains, problem, seed, settings, rounds, start)` gathers the chains' draws (default: every
@@ -249,7 +260,7 @@ def draw_until_targets(chains, problem: Problem, settings: Settings, threads: in
     while True:
         if own:
             blocks.append(_preallocate(chains, problem, todo))
-        _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar)
+        _run_phase(chains, problem, todo, store=True, adapt=False, threads=threads, bar=bar, timer=timer)
         have += todo
         raw = collect(chains, problem, seed, settings, rounds, start)
         misses, record = diagnose(raw)
@@ -258,6 +269,7 @@ def draw_until_targets(chains, problem: Problem, settings: Settings, threads: in
         if not misses or have >= settings.draw_cap:
             raw.rounds = rounds
             raw.seconds = time.perf_counter() - start
+            raw.sweep_seconds = timer[0] if timer is not None else float("nan")
             return raw, rounds, have
         want = int(np.ceil(have * record.get("growth", 1.5)))
         todo = int(min(max(want - have, have // 4, 1), settings.draw_cap - have))
@@ -282,10 +294,11 @@ def sample_raw(problem: Problem, settings: Settings | None = None, progress: boo
     threads = settings.threads or min(settings.chains, os.cpu_count() or 1)
     start = time.perf_counter()
     bar = _progress(settings.chains * (settings.warmup + settings.draws), progress)
+    timer = [0.0]
     try:
         if settings.warmup:
-            _run_phase(chains, problem, settings.warmup, store=False, adapt=True, threads=threads, bar=bar)
-        raw, _, _ = draw_until_targets(chains, problem, settings, threads, bar, seed, start, diagnose)
+            _run_phase(chains, problem, settings.warmup, store=False, adapt=True, threads=threads, bar=bar, timer=timer)
+        raw, _, _ = draw_until_targets(chains, problem, settings, threads, bar, seed, start, diagnose, timer=timer)
         return raw
     finally:
         if bar is not None:

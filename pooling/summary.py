@@ -384,12 +384,13 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
     start = time.perf_counter()
     bar = _progress(settings.chains * (settings.warmup + settings.draws), progress)
     pilot = max(settings.warmup // 2, min(settings.warmup, 10))
+    timer = [0.0]
     try:
         for mode, n_sweeps in (("warm", settings.warmup - pilot), ("pilot", pilot)):
             for c in chains:
                 c.mode = mode
             if n_sweeps:
-                _run_phase(chains, problem, n_sweeps, store=False, adapt=True, threads=threads, bar=bar)
+                _run_phase(chains, problem, n_sweeps, store=False, adapt=True, threads=threads, bar=bar, timer=timer)
         mean, sd = _merge_pilot(chains)
         for c in chains:
             c.pilot_mean = c.pilot_msq = None
@@ -411,7 +412,8 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
                            acc["wmax"][i], c.sg, np.zeros(G, dtype=np.int64), np.zeros(problem.J, dtype=np.int64),
                            np.zeros(G, dtype=np.int64), np.zeros(1))
         raw, rounds, have = draw_until_targets(chains, problem, settings, threads, bar, seed, start,
-                                               lambda r: diagnose_raw(r, settings.targets), collect=_collect)
+                                               lambda r: diagnose_raw(r, settings.targets), collect=_collect,
+                                               timer=timer)
     finally:
         if bar is not None:
             bar.close()
