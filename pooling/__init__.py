@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import importlib
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"  # the one place the version is kept (pyproject.toml reads it)
 
 # Names are imported on first use: `pooling --help` and a Ctrl-C at start-up do not wait for numpy,
 # numba and arviz to load.
