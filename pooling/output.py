@@ -349,3 +349,16 @@ def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None
         writer.reraise()
 
     return atomic_folder(Path(out), replace, fill)
+
+
+def write_report(fit, folder, options=None, command: list[str] | None = None):
+    """Write groups.csv, summary.json and report.html of a run (a posterior.Fit or a summary.SummaryFit) into
+    `folder` (created if absent; those files are replaced). Returns the computed results. The command line's
+    run folder, with draws.nc and written atomically, is `write_run`."""
+    from .results import compute
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    res = compute(fit, options)
+    write_results_files(res, folder, command)
+    return res
