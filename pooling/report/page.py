@@ -210,13 +210,14 @@ def render(res: Results, created: str | None = None, command: list[str] | None =
         f'{run["chains"]} chains × {run["draws_per_chain"]} draws · {mode}made {esc(created)} by pooling '
         f'{esc(__version__)}' + (' · <strong class="flag">DIAGNOSTICS TARGETS MISSED</strong>' if missed else "")
         + "</div></div></header>")
-    sections = [("glance", "At a glance"), ("health", "Run health"), ("groups", "Groups"),
+    sections = [("glance", "At a glance"), ("health", "Run health"), ("groups", "Groups"), ("predictors", "Why groups differ"),
                 ("pull", "Pull toward the pool"), ("order", "Ranking"), ("tails", "Outlying groups"),
                 ("limits", "Limits"), ("h2h", "Head to head"), ("labs", "Interlaboratory view"),
                 ("fitcheck", "Model checks"), ("how", "How computed"), ("setup", "Model and data"),
                 ("guide", "Column guide")]
     have = {"limits": o.threshold is not None or o.limits, "h2h": res.pairs is not None,
-            "order": not summary, "fitcheck": not summary, "how": summary, "tails": res.tail is not None}
+            "order": not summary, "fitcheck": not summary, "how": summary, "tails": res.tail is not None,
+            "predictors": res.predictors is not None}
     add('<nav class="toc"><div class="wrap">' + "".join(
         f'<a href="#{a}">{b}</a>' for a, b in sections if have.get(a, True)) + "</div></nav>")
     add('<main class="wrap">')
@@ -247,7 +248,8 @@ def render(res: Results, created: str | None = None, command: list[str] | None =
     lab = res.lab
     cs = lab["consensus"]
     scale_word = "scale" if p.heavy else "sd"
-    cards = [_card("pooled mean mu", f.v(cs["mean"]), f"{lvl} interval {_interval(f, cs['low'], cs['high'])}"),
+    mu_name = "pooled mean mu" if res.predictors is None else "mu (reference level; see Why groups differ)"
+    cards = [_card(mu_name, f.v(cs["mean"]), f"{lvl} interval {_interval(f, cs['low'], cs['high'])}"),
              _card(f"between-group {scale_word} tau", f.v(lab["between_sd"]["mean"]),
                    f"{lvl} interval {_interval(f, lab['between_sd']['low'], lab['between_sd']['high'])}")]
     if lab["repeatability_sd"] is not None:
@@ -305,6 +307,10 @@ def render(res: Results, created: str | None = None, command: list[str] | None =
 
     # --- groups ------------------------------------------------------------------------------------
     add(_groups(res, f, lvl, k))
+    if res.predictors is not None:  # group-level predictors: report/predictors.py
+        from .predictors import section
+
+        add(section(res, f, lvl, figs))
 
     # --- pictures of pulling and intervals -------------------------------------------------------
     if summary:
@@ -660,10 +666,12 @@ def _setup(res: Results, command) -> str:
     run = res.run
     within = p.model.within
     lines = ["y_ij    ~ N(theta_j, sigma_j^2)     measurement i of group j"]
+    centre = "mu" if p.design is None else "mu + x_j'beta"
     if p.heavy:
-        lines.append("theta_j ~ N(mu, tau^2 / lambda_j),  lambda_j ~ Gamma(df/2, rate df/2)   (Student-t, heavy tails)")
+        lines.append(f"theta_j ~ N({centre}, tau^2 / lambda_j),  lambda_j ~ Gamma(df/2, rate df/2)   (Student-t, heavy tails)")
     else:
-        lines.append("theta_j ~ N(mu, tau^2)              group means around the pooled mean")
+        lines.append(f"theta_j ~ N({centre}, tau^2)" + ("              group means around the pooled mean" if p.design is None
+                                                          else "      group means around the centre of their level"))
     if within == "separate":
         lines.append("sigma_j^2 ~ Scaled-Inv-chi2(nu, s^2)  each group its own within-group variance, pooled too")
     elif within == "shared":
