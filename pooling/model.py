@@ -569,7 +569,7 @@ class Problem:
         design = None if self.design is None else self.design.subset(idx)
         data = d._replace(n=n, ybar=np.ascontiguousarray(d.ybar[idx]), m2=np.ascontiguousarray(d.m2[idx]),
                           v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout,
-                          **({"X": design.X} if design is not None else {}))
+                          **({"X": design.X, "XT": np.ascontiguousarray(design.X.T)} if design is not None else {}))
         return Problem(self.model, self.stats.subset(idx), self.center, self.scale, data, design)
 
 
@@ -680,7 +680,7 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
         df_grid=df_grid, df_logprior=df_logprior, df_const=kernel.t_constants(df_grid))
     if design is not None:
         loc, prec = _effect_priors(model, design)
-        data = data._replace(X=design.X, beta_loc=loc, beta_prec=prec)
+        data = data._replace(X=design.X, XT=np.ascontiguousarray(design.X.T), beta_loc=loc, beta_prec=prec)
     return Problem(model, stats, center, scale, data, design)
 
 

@@ -146,8 +146,10 @@ def wants_summary(problem: Problem, settings: Settings | None, choice=None) -> b
 
 
 def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bool = False,
-                  draw_cap: int = 4000) -> int:
-    """About how many bytes summary mode holds per run (accumulators and scratch), excluding the data."""
+                  draw_cap: int = 4000, levels: bool = False) -> int:
+    """About how many bytes summary mode holds per run (accumulators and scratch), excluding the data; levels:
+    ranks within the levels of categorical predictors (3 running sums, a bucket index and about two bucket
+    counts per group and chain)."""
     rows = (1 + (2 if within == "separate" else 0) + (1 if limits and within != "known" else 0)
             + (1 if J < BIAS_HIST_GROUPS else 0))
     count = 2 if draw_cap <= np.iinfo(np.uint16).max else 4
@@ -156,7 +158,7 @@ def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bo
     # shared: grid origin and widths and the rank -> rank-bin table
     rank_bins = len(rank_grid(J, RANK_BINS, RANK_EXACT)) - 1
     per_chain = (rows * (bins + 2) * count + rows * 16 + A.N_R * 8 + A.N_H * 4 + 4 + 8 + 8 * 8
-                 + rank_bins * count + 4)
+                 + rank_bins * count + 4 + (3 * 8 + 8 + 2 * 8 if levels else 0))
     return int(J * (chains * per_chain + rows * 24 + 4))
 
 
