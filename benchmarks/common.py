@@ -68,25 +68,34 @@ def invented_estimates(J: int, tau: float, seed: int) -> GroupStats:
 
 @dataclass
 class KernelChain:
-    """One chain's state for calling kernel.sweeps directly, as the sampler does."""
+    """One chain's state for calling kernel.sweeps directly, as the sampler does: the sampler's own chain set-up
+    (pooling.sampler._Chain: Generator, kernel.State, kernel.Work), driven in the sampler's chunks. `state` is
+    the chain's scalar state vector (kernel.ETA ...)."""
 
     problem: object
-    rng: np.random.Generator
-    state: np.ndarray
-    theta: np.ndarray
-    sigma2: np.ndarray
+    chain: object
 
     @classmethod
     def start(cls, problem, seed: int) -> "KernelChain":
-        rng = np.random.default_rng(seed)
-        state = np.zeros(kernel.N_SCALARS)
-        state[kernel.ETA] = 0.0
-        state[kernel.MU] = float(np.mean(problem.ybar))
-        state[kernel.S2] = 1.0
-        state[kernel.NU_IDX] = len(problem.nu_grid) // 2
-        state[kernel.WIDTH] = 1.0
-        state[kernel.SIGMA2] = 1.0
-        return cls(problem, rng, state, problem.ybar.copy(), np.ones(problem.J))
+        from pooling.sampler import _Chain
+
+        return cls(problem, _Chain(problem, np.random.SeedSequence(seed), None))
+
+    @property
+    def rng(self) -> np.random.Generator:
+        return self.chain.rng
+
+    @property
+    def state(self) -> np.ndarray:
+        return self.chain.state.scalars
+
+    @property
+    def theta(self) -> np.ndarray:
+        return self.chain.state.theta
+
+    @property
+    def sigma2(self) -> np.ndarray:
+        return self.chain.state.sigma2
 
     def run(self, n_sweeps: int, adapt: bool = False, store: bool = False, chunk: int | None = None):
         """n_sweeps sweeps in calls of `chunk` sweeps (the sampler's chunking by default).
@@ -94,27 +103,16 @@ class KernelChain:
         With store=False the out arrays have zero rows, as in the sampler's warm-up: nothing is
         kept, so that J = 1e6 needs no room for draws. With store=True returns a dict of draws.
         """
-        p = self.problem
-        J = p.J
-        chunk = chunk or chunk_size(J)
-        if store:
-            wide = J if p.within_code == 0 else 1 if p.within_code == 1 else 0
-            out = [np.empty(n_sweeps), np.empty(n_sweeps), np.empty((n_sweeps, J)), np.empty((n_sweeps, wide)),
-                   np.empty(n_sweeps if p.within_code == 0 else 0), np.empty(n_sweeps if p.within_code == 0 else 0),
-                   np.empty(n_sweeps)]
-        else:
-            out = [np.empty(0), np.empty(0), np.empty((0, J)), np.empty((0, J)), np.empty(0), np.empty(0), np.empty(0)]
+        d = self.problem.data
+        chunk = chunk or chunk_size(self.problem.J)
+        out = kernel.empty_draws(d, n_sweeps) if store else kernel.no_draws(d)
         done = 0
         while done < n_sweeps:
             k = min(chunk, n_sweeps - done)
-            views = [a[done:done + k] for a in out] if store else out
-            kernel.sweeps(self.rng, k, adapt, p.within_code, p.n, p.ybar, p.m2, p.v_known, p.mu_kind, p.mu_loc,
-                          p.mu_scale, p.tau_kind, p.tau_scale, p.s2_shape, p.s2_rate, p.nu_grid, p.nu_logprior,
-                          p.nu_table, p.layout, self.state, self.theta, self.sigma2, *views, 0)
+            rows = kernel.Draws(*(a[done:done + k] for a in out)) if store else out
+            kernel.sweeps(self.chain.rng, k, adapt, d, self.chain.state, self.chain.work, rows, 0)
             done += k
-        if store:
-            return dict(zip(("mu", "tau", "theta", "sigma", "s", "nu", "evals"), out))
-        return None
+        return out._asdict() if store else None
 
 
 def chunk_size(J: int) -> int:
