@@ -206,7 +206,7 @@ def test_bias_is_against_each_level_and_ranks_within_levels(labs):
     np.testing.assert_allclose(t.consensus_mean, [cons[lv] for lv in t.level], rtol=1e-12)
     np.testing.assert_allclose(t.bias_mean, t.theta_mean - t.consensus_mean, atol=1e-9)
     for lv, sub in t.groupby("level"):
-        assert sorted(sub[res.col("rank_in_level_low")]) [0] == 1
+        assert min(sub[res.col("rank_in_level_low")]) == 1
         assert sub.rank_in_level_mean.sum() == pytest.approx(len(sub) * (len(sub) + 1) / 2)
         assert sub.p_best_in_level.sum() == pytest.approx(1.0)
     c = level_contrast(fit, "method", "B", "A")
@@ -222,7 +222,7 @@ def test_bias_is_against_each_level_and_ranks_within_levels(labs):
 
 def _cli(*args, cwd):
     return subprocess.run([sys.executable, "-m", "pooling.cli", *args], cwd=cwd, capture_output=True, text=True,
-                          timeout=600)
+                          timeout=600, check=False)
 
 
 def test_command_line_run_folder(tmp_path):
