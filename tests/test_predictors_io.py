@@ -274,3 +274,31 @@ def test_refit_says_the_store_keeps_no_group_columns(tmp_path):
     assert _cli("ingest", "s.store", "day1.csv", "--group", "lab", "--value", "y", "--quiet", cwd=tmp_path).returncode == 0
     r = _cli("refit", "s.store", "--out", "run", "--category", "method", cwd=tmp_path)
     assert r.returncode == 2 and "the store keeps no group-level columns yet" in r.stderr
+
+
+def test_refit_path_takes_predictors_from_the_statistics(tmp_path, monkeypatch):
+    # the store does not keep group-level columns yet; when it does, its plan's statistics carry them
+    # (GroupStats.columns) and the refit command needs nothing else: simulated here by adding the columns to the
+    # plan the store made
+    from pooling import cli
+    from pooling.store import jobs
+
+    df = _long()
+    df[["lab", "y"]].to_csv(tmp_path / "day1.csv", index=False)
+    methods = dict(zip(df.lab, df.method))
+    assert cli.main(["ingest", str(tmp_path / "s.store"), str(tmp_path / "day1.csv"), "--group", "lab", "--value", "y",
+                     "--quiet"]) == 0
+    real = jobs.plan_refit
+
+    def with_columns(*args, **kw):
+        plan = real(*args, **kw)
+        plan.stats = plan.stats.with_columns({"method": methods})
+        return plan
+
+    monkeypatch.setattr(jobs, "plan_refit", with_columns)
+    code = cli.main(["refit", str(tmp_path / "s.store"), "--out", str(tmp_path / "run"), "--category", "method",
+                     "--draws", "200", "--warmup", "200", "--quiet", "--seed", "1"])
+    assert code in (0, 3)
+    s = json.loads((tmp_path / "run" / "summary.json").read_text())
+    assert [c["name"] for c in s["predictors"]["coefficients"]] == ["method: B vs A"]
+    assert (tmp_path / "run" / "changes.json").exists()
