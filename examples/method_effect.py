@@ -39,11 +39,11 @@ def main(out_dir=None, seed: int = 7):
     res = compute(fit, pooling.ReportOptions(labs=True))
     pr = res.predictors
     effect = pr["coefficients"][0]
-    print(f"method B vs A: {effect['mean']:+.3f} g/100 g, 95% interval {effect['low']:+.3f} to {effect['high']:+.3f}, "
-          f"P(B reads higher) {effect['p_above_0']:.3f}; the truth is {TRUE_EFFECT:+.2f}")
+    print(f"method B vs A: {effect['mean']:+.3f} g/100 g, 95% interval {effect['low']:+.3f} to "
+          f"{effect['high']:+.3f}, P(B reads higher) {effect['p_above_0']:.3f}; the truth is {TRUE_EFFECT:+.2f}")
     for c in pr["consensus"]:
-        print(f"consensus value, method {c['level']}: {c['mean']:.3f} (95% interval {c['low']:.3f} to {c['high']:.3f}), "
-              f"{c['groups']} labs")
+        print(f"consensus value, method {c['level']}: {c['mean']:.3f} (95% interval {c['low']:.3f} to "
+              f"{c['high']:.3f}), {c['groups']} labs")
     sp = pr["spread"]
     print(f"between-lab sd tau without the method: {sp['tau_without']['mean']:.3f} (95% interval "
           f"{sp['tau_without']['low']:.3f} to {sp['tau_without']['high']:.3f}); with it: {sp['tau_with']['mean']:.3f} "

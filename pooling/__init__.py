@@ -80,7 +80,8 @@ def _fit_without(stats, model, settings, seed: int, progress, summary, options, 
     from .sampler import Settings
 
     plain = dataclasses.replace(model, predictors=())
-    settings = dataclasses.replace(settings or Settings(), seed=int(derived_rng(seed, PURPOSE_WITHOUT).integers(2**62)))
+    derived = int(derived_rng(seed, PURPOSE_WITHOUT).integers(2**62))
+    settings = dataclasses.replace(settings or Settings(), seed=derived)
     return fit(stats, plain, settings, progress, None, summary=summary, options=options, keep=keep, without=False)
 
 

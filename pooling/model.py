@@ -796,8 +796,9 @@ def _check_design(X: np.ndarray, coefs: list[dict], stats: GroupStats, model: Mo
     flat = 1 + sum(1 for prior in _prior_of_each(model, coefs) if isinstance(prior, Flat))
     need = flat + (2 if isinstance(model.tau, Flat) else 1)
     if J < need:
-        tau_txt = ("a flat prior on tau needs at least 2 groups beyond the flat coefficients" if isinstance(model.tau, Flat)
-                   else "the between-group spread needs at least 1 group beyond the flat coefficients")
+        tau_txt = ("a flat prior on tau needs at least 2 groups beyond the flat coefficients"
+                   if isinstance(model.tau, Flat) else
+                   "the between-group spread needs at least 1 group beyond the flat coefficients")
         _refuse(f"bad model: {flat} coefficients with flat priors (mu and {flat - 1} effects) are too many for {J} "
                 f"groups: {tau_txt}. Use fewer predictors or levels"
                 + (", a proper prior on tau (--tau half-normal:SCALE)" if isinstance(model.tau, Flat) else "")

@@ -1013,9 +1013,9 @@ def predictor_answers(p, raw, o: ReportOptions, without=None) -> dict | None:
         spread["tau_without"] = summarize_draws(wr.tau, level, without.problem.scale)
         tau2_wo = float(np.mean(wr.tau ** 2)) * (without.problem.scale / k) ** 2
         spread["share_explained"] = 1.0 - tau2 / tau2_wo if tau2_wo > 0 else None
-        spread["without_fit"] = {"seed": wr.seed, "draws_per_chain": int(wr.mu.shape[1]), "chains": int(wr.mu.shape[0]),
-                                 "targets_met": bool(without.targets_met), "mode": "summary" if getattr(
-                                     without, "summary_mode", False) else "full",
+        mode = "summary" if getattr(without, "summary_mode", False) else "full"
+        spread["without_fit"] = {"seed": wr.seed, "draws_per_chain": int(wr.mu.shape[1]),
+                                 "chains": int(wr.mu.shape[0]), "targets_met": bool(without.targets_met), "mode": mode,
                                  "mu": summarize_draws(wr.mu, level, without.problem.scale, without.problem.center)}
     return {"coefficients": coefs, "contrasts": contrasts, "consensus": consensus, "spread": spread,
             "categories": [{"column": cat["column"], "levels": list(cat["levels"]), "reference": cat["reference"],
@@ -1057,10 +1057,10 @@ SUMMARY_METHODS = {
     "diagnostics": "run-length control on mu, tau, the variance hyperparameters and the kept groups' stored draws; "
                    "a classic R-hat from chain means for every group as a screen",
 }
-SUMMARY_LEVEL_METHOD = ("ranks within levels: a bucket count per level (max(1024, groups of the level) buckets) gives the "
-                        "mid-rank among the groups of the level, off by at most rank_in_level_mean_error; P(best in "
-                        "level) is an exact count; the rank interval within a level needs every group's draws and is "
-                        "left empty (refit with --summary off)")
+SUMMARY_LEVEL_METHOD = ("ranks within levels: a bucket count per level (max(1024, groups of the level) buckets) "
+                        "gives the mid-rank among the groups of the level, off by at most rank_in_level_mean_error; "
+                        "P(best in level) is an exact count; the rank interval within a level needs every group's "
+                        "draws and is left empty (refit with --summary off)")
 
 
 # ---------------------------------------------------------------------------------------------

@@ -152,8 +152,8 @@ class GroupStats:
             if isinstance(given, dict):
                 missing = [lab for lab in self.labels if lab not in given]
                 if missing:
-                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has no value "
-                                     f"for group {_show(missing[0])}")
+                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has no "
+                                     f"value for group {_show(missing[0])}")
                 seq = [given[lab] for lab in self.labels]
             else:
                 seq = list(given)
@@ -164,8 +164,8 @@ class GroupStats:
             for j, (lab, x) in enumerate(zip(self.labels, seq)):
                 text = cell_text(x)
                 if text is None:
-                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(lab)}: expected "
-                                     "a value for the group-level column, found an empty cell")
+                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(lab)}: "
+                                     "expected a value for the group-level column, found an empty cell")
                 out[j] = text
             cols[str(name)] = out
         return GroupStats(self.labels, self.n, self.mean, self.m2, self.se, self.mean_lo, self.kind, self.unit,
@@ -821,7 +821,8 @@ def read_table(path, group: str, value: str, *, encoding: str | None = None, del
     return out.with_columns(per_group.values(out.labels)) if per_group is not None else out
 
 
-def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None, text_columns=()) -> pd.DataFrame:
+def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None,
+                text_columns=()) -> pd.DataFrame:
     parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal,
                                                text_columns=text_columns)]
     df = pd.concat(parts, ignore_index=True)
@@ -836,8 +837,9 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
     `group_columns` (predictors: one value per group).
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
+    where = str(data) if not isinstance(data, pd.DataFrame) else source
     extra = _check_column_names(group_columns, {group: "group labels", n: "sizes", mean: "means",
-                                                sd: "standard deviations"}, str(data) if not isinstance(data, pd.DataFrame) else source)
+                                                sd: "standard deviations"}, where)
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         sha = _sha256_file(_open_check(data))

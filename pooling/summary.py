@@ -199,7 +199,8 @@ class _SummaryChain(_Chain):
             return
         m = setup.kept.shape[0]
         heavy = p.heavy
-        out = sk.KeptRows(np.empty((n_sweeps, sk.N_Y + d.X.shape[1])), np.empty(n_sweeps), np.empty((n_sweeps, m)),
+        out = sk.KeptRows(np.empty((n_sweeps, sk.N_Y + d.X.shape[1])), np.empty(n_sweeps),
+                          np.empty((n_sweeps, m)),
                           np.empty((n_sweeps, m if p.within_code == 0 else 0)),
                           np.empty((n_sweeps, m if heavy else 0)),
                           np.empty((n_sweeps, m), dtype=np.int64))

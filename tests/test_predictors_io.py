@@ -87,7 +87,8 @@ def test_summary_and_estimate_tables_and_parquet_carry_columns(tmp_path):
     summ.to_csv(path, index=False)
     st = pooling.from_summaries(path, "lab", "n", "mean", "sd", group_columns=["method", "age"])
     # a CSV cell keeps its text as written (numbers are read as numbers where a model asks for them)
-    assert list(st.columns["method"]) == ["X", "Y", "X", "Y"] and list(st.columns["age"]) == ["1.5", "2.0", "3.0", "4.0"]
+    assert list(st.columns["method"]) == ["X", "Y", "X", "Y"]
+    assert list(st.columns["age"]) == ["1.5", "2.0", "3.0", "4.0"]
     est = pooling.from_estimates(summ.assign(se=0.2), "lab", "mean", "se", group_columns=["method"])
     assert list(est.columns["method"]) == ["X", "Y", "X", "Y"]
     pq = tmp_path / "long.parquet"
@@ -171,8 +172,8 @@ def test_reference_defaults_to_the_level_with_most_groups(labs):
 
 
 def test_model_record_round_trips_and_is_unchanged_without_predictors():
-    m = Model(predictors=(Category("method", reference="B", levels=("A", "B")), Numeric("age", pooling.Normal(0, 2))),
-              effects=pooling.Normal(0.0, 0.5))
+    m = Model(predictors=(Category("method", reference="B", levels=("A", "B")),
+                          Numeric("age", pooling.Normal(0, 2))), effects=pooling.Normal(0.0, 0.5))
     assert Model.from_dict(json.loads(json.dumps(m.to_dict()))) == m
     assert "predictors" not in Model().to_dict() and "effects" not in Model().to_dict()
 
@@ -271,7 +272,8 @@ def test_command_line_refusals(tmp_path, args, pattern):
 
 def test_refit_says_the_store_keeps_no_group_columns(tmp_path):
     _long().to_csv(tmp_path / "day1.csv", index=False)
-    assert _cli("ingest", "s.store", "day1.csv", "--group", "lab", "--value", "y", "--quiet", cwd=tmp_path).returncode == 0
+    r = _cli("ingest", "s.store", "day1.csv", "--group", "lab", "--value", "y", "--quiet", cwd=tmp_path)
+    assert r.returncode == 0
     r = _cli("refit", "s.store", "--out", "run", "--category", "method", cwd=tmp_path)
     assert r.returncode == 2 and "the store keeps no group-level columns yet" in r.stderr
 

@@ -94,8 +94,8 @@ def sbc_ranks(structure: str, reps: int, seed: int, model=None, kept: int = 99, 
         data, truth = simulate(structure, np.random.default_rng(sim_seq))
         ties = np.random.default_rng(tie_seq)
         problem = build(data, model)
-        settings = sampler.Settings(chains=1, draws=kept * thin, warmup=warmup, seed=int(fit_seq.generate_state(1)[0]),
-                                    threads=1)
+        settings = sampler.Settings(chains=1, draws=kept * thin, warmup=warmup,
+                                    seed=int(fit_seq.generate_state(1)[0]), threads=1)
         fit = posterior.finish(sampler.sample_raw(problem, settings, progress=False, diagnose=no_extension), problem)
         beta = fit.draws("beta")
         for name, value in truth.items():
@@ -109,7 +109,8 @@ def sbc_ranks(structure: str, reps: int, seed: int, model=None, kept: int = 99, 
                     x = x[:, 0]
             draws = x.reshape(-1)[thin - 1::thin]
             # ties only for the discrete df: broken at random, which keeps the rank uniform
-            ranks.setdefault(name, []).append(int(np.sum(draws < value)) + int(ties.integers(0, np.sum(draws == value) + 1)))
+            rank = int(np.sum(draws < value)) + int(ties.integers(0, np.sum(draws == value) + 1))
+            ranks.setdefault(name, []).append(rank)
     return {k: np.array(v) for k, v in ranks.items()}
 
 
@@ -132,6 +133,7 @@ def test_sbc_detects_a_wrong_prior_on_the_effects():
     # simulate beta ~ N(0, 1), fit with N(0, 0.2^2): the posterior of beta is pulled to 0, the true values rank at
     # the ends, and the histogram must be rejected
     m = MODELS["known-heavy"]
-    wrong = pooling.Model(within="known", mu=m.mu, tau=m.tau, predictors=PREDICTORS, effects=pooling.Normal(0.0, 0.2))
+    wrong = pooling.Model(within="known", mu=m.mu, tau=m.tau, predictors=PREDICTORS,
+                          effects=pooling.Normal(0.0, 0.2))
     ranks = sbc_ranks("known-heavy", 200, seed=2016, model=wrong)
     assert min(uniformity_pvalue(ranks["beta_method"]), uniformity_pvalue(ranks["beta_x"])) < ALPHA

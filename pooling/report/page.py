@@ -210,7 +210,8 @@ def render(res: Results, created: str | None = None, command: list[str] | None =
         f'{run["chains"]} chains × {run["draws_per_chain"]} draws · {mode}made {esc(created)} by pooling '
         f'{esc(__version__)}' + (' · <strong class="flag">DIAGNOSTICS TARGETS MISSED</strong>' if missed else "")
         + "</div></div></header>")
-    sections = [("glance", "At a glance"), ("health", "Run health"), ("groups", "Groups"), ("predictors", "Why groups differ"),
+    sections = [("glance", "At a glance"), ("health", "Run health"), ("groups", "Groups"),
+                ("predictors", "Why groups differ"),
                 ("pull", "Pull toward the pool"), ("order", "Ranking"), ("tails", "Outlying groups"),
                 ("limits", "Limits"), ("h2h", "Head to head"), ("labs", "Interlaboratory view"),
                 ("fitcheck", "Model checks"), ("how", "How computed"), ("setup", "Model and data"),
@@ -668,10 +669,12 @@ def _setup(res: Results, command) -> str:
     lines = ["y_ij    ~ N(theta_j, sigma_j^2)     measurement i of group j"]
     centre = "mu" if p.design is None else "mu + x_j'beta"
     if p.heavy:
-        lines.append(f"theta_j ~ N({centre}, tau^2 / lambda_j),  lambda_j ~ Gamma(df/2, rate df/2)   (Student-t, heavy tails)")
+        lines.append(f"theta_j ~ N({centre}, tau^2 / lambda_j),  lambda_j ~ Gamma(df/2, rate df/2)   "
+                     "(Student-t, heavy tails)")
+    elif p.design is None:
+        lines.append("theta_j ~ N(mu, tau^2)              group means around the pooled mean")
     else:
-        lines.append(f"theta_j ~ N({centre}, tau^2)" + ("              group means around the pooled mean" if p.design is None
-                                                          else "      group means around the centre of their level"))
+        lines.append("theta_j ~ N(mu + x_j'beta, tau^2)      group means around the centre of their level")
     if within == "separate":
         lines.append("sigma_j^2 ~ Scaled-Inv-chi2(nu, s^2)  each group its own within-group variance, pooled too")
     elif within == "shared":

@@ -405,7 +405,8 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
     return c.svg()
 
 
-def along_numeric(x, m, lo, hi, lev, lines: list[tuple[str, float]], slope: float, centre: float, column: str) -> str:
+def along_numeric(x, m, lo, hi, lev, lines: list[tuple[str, float]], slope: float, centre: float,
+                  column: str) -> str:
     """The groups' posterior means m (with intervals lo, hi) against a numeric predictor x, coloured by level (lev:
     each group's index into lines), each level's line c_l + slope (x - centre) drawn from its consensus value c_l
     (lines: (name, c_l) per level; c_l at the numeric predictors' means)."""

@@ -28,7 +28,8 @@ def section(res, f: Fmt, lvl: str, figs: dict) -> str:
                      f"{Fmt.g(num['centred_at'], 6)}; its effect is per unit of the column)")
     priors = "; ".join(f"{esc(k)}: {esc(v)}" for k, v in pr["prior"].items())
     out.append("<p>Each group's mean is pulled toward the centre of groups like it, mu + x<sub>j</sub>'beta, rather "
-               f"than toward one pooled mean. The centre depends on {'; '.join(parts)}. Here mu is {esc(pr['mu_means'])}. "
+               f"than toward one pooled mean. The centre depends on {'; '.join(parts)}. "
+               f"Here mu is {esc(pr['mu_means'])}. "
                f"Prior on the effects: {priors}.</p>")
     rows = []
     for c in pr["coefficients"]:
@@ -41,8 +42,8 @@ def section(res, f: Fmt, lvl: str, figs: dict) -> str:
                                              ("bulk ESS", True), ("unit", False)], rows))
     more = [c for c in pr["contrasts"] if c["b"] != _reference(pr, c["column"])]
     if more:
-        crow = [[esc(c["column"]), esc(f"{c['a']} − {c['b']}"), f.v(c["mean"], 1), _interval(f, c["low"], c["high"], 1),
-                 Fmt.p(c["p_above_0"])] for c in more[:60]]
+        crow = [[esc(c["column"]), esc(f"{c['a']} − {c['b']}"), f.v(c["mean"], 1),
+                 _interval(f, c["low"], c["high"], 1), Fmt.p(c["p_above_0"])] for c in more[:60]]
         out.append("<h3>Differences between levels</h3><p>Every pair of levels that does not include the reference "
                    "(those are the effects above). P(&gt; 0) is the probability that the first level reads higher."
                    "</p>" + _table([("predictor", False), ("levels", False), ("posterior mean", True),
@@ -61,7 +62,8 @@ def section(res, f: Fmt, lvl: str, figs: dict) -> str:
                    f"{lvl} interval {_interval(f, sp['tau_with']['low'], sp['tau_with']['high'])}")]
     if sp["tau_without"] is not None:
         wo = sp["tau_without"]
-        cards.append(_card("tau without them", f.v(wo["mean"]), f"{lvl} interval {_interval(f, wo['low'], wo['high'])}"))
+        cards.append(_card("tau without them", f.v(wo["mean"]),
+                           f"{lvl} interval {_interval(f, wo['low'], wo['high'])}"))
         share = sp["share_explained"]
         cards.append(_card("share of tau² explained", "–" if share is None else f"{100 * share:.0f}%",
                            "1 − E[tau² with] / E[tau² without]"))
@@ -74,7 +76,8 @@ def section(res, f: Fmt, lvl: str, figs: dict) -> str:
     else:
         how = "No fit without the predictors was made, so tau without them is not shown."
     out.append(f'<h3>Between-group spread</h3><div class="cards">{"".join(cards)}</div><p class="note">{esc(how)}</p>')
-    for name, title in (("by_level", "Estimates by level"), ("along_numeric", "Estimates against the numeric predictor")):
+    for name, title in (("by_level", "Estimates by level"),
+                        ("along_numeric", "Estimates against the numeric predictor")):
         if figs.get(name):
             out.append(f'<h3>{title}</h3><div class="fig">{figs[name]}</div>')
     if "rank_in_level_mean" in t:
