@@ -14,7 +14,8 @@ mapped back to the user's units at the very end (pooling.results).
 Per draw and group j (v_j = sigma_j^2 / n_j, or se_j^2; t_j = tau^2 / lambda_j, tau^2 for the normal model):
     shrinkage weight  w_j = v_j / (v_j + t_j)      (0 keeps the group's own mean, 1 the pooled mean)
     outside fraction  f_j = Phi((L - theta_j) / sigma_j) + Phi((theta_j - U) / sigma_j)
-    bias              b_j = theta_j - mu
+    bias              b_j = theta_j - c_j, c_j the consensus value of the group's own level: mu without
+                      predictors, mu + x_j' beta with them (see centre_of)
     outlying          lambda_j below the 5% point of its prior Gamma(df/2, rate df/2) at the draw's df
     mean outside      theta_j below the lower or above the upper specification limit
 """
@@ -90,13 +91,25 @@ def logit_shrink(v, t):
     return math.log(v) - math.log(t)
 
 
+@njit(nogil=True, cache=True, inline="always")
+def centre_of(mu, X, beta, j):
+    """c_j = mu + x_j' beta: the centre of group j's level (mu when there are no predictors, X of 0 columns),
+    summed in the order the kernel sums it (kernel.block_a_reg), so both give the same number."""
+    c = mu
+    for k in range(X.shape[1]):
+        c += X[j, k] * beta[k]
+    return c
+
+
 @njit(nogil=True, cache=True)
-def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, hits):
+def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, hits, X, beta):
     """Add one draw to the running summaries of every group (internal units).
 
     theta (J,); sig: sigma_j (J,), the shared sigma (1,) or nothing (known); lam: lambda_j (J,) or
     nothing (normal model); cut: the draw's outlying cut on lambda; a: Asked.internal; inv = 1 / (draws
     so far, this one included). run (N_R, J): Welford means (and M2 of theta); hits (N_H, J): counts.
+    X (J, p), beta (p,): the group-level predictors and the draw's coefficients (p = 0: none); the bias is
+    taken about each group's own centre mu + x_j' beta.
     """
     J = theta.shape[0]
     heavy = lam.shape[0] > 0
@@ -132,7 +145,7 @@ def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, 
                 hits[H_ABOVE, j] += 1
             if th < thr:
                 hits[H_BELOW, j] += 1
-        if has_bias and abs(th - mu) > allowed:
+        if has_bias and abs(th - centre_of(mu, X, beta, j)) > allowed:
             hits[H_BIAS, j] += 1
         if (has_lo and th < a[A_LOWER]) or (has_hi and th > a[A_UPPER]):
             hits[H_MEAN_OUT, j] += 1
@@ -148,9 +161,10 @@ D_SHRINK, D_OUT, D_BIAS, D_LOGIT_SHRINK, D_LOGIT_OUT = range(5)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def derived(kind, within, n, v_known, mu, tau, theta, sig, lam, a, j0, out):
+def derived(kind, within, n, v_known, mu, tau, theta, sig, lam, a, j0, out, X, beta):
     """out[s, i] = the quantity `kind` of group j0 + i in draw s, from stored draws (internal units):
-    mu, tau (S,); theta (S, J); sig (S, J), (S,) shared or (S, 0) known; lam (S, J) or (S, 0)."""
+    mu, tau (S,); theta (S, J); sig (S, J), (S,) shared or (S, 0) known; lam (S, J) or (S, 0); X (J, p) and
+    beta (S, p) the group-level predictors and their coefficients (p = 0: none)."""
     S, m = out.shape
     heavy = lam.shape[1] > 0
     for s in range(S):
@@ -159,7 +173,7 @@ def derived(kind, within, n, v_known, mu, tau, theta, sig, lam, a, j0, out):
             j = j0 + i
             th = theta[s, j]
             if kind == D_BIAS:
-                out[s, i] = th - mu[s]
+                out[s, i] = th - centre_of(mu[s], X, beta[s], j)
                 continue
             if within == 0:
                 sg = sig[s, j]
@@ -177,13 +191,13 @@ def derived(kind, within, n, v_known, mu, tau, theta, sig, lam, a, j0, out):
 
 
 @njit(nogil=True, cache=True)
-def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, run, hits):
+def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, run, hits, X, beta):
     """`accumulate` over every stored draw of one chain, in draw order: mu, tau, cut (D,); theta (D, J);
-    sig (D, J) or (D, 1) or (D, 0); lam (D, J) or (D, 0)."""
+    sig (D, J) or (D, 1) or (D, 0); lam (D, J) or (D, 0); X (J, p); beta (D, p)."""
     D = mu.shape[0]
     for s in range(D):
         accumulate(within, n, v_known, mu[s], tau[s] * tau[s], theta[s], sig[s], lam[s], cut[s], a, 1.0 / (s + 1.0),
-                   run, hits)
+                   run, hits, X, beta[s])
 
 
 def lambda_cuts(df_grid: np.ndarray, tail: float = OUTLYING_PRIOR_TAIL) -> np.ndarray:

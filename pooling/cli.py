@@ -97,6 +97,20 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     g.add_argument("--nu", help="hold nu (separate) at this value")
     g.add_argument("--nu-grid", dest="nu_grid", help="comma-separated grid of nu values, equal prior weights "
                    "(default: 1,1.5,2,3,4,5,6,8,10,14,20,30,50,100)")
+    # --- group-level predictors: why groups differ ------------------------------------------------
+    g.add_argument("--category", action="append", metavar="COL",
+                   help="a categorical group-level predictor: a column holding each group's level (a method, an "
+                        "instrument, a region), one value per group; each level is compared with a reference level. "
+                        "Repeat for more")
+    g.add_argument("--numeric", action="append", metavar="COL",
+                   help="a numeric group-level predictor (an age, an altitude), one value per group, centred at its "
+                        "mean over the groups and kept in its own units. Repeat for more")
+    g.add_argument("--reference", action="append", metavar="COL=LEVEL",
+                   help="the reference level of a --category column (default: the level with the most groups)")
+    g.add_argument("--effects", default="flat", metavar="PRIOR",
+                   help="prior on the predictors' effects: flat (default) or normal:SCALE (centred at 0; SCALE in the "
+                        "data's units, per unit of the column for a numeric predictor)")
+    # --- end of group-level predictors -----------------------------------------------------------
     r = p.add_argument_group("run")
     r.add_argument("--chains", type=int, default=4)
     r.add_argument("--draws", type=int, default=1000, help="draws per chain before run-length control (default 1000)")
@@ -213,21 +227,25 @@ def _stats_from_args(args):
     # --- many files, or a cluster: the statistics step on Dask (pooling.dask_stats) ----------
     from . import dask_stats
 
+    extra = list(getattr(args, "category", None) or []) + list(getattr(args, "numeric", None) or [])
     if getattr(args, "cluster", None) or dask_stats.looks_like_many(args.data):
+        if extra:
+            raise E.InputError("bad options: --category and --numeric columns are read from one file; a folder, a glob "
+                               "or --cluster does not read them")
         if not modes["value"]:
             raise E.InputError("bad options: a folder, a glob or --cluster reads measurements (--value COL); "
                                "one row per group or estimates with standard errors come in one file")
         return dask_stats.read_table_dask(args.data, args.group, args.value, scheduler=args.cluster, **read)
     # --- end of many files ---------------------------------------------------------------------
     if modes["value"]:
-        return S.read_table(args.data, args.group, args.value, **read)
+        return S.read_table(args.data, args.group, args.value, group_columns=extra, **read)
     if modes["summary"]:
         if None in (args.size, args.mean, args.sd):
             raise E.InputError("bad options: one row per group needs all of --size, --mean and --sd")
-        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd, **read)
+        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd, group_columns=extra, **read)
     if None in (args.estimate, args.std_error):
         raise E.InputError("bad options: estimates need both --estimate and --std-error")
-    return S.from_estimates(args.data, args.group, args.estimate, args.std_error, **read)
+    return S.from_estimates(args.data, args.group, args.estimate, args.std_error, group_columns=extra, **read)
 
 
 def _decide_at(text) -> float:
@@ -243,7 +261,49 @@ def _model_from_args(args, stats):
 
     within = args.within or ("known" if stats.kind == "known" else "separate")
     return Model(within=within, mu=parse_prior(args.mu, "--mu"), tau=parse_prior(args.tau, "--tau"),
-                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args), between=getattr(args, "between", None) or "heavy")
+                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args), between=getattr(args, "between", None) or "heavy",
+                 predictors=_predictors_from_args(args, stats), effects=_effects(getattr(args, "effects", None)))
+
+
+def _predictors_from_args(args, stats) -> tuple:
+    """--category, --numeric and --reference as model.Category and model.Numeric, in the order given
+    (categories first). --reference COL=LEVEL is matched against the --category columns, so that a column or a
+    level may itself hold '='."""
+    from .model import Category, Numeric
+
+    cats = list(getattr(args, "category", None) or [])
+    nums = list(getattr(args, "numeric", None) or [])
+    refs: dict[str, str] = {}
+    for text in getattr(args, "reference", None) or []:
+        col = next((c for c in sorted(cats, key=len, reverse=True) if text.startswith(c + "=")), None)
+        if col is None:
+            raise E.InputError(f"bad option --reference: expected COLUMN=LEVEL with COLUMN one of the --category "
+                               f"columns ({', '.join(cats) or 'none given'}); found '{text}'")
+        if col in refs:
+            raise E.InputError(f"bad option --reference: the reference level of '{col}' is given twice")
+        refs[col] = text[len(col) + 1:]
+    for col in cats + nums:
+        if (cats + nums).count(col) > 1:
+            raise E.InputError(f"bad options: the column '{col}' is named twice among --category and --numeric")
+    if (cats or nums) and getattr(args, "command", None) == "refit" and not stats.columns:
+        raise E.InputError("bad options: the store keeps no group-level columns yet, so refit cannot use --category "
+                           "or --numeric; fit the merged data with `pooling fit` instead")
+    return tuple(Category(c, refs.get(c)) for c in cats) + tuple(Numeric(c) for c in nums)
+
+
+def _effects(text):
+    """--effects: flat or normal:SCALE (a normal prior centred at 0 on every effect)."""
+    from . import model as m
+
+    if text is None or text.strip().lower() == "flat":
+        return m.Flat()
+    parts = text.strip().lower().split(":")
+    if parts[0] != "normal" or len(parts) != 2:
+        raise E.InputError(f"bad option --effects: expected flat or normal:SCALE; found '{text}'")
+    scale = _num(parts[1], "--effects")
+    if not scale > 0:
+        raise E.InputError(f"bad option --effects: the scale must be above 0; found '{parts[1]}'")
+    return m.Normal(0.0, scale)
 
 
 def _settings_from_args(args):

@@ -94,6 +94,7 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
         "interlab": lab,
         "new_group_outside": res.new_group,
         "predictive_checks": checks,
+        "predictors": _level_named(res.predictors, L),
         "groups_table": records(res.table),
     }
     if res.pairs is not None:
@@ -101,6 +102,19 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
     if res.summary is not None:
         out["summary_mode"] = {k: v for k, v in res.summary.items() if k != "kept_labels"}
     return _clean(out)
+
+
+def _level_named(x, L: str):
+    """The predictors' answers with each interval's ends named by the level (low -> low_95), as for the
+    hyperparameters; None stays None."""
+    if isinstance(x, dict):
+        out = {}
+        for k, v in x.items():
+            out[f"{k}_{L}" if k in ("low", "high") and isinstance(v, float) else k] = _level_named(v, L)
+        return out
+    if isinstance(x, list):
+        return [_level_named(v, L) for v in x]
+    return x
 
 
 def write_results_files(res, folder: Path, command: list[str] | None = None, changes: dict | None = None) -> dict:

@@ -41,6 +41,10 @@ class GroupStats:
 
     kind is "raw" (n, mean, m2 from measurements or from n/mean/sd summaries) or "known"
     (mean holds each group's estimate and se its standard error).
+
+    columns: group-level columns (the predictors of a model that explains why groups differ), name -> one
+    text value per group (an object array aligned with labels); numbers are kept as their text and read as
+    numbers where a model asks for a numeric predictor (model.build).
     """
 
     labels: tuple[str, ...]
@@ -54,6 +58,7 @@ class GroupStats:
     source: str = "<frame>"
     file_sha256: str | None = None
     meta: dict = field(default_factory=dict)
+    columns: dict = field(default_factory=dict)
 
     def __post_init__(self):
         if self.mean_lo is None:
@@ -63,6 +68,14 @@ class GroupStats:
             if arr.shape != (len(self.labels),):
                 raise ValueError(f"GroupStats.{name} has shape {arr.shape}, expected ({len(self.labels)},)")
             arr.setflags(write=False)
+        cols = {}
+        for name, values in dict(self.columns).items():
+            arr = np.asarray(values, dtype=object)
+            if arr.shape != (len(self.labels),):
+                raise ValueError(f"GroupStats.columns['{name}'] has shape {arr.shape}, expected ({len(self.labels)},)")
+            arr.setflags(write=False)
+            cols[str(name)] = arr
+        object.__setattr__(self, "columns", cols)
 
     @property
     def J(self) -> int:
@@ -103,6 +116,8 @@ class GroupStats:
         h.update("\x1f".join(self.labels).encode("utf-8", "surrogatepass"))
         for arr in (self.n, self.mean, self.mean_lo, self.m2) + ((self.se,) if self.se is not None else ()):
             h.update(np.ascontiguousarray(arr, dtype=np.float64).tobytes())
+        for name in sorted(self.columns):  # group-level columns, when there are any
+            h.update(("\x1e" + name + "\x1d" + "\x1f".join(self.columns[name])).encode("utf-8", "surrogatepass"))
         return h.hexdigest()
 
     def to_frame(self) -> pd.DataFrame:
@@ -120,7 +135,41 @@ class GroupStats:
             tuple(np.asarray(self.labels, dtype=object)[keep]), self.n[keep].copy(), self.mean[keep].copy(),
             self.m2[keep].copy(), None if self.se is None else self.se[keep].copy(), self.mean_lo[keep].copy(),
             self.kind, self.unit, self.source, self.file_sha256, dict(self.meta),
+            {name: v[keep] for name, v in self.columns.items()},
         )
+
+    def with_columns(self, values: dict) -> GroupStats:
+        """The same statistics with group-level columns added (or replaced): values maps a column name to a
+        mapping label -> value (every group must have one) or to a sequence aligned with the labels. Values
+        are kept as text (numbers as their shortest text); an empty value is refused, naming the group.
+
+        >>> s = GroupStats(("a", "b"), np.array([2, 2]), np.array([1.0, 2.0]), np.array([0.5, 0.5]))
+        >>> s.with_columns({"method": {"a": "X", "b": "Y"}}).columns["method"].tolist()
+        ['X', 'Y']
+        """
+        cols = dict(self.columns)
+        for name, given in values.items():
+            if isinstance(given, dict):
+                missing = [lab for lab in self.labels if lab not in given]
+                if missing:
+                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has no "
+                                     f"value for group {_show(missing[0])}")
+                seq = [given[lab] for lab in self.labels]
+            else:
+                seq = list(given)
+                if len(seq) != self.J:
+                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has "
+                                     f"{len(seq)} values for {self.J} groups")
+            out = np.empty(self.J, dtype=object)
+            for j, (lab, x) in enumerate(zip(self.labels, seq)):
+                text = cell_text(x)
+                if text is None:
+                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(lab)}: "
+                                     "expected a value for the group-level column, found an empty cell")
+                out[j] = text
+            cols[str(name)] = out
+        return GroupStats(self.labels, self.n, self.mean, self.m2, self.se, self.mean_lo, self.kind, self.unit,
+                          self.source, self.file_sha256, dict(self.meta), cols)
 
 
 def _two_sum(a, b):
@@ -167,7 +216,34 @@ def merge(a: GroupStats, b: GroupStats, source: str | None = None) -> GroupStats
     running.add(a.labels, a.n, a.mean, a.mean_lo, a.m2)
     running.add(b.labels, b.n, b.mean, b.mean_lo, b.m2)
     whole = a.n.dtype.kind in "iu" and b.n.dtype.kind in "iu"
-    return running.stats(a.unit, source or f"{a.source} + {b.source}", None, whole=whole)
+    out = running.stats(a.unit, source or f"{a.source} + {b.source}", None, whole=whole)
+    if a.columns or b.columns:
+        out = out.with_columns(merge_columns(a, b, out.labels))
+    return out
+
+
+def merge_columns(a: GroupStats, b: GroupStats, labels) -> dict:
+    """Group-level columns of two sets of statistics, group by group: a group in both must have the same value in
+    each column (refused otherwise, naming the group and both values), and every group needs a value."""
+    out = {}
+    for name in sorted(set(a.columns) | set(b.columns)):
+        got: dict[str, str] = {}
+        for s in (a, b):
+            if name not in s.columns:
+                continue
+            for lab, x in zip(s.labels, s.columns[name]):
+                prev = got.setdefault(lab, x)
+                if prev != x and not _same_number(prev, x):
+                    raise InputError(f"bad input in {_where(b.source)}, column '{name}', group {_show(lab)}: a "
+                                     f"group-level column holds one value per group; found {_show(prev)} in "
+                                     f"{_where(a.source)} and {_show(x)} here")
+        missing = [lab for lab in labels if lab not in got]
+        if missing:
+            side = a if name not in b.columns else b
+            raise InputError(f"bad input in {_where(side.source)}: the group-level column '{name}' has no value for "
+                             f"group {_show(missing[0])}")
+        out[name] = got
+    return out
 
 
 def to_unit(s: GroupStats, unit: float) -> GroupStats:
@@ -177,7 +253,7 @@ def to_unit(s: GroupStats, unit: float) -> GroupStats:
     f = s.unit / unit
     return GroupStats(s.labels, s.n.copy(), s.mean * f, s.m2 * f * f, se=None if s.se is None else s.se * f,
                       mean_lo=s.mean_lo * f, kind=s.kind, unit=unit, source=s.source, file_sha256=s.file_sha256,
-                      meta=dict(s.meta))
+                      meta=dict(s.meta), columns=dict(s.columns))
 
 
 def choose_unit(*arrays) -> float:
@@ -379,6 +455,116 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, str
     return labels
 
 
+# ---------------------------------------------------------------------------------------------
+# group-level columns (predictors): one value per group
+
+
+def cell_text(x) -> str | None:
+    """A group-level cell as text: text as it is (blanks around it dropped), a whole number as digits ('2', also for
+    2.0), another number by its shortest repr; None for an empty or missing cell."""
+    if x is None:
+        return None
+    if isinstance(x, (bool, np.bool_)):
+        return str(bool(x)).lower()
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
+    if isinstance(x, (float, np.floating)):
+        x = float(x)
+        if not np.isfinite(x):
+            return None
+        return str(int(x)) if x.is_integer() and abs(x) < 2**53 else repr(x)
+    try:
+        if pd.isna(x):
+            return None
+    except (TypeError, ValueError):
+        pass
+    text = str(x).strip()
+    return text or None
+
+
+def _same_number(a: str, b: str) -> bool:
+    """'5' and '5.0' (or '1e1' and '10'): different text, the same number."""
+    try:
+        return float(a) == float(b)
+    except ValueError:
+        return False
+
+
+def _column_text(raw: pd.Series, source: str, column: str, row_offset: int) -> np.ndarray:
+    """A group-level column of a chunk as text per row (cell_text); an empty cell or a control character is
+    refused, naming the row."""
+    if raw.dtype.kind in "fiub":
+        values = [cell_text(x) for x in raw.to_numpy()]
+    else:
+        text = _as_text(raw, source, column, row_offset)
+        values = [None if x is pd.NA or x is None else (x.strip() or None) for x in text.to_numpy(dtype=object)]
+    out = np.empty(len(values), dtype=object)
+    for i, x in enumerate(values):
+        if x is None:
+            raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a "
+                             "value of the group-level column, found an empty cell")
+        out[i] = x
+    distinct = pd.unique(out)
+    bad = [x for x in distinct if re.search(_BAD_LABEL_CHARS, x)]
+    if bad:
+        i = int(np.flatnonzero(out == bad[0])[0])
+        ch = re.search(_BAD_LABEL_CHARS, bad[0]).group()
+        raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected text, "
+                         f"found the control character U+{ord(ch):04X}")
+    return out
+
+
+class _PerGroup:
+    """The value of each group-level column per group, read row by row (chunks of a long table): the first value
+    of a group and its row are kept, and a later row of the same group with another value is refused, naming the
+    group, both rows and both values (numbers written two ways, '5' and '5.0', count as one value)."""
+
+    def __init__(self, names, source: str):
+        self.names = tuple(names)
+        self.source = source
+        self.first: dict[str, dict[str, tuple[str, int]]] = {name: {} for name in self.names}
+
+    def add(self, labels: pd.Series, df: pd.DataFrame, row_offset: int) -> None:
+        labs = np.asarray(labels.to_numpy(), dtype=object)
+        for name in self.names:
+            text = _column_text(df[name], self.source, name, row_offset)
+            pairs = pd.DataFrame({"g": labs, "v": text})
+            first = ~pairs.duplicated(["g", "v"]).to_numpy()  # only distinct (group, value) pairs need a look
+            seen = self.first[name]
+            for i in np.flatnonzero(first):
+                g, v = labs[i], text[i]
+                prev = seen.get(g)
+                if prev is None:
+                    seen[g] = (v, row_offset + int(i) + 1)
+                elif prev[0] != v and not _same_number(prev[0], v):
+                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(g)}: a "
+                                     f"group-level column must hold one value per group; found {_show(prev[0])} in "
+                                     f"row {prev[1]} and {_show(v)} in row {row_offset + int(i) + 1}")
+
+    def values(self, labels) -> dict[str, list[str]]:
+        return {name: [self.first[name][lab][0] for lab in labels] for name in self.names}
+
+
+def _one_row_columns(data: pd.DataFrame, labels: pd.Series, names, source: str) -> dict[str, list[str]]:
+    """Group-level columns of a table with one row per group (summaries, estimates)."""
+    out = {}
+    for name in names:
+        out[name] = list(_column_text(data[name], source, name, 0))
+    return out
+
+
+def _check_column_names(group_columns, taken, source: str):
+    """Group-level columns must be named once and differ from the columns that hold the statistics."""
+    names = [str(c) for c in group_columns]
+    for c in names:
+        if names.count(c) > 1:
+            raise InputError(f"bad options: the group-level column '{c}' is named twice")
+        if c in taken:
+            raise InputError(f"bad options: '{c}' is the column of the {taken[c]}; a group-level column must be "
+                             "another column")
+    return tuple(names)
+
+
 def _require_columns(columns, wanted: dict[str, str], source: str):
     cols = [str(c) for c in columns]
     for role, col in wanted.items():
@@ -389,22 +575,29 @@ def _require_columns(columns, wanted: dict[str, str], source: str):
             raise InputError(f"bad input in {_where(source)}: the column name '{col}' appears {cols.count(col)} times in the header")
 
 
-def from_frame(df: pd.DataFrame, group: str, value: str, source: str = "<frame>") -> GroupStats:
-    """Statistics of a long table: one row per measurement, a group column and a value column.
+def from_frame(df: pd.DataFrame, group: str, value: str, source: str = "<frame>", group_columns=()) -> GroupStats:
+    """Statistics of a long table: one row per measurement, a group column and a value column (and
+    `group_columns` that hold one value per group, as in read_table).
 
     >>> import pandas as pd
     >>> s = from_frame(pd.DataFrame({"lab": ["a", "a", "b"], "y": [1.0, 3.0, 2.0]}), "lab", "y")
     >>> s.labels, s.n.tolist(), s.mean.tolist(), s.m2.tolist()
     (('a', 'b'), [2, 1], [2.0, 2.0], [2.0, 0.0])
     """
-    _require_columns(df.columns, {"group": group, "value": value}, source)
+    extra = _check_column_names(group_columns, {group: "group labels", value: "measurements"}, source)
+    _require_columns(df.columns, {"group": group, "value": value, **_roles([], extra)}, source)
     if len(df) == 0:
         raise InputError(f"bad input in {_where(source)}: no data rows")
     labels_raw = _check_groups(df[group], source, group, 0)
     vals = _check_values(df[value], source, value, 0)
     unit = choose_unit(vals)
     labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals)
-    return GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source)
+    out = GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source)
+    if extra:
+        per_group = _PerGroup(extra, source)
+        per_group.add(labels_raw, df, 0)
+        out = out.with_columns(per_group.values(labels))
+    return out
 
 
 def _sha256_file(path: Path) -> str:
@@ -477,12 +670,22 @@ def _detect_encoding(path: Path, encoding: str | None) -> str:
         return "cp1252"
 
 
+def _roles(columns, text_columns=()) -> dict[str, str]:
+    """Role -> column for the header check: the first columns by their roles, group-level columns by name."""
+    roles = dict(zip(("group", "value", "extra", "extra2"), [c for c in columns if c not in text_columns]))
+    roles.update({f"group-level '{c}'": c for c in text_columns})
+    return roles
+
+
 def iter_table_chunks(path, columns: list[str], encoding: str | None = None, delimiter: str | None = None,
-                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None):
+                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None,
+                      text_columns=()):
     """Yield (row_offset, DataFrame) chunks holding `columns` of a CSV or Parquet file.
 
     `thousands` is a digit-group separator inside numbers (for example ","), `decimal` the decimal mark
     (default "."). A CSV row with more fields than the header is refused rather than read shifted.
+    `text_columns` (some of `columns`, after the first) are read as text (group-level columns), the others
+    after the first as numbers.
     """
     path = _open_check(path)
     src = str(path)
@@ -493,7 +696,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             pf = pq.ParquetFile(path)
         except Exception as exc:  # pyarrow raises several types for a damaged file
             raise InputError(f"bad input in '{src}': not a readable Parquet file ({_one_line(exc)})") from None
-        _require_columns(pf.schema_arrow.names, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
+        _require_columns(pf.schema_arrow.names, _roles(columns, text_columns), src)
         offset = 0
         for batch in pf.iter_batches(batch_size=chunk_rows, columns=columns):
             df = batch.to_pandas()
@@ -508,7 +711,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
         raw_header, first_row = _first_rows(path, enc, sep)
         if raw_header is None:
             raise InputError(f"bad input in '{src}': the file has no header and no data")
-        _require_columns(raw_header, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
+        _require_columns(raw_header, _roles(columns, text_columns), src)
         if first_row is not None and any(c.strip() for c in first_row[len(raw_header):]):
             # pandas would take the surplus as an index and shift every column by one
             raise InputError(f"bad input in '{src}', row 1: expected {len(raw_header)} fields as in the header, found "
@@ -516,7 +719,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
         header = list(pd.read_csv(path, sep=sep, nrows=0, encoding=enc, skipinitialspace=True).columns)
         names = [str(c).strip() for c in header]
         where = [names.index(c) for c in columns]
-        numeric = [header[i] for i in where[1:]]
+        numeric = [header[i] for i in where[1:] if names[i] not in text_columns]
         # every other column is read as text: no type guessing, no mixed-type warnings
         text = {c: str for c in header if c not in numeric}
         rows = chunk_rows if len(header) <= 8 else max(1, chunk_rows * 8 // len(header))
@@ -592,46 +795,62 @@ def _first_rows(path: Path, enc: str, sep: str) -> tuple[list[str] | None, list[
 
 
 def read_table(path, group: str, value: str, *, encoding: str | None = None, delimiter: str | None = None,
-               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None) -> GroupStats:
+               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None,
+               group_columns=()) -> GroupStats:
     """Statistics of a long table in a CSV or Parquet file, read in chunks of `chunk_rows` rows.
 
     Peak memory grows with the number of groups and the chunk size, not with the file's rows.
-    Blanks around a group label in a CSV are not part of it.
+    Blanks around a group label in a CSV are not part of it. `group_columns`: columns that hold one value per
+    group (predictors such as a lab's method); a group whose rows disagree is refused, naming both rows.
     """
     src = str(path)
     running = _Running()
     unit = None
     csv_file = not _is_parquet(_open_check(path))
-    for offset, df in iter_table_chunks(path, [group, value], encoding, delimiter, chunk_rows, thousands, decimal):
+    extra = _check_column_names(group_columns, {group: "group labels", value: "measurements"}, src)
+    per_group = _PerGroup(extra, src) if extra else None
+    for offset, df in iter_table_chunks(path, [group, value, *extra], encoding, delimiter, chunk_rows, thousands,
+                                        decimal, text_columns=extra):
         labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
         vals = _check_values(df[value], src, value, offset)
         unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
         running.add(*_reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals))
-    return running.stats(1.0 if unit is None else unit, src, _sha256_file(Path(path)))
+        if per_group is not None:
+            per_group.add(labels_raw, df, offset)
+    out = running.stats(1.0 if unit is None else unit, src, _sha256_file(Path(path)))
+    return out.with_columns(per_group.values(out.labels)) if per_group is not None else out
 
 
-def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None) -> pd.DataFrame:
-    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal)]
+def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None,
+                text_columns=()) -> pd.DataFrame:
+    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal,
+                                               text_columns=text_columns)]
     df = pd.concat(parts, ignore_index=True)
     if not _is_parquet(Path(path)):  # blanks around a label in a CSV are formatting, as in read_table
         df[columns[0]] = df[columns[0]].str.strip()
     return df
 
 
-def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", **read) -> GroupStats:
-    """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1).
+def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", group_columns=(),
+                   **read) -> GroupStats:
+    """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1), and
+    `group_columns` (predictors: one value per group).
 
     A group of one measurement has no sample sd, and tables write it as an empty cell: with n = 1 an empty sd
     is taken as it is meant (M2 = 0). Such a group informs its mean theta_j, not the within-group variance.
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
+    where = str(data) if not isinstance(data, pd.DataFrame) else source
+    extra = _check_column_names(group_columns, {group: "group labels", n: "sizes", mean: "means",
+                                                sd: "standard deviations"}, where)
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         sha = _sha256_file(_open_check(data))
-        data = _read_whole(data, [group, n, mean, sd], **read)
+        data = _read_whole(data, [group, n, mean, sd, *extra], text_columns=extra, **read)
     else:
         sha = None
-    _require_columns(data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd}, source)
+    _require_columns(data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd,
+                                    **_roles([], extra)}, source)
     labels = _check_groups(data[group], source, group, 0)
     _check_unique(labels, source, group)
     nv = _check_values(data[n], source, n, 0)
@@ -651,7 +870,8 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
     unit = choose_unit(mv, sv)
     mv, sv = mv / unit, sv / unit
     m2 = sv * sv * np.maximum(nv - 1, 0)
-    return GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
+    out = GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
+    return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
 
 
 def _empty_cells(col: pd.Series) -> np.ndarray:
@@ -663,18 +883,22 @@ def _empty_cells(col: pd.Series) -> np.ndarray:
 
 
 def from_estimates(data, group: str, estimate: str, std_error: str, source: str = "<frame>",
-                   n: str | None = None, **read) -> GroupStats:
-    """Statistics for the `known` structure: one estimate and its standard error per group.
+                   n: str | None = None, group_columns=(), **read) -> GroupStats:
+    """Statistics for the `known` structure: one estimate and its standard error per group (and `group_columns`,
+    predictors: one value per group).
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
-    cols = [group, estimate, std_error] + ([n] if n else [])
+    taken = {group: "group labels", estimate: "estimates", std_error: "standard errors", **({n: "sizes"} if n else {})}
+    extra = _check_column_names(group_columns, taken, str(data) if not isinstance(data, pd.DataFrame) else source)
+    cols = [group, estimate, std_error] + ([n] if n else []) + list(extra)
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         sha = _sha256_file(_open_check(data))
-        data = _read_whole(data, cols, **read)
+        data = _read_whole(data, cols, text_columns=extra, **read)
     else:
         sha = None
-    _require_columns(data.columns, {"group": group, "estimate": estimate, "standard error": std_error}, source)
+    _require_columns(data.columns, {"group": group, "estimate": estimate, "standard error": std_error,
+                                    **_roles([], extra)}, source)
     labels = _check_groups(data[group], source, group, 0)
     _check_unique(labels, source, group)
     est = _check_values(data[estimate], source, estimate, 0)
@@ -686,8 +910,9 @@ def from_estimates(data, group: str, estimate: str, std_error: str, source: str 
                          f"expected a standard error > 0, found {se[i]:g}")
     nn = np.zeros(len(est), dtype=np.int64) if n is None else _check_values(data[n], source, n, 0).astype(np.int64)
     unit = choose_unit(est, se)
-    return GroupStats(tuple(labels), nn, est / unit, np.zeros(len(est)), se=se / unit, kind="known", unit=unit,
-                      source=source, file_sha256=sha)
+    out = GroupStats(tuple(labels), nn, est / unit, np.zeros(len(est)), se=se / unit, kind="known", unit=unit,
+                     source=source, file_sha256=sha)
+    return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
 
 
 def _check_unique(labels: pd.Series, source: str, column: str):
