@@ -20,6 +20,7 @@ Block B, the variances given theta:
 A Scaled-Inv-chi2(k, S/k) draw is S / chi2(k) = S / (2 Gamma(k/2, 1)).
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 

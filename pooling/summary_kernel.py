@@ -29,6 +29,7 @@ rank_intervals. Kept groups: exact ranks each draw from their sorted values and 
 that counts how many kept values each group exceeds (a lookup table over the kept range).
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 
