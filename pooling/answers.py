@@ -24,6 +24,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
+
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 from numba import njit
 
 # running means (rows of `run`); M2 for theta

@@ -52,6 +52,7 @@ it did before heavy tails existed, draw for draw (tests/test_kernel_api.py pins 
 predictors take a separate branch (p > 0) and leave that path untouched.
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 from typing import NamedTuple

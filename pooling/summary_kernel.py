@@ -33,6 +33,7 @@ its level and the half-width that bounds its error; P(best in the level) is an e
 each level, a stable first-wins scan as for P(best)).
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 from typing import NamedTuple

@@ -67,7 +67,7 @@ def _marker_area(n: np.ndarray, most: float) -> np.ndarray:
     """Marker area in px^2 proportional to n (largest group: `most`), at least a visible dot."""
     n = np.asarray(n, dtype=float)
     top = np.nanmax(n) if n.size else 0.0
-    if not top > 0:
+    if not (top > 0 and np.isfinite(top)):  # no sizes, or 1/se^2 beyond the float range: equal markers
         return np.full(n.shape, most / 3)
     return np.maximum(most * n / top, 5.0)
 
