@@ -12,6 +12,7 @@ from pathlib import Path
 from . import errors as E
 
 DEMO_FILE = "demo_castings.csv"
+REPORT_RANGE = 1e100  # reporter options, like data (stats.choose_unit), stay within magnitudes 1e-100 to 1e100
 
 
 # ---------------------------------------------------------------------------------------------
@@ -60,13 +61,18 @@ def _nu(args):
     return m.NuGrid()
 
 
-NU_MAX = 1e12
+NU_MIN, NU_MAX = 1e-6, 1e12
 
 
 def _nu_value(text: str, option: str) -> float:
-    """A nu of at most 1e12: beyond it every sigma_j^2 equals s^2 to about 1e-6 (relative sd sqrt(2/nu)),
+    """A nu from 1e-6 to 1e12. nu counts prior pseudo-measurements of each group's variance: below 1e-6
+    it adds less than a millionth of one measurement (and values near the smallest double break the
+    report's scales); above 1e12 every sigma_j^2 equals s^2 to about 1e-6 (relative sd sqrt(2/nu)),
     which is the shared structure, and draws of nu near 1e308 overflow any sum of them."""
     x = _num(text, option)
+    if 0 < x < NU_MIN:
+        raise E.InputError(f"bad option {option}: nu below {NU_MIN:.0e} adds less than a millionth of a measurement "
+                           f"to each group's variance; give a nu of at least {NU_MIN:.0e}; found '{text}'")
     if x > NU_MAX:
         raise E.InputError(f"bad option {option}: nu above {NU_MAX:.0e} makes every group's variance equal s^2 to "
                            f"about 1e-6; use --within shared instead; found '{text}'")
@@ -144,12 +150,19 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
             raise argparse.ArgumentTypeError(f"expected a number, found '{text}'") from None
         if x != x or x in (float("inf"), float("-inf")):
             raise argparse.ArgumentTypeError(f"expected a finite number, found '{text}'")
+        # the reporter computes in the user's units, as for data (stats.choose_unit): within 1e+-100
+        if abs(x) > REPORT_RANGE:
+            raise argparse.ArgumentTypeError(f"expected a number of magnitude at most {REPORT_RANGE:.0e} (the "
+                                             f"range the report computes in), found '{text}'")
         return x
 
     def _positive(text):
         x = _finite(text)
         if x <= 0:
             raise argparse.ArgumentTypeError(f"expected a number above 0, found '{text}'")
+        if x < 1 / REPORT_RANGE:
+            raise argparse.ArgumentTypeError(f"expected a number of at least {1 / REPORT_RANGE:.0e} (the range the "
+                                             f"report computes in), found '{text}'")
         return x
 
     def _level(text):

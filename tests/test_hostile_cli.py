@@ -203,8 +203,11 @@ CASES = [
     ("opt: --draws abc (argparse)", {"in.csv": GOOD}, FIT + ["--draws", "abc"], 2, ["--draws", "'abc'"]),
     ("opt: no --group (argparse)", {"in.csv": GOOD}, ["fit", "in.csv", "--value", "y", "--out", "run"], 2, ["--group"]),
     ("opt: --nu-grid 1e308", {"in.csv": GOOD}, FIT + ["--nu-grid", "1e308,2e308"], 2, ["--nu-grid", "--within shared"]),
+    ("opt: --nu 1e-320", {"in.csv": GOOD}, FIT + ["--nu", "1e-320"], 2, ["--nu", "at least 1e-06"]),
     ("opt: --tau half-cauchy:-1", {"in.csv": GOOD}, FIT + ["--tau", "half-cauchy:-1"], 2, ["tau"]),
     ("opt: --level 1.5", {"in.csv": GOOD}, FIT + ["--level", "1.5"], 2, ["--level"]),
+    ("opt: --threshold 1.7e308", {"in.csv": GOOD}, FIT + ["--threshold", "1.7e308"], 2, ["--threshold", "1e+100"]),
+    ("opt: --sigma-pt 1e-320", {"in.csv": GOOD}, FIT + ["--sigma-pt", "1e-320"], 2, ["--sigma-pt", "1e-100"]),
     ("opt: --compare unknown", {"in.csv": GOOD}, FIT + ["--compare", "nope"], 2, ["'nope'"]),
     # inputs
     ("in: missing file", {}, FIT, 2, ["'in.csv' does not exist"]),
