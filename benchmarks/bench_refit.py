@@ -79,7 +79,7 @@ def main() -> int:
         sample = {b[0]: [] for b in built}
         plans = {}
         for _ in range(ROUNDS):
-            for name, J, B, store, _, _ in built:
+            for name, _J, _B, store, _, _ in built:
                 for _ in range(REPEATS):
                     t0 = time.perf_counter()
                     plans[name] = jobs.plan_refit(store, force=True)

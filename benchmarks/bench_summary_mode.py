@@ -61,7 +61,6 @@ def child(J: int, mode: str) -> dict:
     from pooling.results import compute
     from pooling import summary
     from pooling.asked import ReportOptions
-    from pooling.output import write_report
 
     stats = invented_groups(J, tau=1.0, sigma=2.0, n_lo=2, n_hi=12, seed=1)
     settings = pooling.Settings(chains=CHAINS, warmup=WARMUP, draws=DRAWS, max_draws=DRAWS, seed=1, threads=THREADS)

@@ -35,14 +35,22 @@ def check_limits(lower, upper) -> None:
 
 
 def level_label(level: float) -> str:
-    """'95%' for 0.95, '97.5%' for 0.975: how the level names an interval."""
+    """'95%' for 0.95, '97.5%' for 0.975: how the level names an interval.
+
+    >>> level_label(0.95), level_label(0.975), level_label(0.9995)
+    ('95%', '97.5%', '99.95%')
+    """
     pct = level * 100
     return f"{pct:.0f}%" if abs(pct - round(pct)) < 1e-9 else f"{pct:.1f}%" if abs(pct * 10 - round(pct * 10)) < 1e-9 \
         else f"{pct:.2f}%"
 
 
 def level_key(level: float) -> str:
-    """The suffix of interval columns and keys for a level: '95' for 0.95, '97_5' for 0.975."""
+    """The suffix of interval columns and keys for a level: '95' for 0.95, '97_5' for 0.975.
+
+    >>> level_key(0.95), level_key(0.975)
+    ('95', '97_5')
+    """
     return level_label(level).rstrip("%").replace(".", "_")
 
 

@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -149,7 +149,12 @@ def gamma_df_weights(grid: tuple[float, ...], rate: float = DF_PRIOR_RATE, norma
     """Prior weights on a df grid from the Gamma(2, rate) density on df: each finite point gets the mass of
     its cell (edges at the geometric midpoints between neighbours; the first cell from 0, the last finite
     one up to `normal_from`, or up to the last finite point if that is larger), and df = inf gets the mass
-    above that edge."""
+    above that edge.
+
+    >>> w = gamma_df_weights((1.0, 4.0, math.inf))
+    >>> round(sum(w), 12), w[-1] == 1.0 - _gamma2_cdf(DF_NORMAL_FROM, DF_PRIOR_RATE)
+    (1.0, True)
+    """
     finite = sorted(g for g in grid if not math.isinf(g))
     if finite:
         normal_from = max(normal_from, finite[-1])
@@ -231,7 +236,11 @@ class HeavyBetween:
 
 
 def parse_between(text) -> NormalBetween | HeavyBetween:
-    """'normal', 'heavy' (df learned) or 'heavy:DF' (df fixed; 'heavy:inf' is the normal limit as a t model)."""
+    """'normal', 'heavy' (df learned) or 'heavy:DF' (df fixed; 'heavy:inf' is the normal limit as a t model).
+
+    >>> parse_between("normal").name, parse_between("heavy").name, parse_between("heavy:4").name
+    ('normal', 'heavy', 'heavy:4')
+    """
     if isinstance(text, (NormalBetween, HeavyBetween)):
         return text
     if not isinstance(text, str):
@@ -341,7 +350,7 @@ class Model:
     tau: Flat | HalfNormal | HalfCauchy = field(default_factory=Flat)
     s2: Reciprocal | Gamma = field(default_factory=Reciprocal)
     nu: NuFixed | NuGrid = field(default_factory=NuGrid)
-    between: NormalBetween | HeavyBetween | str = field(default_factory=HeavyBetween)
+    between: NormalBetween | HeavyBetween = field(default_factory=HeavyBetween)  # a text such as "heavy:4" is parsed
     predictors: tuple[Category | Numeric, ...] = ()
     effects: Flat | Normal = field(default_factory=Flat)
 
@@ -393,7 +402,7 @@ class Model:
             prior = (x.prior or self.effects).describe()
             what = (f"categorical '{x.column}', contrasts against the reference level "
                     + (f"'{x.reference}'" if x.reference is not None else "with the most groups")
-                    if x.kind == "category" else f"numeric '{x.column}', centred at its mean over the groups")
+                    if isinstance(x, Category) else f"numeric '{x.column}', centred at its mean over the groups")
             out[f"effects of {x.column}"] = f"{prior} ({what})"
         if self.within == "separate":
             out["s2"] = self.s2.describe()
@@ -571,8 +580,9 @@ class Problem:
         table, layout = kernel.prepare(n, d.nu_grid)
         design = None if self.design is None else self.design.subset(idx)
         data = d._replace(n=n, ybar=np.ascontiguousarray(d.ybar[idx]), m2=np.ascontiguousarray(d.m2[idx]),
-                          v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout,
-                          **({"X": design.X, "XT": np.ascontiguousarray(design.X.T)} if design is not None else {}))
+                          v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout)
+        if design is not None:
+            data = data._replace(X=design.X, XT=np.ascontiguousarray(design.X.T))
         return Problem(self.model, self.stats.subset(idx), self.center, self.scale, data, design)
 
 
@@ -586,11 +596,11 @@ def _check_statistics(stats: GroupStats):
     if len(set(stats.labels)) != stats.J or not all(isinstance(lab, str) for lab in stats.labels):
         _refuse("bad model: the group labels must be distinct strings")
     check_unicode_twins(stats.labels, stats.source)  # every path to the sampler passes here
-    checks = [("n", stats.n, stats.n > 0 if stats.kind == "raw" else stats.n >= 0, "a size above 0"),
+    checks: list[tuple[str, Any, Any, str]] = [("n", stats.n, stats.n > 0 if stats.kind == "raw" else stats.n >= 0, "a size above 0"),
               ("mean", stats.mean + stats.mean_lo, None, "a finite mean"),
               ("m2", stats.m2, stats.m2 >= 0, "a sum of squared deviations >= 0")]
     if stats.kind == "known":
-        checks.append(("se", stats.se, stats.se > 0, "a standard error above 0"))
+        checks.append(("se", _se(stats), _se(stats) > 0, "a standard error above 0"))
     for name, arr, ok, what in checks:
         ok = np.isfinite(arr) if ok is None else ok & np.isfinite(arr)
         if not np.all(ok):
@@ -646,7 +656,7 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
     ybar = ((stats.mean - center) + stats.mean_lo) / scale
     n = stats.n.astype(np.float64)
     m2 = stats.m2 / (scale * scale)
-    v_known = (stats.se / scale) ** 2 if stats.kind == "known" else np.zeros(stats.J)
+    v_known = (_se(stats) / scale) ** 2 if stats.kind == "known" else np.zeros(stats.J)
     # from here on centre and scale are in the user's units (the stored unit folded in)
     center, scale = center * stats.unit, scale * stats.unit
     mu_kind, mu_loc, mu_scale = MU_FLAT, 0.0, 1.0
@@ -710,7 +720,7 @@ def _design(stats: GroupStats, model: Model, scale: float) -> Design:
                     "read it with the statistics (--category or --numeric on the command line; group_columns=[...] "
                     "in pooling.read_table and the other readers)")
         values = have[x.column]
-        if x.kind == "category":
+        if isinstance(x, Category):
             counts: dict[str, int] = {}
             for v in values:
                 counts[v] = counts.get(v, 0) + 1
@@ -827,6 +837,13 @@ def _effect_priors(model: Model, design: Design) -> tuple[np.ndarray, np.ndarray
     return loc, prec
 
 
+def _se(stats: GroupStats) -> np.ndarray:
+    """The standard errors of a table of known-variance groups (checked present by `check_stats`)."""
+    if stats.se is None:
+        raise ValueError("a table of kind 'known' without standard errors")
+    return stats.se
+
+
 def _center_scale(stats: GroupStats) -> tuple[float, float]:
     """An offset and scale (in the stored unit) that make the data of order one; a power-of-two scale keeps
     rescaling lossless."""
@@ -834,7 +851,7 @@ def _center_scale(stats: GroupStats) -> tuple[float, float]:
     center = float(np.median(stats.mean))
     dev = (stats.mean - center) + stats.mean_lo
     if stats.kind == "known":
-        spread2 = float(np.mean(dev * dev) + np.mean(stats.se ** 2))
+        spread2 = float(np.mean(dev * dev) + np.mean(_se(stats) ** 2))
     else:
         spread2 = float((np.sum(stats.m2) + np.sum(w * dev * dev)) / max(np.sum(w), 1.0))
     if not (spread2 > 0 and math.isfinite(spread2)):

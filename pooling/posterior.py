@@ -122,7 +122,7 @@ class Fit:
         if name in SCALED:
             x = x * p.scale + (p.center if SCALED[name] else 0.0)
         elif name == "beta":
-            x = x * p.design.to_user
+            x = x * _design(p).to_user
         elif name == "lambda":
             x = x.astype(np.float64)
         return x.reshape((-1,) + x.shape[2:])
@@ -212,8 +212,8 @@ def parts(raw: RawDraws, problem: Problem, packed: bool) -> dict[str, Part]:
     if raw.beta is not None:
         # each coefficient has its own unit (the data's, or the data's per unit of a numeric column), and CF allows
         # one scale_factor per variable, so beta is written in the user's units (differences: no offset to lose)
-        post.coords["coefficient"] = np.array(problem.design.names, dtype=object)
-        post.add("beta", ("chain", "draw", "coefficient"), raw.beta * problem.design.to_user,
+        post.coords["coefficient"] = np.array(_design(problem).names, dtype=object)
+        post.add("beta", ("chain", "draw", "coefficient"), raw.beta * _design(problem).to_user,
                  {"meaning": "effects of the group-level predictors: each group's centre is mu + x_j' beta (contrasts "
                              "against the reference level; numeric predictors centred at their mean over the groups)"})
     sstats = Part({}, {"chain": chain, "draw": draw}, dict(attrs))
@@ -245,7 +245,7 @@ def idata_from_parts(parts_: dict[str, Part]) -> "az.InferenceData":
         used = {d for dims, _, _ in part.variables.values() for d in dims}
         coords = {d: values for d, values in part.coords.items() if d in used}
         groups[name] = xr.Dataset(data, coords=coords, attrs=dict(part.attrs))
-    return az.InferenceData(**groups)
+    return az.InferenceData(**groups)  # type: ignore[arg-type]  # arviz's stub types the groups' keywords as bool
 
 
 def summarize_draws(x: np.ndarray, level: float = 0.95, scale: float = 1.0, center: float = 0.0) -> dict:
@@ -279,3 +279,10 @@ def finish(raw: RawDraws, problem: Problem) -> Fit:
     """A Fit of the sampler's draws; the misses are those of its last diagnostics round."""
     misses = raw.rounds[-1]["missed_list"] if raw.rounds else []
     return Fit(problem, raw, misses)
+
+
+def _design(problem):
+    """The predictors' design of a problem that has coefficients (their draws exist only then)."""
+    if problem.design is None:
+        raise ValueError("coefficient draws for a problem without group-level predictors")
+    return problem.design

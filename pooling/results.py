@@ -27,6 +27,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -349,12 +350,13 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     run = np.zeros((C, A.N_R, J))
     hits = np.zeros((C, A.N_H, J), dtype=np.uint32)
     cuts = _df_cuts(p, dr.df, S).reshape(C, D)
+    beta = dr.beta if dr.beta is not None else np.empty((S, 0))
     for c in range(C):
         sig = dr.sigma[c * D:(c + 1) * D]
         lam = dr.lam[c * D:(c + 1) * D]
         A.accumulate_stored(d.within, d.n, d.v_known, raw.mu[c], raw.tau[c], raw.theta[c], sig, lam, cuts[c], a,
-                            run[c], hits[c], d.X, dr.beta[c * D:(c + 1) * D])
-    out = _merge_chains(run, D)
+                            run[c], hits[c], d.X, beta[c * D:(c + 1) * D])
+    out: dict[str, Any] = _merge_chains(run, D)
     h = hits.sum(axis=0, dtype=np.int64)
     out["hits"] = h
     probs = [(1 - o.level) / 2, (1 + o.level) / 2]
@@ -483,7 +485,7 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
     C, D = raw.mu.shape[0], acc.draws
     S = C * D
     probs = np.array([(1 - o.level) / 2, (1 + o.level) / 2])
-    out = _merge_chains(acc.run, D)
+    out: dict[str, Any] = _merge_chains(acc.run, D)
     h = acc.hits.sum(axis=0, dtype=np.int64)
     out["hits"] = h
     errors: dict[str, np.ndarray] = {}
@@ -594,7 +596,7 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
     J = p.J
     within = p.model.within
     h = g["hits"]
-    cols: dict[str, object] = {"group": np.array(st.labels, dtype=object)}
+    cols: dict[str, Any] = {"group": np.array(st.labels, dtype=object)}
     des = p.design
     if des is not None and des.level_names:
         cols["level"] = np.array(des.level_names, dtype=object)[des.level_of]

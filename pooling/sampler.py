@@ -13,6 +13,7 @@ import threading
 import time
 from concurrent.futures import FIRST_EXCEPTION, ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
+from typing import cast
 
 import numpy as np
 
@@ -128,10 +129,11 @@ class _Chain:
                 sc[kernel.DF_IDX] = len(p.df_grid) // 2
             theta[:] = init["theta"]
             sigma2[:] = init["sigma2"]
-            if p.heavy and len(init.get("lam") if init.get("lam") is not None else []) == J:
-                lam[:] = init["lam"]
-            if beta.size and len(init.get("beta") if init.get("beta") is not None else []) == beta.size:
-                beta[:] = init["beta"]
+            saved_lam, saved_beta = init.get("lam"), init.get("beta")
+            if p.heavy and saved_lam is not None and len(saved_lam) == J:
+                lam[:] = saved_lam
+            if beta.size and saved_beta is not None and len(saved_beta) == beta.size:
+                beta[:] = saved_beta
         self.state = kernel.State(sc, theta, sigma2, lam, beta)
         self.work = kernel.make_work(p.data)
         if p.heavy:
@@ -150,23 +152,20 @@ class _Chain:
     def run(self, p: Problem, n_sweeps: int, store: bool, adapt: bool, chunk: int, stop: threading.Event, tick):
         d = p.data
         into, self.into = self.into, None
-        if store and into is not None:  # this chain's slice of arrays shared by all chains (_preallocate)
-            out = into
-        elif store:
-            out = kernel.empty_draws(d, n_sweeps)._asdict()
-        else:
-            out = None
+        out: dict | None = None
+        if store:  # this chain's slice of arrays shared by all chains (_preallocate), or arrays of its own
+            out = into if into is not None else kernel.empty_draws(d, n_sweeps)._asdict()
         none = kernel.no_draws(d)
         done = 0
         while done < n_sweeps:
             if stop.is_set():
                 return
             k = min(chunk, n_sweeps - done)
-            rows = kernel.Draws(**{key: arr[done:done + k] for key, arr in out.items()}) if store else none
+            rows = kernel.Draws(**{key: arr[done:done + k] for key, arr in out.items()}) if out is not None else none
             kernel.sweeps(self.rng, k, adapt, d, self.state, self.work, rows, 0)
             done += k
             tick(k)
-        if store:
+        if out is not None:
             self.parts.append(out)
 
     def export_state(self) -> dict:
@@ -247,7 +246,7 @@ def _run_phase_timed(chains, problem, n_sweeps, store, adapt, threads, bar):
 
 def resolve_seed(settings: Settings) -> int:
     """The run's seed: the one given, or a fresh one (recorded in the summary so the run can be repeated)."""
-    return settings.seed if settings.seed is not None else int(np.random.SeedSequence().entropy % (2**63))
+    return settings.seed if settings.seed is not None else cast(int, np.random.SeedSequence().entropy) % (2**63)  # drawn fresh: an int
 
 
 def draw_until_targets(chains, problem: Problem, settings: Settings, threads: int, bar, seed: int, start: float,
@@ -318,9 +317,7 @@ def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws
         return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
 
     within = problem.within_code
-    sigma = stack("sigma") if within != 2 else None
-    if within == 1:
-        sigma = sigma[:, :, 0]
+    sigma = None if within == 2 else stack("sigma")[:, :, 0] if within == 1 else stack("sigma")
     heavy = problem.heavy
     return RawDraws(
         mu=stack("mu"), tau=stack("tau"), theta=stack("theta"), sigma=sigma,
@@ -343,7 +340,7 @@ def checked(raw: RawDraws) -> dict[str, np.ndarray]:
     named = {"mu": raw.mu, "tau": raw.tau, "theta": raw.theta}
     if raw.sigma is not None:
         named["sigma"] = raw.sigma
-    if raw.s is not None:
+    if raw.s is not None and raw.nu is not None:
         named["s"] = raw.s
         named["nu"] = raw.nu
     if raw.df is not None:

@@ -28,6 +28,7 @@ import stat
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Literal
 
 import numpy as np
 import pandas as pd
@@ -58,7 +59,7 @@ class GroupStats:
     mean: np.ndarray
     m2: np.ndarray
     se: np.ndarray | None = None
-    mean_lo: np.ndarray | None = None
+    mean_lo: np.ndarray = None  # type: ignore[assignment]  # None means zeros, filled in by __post_init__
     kind: str = "raw"
     unit: float = 1.0
     source: str = "<frame>"
@@ -318,7 +319,7 @@ class _Running:
                 grown[:, : self.acc.shape[1]] = self.acc
                 self.acc = grown
         a = self.acc[:, pos]
-        self.acc[0, pos], self.acc[1, pos], self.acc[2, pos], self.acc[3, pos] = merge_moments(*a, n, hi, lo, m2)
+        self.acc[0, pos], self.acc[1, pos], self.acc[2, pos], self.acc[3, pos] = merge_moments(a[0], a[1], a[2], a[3], n, hi, lo, m2)
 
     def stats(self, unit: float, source: str, sha: str | None, whole: bool = True) -> GroupStats:
         """whole: the sizes are counts (int64); False keeps them as they are (down-weighted sizes)."""
@@ -355,7 +356,7 @@ def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Se
     except UnicodeEncodeError:
         for i, cell in enumerate(raw.astype(object)):
             if isinstance(cell, str) and re.search("[\ud800-\udfff]", cell):
-                ch = re.search("[\ud800-\udfff]", cell).group()
+                ch = re.search("[\ud800-\udfff]", cell).group()  # type: ignore[union-attr]  # found just above
                 raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
                                  f"expected text, found the unpaired surrogate U+{ord(ch):04X}") from None
         raise
@@ -501,7 +502,7 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, str
     if len(bad_distinct):
         bad = labels.isin(bad_distinct).to_numpy(dtype=bool)
         i = int(np.argmax(bad))
-        ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()
+        ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()  # type: ignore[union-attr]  # a bad label
         raise InputError(
             f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a group label "
             f"of text, found the control character U+{ord(ch):04X} in it (tab and newline are allowed)"
@@ -562,7 +563,7 @@ def _column_text(raw: pd.Series, source: str, column: str, row_offset: int) -> n
     bad = [x for x in distinct if re.search(_BAD_LABEL_CHARS, x)]
     if bad:
         i = int(np.flatnonzero(out == bad[0])[0])
-        ch = re.search(_BAD_LABEL_CHARS, bad[0]).group()
+        ch = re.search(_BAD_LABEL_CHARS, bad[0]).group()  # type: ignore[union-attr]  # a bad label
         raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected text, "
                          f"found the control character U+{ord(ch):04X}")
     return out
@@ -747,7 +748,7 @@ def _sniff_delimiter(path: Path, encoding: str, columns=()) -> str:
         return csv.Sniffer().sniff(sample, delimiters=candidates).delimiter
     except csv.Error:
         counts = {d: first.count(d) for d in candidates}
-        best = max(counts, key=counts.get)
+        best = max(counts, key=lambda d: counts[d])
         return best if counts[best] > 0 else candidates[0]
 
 
@@ -775,7 +776,7 @@ def _file_key(path: Path) -> tuple:
     return (str(Path(path).resolve()), st.st_size, st.st_mtime_ns, st.st_ino)
 
 
-def _scan_utf8(path: Path) -> tuple[int, bytes] | None | bool:
+def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
     """Read the whole file once (hashing it on the way). None: the whole file is UTF-8; False: some
     lines are not UTF-8 and no non-ASCII line is (a legacy 8-bit file); else (line number, bytes) of
     the first line that is not UTF-8 in a file whose other non-ASCII lines are."""
@@ -1073,7 +1074,7 @@ def _written(df: pd.DataFrame):
     where = df.attrs.get("pooling_csv")
     if not where or where[3] is None:
         return None
-    return lambda row: _cell_text(*where, row)
+    return lambda row: _cell_text(where[0], where[1], where[2], where[3], row)
 
 
 def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None,

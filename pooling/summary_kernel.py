@@ -129,7 +129,7 @@ def pilot(rng, n_sweeps, d, st, wk, sg, asked, logn, bias_on, limits, count, mea
     """
     J = d.ybar.shape[0]
     heavy = st.lam.shape[0] > 0
-    for it in range(n_sweeps):
+    for _ in range(n_sweeps):
         sweep(rng, True, d, st, wk)
         fill_sigma(d, st, sg)
         count[0] += 1.0

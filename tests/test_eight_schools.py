@@ -111,7 +111,7 @@ def exact_summaries(y, points=40_001, tau_max=150.0):
         out["tau"][p] = float(np.interp(p, cdf_tau, tau))
         for name, loc, var in (("mu", m, V), ("theta1", t_mean, t_var)):
             def f(x):
-                return integrate.trapezoid(w * stats.norm.cdf(x, loc, np.sqrt(var)), tau) - p
+                return integrate.trapezoid(w * stats.norm.cdf(x, loc, np.sqrt(var)), tau) - p  # noqa: B023 (called in this iteration)
 
             out[name][p] = optimize.brentq(f, -100.0, 100.0, xtol=1e-10)
     return out

@@ -136,7 +136,7 @@ def exact_posterior(model, n_eta=2200, n_lam=700):
         out[name] = {"mean": float(np.sum(wk * lk) / wk.sum())}
         for p in PROBS:
             def f(x):
-                return np.sum(wk * special.ndtr((x - lk) / sk)) / wk.sum() - p
+                return np.sum(wk * special.ndtr((x - lk) / sk)) / wk.sum() - p  # noqa: B023 (called in this iteration)
 
             out[name][p] = optimize.brentq(f, 1000.0, 2000.0, xtol=1e-9)
     return out

@@ -116,7 +116,7 @@ def exact(df, n_mu=161, n_tau=201, n_s=161):
             return float((wk * special.ndtr((x - mk) / sk)).sum()) / float(wk.sum())
 
         for pq in PROBS:
-            out[f"theta{j}"][pq] = optimize.brentq(lambda x: cdf(x) - pq, -60.0, 80.0, xtol=1e-8)
+            out[f"theta{j}"][pq] = optimize.brentq(lambda x: cdf(x) - pq, -60.0, 80.0, xtol=1e-8)  # noqa: B023 (called here)
     return out
 
 

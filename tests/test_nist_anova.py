@@ -121,7 +121,7 @@ def test_classical_figures_match_the_certified_values(runs, name):
     reach_w = abs(float(ssw_flt - ssw_dec)) + 1e-12 * cert["ss_within"]
     assert abs(an["ss_between"] - cert["ss_between"]) <= reach_b
     assert abs(an["ss_within"] - cert["ss_within"]) <= reach_w
-    for key, ss, df, reach in (("ms_between", "ss_between", "df_between", reach_b),
+    for key, _ss, df, reach in (("ms_between", "ss_between", "df_between", reach_b),
                                ("ms_within", "ss_within", "df_within", reach_w)):
         assert abs(an[key] - cert[key]) <= reach / cert[df] + 1e-12 * cert[key]
     # F and R^2 through the same bounds (first-order propagation of both sums' errors)

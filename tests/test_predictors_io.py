@@ -206,7 +206,7 @@ def test_bias_is_against_each_level_and_ranks_within_levels(labs):
     cons = {c["level"]: c["mean"] for c in res.predictors["consensus"]}
     np.testing.assert_allclose(t.consensus_mean, [cons[lv] for lv in t.level], rtol=1e-12)
     np.testing.assert_allclose(t.bias_mean, t.theta_mean - t.consensus_mean, atol=1e-9)
-    for lv, sub in t.groupby("level"):
+    for _, sub in t.groupby("level"):
         assert min(sub[res.col("rank_in_level_low")]) == 1
         assert sub.rank_in_level_mean.sum() == pytest.approx(len(sub) * (len(sub) + 1) / 2)
         assert sub.p_best_in_level.sum() == pytest.approx(1.0)

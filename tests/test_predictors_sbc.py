@@ -88,7 +88,10 @@ def sbc_ranks(structure: str, reps: int, seed: int, model=None, kept: int = 99, 
               warmup: int = 200) -> dict[str, np.ndarray]:
     model = model or MODELS[structure]
     ranks: dict[str, list[int]] = {}
-    no_extension = lambda raw: ([], {"missed_list": []})
+
+    def no_extension(raw):
+        return [], {"missed_list": []}
+
     for r in range(reps):
         sim_seq, fit_seq, tie_seq = np.random.SeedSequence([seed, r]).spawn(3)
         data, truth = simulate(structure, np.random.default_rng(sim_seq))

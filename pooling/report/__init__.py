@@ -12,8 +12,6 @@ group's row); rank_probabilities needs every group's draws and refuses one.
 """
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 

@@ -222,7 +222,7 @@ def _latest(h: _Runs, v, lvl: str) -> str:
 def _pooled_over_runs(h: _Runs, v, level: float) -> str:
     svg = plots.history_pooled(h.labels, h.hyper, h.added, h.withdrawn, level)
     ev = []
-    for i, (add, gone) in enumerate(h.events):
+    for i, (_added, gone) in enumerate(h.events):
         if i and gone:
             ev.append(f"{esc(h.labels[i])}: withdrawn or replaced " + ", ".join(esc(x) for x in gone))
     txt = (f"Each run's posterior mean (dot) and central {level_label(level)} interval (bar) of mu and tau. The "

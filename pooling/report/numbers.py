@@ -50,7 +50,11 @@ class Values:
 
 
 def prob(x, dash: str = DASH) -> str:
-    """A probability: '0', '<0.001', three decimals, '>0.999', '1'."""
+    """A probability: '0', '<0.001', three decimals, '>0.999', '1'.
+
+    >>> [prob(x) for x in (0.0, 0.0004, 0.0421, 0.9996, 1.0)]
+    ['0', '<0.001', '0.042', '>0.999', '1']
+    """
     if _bad(x):
         return dash
     x = float(x)
@@ -66,7 +70,11 @@ def prob(x, dash: str = DASH) -> str:
 
 
 def prob_eq(x) -> str:
-    """'= 0.042', '< 0.001', '> 0.999' for prose: 'p = 0.042'."""
+    """'= 0.042', '< 0.001', '> 0.999' for prose: 'p = 0.042'.
+
+    >>> prob_eq(0.0421), prob_eq(0.0001)
+    ('= 0.042', '< 0.001')
+    """
     text = prob(x)
     return text[0] + " " + text[1:] if text[0] in "<>" else "= " + text
 
