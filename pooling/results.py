@@ -500,23 +500,19 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
     lows["theta"], highs["theta"], errors["theta"] = hist_interval(sk.Q_THETA, 0)
     if p.within_code == 0:
         lows["sigma"], highs["sigma"], errors["sigma"] = hist_interval(sk.Q_LOGSIGMA, 1)
+    elif p.within_code == 1:
+        lo, hi = np.quantile(raw.sigma.reshape(-1), probs)
+        lows["sigma"], highs["sigma"], errors["sigma"] = np.full(J, lo), np.full(J, hi), np.zeros(J)
+    if p.within_code == 0 or p.heavy:  # sigma_j or lambda_j moves each group's weight: its histogram
         lows["shrink"], highs["shrink"], errors["shrink"] = hist_interval(sk.Q_LOGITW, 2)
     else:
         tau2 = raw.tau.reshape(-1) ** 2
-        if p.within_code == 1:
-            sig = raw.sigma.reshape(-1)
-            lo, hi = np.quantile(sig, probs)
-            lows["sigma"], highs["sigma"], errors["sigma"] = np.full(J, lo), np.full(J, hi), np.zeros(J)
-        if p.heavy:  # lambda_j varies by group and draw: no one-parameter shortcut
-            lows["shrink"] = highs["shrink"] = np.full(J, np.nan)
-            errors["shrink"] = np.full(J, np.nan)
+        if p.within_code == 1:  # w = 1 / (1 + n rho), rho = tau^2 / sigma^2
+            rho, av = np.sort(tau2 / raw.sigma.reshape(-1) ** 2), 1.0 / p.n
         else:
-            if p.within_code == 1:  # w = 1 / (1 + n rho), rho = tau^2 / sigma^2
-                rho, av = np.sort(tau2 / raw.sigma.reshape(-1) ** 2), 1.0 / p.n
-            else:
-                rho, av = np.sort(tau2), p.v_known
-            lows["shrink"], highs["shrink"] = _exact_weight_interval(rho, av, probs)
-            errors["shrink"] = np.zeros(J)
+            rho, av = np.sort(tau2), p.v_known
+        lows["shrink"], highs["shrink"] = _exact_weight_interval(rho, av, probs)
+        errors["shrink"] = np.zeros(J)
     if sh.rowmap[sk.Q_LOGITF] >= 0:
         lows["outside"], highs["outside"], errors["outside"] = hist_interval(sk.Q_LOGITF, 2)
     mu_mean = float(raw.mu.mean())
@@ -1056,10 +1052,10 @@ SUMMARY_METHODS = {
                        "order statistic is located exactly and interpolated inside its bin, so a limit is off by "
                        "at most one bin width (the *_limit_error columns)",
     "bias_limits": "{bias}",
-    "shrinkage_interval": "histogram of logit w_j (separate); exact from the tau (and sigma) draws for shared and "
-                          "known with the normal between-group distribution, where w_j is a decreasing function of "
-                          "one hyperparameter ratio; not given for shared and known with heavy tails (kept groups "
-                          "have it)",
+    "shrinkage_interval": "histogram of logit w_j (separate, and every structure with heavy tails, where lambda_j "
+                          "moves each group's weight); exact from the tau (and sigma) draws for shared and known with "
+                          "the normal between-group distribution, where w_j is a decreasing function of one "
+                          "hyperparameter ratio",
     "rank_mean": "kept groups exact; others by a bucket count of all groups per draw ({G} buckets): the "
                  "midpoint of the possible ranks, off by at most rank_mean_error",
     "rank_interval": "kept groups exact from their rank in every draw; others from a histogram, per group, of "

@@ -256,7 +256,9 @@ def _rowmap(problem: Problem, asked: np.ndarray) -> np.ndarray:
     rows = np.full(sk.N_Q, -1, dtype=np.int64)
     active = [sk.Q_THETA]
     if problem.within_code == 0:
-        active += [sk.Q_LOGSIGMA, sk.Q_LOGITW]
+        active.append(sk.Q_LOGSIGMA)
+    if problem.within_code == 0 or problem.heavy:  # the shrinkage weight varies with sigma_j or lambda_j
+        active.append(sk.Q_LOGITW)
     if asked[A.A_LIMITS] > 0:
         active.append(sk.Q_LOGITF)
     if problem.J < BIAS_HIST_GROUPS:

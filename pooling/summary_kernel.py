@@ -150,8 +150,9 @@ def pilot(rng, n_sweeps, d, st, wk, sg, asked, logn, bias_on, limits, count, mea
                 dl = x - mean[Q_LOGSIGMA, j]
                 mean[Q_LOGSIGMA, j] += dl * inv
                 msq[Q_LOGSIGMA, j] += dl * (x - mean[Q_LOGSIGMA, j])
+            if d.within == 0 or heavy:  # else the weight is one function of tau (and sigma): exact from their draws
                 t = tau2 / st.lam[j] if heavy else tau2
-                x = A.logit_shrink(A.v_of(0, d.n, d.v_known, j, sg[j]), t)
+                x = A.logit_shrink(A.v_of(d.within, d.n, d.v_known, j, sg[j] if d.within == 0 else sg[0]), t)
                 dl = x - mean[Q_LOGITW, j]
                 mean[Q_LOGITW, j] += dl * inv
                 msq[Q_LOGITW, j] += dl * (x - mean[Q_LOGITW, j])
@@ -304,8 +305,10 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
                 s = sg[j]
                 s2_sum += s * s
                 _hist_add(hist, ext, glo, ginv, r_sig, j, math.log(s), B)
+            if r_w >= 0:  # separate, or heavy tails: lambda_j moves each group's weight on its own
                 t = tau2 / st.lam[j] if heavy else tau2
-                _hist_add(hist, ext, glo, ginv, r_w, j, A.logit_shrink(A.v_of(0, d.n, d.v_known, j, s), t), B)
+                v = A.v_of(d.within, d.n, d.v_known, j, sg[j] if d.within == 0 else sg[0])
+                _hist_add(hist, ext, glo, ginv, r_w, j, A.logit_shrink(v, t), B)
             if limits:
                 f, g = A.outside(th, sg[j] if d.within == 0 else sg[0], asked)
                 _hist_add(hist, ext, glo, ginv, r_f, j, A.logit_pair(f, g), B)

@@ -197,6 +197,32 @@ def test_shared_and_known_exact_parts(within):
     np.testing.assert_array_equal(t["p_best"], np.bincount(np.argmin(theta, axis=1), minlength=30) / theta.shape[0])
 
 
+@pytest.mark.parametrize("within", ["shared", "known"])
+def test_heavy_tail_weights_from_their_histogram(within):
+    """With heavy tails (the default) lambda_j moves each group's weight in every draw, so shared and known
+    summarise the weight by its histogram too: finite limits, each within its stated error of the exact one."""
+    stats = _stats(30, 3, known=within == "known")
+    model = pooling.Model(within=within)  # the default between-group distribution: heavy tails
+    o = ReportOptions(level=LEVEL, k=2)
+    full = pooling.fit(stats, model, SETTINGS, summary=False)
+    part = Part(pooling.fit(stats, model, SETTINGS, summary=True, options=o, keep=KEEP), o)
+    t = part.table
+    if within == "shared":
+        v = _draws(full, "sigma")[:, None] ** 2 / stats.n[None, :]
+    else:
+        v = np.broadcast_to(stats.raw_se[None, :] ** 2, (full.raw.mu.size, 30))
+    w = v / (v + _t2(full))
+    bound = t["shrink_limit_error"].to_numpy()
+    assert np.all(np.isfinite(bound)) and np.all(bound[part.kept] == 0)
+    for side, col in enumerate(("low", "high")):
+        # Source: numpy.quantile (default linear method) of the per-draw weights of the full run; the summary's
+        # limit may differ by at most its stated error (one histogram bin; 1e-12 for the rounding of bin edges)
+        got = t[f"shrink_{col}_90"].to_numpy()
+        assert np.all(np.abs(got - np.quantile(w, PROBS[side], axis=0)) <= bound + 1e-12), col
+    # the bound means something: a bin is a small part of the weight's range
+    assert np.median(bound) < 0.1
+
+
 def test_same_results_whatever_the_threads():
     stats = _stats(25, 3)
     o = ReportOptions(level=LEVEL, threshold=100.0)
