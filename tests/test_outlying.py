@@ -40,11 +40,11 @@ def runs(tmp_path_factory):
                                "--out", str(d / between), "--seed", "2", "--quiet", "--between", between])
     tables = {b: pd.DataFrame(json.loads((d / b / "summary.json").read_text())["groups_table"]) for b in codes}
     summaries = {b: json.loads((d / b / "summary.json").read_text()) for b in codes}
-    return codes, tables, summaries
+    return codes, tables, summaries, d
 
 
 def test_defaults_meet_the_targets_and_keep_the_outlier_apart(runs):
-    codes, tables, summaries = runs
+    codes, tables, summaries, _ = runs
     assert codes["heavy"] == 0  # the diagnostics targets are met with the defaults
     assert summaries["heavy"]["model"]["between"] == "heavy"
     t = tables["heavy"]
@@ -66,7 +66,7 @@ def test_defaults_meet_the_targets_and_keep_the_outlier_apart(runs):
 def test_the_normal_model_is_dragged(runs):
     # the contrast that motivates the default: the normal model pulls the outlier halfway in, its bias
     # interval reaches zero, and mu moves toward the outlier
-    codes, tables, summaries = runs
+    codes, tables, summaries, _ = runs
     t = tables["normal"]
     lab = t[t.group == OUTLIER].iloc[0]
     assert lab.shrink_realised > 0.2
@@ -76,7 +76,7 @@ def test_the_normal_model_is_dragged(runs):
 
 def test_the_extreme_group_check_sees_the_outlier(runs):
     # the posterior predictive check of the most extreme group names it under both models
-    _, _, summaries = runs
+    _, _, summaries, d = runs
     for b in ("heavy", "normal"):
         ex = summaries[b]["predictive_checks"]["most_extreme_group"]
         assert ex["group"] == OUTLIER and ex["group_share"] > 0.9
@@ -87,3 +87,8 @@ def test_the_extreme_group_check_sees_the_outlier(runs):
     # sqrt(0.05 * 0.95 / 400) = 0.011 there, so 0.1 sits four sds above the largest value seen.
     for b in ("heavy", "normal"):
         assert summaries[b]["predictive_checks"]["most_extreme_group"]["p_value"] < 0.1
+    # the page says what a small p means under heavy tails (the lab is allowed far away), and only there
+    said = "With heavy tails such a group does not drag the others"
+    p_heavy = summaries["heavy"]["predictive_checks"]["most_extreme_group"]["p_value"]
+    assert (said in (d / "heavy" / "report.html").read_text(encoding="utf-8")) == (p_heavy < 0.05)
+    assert said not in (d / "normal" / "report.html").read_text(encoding="utf-8")

@@ -987,7 +987,11 @@ def _checks(res: Results, v, figs: dict) -> str:
                      f"{ex['group_share']:.0%} of the draws): its standardised deviation |own mean − mu| / "
                      "√(tau² + v<sub>j</sub>) against the median one is matched or exceeded by the replicated data "
                      f"in a share {ex['p_value']:.3f} of the draws; below 0.05 the fitted between-group distribution "
-                     "seldom produces a group that far beyond the typical one.</li>")
+                     "seldom produces a group that far beyond the typical one."
+                     + (" With heavy tails such a group does not drag the others: the model's answer to it is its "
+                        "tail weight and outlying flag (section on outlying groups), and the consensus value is "
+                        "computed with it allowed to lie far away." if res.problem.heavy and ex["p_value"] < 0.05
+                        else "") + "</li>")
     if sdc is not None:
         obs, lo, hi = (np.asarray(sdc[k], dtype=float) for k in ("observed", "low", "high"))
         out = np.flatnonzero((obs < lo) | (obs > hi))
