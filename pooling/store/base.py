@@ -48,9 +48,12 @@ class BatchInfo:
     status: str
     changed_at: str | None = None
     note: str | None = None
+    columns: tuple[str, ...] = ()  # the group-level columns the batch keeps (filled by `batches()`)
 
     def to_dict(self) -> dict:
-        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+        d = {k: getattr(self, k) for k in self.__dataclass_fields__}
+        d["columns"] = list(self.columns)
+        return d
 
 
 @dataclass(frozen=True, eq=False)

@@ -105,9 +105,9 @@ def combine(stats: list[BatchStats] | tuple[BatchStats, ...], weights: np.ndarra
 
 
 def _merge_columns(stats, codes, sizes, J: int, source: str) -> dict:
-    """Each group's value in each group-level column, from the first batch that has the group (every active batch
-    keeps the same columns and one value per group: the store refused anything else at ingest, and says so here
-    should a store hold otherwise)."""
+    """Each group's value in each group-level column, from the first batch that has the group. Every active batch
+    keeps the same columns and one value per group (the ingest refused anything else); a store that holds batches
+    with other columns all the same is refused here with one line."""
     names = set(stats[0].columns)
     out = {name: np.full(J, None, dtype=object) for name in names}
     start = 0
