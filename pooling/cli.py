@@ -648,9 +648,6 @@ def cmd_batches(args, argv) -> int:
         print(f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
               f"{b.sha256[:12]}")
     active = sum(b.status == "active" for b in batches)
-    kept = sorted({c for b in batches if b.status == "active" for c in b.columns})
-    if kept:
-        print(f"group-level columns kept by the active batches: {', '.join(kept)}")
     print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")
     if runs:
         r = runs[-1]

@@ -138,9 +138,6 @@ def test_a_refit_asking_for_a_column_the_store_does_not_keep_is_one_line(tmp_pat
     store = new_store()
     assert _ingest(store, files[0], "--column", "method") == 0
     capsys.readouterr()
-    assert cli.main(["batches", store]) == 0
-    assert "group-level columns kept by the active batches: method\n" in capsys.readouterr().out
-    assert jobs.list_batches(store)[0][0].to_dict()["columns"] == ["method"]
     code = cli.main(["refit", store, "--out", str(tmp_path / "run"), "--numeric", "age", *RUN])
     line = _err_line(capsys)
     assert code == 2 and "--numeric" in line and "no group-level column 'age'" in line and "'method'" in line

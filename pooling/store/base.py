@@ -48,12 +48,9 @@ class BatchInfo:
     status: str
     changed_at: str | None = None
     note: str | None = None
-    columns: tuple[str, ...] = ()  # the group-level columns the batch keeps (filled by `batches()`)
 
     def to_dict(self) -> dict:
-        d = {k: getattr(self, k) for k in self.__dataclass_fields__}
-        d["columns"] = list(self.columns)
-        return d
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
 
 @dataclass(frozen=True, eq=False)

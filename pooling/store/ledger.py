@@ -39,7 +39,6 @@ import os
 import re
 import time
 from contextlib import contextmanager
-from dataclasses import replace as with_fields
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -412,12 +411,7 @@ class SqlLedger(BatchStore):
 
     def batches(self) -> list[BatchInfo]:
         with self._read() as tx:
-            lines = self._lines(tx)
-            kept = tx.all("SELECT DISTINCT batch_id, column_name FROM batch_columns")
-        names: dict = {}
-        for bid, name in kept:
-            names.setdefault(bid, []).append(str(name))
-        return [with_fields(self._info(ln), columns=tuple(sorted(names.get(ln[0], ())))) for ln in lines]
+            return [self._info(ln) for ln in self._lines(tx)]
 
     def _group_rows(self, tx, active_only: bool = False) -> list[tuple]:
         if not active_only:
