@@ -319,9 +319,6 @@ def _predictors_from_args(args, stats) -> tuple:
     for col in cats + nums:
         if (cats + nums).count(col) > 1:
             raise E.InputError(f"bad options: the column '{col}' is named twice among --category and --numeric")
-    if (cats or nums) and getattr(args, "command", None) == "refit" and not stats.columns:
-        raise E.InputError("bad options: the store keeps no group-level columns yet, so refit cannot use --category "
-                           "or --numeric; fit the merged data with `pooling fit` instead")
     return tuple(Category(c, refs.get(c)) for c in cats) + tuple(Numeric(c) for c in nums)
 
 
@@ -554,6 +551,10 @@ def _add_store_parsers(sub):
                    "1,234.5 or '.' for 1.234,5 (default: none)")
     p.add_argument("--decimal-comma", dest="decimal_comma", action="store_true",
                    help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
+    p.add_argument("--column", action="append", metavar="COL",
+                   help="a group-level column to keep with the batch (a method, an instrument, an age): one value per "
+                        "group, the same in every batch; refit uses it with --category COL or --numeric COL. Every "
+                        "active batch keeps the same columns. Repeat for more")
     p.add_argument("--quiet", action="store_true", help="print nothing on success")
     p = sub.add_parser("batches", help="list the ledger of a store: every batch, its status, and the recorded runs")
     p.add_argument("store", help=STORE_HELP)
@@ -614,14 +615,17 @@ def _shown(store: str) -> str:
 def cmd_ingest(args, argv) -> int:
     from .store import jobs
 
+    columns = list(args.column or [])
     info, created = jobs.ingest_file(args.store, args.file, args.group, args.value, batch=args.batch, at=args.at,
                                      replace=args.replace, encoding=args.encoding, delimiter=args.delimiter,
-                                     thousands=args.thousands, decimal="," if args.decimal_comma else None)
+                                     thousands=args.thousands, decimal="," if args.decimal_comma else None,
+                                     columns=columns)
     if not args.quiet:
         if created:
             print(f"created the store '{_shown(args.store)}'")
-        print(f"ingested batch '{info.name}': {info.rows} measurements in {info.groups} groups, dated {info.dated_at} "
-              f"(sha256 {info.sha256[:12]})")
+        kept = f", with the group-level columns {', '.join(repr(c) for c in columns)}" if columns else ""
+        print(f"ingested batch '{info.name}': {info.rows} measurements in {info.groups} groups{kept}, dated "
+              f"{info.dated_at} (sha256 {info.sha256[:12]})")
     return E.EXIT_OK
 
 
@@ -673,6 +677,7 @@ def cmd_refit(args, argv) -> int:
     plan = jobs.plan_refit(args.store, half_life_days=half, as_of=args.as_of, force=args.force)
     if plan.stats.J == 0 and half is not None:
         _all_weights_underflowed(plan, half)
+    _check_store_columns(args, plan.stats, shown)
     init = None if args.fresh_start else plan.init_for(_model_from_args(args, plan.stats), args.chains)
     settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
                 "seed": args.seed, "warm_start": init is not None}
@@ -700,6 +705,19 @@ def cmd_refit(args, argv) -> int:
                                           if Path(store + x).exists()]
     argv = [shown if a == args.store else a for a in argv]  # summary.json records the command as shown
     return run_fit(args, plan.stats, argv, init=init, more=more, after=after, protect=protect)
+
+
+def _check_store_columns(args, stats, shown: str) -> None:
+    """A refit's predictors are the --category and --numeric columns it names (as for `pooling fit`), read from the
+    group-level columns the store's active batches keep (`pooling ingest --column`)."""
+    kept = sorted(stats.columns)
+    for option in ("category", "numeric"):
+        for col in getattr(args, option, None) or []:
+            if col not in stats.columns:
+                have = ", ".join(f"'{c}'" for c in kept) if kept else "none"
+                raise E.InputError(f"bad option --{option}: the store '{shown}' keeps no group-level column '{col}' "
+                                   f"with its active batches (it keeps: {have}); ingest the batches with --column "
+                                   f"{col}, or leave out --{option} {col}")
 
 
 def _all_weights_underflowed(plan, half: float) -> None:

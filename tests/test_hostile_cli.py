@@ -250,6 +250,11 @@ CASES = [
      ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--encoding", "bogus-enc"], 2, ["--encoding"]),
     ("ingest: a mixed file", {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
      ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"], 2, ["line 14"]),
+    ("ingest: --column not in the file", {"in.csv": GOOD},
+     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--column", "method"], 2, ["no column 'method'"]),
+    ("ingest: --column the group column", {"in.csv": GOOD},
+     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--column", "lab"], 2,
+     ["'lab' is the column of the group labels"]),
 ]
 
 

@@ -270,18 +270,19 @@ def test_command_line_refusals(tmp_path, args, pattern):
     assert not (tmp_path / "run").exists()
 
 
-def test_refit_says_the_store_keeps_no_group_columns(tmp_path):
+def test_refit_says_the_store_keeps_no_such_group_column(tmp_path):
     _long().to_csv(tmp_path / "day1.csv", index=False)
     r = _cli("ingest", "s.store", "day1.csv", "--group", "lab", "--value", "y", "--quiet", cwd=tmp_path)
     assert r.returncode == 0
     r = _cli("refit", "s.store", "--out", "run", "--category", "method", cwd=tmp_path)
-    assert r.returncode == 2 and "the store keeps no group-level columns yet" in r.stderr
+    assert r.returncode == 2 and "keeps no group-level column 'method'" in r.stderr and "--column method" in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1 and not (tmp_path / "run").exists()
 
 
 def test_refit_path_takes_predictors_from_the_statistics(tmp_path, monkeypatch):
-    # the store does not keep group-level columns yet; when it does, its plan's statistics carry them
-    # (GroupStats.columns) and the refit command needs nothing else: simulated here by adding the columns to the
-    # plan the store made
+    # the refit command takes its predictors from the columns its plan's statistics carry (GroupStats.columns),
+    # whatever put them there: here they are added to the plan of a store that keeps none (the store's own
+    # columns, `pooling ingest --column`, are tested in test_store_columns.py)
     from pooling import cli
     from pooling.store import jobs
 

@@ -48,6 +48,10 @@ FILES = {
 FILES["labs.csv"] = lambda: "lab,method,age,fat\n" + "".join(
     f"L{j:02d},{'AB'[j % 2]},{2 + j % 5},{26.4 + 0.3 * (j % 2) + 0.01 * (j % 5) + 0.05 * ((i * 7 + j) % 3 - 1):.3f}\n"
     for j in range(10) for i in range(3))
+for day, reps in ((1, (0, 1)), (2, (2,))):  # the same labs with their method and age, on two days
+    FILES[f"round-day-{day}.csv"] = (lambda reps=reps: "lab,method,age,fat\n" + "".join(
+        f"L{j:02d},{'AB'[j % 2]},{2 + j % 5},{26.4 + 0.3 * (j % 2) + 0.01 * (j % 5) + 0.05 * ((i * 7 + j) % 3 - 1):.3f}\n"
+        for j in range(10) for i in reps))
 for day in range(1, 4):
     FILES[f"batch-2026-12-0{day}.csv"] = (lambda d=day: _long_table(group="supplier", value="strength", seed=d))
 

@@ -30,12 +30,14 @@ TINY = ["--chains", "2", "--warmup", "100", "--draws", "100", "--max-draws", "10
 
 
 def _days(folder: Path, k: int = 3, groups: int = 6, seed: int = 1) -> list[Path]:
+    """Deliveries of the labs L0, L1, ...: a value column y, and the group-level column 'method' (A or B by lab)."""
     rng = np.random.default_rng(seed)
     out = []
     for d in range(k):
-        rows = [(f"L{j}", rng.normal(50 + j, 2)) for j in range(groups) for _ in range(int(rng.integers(2, 6)))]
+        rows = [(f"L{j}", "AB"[j % 2], rng.normal(50 + j, 2)) for j in range(groups)
+                for _ in range(int(rng.integers(2, 6)))]
         p = folder / f"day-{d}.csv"
-        pd.DataFrame(rows, columns=["lab", "y"]).to_csv(p, index=False, float_format="%.17g")
+        pd.DataFrame(rows, columns=["lab", "method", "y"]).to_csv(p, index=False, float_format="%.17g")
         out.append(p)
     return out
 
@@ -54,12 +56,13 @@ def _run_record(batch_ids, n_groups=6) -> RunRecord:
 
 
 def _store_with_history(store, folder: Path) -> list[Path]:
-    """Three deliveries, one withdrawn, one replaced, and a recorded run."""
+    """Three deliveries, one withdrawn, one replaced, and a recorded run; every batch keeps its labs' method."""
     files = _days(folder, k=4)
     for d, f in enumerate(files[:3]):
-        jobs.ingest_file(store, f, "lab", "y", at=f"2026-11-0{d + 1}")
+        jobs.ingest_file(store, f, "lab", "y", at=f"2026-11-0{d + 1}", columns=["method"])
     jobs.withdraw_batch(store, "day-1.csv", "bad gauge")
-    jobs.ingest_file(store, files[3], "lab", "y", batch="day-2.csv", replace=True, at="2026-11-04")
+    jobs.ingest_file(store, files[3], "lab", "y", batch="day-2.csv", replace=True, at="2026-11-04",
+                     columns=["method"])
     with open_store(store) as st:
         st.record_run(_run_record([b.id for b in st.snapshot().batches]))
     return files
@@ -85,6 +88,11 @@ CHANGES = {
                 "statistics of batch 4"),
     "m2": ("UPDATE batch_groups SET m2 = 0 WHERE batch_id = 1 AND position = 3", "statistics of batch 1"),
     "label": ("UPDATE batch_groups SET label = 'L9' WHERE batch_id = 1 AND position = 4", "statistics of batch 1"),
+    "a group-level value": ("UPDATE batch_columns SET value = 'B' WHERE batch_id = 1 AND position = 2",
+                            "statistics of batch 1"),
+    "a group-level row gone": ("DELETE FROM batch_columns WHERE batch_id = 4 AND position = 0", "statistics of batch 4"),
+    "a group-level row added": ("INSERT INTO batch_columns (batch_id, column_name, position, value) "
+                                "VALUES (1, 'age', 0, '7')", "statistics of batch 1"),
     "a group row gone": ("DELETE FROM batch_groups WHERE batch_id = 4 AND position = 5", "statistics of batch 4"),
     "date": ("UPDATE batches SET dated_at = '2026-10-01T00:00:00+00:00' WHERE id = 1", "ledger line of batch 1"),
     "status": ("UPDATE batches SET status = 'active' WHERE id = 2", "ledger line of batch 2"),
@@ -103,6 +111,7 @@ def test_a_number_changed_behind_the_store_refuses_the_refit(change, tmp_path, c
     _store_with_history(store, tmp_path)
     sql, names = CHANGES[change]
     if change == "a ledger line gone":  # its statistics go first (the foreign key would refuse otherwise)
+        execute(store, "DELETE FROM batch_columns WHERE batch_id = 2")
         execute(store, "DELETE FROM batch_groups WHERE batch_id = 2")
     execute(store, sql)
     out = tmp_path / "run"
@@ -133,12 +142,12 @@ def test_checkup_of_a_sound_store_and_its_exit_codes(tmp_path, capsys, backend, 
 def test_a_newer_schema_version_is_refused_with_one_line(tmp_path, capsys, backend, new_store):
     store = new_store()
     _store_with_history(store, tmp_path)
-    execute(store, "UPDATE pooling_store SET value = '3' WHERE key = 'format'")
+    execute(store, "UPDATE pooling_store SET value = '4' WHERE key = 'format'")
     before = sql_dump(store)
     for argv in (["batches", store], ["checkup", store], ["withdraw", store, "day-0.csv"],
                  ["ingest", store, tmp_path / "day-3.csv", "--group", "lab", "--value", "y", "--batch", "x"]):
         code, _, line = _one_line(capsys, argv)
-        assert code == 2 and "schema version 3 was written by a newer pooling" in line, line
+        assert code == 2 and "schema version 4 was written by a newer pooling" in line, line
     assert sql_dump(store) == before
 
 
@@ -160,7 +169,7 @@ def _raw_tables(path: Path):
     con.text_factory = bytes  # text as stored, even when a flip made it invalid UTF-8
     try:
         out = {}
-        for t in ("pooling_store", "store_head", "batches", "batch_groups", "runs", "run_groups"):
+        for t in ("pooling_store", "store_head", "batches", "batch_groups", "batch_columns", "runs", "run_groups"):
             rows = con.execute(f"SELECT * FROM {t} ORDER BY 1, 2").fetchall()
             out[t] = [tuple(("f", np.float64(x).view(np.uint64).item()) if isinstance(x, float) else x for x in r)
                       for r in rows]
@@ -180,7 +189,8 @@ def _read_back(path: Path):
     def bits(a):
         return np.asarray(a, dtype=np.float64).view(np.uint64).tolist()
 
-    stats = [(s.batch_id, s.labels, s.n.tolist(), bits(s.mean), bits(s.mean_lo), bits(s.m2)) for s in snap.stats]
+    stats = [(s.batch_id, s.labels, s.n.tolist(), bits(s.mean), bits(s.mean_lo), bits(s.m2), s.columns)
+             for s in snap.stats]
     groups = [(g.label, bits([g.n, g.raw_mean, g.post_mean, g.post_sd, g.q_lo, g.q_hi, g.rank_mean, g.rank_sd,
                               g.p_above, g.p_outside])) for g in last.groups]
     run_fields = [(r.id, r.created_at, r.folder, r.state_sha256, r.batch_ids, r.reference_at, r.half_life_days,
@@ -288,8 +298,8 @@ def test_a_schema_1_store_is_upgraded_in_place_by_the_first_command(tmp_path, ca
     code, out, _ = _one_line(capsys, ["batches", store])
     assert code == 0 and "4 batches in the ledger, 2 active; 1 recorded runs" in out
     con = sqlite3.connect(str(store))
-    assert con.execute("SELECT value FROM pooling_store WHERE key = 'format'").fetchone() == ("2",)
-    assert con.execute("PRAGMA user_version").fetchone() == (2,)
+    assert con.execute("SELECT value FROM pooling_store WHERE key = 'format'").fetchone() == ("3",)  # 1 -> 2 -> 3
+    assert con.execute("PRAGMA user_version").fetchone() == (3,)
     after = {t: con.execute(f"SELECT * FROM {t} ORDER BY 1, 2").fetchall() for t in ("batch_groups", "run_groups")}
     assert after == before  # not a number changed
     assert con.execute("SELECT id, name, status, changed_at, note FROM batches ORDER BY id").fetchall() == ledger_before
@@ -368,6 +378,7 @@ def test_a_store_copied_to_postgresql_and_back_is_the_same_bit_for_bit(tmp_path,
         la, lb = a.last_run(), b.last_run()
     for x, y in zip(sa.stats, sb.stats):
         assert x.labels == y.labels and x.n.tolist() == y.n.tolist()
+        assert x.columns == y.columns and set(x.columns) == {"method"}
         for f in ("mean", "mean_lo", "m2"):
             assert getattr(x, f).view(np.uint64).tolist() == getattr(y, f).view(np.uint64).tolist()
     assert sa.state_sha256 == sb.state_sha256 and la.final_state == lb.final_state and la.summary == lb.summary
@@ -376,7 +387,8 @@ def test_a_store_copied_to_postgresql_and_back_is_the_same_bit_for_bit(tmp_path,
     assert code == 4 and "nothing new" in line
     # and it works as a store: a new delivery lands, is checked and refitted
     late = _days(tmp_path / "late", k=1, seed=99)[0] if (tmp_path / "late").mkdir() is None else None
-    assert cli.main(["ingest", pg, str(late), "--group", "lab", "--value", "y", "--batch", "late", "--quiet"]) == 0
+    assert cli.main(["ingest", pg, str(late), "--group", "lab", "--value", "y", "--batch", "late", "--column",
+                     "method", "--quiet"]) == 0
     assert cli.main(["refit", pg, "--out", str(tmp_path / "run-3"), *TINY]) in (0, 3)
 
 

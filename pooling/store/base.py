@@ -1,8 +1,8 @@
 """The storage interface: what the nightly commands need from a store of batches, and nothing more.
 
 A store keeps a ledger of batches (each one delivery of measurements) with their per-group
-statistics (n, mean as hi + lo, M2), and a record of every refit with the group-level results
-that the next refit compares against. Two implementations share one SQL core (`ledger.py`): the
+statistics (n, mean as hi + lo, M2) and group-level columns (a method, an instrument), and a record
+of every refit with the group-level results that the next refit compares against. Two implementations share one SQL core (`ledger.py`): the
 embedded SQLite file (`sqlite.py`) and a PostgreSQL schema (`postgres.py`). The commands and the
 pure computations (`combine.py`, `changes.py`) only see the records defined here.
 
@@ -55,7 +55,8 @@ class BatchInfo:
 
 @dataclass(frozen=True, eq=False)
 class BatchStats:
-    """The per-group statistics of one batch, in the order the groups first appear in it."""
+    """The per-group statistics of one batch, in the order the groups first appear in it, and its group-level
+    columns (name -> one text value per group, aligned with the labels; empty when the batch keeps none)."""
 
     batch_id: int
     labels: tuple[str, ...]
@@ -63,6 +64,7 @@ class BatchStats:
     mean: np.ndarray
     mean_lo: np.ndarray
     m2: np.ndarray
+    columns: dict = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)
@@ -142,12 +144,16 @@ class BatchStore(abc.ABC):
     path: str  # how messages name the store (a file path, or a URL or service without a password)
 
     @abc.abstractmethod
-    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, replace: bool = False) -> BatchInfo:
-        """Add one batch and its per-group statistics in one transaction.
+    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None,
+                  replace: bool = False) -> BatchInfo:
+        """Add one batch, its per-group statistics and its group-level columns (`columns`: name -> one text value
+        per group) in one transaction.
 
         Refuses (NothingNew) content that is already active, and (InputError) a name in use by
         other content unless `replace`, in which case the old record is kept with status
-        'replaced'. Content that was withdrawn comes back only with `replace`.
+        'replaced'. Content that was withdrawn comes back only with `replace`. Refuses (InputError)
+        group-level columns other than the active batches keep, and a group whose value in a column
+        differs from the one an active batch holds (the batch it replaces aside).
         """
 
     @abc.abstractmethod

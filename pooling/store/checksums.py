@@ -5,7 +5,11 @@ one line instead of reaching a refit as wrong numbers. Four kinds of checksum, a
 
     stats_sum   over one batch's per-group statistics, in position order: the labels (UTF-8, each
                 with its length), then n (int64), mean, mean_lo and M2 (IEEE 754 float64 bit
-                patterns), all little-endian; written with the batch, never changed
+                patterns), all little-endian, then, only when the batch keeps group-level columns
+                (schema version 3), each column's name and its value per group (UTF-8 with lengths),
+                columns in code-point order of their names; written with the batch, never changed.
+                A batch without group-level columns has the sum it had in schema version 2, so the
+                upgrade to version 3 leaves every stored checksum as it was
     line_sum    over one ledger line: every field (id, name, content hash, source, columns, rows,
                 groups, dates, status, when and why it changed) and its stats_sum, as compact JSON;
                 rewritten in the same transaction whenever the line's status changes
@@ -30,6 +34,7 @@ import json
 import numpy as np
 
 _STATS_TAG = b"pooling batch statistics 1\n"
+_COLUMNS_TAG = b"pooling group-level columns 1\n"
 _LINE_TAG = "pooling ledger line 1"
 _RUN_TAG = "pooling run line 1"
 _GROUPS_TAG = "pooling run groups 1"
@@ -42,16 +47,27 @@ def stored_floats(x) -> np.ndarray:
     return np.asarray(x, dtype=np.float64) + 0.0
 
 
-def stats_sum(labels, n, mean, mean_lo, m2) -> str:
-    """SHA-256 of one batch's statistics (arrays of equal length; n int64, the rest float64)."""
-    enc = [lab.encode("utf-8") for lab in labels]
-    h = hashlib.sha256(_STATS_TAG)
+def _texts(h, texts) -> None:
+    enc = [t.encode("utf-8") for t in texts]
     h.update(len(enc).to_bytes(8, "little"))
     h.update(np.fromiter((len(e) for e in enc), dtype="<i8", count=len(enc)).tobytes())
     h.update(b"".join(enc))
+
+
+def stats_sum(labels, n, mean, mean_lo, m2, columns=None) -> str:
+    """SHA-256 of one batch's statistics (arrays of equal length; n int64, the rest float64) and its group-level
+    columns (`columns`: name -> one text per group, aligned with the labels; none: the version-2 sum)."""
+    h = hashlib.sha256(_STATS_TAG)
+    _texts(h, labels)
     h.update(np.ascontiguousarray(n, dtype="<i8").tobytes())
     for x in (mean, mean_lo, m2):
         h.update(np.ascontiguousarray(x, dtype="<f8").tobytes())
+    if columns:
+        h.update(_COLUMNS_TAG)
+        names = sorted(columns)
+        _texts(h, names)
+        for name in names:
+            _texts(h, columns[name])
     return h.hexdigest()
 
 

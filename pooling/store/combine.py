@@ -92,14 +92,38 @@ def combine(stats: list[BatchStats] | tuple[BatchStats, ...], weights: np.ndarra
         nb = b.n.astype(np.float64) * w
         n[pos], hi[pos], lo[pos], m2[pos] = merge_moments(n[pos], hi[pos], lo[pos], m2[pos], nb, b.mean, b.mean_lo,
                                                           b.m2 * w)
+    columns = _merge_columns(stats, codes, sizes, J, source)
     keep = n > 0  # a weight can underflow to 0 for batches very many half-lives old
     labels = tuple(str(u) for u in uniques)
     if not keep.all():
         labels = tuple(lab for lab, k in zip(labels, keep) if k)
         n, hi, lo, m2 = n[keep], hi[keep], lo[keep], m2[keep]
+        columns = {name: values[keep] for name, values in columns.items()}
     if np.all(weights == 1.0):
         n = n.astype(np.int64)  # sums of whole counts: exact below 2^53
-    return GroupStats(labels, n, hi, m2, mean_lo=lo, source=source)
+    return GroupStats(labels, n, hi, m2, mean_lo=lo, source=source, columns=columns)
+
+
+def _merge_columns(stats, codes, sizes, J: int, source: str) -> dict:
+    """Each group's value in each group-level column, from the first batch that has the group. Every active batch
+    keeps the same columns and one value per group (the ingest refused anything else); a store that holds batches
+    with other columns all the same is refused here with one line."""
+    names = set(stats[0].columns)
+    out = {name: np.full(J, None, dtype=object) for name in names}
+    start = 0
+    for b, size in zip(stats, sizes):
+        pos = codes[start:start + size]
+        start += size
+        if set(b.columns) != names:
+            raise InputError(f"bad store {source}: batch {b.batch_id} keeps the group-level columns "
+                             f"{sorted(b.columns)}, batch {stats[0].batch_id} keeps {sorted(names)}; every active "
+                             "batch must keep the same ones (withdraw one of them)")
+        for name in names:
+            values = np.asarray(b.columns[name], dtype=object)
+            col = out[name]
+            empty = np.array([x is None for x in col[pos]], dtype=bool)
+            col[pos[empty]] = values[empty]
+    return out
 
 
 def warm_start(final_state: dict | None, problem, chains: int) -> list[dict] | None:

@@ -32,12 +32,14 @@ CHANGES_CSV = "changes.csv"
 
 def ingest_file(store_path, file, group: str, value: str, *, batch: str | None = None, at: str | None = None,
                 replace: bool = False, encoding: str | None = None, delimiter: str | None = None,
-                thousands: str | None = None, decimal: str | None = None,
+                thousands: str | None = None, decimal: str | None = None, columns=(),
                 busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple[BatchInfo, bool]:
     """Read one delivery (long table: a group and a value column) and add it to the store as one batch.
 
-    Returns the ledger line and whether the store was created. The file is read and checked before
-    the store is touched, and the batch is written in one transaction.
+    `columns`: group-level columns to keep with the batch (one value per group, as `pooling fit` reads them
+    for --category and --numeric); a refit uses them as predictors when asked. Returns the ledger line and
+    whether the store was created. The file is read and checked before the store is touched, and the batch
+    is written in one transaction (refused whole when its group-level columns disagree with the store's).
     """
     from ..stats import check_unicode_twins, read_table
 
@@ -50,7 +52,7 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     st = open_store(loc, missing_ok=True, busy_seconds=busy_seconds)
     try:
         stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter, thousands=thousands,
-                           decimal=decimal)
+                           decimal=decimal, group_columns=list(columns))
         check_unicode_twins(stats.labels, str(file))  # within the batch; across batches refit checks (model.build)
         if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
             raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what "
@@ -60,7 +62,8 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
                        dated_at=dated or iso(datetime.now(timezone.utc)), group_column=group, value_column=value)
         if st is None:
             st = open_store(loc, create=True, busy_seconds=busy_seconds)
-        info = st.add_batch(new, stats.labels, stats.n, stats.mean, stats.mean_lo, stats.m2, replace=replace)
+        info = st.add_batch(new, stats.labels, stats.n, stats.mean, stats.mean_lo, stats.m2,
+                            columns={name: list(v) for name, v in stats.columns.items()}, replace=replace)
         return info, st.created
     finally:
         if st is not None:
@@ -231,6 +234,8 @@ def content_differences(a: StoreContent, b: StoreContent) -> list[str]:
             continue
         if sa.n.dtype != sb.n.dtype or not np.array_equal(sa.n, sb.n):
             out.append(f"batch {bid}: n differs")
+        if sa.columns != sb.columns or not all(type(x) is str for v in sb.columns.values() for x in v):
+            out.append(f"batch {bid}: the group-level columns differ")
         for what in ("mean", "mean_lo", "m2"):
             x, y = getattr(sa, what), getattr(sb, what)
             if x.shape != y.shape or not np.array_equal(x.view(np.uint64), y.view(np.uint64)):

@@ -9,17 +9,27 @@ taken, how a bulk of rows is written, and how concurrent writers are kept apart:
                 content hash, so ingests of different deliveries run side by side; the head row is
                 locked (SELECT ... FOR UPDATE) only for its final update, just before COMMIT
 
-Tables (schema version 2; `pooling_store` holds the version under the key 'format'):
+Tables (schema version 3; `pooling_store` holds the version under the key 'format'):
 
     pooling_store  key/value: format, created_at, created_by (and copied_from, copied_at on a copy)
     store_head     one row: how many ledger and run lines there are, and the running sums of their checksums
     batches        the ledger: one line per delivery, never deleted; status active, withdrawn or replaced, with
                    when and why it changed; stats_sum and line_sum
     batch_groups   per batch and position: label, n, mean (hi), mean_lo (its double-double low part), m2
+    batch_columns  per batch, group-level column and position: the group's value in that column, as text (a
+                   method, an instrument, an age: what `pooling refit --category/--numeric` reads); covered by the
+                   batch's stats_sum. Schema version 3; a version-2 store gains the empty table on opening, and
+                   every checksum it holds stays valid (a batch without columns has its version-2 stats_sum)
     runs           one line per refit (when, folder, state fingerprint, batch ids, reference date, half-life,
                    targets met, JSON summary, groups_sum, line_sum) and, for the latest run only, the chains'
                    final state (JSON) with its state_sum
     run_groups     per run and position: the results the next run's change report compares against
+
+Group-level columns are one value per group across the active batches: an ingest whose batch gives a group
+another value than an active batch holds, or keeps other columns than the active batches do, is refused in
+its own transaction (`_check_columns`). PostgreSQL keeps such checks apart from each other with an advisory
+lock on the store's columns: exclusive for a batch that keeps columns, shared for one that keeps none (so that
+ingests into a store without columns still run side by side).
 """
 from __future__ import annotations
 
@@ -48,7 +58,7 @@ from .base import (
     state_fingerprint,
 )
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 DEFAULT_BUSY_SECONDS = 60.0
 
 LINE_COLS = ("id", "name", "sha256", "source", "group_column", "value_column", "rows", "groups", "dated_at",
@@ -59,6 +69,8 @@ RUN_COLS = ("id", "created_at", "folder", "state_sha256", "batch_ids", "referenc
 RUN_GROUP_COLS = ("run_id", "position", "label", "n", "raw_mean", "post_mean", "post_sd", "q_lo", "q_hi",
                   "rank_mean", "rank_sd", "p_above", "p_outside")
 GROUP_TYPES = ("bigint", "integer", "text", "bigint", "float8", "float8", "float8")
+COLUMN_COLS = ("batch_id", "column_name", "position", "value")
+COLUMN_TYPES = ("bigint", "text", "integer", "text")
 RUN_GROUP_TYPES = ("bigint", "integer", "text") + ("float8",) * 10
 
 # test-only hook: when set, an ingest (or a store creation) pauses so that a test can kill it there
@@ -110,6 +122,29 @@ def _who(line) -> str:
     return f"batch {line[0]} ({str(line[1])!r})"
 
 
+def _columns_of(rows, groups) -> dict | None:
+    """One batch's batch_columns rows (batch_id, column_name, position, value) as {name: [value per position]},
+    or None when they are not whole (a position missing or doubled, a value not text: damage)."""
+    out: dict[str, list] = {}
+    for _b, name, pos, value in rows:
+        if type(name) is not str or type(value) is not str or type(pos) is not int:
+            return None
+        out.setdefault(name, []).append((pos, value))
+    for name, pairs in out.items():
+        pairs.sort()
+        if [p for p, _ in pairs] != list(range(groups)):
+            return None
+        out[name] = [v for _, v in pairs]
+    return out
+
+
+def _by_batch(rows) -> dict:
+    out: dict = {}
+    for r in rows:
+        out.setdefault(r[0], []).append(r)
+    return out
+
+
 def _stat_arrays(rows):
     """Columns of batch_groups rows (batch_id, position, label, n, mean, mean_lo, m2) as typed arrays, or
     None when any value is not of its stored type (a damaged row: text in a number column, a NULL, ...)."""
@@ -125,6 +160,10 @@ def _stat_arrays(rows):
     if not all(a.dtype == np.int64 for a in (bid, pos, n)) or not all(a.dtype == np.float64 for a in floats):
         return None
     if not all(type(x) is str for x in c[2]):
+        return None
+    # every float as a float: a damaged SQLite record can turn 0.0 into the integer 0, which numpy would take
+    # silently (both stores return a float for every sound value of these columns)
+    if not all(type(x) is float for k in (4, 5, 6) for x in c[k]):
         return None
     return (bid, pos, c[2], n, *floats)
 
@@ -157,6 +196,9 @@ class SqlLedger(BatchStore):
     def _own_problems(self) -> list[str]:
         """The database's own checks (SQLite's integrity check); none for PostgreSQL."""
         return []
+
+    def _lock_columns(self, tx, exclusive: bool) -> None:
+        """Keep the group-level column checks of concurrent ingests apart (SQLite's write lock does it already)."""
 
     # -- messages ------------------------------------------------------------------------------
 
@@ -244,13 +286,18 @@ class SqlLedger(BatchStore):
 
     # -- the interface -------------------------------------------------------------------------
 
-    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, replace: bool = False) -> BatchInfo:
+    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None,
+                  replace: bool = False) -> BatchInfo:
         labels = [str(x) for x in labels]
         n = np.asarray(n, dtype=np.int64)
         mean, mean_lo, m2 = (C.stored_floats(x) for x in (mean, mean_lo, m2))
+        columns = {str(k): [str(x) for x in v] for k, v in (columns or {}).items()}
+        for name, values in columns.items():
+            if len(values) != len(labels):
+                raise ValueError(f"the group-level column '{name}' has {len(values)} values for {len(labels)} groups")
         rows = int(n.sum())
         when = now_utc()
-        ssum = C.stats_sum(labels, n, mean, mean_lo, m2)
+        ssum = C.stats_sum(labels, n, mean, mean_lo, m2, columns)
         sel = f"SELECT {cols(LINE_COLS)} FROM batches"
         with self._write() as tx:
             self._lock(tx, [f"name:{new.name}", f"content:{new.sha256}"])
@@ -270,6 +317,8 @@ class SqlLedger(BatchStore):
                 b = self._info(gone)
                 raise InputError(f"bad input: the content of '{new.source}' was withdrawn as batch '{b.name}' at "
                                  f"{b.changed_at}; pass --replace to take it back")
+            self._lock_columns(tx, exclusive=bool(columns))
+            self._check_columns(tx, new, labels, columns, None if current is None else current[0])
             swapped = ()
             if current is not None:
                 swapped = self._restate(tx, current, "replaced", when,
@@ -286,6 +335,8 @@ class SqlLedger(BatchStore):
             tx.bulk("batch_groups", GROUP_COLS, payload[:half], GROUP_TYPES)
             _test_pause("middle")
             tx.bulk("batch_groups", GROUP_COLS, payload[half:], GROUP_TYPES)
+            tx.bulk("batch_columns", COLUMN_COLS, [(bid, name, i, v) for name in sorted(columns)
+                                                   for i, v in enumerate(columns[name])], COLUMN_TYPES)
             added, removed = [lsum], []
             if swapped:
                 removed.append(swapped[0])
@@ -293,6 +344,54 @@ class SqlLedger(BatchStore):
             self._bump_head(tx, batch=(1, added, removed))
             _test_pause("before-commit")
         return self._info((*fields, lsum))
+
+    def _check_columns(self, tx, new: NewBatch, labels, columns: dict, replacing: int | None) -> None:
+        """Refuse (InputError, one line) a batch whose group-level columns disagree with the active batches' (but
+        the one it replaces): other column names, or a group with another value in a column. Reads the active
+        batches' distinct (group, column, value) triples, O(their group rows)."""
+        skip = -1 if replacing is None else replacing
+        kept = tx.all("SELECT b.id, b.name, c.column_name FROM batches b LEFT JOIN (SELECT DISTINCT batch_id, "
+                      "column_name FROM batch_columns) c ON c.batch_id = b.id WHERE b.status = 'active' AND b.id <> ? "
+                      "ORDER BY b.id", (skip,))
+        if not kept:
+            return
+        names: dict[int, tuple[str, set]] = {}
+        for bid, bname, col in kept:
+            names.setdefault(bid, (bname, set()))[1].update([col] if col is not None else [])
+        mine = set(columns)
+        for bname, theirs in names.values():
+            if theirs == mine:
+                continue
+            shown = ", ".join(f"'{c}'" for c in sorted(theirs)) or "none"
+            mine_shown = ", ".join(f"'{c}'" for c in sorted(mine)) or "none"
+            lacks = sorted(theirs - mine)
+            if lacks:
+                fix = "ingest it with " + " ".join(f"--column {c}" for c in lacks)
+            else:
+                fix = ("ingest it without " + " ".join(f"--column {c}" for c in sorted(mine - theirs))
+                       + ", or withdraw the active batches and ingest them again with these columns")
+            raise InputError(f"bad input in '{new.source}': the store '{self.path}' keeps the group-level columns "
+                             f"{shown} with its active batch '{bname}', and this batch keeps {mine_shown}; every active "
+                             f"batch keeps the same group-level columns: {fix}; nothing was changed")
+        if not columns:
+            return
+        from ..stats import _same_number, _show
+
+        held = tx.all("SELECT g.label, c.column_name, c.value, min(b.id) FROM batch_columns c JOIN batch_groups g "
+                      "ON g.batch_id = c.batch_id AND g.position = c.position JOIN batches b ON b.id = c.batch_id "
+                      "WHERE b.status = 'active' AND b.id <> ? GROUP BY g.label, c.column_name, c.value", (skip,))
+        stored: dict[tuple[str, str], list] = {}
+        for label, col, value, bid in held:
+            stored.setdefault((label, col), []).append((bid, value))
+        for name in sorted(columns):
+            for label, value in zip(labels, columns[name]):
+                for bid, old in sorted(stored.get((label, name), ())):
+                    if old != value and not _same_number(old, value):
+                        raise InputError(
+                            f"bad input in '{new.source}', group {_show(label)}, column '{name}': the store "
+                            f"'{self.path}' holds {_show(old)} for this group (batch '{names[bid][0]}'), this batch "
+                            f"has {_show(value)}; a group-level column holds one value per group; nothing was changed "
+                            "(correct the file, or withdraw the batch that holds the other value)")
 
     def withdraw(self, name: str, note: str | None = None) -> BatchInfo:
         when = now_utc()
@@ -320,9 +419,20 @@ class SqlLedger(BatchStore):
         return tx.all(f"SELECT {', '.join('g.' + q(c) for c in GROUP_COLS)} FROM batch_groups g "
                       "JOIN batches b ON b.id = g.batch_id WHERE b.status = 'active' ORDER BY g.batch_id, g.position")
 
-    def _stats(self, lines, rows, collect: list | None = None) -> list[BatchStats]:
-        """Split group rows by batch and check each batch's statistics against its stats_sum, for `lines`
-        (in id order). Raises on the first mismatch, or appends to `collect` when given."""
+    def _column_rows(self, tx, active_only: bool = False) -> list[tuple]:
+        """batch_columns rows; sorted by batch here (the database's text order depends on its collation)."""
+        if not active_only:
+            rows = tx.all(f"SELECT {cols(COLUMN_COLS)} FROM batch_columns")
+        else:
+            rows = tx.all(f"SELECT {', '.join('c.' + q(c) for c in COLUMN_COLS)} FROM batch_columns c "
+                          "JOIN batches b ON b.id = c.batch_id WHERE b.status = 'active'")
+        return sorted(rows, key=lambda r: (r[0] if type(r[0]) is int else -1, str(r[1]),
+                                           r[2] if type(r[2]) is int else -1))
+
+    def _stats(self, lines, rows, collect: list | None = None, col_rows=()) -> list[BatchStats]:
+        """Split group rows (and group-level column rows) by batch and check each batch's statistics and columns
+        against its stats_sum, for `lines` (in id order). Raises on the first mismatch, or appends to `collect`
+        when given."""
         arrays = _stat_arrays(rows)
         out = []
         if arrays is None:
@@ -337,17 +447,20 @@ class SqlLedger(BatchStore):
             if collect is None:
                 raise self._damaged("the statistics of a batch do not match their checksum")
             good = [r for r in rows if r[0] not in bad]
-            return self._stats([ln for ln in lines if ln[0] not in bad], good, collect)
+            return self._stats([ln for ln in lines if ln[0] not in bad], good, collect, col_rows)
         bid, pos, labels, n, mean, lo, m2 = arrays
         ids = np.array([ln[0] for ln in lines], dtype=np.int64)
         starts = np.searchsorted(bid, ids, side="left")
         ends = np.searchsorted(bid, ids, side="right")
         sorted_ok = bool(np.all(np.diff(bid) >= 0)) if len(bid) else True
+        by_batch = _by_batch(col_rows)
         for line, s, e in zip(lines, starts, ends):
             k = int(e - s)
             ok = sorted_ok and k == line[7] and np.array_equal(pos[s:e], np.arange(k)) and _is_sum(line[13])
+            columns = _columns_of(by_batch.get(line[0], ()), k)
+            ok = ok and columns is not None
             if ok:
-                got = C.stats_sum(labels[s:e], n[s:e], mean[s:e], lo[s:e], m2[s:e])
+                got = _safe(lambda x: C.stats_sum(*x), (labels[s:e], n[s:e], mean[s:e], lo[s:e], m2[s:e], columns))
                 ok = got == line[13]
             if not ok:
                 what = f"the statistics of {_who(line)} do not match their checksum"
@@ -355,7 +468,8 @@ class SqlLedger(BatchStore):
                     raise self._damaged(what)
                 collect.append(what)
                 continue
-            out.append(BatchStats(int(line[0]), tuple(labels[s:e]), n[s:e], mean[s:e], lo[s:e], m2[s:e]))
+            out.append(BatchStats(int(line[0]), tuple(labels[s:e]), n[s:e], mean[s:e], lo[s:e], m2[s:e],
+                                  {name: tuple(v) for name, v in columns.items()}))
         return out
 
     def snapshot(self) -> Snapshot:
@@ -363,7 +477,8 @@ class SqlLedger(BatchStore):
             lines = self._lines(tx)
             active = [ln for ln in lines if ln[10] == "active"]
             rows = self._group_rows(tx, active_only=True)
-        stats = self._stats(active, rows)
+            col_rows = self._column_rows(tx, active_only=True)
+        stats = self._stats(active, rows, col_rows=col_rows)
         infos = tuple(self._info(ln) for ln in active)
         return Snapshot(infos, tuple(stats), state_fingerprint(infos))
 
@@ -471,6 +586,7 @@ class SqlLedger(BatchStore):
                     found.append(f"schema version {meta.get('format')!r}, expected {SCHEMA_VERSION}")
                 lines = tx.all(f"SELECT {cols(LINE_COLS)} FROM batches ORDER BY id")
                 rows = self._group_rows(tx)
+                col_rows = self._column_rows(tx)
                 runs = tx.all(f"SELECT {cols(RUN_COLS)} FROM runs ORDER BY id")
                 run_rows = self._run_group_rows(tx)
                 heads = self._head_problems(tx, [ln[-1] for ln in lines], [r[10] for r in runs])
@@ -484,12 +600,16 @@ class SqlLedger(BatchStore):
             else:
                 sound.append(line)
         stat_bad: list[str] = []
-        self._stats(sound, [r for r in rows if r[0] in {ln[0] for ln in sound}], stat_bad)
+        self._stats(sound, [r for r in rows if r[0] in {ln[0] for ln in sound}], stat_bad, col_rows)
         found += stat_bad
         known = {ln[0] for ln in lines}
         stray = sorted({r[0] for r in rows} - known, key=str)
         if stray:
             found.append(f"statistics rows of batch id(s) {', '.join(map(str, stray[:5]))} that are not in the ledger")
+        stray = sorted({r[0] for r in col_rows} - known, key=str)
+        if stray:
+            found.append(f"group-level column rows of batch id(s) {', '.join(map(str, stray[:5]))} that are not in "
+                         "the ledger")
         by_run: dict = {}
         for r in run_rows:
             by_run.setdefault(r[0], []).append(r)
@@ -513,9 +633,14 @@ class SqlLedger(BatchStore):
             meta = self._meta(tx)
             lines = self._lines(tx)
             rows = self._group_rows(tx)
+            col_rows = self._column_rows(tx)
             runs = self._run_lines(tx, with_state=True)
             run_rows = self._run_group_rows(tx)
-        stats = {s.batch_id: s for s in self._stats(lines, rows)}
+        stats = {s.batch_id: s for s in self._stats(lines, rows, col_rows=col_rows)}
+        stray = sorted({r[0] for r in col_rows} - set(stats), key=str)
+        if stray:
+            raise self._damaged(f"group-level column rows of batch id(s) {', '.join(map(str, stray[:5]))} are not "
+                                "in the ledger")
         by_run: dict = {r[0]: [] for r in runs}
         for r in run_rows:
             by_run.setdefault(r[0], []).append(r)
@@ -538,6 +663,8 @@ class SqlLedger(BatchStore):
                 tx.bulk("batch_groups", GROUP_COLS,
                         [(s.batch_id, i, lab, int(s.n[i]), float(s.mean[i]), float(s.mean_lo[i]), float(s.m2[i]))
                          for i, lab in enumerate(s.labels)], GROUP_TYPES)
+                tx.bulk("batch_columns", COLUMN_COLS, [(s.batch_id, name, i, v) for name in sorted(s.columns)
+                                                       for i, v in enumerate(s.columns[name])], COLUMN_TYPES)
             tx.run(f"INSERT INTO runs ({cols(RUN_COLS)}) VALUES ({', '.join('?' * len(RUN_COLS))})",
                    content.runs, many=True)
             for run in content.runs:

@@ -12,9 +12,10 @@ Why these choices:
   table holding the schema version. Anything else given as a store is refused with one line.
 
 The tables and their checksums are described in `ledger.py`, which holds the SQL shared with the
-PostgreSQL store. Schema versions: 1 (no checksums; stores made before them) and 2. A version-1
-file is upgraded in place by the first command that opens it, in one transaction, after SQLite's
-quick check; a file of a newer version is refused.
+PostgreSQL store. Schema versions: 1 (no checksums; stores made before them), 2 (checksums) and 3
+(group-level columns: the table batch_columns). An older file is upgraded in place, step by step, by
+the first command that opens it, in one transaction, after SQLite's quick check; a file of a newer
+version is refused.
 
 A new store is built in a hidden sibling `.NAME.new-XXXXXXXXXXXX` and linked into place, so a
 half-made store is never seen. Its maker holds an exclusive flock on it meanwhile; a maker killed
@@ -32,7 +33,7 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from .. import __version__
-from ..errors import InputError, OutputError
+from ..errors import InputError, OutputError, PoolingError
 from .ledger import DEFAULT_BUSY_SECONDS, SCHEMA_VERSION, SqlLedger, _test_pause, now_utc
 from .location import Location, parse_location
 
@@ -76,6 +77,13 @@ CREATE TABLE batch_groups (
     m2 REAL NOT NULL,
     PRIMARY KEY (batch_id, position)
 ) WITHOUT ROWID;
+CREATE TABLE batch_columns (
+    batch_id INTEGER NOT NULL REFERENCES batches (id),
+    column_name TEXT NOT NULL,
+    position INTEGER NOT NULL,
+    value TEXT NOT NULL,
+    PRIMARY KEY (batch_id, column_name, position)
+) WITHOUT ROWID;
 CREATE TABLE runs (
     id INTEGER PRIMARY KEY,
     created_at TEXT NOT NULL,
@@ -113,6 +121,17 @@ CREATE TABLE store_head (
     batch_lines INTEGER NOT NULL, batch_acc TEXT NOT NULL,
     run_lines INTEGER NOT NULL, run_acc TEXT NOT NULL
 );
+"""
+
+# version 2 -> 3: the group-level columns of each batch (none in a version-2 store, so no checksum changes)
+UPGRADE_2_TO_3 = """
+CREATE TABLE batch_columns (
+    batch_id INTEGER NOT NULL REFERENCES batches (id),
+    column_name TEXT NOT NULL,
+    position INTEGER NOT NULL,
+    value TEXT NOT NULL,
+    PRIMARY KEY (batch_id, column_name, position)
+) WITHOUT ROWID;
 """
 
 
@@ -371,6 +390,8 @@ class SqliteStore(SqlLedger):
         """Turn SQLite's exceptions into one-line pooling errors that name the store."""
         try:
             yield
+        except PoolingError:
+            raise  # our own refusal from inside a transaction (an InputError is a ValueError: not damage)
         except sqlite3.IntegrityError:
             raise  # a broken invariant of ours, not of the user's: let it surface as a bug
         except sqlite3.OperationalError as exc:
@@ -445,8 +466,10 @@ class SqliteStore(SqlLedger):
     def _check_format(self):
         if self._format() < FORMAT:
             self._upgrade()
-        if "store_head" not in {r[0] for r in self._con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}:
-            raise InputError(f"bad store '{self.path}': the table store_head is missing; the file is damaged")
+        tables = {r[0] for r in self._con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+        for table in ("store_head", "batch_columns"):
+            if table not in tables:
+                raise InputError(f"bad store '{self.path}': the table {table} is missing; the file is damaged")
         mode = self._con.execute("PRAGMA journal_mode").fetchone()[0]
         if mode.lower() != "wal":
             self._con.execute("PRAGMA journal_mode = WAL")
@@ -460,14 +483,20 @@ class SqliteStore(SqlLedger):
                              "upgraded; restore it from a backup")
         with self._write() as tx:
             fmt = self._format()  # another job may have upgraded it while we waited for the lock
+            if fmt == FORMAT:
+                return
             if fmt == 1:  # executescript would COMMIT: the statements run one by one inside this transaction
                 for stmt in UPGRADE_1_TO_2.split(";"):
                     if stmt.strip():
                         tx.run(stmt)
                 self.fill_checksums(tx)
-                tx.run("UPDATE pooling_store SET value = ? WHERE key = 'format'", (str(FORMAT),))
-                tx.run("INSERT OR REPLACE INTO pooling_store (key, value) VALUES ('upgraded_at', ?)", (now_utc(),))
-                tx.run(f"PRAGMA user_version = {FORMAT}")
+                fmt = 2
+            if fmt == 2:
+                tx.run(UPGRADE_2_TO_3)
+                fmt = 3
+            tx.run("UPDATE pooling_store SET value = ? WHERE key = 'format'", (str(fmt),))
+            tx.run("INSERT OR REPLACE INTO pooling_store (key, value) VALUES ('upgraded_at', ?)", (now_utc(),))
+            tx.run(f"PRAGMA user_version = {fmt}")
 
     def _own_problems(self) -> list[str]:
         try:
