@@ -277,10 +277,10 @@ def test_sbc_detects_a_wrong_prior():
 
 
 # shared-heavy: 10 rank checks, each at ALPHA = 1e-3, so by Bonferroni the chance that a calibrated sampler fails
-# any of them is at most 10 x 1e-3 = 1%. 1000 replications (about 35 s on one idle core): with them a lambda_j
-# draw whose rate is 15% off, the df prior weights dropped from the kernel, or the sigma^2 prior dropped from the
-# kernel each give p < 1e-11 in some check (tried once by hand, see DEVELOPERS.md); with 400 the weakest of those
-# gave 2e-12. Lag-10 autocorrelations of mu, tau, log df, log sigma, lambda_1 and theta_1 over 40 simulated data
+# any of them is at most 10 x 1e-3 = 1%. 1000 replications (25 to 35 s on one idle core, 110 s on a busy 2-core
+# machine): with them a lambda_j draw whose rate is 15% off, the df prior weights dropped from the kernel, or the
+# sigma^2 prior dropped from the kernel each gave p < 1e-27 in some check (tried once by hand with this seed and
+# not kept, see DEVELOPERS.md). Lag-10 autocorrelations of mu, tau, log df, log sigma, lambda_1 and theta_1 over 40 simulated data
 # sets were 0.002 or less at the median and at most 0.06, so the kept draws are close to independent.
 REPS_SHARED_HEAVY = 1000
 SHARED_HEAVY_CHECKS = {"mu", "tau", "df", "sigma", "log p(sigma^2)", "lambda[0]"} | {f"theta[{j}]" for j in range(4)}
