@@ -55,7 +55,7 @@ def main(argv=None) -> int:
             ok = p > sbc.ALPHA
             flagged += not ok
             entry["parameters"][name] = {"chi2_pvalue": p, "bin_counts": counts.tolist(), "uniform": ok}
-            print(f"{structure:18s} {name:6s} p = {p:7.4f}  bins {' '.join(f'{c:4d}' for c in counts)}"
+            print(f"{structure:18s} {name:15s} p = {p:7.4f}  bins {' '.join(f'{c:4d}' for c in counts)}"
                   f"  {'ok' if ok else 'NOT UNIFORM'}")
         print(f"{structure:18s} {args.reps} replications in {seconds:.1f} s")
         results["structures"][structure] = entry

@@ -22,7 +22,7 @@ _LAZY = {
     "Flat": "model", "Gamma": "model", "HalfCauchy": "model", "HalfNormal": "model", "Model": "model",
     "Normal": "model", "NuFixed": "model", "NuGrid": "model", "Reciprocal": "model", "build": "model",
     "NormalBetween": "model", "HeavyBetween": "model", "ReportOptions": "asked", "Category": "model",
-    "Numeric": "model",
+    "Numeric": "model", "ScaledInvChi2": "model",
     "Settings": "sampler", "Targets": "sampler",
     "GroupStats": "stats", "from_estimates": "stats", "from_frame": "stats", "from_summaries": "stats",
     "merge": "stats", "read_table": "stats",
@@ -88,6 +88,6 @@ def _fit_without(stats, model, settings, seed: int, progress, summary, options, 
 __all__ = [
     "GroupStats", "read_table", "from_frame", "from_summaries", "from_estimates", "merge",
     "Model", "Flat", "Normal", "HalfNormal", "HalfCauchy", "Reciprocal", "Gamma", "NuFixed", "NuGrid", "build",
-    "NormalBetween", "HeavyBetween", "ReportOptions", "Category", "Numeric",
+    "NormalBetween", "HeavyBetween", "ReportOptions", "Category", "Numeric", "ScaledInvChi2",
     "Settings", "Targets", "fit", "InputError", "ModelError", "PoolingError", "__version__",
 ]

@@ -29,7 +29,8 @@ def _num(text: str, what: str) -> float:
 
 
 def parse_prior(text: str, option: str):
-    """flat | normal:LOC:SCALE | half-normal:SCALE | half-cauchy:SCALE | reciprocal | gamma:SHAPE:RATE."""
+    """flat | normal:LOC:SCALE | half-normal:SCALE | half-cauchy:SCALE | reciprocal | gamma:SHAPE:RATE |
+    scaled-inv-chi2:DOF:SCALE2."""
     from . import model as m
 
     parts = text.strip().lower().split(":")
@@ -38,10 +39,12 @@ def parse_prior(text: str, option: str):
         "--mu": {"flat": (m.Flat, 0), "normal": (m.Normal, 2)},
         "--tau": {"flat": (m.Flat, 0), "half-normal": (m.HalfNormal, 1), "half-cauchy": (m.HalfCauchy, 1)},
         "--s2": {"reciprocal": (m.Reciprocal, 0), "gamma": (m.Gamma, 2)},
+        "--sigma2": {"reciprocal": (m.Reciprocal, 0), "scaled-inv-chi2": (m.ScaledInvChi2, 2)},
     }[option]
     if kind not in shapes:
         forms = {"--mu": "flat or normal:LOC:SCALE", "--tau": "flat, half-normal:SCALE or half-cauchy:SCALE",
-                 "--s2": "reciprocal or gamma:SHAPE:RATE"}[option]
+                 "--s2": "reciprocal or gamma:SHAPE:RATE",
+                 "--sigma2": "reciprocal or scaled-inv-chi2:DOF:SCALE2"}[option]
         raise E.InputError(f"bad option {option}: expected {forms}; found '{text}'")
     cls, nargs = shapes[kind]
     if len(args) != nargs:
@@ -114,6 +117,10 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     g.add_argument("--tau", default="flat",
                    help="prior on tau: flat (default; needs 3+ groups), half-normal:SCALE or half-cauchy:SCALE")
     g.add_argument("--s2", default="reciprocal", help="prior on s^2 (separate): reciprocal (default, ∝ 1/s^2) or gamma:SHAPE:RATE")
+    g.add_argument("--sigma2", default="reciprocal",
+                   help="prior on the shared sigma^2 (shared): reciprocal (default, ∝ 1/sigma^2, flat on log sigma) or "
+                        "scaled-inv-chi2:DOF:SCALE2 (as if DOF earlier degrees of freedom had given the variance "
+                        "SCALE2, in squared units of the data)")
     g.add_argument("--nu", help="hold nu (separate) at this value")
     g.add_argument("--nu-grid", dest="nu_grid", help="comma-separated grid of nu values, equal prior weights "
                    "(default: 1,1.5,2,3,4,5,6,8,10,14,20,30,50,100)")
@@ -295,7 +302,9 @@ def _model_from_args(args, stats):
 
     within = args.within or ("known" if stats.kind == "known" else "separate")
     return Model(within=within, mu=parse_prior(args.mu, "--mu"), tau=parse_prior(args.tau, "--tau"),
-                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args), between=getattr(args, "between", None) or "heavy",
+                 s2=parse_prior(args.s2, "--s2"),
+                 sigma2=parse_prior(getattr(args, "sigma2", None) or "reciprocal", "--sigma2"), nu=_nu(args),
+                 between=getattr(args, "between", None) or "heavy",
                  predictors=_predictors_from_args(args, stats), effects=_effects(getattr(args, "effects", None)))
 
 

@@ -30,7 +30,9 @@ Block B, the variances given theta:
   separate: sigma_j^2 ~ Scaled-Inv-chi2(nu + n_j, (nu s^2 + M2_j + n_j (ybar_j - theta_j)^2) / (nu + n_j)),
             s^2 ~ Gamma(shape J nu / 2 + a, rate nu / 2 sum_j 1/sigma_j^2 + b),
             nu  ~ its exact discrete conditional on the grid (plus two exact moves, see below).
-  shared:   sigma^2 ~ Scaled-Inv-chi2(N, (sum_j M2_j + sum_j n_j (ybar_j - theta_j)^2) / N).
+  shared:   sigma^2 ~ Scaled-Inv-chi2(N, (sum_j M2_j + sum_j n_j (ybar_j - theta_j)^2) / N) if p(sigma^2) ∝ 1/sigma^2;
+            under a proper inverse-gamma prior (shape a, scale b; a Scaled-Inv-chi2(nu0, s0^2) is a = nu0/2,
+            b = nu0 s0^2 / 2) the conjugate Inv-Gamma(N/2 + a, SS/2 + b), SS the sum above.
   known:    no block B.
 
 A Scaled-Inv-chi2(k, S/k) draw is S / chi2(k) = S / (2 Gamma(k/2, 1)).
@@ -85,14 +87,15 @@ class Data(NamedTuple):
 
     within: 0 separate, 1 shared, 2 known. n, ybar, m2: group sizes, means and sums of squared
     deviations; v_known: se_j^2 (known). mu prior: kind 0 flat, 1 Normal(mu_loc, mu_scale).
-    tau prior: kind 0 flat, 1 half-normal, 2 half-Cauchy, scale tau_scale. s^2 prior Gamma(s2_shape,
-    s2_rate) (0, 0: p(s^2) ∝ 1/s^2). nu on nu_grid with log prior weights nu_logprior; nu_table and
-    layout from `prepare`. between: 0 normal, 1 heavy (Student-t by a scale mixture); df_grid (inf is
-    the normal limit) with log prior weights df_logprior, df_const[k] = log of the t density's
-    constant, lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2 (-log(2 pi)/2 at df = inf), and df_logq[k] the
-    log of the standard t's upper quartile (t_quartile_logs). X (J, p): the group-level predictors (p = 0:
-    none), beta_loc and beta_prec (p,): the centre and precision of each coefficient's normal prior
-    (precision 0: flat); XT (p, J): X transposed, contiguous by column for the sums.
+    tau prior: kind 0 flat, 1 half-normal, 2 half-Cauchy, scale tau_scale. separate: s^2 prior Gamma(s2_shape,
+    s2_rate) (0, 0: p(s^2) ∝ 1/s^2); shared: the same two numbers are the shape and scale of an inverse gamma on
+    sigma^2, p(sigma^2) ∝ (sigma^2)^-(s2_shape + 1) exp(-s2_rate / sigma^2) (0, 0: p(sigma^2) ∝ 1/sigma^2).
+    nu on nu_grid with log prior weights nu_logprior; nu_table and layout from `prepare`. between: 0 normal,
+    1 heavy (Student-t by a scale mixture); df_grid (inf is the normal limit) with log prior weights df_logprior,
+    df_const[k] = log of the t density's constant, lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2 (-log(2 pi)/2
+    at df = inf), and df_logq[k] the log of the standard t's upper quartile (t_quartile_logs). X (J, p): the
+    group-level predictors (p = 0: none), beta_loc and beta_prec (p,): the centre and precision of each
+    coefficient's normal prior (precision 0: flat); XT (p, J): X transposed, contiguous by column for the sums.
     """
 
     within: int
@@ -892,7 +895,8 @@ def block_b(rng, d, scalars, theta, sigma2, lp):
             r = ybar[j] - theta[j]
             ss += m2[j] + n[j] * r * r
             n_tot += n[j]
-        scalars[SIGMA2] = ss / (2.0 * rng.standard_gamma(0.5 * n_tot))
+        # with 0, 0 (p(sigma^2) ∝ 1/sigma^2) this is the flat-prior draw, bit for bit
+        scalars[SIGMA2] = (ss + 2.0 * d.s2_rate) / (2.0 * rng.standard_gamma(0.5 * n_tot + d.s2_shape))
 
 
 @njit(nogil=True, cache=True)

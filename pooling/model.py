@@ -13,7 +13,7 @@ priors, as frozen values.
 Structures for the within-group variance:
 
     separate  sigma_j^2 ~ Scaled-Inv-chi2(nu, s^2), with priors on s^2 and on nu
-    shared    sigma_j = sigma for every group, p(log sigma) flat
+    shared    sigma_j = sigma for every group, p(log sigma) flat (or sigma^2 ~ Scaled-Inv-chi2(dof, scale2))
     known     v_j = se_j^2 given with each group's estimate
 
 `build` checks a specification against the data, refuses improper or unidentifiable set-ups
@@ -95,6 +95,19 @@ class Gamma:
 
     def describe(self) -> str:
         return f"gamma(shape={self.shape:g}, rate={self.rate:g}) on s^2"
+
+
+@dataclass(frozen=True)
+class ScaledInvChi2:
+    """Scaled-Inv-chi2(dof, scale2) on the shared sigma^2: p(sigma^2) ∝ (sigma^2)^-(dof/2 + 1) exp(-dof scale2 /
+    (2 sigma^2)), an inverse gamma with shape dof/2 and scale dof scale2 / 2; scale2 in units^2. It weighs as
+    much as dof earlier degrees of freedom that gave the variance estimate scale2."""
+
+    dof: float
+    scale2: float
+
+    def describe(self) -> str:
+        return f"scaled-inv-chi2(dof={self.dof:g}, scale2={self.scale2:g}) on sigma^2"
 
 
 @dataclass(frozen=True)
@@ -339,7 +352,8 @@ class Model:
 
     Defaults: between heavy (Student-t, df learned on DEFAULT_DF_GRID with Gamma(2, 0.1) prior weights);
     mu flat; tau flat (needs at least 3 groups); s^2 ∝ 1/s^2; nu on the grid DEFAULT_NU_GRID with equal
-    weights; shared log sigma flat. `between` also takes the strings 'normal', 'heavy' and 'heavy:DF'.
+    weights; shared log sigma flat (sigma2: Reciprocal(), p(sigma^2) ∝ 1/sigma^2; or a proper ScaledInvChi2, for
+    the shared structure only). `between` also takes the strings 'normal', 'heavy' and 'heavy:DF'.
     predictors: group-level predictors (`Category`, `Numeric`; none by default), whose columns the statistics
     carry (GroupStats.columns); effects: the prior on their coefficients, flat by default (or Normal(0, scale):
     the scale in the units of the data for a contrast, per unit of the column for a numeric predictor).
@@ -353,6 +367,7 @@ class Model:
     between: NormalBetween | HeavyBetween = field(default_factory=HeavyBetween)  # a text such as "heavy:4" is parsed
     predictors: tuple[Category | Numeric, ...] = ()
     effects: Flat | Normal = field(default_factory=Flat)
+    sigma2: Reciprocal | ScaledInvChi2 = field(default_factory=Reciprocal)
 
     def __post_init__(self):
         object.__setattr__(self, "between", parse_between(self.between))
@@ -383,6 +398,18 @@ class Model:
         if isinstance(self.s2, Gamma) and not (self.s2.shape > 0 and self.s2.rate > 0):
             raise ModelError("bad model: the gamma prior on s^2 needs shape > 0 and rate > 0; "
                              f"found shape={self.s2.shape}, rate={self.s2.rate}")
+        if not isinstance(self.sigma2, (Reciprocal, ScaledInvChi2)):
+            raise ModelError(f"bad model: the prior on the shared sigma^2 must be 1/sigma^2 or scaled-inv-chi2; "
+                             f"found {self.sigma2!r}")
+        if isinstance(self.sigma2, ScaledInvChi2):
+            if self.within != "shared":
+                raise ModelError("bad model: a prior on sigma^2 (sigma2) is for the shared structure only; found "
+                                 f"within='{self.within}' (separate: priors s2 and nu; known: no sigma to give a "
+                                 "prior)")
+            if not all(isinstance(x, (int, float)) and math.isfinite(x) and x > 0
+                       for x in (self.sigma2.dof, self.sigma2.scale2)):
+                raise ModelError("bad model: the scaled-inv-chi2 prior on sigma^2 needs dof > 0 and scale2 > 0, "
+                                 f"both finite; found dof={self.sigma2.dof!r}, scale2={self.sigma2.scale2!r}")
         if isinstance(self.nu, NuFixed) and not (math.isfinite(self.nu.value) and self.nu.value > 0):
             raise ModelError(f"bad model: nu must be a positive number; found {self.nu.value}")
         if isinstance(self.nu, NuGrid):
@@ -408,7 +435,7 @@ class Model:
             out["s2"] = self.s2.describe()
             out["nu"] = self.nu.describe()
         elif self.within == "shared":
-            out["sigma"] = "p(log sigma) flat"
+            out["sigma"] = "p(log sigma) flat" if isinstance(self.sigma2, Reciprocal) else self.sigma2.describe()
         else:
             out["sigma"] = "given: each group's standard error"
         return out
@@ -441,13 +468,15 @@ class Model:
 
             out["predictors"] = [enc_pred(x) for x in self.predictors]
             out["effects"] = enc(self.effects)
+        if isinstance(self.sigma2, ScaledInvChi2):  # written only when proper: earlier records stay as they were
+            out["sigma2"] = enc(self.sigma2)
         return out
 
     @staticmethod
     def from_dict(d: dict) -> "Model":
         """The inverse of to_dict. A record without 'between' (written before heavy tails existed) was a normal fit."""
         kinds = {c.__name__: c for c in (Flat, Normal, HalfNormal, HalfCauchy, Reciprocal, Gamma, NuFixed, NuGrid,
-                                         NormalBetween, HeavyBetween)}
+                                         NormalBetween, HeavyBetween, ScaledInvChi2)}
 
         def num(v):
             return math.inf if v == "inf" else v
@@ -465,8 +494,9 @@ class Model:
         between = dec(d["between"]) if "between" in d else NormalBetween()
         preds = tuple(_decode_predictor(x) for x in d.get("predictors", ()))
         effects = dec(d["effects"]) if "effects" in d else Flat()
+        sigma2 = dec(d["sigma2"]) if "sigma2" in d else Reciprocal()
         return Model(d["within"], dec(d["mu"]), dec(d["tau"]), dec(d["s2"]), dec(d["nu"]), between=between,
-                     predictors=preds, effects=effects)
+                     predictors=preds, effects=effects, sigma2=sigma2)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -668,8 +698,17 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
     elif isinstance(model.tau, HalfCauchy):
         tau_kind, tau_scale = TAU_HALFCAUCHY, model.tau.scale / scale
     s2_shape, s2_rate = 0.0, 0.0  # Reciprocal: Gamma(J nu / 2, nu / 2 sum 1/sigma_j^2) exactly
-    if isinstance(model.s2, Gamma):
+    if model.within == "separate" and isinstance(model.s2, Gamma):
         s2_shape, s2_rate = model.s2.shape, model.s2.rate * scale * scale
+    if model.within == "shared" and isinstance(model.sigma2, ScaledInvChi2):
+        # the same two inputs carry the shared sigma^2's inverse gamma (shape dof/2, scale dof scale2 / 2); in
+        # internal units sigma^2 / scale^2, so the inverse gamma's scale is divided by scale^2
+        s2_shape = 0.5 * model.sigma2.dof
+        s2_rate = 0.5 * model.sigma2.dof * model.sigma2.scale2 / (scale * scale)
+        if not (math.isfinite(s2_rate) and s2_rate > 0):
+            _refuse(f"bad model: the prior on sigma^2, {model.sigma2.describe()}, is out of range for these data (its "
+                    f"scale is {model.sigma2.scale2:g} against a data spread near {scale:g}); give scale2 near the "
+                    "variance you expect within a group")
     if isinstance(model.nu, NuFixed):
         grid, logp = np.array([model.nu.value], dtype=float), np.zeros(1)
     else:

@@ -58,6 +58,7 @@ import pytest
 from scipy import integrate, special, stats
 
 from pooling import kernel
+from pooling.model import ScaledInvChi2
 from tests.kernel_helpers import (README_DEFAULT, SCHOOLS_SE, SCHOOLS_Y, Gamma, HalfCauchy, HalfNormal, Model, Normal,
                                   NuFixed, NuGrid, dyestuff_problem, internal, run, schools_problem, start_state)
 
@@ -175,15 +176,19 @@ def group_marginal(nu, s2, n_j, ss_j):
     return top + np.log(val)
 
 
-def shared_pit(out, n, ybar, m2, df_shift=0.0):
-    """sigma^2 | theta ~ Inv-Gamma(a = N/2, scale = (sum_j M2_j + sum_j n_j (ybar_j - theta_j)^2)/2).
+def shared_pit(out, n, ybar, m2, df_shift=0.0, prior=(0.0, 0.0)):
+    """sigma^2 | theta ~ Inv-Gamma(a = N/2 + nu0/2, scale = (sum_j M2_j + sum_j n_j (ybar_j - theta_j)^2)/2
+    + nu0 s0^2 / 2), prior = (nu0, s0^2) in internal units ((0, 0): p(log sigma) flat).
 
-    Source: BDA3 sec. 3.2 (normal variance with p(log sigma) flat: Scaled-Inv-chi2(N, SS/N)).
+    Source: BDA3 sec. 3.2 (normal variance with p(log sigma) flat: Scaled-Inv-chi2(N, SS/N)) and sec. 2.6 (with a
+    Scaled-Inv-chi2(nu0, s0^2) prior: Scaled-Inv-chi2(nu0 + N, (nu0 s0^2 + SS) / (nu0 + N))).
     df_shift = -J is the deliberate error of using the residual degrees of freedom N - J.
     """
     theta = out["theta"]
+    nu0, s02 = prior
     ss = m2.sum() + np.sum(n * (ybar - theta) ** 2, axis=1)
-    return stats.invgamma.cdf(out["sigma"][:, 0] ** 2, a=(n.sum() + df_shift) / 2.0, scale=ss / 2.0)
+    return stats.invgamma.cdf(out["sigma"][:, 0] ** 2, a=(n.sum() + nu0 + df_shift) / 2.0,
+                              scale=(ss + nu0 * s02) / 2.0)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -469,6 +474,19 @@ def test_shared_sigma2_given_theta():
     lam = out["lam"][:-1]
     assert _ks_uniform(theta_pit(out, ybar, v_prev, lam_prev=lam)) > ALPHA
     assert _ks_uniform(mu_pit(out, ybar, v_prev, (0, 0.0, 1.0), lam_prev=lam)) > ALPHA
+
+
+def test_shared_sigma2_given_theta_under_a_proper_prior():
+    # sigma^2 ~ Scaled-Inv-chi2(8, 40^2) in yield units (a prior near the batches' own spread, weighing as much
+    # as 8 earlier degrees of freedom), carried into internal units by hand: s0^2 / scale^2
+    model = Model(within="shared", sigma2=ScaledInvChi2(dof=8.0, scale2=1600.0))
+    p = dyestuff_problem(model)
+    n, ybar, m2 = p.n, p.ybar, p.m2
+    prior = (8.0, 1600.0 / p.scale ** 2)
+    out = run(p, n_sweeps=N_SWEEPS, seed=12)
+    assert _ks_uniform(shared_pit(out, n, ybar, m2, prior=prior)) > ALPHA
+    # the prior left out (the flat-prior law) is rejected: the test sees the prior's inputs
+    assert _ks_uniform(shared_pit(out, n, ybar, m2)) < ALPHA
 
 
 @pytest.mark.parametrize("between", ["normal", "heavy"])

@@ -345,7 +345,7 @@ HOSTILE_TEXT = st.one_of(
     st.text(max_size=12),
 )
 # --warmup is left out: a warm-up of 1e9 sweeps is a legitimate (endless) request, not bad input
-OPTIONS = ["--chains", "--draws", "--max-draws", "--seed", "--threads", "--tau", "--mu", "--s2", "--nu",
+OPTIONS = ["--chains", "--draws", "--max-draws", "--seed", "--threads", "--tau", "--mu", "--s2", "--sigma2", "--nu",
            "--nu-grid", "--level", "--top", "--threshold", "--lower-limit", "--allowed-bias", "--compare",
            "--assigned-value", "--sigma-pt", "--keep", "--keep-sample", "--summary-bins", "--encoding", "--delimiter",
            "--thousands", "--within", "--best", "--summary"]

@@ -137,3 +137,31 @@ def test_unicode_twins_finds_exactly_the_canonically_equivalent_pairs():
             assert a != b and unicodedata.normalize("NFC", a) == unicodedata.normalize("NFC", b)
 
     check()
+
+
+def test_sigma2_prior_is_for_the_shared_structure_only(run_cli, small_csv, tmp_path):
+    code, stderr, out = _fit(run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness",
+                             "--sigma2", "scaled-inv-chi2:4:0.01")
+    line = _one_line(stderr)
+    assert code == 2 and "shared structure only" in line and "within='separate'" in line
+    assert not out.exists()
+    code, stderr, out = _fit(run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness",
+                             "--within", "shared", "--sigma2", "scaled-inv-chi2:4")
+    assert code == 2 and "--sigma2" in _one_line(stderr) and "takes 2 number(s)" in stderr
+    assert not out.exists()
+
+
+def test_sigma2_prior_record_and_its_checks():
+    import json
+
+    import pooling
+    from pooling.errors import ModelError
+
+    m = pooling.Model(within="shared", sigma2=pooling.ScaledInvChi2(4.0, 0.25))
+    assert pooling.Model.from_dict(json.loads(json.dumps(m.to_dict()))) == m
+    assert m.priors()["sigma"] == "scaled-inv-chi2(dof=4, scale2=0.25) on sigma^2"
+    # the flat default writes no record of its own: earlier records stay as they were
+    assert "sigma2" not in pooling.Model(within="shared").to_dict()
+    for dof, scale2 in ((0.0, 1.0), (4.0, -1.0), (float("inf"), 1.0), (4.0, float("nan"))):
+        with pytest.raises(ModelError, match="dof > 0 and scale2 > 0"):
+            pooling.Model(within="shared", sigma2=pooling.ScaledInvChi2(dof, scale2))
