@@ -58,8 +58,10 @@ def child(J: int, mode: str) -> dict:
     import pooling
     from common import invented_groups
     from pooling.output import write_run
+    from pooling.results import compute
     from pooling import summary
-    from pooling.report import ReportOptions, write_report
+    from pooling.asked import ReportOptions
+    from pooling.output import write_report
 
     stats = invented_groups(J, tau=1.0, sigma=2.0, n_lo=2, n_hi=12, seed=1)
     settings = pooling.Settings(chains=CHAINS, warmup=WARMUP, draws=DRAWS, max_draws=DRAWS, seed=1, threads=THREADS)
@@ -79,7 +81,7 @@ def child(J: int, mode: str) -> dict:
     else:
         with tempfile.TemporaryDirectory() as tmp:
             t2 = time.perf_counter()
-            write_run(fit, Path(tmp) / "run", extra=lambda f, folder: write_report(f, folder, options))
+            write_run(fit, lambda: compute(fit, options), Path(tmp) / "run")
             out["write_seconds"] = round(time.perf_counter() - t2, 2)
             out["folder_mb"] = round(sum(p.stat().st_size for p in (Path(tmp) / "run").iterdir()) / 2**20, 1)
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux

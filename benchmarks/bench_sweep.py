@@ -11,6 +11,11 @@ Target: a sweep within 2x its floor for J >= 1e3, for the default (separate, hea
 normal between-group distribution. The `shared` and `known` structures draw only one normal per group
 (and one gamma with heavy tails); their rows are reported for information.
 
+Group-level predictors: the `separate` sweep at J = 1e3 .. 1e5 with 0, 1 (a numeric column) and 3 (a
+categorical column of 3 levels and a numeric one: 3 coefficients) predictor columns, against the same floor
+(a predictor draws only p + 1 more normals per sweep, not per group). The collapsed (mu, beta) block costs
+O(J p^2) per density evaluation; the ratio to the sweep without predictors is reported beside the floor's.
+
 The sweeps run exactly as in the sampler's warm-up: kernel.sweeps with zero-row out arrays (no
 draws stored, so J = 1e6 needs no memory for draws) in the sampler's chunks of sweeps per call.
 Times are thread CPU time, best of interleaved repeats (see common.py).
@@ -22,7 +27,7 @@ from numba import njit
 
 from common import KernelChain, best, invented_estimates, invented_groups, load, problem_of
 from pooling import kernel
-from pooling.model import Model
+from pooling.model import Category, Model, Numeric
 
 J_ALL = (10, 100, 1_000, 10_000, 100_000, 1_000_000)
 J_QUICK = (10, 1_000, 100_000)
@@ -66,6 +71,16 @@ def floor_normal(rng, n_sweeps, J):
         for _j in range(J):
             acc += rng.standard_normal()
     return acc
+
+
+def with_predictors(stats, p: int, seed: int):
+    """The invented statistics with p predictor columns (1: a numeric column; 3: a categorical column of 3 levels
+    and a numeric one) and the separate model that uses them."""
+    g = np.random.default_rng(seed)
+    J = stats.J
+    cols = {"age": [f"{x:.3f}" for x in g.uniform(0.0, 10.0, J)], "kit": list(g.choice(["k1", "k2", "k3"], J))}
+    preds = {0: (), 1: (Numeric("age"),), 3: (Category("kit"), Numeric("age"))}[p]
+    return stats.with_columns(cols), Model(predictors=preds)
 
 
 def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) -> dict:
@@ -123,6 +138,18 @@ def run(quick: bool = False) -> dict:
     rows.append(_measure(KernelChain.start(shared, seed=2), "shared", budget, repeats))
     known = problem_of(invented_estimates(J, 0.5, seed=8))
     rows.append(_measure(KernelChain.start(known, seed=3), "known", budget, repeats))
+    for J in (1_000, 100_000) if quick else (1_000, 10_000, 100_000):
+        base = invented_groups(J, tau=0.5, sigma=1.0, n_lo=2, n_hi=20, seed=J)
+        per_p = {}
+        for p in (0, 1, 3):
+            stats, model = with_predictors(base, p, seed=J + p)
+            r = _measure(KernelChain.start(problem_of(stats, model), seed=4), "separate", budget, repeats)
+            r["predictors"] = p
+            r["target"] = r["met"] = None  # reported, not a target
+            per_p[p] = r
+        for p in (1, 3):
+            per_p[p]["vs_no_predictors"] = per_p[p]["sweep_ns_per_group"] / per_p[0]["sweep_ns_per_group"]
+        rows += [per_p[p] for p in (0, 1, 3)]
     return {"name": "sweep", "rows": rows, "load_1min": load()}
 
 
@@ -130,9 +157,19 @@ def table(res: dict) -> list[str]:
     out = ["sweep vs random-number floor (ns per group and sweep; thread CPU time, best of repeats)",
            f"  {'J':>9} {'structure':>9} {'between':>8} {'sweep':>8} {'floor':>8} {'ratio':>6} {'evals':>6}  target"]
     for r in res["rows"]:
+        if "predictors" in r:
+            continue
         tgt = "" if r["target"] is None else f"{r['target']}  {'met' if r['met'] else 'MISSED'}"
         out.append(f"  {r['J']:>9,} {r['structure']:>9} {r['between']:>8} {r['sweep_ns_per_group']:8.1f} "
                    f"{r['floor_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f}  {tgt}")
+    pred = [r for r in res["rows"] if "predictors" in r]
+    if pred:
+        out.append("group-level predictors, separate structure (ns per group and sweep; the same floor)")
+        out.append(f"  {'J':>9} {'columns':>8} {'sweep':>8} {'floor':>8} {'ratio':>6} {'evals':>6} {'vs none':>8}")
+        for r in pred:
+            vs = f"{r['vs_no_predictors']:8.2f}" if "vs_no_predictors" in r else f"{'1':>8}"
+            out.append(f"  {r['J']:>9,} {r['predictors']:>8} {r['sweep_ns_per_group']:8.1f} "
+                       f"{r['floor_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f} {vs}")
     return out
 
 

@@ -68,39 +68,34 @@ def invented_estimates(J: int, tau: float, seed: int) -> GroupStats:
 
 @dataclass
 class KernelChain:
-    """One chain's state for calling kernel.sweeps directly, as the sampler does (kernel.State, kernel.Work)."""
+    """One chain's state for calling kernel.sweeps directly, as the sampler does: the sampler's own chain set-up
+    (pooling.sampler._Chain: Generator, kernel.State, kernel.Work), driven in the sampler's chunks. `state` is
+    the chain's scalar state vector (kernel.ETA ...)."""
 
     problem: object
-    rng: np.random.Generator
-    st: object
-    work: object
-
-    @property
-    def state(self) -> np.ndarray:
-        return self.st.scalars
-
-    @property
-    def theta(self) -> np.ndarray:
-        return self.st.theta
-
-    @property
-    def sigma2(self) -> np.ndarray:
-        return self.st.sigma2
+    chain: object
 
     @classmethod
     def start(cls, problem, seed: int) -> "KernelChain":
-        rng = np.random.default_rng(seed)
-        state = np.zeros(kernel.N_SCALARS)
-        state[kernel.ETA] = 0.0
-        state[kernel.MU] = float(np.mean(problem.ybar))
-        state[kernel.S2] = 1.0
-        state[kernel.NU_IDX] = len(problem.nu_grid) // 2
-        state[kernel.WIDTH] = 1.0
-        state[kernel.SIGMA2] = 1.0
-        state[kernel.DF_IDX] = len(problem.df_grid) // 2
-        J = problem.J
-        st = kernel.State(state, problem.ybar.copy(), np.ones(J), np.ones(J if problem.heavy else 0))
-        return cls(problem, rng, st, kernel.make_work(problem.data))
+        from pooling.sampler import _Chain
+
+        return cls(problem, _Chain(problem, np.random.SeedSequence(seed), None))
+
+    @property
+    def rng(self) -> np.random.Generator:
+        return self.chain.rng
+
+    @property
+    def state(self) -> np.ndarray:
+        return self.chain.state.scalars
+
+    @property
+    def theta(self) -> np.ndarray:
+        return self.chain.state.theta
+
+    @property
+    def sigma2(self) -> np.ndarray:
+        return self.chain.state.sigma2
 
     def run(self, n_sweeps: int, adapt: bool = False, store: bool = False, chunk: int | None = None):
         """n_sweeps sweeps in calls of `chunk` sweeps (the sampler's chunking by default).
@@ -108,19 +103,16 @@ class KernelChain:
         With store=False nothing is kept (zero-row Draws, as in the sampler's warm-up), so that J = 1e6
         needs no room for draws. With store=True returns a dict of draws.
         """
-        p = self.problem
-        d = p.data
-        chunk = chunk or chunk_size(p.J)
+        d = self.problem.data
+        chunk = chunk or chunk_size(self.problem.J)
         out = kernel.empty_draws(d, n_sweeps) if store else kernel.no_draws(d)
         done = 0
         while done < n_sweeps:
             k = min(chunk, n_sweeps - done)
             rows = kernel.Draws(*(a[done:done + k] for a in out)) if store else out
-            kernel.sweeps(self.rng, k, adapt, d, self.st, self.work, rows, 0)
+            kernel.sweeps(self.chain.rng, k, adapt, d, self.chain.state, self.chain.work, rows, 0)
             done += k
-        if store:
-            return out._asdict()
-        return None
+        return out._asdict() if store else None
 
 
 def chunk_size(J: int) -> int:

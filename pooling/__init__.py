@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import importlib
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"  # the one place the version is kept (pyproject.toml reads it)
 
 # Names are imported on first use: `pooling --help` and a Ctrl-C at start-up do not wait for numpy,
 # numba and arviz to load.
@@ -21,7 +21,8 @@ _LAZY = {
     "InputError": "errors", "ModelError": "errors", "PoolingError": "errors",
     "Flat": "model", "Gamma": "model", "HalfCauchy": "model", "HalfNormal": "model", "Model": "model",
     "Normal": "model", "NuFixed": "model", "NuGrid": "model", "Reciprocal": "model", "build": "model",
-    "NormalBetween": "model", "HeavyBetween": "model", "ReportOptions": "asked",
+    "NormalBetween": "model", "HeavyBetween": "model", "ReportOptions": "asked", "Category": "model",
+    "Numeric": "model",
     "Settings": "sampler", "Targets": "sampler",
     "GroupStats": "stats", "from_estimates": "stats", "from_frame": "stats", "from_summaries": "stats",
     "merge": "stats", "read_table": "stats",
@@ -42,7 +43,7 @@ def __getattr__(name: str):
 
 
 def fit(stats, model=None, settings=None, progress: bool | None = None, init=None, *, summary=None,
-        options=None, keep=None):
+        options=None, keep=None, without: bool = True):
     """Build the problem, sample it with run-length control, and return the run.
 
     stats: a GroupStats; model: a Model (default Model()); settings: a Settings (default Settings()).
@@ -50,6 +51,10 @@ def fit(stats, model=None, settings=None, progress: bool | None = None, init=Non
     which returns a pooling.summary.SummaryFit; options (pooling.ReportOptions) and keep (labels, or a
     pooling.summary.SummaryOptions) are read in summary mode only, where some answers are counted while
     the chains run. Otherwise a pooling.posterior.Fit. pooling.results.compute(run, options) gives the answers.
+
+    With group-level predictors (model.predictors) the same data are also fitted without them (the same model
+    and settings, no predictors, a seed derived from the run's own and no warm start), kept as `run.without`:
+    the between-group spread with and without the predictors is what they explain. without=False skips it.
     """
     from .model import build
     from .posterior import finish
@@ -59,14 +64,30 @@ def fit(stats, model=None, settings=None, progress: bool | None = None, init=Non
     from .summary import fit_summary, wants_summary
 
     if wants_summary(problem, settings, summary):
-        return fit_summary(problem, settings, options, keep, progress=progress, init=init)
-    raw = sample_raw(problem, settings, progress=progress, init=init)
-    return finish(raw, problem)
+        run = fit_summary(problem, settings, options, keep, progress=progress, init=init)
+    else:
+        run = finish(sample_raw(problem, settings, progress=progress, init=init), problem)
+    if problem.design is not None and without:
+        run.without = _fit_without(stats, problem.model, settings, run.raw.seed, progress, summary, options, keep)
+    return run
+
+
+def _fit_without(stats, model, settings, seed: int, progress, summary, options, keep):
+    """The plain fit beside a fit with predictors: the model without them, the settings with a derived seed."""
+    import dataclasses
+
+    from .asked import PURPOSE_WITHOUT, derived_rng
+    from .sampler import Settings
+
+    plain = dataclasses.replace(model, predictors=())
+    derived = int(derived_rng(seed, PURPOSE_WITHOUT).integers(2**62))
+    settings = dataclasses.replace(settings or Settings(), seed=derived)
+    return fit(stats, plain, settings, progress, None, summary=summary, options=options, keep=keep, without=False)
 
 
 __all__ = [
     "GroupStats", "read_table", "from_frame", "from_summaries", "from_estimates", "merge",
     "Model", "Flat", "Normal", "HalfNormal", "HalfCauchy", "Reciprocal", "Gamma", "NuFixed", "NuGrid", "build",
-    "NormalBetween", "HeavyBetween", "ReportOptions",
+    "NormalBetween", "HeavyBetween", "ReportOptions", "Category", "Numeric",
     "Settings", "Targets", "fit", "InputError", "ModelError", "PoolingError", "__version__",
 ]

@@ -15,7 +15,8 @@ mapped back to the user's units at the very end (pooling.results).
 Per draw and group j (v_j = sigma_j^2 / n_j, or se_j^2; t_j = tau^2 / lambda_j, tau^2 for the normal model):
     shrinkage weight  w_j = v_j / (v_j + t_j)      (0 keeps the group's own mean, 1 the pooled mean)
     outside fraction  f_j = Phi((L - theta_j) / sigma_j) + Phi((theta_j - U) / sigma_j)
-    bias              b_j = theta_j - mu
+    bias              b_j = theta_j - c_j, c_j the consensus value of the group's own level: mu without
+                      predictors, mu + x_j' beta with them (see centre_of)
     outlying          lambda_j below the 5% point of its prior Gamma(df/2, rate df/2) at the draw's df
     mean outside      theta_j below the lower or above the upper specification limit
 """
@@ -24,6 +25,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
+
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 from numba import njit
 
 # running means (rows of `run`); M2 for theta
@@ -91,13 +94,25 @@ def logit_shrink(v, t):
     return math.log(v) - math.log(t)
 
 
+@njit(nogil=True, cache=True, inline="always")
+def centre_of(mu, X, beta, j):
+    """c_j = mu + x_j' beta: the centre of group j's level (mu when there are no predictors, X of 0 columns),
+    summed in the order the kernel sums it (kernel.block_a_reg), so both give the same number."""
+    c = mu
+    for k in range(X.shape[1]):
+        c += X[j, k] * beta[k]
+    return c
+
+
 @njit(nogil=True, cache=True)
-def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, hits):
+def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, hits, X, beta):
     """Add one draw to the running summaries of every group (internal units).
 
     theta (J,); sig: sigma_j (J,), the shared sigma (1,) or nothing (known); lam: lambda_j (J,) or
     nothing (normal model); cut: the draw's outlying cut on lambda; a: Asked.internal; inv = 1 / (draws
     so far, this one included). run (N_R, J): Welford means (and M2 of theta); hits (N_H, J): counts.
+    X (J, p), beta (p,): the group-level predictors and the draw's coefficients (p = 0: none); the bias is
+    taken about each group's own centre mu + x_j' beta.
     """
     J = theta.shape[0]
     heavy = lam.shape[0] > 0
@@ -133,7 +148,7 @@ def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, 
                 hits[H_ABOVE, j] += 1
             if th < thr:
                 hits[H_BELOW, j] += 1
-        if has_bias and abs(th - mu) > allowed:
+        if has_bias and abs(th - centre_of(mu, X, beta, j)) > allowed:
             hits[H_BIAS, j] += 1
         if (has_lo and th < a[A_LOWER]) or (has_hi and th > a[A_UPPER]):
             hits[H_MEAN_OUT, j] += 1
@@ -150,10 +165,11 @@ def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, 
 
 
 @njit(nogil=True, cache=True)
-def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, D, j0, j1, run, hits):
+def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, D, j0, j1, run, hits, X, beta):
     """`accumulate` over every stored draw of the groups j0 .. j1 - 1, chain by chain in draw order, so that each
     group sees exactly the operations summary mode applies while sampling: mu, tau, cut (S,); theta (S, J); sig
-    (S, J), (S, 1) or (S, 0); lam (S, J) or (S, 0); run (C, N_R, J), hits (C, N_H, J); S = C x D."""
+    (S, J), (S, 1) or (S, 0); lam (S, J) or (S, 0); run (C, N_R, J), hits (C, N_H, J); S = C x D; X (J, p) and
+    beta (S, p) the group-level predictors and their coefficients (p = 0: none)."""
     C = run.shape[0]
     shared = within == 1
     heavy = lam.shape[1] > 0
@@ -163,7 +179,7 @@ def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, D, j
             accumulate(within, n[j0:j1] if within != 2 else n, v_known[j0:j1] if within == 2 else v_known, mu[s],
                        tau[s] * tau[s], theta[s, j0:j1], sig[s] if shared else sig[s, j0:j1],
                        lam[s, j0:j1] if heavy else lam[s], cut[s], a, 1.0 / (t + 1.0), run[c, :, j0:j1],
-                       hits[c, :, j0:j1])
+                       hits[c, :, j0:j1], X[j0:j1], beta[s])
 
 
 # derived quantities of stored draws (full runs), by kind
@@ -171,9 +187,10 @@ D_SHRINK, D_OUT, D_BIAS, D_LOGIT_SHRINK, D_LOGIT_OUT = range(5)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def derived(kind, within, n, v_known, mu, tau, theta, sig, sig1, lam, a, j0, m, out):
+def derived(kind, within, n, v_known, mu, tau, theta, sig, sig1, lam, a, j0, m, out, X, beta):
     """out[i, s] = the quantity `kind` of group j0 + i in draw s (i < m), internal units, from a block of stored
-    draws laid out by group (see above): mu, tau (S,); theta, sig, lam (m, S); sig1 the shared sigma (S,)."""
+    draws laid out by group (see above): mu, tau (S,); theta, sig, lam (m, S); sig1 the shared sigma (S,);
+    X (J, p) and beta (S, p) the group-level predictors and their coefficients (p = 0: none)."""
     S = mu.shape[0]
     heavy = lam.shape[0] > 0
     for i in range(m):
@@ -181,7 +198,7 @@ def derived(kind, within, n, v_known, mu, tau, theta, sig, sig1, lam, a, j0, m, 
         for s in range(S):
             th = theta[i, s]
             if kind == D_BIAS:
-                out[i, s] = th - mu[s]
+                out[i, s] = th - centre_of(mu[s], X, beta[s], j)
                 continue
             if within == 0:
                 sg = sig[i, s]

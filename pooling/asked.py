@@ -143,10 +143,11 @@ class ReportOptions:
 
 
 # Randomness derived from a run's draws (predictions for a new group, replicated data of the model checks,
-# the sample of kept groups in summary mode) comes from the run's own seed: stream `purpose` is
+# the sample of kept groups in summary mode, the seed of the fit without predictors) comes from the run's
+# own seed: stream `purpose` is
 # SeedSequence(seed, spawn_key=(DERIVED + purpose,)), apart from the chains' streams (spawn keys 0, 1, ...).
 DERIVED = 1_000_000
-PURPOSE_PREDICTION, PURPOSE_CHECKS, PURPOSE_KEPT = 1, 2, 3
+PURPOSE_PREDICTION, PURPOSE_CHECKS, PURPOSE_KEPT, PURPOSE_WITHOUT = 1, 2, 3, 4
 
 
 def derived_rng(seed: int, purpose: int) -> np.random.Generator:

@@ -5,12 +5,14 @@ import argparse
 import os
 import signal
 import sys
+import threading
 from importlib import resources
 from pathlib import Path
 
 from . import errors as E
 
 DEMO_FILE = "demo_castings.csv"
+REPORT_RANGE = 1e100  # reporter options, like data (stats.choose_unit), stay within magnitudes 1e-100 to 1e100
 
 
 # ---------------------------------------------------------------------------------------------
@@ -53,10 +55,28 @@ def _nu(args):
     if args.nu is not None and args.nu_grid is not None:
         raise E.InputError("bad options: give either --nu (a fixed value) or --nu-grid, not both")
     if args.nu is not None:
-        return m.NuFixed(_num(args.nu, "--nu"))
+        return m.NuFixed(_nu_value(args.nu, "--nu"))
     if args.nu_grid is not None:
-        return m.NuGrid(tuple(_num(x, "--nu-grid") for x in args.nu_grid.split(",") if x.strip()))
+        return m.NuGrid(tuple(_nu_value(x, "--nu-grid") for x in args.nu_grid.split(",") if x.strip()))
     return m.NuGrid()
+
+
+NU_MIN, NU_MAX = 1e-6, 1e12
+
+
+def _nu_value(text: str, option: str) -> float:
+    """A nu from 1e-6 to 1e12. nu counts prior pseudo-measurements of each group's variance: below 1e-6
+    it adds less than a millionth of one measurement (and values near the smallest double break the
+    report's scales); above 1e12 every sigma_j^2 equals s^2 to about 1e-6 (relative sd sqrt(2/nu)),
+    which is the shared structure, and draws of nu near 1e308 overflow any sum of them."""
+    x = _num(text, option)
+    if 0 < x < NU_MIN:
+        raise E.InputError(f"bad option {option}: nu below {NU_MIN:.0e} adds less than a millionth of a measurement "
+                           f"to each group's variance; give a nu of at least {NU_MIN:.0e}; found '{text}'")
+    if x > NU_MAX:
+        raise E.InputError(f"bad option {option}: nu above {NU_MAX:.0e} makes every group's variance equal s^2 to "
+                           f"about 1e-6; use --within shared instead; found '{text}'")
+    return x
 
 
 def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
@@ -97,6 +117,20 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     g.add_argument("--nu", help="hold nu (separate) at this value")
     g.add_argument("--nu-grid", dest="nu_grid", help="comma-separated grid of nu values, equal prior weights "
                    "(default: 1,1.5,2,3,4,5,6,8,10,14,20,30,50,100)")
+    # --- group-level predictors: why groups differ ------------------------------------------------
+    g.add_argument("--category", action="append", metavar="COL",
+                   help="a categorical group-level predictor: a column holding each group's level (a method, an "
+                        "instrument, a region), one value per group; each level is compared with a reference level. "
+                        "Repeat for more")
+    g.add_argument("--numeric", action="append", metavar="COL",
+                   help="a numeric group-level predictor (an age, an altitude), one value per group, centred at its "
+                        "mean over the groups and kept in its own units. Repeat for more")
+    g.add_argument("--reference", action="append", metavar="COL=LEVEL",
+                   help="the reference level of a --category column (default: the level with the most groups)")
+    g.add_argument("--effects", default="flat", metavar="PRIOR",
+                   help="prior on the predictors' effects: flat (default) or normal:SCALE (centred at 0; SCALE in the "
+                        "data's units, per unit of the column for a numeric predictor)")
+    # --- end of group-level predictors -----------------------------------------------------------
     r = p.add_argument_group("run")
     r.add_argument("--chains", type=int, default=4)
     r.add_argument("--draws", type=int, default=1000, help="draws per chain before run-length control (default 1000)")
@@ -116,12 +150,19 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
             raise argparse.ArgumentTypeError(f"expected a number, found '{text}'") from None
         if x != x or x in (float("inf"), float("-inf")):
             raise argparse.ArgumentTypeError(f"expected a finite number, found '{text}'")
+        # the reporter computes in the user's units, as for data (stats.choose_unit): within 1e+-100
+        if abs(x) > REPORT_RANGE:
+            raise argparse.ArgumentTypeError(f"expected a number of magnitude at most {REPORT_RANGE:.0e} (the "
+                                             f"range the report computes in), found '{text}'")
         return x
 
     def _positive(text):
         x = _finite(text)
         if x <= 0:
             raise argparse.ArgumentTypeError(f"expected a number above 0, found '{text}'")
+        if x < 1 / REPORT_RANGE:
+            raise argparse.ArgumentTypeError(f"expected a number of at least {1 / REPORT_RANGE:.0e} (the range the "
+                                             f"report computes in), found '{text}'")
         return x
 
     def _level(text):
@@ -180,8 +221,15 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     # --- end of summary mode -------------------------------------------------------------------
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse, with its refusals on one line (a usage block would bury what was wrong in a nightly log)."""
+
+    def error(self, message):
+        self.exit(E.EXIT_BAD_INPUT, _one_line(f"pooling: bad option: {message} (see `{self.prog} --help`)") + "\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="pooling",
         description="Compare many groups with a partial-pooling normal model.",
         epilog="exit codes: 0 success; 2 bad input; 3 results written but diagnostics targets missed; "
@@ -213,21 +261,25 @@ def _stats_from_args(args):
     # --- many files, or a cluster: the statistics step on Dask (pooling.dask_stats) ----------
     from . import dask_stats
 
+    extra = list(getattr(args, "category", None) or []) + list(getattr(args, "numeric", None) or [])
     if getattr(args, "cluster", None) or dask_stats.looks_like_many(args.data):
+        if extra:
+            raise E.InputError("bad options: --category and --numeric columns are read from one file; a folder, a glob "
+                               "or --cluster does not read them")
         if not modes["value"]:
             raise E.InputError("bad options: a folder, a glob or --cluster reads measurements (--value COL); "
                                "one row per group or estimates with standard errors come in one file")
         return dask_stats.read_table_dask(args.data, args.group, args.value, scheduler=args.cluster, **read)
     # --- end of many files ---------------------------------------------------------------------
     if modes["value"]:
-        return S.read_table(args.data, args.group, args.value, **read)
+        return S.read_table(args.data, args.group, args.value, group_columns=extra, **read)
     if modes["summary"]:
         if None in (args.size, args.mean, args.sd):
             raise E.InputError("bad options: one row per group needs all of --size, --mean and --sd")
-        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd, **read)
+        return S.from_summaries(args.data, args.group, args.size, args.mean, args.sd, group_columns=extra, **read)
     if None in (args.estimate, args.std_error):
         raise E.InputError("bad options: estimates need both --estimate and --std-error")
-    return S.from_estimates(args.data, args.group, args.estimate, args.std_error, **read)
+    return S.from_estimates(args.data, args.group, args.estimate, args.std_error, group_columns=extra, **read)
 
 
 def _decide_at(text) -> float:
@@ -243,20 +295,72 @@ def _model_from_args(args, stats):
 
     within = args.within or ("known" if stats.kind == "known" else "separate")
     return Model(within=within, mu=parse_prior(args.mu, "--mu"), tau=parse_prior(args.tau, "--tau"),
-                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args), between=getattr(args, "between", None) or "heavy")
+                 s2=parse_prior(args.s2, "--s2"), nu=_nu(args), between=getattr(args, "between", None) or "heavy",
+                 predictors=_predictors_from_args(args, stats), effects=_effects(getattr(args, "effects", None)))
+
+
+def _predictors_from_args(args, stats) -> tuple:
+    """--category, --numeric and --reference as model.Category and model.Numeric, in the order given
+    (categories first). --reference COL=LEVEL is matched against the --category columns, so that a column or a
+    level may itself hold '='."""
+    from .model import Category, Numeric
+
+    cats = list(getattr(args, "category", None) or [])
+    nums = list(getattr(args, "numeric", None) or [])
+    refs: dict[str, str] = {}
+    for text in getattr(args, "reference", None) or []:
+        col = next((c for c in sorted(cats, key=len, reverse=True) if text.startswith(c + "=")), None)
+        if col is None:
+            raise E.InputError(f"bad option --reference: expected COLUMN=LEVEL with COLUMN one of the --category "
+                               f"columns ({', '.join(cats) or 'none given'}); found '{text}'")
+        if col in refs:
+            raise E.InputError(f"bad option --reference: the reference level of '{col}' is given twice")
+        refs[col] = text[len(col) + 1:]
+    for col in cats + nums:
+        if (cats + nums).count(col) > 1:
+            raise E.InputError(f"bad options: the column '{col}' is named twice among --category and --numeric")
+    if (cats or nums) and getattr(args, "command", None) == "refit" and not stats.columns:
+        raise E.InputError("bad options: the store keeps no group-level columns yet, so refit cannot use --category "
+                           "or --numeric; fit the merged data with `pooling fit` instead")
+    return tuple(Category(c, refs.get(c)) for c in cats) + tuple(Numeric(c) for c in nums)
+
+
+def _effects(text):
+    """--effects: flat or normal:SCALE (a normal prior centred at 0 on every effect)."""
+    from . import model as m
+
+    if text is None or text.strip().lower() == "flat":
+        return m.Flat()
+    parts = text.strip().lower().split(":")
+    if parts[0] != "normal" or len(parts) != 2:
+        raise E.InputError(f"bad option --effects: expected flat or normal:SCALE; found '{text}'")
+    scale = _num(parts[1], "--effects")
+    if not scale > 0:
+        raise E.InputError(f"bad option --effects: the scale must be above 0; found '{parts[1]}'")
+    return m.Normal(0.0, scale)
+
+
+MAX_CHAINS = 1000
 
 
 def _settings_from_args(args):
     from .sampler import Settings
 
+    if args.chains is not None and args.chains > MAX_CHAINS:
+        # each chain keeps its own state, generator and warm-up: a million chains exhaust memory before
+        # the first draw, and more chains give no better estimate than longer ones
+        raise E.InputError(f"bad option --chains: at most {MAX_CHAINS} chains; found {args.chains}; ask for more "
+                           "draws per chain (--draws) instead")
+
     return Settings(chains=args.chains, draws=args.draws, warmup=args.warmup, seed=args.seed,
                     max_draws=args.max_draws, threads=args.threads)
 
 
-def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
+def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) -> int:
     """Fit, compute the answers, write the run folder, print. `init`: chains' starting states; `more(fit, res,
     folder)` adds files to the folder before it is renamed into place; `after(fit, res, out)` runs once the
-    folder is in place."""
+    folder is in place (a refit records the run there) and returns lines to print after the table; `protect`:
+    (what, path) pairs that --out may not be or hold (the input files, the store)."""
     from . import fit as do_fit
     from .asked import ReportOptions
     from .output import check_target, write_run
@@ -265,13 +369,26 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
 
     model = _model_from_args(args, stats)
     settings = _settings_from_args(args)
-    check_target(Path(args.out), args.replace)  # refuse before sampling, not after
+    check_target(Path(args.out), args.replace, protect)  # refuse before sampling, not after
     options = ReportOptions.from_args(args)  # every report option is checked before sampling
     from .asked import split_compare
 
     resolve_groups(tuple(stats.labels), split_compare(options.compare, tuple(stats.labels)))
-    fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init,
-                 **_summary_args(args, stats, more, options))
+    # --- hardening: extreme magnitudes -------------------------------------------------------------
+    # The statistics and the sampler hold data of 1e-300 or 1e300 in a power-of-two unit, but the
+    # reporter computes in the user's units, where a variance of such numbers under- or overflows
+    # (wrong spreads at 1e-300, a crash at 1e300). Refuse before sampling rather than write a wrong report.
+    if stats.unit != 1.0:
+        from .stats import unit_hint
+
+        raise E.InputError(
+            f"bad input in '{stats.source}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
+            f"report can show; express them in other units (for example times {unit_hint(stats.unit)}) and fit again, "
+            "or fit from Python with pooling.fit, whose draws keep these units")
+    # --- end of hardening block ----------------------------------------------------------------------
+    summary = _summary_args(args, stats, more, options)
+    _check_memory(args, stats.J, model.within, settings, summary["summary"])
+    fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init, **summary)
     holder: dict = {}
 
     def answers():  # computed while draws.nc is written (output.write_run)
@@ -279,32 +396,100 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None) -> int:
         return holder["res"]
 
     extra = None if more is None else (lambda folder: more(fit, holder["res"], folder))
-    out = write_run(fit, answers, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra)
+    out = write_run(fit, answers, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra,
+                    protect=protect)
     res = holder["res"]
+    recorded = False
     try:
-        if not args.quiet:
-            print_results(res, out)
+        lines = []
         if after is not None:
-            after(fit, res, out)
+            with _STOPS.deferred():  # a stop while the store records the run waits until it is recorded
+                lines = after(fit, res, out) or []
+                recorded = True
+        if not args.quiet:
+            _printing(print_results, res, out)
+            _printing(lambda: [print(line) for line in lines])
     except KeyboardInterrupt:  # the folder is complete and in place: say so, not "nothing was written"
-        unrecorded = "; the store has not recorded this run, so the next refit fits again" if after else ""
-        raise E.Interrupted(f"stopped by the user after the run folder '{out}' was written{unrecorded}") from None
+        if after is None:
+            state = ""
+        elif recorded:
+            state = " and recorded in the store"
+        else:
+            state = "; the store has not recorded this run, so the next refit fits again"
+        raise E.Interrupted(f"stopped by the user after the run folder '{out}' was written{state}") from None
     if not res.targets_met:
         run = res.run
         from .report.numbers import plural
 
         missed = plural(res.diagnostics["missed_count"], "quantity", "quantities")
-        print(f"warning: diagnostics targets missed for {missed} after "
-              f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
-              f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
-              f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')",
-              file=sys.stderr)
+        _say(f"warning: diagnostics targets missed for {missed} after "
+             f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
+             f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
+             f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')")
         return E.EXIT_TARGETS_MISSED
     return E.EXIT_OK
 
 
+def _physical_memory() -> int | None:
+    try:
+        return int(os.sysconf("SC_PAGE_SIZE")) * int(os.sysconf("SC_PHYS_PAGES"))
+    except (AttributeError, OSError, ValueError):
+        return None
+
+
+def _check_memory(args, J: int, within: str, settings, summary) -> None:
+    """Refuse, before anything is allocated, draws that cannot fit in this machine's memory.
+
+    Every draw up to the cap is kept: chains x cap x 8 bytes x (the numbers kept per draw), where a
+    draw keeps mu, tau, s, nu and the kernel's count (5 numbers; 6 hyperparameters and the count in
+    summary mode) and, per kept group, theta (and sigma for `separate`; and the rank in summary mode).
+    """
+    from . import summary as S
+
+    if summary in (None, "auto"):
+        summary = J > S.AUTO_GROUPS or S.full_draw_bytes(J, within, settings) > S.AUTO_BYTES
+    elif summary == "on":
+        summary = True
+    elif summary == "off":
+        summary = False
+    if summary:
+        kept = min(J, len(getattr(args, "keep", None) or []) + len(getattr(args, "compare", None) or [])
+                   + max(0, getattr(args, "keep_sample", 200) or 0) + S.TOP_KEEP)
+        per_draw = 7 + kept * (3 if within == "separate" else 2)
+    else:
+        per_draw = 5 + J * (2 if within == "separate" else 1)
+    cap = settings.draw_cap
+    need = settings.chains * cap * per_draw * 8
+    have = _physical_memory()
+    if have is None or need <= have:
+        return
+    which = "--max-draws" if settings.max_draws is not None else "--draws (the cap is 4 x --draws)"
+    raise E.InputError(f"bad option {which.split()[0]}: {settings.chains} chains x {cap} draws at the cap x {per_draw} "
+                       f"numbers per draw x 8 bytes need {_gib(need)} of memory, more than this machine's "
+                       f"{_gib(have)}; ask for fewer draws with {which}")
+
+
+def _gib(nbytes: int) -> str:
+    return f"{nbytes / 2**40:.1f} TiB" if nbytes >= 2**40 else f"{nbytes / 2**30:.1f} GiB"
+
+
+def _inputs(data) -> list[tuple[str, str]]:
+    """What --out may not be or hold: the input file, or the files and folder of a glob or a folder."""
+    text = str(data)
+    if "://" in text:
+        return []
+    try:
+        if any(ch in text for ch in "*?[") and not Path(text).exists():
+            import glob
+
+            return [("the input file", f) for f in sorted(glob.glob(text, recursive=True))]
+        return [("the input folder" if Path(text).is_dir() else "the input file", text)]
+    except OSError:  # a name the file system refuses: nothing there to protect
+        return []
+
+
 def cmd_fit(args, argv) -> int:
-    return run_fit(args, _stats_from_args(args), argv)
+    return run_fit(args, _stats_from_args(args), argv, protect=_inputs(args.data))
 
 
 def demo_path() -> Path:
@@ -317,8 +502,9 @@ def cmd_demo(args, argv) -> int:
     args.out = args.out or "pooling-demo"
     stats = S.read_table(demo_path(), "supplier", "strength_mpa")
     if not args.quiet:
-        print("demo: tensile strength (MPa) of test bars from 36 invented casting suppliers, 2 to 52 bars each")
-    return run_fit(args, stats, argv)
+        _printing(print, "demo: tensile strength (MPa) of test bars from 36 invented casting suppliers, 2 to 52 "
+                  "bars each")
+    return run_fit(args, stats, argv, protect=_inputs(demo_path()))
 
 
 # --- summary mode (pooling.summary) -------------------------------------------------------------
@@ -485,19 +671,19 @@ def cmd_refit(args, argv) -> int:
     watch = _watch_from_args(args)
     shown = _shown(args.store)  # refuses a URL holding a password before anything is read or written
     plan = jobs.plan_refit(args.store, half_life_days=half, as_of=args.as_of, force=args.force)
+    if plan.stats.J == 0 and half is not None:
+        _all_weights_underflowed(plan, half)
     init = None if args.fresh_start else plan.init_for(_model_from_args(args, plan.stats), args.chains)
     settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
                 "seed": args.seed, "warm_start": init is not None}
 
-    def after(fit, res, out):
+    def after(fit, res, out):  # the run is recorded before anything is printed: a closed pipe cannot lose it
         try:
             jobs.record_run(plan, fit, out, settings)
         except E.PoolingError as exc:  # the folder is complete: say so, and that the next refit fits again
             exc.args = (f"the run folder '{out}' was written, but the store did not record the run: {exc}",)
             raise
-        if not args.quiet:
-            for line in short_lines(plan.report):
-                print(line)
+        return [] if args.quiet else list(short_lines(plan.report))
 
     def more(fit, res, folder):
         report = jobs.write_changes(plan, fit, watch, folder)
@@ -509,8 +695,23 @@ def cmd_refit(args, argv) -> int:
                       runs + [jobs.run_record(plan, fit, Path(args.out), settings)])
         return report
 
+    store = str(args.store)
+    protect = [("the store", store)] + [("the store's journal", store + x) for x in ("-wal", "-shm", "-journal")
+                                          if Path(store + x).exists()]
     argv = [shown if a == args.store else a for a in argv]  # summary.json records the command as shown
-    return run_fit(args, plan.stats, argv, init=init, more=more, after=after)
+    return run_fit(args, plan.stats, argv, init=init, more=more, after=after, protect=protect)
+
+
+def _all_weights_underflowed(plan, half: float) -> None:
+    """Every batch's weight 0.5^(age/half-life) is below the smallest double: say so, with the ages."""
+    from .store.combine import age_days
+
+    ages = [age_days(b.dated_at, plan.reference) for b in plan.snapshot.batches]
+    young = "" if min(ages) == max(ages) else f", the youngest {min(ages):.4g} days"
+    raise E.InputError(f"bad option --half-life: every batch's weight 0.5^(age/half-life) underflows to zero at a "
+                       f"half-life of {half:g} days: the oldest batch is {max(ages):.4g} days old "
+                       f"({max(ages) / half:.4g} half-lives){young}, and a weight stays above zero only within about "
+                       "1074 half-lives; give a longer --half-life")
 
 
 def _store_name(shown: str) -> str:
@@ -558,36 +759,175 @@ STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_
                   "history": cmd_history, "checkup": cmd_checkup, "copy-store": cmd_copy_store}
 
 
-def _on_sigterm(signum, frame):
-    raise KeyboardInterrupt
+# ---------------------------------------------------------------------------------------------
+# stops (Ctrl-C, SIGTERM) and closed pipes
+
+class _Stops:
+    """What a SIGTERM (a scheduler's stop) does at each moment of a command.
+
+    While the command works it raises KeyboardInterrupt, once, so that the command stops cleanly as
+    on Ctrl-C (a second SIGTERM does not cut short the clean-up of the first). Inside `deferred()` a
+    stop (SIGTERM or Ctrl-C) waits until the block is done: a run being recorded in the store is
+    recorded or not, never in doubt. After the command has finished a SIGTERM changes nothing but the
+    exit code, which becomes 5 (`late`); the program's exit (`run`) honours it up to its last step.
+    """
+
+    def __init__(self, program: bool = False):
+        self.program = program
+        self.working = True
+        self.stopping = False
+        self.deferring = False
+        self.pending = False
+        self.late = False
+
+    def handler(self, signum, frame):
+        if not self.working:
+            self.late = True
+            return
+        if self.deferring:
+            self.pending = True
+            return
+        if self.stopping:
+            return
+        self.stopping = True
+        raise KeyboardInterrupt
+
+    def deferred(self):
+        import contextlib
+
+        @contextlib.contextmanager
+        def held():
+            main_thread = threading.current_thread() is threading.main_thread()
+            sigint = signal.signal(signal.SIGINT, self.handler) if main_thread else None
+            self.deferring, self.pending = True, False
+            try:
+                yield
+            finally:
+                self.deferring = False
+                if sigint is not None:
+                    signal.signal(signal.SIGINT, sigint)
+                if self.pending:
+                    self.pending = False
+                    self.stopping = True
+                    raise KeyboardInterrupt
+
+        return held()
 
 
-def main(argv: list[str] | None = None) -> int:
-    argv = list(sys.argv[1:] if argv is None else argv)
-    # SIGTERM (a scheduler's stop) is handled like Ctrl-C: stop cleanly, leave nothing half-written
-    previous = signal.signal(signal.SIGTERM, _on_sigterm) if hasattr(signal, "SIGTERM") else None
+_STOPS = _Stops()
+
+
+def _one_line(text: str) -> str:
+    """The text with every character that would end a line (str.splitlines: newline, carriage return,
+    vertical tab, form feed, U+0085, U+2028, U+2029 and others) escaped: a message is one line, even
+    when it quotes a file name or an option value that holds such a character."""
+    if len(text.splitlines()) <= 1 and not text.endswith(("\n", "\r")):
+        return text
+    return "".join(ch if len(f"a{ch}b".splitlines()) == 1 else repr(ch)[1:-1] for ch in text)
+
+
+def _say(line: str) -> None:
+    """One line on stderr; a closed stderr is not a reason to fail."""
     try:
-        parser = build_parser()
-        args = parser.parse_args(argv)
-        if getattr(args, "decide_at", None) is not None:
-            args.decide_at = _decide_at(args.decide_at)
-        return {"fit": cmd_fit, "demo": cmd_demo, **STORE_COMMANDS}[args.command](args, argv)
-    except E.PoolingError as exc:
-        print(f"pooling: {exc}", file=sys.stderr)
-        return exc.exit_code
-    except KeyboardInterrupt:
-        print("pooling: stopped by the user; nothing was written", file=sys.stderr)
-        return E.EXIT_INTERRUPTED
-    except Exception as exc:  # a bug: one line, the traceback only on request
-        if os.environ.get("POOLING_DEBUG"):
-            raise
-        print(f"pooling: internal error: {type(exc).__name__}: {exc} (set POOLING_DEBUG=1 for details; "
-              "please report it)", file=sys.stderr)
-        return E.EXIT_INTERNAL
+        print(_one_line(line), file=sys.stderr)
+        sys.stderr.flush()
+    except (OSError, ValueError):
+        pass
+
+
+def _silence_stdout() -> None:
+    """stdout's reader has gone (`| head`): send the rest to /dev/null, so that neither later prints
+    nor the interpreter's flush at exit fail."""
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        return
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(devnull, fd)
     finally:
-        if previous is not None:
+        os.close(devnull)
+
+
+def _printing(fn, *args) -> None:
+    """Print through fn; if stdout's reader has gone, stop printing and go on with the command."""
+    try:
+        fn(*args)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        _silence_stdout()
+
+
+def main(argv: list[str] | None = None, *, _stops: _Stops | None = None) -> int:
+    global _STOPS
+    argv = list(sys.argv[1:] if argv is None else argv)
+    stops = _STOPS = _stops or _Stops()
+    # SIGTERM (a scheduler's stop) is handled like Ctrl-C: stop cleanly, leave nothing half-written
+    previous = signal.signal(signal.SIGTERM, stops.handler) if hasattr(signal, "SIGTERM") else None
+    code = E.EXIT_INTERNAL
+    try:
+        try:
+            parser = build_parser()
+            args = parser.parse_args(argv)
+            if getattr(args, "decide_at", None) is not None:
+                args.decide_at = _decide_at(args.decide_at)
+            code = {"fit": cmd_fit, "demo": cmd_demo, **STORE_COMMANDS}[args.command](args, argv)
+        except E.PoolingError as exc:
+            _say(f"pooling: {exc}")
+            code = exc.exit_code
+        except KeyboardInterrupt:
+            _say("pooling: stopped by the user; nothing was written")
+            code = E.EXIT_INTERRUPTED
+        except BrokenPipeError:  # stdout's reader went away after the command's work: not a failure
+            _silence_stdout()
+            code = E.EXIT_OK
+        except MemoryError as exc:
+            _say(f"pooling: out of memory ({exc}); fewer draws (--draws, --max-draws) or chains, or summary mode "
+                 "(--summary on), need less")
+            code = E.EXIT_BAD_INPUT
+        except Exception as exc:  # a bug: one line, the traceback only on request
+            if os.environ.get("POOLING_DEBUG"):
+                raise
+            _say(f"pooling: internal error: {type(exc).__name__}: {exc} (set POOLING_DEBUG=1 for details; "
+                 "please report it)")
+            code = E.EXIT_INTERNAL
+    except KeyboardInterrupt:  # a stop that landed while an outcome was being reported
+        code = E.EXIT_INTERRUPTED
+    finally:
+        stops.working = False  # from here a SIGTERM only turns the exit code into 5
+        _printing(lambda: None)  # stdout's last flush, here where a closed pipe is handled
+        if previous is not None and not stops.program:
             signal.signal(signal.SIGTERM, previous)
+    return E.EXIT_INTERRUPTED if stops.late else code
+
+
+def run() -> None:
+    """The program `pooling`: main() with SIGTERM handled up to the process's last step.
+
+    Python restores the default action of SIGTERM late in its shutdown, which would let a stop that
+    lands there end the process by the signal, with no exit code. So the exit is taken in the last
+    atexit function (registered first, it runs last): any SIGTERM until then gives exit 5.
+    """
+    import atexit
+
+    stops = _Stops(program=True)
+    result = {"code": E.EXIT_INTERNAL}
+
+    def leave():
+        code = E.EXIT_INTERRUPTED if stops.late else result["code"]
+        if stops.late and result["code"] != E.EXIT_INTERRUPTED:
+            _say("pooling: stopped by the user as it ended; the work it reported above is complete")
+        _printing(lambda: None)
+        try:
+            sys.stderr.flush()
+        except (OSError, ValueError):
+            pass
+        os._exit(code)
+
+    atexit.register(leave)
+    result["code"] = main(_stops=stops)
+    sys.exit(result["code"])
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    run()

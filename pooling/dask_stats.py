@@ -55,9 +55,13 @@ def _dask():
 def looks_like_many(path: str) -> bool:
     """True for a folder, a glob pattern or a URL: inputs that the Dask path reads."""
     text = str(path)
-    if Path(text).is_file():  # a file whose name holds '[' or '*' is that file, not a pattern
+    try:
+        if Path(text).is_file():  # a file whose name holds '[' or '*' is that file, not a pattern
+            return False
+        folder = Path(text).is_dir()
+    except OSError:  # a name too long for the file system, say: the file reader names the fault
         return False
-    return "://" in text or bool(re.search(r"[*?\[]", text)) or Path(text).is_dir()
+    return "://" in text or bool(re.search(r"[*?\[]", text)) or folder
 
 
 # ---------------------------------------------------------------------------------------------
@@ -276,7 +280,8 @@ def _parquet_frame(dd, files: list[str], group: str, value: str):
 
 def _csv_frame(dd, files: list[str], group: str, value: str, encoding, delimiter, thousands, decimal, blocksize):
     local = [f for f in files if "://" not in f]
-    enc = encoding or (S._detect_encoding(Path(local[0]), None) if local else "utf-8")
+    S.check_number_format(thousands, decimal)
+    enc = S.check_encoding(encoding) if encoding else (S._detect_encoding(Path(local[0]), None) if local else "utf-8")
     sep = delimiter or (S._sniff_delimiter(Path(local[0]), enc, [group, value]) if local else ",")
     names = {}
     for f in local:  # a missing column is named with its file before any work is sent out
@@ -330,6 +335,7 @@ def read_table_dask(paths_or_glob, group: str, value: str, scheduler=None, *, fo
     at the same paths from every worker. Returns the same GroupStats as pooling.read_table would
     give for the files' rows read one after the other.
     """
+    S._check_distinct({"group": group, "value": value})
     dask, dd = _dask()
     files, kind = resolve(paths_or_glob, format)
     source = _show_input(paths_or_glob)

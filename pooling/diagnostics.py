@@ -47,6 +47,7 @@ autocovariance by FFT. Large inputs (at least `_THREADED_MIN` numbers) have thei
 on two threads (pooling._blocks), with results identical to one thread.
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 
 import numpy as np

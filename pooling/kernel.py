@@ -35,10 +35,24 @@ Block B, the variances given theta:
 
 A Scaled-Inv-chi2(k, S/k) draw is S / chi2(k) = S / (2 Gamma(k/2, 1)).
 
-With the normal between-group distribution the sweep consumes the random stream exactly as it did
-before heavy tails existed, draw for draw (tests/test_kernel_api.py pins the draws of a fixed seed).
+Group-level predictors (p > 0 columns of X): the centre of group j is c_j = mu + x_j' beta. Block A then
+integrates (mu, beta) out jointly, a (p + 1)-dimensional Gaussian given tau, v and lambda. With Z = [1, X],
+W = diag(w_j), w_j = 1 / (v_j + t_j), and the normal priors (mu ~ N(m0, s0^2), beta_k ~ N(b0_k, 1/a_k); flat:
+a_k = 0) as pseudo-observations, P = Z'WZ + diag(1/s0^2, a) and the sums are taken about the current
+(mu, beta), r_j = ybar_j - c_j:
+  1. log tau by the same slice sampler on
+         p(tau | v, lambda, y) ∝ p(tau) |P|^(-1/2) prod_j (v_j + t_j)^(-1/2) exp(-1/2 (r'Wr - g'P^(-1)g)),  g = Z'Wr
+     (p = 0 is the formula above: |P|^(-1/2) = V^(1/2));
+  2. (mu, beta) | tau, v, lambda, y ~ N((mu, beta) + P^(-1) g, P^(-1)), drawn through the Cholesky factor of P;
+  3. theta_j | mu, beta, tau, lambda_j as in 3 above with c_j for mu; the tail move uses z_j = (theta_j - c_j)/tau.
+Each density evaluation is O(J p^2) (the p(p+1)/2 + 2p + 2 weighted sums) plus O(p^3) for the factor.
+
+With the normal between-group distribution and no predictors the sweep consumes the random stream exactly as
+it did before heavy tails existed, draw for draw (tests/test_kernel_api.py pins the draws of a fixed seed);
+predictors take a separate branch (p > 0) and leave that path untouched.
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 from typing import NamedTuple
@@ -58,9 +72,9 @@ _PROD_MIN, _PROD_MAX = 1e-300, 1e300
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
 # Speed (see benchmarks/README.md). error_model="numpy" on the hot functions: a float division by
 # zero gives inf instead of raising, so numba emits no zero test per division and the elementwise
-# loops vectorise; no division here can have a zero divisor in a valid state. weighted_sums adds
-# fastmath "reassoc" only, so that its three sums vectorise (they are summed in another order, to
-# the same accuracy); no other function has any fastmath flag.
+# loops vectorise; no division here can have a zero divisor in a valid state. weighted_sums (and, for
+# group-level predictors, weights, dot_pair and dot3) add fastmath "reassoc" only, so that their sums
+# vectorise (they are summed in another order, to the same accuracy); no other function has any fastmath flag.
 
 WITHIN_SEPARATE, WITHIN_SHARED, WITHIN_KNOWN = 0, 1, 2
 BETWEEN_NORMAL, BETWEEN_HEAVY = 0, 1
@@ -76,7 +90,9 @@ class Data(NamedTuple):
     layout from `prepare`. between: 0 normal, 1 heavy (Student-t by a scale mixture); df_grid (inf is
     the normal limit) with log prior weights df_logprior, df_const[k] = log of the t density's
     constant, lgamma((df+1)/2) - lgamma(df/2) - log(df pi)/2 (-log(2 pi)/2 at df = inf), and df_logq[k] the
-    log of the standard t's upper quartile (t_quartile_logs).
+    log of the standard t's upper quartile (t_quartile_logs). X (J, p): the group-level predictors (p = 0:
+    none), beta_loc and beta_prec (p,): the centre and precision of each coefficient's normal prior
+    (precision 0: flat); XT (p, J): X transposed, contiguous by column for the sums.
     """
 
     within: int
@@ -100,20 +116,29 @@ class Data(NamedTuple):
     df_logprior: np.ndarray
     df_const: np.ndarray
     df_logq: np.ndarray
+    X: np.ndarray = np.zeros((0, 0))
+    XT: np.ndarray = np.zeros((0, 0))
+    beta_loc: np.ndarray = np.zeros(0)
+    beta_prec: np.ndarray = np.zeros(0)
 
 
 class State(NamedTuple):
-    """One chain's state: the scalars (ETA ... DF_IDX), theta_j, sigma_j^2 (separate) and lambda_j (heavy)."""
+    """One chain's state: the scalars (ETA ... DF_IDX), theta_j, sigma_j^2 (separate), lambda_j (heavy) and the
+    predictors' coefficients beta (p,)."""
 
     scalars: np.ndarray
     theta: np.ndarray
     sigma2: np.ndarray
     lam: np.ndarray
+    beta: np.ndarray = np.zeros(0)
 
 
 class Work(NamedTuple):
     """Scratch of one chain, allocated once (make_work): v_j, (m, V), nu and df weights, SS_j / 2 by size
-    class, 1/lambda_j and z_j^2 = (theta_j - mu)^2 / tau^2."""
+    class, 1/lambda_j and z_j^2 = (theta_j - c_j)^2 / tau^2; with predictors (p > 0, else empty) the residuals
+    r_j about the current centres, the centres c_j = mu + x_j' beta, the Cholesky factor of P ((p+1)^2, lower
+    triangle by rows), P^(-1) g (the move of (mu, beta)'s mean), p + 1 normals, and w_j and w_j r_j of the last
+    density evaluation."""
 
     v: np.ndarray
     mv: np.ndarray
@@ -122,6 +147,13 @@ class Work(NamedTuple):
     inv_lam: np.ndarray
     z2: np.ndarray
     lpd: np.ndarray
+    resid: np.ndarray
+    centre: np.ndarray
+    chol: np.ndarray
+    shift: np.ndarray
+    zq: np.ndarray
+    wj: np.ndarray
+    wr: np.ndarray
 
 
 class Draws(NamedTuple):
@@ -137,6 +169,7 @@ class Draws(NamedTuple):
     df: np.ndarray
     lam: np.ndarray
     evals: np.ndarray
+    beta: np.ndarray
 
 
 def t_constants(df_grid: np.ndarray) -> np.ndarray:
@@ -162,8 +195,12 @@ def make_work(d: Data) -> Work:
     J = d.ybar.shape[0]
     collapsed = d.within == WITHIN_SEPARATE and d.nu_grid.shape[0] > 1
     heavy = d.between == BETWEEN_HEAVY
+    p = d.X.shape[1]
+    q = p + 1 if p > 0 else 0
     return Work(np.empty(J), np.empty(2), np.empty(d.nu_grid.shape[0]), np.empty(J if collapsed else 0),
-                np.ones(J if heavy else 0), np.empty(J if heavy else 0), np.empty(d.df_grid.shape[0]))
+                np.ones(J if heavy else 0), np.empty(J if heavy else 0), np.empty(d.df_grid.shape[0]),
+                np.empty(J if p > 0 else 0), np.empty(J if p > 0 else 0), np.zeros(q * q), np.zeros(q), np.zeros(q),
+                np.empty(J if p > 0 else 0), np.empty(J if p > 0 else 0))
 
 
 def draws_shape(d: Data, rows: int) -> dict[str, tuple[int, ...]]:
@@ -174,7 +211,7 @@ def draws_shape(d: Data, rows: int) -> dict[str, tuple[int, ...]]:
     return {"mu": (rows,), "tau": (rows,), "theta": (rows, J),
             "sigma": (rows, J if sep else 1 if d.within == WITHIN_SHARED else 0),
             "s": (rows if sep else 0,), "nu": (rows if sep else 0,), "df": (rows if heavy else 0,),
-            "lam": (rows, J if heavy else 0), "evals": (rows,)}
+            "lam": (rows, J if heavy else 0), "evals": (rows,), "beta": (rows, d.X.shape[1])}
 
 
 DRAW_DTYPES: dict = {}  # every stored draw is float64 (lambda too: summary mode's running sums read the state's
@@ -332,13 +369,144 @@ def log_tau_density(eta, d, v, il, shift, out):
     return lp
 
 
+@njit(nogil=True, cache=True, error_model="numpy")
+def log_tau_density_reg(eta, d, v, il, mu, beta, wk):
+    """log p(eta = log tau | v, lambda, y) up to a constant with (mu, beta) integrated out: the predictors' form
+    (see the module notes), sums about the current (mu, beta), whose residuals r_j are in wk.resid.
+
+    Writes the Cholesky factor L of P (P = L L', lower triangle by rows) into wk.chol and P^(-1) g into wk.shift.
+    A factor that is not positive definite (rounding at an extreme tau) gives -inf.
+    """
+    if eta < ETA_MIN or eta > ETA_MAX:
+        return -np.inf
+    tau2 = math.exp(2.0 * eta)
+    X = d.X
+    p = X.shape[1]
+    q = p + 1
+    L = wk.chol
+    g = wk.shift
+    r = wk.resid
+    heavy = d.between == BETWEEN_HEAVY
+    for a in range(q * q):
+        L[a] = 0.0
+    for a in range(q):
+        g[a] = 0.0
+    rr = 0.0
+    # P (upper triangle, row 0 the intercept), g = Z'Wr and r'Wr: the weights in one pass, then each entry as
+    # its own sum over the groups along the columns of X' (contiguous), so that every pass vectorises; this
+    # took a third of the time of one fused loop that updated the (p + 1)^2 entries group by group
+    L[0], g[0], rr = weights(v, il, tau2, r, wk.wj, wk.wr, heavy)
+    XT = d.XT
+    for a in range(p):
+        xa = XT[a]
+        L[a + 1], g[a + 1] = dot_pair(wk.wj, wk.wr, xa)
+        row = (a + 1) * q
+        for c in range(a, p):
+            L[row + c + 1] = dot3(wk.wj, xa, XT[c])
+    slog = sum_log_scaled(v, il, tau2) if heavy else sum_log_shifted(v, tau2)
+    if d.mu_kind == 1:  # mu ~ N(m0, s0^2) as one more observation of the intercept
+        w0 = 1.0 / (d.mu_scale * d.mu_scale)
+        r0 = d.mu_loc - mu
+        L[0] += w0
+        g[0] += w0 * r0
+        rr += w0 * r0 * r0
+    for a in range(p):
+        a0 = d.beta_prec[a]
+        if a0 > 0.0:  # beta_a ~ N(b0_a, 1/a0)
+            r0 = d.beta_loc[a] - beta[a]
+            L[(a + 1) * q + a + 1] += a0
+            g[a + 1] += a0 * r0
+            rr += a0 * r0 * r0
+    # Cholesky in place: the upper triangle of P (by rows) becomes L' (by rows), i.e. L by columns
+    logdet = 0.0
+    for a in range(q):
+        s_ = L[a * q + a]
+        for k in range(a):
+            s_ -= L[k * q + a] * L[k * q + a]
+        if not s_ > 0.0:
+            return -np.inf
+        piv = math.sqrt(s_)
+        L[a * q + a] = piv
+        logdet += 2.0 * math.log(piv)
+        for c in range(a + 1, q):
+            s_ = L[a * q + c]
+            for k in range(a):
+                s_ -= L[k * q + a] * L[k * q + c]
+            L[a * q + c] = s_ / piv
+    # solve L y = g (forward; L[a, k] is stored at k * q + a), then L' x = y (backward); x = P^(-1) g
+    quad = 0.0
+    for a in range(q):
+        s_ = g[a]
+        for k in range(a):
+            s_ -= L[k * q + a] * g[k]
+        g[a] = s_ / L[a * q + a]
+        quad += g[a] * g[a]
+    for a in range(q - 1, -1, -1):
+        s_ = g[a]
+        for k in range(a + 1, q):
+            s_ -= L[a * q + k] * g[k]
+        g[a] = s_ / L[a * q + a]
+    lp = eta - 0.5 * logdet - 0.5 * slog - 0.5 * (rr - quad)
+    if d.tau_kind == 1:
+        lp -= 0.5 * tau2 / (d.tau_scale * d.tau_scale)
+    elif d.tau_kind == 2:
+        lp -= math.log1p(tau2 / (d.tau_scale * d.tau_scale))
+    return lp
+
+
+@njit(nogil=True, cache=True, error_model="numpy", fastmath={"reassoc"})
+def weights(v, il, tau2, r, w, wr, heavy):
+    """w_j = 1 / (v_j + t_j) and wr_j = w_j r_j into w and wr; returns (sum_j w_j, sum_j w_j r_j, sum_j w_j r_j^2)."""
+    sw = 0.0
+    swr = 0.0
+    swrr = 0.0
+    for j in range(v.shape[0]):
+        t = tau2 * il[j] if heavy else tau2
+        wj = 1.0 / (v[j] + t)
+        w[j] = wj
+        wr[j] = wj * r[j]
+        sw += wj
+        swr += wr[j]
+        swrr += wr[j] * r[j]
+    return sw, swr, swrr
+
+
+@njit(nogil=True, cache=True, error_model="numpy", fastmath={"reassoc"})
+def dot_pair(w, wr, x):
+    """(sum_j w_j x_j, sum_j wr_j x_j) in one pass."""
+    a = 0.0
+    b = 0.0
+    for j in range(x.shape[0]):
+        a += w[j] * x[j]
+        b += wr[j] * x[j]
+    return a, b
+
+
+@njit(nogil=True, cache=True, error_model="numpy", fastmath={"reassoc"})
+def dot3(w, x, y):
+    """sum_j w_j x_j y_j."""
+    a = 0.0
+    for j in range(x.shape[0]):
+        a += w[j] * x[j] * y[j]
+    return a
+
+
 @njit(nogil=True, cache=True)
-def slice_eta(rng, eta0, width, d, v, il, shift, mv):
+def _density(eta, d, v, il, shift, mv, beta, wk):
+    """log p(eta | ...): the form without predictors (writing (m, V) into mv) or with them (log_tau_density_reg)."""
+    if d.X.shape[1] == 0:
+        return log_tau_density(eta, d, v, il, shift, mv)
+    return log_tau_density_reg(eta, d, v, il, shift, beta, wk)
+
+
+@njit(nogil=True, cache=True)
+def slice_eta(rng, eta0, width, d, v, il, shift, mv, beta, wk):
     """One slice-sampling update of eta (stepping out, then shrinkage). Returns (eta, evaluations).
 
-    On return mv holds (m, V) evaluated at the returned eta.
+    On return mv holds (m, V) (with predictors: wk.chol and wk.shift hold their factor and move) evaluated at the
+    returned eta. shift and beta are the current mu and beta, about which the sums are taken.
     """
-    f0 = log_tau_density(eta0, d, v, il, shift, mv)
+    f0 = _density(eta0, d, v, il, shift, mv, beta, wk)
     level = f0 - rng.standard_exponential()
     evals = 1
     left = eta0 - width * rng.random()
@@ -348,19 +516,19 @@ def slice_eta(rng, eta0, width, d, v, il, shift, mv):
     # every evaluation is counted, the one that ends a stepping-out loop included
     while steps_left > 0:
         evals += 1
-        if not log_tau_density(left, d, v, il, shift, mv) > level:
+        if not _density(left, d, v, il, shift, mv, beta, wk) > level:
             break
         left -= width
         steps_left -= 1
     while steps_right > 0:
         evals += 1
-        if not log_tau_density(right, d, v, il, shift, mv) > level:
+        if not _density(right, d, v, il, shift, mv, beta, wk) > level:
             break
         right += width
         steps_right -= 1
     while True:
         eta1 = left + (right - left) * rng.random()
-        f1 = log_tau_density(eta1, d, v, il, shift, mv)
+        f1 = _density(eta1, d, v, il, shift, mv, beta, wk)
         evals += 1
         if f1 > level:
             return eta1, evals
@@ -369,7 +537,7 @@ def slice_eta(rng, eta0, width, d, v, il, shift, mv):
         else:
             right = eta1
         if right - left < 1e-12:  # numerically collapsed: keep the current point (a valid draw)
-            log_tau_density(eta0, d, v, il, shift, mv)
+            _density(eta0, d, v, il, shift, mv, beta, wk)
             return eta0, evals
 
 
@@ -392,11 +560,13 @@ def fill_v(d, scalars, sigma2, v):
 def block_a(rng, adapt, d, st, wk):
     """(tau, mu, theta) jointly given v (wk.v) and lambda (wk.inv_lam): slice update of log tau, then
     mu | tau, then theta | mu, tau. Returns the number of density evaluations the slice update used."""
+    if d.X.shape[1] > 0:
+        return block_a_reg(rng, adapt, d, st, wk)
     sc = st.scalars
     v = wk.v
     mv = wk.mv
     eta_old = sc[ETA]
-    eta, ev = slice_eta(rng, eta_old, sc[WIDTH], d, v, wk.inv_lam, sc[MU], mv)
+    eta, ev = slice_eta(rng, eta_old, sc[WIDTH], d, v, wk.inv_lam, sc[MU], mv, st.beta, wk)
     sc[ETA] = eta
     if adapt:
         sc[JUMP_SUM] += abs(eta - eta_old)
@@ -418,6 +588,63 @@ def block_a(rng, adapt, d, st, wk):
         for j in range(ybar.shape[0]):
             inv_d = 1.0 / (v[j] + tau2)  # one division serves the mean and the variance
             theta[j] = (mu * v[j] + ybar[j] * tau2) * inv_d + math.sqrt(v[j] * tau2 * inv_d) * rng.standard_normal()
+    return ev
+
+
+@njit(nogil=True, cache=True, error_model="numpy")
+def block_a_reg(rng, adapt, d, st, wk):
+    """block_a with predictors: the slice update of log tau with (mu, beta) integrated out, then (mu, beta) | tau
+    jointly (N(current + P^(-1) g, P^(-1)), as (current + P^(-1) g) + L'^(-1) z with z ~ N(0, I)), then theta | c_j,
+    tau. Leaves the centres c_j = mu + x_j' beta in wk.centre. Returns the density evaluations."""
+    sc = st.scalars
+    v = wk.v
+    X = d.X
+    p = X.shape[1]
+    q = p + 1
+    beta = st.beta
+    ybar = d.ybar
+    J = ybar.shape[0]
+    mu = sc[MU]
+    for j in range(J):
+        c = mu
+        for a in range(p):
+            c += X[j, a] * beta[a]
+        wk.resid[j] = ybar[j] - c
+    eta_old = sc[ETA]
+    eta, ev = slice_eta(rng, eta_old, sc[WIDTH], d, v, wk.inv_lam, mu, wk.mv, beta, wk)
+    sc[ETA] = eta
+    if adapt:
+        sc[JUMP_SUM] += abs(eta - eta_old)
+        sc[JUMP_COUNT] += 1.0
+        if sc[JUMP_COUNT] >= 20.0:
+            sc[WIDTH] = min(10.0, max(0.02, 3.0 * sc[JUMP_SUM] / sc[JUMP_COUNT]))
+    L = wk.chol
+    z = wk.zq
+    for a in range(q):
+        z[a] = rng.standard_normal()
+    # x = L'^(-1) z: L' is upper triangular, its row a stored at a * q (back substitution)
+    for a in range(q - 1, -1, -1):
+        s_ = z[a]
+        for k in range(a + 1, q):
+            s_ -= L[a * q + k] * z[k]
+        z[a] = s_ / L[a * q + a]
+    mu = mu + wk.shift[0] + z[0]
+    sc[MU] = mu
+    for a in range(p):
+        beta[a] += wk.shift[a + 1] + z[a + 1]
+    tau2 = math.exp(2.0 * eta)
+    theta = st.theta
+    heavy = d.between == BETWEEN_HEAVY
+    il = wk.inv_lam
+    cen = wk.centre
+    for j in range(J):
+        c = mu
+        for a in range(p):
+            c += X[j, a] * beta[a]
+        cen[j] = c
+        t = tau2 * il[j] if heavy else tau2
+        inv_d = 1.0 / (v[j] + t)
+        theta[j] = (c * v[j] + ybar[j] * t) * inv_d + math.sqrt(v[j] * t * inv_d) * rng.standard_normal()
     return ev
 
 
@@ -513,16 +740,26 @@ def gamma_mt(rng, dd, cc):
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def fill_z2(st, z2):
-    """z2_j = (theta_j - mu)^2 / tau^2; returns their sum."""
+def fill_z2(d, st, wk, z2):
+    """z2_j = (theta_j - c_j)^2 / tau^2 with c_j = mu, or c_j = mu + x_j' beta with predictors (block_a_reg
+    left them in wk.centre); returns their sum."""
     sc = st.scalars
     mu = sc[MU]
     inv_tau2 = math.exp(-2.0 * sc[ETA])
     sz = 0.0
-    for j in range(z2.shape[0]):
-        r = st.theta[j] - mu
-        z2[j] = r * r * inv_tau2
-        sz += z2[j]
+    theta = st.theta
+    J = z2.shape[0]
+    if d.X.shape[1] == 0:
+        for j in range(J):
+            r = theta[j] - mu
+            z2[j] = r * r * inv_tau2
+            sz += z2[j]
+    else:
+        cen = wk.centre
+        for j in range(J):
+            r = theta[j] - cen[j]
+            z2[j] = r * r * inv_tau2
+            sz += z2[j]
     return sz
 
 
@@ -597,11 +834,11 @@ def tail_step(rng, d, st, wk):
     together an exact partially collapsed update of (df, tau, lambda)."""
     sc = st.scalars
     z2 = wk.z2
-    sz = fill_z2(st, z2)
+    sz = fill_z2(d, st, wk, z2)
     if d.df_grid.shape[0] > 1:
         df_draw(rng, d, sc, z2, sz, wk.lpd)
         if df_tau_step(rng, d, sc, z2, sz):
-            sz = fill_z2(st, z2)  # tau moved
+            sz = fill_z2(d, st, wk, z2)  # tau moved
     lambda_draw(rng, d, st, wk)
 
 
@@ -866,6 +1103,8 @@ def store(d, st, ev, out, row):
         out.df[row] = d.df_grid[int(sc[DF_IDX])]
         for j in range(J):
             out.lam[row, j] = st.lam[j]
+    for a in range(st.beta.shape[0]):
+        out.beta[row, a] = st.beta[a]
     out.evals[row] = ev
 
 

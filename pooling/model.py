@@ -5,6 +5,10 @@ priors, as frozen values.
     level 2   theta_j ~ N(mu, tau^2)                                       (between = normal)
               theta_j ~ N(mu, tau^2 / lambda_j), lambda_j ~ Gamma(df/2, rate df/2)  (between = heavy:
               a Student-t with df degrees of freedom, centre mu and scale tau, as a scale mixture)
+    with group-level predictors (method, instrument, region, age) the centre of group j is mu + x_j' beta:
+    x_j holds the group's contrasts against a reference level for each categorical predictor (`Category`)
+    and its numeric predictors centred at their mean over the groups (`Numeric`), so mu is the centre of the
+    reference level at the numeric predictors' means; beta has a flat or normal prior (`effects`).
 
 Structures for the within-group variance:
 
@@ -247,6 +251,79 @@ def parse_between(text) -> NormalBetween | HeavyBetween:
     raise ModelError(f"bad model: the between-group distribution must be normal, heavy or heavy:DF; found '{text}'")
 
 
+# ---------------------------------------------------------------------------------------------
+# group-level predictors
+
+
+@dataclass(frozen=True)
+class Category:
+    """A categorical group-level predictor: the level of each group in `column` (a method, an instrument, a region).
+    Every level but the reference gets a coefficient: its difference from the reference level (a contrast).
+
+    reference: the level the others are compared with (default: the level with the most groups; ties: the first
+    in sorted order). levels: optionally every level expected; a stated level with no groups is refused.
+    prior: the prior of this predictor's coefficients (default: Model.effects).
+    """
+
+    column: str
+    reference: str | None = None
+    levels: tuple[str, ...] | None = None
+    prior: Flat | Normal | None = None
+
+    def __post_init__(self):
+        if not isinstance(self.column, str) or not self.column:
+            raise ModelError(f"bad model: a categorical predictor needs a column name; found {self.column!r}")
+        if self.reference is not None:
+            object.__setattr__(self, "reference", str(self.reference))
+        if self.levels is not None:
+            lv = tuple(str(x) for x in self.levels)
+            if len(set(lv)) != len(lv):
+                raise ModelError(f"bad model: the levels of '{self.column}' are listed more than once: {lv}")
+            object.__setattr__(self, "levels", lv)
+        _check_effect_prior(self.prior, self.column)
+
+    kind = "category"
+
+
+@dataclass(frozen=True)
+class Numeric:
+    """A numeric group-level predictor (a machine's age, a site's altitude): the value of each group in `column`,
+    centred at its mean over the groups and kept in its own units, so its coefficient is the change of a group's
+    centre per unit of the column. prior: the prior of its coefficient (default: Model.effects)."""
+
+    column: str
+    prior: Flat | Normal | None = None
+
+    def __post_init__(self):
+        if not isinstance(self.column, str) or not self.column:
+            raise ModelError(f"bad model: a numeric predictor needs a column name; found {self.column!r}")
+        _check_effect_prior(self.prior, self.column)
+
+    kind = "numeric"
+
+
+def _check_effect_prior(prior, what: str) -> None:
+    if prior is None:
+        return
+    if not isinstance(prior, (Flat, Normal)):
+        raise ModelError(f"bad model: the prior on the effects of '{what}' must be flat or normal; found {prior!r}")
+    if isinstance(prior, Normal) and not (math.isfinite(prior.scale) and prior.scale > 0 and math.isfinite(prior.loc)):
+        raise ModelError(f"bad model: the normal prior on the effects of '{what}' needs a finite centre and a positive "
+                         f"scale; found loc={prior.loc}, scale={prior.scale}")
+
+
+def _decode_predictor(d: dict):
+    d = dict(d)
+    kind = d.pop("kind")
+    prior = d.pop("prior", None)
+    if prior is not None:
+        prior = Normal(prior["loc"], prior["scale"]) if prior["kind"] == "Normal" else Flat()
+    if kind == "category":
+        levels = d.get("levels")
+        return Category(d["column"], d.get("reference"), None if levels is None else tuple(levels), prior)
+    return Numeric(d["column"], prior)
+
+
 @dataclass(frozen=True)
 class Model:
     """A complete specification: within-group structure and every prior. Defaults are stated here.
@@ -254,6 +331,9 @@ class Model:
     Defaults: between heavy (Student-t, df learned on DEFAULT_DF_GRID with Gamma(2, 0.1) prior weights);
     mu flat; tau flat (needs at least 3 groups); s^2 ∝ 1/s^2; nu on the grid DEFAULT_NU_GRID with equal
     weights; shared log sigma flat. `between` also takes the strings 'normal', 'heavy' and 'heavy:DF'.
+    predictors: group-level predictors (`Category`, `Numeric`; none by default), whose columns the statistics
+    carry (GroupStats.columns); effects: the prior on their coefficients, flat by default (or Normal(0, scale):
+    the scale in the units of the data for a contrast, per unit of the column for a numeric predictor).
     """
 
     within: str = "separate"
@@ -262,9 +342,21 @@ class Model:
     s2: Reciprocal | Gamma = field(default_factory=Reciprocal)
     nu: NuFixed | NuGrid = field(default_factory=NuGrid)
     between: NormalBetween | HeavyBetween | str = field(default_factory=HeavyBetween)
+    predictors: tuple[Category | Numeric, ...] = ()
+    effects: Flat | Normal = field(default_factory=Flat)
 
     def __post_init__(self):
         object.__setattr__(self, "between", parse_between(self.between))
+        preds = (self.predictors,) if isinstance(self.predictors, (Category, Numeric)) else tuple(self.predictors)
+        for x in preds:
+            if not isinstance(x, (Category, Numeric)):
+                raise ModelError(f"bad model: a predictor must be a Category(column) or a Numeric(column); found {x!r}")
+        cols = [x.column for x in preds]
+        for c in cols:
+            if cols.count(c) > 1:
+                raise ModelError(f"bad model: the column '{c}' is named as a predictor twice")
+        object.__setattr__(self, "predictors", preds)
+        _check_effect_prior(self.effects, "the predictors")
         if self.within not in STRUCTURES:
             raise ModelError(f"bad model: within-group structure must be one of {', '.join(STRUCTURES)}; found '{self.within}'")
         if not isinstance(self.mu, (Flat, Normal)):
@@ -297,6 +389,12 @@ class Model:
     def priors(self) -> dict[str, str]:
         """Plain statements of every prior in force, for summaries and reports."""
         out = {"between": self.between.describe(), "mu": self.mu.describe(), "tau": self.tau.describe()}
+        for x in self.predictors:
+            prior = (x.prior or self.effects).describe()
+            what = (f"categorical '{x.column}', contrasts against the reference level "
+                    + (f"'{x.reference}'" if x.reference is not None else "with the most groups")
+                    if x.kind == "category" else f"numeric '{x.column}', centred at its mean over the groups")
+            out[f"effects of {x.column}"] = f"{prior} ({what})"
         if self.within == "separate":
             out["s2"] = self.s2.describe()
             out["nu"] = self.nu.describe()
@@ -321,8 +419,20 @@ class Model:
                     d["grid"] = ["inf" if math.isinf(g) else g for g in d["grid"]]
             return d
 
-        return {"within": self.within, "between": enc_between(self.between), "mu": enc(self.mu), "tau": enc(self.tau),
-                "s2": enc(self.s2), "nu": enc(self.nu)}
+        out = {"within": self.within, "between": enc_between(self.between), "mu": enc(self.mu), "tau": enc(self.tau),
+               "s2": enc(self.s2), "nu": enc(self.nu)}
+        if self.predictors:  # written only when there are predictors: earlier records stay as they were
+            def enc_pred(x):
+                d = {"kind": x.kind, "column": x.column}
+                if x.kind == "category":
+                    d["reference"] = x.reference
+                    d["levels"] = None if x.levels is None else list(x.levels)
+                d["prior"] = None if x.prior is None else enc(x.prior)
+                return d
+
+            out["predictors"] = [enc_pred(x) for x in self.predictors]
+            out["effects"] = enc(self.effects)
+        return out
 
     @staticmethod
     def from_dict(d: dict) -> "Model":
@@ -344,7 +454,10 @@ class Model:
             return cls(**x)
 
         between = dec(d["between"]) if "between" in d else NormalBetween()
-        return Model(d["within"], dec(d["mu"]), dec(d["tau"]), dec(d["s2"]), dec(d["nu"]), between=between)
+        preds = tuple(_decode_predictor(x) for x in d.get("predictors", ()))
+        effects = dec(d["effects"]) if "effects" in d else Flat()
+        return Model(d["within"], dec(d["mu"]), dec(d["tau"]), dec(d["s2"]), dec(d["nu"]), between=between,
+                     predictors=preds, effects=effects)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -356,15 +469,59 @@ WITHIN_CODE = {"separate": 0, "shared": 1, "known": 2}
 
 
 @dataclass(frozen=True, eq=False)
+class Design:
+    """The group-level predictors of a problem, as the kernel reads them and as the answers name them.
+
+    X (J, p), internal units, one column per coefficient: a contrast column is 1 for the groups of its level and 0
+    for the others; a numeric column is (x - centre) / unit_scale, unit_scale a power of two near the column's
+    spread (so the rescaling is lossless). A coefficient in the user's units is its internal value times
+    to_user: the data's scale for a contrast, scale / unit_scale for a numeric column (per unit of the column).
+
+    coefficients: per column {name, column, kind, level, reference} or {name, column, kind, centre, unit_scale};
+    categories: per categorical predictor {column, levels (reference first, then sorted), reference, index (J,)};
+    numerics: per numeric predictor {column, centre, unit_scale, values (J,), in the user's units};
+    levels: the combined level of each group over the categorical predictors ('B', or 'B / north'), their names
+    (`level_names`, the reference combination first), each group's index (`level_of`) and each level's x row
+    at the numeric predictors' means (`level_x`, (L, p)); empty without a categorical predictor.
+    """
+
+    X: np.ndarray
+    coefficients: tuple[dict, ...]
+    to_user: np.ndarray
+    categories: tuple[dict, ...]
+    numerics: tuple[dict, ...]
+    level_names: tuple[str, ...]
+    level_of: np.ndarray
+    level_x: np.ndarray
+
+    @property
+    def p(self) -> int:
+        return int(self.X.shape[1])
+
+    @property
+    def names(self) -> list[str]:
+        return [c["name"] for c in self.coefficients]
+
+    def subset(self, idx) -> Design:
+        idx = np.asarray(idx, dtype=np.int64)
+        cats = tuple(dict(c, index=c["index"][idx]) for c in self.categories)
+        nums = tuple(dict(c, values=c["values"][idx]) for c in self.numerics)
+        return Design(np.ascontiguousarray(self.X[idx]), self.coefficients, self.to_user, cats, nums, self.level_names,
+                      self.level_of[idx] if self.level_of.size else self.level_of, self.level_x)
+
+
+@dataclass(frozen=True, eq=False)
 class Problem:
     """Data and priors in internal units, y' = (y - center) / scale, as the kernel reads them (`data`, one
-    kernel.Data), with the statistics and the specification they came from."""
+    kernel.Data), with the statistics and the specification they came from; `design` holds the group-level
+    predictors (None without)."""
 
     model: Model
     stats: GroupStats
     center: float
     scale: float
     data: "kernel.Data"
+    design: Design | None = None
 
     @property
     def J(self) -> int:
@@ -412,9 +569,11 @@ class Problem:
         d = self.data
         n = np.ascontiguousarray(d.n[idx])
         table, layout = kernel.prepare(n, d.nu_grid)
+        design = None if self.design is None else self.design.subset(idx)
         data = d._replace(n=n, ybar=np.ascontiguousarray(d.ybar[idx]), m2=np.ascontiguousarray(d.m2[idx]),
-                          v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout)
-        return Problem(self.model, self.stats.subset(idx), self.center, self.scale, data)
+                          v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout,
+                          **({"X": design.X, "XT": np.ascontiguousarray(design.X.T)} if design is not None else {}))
+        return Problem(self.model, self.stats.subset(idx), self.center, self.scale, data, design)
 
 
 def _refuse(msg: str):
@@ -483,6 +642,7 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
     model = model or Model()
     _check_identifiable(stats, model)
     center, scale = _center_scale(stats)
+    design = _design(stats, model, scale * stats.unit) if model.predictors else None
     ybar = ((stats.mean - center) + stats.mean_lo) / scale
     n = stats.n.astype(np.float64)
     m2 = stats.m2 / (scale * scale)
@@ -522,7 +682,149 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
         nu_logprior=np.asarray(logp, dtype=np.float64), nu_table=table, layout=layout, between=int(between),
         df_grid=df_grid, df_logprior=df_logprior, df_const=kernel.t_constants(df_grid),
         df_logq=kernel.t_quartile_logs(df_grid))
-    return Problem(model, stats, center, scale, data)
+    if design is not None:
+        loc, prec = _effect_priors(model, design)
+        data = data._replace(X=design.X, XT=np.ascontiguousarray(design.X.T), beta_loc=loc, beta_prec=prec)
+    return Problem(model, stats, center, scale, data, design)
+
+
+# ---------------------------------------------------------------------------------------------
+# group-level predictors: the design, and what the data cannot identify
+
+
+def _design(stats: GroupStats, model: Model, scale: float) -> Design:
+    """The design of `model`'s predictors on `stats` (see Design), refusing what the data cannot identify:
+    a column not read, a stated level with no groups, a predictor with one value, predictors that cannot be
+    told apart, and more coefficients than the groups allow."""
+    J = stats.J
+    have = stats.columns
+    cols: list[np.ndarray] = []
+    coefs: list[dict] = []
+    to_user: list[float] = []
+    cats: list[dict] = []
+    nums: list[dict] = []
+    for x in model.predictors:
+        if x.column not in have:
+            read = ", ".join(f"'{c}'" for c in have) or "none were read"
+            _refuse(f"bad model: the predictor '{x.column}' is not among the data's group-level columns ({read}); "
+                    "read it with the statistics (--category or --numeric on the command line; group_columns=[...] "
+                    "in pooling.read_table and the other readers)")
+        values = have[x.column]
+        if x.kind == "category":
+            counts: dict[str, int] = {}
+            for v in values:
+                counts[v] = counts.get(v, 0) + 1
+            found = sorted(counts)
+            if x.levels is not None:
+                empty = [lv for lv in x.levels if lv not in counts]
+                if empty:
+                    _refuse(f"bad model: the level {_show(empty[0])} of '{x.column}' has no groups (the levels found "
+                            f"are {_levels_text(found)}); a level without groups has no effect to estimate: drop it "
+                            "from the stated levels")
+                extra = [lv for lv in found if lv not in x.levels]
+                if extra:
+                    _refuse(f"bad model: groups hold the level {_show(extra[0])} of '{x.column}', which is not among "
+                            f"the stated levels {_levels_text(x.levels)}; state every level, or none")
+            if x.reference is not None and x.reference not in counts:
+                _refuse(f"bad model: the reference level {_show(x.reference)} of '{x.column}' has no groups (the "
+                        f"levels found are {_levels_text(found)}); choose one of those")
+            if len(found) < 2:
+                _refuse(f"bad model: the categorical predictor '{x.column}' has the one level {_show(found[0])} in "
+                        "every group, so it cannot explain why groups differ; drop it")
+            ref = x.reference if x.reference is not None else max(found, key=lambda lv: (counts[lv], -found.index(lv)))
+            order = [ref] + [lv for lv in found if lv != ref]
+            index = np.array([order.index(v) for v in values], dtype=np.int64)
+            for k, lv in enumerate(order[1:], start=1):
+                cols.append((index == k).astype(np.float64))
+                coefs.append({"name": f"{x.column}: {lv} vs {ref}", "column": x.column, "kind": "category",
+                              "level": lv, "reference": ref, "groups": counts[lv]})
+                to_user.append(scale)
+            cats.append({"column": x.column, "levels": tuple(order), "reference": ref, "index": index,
+                         "groups": tuple(counts[lv] for lv in order)})
+        else:
+            nv = np.empty(J)
+            for j, v in enumerate(values):
+                try:
+                    nv[j] = float(v)
+                except ValueError:
+                    nv[j] = np.nan
+                if not math.isfinite(nv[j]):
+                    _refuse(f"bad model: the numeric predictor '{x.column}' has {_show(v)} for group "
+                            f"{_show(stats.labels[j])}; expected a finite number (make it a categorical predictor if "
+                            "its values are names)")
+            centre = float(np.mean(nv))
+            spread = float(np.sqrt(np.mean((nv - centre) ** 2)))
+            if not spread > 1e-12 * max(1.0, abs(centre)):
+                _refuse(f"bad model: the numeric predictor '{x.column}' is {nv[0]:g} in every group, so it cannot "
+                        "explain why groups differ (it cannot be told apart from mu); drop it")
+            unit_scale = 2.0 ** round(math.log2(spread))
+            cols.append((nv - centre) / unit_scale)
+            coefs.append({"name": x.column, "column": x.column, "kind": "numeric", "centre": centre,
+                          "unit_scale": unit_scale})
+            to_user.append(scale / unit_scale)
+            nums.append({"column": x.column, "centre": centre, "unit_scale": unit_scale, "values": nv})
+    X = np.ascontiguousarray(np.column_stack(cols), dtype=np.float64)
+    _check_design(X, coefs, stats, model)
+    if cats:
+        combo = np.stack([c["index"] for c in cats], axis=1)
+        uniq, level_of = np.unique(combo, axis=0, return_inverse=True)  # sorted: the reference combination first
+        names = tuple(" / ".join(c["levels"][i] for c, i in zip(cats, row)) for row in uniq)
+        level_x = np.zeros((len(uniq), X.shape[1]))  # numeric columns stay 0: their mean over the groups
+        where = {c["column"]: i for i, c in enumerate(cats)}
+        for k, coef in enumerate(coefs):
+            if coef["kind"] == "category":
+                i = where[coef["column"]]
+                level_x[:, k] = (uniq[:, i] == cats[i]["levels"].index(coef["level"])).astype(float)
+        level_of = np.asarray(level_of, dtype=np.int64).reshape(-1)
+    else:
+        names, level_of, level_x = (), np.zeros(0, dtype=np.int64), np.zeros((0, X.shape[1]))
+    return Design(X, tuple(coefs), np.asarray(to_user), tuple(cats), tuple(nums), names, level_of, level_x)
+
+
+def _levels_text(levels) -> str:
+    shown = ", ".join(_show(lv, 30) for lv in list(levels)[:10])
+    return shown + (", ..." if len(levels) > 10 else "")
+
+
+def _check_design(X: np.ndarray, coefs: list[dict], stats: GroupStats, model: Model) -> None:
+    """Refuse predictors the groups cannot tell apart (a column that is a combination of mu and the columns
+    before it) and more coefficients than the groups allow (see the README's model section)."""
+    J, p = X.shape
+    Z = np.column_stack([np.ones(J), X])
+    for k in range(1, p + 1):
+        sv = np.linalg.svd(Z[:, : k + 1], compute_uv=False)
+        if sv[-1] <= 1e-9 * sv[0]:
+            _refuse(f"bad model: the predictor column '{coefs[k - 1]['name']}' cannot be told apart from mu and the "
+                    "predictors before it in these groups (two categorical columns that split the groups the same "
+                    "way, or a numeric column that follows a categorical one); drop one of them")
+    flat = 1 + sum(1 for prior in _prior_of_each(model, coefs) if isinstance(prior, Flat))
+    need = flat + (2 if isinstance(model.tau, Flat) else 1)
+    if J < need:
+        tau_txt = ("a flat prior on tau needs at least 2 groups beyond the flat coefficients"
+                   if isinstance(model.tau, Flat) else
+                   "the between-group spread needs at least 1 group beyond the flat coefficients")
+        _refuse(f"bad model: {flat} coefficients with flat priors (mu and {flat - 1} effects) are too many for {J} "
+                f"groups: {tau_txt}. Use fewer predictors or levels"
+                + (", a proper prior on tau (--tau half-normal:SCALE)" if isinstance(model.tau, Flat) else "")
+                + ", or a normal prior on the effects (--effects normal:SCALE)")
+
+
+def _prior_of_each(model: Model, coefs: list[dict]) -> list:
+    by_column = {x.column: (x.prior or model.effects) for x in model.predictors}
+    return [by_column[c["column"]] for c in coefs]
+
+
+def _effect_priors(model: Model, design: Design) -> tuple[np.ndarray, np.ndarray]:
+    """Per coefficient, the prior's centre and precision in internal units (precision 0: flat). A normal prior stated
+    in the user's units, N(loc, scale^2), is N(loc / to_user, (scale / to_user)^2) on the internal coefficient."""
+    p = design.p
+    loc, prec = np.zeros(p), np.zeros(p)
+    for k, prior in enumerate(_prior_of_each(model, list(design.coefficients))):
+        if isinstance(prior, Normal):
+            u = design.to_user[k]
+            loc[k] = prior.loc / u
+            prec[k] = (u / prior.scale) ** 2
+    return loc, prec
 
 
 def _center_scale(stats: GroupStats) -> tuple[float, float]:

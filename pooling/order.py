@@ -20,6 +20,7 @@ group's draws) and ranks want rows (one draw's groups). The building blocks, eac
   handed back, to be ranked by numpy's stable argsort. Either way the ranks are those defined above.
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import numpy as np
 from numba import njit

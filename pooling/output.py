@@ -2,7 +2,9 @@
 
 Everything is written into a hidden sibling folder first and renamed into place at the end, so a
 reader never sees a half-written run: after a crash, Ctrl-C or a full disk there is either the
-complete folder or no folder. An existing folder is replaced only when asked.
+complete folder or no folder. An existing folder is replaced only when asked, and only if it is a
+run folder this program wrote: each holds a small marker file, `.pooling-run` (check_target,
+clean_leftovers).
 """
 from __future__ import annotations
 
@@ -10,6 +12,7 @@ import errno
 import json
 import math
 import os
+import re
 import shutil
 import tempfile
 import time
@@ -17,8 +20,13 @@ from pathlib import Path
 
 import numpy as np
 
+try:  # advisory locks on the markers of folders being written (POSIX)
+    import fcntl
+except ImportError:  # pragma: no cover
+    fcntl = None
+
 from . import __version__
-from .errors import OutputError
+from .errors import InputError, OutputError
 
 SUMMARY_FORMAT = 1
 
@@ -94,6 +102,7 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
         "interlab": lab,
         "new_group_outside": res.new_group,
         "predictive_checks": checks,
+        "predictors": _level_named(res.predictors, L),
         "groups_table": records(res.table),
     }
     if res.pairs is not None:
@@ -101,6 +110,19 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
     if res.summary is not None:
         out["summary_mode"] = {k: v for k, v in res.summary.items() if k != "kept_labels"}
     return _clean(out)
+
+
+def _level_named(x, L: str):
+    """The predictors' answers with each interval's ends named by the level (low -> low_95), as for the
+    hyperparameters; None stays None."""
+    if isinstance(x, dict):
+        out = {}
+        for k, v in x.items():
+            out[f"{k}_{L}" if k in ("low", "high") and isinstance(v, float) else k] = _level_named(v, L)
+        return out
+    if isinstance(x, list):
+        return [_level_named(v, L) for v in x]
+    return x
 
 
 def write_results_files(res, folder: Path, command: list[str] | None = None, changes: dict | None = None) -> dict:
@@ -157,14 +179,190 @@ def check_parent(path: Path) -> Path:
     return path
 
 
-def check_target(out: Path, replace: bool) -> Path:
-    """Refuse an existing run folder unless `replace`, and a parent that cannot take one; before any work."""
+# ---------------------------------------------------------------------------------------------
+# run folders: marked, checked, written atomically, and their leftovers cleaned
+
+#: The marker file in every run folder this program writes (and in its hidden working folders).
+#: A folder is replaced only when it holds this marker; a hidden leftover of a killed run is removed
+#: only when it holds it and no process holds its lock.
+MARKER = ".pooling-run"
+MARKER_FORMAT = 1
+_LEFTOVER = re.compile(r"^\..*\.(partial|old)-[A-Za-z0-9_]{8}$")
+_NAME_MAX = 255
+
+
+def _lexists(p: Path) -> bool:
+    try:
+        os.lstat(p)
+        return True
+    except OSError:
+        return False
+
+
+def _name_max(folder: Path) -> int:
+    while not _lexists(folder) and folder != folder.parent:
+        folder = folder.parent
+    try:
+        return os.pathconf(folder, "PC_NAME_MAX")
+    except (OSError, ValueError, AttributeError):
+        return _NAME_MAX
+
+
+def _stem(name: str) -> str:
+    """The run's name inside a hidden working folder's name, short enough that the whole fits."""
+    return name if len(os.fsencode(name)) <= 160 else name[:40]
+
+
+def read_marker(folder: Path) -> dict | None:
+    """The marker of a folder this program wrote, or None (no marker, or not one of ours)."""
+    try:
+        with open(Path(folder) / MARKER, "rb") as fh:
+            info = json.loads(fh.read(4096).decode("utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(info, dict) or info.get("written_by") != "pooling" or not isinstance(info.get("format"), int):
+        return None
+    return info
+
+
+def _locked_marker(folder: Path, info: dict) -> int:
+    """Write the marker into `folder` and hold an exclusive lock on it; returns the open descriptor, whose
+    closing (or the process's end, however it ends) releases the lock."""
+    fd = os.open(folder / MARKER, os.O_RDWR | os.O_CREAT | os.O_EXCL, 0o644)
+    try:
+        if fcntl is not None:
+            # blocking: a cleaner that opened the still-empty file first finds no marker, lets go, and we go on
+            fcntl.flock(fd, fcntl.LOCK_EX)
+        body = {"written_by": "pooling", "format": MARKER_FORMAT, "pooling_version": __version__, "pid": os.getpid(),
+                "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), **info}
+        os.write(fd, (json.dumps(body) + "\n").encode("utf-8"))
+    except BaseException:
+        os.close(fd)
+        raise
+    return fd
+
+
+def _marked_folder(parent: Path, prefix: str, info: dict) -> tuple[Path, int]:
+    """A fresh hidden folder in `parent` with a locked marker in it."""
+    tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
+    try:
+        return tmp, _locked_marker(tmp, info)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def _lock_if_free(folder: Path) -> int | None:
+    """The descriptor of folder's marker, locked by us, if the marker is ours and no process holds it."""
+    if fcntl is None:
+        return None  # no advisory locks here: never remove what might be in use
+    try:
+        fd = os.open(folder / MARKER, os.O_RDONLY | os.O_NOFOLLOW)
+    except OSError:
+        return None
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:  # held by a live process: its run is still being written
+        os.close(fd)
+        return None
+    if read_marker(folder) is None:
+        os.close(fd)
+        return None
+    return fd
+
+
+def clean_leftovers(parent: Path) -> list[str]:
+    """Remove the hidden working folders that killed runs left in `parent` (`.NAME.partial-*`, and
+    `.NAME.old-*` holding a replaced run): only folders that hold our marker, and only when no process
+    holds the marker's lock. A replaced run whose successor never arrived is put back under its name.
+    Returns what was done, one phrase per folder; never raises."""
+    done = []
+    try:
+        entries = [e for e in os.scandir(parent) if _LEFTOVER.match(e.name) and e.is_dir(follow_symlinks=False)]
+    except OSError:
+        return done
+    for entry in entries:
+        folder = Path(entry.path)
+        fd = _lock_if_free(folder)
+        if fd is None:
+            continue
+        try:
+            info = read_marker(folder) or {}
+            target = info.get("target")
+            if (info.get("kind") == "aside" and isinstance(target, str) and "/" not in target and target
+                    and not _lexists(folder.parent / target) and read_marker(folder / "run") is not None):
+                os.rename(folder / "run", folder.parent / target)
+                done.append(f"put back '{target}'")
+            shutil.rmtree(folder, ignore_errors=True)
+            done.append(f"removed '{entry.name}'")
+        except OSError:
+            pass
+        finally:
+            os.close(fd)
+    return done
+
+
+def _inside(path: Path, folder: Path) -> bool:
+    return path == folder or folder in path.parents
+
+
+def check_target(out: Path, replace: bool, protect=()) -> Path:
+    """Refuse, before any work, a run folder that cannot or must not be written.
+
+    protect: (what, path) pairs, for example ("the input file", "data.csv"): `out` may not be, or
+    hold, any of them, nor the current folder, since --replace would remove them. An existing `out`
+    is taken only with `replace`, and only if it is a run folder this program wrote (its marker).
+    """
+    if "\x00" in str(out):
+        raise InputError("bad option --out: the folder's name holds a NUL character, which no file system allows")
     out = Path(out)
-    if out.exists() and not replace:
-        raise OutputError(f"cannot write the run folder '{out}': it exists already; choose another --out or pass --replace")
-    if out.exists() and not out.is_dir():
-        raise OutputError(f"cannot write the run folder '{out}': a file of that name is in the way")
-    parent = out.resolve().parent
+    full = Path(os.path.abspath(out))
+    where = _name_max(full.parent)
+    for part in full.parts[1:]:
+        size = len(os.fsencode(part))
+        if size > where:
+            shown = part if len(part) <= 40 else part[:39] + "…"
+            raise OutputError(f"cannot write the run folder: the name '{shown}' is {size} bytes long, beyond the "
+                              f"{where} that the file system allows; choose a shorter --out")
+    try:
+        real = full.resolve()
+        cwd = Path.cwd().resolve()
+    except RuntimeError:  # Python 3.11 and 3.12 raise this for a loop of symbolic links
+        raise OutputError(f"cannot write the run folder '{out}': it is (or passes through) a symbolic link that "
+                          "loops") from None
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise OutputError(f"cannot write the run folder '{out}': it is (or passes through) a symbolic link "
+                              "that loops") from None
+        raise OutputError(f"cannot write the run folder '{out}': {exc.strerror or exc}") from None
+    if _inside(cwd, real):
+        what = "is the current folder" if cwd == real else f"holds the current folder '{cwd}'"
+        raise InputError(f"bad option --out: '{out}' {what}; a run writes a folder of its own (and --replace would "
+                         "empty it): name a new folder, for example --out runs/NAME")
+    for what, path in protect:
+        try:
+            p = Path(path).resolve()
+        except (OSError, RuntimeError, ValueError):
+            continue
+        if _inside(p, real):
+            how = "is" if p == real else "holds"
+            raise InputError(f"bad option --out: '{out}' {how} {what} '{path}'; a run writes a folder of its own (and "
+                             "--replace would remove what is in it): name a new folder")
+    if out.is_symlink():
+        raise OutputError(f"cannot write the run folder '{out}': it is a symbolic link; give the folder's own path")
+    if _lexists(out):
+        if not out.is_dir():
+            raise OutputError(f"cannot write the run folder '{out}': a file of that name is in the way")
+        if not replace:
+            raise OutputError(f"cannot write the run folder '{out}': it exists already; choose another --out or pass "
+                              "--replace")
+        _check_replaceable(out)
+    parent = full.parent
+    blocker = parent
+    while not _lexists(blocker) and blocker != blocker.parent:
+        blocker = blocker.parent
+    if not blocker.is_dir():
+        raise OutputError(f"cannot write the run folder '{out}': '{blocker}' is a file, in the way of a folder")
     if not parent.exists():
         try:
             parent.mkdir(parents=True, exist_ok=True)
@@ -175,12 +373,39 @@ def check_target(out: Path, replace: bool) -> Path:
     return out
 
 
-def atomic_folder(out: Path, replace: bool, fill) -> Path:
-    """Create `out` by calling fill(tmp_dir) on a sibling temporary folder, then renaming it into place."""
-    out = check_target(out, replace)
-    parent = out.resolve().parent
+def _check_replaceable(out: Path) -> None:
+    info = read_marker(out)
+    if info is None or info.get("kind") != "run":
+        raise OutputError(f"cannot replace '{out}': it is not a run folder written by pooling (it has no '{MARKER}' "
+                          "marker); remove it yourself, or choose another --out")
+
+
+def _fsync_folder(folder: Path) -> None:
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def atomic_folder(out: Path, replace: bool, fill, protect=()) -> Path:
+    """Create `out` by calling fill(tmp_dir) on a hidden sibling folder, then renaming it into place.
+
+    The sibling holds the marker from its first moment, locked for as long as this process works on
+    it, so that a later run can tell a killed run's leftover (ours, unlocked: removed) from a live one.
+    A replaced run is moved aside into another marked sibling and removed once the new folder is in place.
+    """
+    out = check_target(out, replace, protect)
+    parent = Path(os.path.abspath(out)).parent
+    clean_leftovers(parent)
+    stem = _stem(out.name)
     try:  # the access check passed, but ACLs, read-only mounts or quotas can still refuse
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=parent))
+        tmp, lock = _marked_folder(parent, f".{stem}.partial-", {"kind": "run"})
     except OSError as exc:
         raise OutputError(f"cannot write the run folder '{out}': {exc.strerror or exc}; nothing was written") from None
     try:
@@ -191,18 +416,31 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
         for f in tmp.iterdir():  # the data must be on disk before the rename makes the folder visible
             with open(f, "rb") as fh:
                 os.fsync(fh.fileno())
-        if out.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=parent))
-            os.rename(out, old / "run")
+        if _lexists(out):
+            _check_replaceable(out)  # again: it may have changed while this run sampled
+            old, old_lock = _marked_folder(parent, f".{stem}.old-", {"kind": "aside", "target": out.name})
             try:
-                os.rename(tmp, out)
-            except BaseException:  # Ctrl-C or a failure between the two renames: put the old run back
-                os.rename(old / "run", out)
-                shutil.rmtree(old, ignore_errors=True)
+                os.rename(out, old / "run")
+                try:
+                    os.rename(tmp, out)
+                except BaseException:  # Ctrl-C or a failure between the two renames: put the old run back
+                    os.rename(old / "run", out)
+                    raise
+                _fsync_folder(parent)
+            except BaseException:
+                if not _lexists(old / "run"):  # else it could not be put back: it stays aside, and the next
+                    shutil.rmtree(old, ignore_errors=True)  # run in this folder puts it back (clean_leftovers)
                 raise
-            shutil.rmtree(old, ignore_errors=True)
+            else:
+                shutil.rmtree(old, ignore_errors=True)  # only now, with the new run in place
+            finally:
+                os.close(old_lock)
         else:
             os.rename(tmp, out)
+            _fsync_folder(parent)
+    except OutputError:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
     except OSError as exc:
         shutil.rmtree(tmp, ignore_errors=True)
         if exc.errno == errno.ENOSPC:
@@ -212,6 +450,8 @@ def atomic_folder(out: Path, replace: bool, fill) -> Path:
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+    finally:
+        os.close(lock)
     return out
 
 
@@ -324,14 +564,16 @@ class _Background:
             raise self.error
 
 
-def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None) -> Path:
+def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None,
+              protect=()) -> Path:
     """Write the run folder as one atomic folder: draws.nc (from the fit), summary.json, groups.csv and
     report.html (from its results), and whatever `extra(folder)` adds. When `extra` returns a dict (a refit's
     change report), report.html opens with it, so extra runs first.
 
     `res` may also be a function of no arguments that computes the results: it is then called while draws.nc
     is being written on the second thread (the write and the answers overlap), and the command line gets the
-    results back through it (pooling.cli.run_fit)."""
+    results back through it (pooling.cli.run_fit). protect: (what, path) pairs that `out` may not be or hold
+    (check_target)."""
     parts = draws_parts(fit)
 
     def fill(tmp: Path):
@@ -348,4 +590,17 @@ def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None
             writer.join()  # also on Ctrl-C or an error, so the folder is never removed under the writer
         writer.reraise()
 
-    return atomic_folder(Path(out), replace, fill)
+    return atomic_folder(Path(out), replace, fill, protect)
+
+
+def write_report(fit, folder, options=None, command: list[str] | None = None):
+    """Write groups.csv, summary.json and report.html of a run (a posterior.Fit or a summary.SummaryFit) into
+    `folder` (created if absent; those files are replaced). Returns the computed results. The command line's
+    run folder, with draws.nc and written atomically, is `write_run`."""
+    from .results import compute
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    res = compute(fit, options)
+    write_results_files(res, folder, command)
+    return res

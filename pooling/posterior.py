@@ -12,7 +12,8 @@ first use:
     posterior     mu, tau (chain, draw); theta (chain, draw, group);
                   sigma (chain, draw, group) for `separate`, (chain, draw) for `shared`;
                   s, nu (chain, draw) for `separate`; df (chain, draw) and lambda (chain, draw, group)
-                  for the heavy-tailed between-group distribution
+                  for the heavy-tailed between-group distribution; beta (chain, draw, coefficient) for
+                  group-level predictors, in the user's units (per unit of a numeric column)
     sample_stats  tau_evaluations (chain, draw): density evaluations of the slice update of log tau
     constant_data n, raw_mean, raw_sd (or std_error for `known`), each (group)
 
@@ -88,6 +89,7 @@ class Fit:
     problem: Problem
     raw: RawDraws
     misses: list[dict]
+    without: object = None  # with group-level predictors: the same data fitted without them (pooling.fit)
 
     summary_mode = False
 
@@ -119,6 +121,8 @@ class Fit:
         p = self.problem
         if name in SCALED:
             x = x * p.scale + (p.center if SCALED[name] else 0.0)
+        elif name == "beta":
+            x = x * p.design.to_user
         elif name == "lambda":
             x = x.astype(np.float64)
         return x.reshape((-1,) + x.shape[2:])
@@ -205,6 +209,13 @@ def parts(raw: RawDraws, problem: Problem, packed: bool) -> dict[str, Part]:
         post.add("lambda", ("chain", "draw", "group"), raw.lam,
                  {"meaning": "latent precision of each group in the between-group distribution: "
                              "theta_j ~ N(mu, tau^2 / lambda_j)"})
+    if raw.beta is not None:
+        # each coefficient has its own unit (the data's, or the data's per unit of a numeric column), and CF allows
+        # one scale_factor per variable, so beta is written in the user's units (differences: no offset to lose)
+        post.coords["coefficient"] = np.array(problem.design.names, dtype=object)
+        post.add("beta", ("chain", "draw", "coefficient"), raw.beta * problem.design.to_user,
+                 {"meaning": "effects of the group-level predictors: each group's centre is mu + x_j' beta (contrasts "
+                             "against the reference level; numeric predictors centred at their mean over the groups)"})
     sstats = Part({}, {"chain": chain, "draw": draw}, dict(attrs))
     sstats.add("tau_evaluations", ("chain", "draw"), raw.evals)
     const = Part({}, {"group": labels}, dict(attrs))

@@ -37,7 +37,7 @@ from ._blocks import Scratch, each_block
 from .asked import (PURPOSE_CHECKS, PURPOSE_PREDICTION, ReportOptions, check_k, derived_rng, level_key, level_label,
                     resolve_groups, split_compare)
 from .errors import InputError
-from .posterior import Fit, SCALED, hyper_names, hyper_summary
+from .posterior import Fit, SCALED, hyper_names, hyper_summary, summarize_draws
 
 MAX_PAIRWISE = 400
 HEAT_ROWS_MANY = 40  # above HEAT_ALL groups the heat map shows the best 40 over ranks 1..HEAT_ALL
@@ -84,7 +84,8 @@ COLUMNS = {
                     "(posterior mean of P(y_new outside | theta_j, sigma_j))",
     "outside_low": "lower end of the {L} credible interval of that fraction",
     "outside_high": "upper end of the {L} credible interval of that fraction",
-    "bias_mean": "posterior mean of theta_j - mu (bias against the consensus value)",
+    "bias_mean": "posterior mean of theta_j - c_j, the bias against the consensus value of the group's own level: "
+                 "c_j = mu, or with group-level predictors c_j = mu + x_j' beta (the consensus_mean column)",
     "bias_low": "lower end of the {L} credible interval of the bias",
     "bias_high": "upper end of the {L} credible interval of the bias",
     "p_bias_over": "P(|theta_j - mu| > allowed bias)",
@@ -97,6 +98,18 @@ COLUMNS = {
                   "needs a wider allowance than 95% of groups would get",
     "outlying": "true when p_outlying is at least 0.5: the group sits outside the between-group distribution of "
                 "the others, more likely than not",
+    "level": "with categorical predictors: the group's level (its value of each categorical predictor, joined "
+             "by ' / ')",
+    "consensus_mean": "with group-level predictors: posterior mean of c_j = mu + x_j' beta, the consensus value of "
+                      "groups like this one (its level, and its own values of the numeric predictors)",
+    "consensus_low": "lower end of the {L} credible interval of c_j",
+    "consensus_high": "upper end of the {L} credible interval of c_j",
+    "rank_in_level_mean": "with categorical predictors: posterior mean rank among the groups of the same level "
+                          "(1 = best)",
+    "rank_in_level_low": "lower end of the {L} interval of the rank within the level (whole ranks)",
+    "rank_in_level_high": "upper end of the {L} interval of the rank within the level (whole ranks)",
+    "p_best_in_level": "probability of being the best group of its level",
+    "rank_in_level_mean_error": "summary mode: largest possible error of rank_in_level_mean; 0 for kept groups",
     "rank_mean": "posterior mean rank (1 = best)",
     "rank_low": "lower end of the {L} rank interval (whole ranks)",
     "rank_high": "upper end of the {L} rank interval (whole ranks)",
@@ -165,6 +178,7 @@ class Results:
     pairs: pd.DataFrame | None
     heat: dict | None
     methods: dict = field(default_factory=dict)
+    predictors: dict | None = None  # group-level predictors: coefficients, contrasts, consensus per level, spread
     summary: dict | None = None  # summary mode: kept groups, error figures, classic R-hat screen
     seconds: dict = field(default_factory=dict)
 
@@ -207,6 +221,7 @@ class Draws:
     df: np.ndarray | None
     chains: int
     per_chain: int
+    beta: np.ndarray | None = None  # (S, p) with group-level predictors, else (S, 0)
 
     @property
     def S(self) -> int:
@@ -224,8 +239,22 @@ def _stacked(raw) -> Draws:
     else:
         sigma = raw.sigma.reshape(S, J)
     lam = raw.lam.reshape(S, J) if raw.lam is not None else np.empty((S, 0))
+    beta = raw.beta.reshape(S, -1) if raw.beta is not None else np.empty((S, 0))
     return Draws(raw.mu.reshape(S), raw.tau.reshape(S), raw.theta.reshape(S, J), sigma, lam,
-                 None if raw.df is None else raw.df.reshape(S), C, D)
+                 None if raw.df is None else raw.df.reshape(S), C, D, beta)
+
+
+def _quantiles(x: np.ndarray, probs) -> np.ndarray:
+    """numpy's default (linear) quantiles of each column of x (S, m), equal to np.quantile's to the bit: rows of
+    the result follow probs (two of them)."""
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    S, m = x.shape
+    buf = np.empty((m, S))
+    O.gather(x, 0, m, buf)
+    buf.sort(axis=1)
+    out = np.empty((2, m))
+    O.sorted_quantiles(buf, m, np.array([(S - 1) * q for q in probs]), out[0], out[1], 0)
+    return out
 
 
 def quantile_index(S: int, q: float) -> int:
@@ -340,7 +369,7 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
 
     The draws are read a block of TABLE_BLOCK groups at a time: the running summaries over the block's
     columns, then its draws copied into buffers laid out by group (pooling.order.gather), where the derived
-    quantities and the interval ends are computed (pooling.order.linear_quantiles, equal to np.quantile's).
+    quantities and the interval ends are computed (pooling.order.sorted_quantiles, equal to np.quantile's).
     Blocks run on two threads, each writing only its own groups, so the numbers do not depend on the threads."""
     p = fit.problem
     raw = fit.raw
@@ -366,6 +395,7 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     heavy = dr.lam.shape[1] > 0
     lam = np.ascontiguousarray(dr.lam) if heavy else None
     mu, tau = np.ascontiguousarray(dr.mu), np.ascontiguousarray(dr.tau)
+    X, beta = np.ascontiguousarray(d.X), np.ascontiguousarray(dr.beta)
     sig_all, lam_all = np.ascontiguousarray(dr.sigma), np.ascontiguousarray(dr.lam)
     none = np.empty((0, S))
 
@@ -377,7 +407,7 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
 
     def accumulate(j0: int) -> None:  # wide blocks: accumulate's loop over groups runs at memory speed
         A.accumulate_stored(d.within, d.n, d.v_known, mu, tau, theta, sig_all, lam_all, cuts, a, D, j0,
-                            min(J, j0 + ACC_BLOCK), run, hits)
+                            min(J, j0 + ACC_BLOCK), run, hits, X, beta)
 
     def block(j0: int) -> None:
         j1 = min(J, j0 + TABLE_BLOCK)
@@ -394,7 +424,7 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
             if heavy:
                 O.gather(lam, j0, j1, lb)
             for name, kind in kinds:
-                A.derived(kind, d.within, d.n, d.v_known, mu, tau, tb, sb, sig1, lb, a, j0, m, buf)
+                A.derived(kind, d.within, d.n, d.v_known, mu, tau, tb, sb, sig1, lb, a, j0, m, buf, X, beta)
                 ends(buf, name)
             ends(tb, "theta")  # after the derived quantities, which read the buffers in draw order
             if separate:
@@ -412,7 +442,57 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     ranks = rank_draws(theta, highest=o.best == "highest")
     out.update(rank_summary(ranks, o.level, k))
     out["ranks"] = ranks
+    if p.design is not None and p.design.level_names:
+        out["in_level"] = ranks_in_level(theta, p.design.level_of, o.level, highest=o.best == "highest")
     return out, {"draws_total": S}
+
+
+def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float,
+                   highest: bool = True) -> dict[str, np.ndarray]:
+    """Per group, its rank among the groups of its own level in every draw (x: (S, J), larger is better, or
+    smaller when not `highest`), and the mean rank, the central rank interval and P(best in the level), as
+    rank_summary gives them overall."""
+    J = x.shape[1]
+    out = {"rank_in_level_mean": np.empty(J), "rank_in_level_low": np.empty(J), "rank_in_level_high": np.empty(J),
+           "p_best_in_level": np.empty(J)}
+    for lv in np.unique(level_of):
+        idx = np.flatnonzero(level_of == lv)
+        rs = rank_summary(rank_draws(np.ascontiguousarray(x[:, idx]), highest), level, 1)
+        out["rank_in_level_mean"][idx] = rs["rank_mean"]
+        out["rank_in_level_low"][idx] = rs["rank_low"]
+        out["rank_in_level_high"][idx] = rs["rank_high"]
+        out["p_best_in_level"][idx] = rs["p_best"]
+    return out
+
+
+def centre_means(p, raw) -> tuple[np.ndarray, np.ndarray]:
+    """Per group, the posterior mean of its centre c_j = mu + x_j' beta (mu without predictors) and a bound on
+    max_s |c_js - mean c_j| over the draws: D_mu + sum_k |x_jk| D_k, D the largest distance of a draw from its mean
+    (internal units)."""
+    mu_mean = float(raw.mu.mean())
+    bound = np.full(p.J, float(np.max(np.abs(raw.mu - mu_mean))))
+    if raw.beta is None:
+        return np.full(p.J, mu_mean), bound
+    b = raw.beta.reshape(-1, raw.beta.shape[-1])
+    b_mean = b.mean(axis=0)
+    X = p.data.X
+    bound = bound + np.abs(X) @ np.max(np.abs(b - b_mean), axis=0)
+    return mu_mean + X @ b_mean, bound
+
+
+def centre_interval(p, raw, level: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per group, the central interval of its centre c_j = mu + x_j' beta over the draws (internal units); groups
+    with the same predictor values share one computation."""
+    mu = raw.mu.reshape(-1)
+    b = raw.beta.reshape(mu.shape[0], -1)
+    rows, inverse = np.unique(p.data.X, axis=0, return_inverse=True)
+    inverse = np.asarray(inverse).reshape(-1)
+    lo, hi = np.empty(len(rows)), np.empty(len(rows))
+    probs = [(1 - level) / 2, (1 + level) / 2]
+    for a in range(0, len(rows), TABLE_BLOCK):
+        c = mu[:, None] + b @ rows[a:a + TABLE_BLOCK].T
+        lo[a:a + TABLE_BLOCK], hi[a:a + TABLE_BLOCK] = _quantiles(c, probs)
+    return lo[inverse], hi[inverse]
 
 
 def _classic_rhat(run: np.ndarray, D: int) -> np.ndarray:
@@ -497,8 +577,11 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
     if sh.rowmap[sk.Q_BIAS] >= 0:
         lows["bias"], highs["bias"], errors["bias"] = hist_interval(sk.Q_BIAS, 0)
     else:
-        lows["bias"], highs["bias"] = lows["theta"] - mu_mean, highs["theta"] - mu_mean
-        errors["bias"] = errors["theta"] + D_mu
+        # the theta limits minus the posterior mean of the centre c_j = mu + x_j' beta; |c_js - mean c_j| is at
+        # most D_mu + sum_k |x_jk| max_s |beta_sk - mean beta_k|
+        cmean, cbound = centre_means(p, raw)
+        lows["bias"], highs["bias"] = lows["theta"] - cmean, highs["theta"] - cmean
+        errors["bias"] = errors["theta"] + cbound
     out["rank_mean"] = acc.run[:, A.R_RANK].sum(axis=0) / S
     r_lo, r_hi, r_err = np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64)
     sk.rank_intervals(acc.rhist, acc.wmax, sh.rank_edges, quantile_index(S, probs[0]), quantile_index(S, probs[1]), J,
@@ -508,6 +591,11 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
     out["p_top_k"] = h[A.H_TOP] / S
     errors["rank_mean"] = acc.run[:, A.R_RANK_ERR].sum(axis=0) / S
     errors["rank_limit"] = r_err.astype(float)
+    if acc.lrun is not None and acc.lrun.shape[2]:  # ranks within levels: bucket mid-ranks, an exact P(best)
+        nan = np.full(J, np.nan)
+        out["in_level"] = {"rank_in_level_mean": acc.lrun[:, 0].sum(axis=0) / S, "rank_in_level_low": nan,
+                           "rank_in_level_high": nan, "p_best_in_level": acc.lrun[:, 2].sum(axis=0) / S}
+        errors["rank_in_level_mean"] = acc.lrun[:, 1].sum(axis=0) / S
     # kept groups: every column from their stored draws, as a full run computes it (error 0)
     kept = sh.kept
     ex, _ = _full_group_answers(fit.kept, o, min(k, len(kept)))
@@ -561,8 +649,11 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
     J = p.J
     within = p.model.within
     h = g["hits"]
-    cols: dict[str, object] = {"group": np.array(st.labels, dtype=object), "n": _whole_or_fraction(st.n),
-                               "raw_mean": st.raw_mean}
+    cols: dict[str, object] = {"group": np.array(st.labels, dtype=object)}
+    des = p.design
+    if des is not None and des.level_names:
+        cols["level"] = np.array(des.level_names, dtype=object)[des.level_of]
+    cols.update({"n": _whole_or_fraction(st.n), "raw_mean": st.raw_mean})
     if st.kind == "known":
         cols["std_error"] = st.raw_se
     else:
@@ -578,9 +669,9 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
     cols["shrink_weight"] = g["shrink_weight"]
     cols[f"shrink_low_{L}"] = g["low"]["shrink"]
     cols[f"shrink_high_{L}"] = g["high"]["shrink"]
-    mu_mean_i = g["mu_mean"]
+    centre_i = g["centre_mean"]  # mu, or mu + x_j' beta with predictors: what each group is pulled toward
     ybar = p.ybar  # internal own means: their digits survive any offset
-    dist = ybar - mu_mean_i
+    dist = ybar - centre_i
     with np.errstate(divide="ignore", invalid="ignore"):
         cols["shrink_realised"] = np.where(dist != 0, (ybar - g["theta_mean"]) / dist, np.nan)
     if o.threshold is not None:
@@ -595,9 +686,13 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
             cols["outside_mean"] = g["outside_mean"]
             cols[f"outside_low_{L}"] = g["low"]["outside"]
             cols[f"outside_high_{L}"] = g["high"]["outside"]
-    cols["bias_mean"] = (g["theta_mean"] - mu_mean_i) * k
+    cols["bias_mean"] = (g["theta_mean"] - centre_i) * k
     cols[f"bias_low_{L}"] = g["low"]["bias"] * k
     cols[f"bias_high_{L}"] = g["high"]["bias"] * k
+    if des is not None:
+        cols["consensus_mean"] = centre_i * k + c
+        cols[f"consensus_low_{L}"] = g["centre_low"] * k + c
+        cols[f"consensus_high_{L}"] = g["centre_high"] * k + c
     if o.allowed_bias is not None:
         cols["p_bias_over"] = h[A.H_BIAS] / S
         cols["bias_side"] = _decide(cols["p_bias_over"], 1.0 - cols["p_bias_over"], o.decide_at, "over", "within")
@@ -610,6 +705,12 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
     cols[f"rank_high_{L}"] = np.asarray(g["rank_high"]).astype(np.int64)
     cols["p_best"] = g["p_best"]
     cols["p_top_k"] = g["p_top_k"]
+    if "in_level" in g:
+        il = g["in_level"]
+        cols["rank_in_level_mean"] = il["rank_in_level_mean"]
+        cols[f"rank_in_level_low_{L}"] = _whole_or_missing(il["rank_in_level_low"])
+        cols[f"rank_in_level_high_{L}"] = _whole_or_missing(il["rank_in_level_high"])
+        cols["p_best_in_level"] = il["p_best_in_level"]
     z, signal, _ = z_basis(p, o)
     cols["z_score"], cols["z_signal"] = z, signal
     table = pd.DataFrame(cols)
@@ -626,9 +727,17 @@ def _assemble(p, o: ReportOptions, g: dict, S: int, summary_fit=None) -> pd.Data
             table["outside_limit_error"] = e["outside"]
         table["bias_limit_error"] = e["bias"] * k
         table["rank_mean_error"] = e["rank_mean"]
+        if "rank_in_level_mean" in e:
+            table["rank_in_level_mean_error"] = e["rank_in_level_mean"]
         table["rank_limit_error"] = e["rank_limit"]
         table["theta_rhat_classic"] = g["classic_rhat"]
     return table
+
+
+def _whole_or_missing(x):
+    """Whole ranks as integers; a column with a missing value (summary mode) stays float, the gaps empty cells."""
+    x = np.asarray(x, dtype=np.float64)
+    return x.astype(np.int64) if np.all(np.isfinite(x)) else x
 
 
 def _whole_or_fraction(n):
@@ -763,7 +872,8 @@ def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd
 def new_group_outside(problem, raw, o: ReportOptions, seed: int) -> dict | None:
     """The out-of-specification fraction of a group not yet seen: per draw theta_new from the between-group
     distribution (N(mu, tau^2), or Student-t(df, mu, tau) for heavy tails), sigma_new^2 ~ Scaled-Inv-chi2(nu, s^2)
-    (separate) or the shared sigma; the fraction's posterior mean, interval and MC error. Internal units."""
+    (separate) or the shared sigma; the fraction's posterior mean, interval and MC error. Internal units. With
+    group-level predictors the new group is of the reference level, at the numeric predictors' means (centre mu)."""
     if problem.within_code == 2 or not o.limits:
         return None
     rng = derived_rng(seed, PURPOSE_PREDICTION)
@@ -810,7 +920,8 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
     * the most extreme group against the typical one, T = max_j |d_j| / median_j |d_j| with the standardised
       deviations d_j = (ybar_j - mu) / sqrt(tau^2 + v_j), against the same with replicated group means. The
       ratio does not depend on tau, so a normal between-group distribution that widened tau to take in one
-      far group still fails it (its replicates seldom hold a group that far beyond the typical one);
+      far group still fails it (its replicates seldom hold a group that far beyond the typical one); with group-level
+      predictors mu is each group's centre mu + x_j' beta in both checks;
     * within-group sd (measurements, groups with n_j >= 2): the replicated sample sd of n_j new values is
       sigma_j sqrt(chi2(n_j - 1) / (n_j - 1)).
     """
@@ -834,6 +945,8 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
         return sig_rows[idx[r0:r1]] ** 2 / n[None, :]
 
     mu_t, tau_t = mu[idx, None], tau[idx, None]
+    if raw.beta is not None:  # each group about its own centre mu + x_j' beta
+        mu_t = mu_t + raw.beta.reshape(S, -1)[idx] @ problem.data.X.T
     # The random numbers are drawn in full and in this order; everything else is computed a few draws at a
     # time (the same numbers, in a fraction of the memory, while they are in cache).
     z = rng.standard_normal((m, J))
@@ -906,6 +1019,115 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------
+# group-level predictors: why groups differ
+
+MAX_CONTRAST_LEVELS = 12  # up to this many levels every pair is listed; above, each level against the reference
+
+
+def _coef_index(design, column: str, level_name: str) -> int | None:
+    """The column of X of a level's contrast (None for the reference level); refuses an unknown column or level."""
+    cats = {c["column"]: c for c in design.categories}
+    if column not in cats:
+        raise InputError(f"bad option: '{column}' is not a categorical predictor of this fit; the categorical "
+                         f"predictors are {', '.join(repr(c) for c in cats) or 'none'}")
+    levels = cats[column]["levels"]
+    if level_name not in levels:
+        raise InputError(f"bad option: '{column}' has no level '{level_name}'; its levels are "
+                         + ", ".join(repr(x) for x in levels))
+    if level_name == cats[column]["reference"]:
+        return None
+    return next(k for k, c in enumerate(design.coefficients) if c["column"] == column and c.get("level") == level_name)
+
+
+def _level_draws(design, beta: np.ndarray, column: str, level_name: str) -> np.ndarray:
+    """The internal coefficient of a level in every draw (0 for the reference level)."""
+    k = _coef_index(design, column, level_name)
+    return np.zeros(beta.shape[:-1]) if k is None else beta[..., k]
+
+
+def level_contrast(fit, column: str, a: str, b: str, level: float = 0.95) -> dict:
+    """The difference between two levels of a categorical predictor, level a minus level b, in the user's units:
+    posterior mean, sd, median, the central interval at `level`, P(a - b > 0) and its Monte Carlo error.
+    Works for both ways of running (the coefficients' every draw is kept)."""
+    p = fit.problem
+    if p.design is None:
+        raise InputError("bad option: this fit has no group-level predictors")
+    beta = fit.raw.beta
+    d = _level_draws(p.design, beta, column, a) - _level_draws(p.design, beta, column, b)
+    out = summarize_draws(d, level, p.scale)
+    out.update({"column": column, "a": a, "b": b, "p_above_0": float(np.mean(d > 0))})
+    return out
+
+
+def predictor_answers(p, raw, o: ReportOptions, without=None) -> dict | None:
+    """Why groups differ: each coefficient with its interval and P(> 0); the contrasts between the levels of each
+    categorical predictor; the consensus value per level; and the between-group spread with and without the
+    predictors (tau of this fit and of `without`, the same data fitted without predictors), in the user's units.
+
+    With predictors mu is the centre of the reference level at the numeric predictors' means, and the consensus
+    value of level l is mu + x_l' beta (x_l: the level's contrasts, numeric columns at their means). The share of
+    the between-group spread the predictors explain is 1 - E[tau^2 | with] / E[tau^2 | without], from the two fits'
+    posterior means of tau^2: their draws come from two different fits and cannot be paired, so the share has no
+    interval of its own; the intervals of tau with and without show its uncertainty. It is below 0 when the
+    predictors explain nothing (they then only take information away from tau)."""
+    des = p.design
+    if des is None:
+        return None
+    level = o.level
+    k, c = p.scale, p.center
+    beta = raw.beta
+    coefs = []
+    for i, info in enumerate(des.coefficients):
+        x = beta[:, :, i]
+        sm = summarize_draws(x, level, float(des.to_user[i]))
+        sm["p_above_0"] = float(np.mean(x > 0))
+        coefs.append({**{key: info[key] for key in ("name", "column", "kind")},
+                      **({"level": info["level"], "reference": info["reference"], "unit": "data units"}
+                         if info["kind"] == "category" else
+                         {"centred_at": info["centre"], "unit": f"data units per unit of '{info['column']}'"}),
+                      **sm})
+    contrasts = []
+    for cat in des.categories:
+        levels = cat["levels"]
+        if len(levels) <= MAX_CONTRAST_LEVELS:
+            pairs = [(levels[j], levels[i]) for i in range(len(levels)) for j in range(i + 1, len(levels))]
+        else:
+            pairs = [(lv, levels[0]) for lv in levels[1:]]
+        for a, b in pairs:
+            d = _level_draws(des, beta, cat["column"], a) - _level_draws(des, beta, cat["column"], b)
+            sm = summarize_draws(d, level, k)
+            contrasts.append({"column": cat["column"], "a": a, "b": b, "p_above_0": float(np.mean(d > 0)), **sm})
+    counts = np.bincount(des.level_of, minlength=len(des.level_names)) if des.level_names else np.zeros(0, int)
+    consensus = []
+    for i, name in enumerate(des.level_names):
+        x = raw.mu + beta @ des.level_x[i]
+        consensus.append({"level": name, "groups": int(counts[i]), **summarize_draws(x, level, k, c)})
+    tau2 = float(np.mean(raw.tau ** 2))
+    spread = {"tau_with": summarize_draws(raw.tau, level, k), "tau_without": None, "share_explained": None,
+              "share_rule": "1 - E[tau^2 | with] / E[tau^2 | without]; no interval (two fits' draws cannot be "
+                            "paired); the intervals of tau with and without show the uncertainty",
+              "without_fit": None}
+    if without is not None:
+        wr = without.raw
+        spread["tau_without"] = summarize_draws(wr.tau, level, without.problem.scale)
+        tau2_wo = float(np.mean(wr.tau ** 2)) * (without.problem.scale / k) ** 2
+        spread["share_explained"] = 1.0 - tau2 / tau2_wo if tau2_wo > 0 else None
+        mode = "summary" if getattr(without, "summary_mode", False) else "full"
+        spread["without_fit"] = {"seed": wr.seed, "draws_per_chain": int(wr.mu.shape[1]),
+                                 "chains": int(wr.mu.shape[0]), "targets_met": bool(without.targets_met), "mode": mode,
+                                 "mu": summarize_draws(wr.mu, level, without.problem.scale, without.problem.center)}
+    return {"coefficients": coefs, "contrasts": contrasts, "consensus": consensus, "spread": spread,
+            "categories": [{"column": cat["column"], "levels": list(cat["levels"]), "reference": cat["reference"],
+                            "groups": list(cat["groups"])} for cat in des.categories],
+            "numeric": [{"column": x["column"], "centred_at": x["centre"]} for x in des.numerics],
+            "prior": {f"{x.column}": (x.prior or p.model.effects).describe() for x in p.model.predictors},
+            "mu_means": "the consensus value of the reference level"
+                        + (", at the numeric predictors' means" if des.numerics else "")
+                        if des.categories else "the centre at the numeric predictors' means",
+            "level": level}
+
+
+# ---------------------------------------------------------------------------------------------
 # the methods text of summary mode
 
 SUMMARY_METHODS = {
@@ -934,6 +1156,10 @@ SUMMARY_METHODS = {
     "diagnostics": "run-length control on mu, tau, the variance hyperparameters and the kept groups' stored draws; "
                    "a classic R-hat from chain means for every group as a screen",
 }
+SUMMARY_LEVEL_METHOD = ("ranks within levels: a bucket count per level (max(1024, groups of the level) buckets) "
+                        "gives the mid-rank among the groups of the level, off by at most rank_in_level_mean_error; "
+                        "P(best in level) is an exact count; the rank interval within a level needs every group's "
+                        "draws and is left empty (refit with --summary off)")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -951,8 +1177,10 @@ def _check_summary_options(fit, o: ReportOptions) -> ReportOptions:
     return o
 
 
-def compute(fit, options: ReportOptions | None = None) -> Results:
-    """Every answer of a run (a posterior.Fit or a summary.SummaryFit) for the given options."""
+def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
+    """Every answer of a run (a posterior.Fit or a summary.SummaryFit) for the given options. With group-level
+    predictors, `without` (default: fit.without, made by pooling.fit) is the same data fitted without them, for
+    tau with and without the predictors."""
     clock = [time.perf_counter()]
     summary_mode = getattr(fit, "summary_mode", False)
     if options is None:
@@ -975,6 +1203,9 @@ def compute(fit, options: ReportOptions | None = None) -> Results:
         g, figures = _full_group_answers(fit, o, k)
     S = figures["draws_total"]
     g["mu_mean"] = float(raw.mu.mean())
+    g["centre_mean"], _ = centre_means(p, raw)
+    if p.design is not None:
+        g["centre_low"], g["centre_high"] = centre_interval(p, raw, o.level)
     clock.append(time.perf_counter())
     table = _assemble(p, o, g, S, fit if summary_mode else None)
     hyper = hyper_summary(raw, p, o.level)
@@ -989,6 +1220,7 @@ def compute(fit, options: ReportOptions | None = None) -> Results:
     tail = tail_summary(p, raw, table)
     new_group = new_group_outside(p, raw, o, raw.seed)
     checks = None if summary_mode else model_checks(p, raw, raw.seed)
+    predictors = predictor_answers(p, raw, o, without if without is not None else getattr(fit, "without", None))
     clock.append(time.perf_counter())
     heat = None
     pairs = None
@@ -1040,6 +1272,8 @@ def compute(fit, options: ReportOptions | None = None) -> Results:
                                     RGRID="one rank each" if RB == J else
                                     f"one rank each up to rank {figures['rank_exact_up_to']}, then geometric up to J")
                    for key, text in SUMMARY_METHODS.items()}
+        if "in_level" in g:
+            methods["ranks_within_levels"] = SUMMARY_LEVEL_METHOD
         errs = {c: table[c].to_numpy(dtype=float) for c in table.columns if c.endswith("_error")}
         figures["limit_error"] = {name: {"max": float(np.nanmax(e)) if np.isfinite(e).any() else None,
                                          "median": float(np.nanmedian(e)) if np.isfinite(e).any() else None}
@@ -1057,7 +1291,7 @@ def compute(fit, options: ReportOptions | None = None) -> Results:
     return Results(options=o, mode="summary" if summary_mode else "full", model=p.model, problem=p, table=table,
                    hyper=hyper, hyper_draws=hyper_draws, diagnostics=diag, run=run, data=data, lab=lab, tail=tail,
                    new_group=new_group, checks=checks, pairs=pairs, heat=heat, methods=methods, summary=summary_info,
-                   seconds=seconds)
+                   seconds=seconds, predictors=predictors)
 
 
 def needs_draws(fit, what: str) -> None:

@@ -83,6 +83,7 @@ class RawDraws:
     df: np.ndarray | None = None  # heavy tails: df per draw (inf: the normal limit)
     sweep_seconds: float = float("nan")  # wall time in the sweeps alone (warm-up and draws), without diagnostics
     lam: np.ndarray | None = None  # heavy tails: lambda_j per draw
+    beta: np.ndarray | None = None  # group-level predictors: the coefficients per draw (chains, draws, p), internal
 
 
 class _Chain:
@@ -115,6 +116,9 @@ class _Chain:
         # model's chains start exactly as they always did)
         sc[kernel.DF_IDX] = len(p.df_grid) // 2
         lam = np.ones(J if p.heavy else 0)
+        # the predictors' coefficients start at 0: block A draws (mu, beta) afresh given tau in the first sweep,
+        # so the start only sets the point the first sums are taken about
+        beta = np.zeros(p.data.X.shape[1])
         if init is not None:
             st = np.asarray(init["state"], dtype=float)
             sc[: len(st)] = st
@@ -124,9 +128,11 @@ class _Chain:
                 sc[kernel.DF_IDX] = len(p.df_grid) // 2
             theta[:] = init["theta"]
             sigma2[:] = init["sigma2"]
-            if p.heavy and len(init.get("lam") or []) == J:
+            if p.heavy and len(init.get("lam") if init.get("lam") is not None else []) == J:
                 lam[:] = init["lam"]
-        self.state = kernel.State(sc, theta, sigma2, lam)
+            if beta.size and len(init.get("beta") if init.get("beta") is not None else []) == beta.size:
+                beta[:] = init["beta"]
+        self.state = kernel.State(sc, theta, sigma2, lam, beta)
         self.work = kernel.make_work(p.data)
         if p.heavy:
             self.work.inv_lam[:] = 1.0 / lam
@@ -166,7 +172,7 @@ class _Chain:
     def export_state(self) -> dict:
         st = self.state
         return {"state": st.scalars.tolist(), "theta": st.theta.tolist(), "sigma2": st.sigma2.tolist(),
-                "lam": st.lam.tolist()}
+                "lam": st.lam.tolist(), "beta": st.beta.tolist()}
 
 
 def _preallocate(chains, problem: Problem, n_sweeps: int) -> dict[str, np.ndarray]:
@@ -322,6 +328,7 @@ def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws
         evals=stack("evals"), seed=seed, settings=settings, rounds=list(rounds),
         seconds=time.perf_counter() - start, final_states=[c.export_state() for c in chains],
         df=stack("df") if heavy else None, lam=stack("lam") if heavy else None,
+        beta=stack("beta") if problem.data.X.shape[1] else None,
     )
 
 
@@ -330,8 +337,9 @@ def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws
 
 
 def checked(raw: RawDraws) -> dict[str, np.ndarray]:
-    """What run-length control checks: mu, tau, every theta_j and sigma_j, s and nu (separate), and the
-    tail index 1/df (heavy tails with df learned; 0 is the normal limit, so the draws stay finite)."""
+    """What run-length control checks: mu, tau, every theta_j and sigma_j, s and nu (separate), the
+    tail index 1/df (heavy tails with df learned; 0 is the normal limit, so the draws stay finite) and every
+    coefficient of the group-level predictors."""
     named = {"mu": raw.mu, "tau": raw.tau, "theta": raw.theta}
     if raw.sigma is not None:
         named["sigma"] = raw.sigma
@@ -340,6 +348,8 @@ def checked(raw: RawDraws) -> dict[str, np.ndarray]:
         named["nu"] = raw.nu
     if raw.df is not None:
         named["1/df"] = 1.0 / raw.df
+    if raw.beta is not None:
+        named["beta"] = raw.beta
     return named
 
 

@@ -17,9 +17,14 @@ of order one (a spread of 1e-301 would otherwise square to zero). Nearly all dat
 """
 from __future__ import annotations
 
+import codecs
+import contextlib
+import errno
 import hashlib
+import math
 import os
 import re
+import stat
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,6 +38,7 @@ from .errors import InputError
 # group called "NA" or "null" keeps its name.
 _MISSING = [""]
 _CHUNK_ROWS = 1_000_000
+MAX_COUNT = float(2**53)  # group sizes above this are not whole numbers in float64 arithmetic
 
 
 @dataclass(frozen=True, eq=False)
@@ -41,6 +47,10 @@ class GroupStats:
 
     kind is "raw" (n, mean, m2 from measurements or from n/mean/sd summaries) or "known"
     (mean holds each group's estimate and se its standard error).
+
+    columns: group-level columns (the predictors of a model that explains why groups differ), name -> one
+    text value per group (an object array aligned with labels); numbers are kept as their text and read as
+    numbers where a model asks for a numeric predictor (model.build).
     """
 
     labels: tuple[str, ...]
@@ -54,6 +64,7 @@ class GroupStats:
     source: str = "<frame>"
     file_sha256: str | None = None
     meta: dict = field(default_factory=dict)
+    columns: dict = field(default_factory=dict)
 
     def __post_init__(self):
         if self.mean_lo is None:
@@ -63,6 +74,14 @@ class GroupStats:
             if arr.shape != (len(self.labels),):
                 raise ValueError(f"GroupStats.{name} has shape {arr.shape}, expected ({len(self.labels)},)")
             arr.setflags(write=False)
+        cols = {}
+        for name, values in dict(self.columns).items():
+            arr = np.asarray(values, dtype=object)
+            if arr.shape != (len(self.labels),):
+                raise ValueError(f"GroupStats.columns['{name}'] has shape {arr.shape}, expected ({len(self.labels)},)")
+            arr.setflags(write=False)
+            cols[str(name)] = arr
+        object.__setattr__(self, "columns", cols)
 
     @property
     def J(self) -> int:
@@ -103,6 +122,8 @@ class GroupStats:
         h.update("\x1f".join(self.labels).encode("utf-8", "surrogatepass"))
         for arr in (self.n, self.mean, self.mean_lo, self.m2) + ((self.se,) if self.se is not None else ()):
             h.update(np.ascontiguousarray(arr, dtype=np.float64).tobytes())
+        for name in sorted(self.columns):  # group-level columns, when there are any
+            h.update(("\x1e" + name + "\x1d" + "\x1f".join(self.columns[name])).encode("utf-8", "surrogatepass"))
         return h.hexdigest()
 
     def to_frame(self) -> pd.DataFrame:
@@ -120,7 +141,41 @@ class GroupStats:
             tuple(np.asarray(self.labels, dtype=object)[keep]), self.n[keep].copy(), self.mean[keep].copy(),
             self.m2[keep].copy(), None if self.se is None else self.se[keep].copy(), self.mean_lo[keep].copy(),
             self.kind, self.unit, self.source, self.file_sha256, dict(self.meta),
+            {name: v[keep] for name, v in self.columns.items()},
         )
+
+    def with_columns(self, values: dict) -> GroupStats:
+        """The same statistics with group-level columns added (or replaced): values maps a column name to a
+        mapping label -> value (every group must have one) or to a sequence aligned with the labels. Values
+        are kept as text (numbers as their shortest text); an empty value is refused, naming the group.
+
+        >>> s = GroupStats(("a", "b"), np.array([2, 2]), np.array([1.0, 2.0]), np.array([0.5, 0.5]))
+        >>> s.with_columns({"method": {"a": "X", "b": "Y"}}).columns["method"].tolist()
+        ['X', 'Y']
+        """
+        cols = dict(self.columns)
+        for name, given in values.items():
+            if isinstance(given, dict):
+                missing = [lab for lab in self.labels if lab not in given]
+                if missing:
+                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has no "
+                                     f"value for group {_show(missing[0])}")
+                seq = [given[lab] for lab in self.labels]
+            else:
+                seq = list(given)
+                if len(seq) != self.J:
+                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has "
+                                     f"{len(seq)} values for {self.J} groups")
+            out = np.empty(self.J, dtype=object)
+            for j, (lab, x) in enumerate(zip(self.labels, seq)):
+                text = cell_text(x)
+                if text is None:
+                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(lab)}: "
+                                     "expected a value for the group-level column, found an empty cell")
+                out[j] = text
+            cols[str(name)] = out
+        return GroupStats(self.labels, self.n, self.mean, self.m2, self.se, self.mean_lo, self.kind, self.unit,
+                          self.source, self.file_sha256, dict(self.meta), cols)
 
 
 def _two_sum(a, b):
@@ -167,7 +222,34 @@ def merge(a: GroupStats, b: GroupStats, source: str | None = None) -> GroupStats
     running.add(a.labels, a.n, a.mean, a.mean_lo, a.m2)
     running.add(b.labels, b.n, b.mean, b.mean_lo, b.m2)
     whole = a.n.dtype.kind in "iu" and b.n.dtype.kind in "iu"
-    return running.stats(a.unit, source or f"{a.source} + {b.source}", None, whole=whole)
+    out = running.stats(a.unit, source or f"{a.source} + {b.source}", None, whole=whole)
+    if a.columns or b.columns:
+        out = out.with_columns(merge_columns(a, b, out.labels))
+    return out
+
+
+def merge_columns(a: GroupStats, b: GroupStats, labels) -> dict:
+    """Group-level columns of two sets of statistics, group by group: a group in both must have the same value in
+    each column (refused otherwise, naming the group and both values), and every group needs a value."""
+    out = {}
+    for name in sorted(set(a.columns) | set(b.columns)):
+        got: dict[str, str] = {}
+        for s in (a, b):
+            if name not in s.columns:
+                continue
+            for lab, x in zip(s.labels, s.columns[name]):
+                prev = got.setdefault(lab, x)
+                if prev != x and not _same_number(prev, x):
+                    raise InputError(f"bad input in {_where(b.source)}, column '{name}', group {_show(lab)}: a "
+                                     f"group-level column holds one value per group; found {_show(prev)} in "
+                                     f"{_where(a.source)} and {_show(x)} here")
+        missing = [lab for lab in labels if lab not in got]
+        if missing:
+            side = a if name not in b.columns else b
+            raise InputError(f"bad input in {_where(side.source)}: the group-level column '{name}' has no value for "
+                             f"group {_show(missing[0])}")
+        out[name] = got
+    return out
 
 
 def to_unit(s: GroupStats, unit: float) -> GroupStats:
@@ -177,7 +259,7 @@ def to_unit(s: GroupStats, unit: float) -> GroupStats:
     f = s.unit / unit
     return GroupStats(s.labels, s.n.copy(), s.mean * f, s.m2 * f * f, se=None if s.se is None else s.se * f,
                       mean_lo=s.mean_lo * f, kind=s.kind, unit=unit, source=s.source, file_sha256=s.file_sha256,
-                      meta=dict(s.meta))
+                      meta=dict(s.meta), columns=dict(s.columns))
 
 
 def choose_unit(*arrays) -> float:
@@ -190,7 +272,8 @@ def choose_unit(*arrays) -> float:
             top = max(top, float(a.max()))
     if top == 0.0 or 1e-100 < top < 1e100:
         return 1.0
-    return float(2.0 ** np.floor(np.log2(top)))
+    # 2^floor(log2(top)) from the binary exponent itself: log2 rounds up to 1024 at the largest double
+    return math.ldexp(1.0, math.frexp(top)[1] - 1)
 
 
 def _reduce_chunk(groups: pd.Series, values: np.ndarray):
@@ -245,6 +328,12 @@ class _Running:
                           source=source, file_sha256=sha)
 
 
+def unit_hint(unit: float) -> str:
+    """The power of ten that brings values of magnitude `unit` near 1, as text ("1e-300", "1e+320"):
+    written from the exponent, since 1/unit itself can overflow."""
+    return f"1e{-int(math.floor(math.log10(unit))):+d}"
+
+
 def _where(source: str) -> str:
     return f"'{source}'" if source != "<frame>" else "the data frame"
 
@@ -254,6 +343,15 @@ def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Se
     so not storable in netCDF or JSON) is reported instead of crashing the conversion."""
     try:
         return raw.astype("string")
+    except UnicodeDecodeError:  # bytes cells (a Parquet binary column) that are not UTF-8
+        for i, cell in enumerate(raw.astype(object)):
+            if isinstance(cell, (bytes, bytearray)):
+                try:
+                    bytes(cell).decode("utf-8")
+                except UnicodeDecodeError:
+                    raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                                     f"expected text in UTF-8, found the bytes {_show_bytes(bytes(cell))}") from None
+        raise
     except UnicodeEncodeError:
         for i, cell in enumerate(raw.astype(object)):
             if isinstance(cell, str) and re.search("[\ud800-\udfff]", cell):
@@ -273,14 +371,22 @@ def _number_hint(cell) -> str:
     return ""
 
 
-def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> np.ndarray:
-    """Return the column as finite float64, or raise naming the first bad row (1-based data row)."""
+def _check_values(raw: pd.Series, source: str, column: str, row_offset: int, written=None) -> np.ndarray:
+    """Return the column as finite float64, or raise naming the first bad row (1-based data row).
+
+    written(row): the cell's text as it stands in the file (the CSV reader turned '1e999' into inf)."""
     if raw.dtype.kind in "fiu":
         vals = raw.to_numpy(dtype=np.float64)
         bad = ~np.isfinite(vals)
         if bad.any():
             i = int(np.argmax(bad))
-            found = "an empty cell" if np.isnan(vals[i]) else _show(raw.iloc[i])
+            text = written(row_offset + i + 1) if written is not None else None
+            if text is not None and text.strip():
+                text = text.strip()
+                huge = np.isinf(vals[i]) and re.search("[0-9]", text)  # '1e999', not a written 'inf'
+                found = _show(text) + (" (beyond the largest double, about 1.8e308)" if huge else "")
+            else:
+                found = "an empty cell" if np.isnan(vals[i]) else _show(raw.iloc[i])
             raise InputError(
                 f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
                 f"expected a finite number, found {found}"
@@ -303,11 +409,35 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int) -> 
     return vals
 
 
+def _escape(ch: str) -> str:
+    if ch == "\\":
+        return "\\\\"
+    if ch.isprintable() or ch == " ":
+        return ch
+    return {"\n": "\\n", "\r": "\\r", "\t": "\\t"}.get(ch) or repr(ch)[1:-1]
+
+
 def _show(text, limit: int = 60) -> str:
-    """A label or cell for a one-line message: quoted, newlines escaped, long text cut."""
+    """A label or cell for a one-line message: quoted, long text cut, and every character that is not
+    printable escaped as Python writes it (newlines, and the vertical tab, U+2028 and others that
+    end a line too)."""
     text = str(text)
     cut = text if len(text) <= limit else text[: limit - 1] + "…"
-    return "'" + cut.replace("\\", "\\\\").replace("\n", "\\n").replace("\r", "\\r") + "'"
+    return "'" + "".join(_escape(ch) for ch in cut) + "'"
+
+
+def _show_bytes(data: bytes, limit: int = 60) -> str:
+    """Bytes for a one-line message, escaped as Python writes them, cut around the first byte that is
+    not UTF-8."""
+    data = data.rstrip(b"\r\n")
+    try:
+        data.decode("utf-8")
+        start = 0
+    except UnicodeDecodeError as exc:
+        start = exc.start
+    lo = max(0, start - limit // 2)
+    cut = data[lo:lo + limit]
+    return ("…" if lo else "") + repr(cut) + ("…" if lo + limit < len(data) else "")
 
 
 def unicode_twins(labels) -> tuple[str, str] | None:
@@ -379,7 +509,134 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, str
     return labels
 
 
+# ---------------------------------------------------------------------------------------------
+# group-level columns (predictors): one value per group
+
+
+def cell_text(x) -> str | None:
+    """A group-level cell as text: text as it is (blanks around it dropped), a whole number as digits ('2', also for
+    2.0), another number by its shortest repr; None for an empty or missing cell."""
+    if x is None:
+        return None
+    if isinstance(x, (bool, np.bool_)):
+        return str(bool(x)).lower()
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
+    if isinstance(x, (float, np.floating)):
+        x = float(x)
+        if not np.isfinite(x):
+            return None
+        return str(int(x)) if x.is_integer() and abs(x) < 2**53 else repr(x)
+    try:
+        if pd.isna(x):
+            return None
+    except (TypeError, ValueError):
+        pass
+    text = str(x).strip()
+    return text or None
+
+
+def _same_number(a: str, b: str) -> bool:
+    """'5' and '5.0' (or '1e1' and '10'): different text, the same number."""
+    try:
+        return float(a) == float(b)
+    except ValueError:
+        return False
+
+
+def _column_text(raw: pd.Series, source: str, column: str, row_offset: int) -> np.ndarray:
+    """A group-level column of a chunk as text per row (cell_text); an empty cell or a control character is
+    refused, naming the row."""
+    if raw.dtype.kind in "fiub":
+        values = [cell_text(x) for x in raw.to_numpy()]
+    else:
+        text = _as_text(raw, source, column, row_offset)
+        values = [None if x is pd.NA or x is None else (x.strip() or None) for x in text.to_numpy(dtype=object)]
+    out = np.empty(len(values), dtype=object)
+    for i, x in enumerate(values):
+        if x is None:
+            raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a "
+                             "value of the group-level column, found an empty cell")
+        out[i] = x
+    distinct = pd.unique(out)
+    bad = [x for x in distinct if re.search(_BAD_LABEL_CHARS, x)]
+    if bad:
+        i = int(np.flatnonzero(out == bad[0])[0])
+        ch = re.search(_BAD_LABEL_CHARS, bad[0]).group()
+        raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected text, "
+                         f"found the control character U+{ord(ch):04X}")
+    return out
+
+
+class _PerGroup:
+    """The value of each group-level column per group, read row by row (chunks of a long table): the first value
+    of a group and its row are kept, and a later row of the same group with another value is refused, naming the
+    group, both rows and both values (numbers written two ways, '5' and '5.0', count as one value)."""
+
+    def __init__(self, names, source: str):
+        self.names = tuple(names)
+        self.source = source
+        self.first: dict[str, dict[str, tuple[str, int]]] = {name: {} for name in self.names}
+
+    def add(self, labels: pd.Series, df: pd.DataFrame, row_offset: int) -> None:
+        labs = np.asarray(labels.to_numpy(), dtype=object)
+        for name in self.names:
+            text = _column_text(df[name], self.source, name, row_offset)
+            pairs = pd.DataFrame({"g": labs, "v": text})
+            first = ~pairs.duplicated(["g", "v"]).to_numpy()  # only distinct (group, value) pairs need a look
+            seen = self.first[name]
+            for i in np.flatnonzero(first):
+                g, v = labs[i], text[i]
+                prev = seen.get(g)
+                if prev is None:
+                    seen[g] = (v, row_offset + int(i) + 1)
+                elif prev[0] != v and not _same_number(prev[0], v):
+                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(g)}: a "
+                                     f"group-level column must hold one value per group; found {_show(prev[0])} in "
+                                     f"row {prev[1]} and {_show(v)} in row {row_offset + int(i) + 1}")
+
+    def values(self, labels) -> dict[str, list[str]]:
+        return {name: [self.first[name][lab][0] for lab in labels] for name in self.names}
+
+
+def _one_row_columns(data: pd.DataFrame, labels: pd.Series, names, source: str) -> dict[str, list[str]]:
+    """Group-level columns of a table with one row per group (summaries, estimates)."""
+    out = {}
+    for name in names:
+        out[name] = list(_column_text(data[name], source, name, 0))
+    return out
+
+
+def _check_column_names(group_columns, taken, source: str):
+    """Group-level columns must be named once and differ from the columns that hold the statistics."""
+    names = [str(c) for c in group_columns]
+    for c in names:
+        if names.count(c) > 1:
+            raise InputError(f"bad options: the group-level column '{c}' is named twice")
+        if c in taken:
+            raise InputError(f"bad options: '{c}' is the column of the {taken[c]}; a group-level column must be "
+                             "another column")
+    return tuple(names)
+
+
+_OPTION = {"group": "--group", "value": "--value", "size": "--size", "mean": "--mean", "standard deviation": "--sd",
+           "estimate": "--estimate", "standard error": "--std-error"}
+
+
+def _check_distinct(wanted: dict[str, str]) -> None:
+    """One column per role: the same column for the group and the value (or the size and the mean) is
+    a slip in the options, not a table to read."""
+    seen: dict[str, str] = {}
+    for role, col in wanted.items():
+        if col in seen:
+            first = seen[col]
+            raise InputError(f"bad options: the {first} column ({_OPTION.get(first, first)}) and the {role} column "
+                             f"({_OPTION.get(role, role)}) are both '{col}'; each needs a column of its own")
+        seen[col] = role
+
+
 def _require_columns(columns, wanted: dict[str, str], source: str):
+    _check_distinct(wanted)
     cols = [str(c) for c in columns]
     for role, col in wanted.items():
         if col not in cols:
@@ -389,25 +646,38 @@ def _require_columns(columns, wanted: dict[str, str], source: str):
             raise InputError(f"bad input in {_where(source)}: the column name '{col}' appears {cols.count(col)} times in the header")
 
 
-def from_frame(df: pd.DataFrame, group: str, value: str, source: str = "<frame>") -> GroupStats:
-    """Statistics of a long table: one row per measurement, a group column and a value column.
+def from_frame(df: pd.DataFrame, group: str, value: str, source: str = "<frame>", group_columns=()) -> GroupStats:
+    """Statistics of a long table: one row per measurement, a group column and a value column (and
+    `group_columns` that hold one value per group, as in read_table).
 
     >>> import pandas as pd
     >>> s = from_frame(pd.DataFrame({"lab": ["a", "a", "b"], "y": [1.0, 3.0, 2.0]}), "lab", "y")
     >>> s.labels, s.n.tolist(), s.mean.tolist(), s.m2.tolist()
     (('a', 'b'), [2, 1], [2.0, 2.0], [2.0, 0.0])
     """
-    _require_columns(df.columns, {"group": group, "value": value}, source)
+    extra = _check_column_names(group_columns, {group: "group labels", value: "measurements"}, source)
+    _require_columns(df.columns, {"group": group, "value": value, **_roles([], extra)}, source)
     if len(df) == 0:
         raise InputError(f"bad input in {_where(source)}: no data rows")
     labels_raw = _check_groups(df[group], source, group, 0)
     vals = _check_values(df[value], source, value, 0)
     unit = choose_unit(vals)
     labels, n, hi, lo, m2 = _reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals)
-    return GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source)
+    out = GroupStats(labels, n.astype(np.int64), hi, m2, mean_lo=lo, unit=unit, source=source)
+    if extra:
+        per_group = _PerGroup(extra, source)
+        per_group.add(labels_raw, df, 0)
+        out = out.with_columns(per_group.values(labels))
+    return out
 
 
 def _sha256_file(path: Path) -> str:
+    try:
+        known = _SCANNED.get(_file_key(path))
+    except OSError:
+        known = None
+    if known is not None:
+        return known
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(1 << 20), b""):
@@ -415,15 +685,38 @@ def _sha256_file(path: Path) -> str:
     return h.hexdigest()
 
 
+_KINDS = [(stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"),
+          (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket")]
+
+
 def _open_check(path) -> Path:
     path = Path(path)
-    if not path.exists():
-        raise InputError(f"bad input: the file '{path}' does not exist")
-    if path.is_dir():
+    if "\x00" in str(path):
+        raise InputError("bad input: the file's name holds a NUL character, which no file system allows")
+    try:
+        st = os.stat(path)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise InputError(f"bad input: '{path}' is a symbolic link that loops (it leads back to itself); "
+                             "expected a CSV or Parquet file") from None
+        if exc.errno == errno.ENAMETOOLONG:
+            raise InputError(f"bad input: the file name '{_show(str(path), 40)[1:-1]}' is too long for the file "
+                             "system") from None
+        if exc.errno == errno.ENOENT and os.path.islink(path):
+            raise InputError(f"bad input: '{path}' is a symbolic link to '{os.readlink(path)}', which does not "
+                             "exist") from None
+        if exc.errno in (errno.ENOENT, errno.ENOTDIR):
+            raise InputError(f"bad input: the file '{path}' does not exist") from None
+        raise InputError(f"bad input: the file '{path}' cannot be read ({exc.strerror or exc})") from None
+    if stat.S_ISDIR(st.st_mode):
         raise InputError(f"bad input: '{path}' is a folder, expected a CSV or Parquet file")
+    if not stat.S_ISREG(st.st_mode):
+        kind = next((what for test, what in _KINDS if test(st.st_mode)), "not a regular file")
+        raise InputError(f"bad input: '{path}' is {kind}, not a regular file; expected a CSV or Parquet file "
+                         "(copy the data into a file first)")
     if not os.access(path, os.R_OK):
         raise InputError(f"bad input: the file '{path}' cannot be read (permission denied)")
-    if path.stat().st_size == 0:
+    if st.st_size == 0:
         raise InputError(f"bad input in '{path}': the file is empty")
     return path
 
@@ -458,31 +751,129 @@ def _sniff_delimiter(path: Path, encoding: str, columns=()) -> str:
         return best if counts[best] > 0 else candidates[0]
 
 
+def check_encoding(encoding: str) -> str:
+    """A text encoding that Python knows, or one line saying it is not."""
+    try:
+        info = codecs.lookup(encoding)
+    except (LookupError, TypeError, ValueError):
+        info = None
+    # bytes-to-bytes codecs (base64, zlib, rot13) are known to Python but are no text encoding; open()
+    # refuses them by this same attribute of the codec's record
+    if info is None or not getattr(info, "_is_text_encoding", True):
+        raise InputError(f"bad option --encoding: {_show(encoding)} is not a text encoding Python knows; for example "
+                         "utf-8, cp1252, latin-1, utf-16") from None
+    return encoding
+
+
+# SHA-256 of files scanned for their encoding, so that a read does not hash a file in a second pass:
+# keyed by path, size, modification time and inode
+_SCANNED: dict[tuple, str] = {}
+
+
+def _file_key(path: Path) -> tuple:
+    st = os.stat(path)
+    return (str(Path(path).resolve()), st.st_size, st.st_mtime_ns, st.st_ino)
+
+
+def _scan_utf8(path: Path) -> tuple[int, bytes] | None | bool:
+    """Read the whole file once (hashing it on the way). None: the whole file is UTF-8; False: some
+    lines are not UTF-8 and no non-ASCII line is (a legacy 8-bit file); else (line number, bytes) of
+    the first line that is not UTF-8 in a file whose other non-ASCII lines are."""
+    h = hashlib.sha256()
+    first_bad, some_utf8, line_no, carry = None, False, 0, b""
+    key = _file_key(path)
+    with open(path, "rb") as fh:
+        while True:
+            block = fh.read(1 << 20)
+            h.update(block)
+            data = carry + block
+            if block:
+                cut = data.rfind(b"\n") + 1
+                if cut == 0 and len(data) > (8 << 20):  # one very long line (or '\r' line ends): cut it
+                    cut = len(data) - 4  # at the start of a character, so that both halves decode alike
+                    while cut > 0 and 0x80 <= data[cut] <= 0xBF:
+                        cut -= 1
+                data, carry = data[:cut], data[cut:]
+            else:
+                carry = b""
+            if data and not data.isascii() and not (first_bad is not None and some_utf8):
+                try:
+                    data.decode("utf-8")
+                    some_utf8 = True
+                except UnicodeDecodeError:  # rare: look line by line
+                    for k, line in enumerate(data.split(b"\n")):
+                        if line.isascii():
+                            continue
+                        try:
+                            line.decode("utf-8")
+                            some_utf8 = True
+                        except UnicodeDecodeError:
+                            if first_bad is None:
+                                first_bad = (line_no + k + 1, line)
+            line_no += data.count(b"\n")
+            if not block:
+                break
+    if _file_key(path) == key:
+        _SCANNED[key] = h.hexdigest()
+        while len(_SCANNED) > 16:
+            _SCANNED.pop(next(iter(_SCANNED)))
+    if first_bad is None:
+        return None
+    return first_bad if some_utf8 else False
+
+
 def _detect_encoding(path: Path, encoding: str | None) -> str:
+    """The given encoding (checked), or the file's: a byte-order mark (UTF-32, UTF-16, UTF-8) decides;
+    otherwise UTF-8 when every line is UTF-8, Windows-1252 when no non-ASCII line is, and a file that is
+    UTF-8 except for some lines is refused, naming the first such line and its bytes."""
     if encoding:
-        return encoding
+        return check_encoding(encoding)
     with open(path, "rb") as fh:
         head = fh.read(1 << 20)
+    if head.startswith(b"\xff\xfe\x00\x00") or head.startswith(b"\x00\x00\xfe\xff"):
+        return "utf-32"  # checked before UTF-16: its little-endian mark starts the same way
     if head.startswith(b"\xff\xfe") or head.startswith(b"\xfe\xff"):
         return "utf-16"
     if b"\x00" in head:
         raise InputError(f"bad input in '{path}': the file is not a text table (it holds NUL bytes); expected a CSV "
-                         "or Parquet file (UTF-16 text without a byte-order mark: name it with --encoding utf-16)")
-    try:
-        head.decode("utf-8")
+                         "or Parquet file (UTF-16 or UTF-32 text without a byte-order mark: name it, for example "
+                         "--encoding utf-16)")
+    bad = _scan_utf8(path)
+    if bad is None:
         return "utf-8-sig"
-    except UnicodeDecodeError as exc:
-        if exc.start >= len(head) - 4:  # a character cut by the 1 MiB window
-            return "utf-8-sig"
+    if bad is False:
         return "cp1252"
+    line, data = bad
+    raise InputError(f"bad input in '{path}', line {line}: the file is UTF-8 except for this line, whose bytes "
+                     f"{_show_bytes(data)} are not (a line from another system, in Windows-1252?); correct the line, "
+                     "or name the encoding of the whole file with --encoding")
+
+
+def check_number_format(thousands: str | None, decimal: str | None) -> None:
+    """--thousands: one character that is neither a digit, a sign, an exponent letter nor the decimal mark."""
+    if thousands is not None and (len(thousands) != 1 or thousands.isalnum() or thousands in "+-"):
+        raise InputError(f"bad option --thousands: expected one separator character such as ',' '.' or \"'\"; "
+                         f"found {_show(thousands)}")
+    if thousands is not None and thousands == (decimal or "."):
+        raise InputError(f"bad options: the thousands separator and the decimal mark are both '{thousands}'")
+
+
+def _roles(columns, text_columns=()) -> dict[str, str]:
+    """Role -> column for the header check: the first columns by their roles, group-level columns by name."""
+    roles = dict(zip(("group", "value", "extra", "extra2"), [c for c in columns if c not in text_columns]))
+    roles.update({f"group-level '{c}'": c for c in text_columns})
+    return roles
 
 
 def iter_table_chunks(path, columns: list[str], encoding: str | None = None, delimiter: str | None = None,
-                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None):
+                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None,
+                      text_columns=()):
     """Yield (row_offset, DataFrame) chunks holding `columns` of a CSV or Parquet file.
 
     `thousands` is a digit-group separator inside numbers (for example ","), `decimal` the decimal mark
     (default "."). A CSV row with more fields than the header is refused rather than read shifted.
+    `text_columns` (some of `columns`, after the first) are read as text (group-level columns), the others
+    after the first as numbers.
     """
     path = _open_check(path)
     src = str(path)
@@ -493,22 +884,38 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             pf = pq.ParquetFile(path)
         except Exception as exc:  # pyarrow raises several types for a damaged file
             raise InputError(f"bad input in '{src}': not a readable Parquet file ({_one_line(exc)})") from None
-        _require_columns(pf.schema_arrow.names, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
+        _require_columns(pf.schema_arrow.names, _roles(columns, text_columns), src)
         offset = 0
-        for batch in pf.iter_batches(batch_size=chunk_rows, columns=columns):
-            df = batch.to_pandas()
-            yield offset, df
-            offset += len(df)
+        batches = pf.iter_batches(batch_size=chunk_rows, columns=columns)
+        try:
+            while True:
+                try:
+                    batch = next(batches, None)
+                    df = None if batch is None else batch.to_pandas()
+                except Exception as exc:  # damaged pages: pyarrow raises ArrowInvalid, OSError and others
+                    raise InputError(f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} "
+                                     f"cannot be read ({_one_line(exc)[:200]})") from None
+                if df is None:
+                    break
+                _check_parquet_text(batch, src, offset)
+                yield offset, df
+                offset += len(df)
+        finally:
+            pf.close()
+        if offset == 0:
+            raise InputError(f"bad input in '{src}': the Parquet file has the columns but no rows")
         return
     enc = _detect_encoding(path, encoding)
-    if thousands is not None and thousands == (decimal or "."):
-        raise InputError(f"bad options: the thousands separator and the decimal mark are both '{thousands}'")
+    check_number_format(thousands, decimal)
+    if delimiter is not None and (len(delimiter) != 1 or delimiter in "\r\n\"" or delimiter.isalnum()):
+        raise InputError(f"bad option --delimiter: expected one separator character such as ',' ';' '|' or a tab; "
+                         f"found {_show(delimiter)}")
     try:
         sep = delimiter or _sniff_delimiter(path, enc, columns)  # "1,5" with a comma separator works when quoted
         raw_header, first_row = _first_rows(path, enc, sep)
         if raw_header is None:
             raise InputError(f"bad input in '{src}': the file has no header and no data")
-        _require_columns(raw_header, dict(zip(("group", "value", "extra", "extra2"), columns)), src)
+        _require_columns(raw_header, _roles(columns, text_columns), src)
         if first_row is not None and any(c.strip() for c in first_row[len(raw_header):]):
             # pandas would take the surplus as an index and shift every column by one
             raise InputError(f"bad input in '{src}', row 1: expected {len(raw_header)} fields as in the header, found "
@@ -516,7 +923,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
         header = list(pd.read_csv(path, sep=sep, nrows=0, encoding=enc, skipinitialspace=True).columns)
         names = [str(c).strip() for c in header]
         where = [names.index(c) for c in columns]
-        numeric = [header[i] for i in where[1:]]
+        numeric = [header[i] for i in where[1:] if names[i] not in text_columns]
         # every other column is read as text: no type guessing, no mixed-type warnings
         text = {c: str for c in header if c not in numeric}
         rows = chunk_rows if len(header) <= 8 else max(1, chunk_rows * 8 // len(header))
@@ -525,36 +932,76 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             na_values={c: _MISSING for c in numeric}, skip_blank_lines=True, encoding=enc, chunksize=rows,
             thousands=thousands, decimal=decimal or ".", skipinitialspace=True,
         )
-    except UnicodeDecodeError:
-        raise InputError(f"bad input in '{src}': the text is not in the {enc} encoding; name it with --encoding") from None
+    except UnicodeError as exc:
+        raise InputError(_encoding_message(src, enc, exc)) from None
     except pd.errors.EmptyDataError:
         raise InputError(f"bad input in '{src}': the file has no header and no data") from None
     except pd.errors.ParserError as exc:
         raise InputError(_parser_message(src, exc, sep)) from None
     offset = 0
     chunks = iter(reader)
-    while True:
-        try:
-            with warnings.catch_warnings():
-                # a trailing separator on the first data row: checked above, the surplus is empty
-                warnings.simplefilter("ignore", pd.errors.ParserWarning)
-                df = next(chunks)
-        except StopIteration:
-            break
-        except UnicodeDecodeError:
-            raise InputError(f"bad input in '{src}': the text is not in the {enc} encoding; name it with --encoding") from None
-        except pd.errors.ParserError as exc:
-            raise InputError(_parser_message(src, exc, sep)) from None
-        df = df.iloc[:, where]
-        df.columns = list(columns)
-        yield offset, df
-        offset += len(df)
+    try:  # the reader holds the file open: closed however the caller stops (closing() in read_table)
+        while True:
+            try:
+                with warnings.catch_warnings():
+                    # a trailing separator on the first data row: checked above, the surplus is empty
+                    warnings.simplefilter("ignore", pd.errors.ParserWarning)
+                    df = next(chunks)
+            except StopIteration:
+                break
+            except UnicodeError as exc:
+                raise InputError(_encoding_message(src, enc, exc)) from None
+            except pd.errors.ParserError as exc:
+                raise InputError(_parser_message(src, exc, sep)) from None
+            df = df.iloc[:, where]
+            df.attrs["pooling_csv"] = (src, enc, sep, header[where[-1]] if len(where) == 2 else None)
+            df.columns = list(columns)
+            yield offset, df
+            offset += len(df)
+    finally:
+        reader.close()
     if offset == 0:
         raise InputError(f"bad input in '{src}': a header but no data rows")
 
 
+def _check_parquet_text(batch, src: str, offset: int) -> None:
+    """pyarrow reads string pages without checking them: a damaged page can hold bytes that are not
+    UTF-8, which fail later, anywhere. Check every text column of the batch here (a fast full check)."""
+    import pyarrow as pa
+
+    for name, column in zip(batch.schema.names, batch.columns):
+        if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
+            try:
+                column.validate(full=True)
+            except (pa.ArrowInvalid, pa.ArrowException) as exc:
+                raise InputError(f"bad input in '{src}', column '{name}', rows {offset + 1} to {offset + len(column)}: "
+                                 f"text that is not valid UTF-8, a damaged Parquet file? ({_one_line(exc)[:120]})"
+                                 ) from None
+
+
 def _one_line(exc) -> str:
     return " ".join(str(exc).split())
+
+
+def _encoding_message(src: str, enc: str, exc: UnicodeError) -> str:
+    what = getattr(exc, "reason", None) or _one_line(exc)
+    return f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
+
+
+def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:
+    """The text of one cell of a CSV as it stands in the file (data row `row`, 1-based), read again
+    with every cell as text: for messages only, on the error path."""
+    try:
+        with pd.read_csv(src, sep=sep, dtype=str, keep_default_na=False, index_col=False, usecols=[column],
+                         skip_blank_lines=True, encoding=enc, chunksize=100_000, skipinitialspace=True) as reader:
+            seen = 0
+            for chunk in reader:
+                if seen + len(chunk) >= row:
+                    return str(chunk.iloc[row - seen - 1, 0])
+                seen += len(chunk)
+    except Exception:  # a message helper: the caller falls back to the parsed value
+        return None
+    return None
 
 
 def _parser_message(src: str, exc, sep: str) -> str:
@@ -592,46 +1039,75 @@ def _first_rows(path: Path, enc: str, sep: str) -> tuple[list[str] | None, list[
 
 
 def read_table(path, group: str, value: str, *, encoding: str | None = None, delimiter: str | None = None,
-               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None) -> GroupStats:
+               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None,
+               group_columns=()) -> GroupStats:
     """Statistics of a long table in a CSV or Parquet file, read in chunks of `chunk_rows` rows.
 
     Peak memory grows with the number of groups and the chunk size, not with the file's rows.
-    Blanks around a group label in a CSV are not part of it.
+    Blanks around a group label in a CSV are not part of it. `group_columns`: columns that hold one value per
+    group (predictors such as a lab's method); a group whose rows disagree is refused, naming both rows.
     """
     src = str(path)
+    _check_distinct({"group": group, "value": value})
     running = _Running()
     unit = None
     csv_file = not _is_parquet(_open_check(path))
-    for offset, df in iter_table_chunks(path, [group, value], encoding, delimiter, chunk_rows, thousands, decimal):
-        labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
-        vals = _check_values(df[value], src, value, offset)
-        unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
-        running.add(*_reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals))
-    return running.stats(1.0 if unit is None else unit, src, _sha256_file(Path(path)))
+    extra = _check_column_names(group_columns, {group: "group labels", value: "measurements"}, src)
+    per_group = _PerGroup(extra, src) if extra else None
+    chunks = iter_table_chunks(path, [group, value, *extra], encoding, delimiter, chunk_rows, thousands, decimal,
+                               text_columns=extra)
+    with contextlib.closing(chunks):  # a refused chunk closes the file at once, not when collected
+        for offset, df in chunks:
+            labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
+            vals = _check_values(df[value], src, value, offset, written=_written(df))
+            unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
+            running.add(*_reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals))
+            if per_group is not None:
+                per_group.add(labels_raw, df, offset)
+    out = running.stats(1.0 if unit is None else unit, src, _sha256_file(Path(path)))
+    return out.with_columns(per_group.values(out.labels)) if per_group is not None else out
 
 
-def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None) -> pd.DataFrame:
-    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal)]
+def _written(df: pd.DataFrame):
+    """written(row) for _check_values: the value cell of a CSV as it stands in the file."""
+    where = df.attrs.get("pooling_csv")
+    if not where or where[3] is None:
+        return None
+    return lambda row: _cell_text(*where, row)
+
+
+def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None,
+                text_columns=()) -> pd.DataFrame:
+    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal,
+                                               text_columns=text_columns)]
     df = pd.concat(parts, ignore_index=True)
     if not _is_parquet(Path(path)):  # blanks around a label in a CSV are formatting, as in read_table
         df[columns[0]] = df[columns[0]].str.strip()
     return df
 
 
-def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", **read) -> GroupStats:
-    """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1).
+def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", group_columns=(),
+                   **read) -> GroupStats:
+    """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1), and
+    `group_columns` (predictors: one value per group).
 
     A group of one measurement has no sample sd, and tables write it as an empty cell: with n = 1 an empty sd
     is taken as it is meant (M2 = 0). Such a group informs its mean theta_j, not the within-group variance.
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
+    where = str(data) if not isinstance(data, pd.DataFrame) else source
+    extra = _check_column_names(group_columns, {group: "group labels", n: "sizes", mean: "means",
+                                                sd: "standard deviations"}, where)
+    _check_distinct({"group": group, "size": n, "mean": mean, "standard deviation": sd})
     if not isinstance(data, pd.DataFrame):
         source = str(data)
-        sha = _sha256_file(_open_check(data))
-        data = _read_whole(data, [group, n, mean, sd], **read)
+        _open_check(data)
+        data = _read_whole(data, [group, n, mean, sd, *extra], text_columns=extra, **read)
+        sha = _sha256_file(Path(source))
     else:
         sha = None
-    _require_columns(data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd}, source)
+    _require_columns(data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd,
+                                    **_roles([], extra)}, source)
     labels = _check_groups(data[group], source, group, 0)
     _check_unique(labels, source, group)
     nv = _check_values(data[n], source, n, 0)
@@ -642,16 +1118,19 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
         sd_cells = sd_cells.astype(object).where(~single_empty, 0.0)
     sv = _check_values(sd_cells, source, sd, 0)
     for i in range(len(nv)):
-        if nv[i] < 1 or nv[i] != np.round(nv[i]):
+        if nv[i] < 1 or nv[i] != np.round(nv[i]) or nv[i] > MAX_COUNT:
+            found = _show(data[n].iloc[i]) if nv[i] > MAX_COUNT else f"{nv[i]:g}"
             raise InputError(f"bad input in {_where(source)}, column '{n}', group {_show(labels.iloc[i])}: "
-                             f"expected a whole number of at least 1, found {nv[i]:g}")
+                             f"expected a whole number of at least 1 and at most 2^53 = {MAX_COUNT:.0f} (the counts "
+                             f"a double holds exactly), found {found}")
         if sv[i] < 0:
             raise InputError(f"bad input in {_where(source)}, column '{sd}', group {_show(labels.iloc[i])}: "
                              f"expected a standard deviation >= 0, found {sv[i]:g}")
     unit = choose_unit(mv, sv)
     mv, sv = mv / unit, sv / unit
     m2 = sv * sv * np.maximum(nv - 1, 0)
-    return GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
+    out = GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
+    return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
 
 
 def _empty_cells(col: pd.Series) -> np.ndarray:
@@ -663,18 +1142,25 @@ def _empty_cells(col: pd.Series) -> np.ndarray:
 
 
 def from_estimates(data, group: str, estimate: str, std_error: str, source: str = "<frame>",
-                   n: str | None = None, **read) -> GroupStats:
-    """Statistics for the `known` structure: one estimate and its standard error per group.
+                   n: str | None = None, group_columns=(), **read) -> GroupStats:
+    """Statistics for the `known` structure: one estimate and its standard error per group (and `group_columns`,
+    predictors: one value per group).
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
+    taken = {group: "group labels", estimate: "estimates", std_error: "standard errors", **({n: "sizes"} if n else {})}
+    extra = _check_column_names(group_columns, taken, str(data) if not isinstance(data, pd.DataFrame) else source)
     cols = [group, estimate, std_error] + ([n] if n else [])
+    _check_distinct(dict(zip(("group", "estimate", "standard error", "size"), cols)))
+    cols = cols + list(extra)
     if not isinstance(data, pd.DataFrame):
         source = str(data)
-        sha = _sha256_file(_open_check(data))
-        data = _read_whole(data, cols, **read)
+        _open_check(data)
+        data = _read_whole(data, cols, text_columns=extra, **read)
+        sha = _sha256_file(Path(source))
     else:
         sha = None
-    _require_columns(data.columns, {"group": group, "estimate": estimate, "standard error": std_error}, source)
+    _require_columns(data.columns, {"group": group, "estimate": estimate, "standard error": std_error,
+                                    **_roles([], extra)}, source)
     labels = _check_groups(data[group], source, group, 0)
     _check_unique(labels, source, group)
     est = _check_values(data[estimate], source, estimate, 0)
@@ -686,8 +1172,9 @@ def from_estimates(data, group: str, estimate: str, std_error: str, source: str 
                          f"expected a standard error > 0, found {se[i]:g}")
     nn = np.zeros(len(est), dtype=np.int64) if n is None else _check_values(data[n], source, n, 0).astype(np.int64)
     unit = choose_unit(est, se)
-    return GroupStats(tuple(labels), nn, est / unit, np.zeros(len(est)), se=se / unit, kind="known", unit=unit,
-                      source=source, file_sha256=sha)
+    out = GroupStats(tuple(labels), nn, est / unit, np.zeros(len(est)), se=se / unit, kind="known", unit=unit,
+                     source=source, file_sha256=sha)
+    return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
 
 
 def _check_unique(labels: pd.Series, source: str, column: str):

@@ -146,8 +146,10 @@ def wants_summary(problem: Problem, settings: Settings | None, choice=None) -> b
 
 
 def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bool = False,
-                  draw_cap: int = 4000) -> int:
-    """About how many bytes summary mode holds per run (accumulators and scratch), excluding the data."""
+                  draw_cap: int = 4000, levels: bool = False) -> int:
+    """About how many bytes summary mode holds per run (accumulators and scratch), excluding the data; levels:
+    ranks within the levels of categorical predictors (3 running sums, a bucket index and about two bucket
+    counts per group and chain)."""
     rows = (1 + (2 if within == "separate" else 0) + (1 if limits and within != "known" else 0)
             + (1 if J < BIAS_HIST_GROUPS else 0))
     count = 2 if draw_cap <= np.iinfo(np.uint16).max else 4
@@ -156,7 +158,7 @@ def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bo
     # shared: grid origin and widths and the rank -> rank-bin table
     rank_bins = len(rank_grid(J, RANK_BINS, RANK_EXACT)) - 1
     per_chain = (rows * (bins + 2) * count + rows * 16 + A.N_R * 8 + A.N_H * 4 + 4 + 8 + 8 * 8
-                 + rank_bins * count + 4)
+                 + rank_bins * count + 4 + (3 * 8 + 8 + 2 * 8 if levels else 0))
     return int(J * (chains * per_chain + rows * 24 + 4))
 
 
@@ -197,7 +199,8 @@ class _SummaryChain(_Chain):
             return
         m = setup.kept.shape[0]
         heavy = p.heavy
-        out = sk.KeptRows(np.empty((n_sweeps, sk.N_Y)), np.empty(n_sweeps), np.empty((n_sweeps, m)),
+        out = sk.KeptRows(np.empty((n_sweeps, sk.N_Y + d.X.shape[1])), np.empty(n_sweeps),
+                          np.empty((n_sweeps, m)),
                           np.empty((n_sweeps, m if p.within_code == 0 else 0)),
                           np.empty((n_sweeps, m if heavy else 0)),
                           np.empty((n_sweeps, m), dtype=np.int64))
@@ -216,7 +219,8 @@ class _SummaryChain(_Chain):
     def export_state(self) -> dict:
         # arrays, not lists: at a million groups a list of Python floats costs 30 bytes a number
         st = self.state
-        return {"state": st.scalars.copy(), "theta": st.theta.copy(), "sigma2": st.sigma2.copy(), "lam": st.lam.copy()}
+        return {"state": st.scalars.copy(), "theta": st.theta.copy(), "sigma2": st.sigma2.copy(), "lam": st.lam.copy(),
+                "beta": st.beta.copy()}
 
 
 @dataclass
@@ -238,10 +242,13 @@ class _Setup:
     rank_edges: np.ndarray | None = None  # (RB + 1,) rank grid: bin b holds ranks edges[b] .. edges[b + 1] - 1
     rank_bin: np.ndarray | None = None  # (J + 2,) the bin of each rank 1..J (0 and J + 1 unused)
     kept_reason: list[str] = field(default_factory=list)
+    lev: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))  # level of each group (predictors)
+    lev_off: np.ndarray = field(default_factory=lambda: np.zeros(1, dtype=np.int64))  # each level's first bucket
+    lev_bucket: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # each level's bucket (lo, 1/width)
 
     def frozen(self) -> sk.Shared:
         return sk.Shared(self.asked, self.cuts, int(self.k), self.logn, self.rowmap, self.glo, self.ginv, self.bucket,
-                         self.kept, self.rank_bin)
+                         self.kept, self.rank_bin, self.lev, self.lev_off, self.lev_bucket)
 
 
 def _rowmap(problem: Problem, asked: np.ndarray) -> np.ndarray:
@@ -300,6 +307,28 @@ def _rank_buckets(sh: _Setup, x_mean: np.ndarray, x_sd: np.ndarray) -> int:
     return G
 
 
+def _level_buckets(sh: _Setup, problem: Problem, x_mean: np.ndarray, x_sd: np.ndarray) -> None:
+    """Buckets for the ranks within levels: per level max(1024, its groups) equal buckets over the range its groups
+    can reach (as _rank_buckets does for all groups)."""
+    des = problem.design
+    if des is None or not des.level_names:
+        return
+    lev = des.level_of
+    L = len(des.level_names)
+    sizes = np.bincount(lev, minlength=L)
+    G = np.maximum(1024, sizes)
+    sh.lev = np.ascontiguousarray(lev, dtype=np.int64)
+    sh.lev_off = np.concatenate([[0], np.cumsum(G)]).astype(np.int64)
+    sh.lev_bucket = np.empty((L, 2))
+    for i in range(L):
+        sel = lev == i
+        lo = float(np.quantile(x_mean[sel] - REACH_SD * x_sd[sel], 1e-4))
+        hi = float(np.quantile(x_mean[sel] + REACH_SD * x_sd[sel], 1 - 1e-4))
+        if not hi > lo:
+            hi = lo + 1.0
+        sh.lev_bucket[i] = (lo, G[i] / (hi - lo))
+
+
 def rank_grid(J: int, bins: int = RANK_BINS, exact: int = RANK_EXACT) -> np.ndarray:
     """Integer edges 1 = e_0 < ... < e_B = J + 1 of the rank grid: unit bins for ranks 1..exact, then
     geometric (rounded, duplicates dropped) up to J; every rank its own bin when J <= bins."""
@@ -353,6 +382,7 @@ class Accumulated:
     within_sd: np.ndarray  # (chains, draws): sqrt(mean_j sigma_j^2), internal units (0 for known)
     rhist: np.ndarray | None = None  # (chains, J, rank bins): counts of each draw's lower rank bound
     wmax: np.ndarray | None = None  # (chains, J): largest bucket count - 1 seen
+    lrun: np.ndarray | None = None  # (chains, 3, J or 0): ranks within levels (summary_kernel.level_ranks)
 
 
 def sample_summary(problem: Problem, settings: Settings | None = None, options: ReportOptions | None = None,
@@ -399,6 +429,7 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
         x_mean, x_sd = sign * mean[sk.Q_THETA], sd[sk.Q_THETA]
         del mean, sd
         G = _rank_buckets(setup, x_mean, x_sd)
+        _level_buckets(setup, problem, x_mean, x_sd)
         setup.rank_edges = rank_grid(problem.J, RANK_BINS, RANK_EXACT)  # read at run time, so a test can shrink it
         rank_bin = (np.searchsorted(setup.rank_edges, np.arange(problem.J + 2), side="right") - 1).astype(np.int64)
         rank_bin[0], rank_bin[-1] = 0, len(setup.rank_edges) - 2
@@ -408,9 +439,13 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
         acc = _allocate(problem, settings, setup, G)
         for i, c in enumerate(chains):
             c.mode = "draw"
+            L = setup.lev_bucket.shape[0]
+            nb = int(setup.lev_off[-1])
             c.acc = sk.Acc(acc["run"][i], acc["hits"][i], acc["hist"][i], acc["ext"][i], acc["rhist"][i],
                            acc["wmax"][i], c.sg, np.zeros(G, dtype=np.int64), np.zeros(problem.J, dtype=np.int64),
-                           np.zeros(G, dtype=np.int64), np.zeros(1))
+                           np.zeros(G, dtype=np.int64), np.zeros(1), acc["lrun"][i], np.zeros(nb, dtype=np.int64),
+                           np.zeros(problem.J if L else 0, dtype=np.int64), np.zeros(nb, dtype=np.int64), np.zeros(L),
+                           np.zeros(L, dtype=np.int64))
         raw, rounds, have = draw_until_targets(chains, problem, settings, threads, bar, seed, start,
                                                lambda r: diagnose_raw(r, settings.targets), collect=_collect,
                                                timer=timer)
@@ -424,7 +459,7 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
     ranks = np.stack([np.concatenate([part["rank"] for part in c.parts], axis=0) for c in chains])
     sr = np.stack([np.concatenate([part["hyper"][:, sk.Y_SR] for part in c.parts]) for c in chains])
     return raw, Accumulated(acc["run"], acc["hits"], acc["hist"], acc["ext"], setup, have, grid, ranks, G, sr,
-                            acc["rhist"], acc["wmax"])
+                            acc["rhist"], acc["wmax"], acc["lrun"])
 
 
 def _allocate(problem: Problem, settings: Settings, sh: _Setup, G: int) -> dict:
@@ -435,7 +470,8 @@ def _allocate(problem: Problem, settings: Settings, sh: _Setup, G: int) -> dict:
     ext[..., 0], ext[..., 1] = np.inf, -np.inf
     return {"run": np.zeros((C, A.N_R, J)), "hits": np.zeros((C, A.N_H, J), dtype=np.uint32),
             "hist": np.zeros((C, rows, J, sh.bins + 2), dtype=count), "ext": ext,
-            "rhist": np.zeros((C, J, len(sh.rank_edges) - 1), dtype=count), "wmax": np.zeros((C, J), dtype=np.uint32)}
+            "rhist": np.zeros((C, J, len(sh.rank_edges) - 1), dtype=count), "wmax": np.zeros((C, J), dtype=np.uint32),
+            "lrun": np.zeros((C, 3, J if sh.lev.shape[0] else 0))}
 
 
 def _collect(chains, problem: Problem, seed, settings, rounds, start) -> RawDraws:
@@ -452,6 +488,7 @@ def _collect(chains, problem: Problem, seed, settings, rounds, start) -> RawDraw
         evals=stack("evals"), seed=seed, settings=settings, rounds=list(rounds),
         seconds=time.perf_counter() - start, final_states=[],
         df=hyper[:, :, sk.Y_DF] if heavy else None, lam=stack("lam") if heavy else None,
+        beta=np.ascontiguousarray(hyper[:, :, sk.N_Y:]) if problem.data.X.shape[1] else None,
     )
 
 
@@ -470,6 +507,7 @@ class SummaryFit:
     acc: Accumulated
     options: ReportOptions
     summary_options: SummaryOptions
+    without: object = None  # with group-level predictors: the same data fitted without them (pooling.fit)
 
     summary_mode = True
 

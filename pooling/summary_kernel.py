@@ -26,8 +26,14 @@ into a per-group histogram on one shared rank grid (unit bins for the first rank
 and keeps the largest bucket count - 1 seen, which bounds upper - lower in every draw; see
 rank_intervals. Kept groups: exact ranks each draw from their sorted values and one O(J) pass
 that counts how many kept values each group exceeds (a lookup table over the kept range).
+
+Ranks within levels (group-level categorical predictors): the same bucket count, one set of buckets per level
+(max(1024, groups of the level) of them, placed after warm-up), gives each group's mid-rank among the groups of
+its level and the half-width that bounds its error; P(best in the level) is an exact count (the largest value of
+each level, a stable first-wins scan as for P(best)).
 """
 from __future__ import annotations
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 from typing import NamedTuple
@@ -61,11 +67,16 @@ class Shared(NamedTuple):
     bucket: np.ndarray
     kept: np.ndarray
     rank_bin: np.ndarray
+    lev: np.ndarray = np.zeros(0, dtype=np.int64)
+    lev_off: np.ndarray = np.zeros(1, dtype=np.int64)
+    lev_bucket: np.ndarray = np.zeros((0, 2))
 
 
 class Acc(NamedTuple):
     """One chain's running summaries and scratch: run (N_R, J), hits (N_H, J), hist (rows, J, B + 2),
-    ext (rows, J, 2), rhist (J, RB), wmax (J,); scratch sg (J,), bcnt (G,), bidx (J,), lobin (G,), count (1,)."""
+    ext (rows, J, 2), rhist (J, RB), wmax (J,); scratch sg (J,), bcnt (G,), bidx (J,), lobin (G,), count (1,).
+    Ranks within levels (empty without levels): lrun (3, J) sums of the mid-rank, of its half-width and the count
+    of being the best of the level; scratch lcnt and labove (all levels' buckets), lidx (J,), lbest and lbest_j (L,)."""
 
     run: np.ndarray
     hits: np.ndarray
@@ -78,10 +89,17 @@ class Acc(NamedTuple):
     bidx: np.ndarray
     lobin: np.ndarray
     count: np.ndarray
+    lrun: np.ndarray = np.zeros((3, 0))
+    lcnt: np.ndarray = np.zeros(0, dtype=np.int64)
+    lidx: np.ndarray = np.zeros(0, dtype=np.int64)
+    labove: np.ndarray = np.zeros(0, dtype=np.int64)
+    lbest: np.ndarray = np.zeros(0)
+    lbest_j: np.ndarray = np.zeros(0, dtype=np.int64)
 
 
 class KeptRows(NamedTuple):
-    """Stored rows of one chain: hyper (rows, N_Y), evals (rows,), and the kept groups' theta, sigma,
+    """Stored rows of one chain: hyper (rows, N_Y + p: the predictors' coefficients after the fixed columns),
+    evals (rows,), and the kept groups' theta, sigma,
     lambda and exact rank (rows, m) (sigma and lambda have 0 columns when the model has none per group)."""
 
     hyper: np.ndarray
@@ -123,7 +141,7 @@ def pilot(rng, n_sweeps, d, st, wk, sg, asked, logn, bias_on, limits, count, mea
             mean[Q_THETA, j] += dl * inv
             msq[Q_THETA, j] += dl * (x - mean[Q_THETA, j])
             if bias_on:
-                x = st.theta[j] - st.scalars[MU]
+                x = st.theta[j] - A.centre_of(st.scalars[MU], d.X, st.beta, j)
                 dl = x - mean[Q_BIAS, j]
                 mean[Q_BIAS, j] += dl * inv
                 msq[Q_BIAS, j] += dl * (x - mean[Q_BIAS, j])
@@ -237,7 +255,7 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
         tau2 = math.exp(2.0 * eta)
         mu = sc[MU]
         cut = sh.cuts[int(sc[DF_IDX])] if heavy else 0.0
-        A.accumulate(d.within, d.n, d.v_known, mu, tau2, theta, sg, st.lam, cut, asked, inv, run, hits)
+        A.accumulate(d.within, d.n, d.v_known, mu, tau2, theta, sg, st.lam, cut, asked, inv, run, hits, d.X, st.beta)
         row = it
         h = out.hyper
         h[row, Y_MU] = mu
@@ -246,6 +264,8 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
         h[row, Y_NU] = d.nu_grid[int(sc[NU_IDX])] if d.within == 0 else 0.0
         h[row, Y_SIGMA] = sg[0] if d.within == 1 else 0.0
         h[row, Y_DF] = d.df_grid[int(sc[DF_IDX])] if heavy else math.inf
+        for a_ in range(st.beta.shape[0]):  # the predictors' coefficients follow the fixed columns
+            h[row, N_Y + a_] = st.beta[a_]
         out.evals[row] = ev
         # kept groups first: their sorted values set up the exact-rank lookup for the pass over J
         for i in range(m):
@@ -279,7 +299,7 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
             th = theta[j]
             _hist_add(hist, ext, glo, ginv, 0, j, th, B)
             if r_bias >= 0:
-                _hist_add(hist, ext, glo, ginv, r_bias, j, th - mu, B)
+                _hist_add(hist, ext, glo, ginv, r_bias, j, th - A.centre_of(mu, d.X, st.beta, j), B)
             if d.within == 0:
                 s = sg[j]
                 s2_sum += s * s
@@ -355,6 +375,50 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
         for r in range(m, 0, -1):
             cum += poscnt[r]
             out.rank[row, order[r - 1]] = 1 + cum
+        if sh.lev.shape[0] > 0:
+            level_ranks(theta, sign, sh, acc)
+
+
+@njit(nogil=True, cache=True)
+def level_ranks(theta, sign, sh, acc):
+    """One draw's ranks within levels (see the module notes): each group counted into its level's buckets, then
+    its mid-rank among its level and the half-width added to acc.lrun, and each level's best group counted."""
+    lev, off, lb = sh.lev, sh.lev_off, sh.lev_bucket
+    L = lb.shape[0]
+    lcnt, lidx, labove = acc.lcnt, acc.lidx, acc.labove
+    for b in range(lcnt.shape[0]):
+        lcnt[b] = 0
+    for i in range(L):
+        acc.lbest[i] = -np.inf
+        acc.lbest_j[i] = -1
+    for j in range(theta.shape[0]):
+        i = lev[j]
+        x = sign * theta[j]
+        G = off[i + 1] - off[i]
+        u = (x - lb[i, 0]) * lb[i, 1]
+        if u < 0.0:
+            b = 0
+        elif u >= G:
+            b = G - 1
+        else:
+            b = int(u)
+        lidx[j] = off[i] + b
+        lcnt[off[i] + b] += 1
+        if x > acc.lbest[i]:  # strict: among equal values the first group wins
+            acc.lbest[i] = x
+            acc.lbest_j[i] = j
+    for i in range(L):
+        cum = 0
+        for b in range(off[i + 1] - 1, off[i] - 1, -1):
+            labove[b] = cum
+            cum += lcnt[b]
+        if acc.lbest_j[i] >= 0:
+            acc.lrun[2, acc.lbest_j[i]] += 1.0
+    for j in range(theta.shape[0]):
+        b = lidx[j]
+        c = lcnt[b]
+        acc.lrun[0, j] += labove[b] + 0.5 * (c + 1)
+        acc.lrun[1, j] += 0.5 * (c - 1)
 
 
 @njit(nogil=True, cache=True)

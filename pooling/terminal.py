@@ -89,6 +89,8 @@ def print_results(res, out, stream=None) -> None:
         flagged = tl["outlying"]
         names = ", ".join(_clip(x, 20) for x in flagged[:5]) + (" ..." if len(flagged) > 5 else "")
         w(f"heavy tails: {df_txt}; {plural(len(flagged), noun)} flagged outlying" + (f": {names}" if flagged else ""))
+    if res.predictors is not None:
+        print_predictors(res, num, lvl, w)
     # the groups: best first, or for labs in a round the largest bias first
     if o.interlab:
         order = np.argsort(-np.abs(t["bias_mean"].to_numpy(dtype=float)), kind="stable")
@@ -98,6 +100,8 @@ def print_results(res, out, stream=None) -> None:
     lo, hi = res.col("theta_low"), res.col("theta_high")
     known = st.kind == "known"
     cols = [(noun, 24, "<"), ("n", 7, ">")] if not known else [(noun, 24, "<")]
+    if "level" in t:
+        cols.insert(1, ("level", 14, "<"))
     cols += [("own mean", 14, ">"), ("posterior", 14, ">"), (f"{lvl} interval", 31, ">")]
     cols += [("bias", 12, ">"), ("z", 8, ">")] if o.interlab else [("shrink", 8, ">"), ("P(best)", 8, ">")]
     if o.threshold is not None:
@@ -121,6 +125,8 @@ def print_results(res, out, stream=None) -> None:
         if len(order) > MAX_ROWS and i == MAX_ROWS // 2:
             w("...")
         cells = [_clip(t["group"].iat[j])]
+        if "level" in t:
+            cells.append(_clip(t["level"].iat[j], 13))
         if not known:
             cells.append(whole(t["n"].iat[j], "-").replace(",", ""))
         cells += [num(t["raw_mean"].iat[j]), num(t["theta_mean"].iat[j]), f"{num(t[lo].iat[j])} to {num(t[hi].iat[j])}"]
@@ -178,3 +184,37 @@ def print_results(res, out, stream=None) -> None:
             w(f"all groups, classic R-hat of theta: largest {rhat(cr['max'], '-')}, {whole(cr['above_1.01'])} at 1.01 "
               "or more")
     w(f"run folder: {out}" + (" (groups.csv has every group)" if res.mode == "summary" else ""))
+
+
+def print_predictors(res, num: Numbers, lvl: str, w) -> None:
+    """Why groups differ: each effect with its interval and P(> 0), the consensus value per level, and tau with and
+    without the predictors (the second from a fit of the same data without them, made by the same command)."""
+    pr = res.predictors
+    w()
+    w(f"why groups differ (group-level predictors; mu is {pr['mu_means']}):")
+    for c in pr["coefficients"]:
+        extra = 1 if c["kind"] == "category" else 2
+        w(f"  {_clip(c['name'], 30):32}{num(c['mean'], extra):>12}   {lvl} interval "
+          f"{num(c['low'], extra)} to {num(c['high'], extra)}   P(> 0) {prob(c['p_above_0'])}")
+    ref = {c["column"]: c["reference"] for c in pr["categories"]}
+    more = [c for c in pr["contrasts"] if c["b"] != ref[c["column"]]]
+    for c in more[:10]:
+        w(f"  {_clip(c['column'] + ': ' + c['a'] + ' vs ' + c['b'], 30):32}{num(c['mean'], 1):>12}   {lvl} interval "
+          f"{num(c['low'], 1)} to {num(c['high'], 1)}   P(> 0) {prob(c['p_above_0'])}")
+    if len(more) > 10:
+        w(f"  ... {len(more) - 10} more differences between levels in summary.json")
+    if pr["consensus"]:
+        shown = "; ".join(f"{_clip(c['level'], 16)} {num(c['mean'])} ({num(c['low'])} to {num(c['high'])})"
+                          for c in pr["consensus"][:6])
+        w(f"consensus value by level ({lvl} intervals): {shown}" + (" ..." if len(pr["consensus"]) > 6 else ""))
+    sp = pr["spread"]
+    tw = sp["tau_with"]
+    line = f"between-group spread tau: {num(tw['mean'])} ({num(tw['low'])} to {num(tw['high'])}) with the predictors"
+    if sp["tau_without"] is not None:
+        wo = sp["tau_without"]
+        share = sp["share_explained"]
+        line += (f", {num(wo['mean'])} ({num(wo['low'])} to {num(wo['high'])}) without them (a second fit of the same "
+                 "data, made by this command)")
+        if share is not None:
+            line += f"; they explain {100 * share:.0f}% of tau^2"
+    w(line)

@@ -57,8 +57,15 @@ def test_existing_folder_is_not_overwritten(run_cli, small_csv, tmp_path):
     code, _, err = _fit(run_cli, small_csv, out)
     assert code == 6 and "exists" in err and "--replace" in err
     assert (out / "keep.txt").read_text() == "mine"
+    # --replace takes only a run folder that pooling wrote (its marker): a folder of the user's is kept
     code, _, err = _fit(run_cli, small_csv, out, "--replace", "--max-draws", "300")
-    assert code in (0, 3) and (out / "summary.json").exists() and not (out / "keep.txt").exists()
+    assert code == 6 and "not a run folder written by pooling" in err
+    assert (out / "keep.txt").read_text() == "mine" and not (out / "summary.json").exists()
+    run = tmp_path / "run2"
+    assert _fit(run_cli, small_csv, run, "--max-draws", "300")[0] in (0, 3)
+    code, _, err = _fit(run_cli, small_csv, run, "--replace", "--max-draws", "300", "--seed", "2")
+    assert code in (0, 3) and (run / "summary.json").exists()
+    assert json.loads((run / "summary.json").read_text())["run"]["seed"] == 2
 
 
 def test_missed_targets_exit_3_with_results_written(run_cli, small_csv, tmp_path):

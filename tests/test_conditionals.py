@@ -619,7 +619,7 @@ def test_tail_step_draws(theta_shift):
     for i in range(draws):
         st.theta[:] = theta
         st.scalars[kernel.MU], st.scalars[kernel.ETA] = mu, eta
-        sz = kernel.fill_z2(st, wk.z2)
+        sz = kernel.fill_z2(d, st, wk, wk.z2)
         kernel.df_draw(rng, d, st.scalars, wk.z2, sz, wk.lpd)
         kernel.lambda_draw(rng, d, st, wk)
         ks[i] = int(st.scalars[kernel.DF_IDX])
@@ -674,7 +674,7 @@ def test_df_window_move_keeps_its_target():
         for _ in range(moves):
             st.theta[:] = theta
             st.scalars[kernel.MU], st.scalars[kernel.ETA] = mu, eta
-            sz = kernel.fill_z2(st, wk.z2)
+            sz = kernel.fill_z2(d, st, wk, wk.z2)
             kernel.df_draw(rng, d, st.scalars, wk.z2, sz, wk.lpd)
         finals[c] = int(st.scalars[kernel.DF_IDX])
     assert np.mean(finals != starts) > 0.3
@@ -742,7 +742,7 @@ def test_joint_df_tau_move_keeps_its_target(tau_prior):
         st.theta[:] = theta
         st.scalars[kernel.MU], st.scalars[kernel.ETA], st.scalars[kernel.DF_IDX] = mu, etas[c], ks[c]
         for _ in range(moves):
-            sz = kernel.fill_z2(st, wk.z2)
+            sz = kernel.fill_z2(d, st, wk, wk.z2)
             moved += kernel.df_tau_step(rng, d, st.scalars, wk.z2, sz)
         ks[c], etas[c] = int(st.scalars[kernel.DF_IDX]), st.scalars[kernel.ETA]
     assert moved > chains  # the move is accepted often enough to matter

@@ -23,3 +23,16 @@ def test_package_imports_lightly():
     code = "import sys, pooling.cli; print('numba' in sys.modules, 'arviz' in sys.modules)"
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert proc.stdout.split() == ["False", "False"], proc.stdout + proc.stderr
+
+
+def test_the_version_is_kept_in_one_place():
+    # pyproject.toml reads the version from pooling/__init__.py; the installed metadata and the module agree
+    import tomllib
+    from importlib.metadata import version
+    from pathlib import Path
+
+    import pooling
+
+    project = tomllib.loads((Path(__file__).resolve().parents[1] / "pyproject.toml").read_text())["project"]
+    assert "version" not in project and "version" in project["dynamic"]
+    assert version("pooling") == pooling.__version__

@@ -45,6 +45,9 @@ FILES = {
     "summary.csv": lambda: "lab,n,mean,sd\n" + "".join(f"L{j},{4 + j},{50 + 0.4 * j:.2f},{1 + 0.1 * j:.2f}\n" for j in range(7)),
     "estimates.csv": lambda: "site,effect,se\n" + "".join(f"S{j},{0.3 * (j % 4) - 0.2:.2f},{0.2 + 0.05 * j:.2f}\n" for j in range(9)),
 }
+FILES["labs.csv"] = lambda: "lab,method,age,fat\n" + "".join(
+    f"L{j:02d},{'AB'[j % 2]},{2 + j % 5},{26.4 + 0.3 * (j % 2) + 0.01 * (j % 5) + 0.05 * ((i * 7 + j) % 3 - 1):.3f}\n"
+    for j in range(10) for i in range(3))
 for day in range(1, 4):
     FILES[f"batch-2026-12-0{day}.csv"] = (lambda d=day: _long_table(group="supplier", value="strength", seed=d))
 

@@ -5,10 +5,10 @@
     report.rank_probabilities(fit)            # P(rank_j = r), groups by ranks
     report.pairwise(fit, ["S03", "S17"])      # P(theta_row > theta_column)
     report.interlab(fit, allowed_bias=5.0)    # consensus value, ISO 5725 components, bias, z-scores
-    report.write_report(fit, "folder", report.ReportOptions(k=5))  # groups.csv, summary.json, report.html
+    output.write_report(fit, "folder", ReportOptions(k=5))  # groups.csv, summary.json, report.html (pooling.output)
 
-Every function takes a `posterior.Fit`; group_table, interlab and write_report also take a summary-mode
-fit (every group's row); rank_probabilities needs every group's draws and refuses one.
+Every function takes a `posterior.Fit`; group_table and interlab also take a summary-mode fit (every
+group's row); rank_probabilities needs every group's draws and refuses one.
 """
 from __future__ import annotations
 
@@ -22,7 +22,7 @@ from .export import neutralise, records, safe_frame, write_csv
 from .interlab import algorithm_a, oneway_anova, random_effects_dl, z_scores, z_signal
 
 __all__ = [
-    "ReportOptions", "group_table", "rank_probabilities", "pairwise", "interlab", "render_html", "write_report",
+    "ReportOptions", "group_table", "rank_probabilities", "pairwise", "interlab", "render_html",
     "oneway_anova", "algorithm_a", "z_scores", "z_signal", "random_effects_dl", "neutralise", "records",
     "safe_frame", "write_csv", "split_compare",
 ]
@@ -66,7 +66,7 @@ def rank_probabilities(fit, best: str = "highest", groups=None, max_rank: int | 
     if rows is None and max_rank is None and J > 2000:
         raise InputError(f"rank_probabilities: {J} groups would make a {J} x {J} table; pass groups=[...] or max_rank=...")
     th = fit.raw.theta.reshape(-1, J)
-    mat = rank_matrix(rank_draws(th if best == "highest" else -th), rows, max_rank)
+    mat = rank_matrix(rank_draws(th, highest=best == "highest"), rows, max_rank)
     m = mat.shape[1] if max_rank is None or max_rank >= J else int(max_rank)
     cols = list(range(1, m + 1)) + ([f">{m}"] if mat.shape[1] > m else [])
     idx = [labels[j] for j in (range(J) if rows is None else rows)]
@@ -105,16 +105,3 @@ def render_html(res, created: str | None = None, command=None, changes: dict | N
     from .page import render
 
     return render(res, created, command, changes)
-
-
-def write_report(fit, folder, options: ReportOptions | None = None, command=None):
-    """Write groups.csv, summary.json and report.html into `folder` (created if absent; the files are replaced).
-    Returns the computed results. The run folder of the command line is written by pooling.output.write_run."""
-    from ..output import write_results_files
-    from ..results import compute
-
-    folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    res = compute(fit, options)
-    write_results_files(res, folder, command)
-    return res

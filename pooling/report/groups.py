@@ -11,8 +11,9 @@ def outside_fraction(theta, sigma, lower: float | None, upper: float | None) -> 
     for y_new ~ N(theta, sigma^2); a missing limit contributes nothing."""
     theta = np.asarray(theta, dtype=np.float64)
     out = np.zeros(np.broadcast_shapes(np.shape(theta), np.shape(sigma)))
-    if lower is not None:
-        out += ndtr((lower - theta) / sigma)
-    if upper is not None:
-        out += ndtr((theta - upper) / sigma)
+    with np.errstate(over="ignore"):  # a limit near 1e308: the z overflows to +-inf, and Phi(+-inf) is exact
+        if lower is not None:
+            out += ndtr((lower - theta) / sigma)
+        if upper is not None:
+            out += ndtr((theta - upper) / sigma)
     return out

@@ -19,7 +19,8 @@ from .. import __version__
 from ..asked import level_label
 from . import plots
 from .numbers import Values, plural, whole
-from .page import CAUTION, CSS, _fold, _table, esc, label
+from .page import CAUTION, CSS, _fold
+from .pieces import esc, html_table, label
 
 HISTORY_FILE = "history.html"  # the name a refit gives it in its run folder
 MAX_PANELS = 60  # groups drawn one by one; beyond, those whose decision changed, then those that moved most
@@ -154,7 +155,7 @@ def render_history(source: str, ledger, runs, created: str | None = None) -> str
              esc(str(b.changed_at or "")[:16].replace("T", " ")), esc(b.note or ""), whole(b.rows), whole(b.groups)]
             for b in ledger]
     parts.append('<section id="ledger"><h2>The batches</h2>' + _fold(
-        f"Every batch in the ledger ({whole(len(ledger))})", _table(
+        f"Every batch in the ledger ({whole(len(ledger))})", html_table(
             [("batch", False), ("dated", False), ("status", False), ("changed", False), ("note", False),
              ("measurements", True), ("groups", True)], rows), len(rows)) + "</section>")
     parts.append(f"<footer>Made by pooling {esc(__version__)} on {esc(created)} from the store's recorded runs."
@@ -295,7 +296,7 @@ def _runs_table(h: _Runs) -> str:
                      "–" if hl is None else f"{hl:g}",
                      '<span class="tag good">met</span>' if r.targets_met else '<span class="tag bad">missed</span>',
                      f'<span class="mono">{esc(r.folder)}</span>'])
-    table = _table([("run", False), ("as of", False), ("made", False), ("active batches", True), ("added", False),
+    table = html_table([("run", False), ("as of", False), ("made", False), ("active batches", True), ("added", False),
                     ("withdrawn", False), ("groups", True), ("half-life (days)", True), ("targets", False),
                     ("folder", False)], rows)
     return ('<section id="runs"><h2>The runs</h2>'

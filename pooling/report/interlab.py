@@ -30,7 +30,9 @@ def random_effects_dl(estimate, std_error) -> dict | None:
     tau^2 = max(0, (Q - (k - 1)) / (sum w - sum w^2 / sum w)); the consensus is the mean weighted by
     1/(se_j^2 + tau^2), with standard error (sum of those weights)^(-1/2); I^2 = max(0, (Q - df)/Q).
     Computed about the median and in units of the largest standard error, so that offsets of 1e9
-    and magnitudes of 1e-300 keep their digits. None with fewer than two estimates.
+    and magnitudes of 1e-300 keep their digits. None with fewer than two estimates, and None when the
+    weights or Q overflow double precision (standard errors some 1e150 times smaller than the spread
+    of the estimates, or than each other), where the moments cannot be formed.
     """
     x = np.asarray(estimate, dtype=np.float64)
     se = np.asarray(std_error, dtype=np.float64)
@@ -38,16 +40,20 @@ def random_effects_dl(estimate, std_error) -> dict | None:
     if k < 2:
         return None
     c, u = float(np.median(x)), float(np.max(se))
-    y, e = (x - c) / u, se / u
-    w = 1.0 / (e * e)
-    sw = float(w.sum())
-    mean_w = float((w * y).sum() / sw)
-    q = float((w * (y - mean_w) ** 2).sum())
-    df = k - 1
-    raw_tau2 = (q - df) / (sw - float((w * w).sum()) / sw)
-    tau2 = max(0.0, raw_tau2)
-    ws = 1.0 / (e * e + tau2)
-    sws = float(ws.sum())
+    # overflow is a possible outcome here, tested for below, not a fault to warn about
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        y, e = (x - c) / u, se / u
+        w = 1.0 / (e * e)
+        sw = float(w.sum())
+        mean_w = float((w * y).sum() / sw)
+        q = float((w * (y - mean_w) ** 2).sum())
+        df = k - 1
+        raw_tau2 = (q - df) / (sw - float((w * w).sum()) / sw)
+        tau2 = max(0.0, raw_tau2)
+        ws = 1.0 / (e * e + tau2)
+        sws = float(ws.sum())
+    if not (math.isfinite(q) and math.isfinite(sw) and math.isfinite(raw_tau2) and 0.0 < sws < math.inf):
+        return None
     mu = float((ws * y).sum() / sws)
     return {"consensus": c + u * mu, "consensus_se": u / math.sqrt(sws), "between_sd": u * math.sqrt(tau2),
             "truncated": bool(raw_tau2 < 0), "fixed_effect": c + u * mean_w, "fixed_effect_se": u / math.sqrt(sw),
@@ -78,7 +84,7 @@ def oneway_anova(n, mean, m2, mean_lo=None) -> dict | None:
     ssw = float(np.sum(m2))
     dfb, dfw = J - 1, N - J
     msb, msw = ssb / dfb, ssw / dfw
-    n0 = (N - float(np.sum(n * n)) / N) / dfb
+    n0 = float(np.sum(n * ((N - n) / N))) / dfb  # = (N - sum n^2 / N) / (J - 1), without the cancellation
     f = msb / msw if msw > 0 else math.inf
     p = float(fdtrc(dfb, dfw, f)) if math.isfinite(f) else 0.0  # P(F > f), F(dfb, dfw) tail
     s_l2 = max(0.0, (msb - msw) / n0)

@@ -15,7 +15,6 @@ written by report/svg.py, which escapes every text it draws.
 """
 from __future__ import annotations
 
-import html
 import time
 
 import numpy as np
@@ -25,6 +24,7 @@ from ..asked import level_label
 from ..results import Results, describe_column
 from . import plots
 from .numbers import Values, percent, plural, prob, prob_eq, rhat, sig, typical_sd, whole
+from .pieces import card, esc, html_table, interval_html, label
 from .plots import MANY, PAIRS_AS_TABLE, heat_hex
 
 ALL_ROWS = 200       # a full table up to this many groups; beyond, the first and last ALL_ROWS // 2 (groups.csv: all)
@@ -40,8 +40,6 @@ CAUTION = ("These are screening results: probabilities computed from the data an
            "use these numbers as evidence for them.")
 
 
-def esc(x) -> str:
-    return html.escape(str(x), quote=True)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -115,25 +113,6 @@ section{padding:4px 12px 10px}}
 """
 
 
-def _cell(c, num: bool) -> str:
-    return f'<td class="n">{c}</td>' if num else f"<td>{c}</td>"
-
-
-def _table(head: list[tuple[str, bool]], rows: list[list[str]], gap_after: int | None = None, hidden: int = 0) -> str:
-    """head: (title, numeric) pairs; cells are already escaped HTML. A gap row after row `gap_after` says how
-    many rows are left out (they are in groups.csv)."""
-    out = ["<table><thead><tr>"]
-    out += [f'<th class="n">{t}</th>' if num else f"<th>{t}</th>" for t, num in head]
-    out.append("</tr></thead><tbody>")
-    for i, r in enumerate(rows):
-        out.append("<tr>" + "".join(_cell(c, num) for c, (_, num) in zip(r, head)) + "</tr>")
-        if gap_after is not None and i == gap_after and hidden:
-            out.append(f'<tr class="gap"><td colspan="{len(head)}">… {whole(hidden)} more groups, in groups.csv …'
-                       "</td></tr>")
-    out.append("</tbody></table>")
-    return "".join(out)
-
-
 def _fold(summary: str, inner: str, rows: int | None = None, open_: bool = False, open_rows: int = OPEN_ROWS) -> str:
     """Content folded under a one-line summary; a table of at most `open_rows` rows is shown as it is."""
     if rows is not None and rows <= open_rows:
@@ -148,25 +127,10 @@ def _head_tail(order: np.ndarray) -> tuple[np.ndarray, int | None, int]:
     return np.concatenate([order[:h], order[-h:]]), h - 1, len(order) - 2 * h
 
 
-def _card(k: str, v: str, i: str = "") -> str:
-    return f'<div class="card"><div class="k">{k}</div><div class="v">{v}</div><div class="i">{i}</div></div>'
-
-
-def _iv(v, lo, hi, extra: int = 0) -> str:
-    """An interval that may wrap between its ends, never inside a number."""
-    return f'<span class="nw">{v(lo, extra)}</span> to <span class="nw">{v(hi, extra)}</span>'
-
-
 def _n(n) -> str:
     if not n > 0:
         return "–"
     return whole(n)
-
-
-def label(x, width: int = 40) -> str:
-    """A group label for prose (clipped); tables show it whole."""
-    x = str(x)
-    return x if len(x) <= width else x[: width - 1] + "…"
 
 
 SIDE_TONE = {"above": "open", "below": "open", "outside": "bad", "inside": "good", "over": "bad", "within": "good",
@@ -443,7 +407,7 @@ def _changes(ch: dict, v, res: Results) -> str:
         if crossings:
             rows = [[esc(c["group"]), esc(what), _tag(_undecided(c["then"])), _tag(_undecided(c["now"])),
                      prob(c.get(f"{key}_then")), prob(c.get(f"{key}_now"))] for what, c, key in crossings]
-            table = _table([("group", False), ("against", False), ("then", False), ("now", False),
+            table = html_table([("group", False), ("against", False), ("then", False), ("now", False),
                             ("P then", True), ("P now", True)], rows)
             parts.append(f"<p><strong>Decisions that changed: {whole(len(crossings))}.</strong> The probability is "
                          "P(above the threshold) or P(mean outside the limits), each from its own run.</p>"
@@ -462,7 +426,7 @@ def _changes(ch: dict, v, res: Results) -> str:
             rows = [[esc(r["group"]), f"{r['rank_then']:.1f}", f"{r['rank_now']:.1f}",
                      f"{'up' if r['move_up'] > 0 else 'down'} {abs(r['move_up']):.1f}",
                      prob(r.get("p_now_better_than_then_rank"))] for r in moves]
-            table = _table([("group", False), ("mean rank then", True), ("now", True), ("move", True),
+            table = html_table([("group", False), ("mean rank then", True), ("now", True), ("move", True),
                             ("P(rank now better than then)", True)], rows)
             parts.append(f"<p><strong>Ranks.</strong> {plural(len(moves), 'group')} moved one place or more in mean "
                          f"rank; the largest move: {esc(label(m['group']))} from {m['rank_then']:.1f} to "
@@ -477,7 +441,7 @@ def _changes(ch: dict, v, res: Results) -> str:
         lo, hi = int(np.argmin(w)), int(np.argmax(w))
         rows = [[esc(x["name"]), esc(str(x["dated_at"])[:10]), whole(x["rows"]), f"{x['weight']:.3f}",
                  whole(round(x["rows"] * x["weight"], 1))] for x in bl]
-        table = _table([("batch", False), ("dated", False), ("measurements", True), ("weight", True),
+        table = html_table([("batch", False), ("dated", False), ("measurements", True), ("weight", True),
                         ("counts as", True)], rows)
         parts.append(f"<p><strong>Forgetting.</strong> Older batches count less: a batch {sig(half)} days old counts "
                      f"half (weights at {esc(str(store.get('reference_at', ''))[:10])}). The weights run from "
@@ -523,13 +487,14 @@ def render(res: Results, created: str | None = None, command: list[str] | None =
         + (' · <strong class="flag">DIAGNOSTICS TARGETS MISSED</strong>' if not res.targets_met else "")
         + "</div></div></header>")
     sections = [("changes", "What changed"), ("verdict", "The answer"), ("pooled", "Pooled figures"),
-                ("groups", "Groups"), ("sides", _sides_title(o)), ("tails", "Outlying groups"),
+                ("groups", "Groups"), ("predictors", "Why groups differ"), ("sides", _sides_title(o)), ("tails", "Outlying groups"),
                 ("labs", "Laboratories"), ("order", "How sure is the order"), ("h2h", "Head to head"),
                 ("pull", "Pull toward the pool"), ("fitcheck", "Model checks"), ("health", "Run health"),
                 ("how", "How computed"), ("setup", "Model and data"), ("guide", "Column guide")]
     have = {"changes": changes is not None, "sides": o.threshold is not None or o.limits,
             "tails": res.tail is not None, "labs": o.interlab, "order": not summary and res.heat is not None,
-            "h2h": res.pairs is not None, "fitcheck": not summary, "how": summary}
+            "h2h": res.pairs is not None, "fitcheck": not summary, "how": summary,
+            "predictors": res.predictors is not None}
     add('<nav class="toc"><div class="wrap">' + "".join(
         f'<a href="#{a}">{b}</a>' for a, b in sections if have.get(a, True)) + "</div></nav>")
     add('<main class="wrap">')
@@ -538,6 +503,10 @@ def render(res: Results, created: str | None = None, command: list[str] | None =
     add(_verdict(res, v))
     add(_pooled(res, v, lvl))
     add(_groups(res, v, lvl, figs))
+    if have["predictors"]:  # group-level predictors: report/predictors.py
+        from .predictors import section
+
+        add(section(res, v, lvl, figs))
     if have["sides"]:
         add(_sides_section(res, v, lvl))
     if have["tails"]:
@@ -574,16 +543,17 @@ def _pooled(res: Results, v, lvl: str) -> str:
     t, p, lab = res.table, res.problem, res.lab
     cs, bs = lab["consensus"], lab["between_sd"]
     heavy = p.heavy
-    cards = [_card("pooled mean mu", v(cs["median"]), f"{lvl} interval {_iv(v, cs['low'], cs['high'])}"),
-             _card("between-group " + ("scale" if heavy else "sd") + " tau", v(bs["median"]),
-                   f"{lvl} interval {_iv(v, bs['low'], bs['high'])}")]
+    mu_name = "pooled mean mu" if res.predictors is None else "mu (reference level; see Why groups differ)"
+    cards = [card(mu_name, v(cs["median"]), f"{lvl} interval {interval_html(v, cs['low'], cs['high'])}"),
+             card("between-group " + ("scale" if heavy else "sd") + " tau", v(bs["median"]),
+                   f"{lvl} interval {interval_html(v, bs['low'], bs['high'])}")]
     if lab["repeatability_sd"] is not None:
         r = lab["repeatability_sd"]
-        cards.append(_card("typical within-group sd", v(r["median"]),
-                           f"{lvl} interval {_iv(v, r['low'], r['high'])}"))
+        cards.append(card("typical within-group sd", v(r["median"]),
+                           f"{lvl} interval {interval_html(v, r['low'], r['high'])}"))
     w = t["shrink_weight"].to_numpy(dtype=float)
     if np.isfinite(w).any():
-        cards.append(_card("pull toward mu", f"{np.nanmedian(w):.2f}",
+        cards.append(card("pull toward mu", f"{np.nanmedian(w):.2f}",
                            f"median shrinkage weight; from {np.nanmin(w):.2f} to {np.nanmax(w):.2f}"))
     words = {
         "mu": "the pooled mean: the centre of the group means",
@@ -597,14 +567,14 @@ def _pooled(res: Results, v, lvl: str) -> str:
     rows = []
     for name, sm in res.hyper.items():
         f = (lambda x, extra=0: sig(x, 3)) if name == "nu" else v
-        rows.append([esc(name), words.get(name, ""), f(sm["median"], 1), _iv(f, sm["low"], sm["high"], 1),
+        rows.append([esc(name), words.get(name, ""), f(sm["median"], 1), interval_html(f, sm["low"], sm["high"], 1),
                      f(sm["mean"], 1), f(sm["sd"], 1)])
     if lab["repeatability_sd"] is not None and p.model.within == "separate":
         r = lab["repeatability_sd"]
         rows.append(["typical within-group sd", ("√(mean over groups of sigma<sub>j</sub>²): the sd of a typical "
                                                  "measurement about its group's mean"),
-                     v(r["median"], 1), _iv(v, r["low"], r["high"], 1), v(r["mean"], 1), v(r["sd"], 1)])
-    table = _table([("quantity", False), ("what it is", False), ("median", True), (f"{lvl} interval", True),
+                     v(r["median"], 1), interval_html(v, r["low"], r["high"], 1), v(r["mean"], 1), v(r["sd"], 1)])
+    table = html_table([("quantity", False), ("what it is", False), ("median", True), (f"{lvl} interval", True),
                     ("mean", True), ("sd", True)], rows)
     return ('<section id="pooled"><h2>Pooled figures</h2>'
             f'<div class="cards">{"".join(cards)}</div>'
@@ -654,7 +624,7 @@ def _group_row(res: Results, v, j: int) -> list[str]:
     o, t = res.options, res.table
     r = [esc(t["group"].iat[j])] + ([] if res.problem.stats.kind == "known" else [_n(t["n"].iat[j])])
     mean, span = _rank_cells(res, j)
-    r += [v(t["theta_mean"].iat[j]), _iv(v, t[res.col("theta_low")].iat[j], t[res.col("theta_high")].iat[j]), mean,
+    r += [v(t["theta_mean"].iat[j]), interval_html(v, t[res.col("theta_low")].iat[j], t[res.col("theta_high")].iat[j]), mean,
           span, prob(t["p_best"].iat[j]), prob(t["p_top_k"].iat[j])]
     if o.threshold is not None:
         r.append(_tag(t["threshold_side"].iat[j]))
@@ -679,7 +649,7 @@ def _groups(res: Results, v, lvl: str, figs: dict) -> str:
              f"draws; P(top {k}) is the chance of being among the {k} best.</p>")
     if res.mode == "full":
         shown, gap, hidden = _head_tail(order)
-        table = _table(head, [_group_row(res, v, j) for j in shown], gap, hidden)
+        table = html_table(head, [_group_row(res, v, j) for j in shown], gap, hidden)
         return ('<section id="groups"><h2>Groups</h2>' + intro
                 + f'<div class="fig">{figs.get("intervals", "")}</div>'
                 + _fold(f"Every group, best first: estimate, interval, rank and decisions ({whole(J)} rows)", table,
@@ -694,11 +664,11 @@ def _groups(res: Results, v, lvl: str, figs: dict) -> str:
               "but cannot place the group more finely (its bound is half the interval or more); the mean rank, "
               "with its ± bound, orders such groups. Kept groups' ranks are exact.</p>")
     return ('<section id="groups"><h2>Groups</h2>' + intro + coarse
-            + f"<h3>The {best_open} best</h3>" + _table(head, [_group_row(res, v, j) for j in order[:best_open]])
-            + _fold(f"The {ends} best", _table(head, [_group_row(res, v, j) for j in order[:ends]]))
-            + _fold(f"The {ends} worst", _table(head, [_group_row(res, v, j) for j in order[::-1][:ends]]))
+            + f"<h3>The {best_open} best</h3>" + html_table(head, [_group_row(res, v, j) for j in order[:best_open]])
+            + _fold(f"The {ends} best", html_table(head, [_group_row(res, v, j) for j in order[:ends]]))
+            + _fold(f"The {ends} worst", html_table(head, [_group_row(res, v, j) for j in order[::-1][:ends]]))
             + _fold(f"The {whole(len(kept_rows))} kept groups (every draw in draws.nc, every column exact)",
-                    _table(head, [_group_row(res, v, j) for j in ks], kgap, khidden))
+                    html_table(head, [_group_row(res, v, j) for j in ks], kgap, khidden))
             + f'<p class="note">Every one of the {whole(J)} groups is in groups.csv.</p></section>')
 
 
@@ -724,10 +694,10 @@ def _sides_section(res: Results, v, lvl: str) -> str:
         idx = idx[np.argsort(t["theta_mean"].to_numpy()[idx], kind="stable")]
         shown, gap, hidden = _head_tail(idx)
         rows = [[esc(t["group"].iat[j]), v(t["theta_mean"].iat[j]),
-                 _iv(v, t[res.col("theta_low")].iat[j], t[res.col("theta_high")].iat[j]), prob(t["p_above"].iat[j]),
+                 interval_html(v, t[res.col("theta_low")].iat[j], t[res.col("theta_high")].iat[j]), prob(t["p_above"].iat[j]),
                  prob(t["p_below"].iat[j]), _tag(t["threshold_side"].iat[j])] for j in shown]
         if rows:
-            out.append(_fold(f"The {whole(len(idx))} groups not on the majority side", _table(
+            out.append(_fold(f"The {whole(len(idx))} groups not on the majority side", html_table(
                 [("group", False), ("posterior mean", True), (f"{lvl} interval", True), ("P(above)", True),
                  ("P(below)", True), ("side", False)], rows, gap, hidden), len(rows)))
     if o.limits:
@@ -741,10 +711,10 @@ def _sides_section(res: Results, v, lvl: str) -> str:
                        f"{lvl} interval) says how many parts would fail.</p>")
             ng = res.new_group
             if ng is not None:
-                card = _card(f"a {_groups_word(res, 1)} not yet seen", percent(ng["mean"]),
+                new_card = card(f"a {_groups_word(res, 1)} not yet seen", percent(ng["mean"]),
                              f"{lvl} interval {percent(ng['low'])} to {percent(ng['high'])}; MC error "
                              f"{percent(ng['mc_error'])}")
-                out.append(f'<div class="cards">{card}</div><p class="note">For a new group each draw takes '
+                out.append(f'<div class="cards">{new_card}</div><p class="note">For a new group each draw takes '
                            "theta<sub>new</sub> from the between-group distribution"
                            + (" and sigma<sub>new</sub>² ~ Scaled-Inv-χ²(nu, s²)" if res.problem.within_code == 0
                               else " and the shared sigma") + ", from a generator seeded by the run's own seed.</p>")
@@ -758,7 +728,7 @@ def _sides_section(res: Results, v, lvl: str) -> str:
             head = [("group", False)] + ([] if kn else [("n", True)]) + [
                 ("theta", True), ("sigma", True), ("P(mean outside)", True), ("side", False),
                 ("measurements outside", True), (f"{lvl} interval", True)]
-            out.append(_fold(f"The {len(rows)} groups with the largest predicted share outside", _table(head, rows),
+            out.append(_fold(f"The {len(rows)} groups with the largest predicted share outside", html_table(head, rows),
                              len(rows)))
         else:
             out.append(f"<p>Specification: {esc(lim)}. A group's side is judged by its mean (P(theta outside the "
@@ -785,12 +755,12 @@ def _tails(res: Results, v, lvl: str, figs: dict) -> str:
     kn = res.problem.stats.kind == "known"
     rows = [[esc(t["group"].iat[j])] + ([] if kn else [_n(t["n"].iat[j])])
             + [v(t["raw_mean"].iat[j]), v(t["theta_mean"].iat[j]),
-               _iv(v, t[res.col("bias_low")].iat[j], t[res.col("bias_high")].iat[j]),
+               interval_html(v, t[res.col("bias_low")].iat[j], t[res.col("bias_high")].iat[j]),
                f"{t['tail_weight'].iat[j]:.3f}", prob(t["p_outlying"].iat[j])] for j in order[:ALL_ROWS]]
     head = [("group", False)] + ([] if kn else [("n", True)]) + [
         ("own mean", True), ("posterior mean", True), (f"bias, {lvl}", True), ("tail weight", True),
         ("P(outlying)", True)]
-    table = (_fold(f"The {whole(len(order))} flagged groups", _table(head, rows), len(rows)) if rows
+    table = (_fold(f"The {whole(len(order))} flagged groups", html_table(head, rows), len(rows)) if rows
              else "<p>No group is flagged.</p>")
     return ('<section id="tails"><h2>Outlying groups</h2>'
             "<p>The between-group distribution is a Student-t with df degrees of freedom (heavy tails): each group j has "
@@ -815,7 +785,7 @@ def _labs(res: Results, v, lvl: str) -> str:
         if s is None:
             rows.append([name, "–", "–", classical])
         else:
-            rows.append([name, v(s["median"], extra), _iv(v, s["low"], s["high"], extra), classical])
+            rows.append([name, v(s["median"], extra), interval_html(v, s["low"], s["high"], extra), classical])
 
     re_ = lab.get("random_effects")
     tau_name = "between-lab scale tau (robust s<sub>L</sub>)" if res.problem.heavy else "between-lab sd s<sub>L</sub> (tau)"
@@ -840,7 +810,7 @@ def _labs(res: Results, v, lvl: str) -> str:
                      f'<span class="nw">{icc["low"]:.3f}</span> to <span class="nw">{icc["high"]:.3f}</span>',
                      f"{an['icc']:.3f}" if an else "–"])
     classical = "one-way ANOVA (moments)" if an or not re_ else "DerSimonian-Laird (moments)"
-    comp = _table([("quantity", False), ("posterior median", True), (f"{lvl} interval", True), (classical, True)], rows)
+    comp = html_table([("quantity", False), ("posterior median", True), (f"{lvl} interval", True), (classical, True)], rows)
     note = ""
     if re_ and not an:
         note = (f"<p class=\"note\">DerSimonian-Laird random-effects estimate from the {re_['k']} estimates and their "
@@ -870,7 +840,7 @@ def _labs(res: Results, v, lvl: str) -> str:
     for j in shown:
         r = [esc(t["group"].iat[j])] + ([] if kn else [_n(t["n"].iat[j])])
         r += [v(t["raw_mean"].iat[j]), v(t["bias_mean"].iat[j]),
-              _iv(v, t[res.col("bias_low")].iat[j], t[res.col("bias_high")].iat[j])]
+              interval_html(v, t[res.col("bias_low")].iat[j], t[res.col("bias_high")].iat[j])]
         if o.allowed_bias is not None:
             r += [prob(t["p_bias_over"].iat[j]), _tag(t["bias_side"].iat[j])]
         if "outlying" in t:
@@ -891,7 +861,7 @@ def _labs(res: Results, v, lvl: str) -> str:
             f"{whole(ag['z_warning'])} a warning; the {lvl} bias interval excludes zero for "
             f"{plural(ag['interval_excludes_0'], 'lab')}; {plural(ag['both'], 'lab')} "
             f"{'is' if ag['both'] == 1 else 'are'} flagged both ways.</p>"
-            + _fold(f"Every lab, largest bias first ({whole(res.J)} rows)", _table(head, body, gap, hidden), len(body))
+            + _fold(f"Every lab, largest bias first ({whole(res.J)} rows)", html_table(head, body, gap, hidden), len(body))
             + "</section>")
 
 
@@ -987,7 +957,7 @@ def _estimates(res: Results, v, lvl: str) -> str:
                "</span>")]
         if not known:
             r.append(f'<span class="nw">{v(t["sigma_mean"].iat[j])}</span> <span class="p">('
-                     + _iv(v, t[res.col("sigma_low")].iat[j], t[res.col("sigma_high")].iat[j]) + ")</span>")
+                     + interval_html(v, t[res.col("sigma_low")].iat[j], t[res.col("sigma_high")].iat[j]) + ")</span>")
         moved = t["shrink_realised"].iat[j]
         steady = abs(t["raw_mean"].iat[j] - mu) > t["theta_sd"].iat[j]
         lo, hi = t[res.col("shrink_low")].iat[j], t[res.col("shrink_high")].iat[j]
@@ -998,7 +968,7 @@ def _estimates(res: Results, v, lvl: str) -> str:
         if "tail_weight" in t:
             r += [f"{t['tail_weight'].iat[j]:.2f}", prob(t["p_outlying"].iat[j])]
         rows.append(r)
-    return _table(head, rows, gap, hidden)
+    return html_table(head, rows, gap, hidden)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1064,7 +1034,7 @@ def _health(res: Results, v, figs: dict) -> str:
         rows.append([what, status(r, b if b is not None else np.nan, t_ if t_ is not None else np.nan), rhat(r),
                      whole(round(b)) if b is not None and np.isfinite(b) else "–",
                      whole(round(t_)) if t_ is not None and np.isfinite(t_) else "–", ""])
-    table = _table([("draws of", False), ("targets", False), ("R-hat", True), ("effective draws, centre", True),
+    table = html_table([("draws of", False), ("targets", False), ("R-hat", True), ("effective draws, centre", True),
                     ("effective draws, tails", True), ("MC error of the mean", True)], rows)
     screen = ""
     if summary:
@@ -1107,7 +1077,7 @@ def _how(res: Results) -> str:
             "<p>With this many groups the chains kept running summaries instead of every draw. Means and probabilities "
             "are exact counts over all draws; interval limits and ranks of groups not kept whole carry a bound on "
             "their error, below (user units; ranks in ranks).</p>"
-            + _table([("quantity", False), ("median bound", True), ("largest bound", True)], erows)
+            + html_table([("quantity", False), ("median bound", True), ("largest bound", True)], erows)
             + '<p class="note">A bound is what the method can guarantee; the error in a given group is usually smaller. '
             "Kept groups have no such error.</p>" + _fold("The methods, one by one", methods) + "</section>")
 
@@ -1118,10 +1088,14 @@ def _setup(res: Results, command) -> str:
     run = res.run
     within = p.model.within
     lines = ["y_ij    ~ N(theta_j, sigma_j^2)     measurement i of group j"]
+    centre = "mu" if p.design is None else "mu + x_j'beta"
     if p.heavy:
-        lines.append("theta_j ~ N(mu, tau^2 / lambda_j),  lambda_j ~ Gamma(df/2, rate df/2)   (Student-t, heavy tails)")
-    else:
+        lines.append(f"theta_j ~ N({centre}, tau^2 / lambda_j),  lambda_j ~ Gamma(df/2, rate df/2)   "
+                     "(Student-t, heavy tails)")
+    elif p.design is None:
         lines.append("theta_j ~ N(mu, tau^2)              group means around the pooled mean")
+    else:
+        lines.append("theta_j ~ N(mu + x_j'beta, tau^2)      group means around the centre of their level")
     if within == "separate":
         lines.append("sigma_j^2 ~ Scaled-Inv-chi2(nu, s^2)  each group its own within-group variance, pooled too")
     elif within == "shared":

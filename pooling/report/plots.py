@@ -67,7 +67,7 @@ def _marker_area(n: np.ndarray, most: float) -> np.ndarray:
     """Marker area in px^2 proportional to n (largest group: `most`), at least a visible dot."""
     n = np.asarray(n, dtype=float)
     top = np.nanmax(n) if n.size else 0.0
-    if not top > 0:
+    if not (top > 0 and np.isfinite(top)):  # no sizes, or 1/se^2 beyond the float range: equal markers
         return np.full(n.shape, most / 3)
     return np.maximum(most * n / top, 5.0)
 
@@ -383,6 +383,7 @@ def make_figures(res) -> dict[str, str]:
     moving = {k: v for k, v in named.items() if k not in flat}
     if moving:
         figs["traces"] = hyper_traces(moving)
+    figs.update(predictor_figures(res))
     if res.tail is not None and res.tail["fixed_df"] is None:
         figs["df"] = df_posterior(res.tail["grid"], res.tail["prior"], res.tail["posterior"])
     if res.pairs is not None and len(res.pairs) > PAIRS_AS_TABLE:
@@ -468,3 +469,109 @@ def history_group(name: str, run_labels: list[str], mean, lo, hi, withdrawn_at, 
     p.vsegments(x, lo, hi, POST, 4.0 if R <= 40 else 1.6, 0.45, role="interval")
     p.points(x, mean, 10.0 if R <= 40 else 4.0, fill=POST, role="mean")
     return c.svg()
+
+
+# ---------------------------------------------------------------------------------------------
+# group-level predictors
+
+LEVEL_COLORS = ["#1f6f78", "#c0672a", "#5a3d8a", "#6b8e23", "#b23a2a", "#3b6ea8", "#8c6d1f", "#555f6b"]
+
+
+def level_color(i: int) -> str:
+    return LEVEL_COLORS[i % len(LEVEL_COLORS)]
+
+
+def by_level(table, consensus: list[dict], key: str = "95") -> str:
+    """The groups' posterior means and intervals coloured by their level, each level's consensus value drawn as its
+    own line (dashed, over that level's groups) with its interval as a light band. Up to MANY groups one row per
+    group, grouped by level; above, one row per level with every group's posterior mean as a dot."""
+    names = [c["level"] for c in consensus]
+    where = {name: i for i, name in enumerate(names)}
+    lev = np.array([where[x] for x in table["level"]], dtype=np.int64)
+    m = table["theta_mean"].to_numpy(dtype=float)
+    lo, hi = table[f"theta_low_{key}"].to_numpy(dtype=float), table[f"theta_high_{key}"].to_numpy(dtype=float)
+    J = len(table)
+    if J <= MANY:
+        order = np.lexsort((m, lev))  # by level, then by posterior mean
+        y_of = np.empty(J)
+        y_of[order] = np.arange(J, dtype=float)
+        h = _rows_height(J, 10.0)
+        c = Canvas(WIDE, h, "by_level", "Group estimates by level, with each level's consensus value")
+        p = c.panel(0, 0, WIDE, h, xlabel="theta", yticks=(np.arange(J), _labels(table["group"].to_numpy()[order])),
+                    ygrid=False, ylim=(-0.7, J - 0.3))
+        for i, cons in enumerate(consensus):
+            rows = y_of[lev == i]
+            if not rows.size:
+                continue
+            y0, y1 = float(rows.min()) - 0.45, float(rows.max()) + 0.45
+            col = level_color(i)
+            p.band([cons["low"], cons["high"]], [y0, y0], [y1, y1], col, 0.12, role="level-band")
+            p.segments([cons["mean"]], [y0], [cons["mean"]], [y1], col, 1.8, dash="dashed",
+                       key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}", role="level-line")
+            sel = lev == i
+            p.hsegments(y_of[sel], lo[sel], hi[sel], col, 3.0, 0.45, role="interval")
+            p.points(m[sel], y_of[sel], 20.0, fill=col, role="posterior-mean")
+    else:
+        L = len(names)
+        h = max(220.0, 60.0 * L + 90.0)
+        c = Canvas(WIDE, h, "by_level", "Posterior means of every group by level, with each level's consensus value")
+        p = c.panel(0, 0, WIDE, h, xlabel="posterior mean of theta",
+                    yticks=(np.arange(L), [plain(x) for x in names]), ygrid=False, ylim=(-0.6, L - 0.4))
+        # a deterministic spread inside each level's row, so that dots do not sit on one line
+        spread = ((np.arange(J) * 0.6180339887) % 1.0 - 0.5) * 0.6
+        for i, cons in enumerate(consensus):
+            col = level_color(i)
+            p.band([cons["low"], cons["high"]], [i - 0.42, i - 0.42], [i + 0.42, i + 0.42], col, 0.12,
+                   role="level-band")
+            p.segments([cons["mean"]], [i - 0.45], [cons["mean"]], [i + 0.45], col, 1.8, dash="dashed",
+                       key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}", role="level-line")
+            sel = lev == i
+            p.points(m[sel], i + spread[sel], 6.0, fill=col, opacity=0.45, role="posterior-mean")
+    return c.svg()
+
+
+def along_numeric(x, m, lo, hi, lev, lines: list[tuple[str, float]], slope: float, centre: float,
+                  column: str) -> str:
+    """The groups' posterior means m (with intervals lo, hi) against a numeric predictor x, coloured by level (lev:
+    each group's index into lines), each level's line c_l + slope (x - centre) drawn from its consensus value c_l
+    (lines: (name, c_l) per level; c_l at the numeric predictors' means)."""
+    x, m, lo, hi = (np.asarray(a, dtype=float) for a in (x, m, lo, hi))
+    many = len(m) > MANY
+    c = Canvas(WIDE * 0.8, 420, "along_numeric", f"Group estimates against {plain(column)}, with each level's line")
+    p = c.panel(0, 0, WIDE * 0.8, 420, xlabel=plain(column, 60), ylabel="theta")
+    xs = np.array([np.nanmin(x), np.nanmax(x)])
+    for i, (name, base) in enumerate(lines):
+        col = level_color(i)
+        sel = lev == i
+        if not many:
+            p.vsegments(x[sel], lo[sel], hi[sel], col, 2.0, 0.4, role="interval")
+        p.points(x[sel], m[sel], 8.0 if many else 20.0, fill=col, opacity=0.5 if many else 1.0, role="posterior-mean")
+        p.line(xs, base + slope * (xs - centre), col, 1.8, dash="dashed", key=f"{plain(name, 20)}: line",
+               role="level-line")
+    return c.svg()
+
+
+def predictor_figures(res) -> dict[str, str]:
+    """The pictures of the group-level predictors: estimates by level (with categorical predictors) and against the
+    first numeric predictor (each level's line)."""
+    pr = res.predictors
+    if pr is None:
+        return {}
+    figs = {}
+    t = res.table
+    if pr["consensus"]:
+        figs["by_level"] = by_level(t, pr["consensus"], res.key)
+    des = res.problem.design
+    if des.numerics:
+        num = des.numerics[0]
+        coef = next(c for c in pr["coefficients"] if c["column"] == num["column"])
+        if pr["consensus"]:
+            lines = [(cons["level"], cons["mean"]) for cons in pr["consensus"]]
+            lev = des.level_of
+        else:
+            lines = [("all groups", res.hyper["mu"]["mean"])]
+            lev = np.zeros(len(t), dtype=np.int64)
+        figs["along_numeric"] = along_numeric(num["values"], t["theta_mean"], t[res.col("theta_low")],
+                                              t[res.col("theta_high")], lev, lines, coef["mean"], num["centre"],
+                                              num["column"])
+    return figs

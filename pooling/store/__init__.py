@@ -15,7 +15,7 @@ from __future__ import annotations
 from .base import BatchInfo, BatchStats, BatchStore, GroupResult, NewBatch, RunRecord, Snapshot, state_fingerprint
 from .changes import Watch
 from .combine import combine, forgetting_weights
-from .ledger import open_store
+from .opening import open_store
 from .sqlite import SqliteStore
 
 __all__ = ["BatchStore", "SqliteStore", "open_store", "BatchInfo", "BatchStats", "GroupResult", "NewBatch",

@@ -22,7 +22,8 @@ from ..errors import InputError, NothingNew
 from .base import BatchInfo, GroupResult, NewBatch, RunRecord, Snapshot, StoreContent
 from .changes import Watch, changes_csv, compare, digest
 from .combine import combine, final_state_record, forgetting_weights, iso, parse_when, warm_start
-from .ledger import DEFAULT_BUSY_SECONDS, open_store
+from .ledger import DEFAULT_BUSY_SECONDS
+from .opening import open_store
 from .location import parse_location
 
 CHANGES_JSON = "changes.json"
