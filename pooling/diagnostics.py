@@ -156,10 +156,11 @@ def _sort_rows(xs, srt, orders, bad):
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def _rank_block(xs, orders, table, z, zf, srt):
+def _rank_block(xs, orders, table, z, zf, srt, redo):
     """For each row of xs (P, S), given a permutation `orders` that sorts it (any: tied values share their
-    average rank, so their order does not matter): srt = the sorted values, z = normal scores of the values,
-    zf = normal scores of the values folded about their median (|x - median|)."""
+    average rank, so their order does not matter): srt = the sorted values (taken through `orders` where
+    redo[p], already in place elsewhere), z = normal scores of the values, zf = normal scores of the values
+    folded about their median (|x - median|)."""
     p_rows, size = xs.shape
     k = size // 2
     folded = np.empty(size)
@@ -168,8 +169,9 @@ def _rank_block(xs, orders, table, z, zf, srt):
         x = xs[p]
         order = orders[p]
         row = srt[p]
-        for i in range(size):
-            row[i] = x[order[i]]
+        if redo[p]:
+            for i in range(size):
+                row[i] = x[order[i]]
         _place_scores(row, order, table, z[p])
         med = row[k] if size % 2 else (row[k - 1] + row[k]) / 2.0
         # the folded values are two sorted runs: med - row[k-1], ..., med - row[0] and row[k] - med, ...;
@@ -379,7 +381,7 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
         _sort_rows(flat, srt, orders, bad)
         if bad.any():
             orders[bad] = np.argsort(flat[bad], axis=1)
-        _rank_block(flat, orders, _score_table(size), z, zf, srt)
+        _rank_block(flat, orders, _score_table(size), z, zf, srt, bad)  # _sort_rows sorted the rows not bad
         z, zf = z.reshape(p, m, h), zf.reshape(p, m, h)
         if "rhat" in want:
             bulk = _rhat(z, const_seq)

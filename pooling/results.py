@@ -188,7 +188,13 @@ class Results:
 
     @property
     def labels(self) -> tuple[str, ...]:
-        return tuple(self.table["group"])
+        # asked for some fifty times while a run's files are written: made once per table (at 20,000 groups each
+        # tuple of an Arrow string column took 30 ms)
+        held = self.__dict__.get("_labels_of")
+        if held is None or held[0] is not self.table:
+            held = (self.table, tuple(self.table["group"]))
+            self.__dict__["_labels_of"] = held
+        return held[1]
 
     @property
     def targets_met(self) -> bool:

@@ -161,6 +161,7 @@ def test_diagnostics_sort_gives_a_sorting_permutation_and_argsorts_scores():
     P = xs.shape[0]
     srt, orders, bad = np.empty((P, S)), np.empty((P, S), dtype=np.int64), np.empty(P, dtype=np.bool_)
     dg._sort_rows(xs, srt, orders, bad)
+    s1 = srt.copy()
     for p in range(P):
         if bad[p]:
             continue
@@ -171,8 +172,10 @@ def test_diagnostics_sort_gives_a_sorting_permutation_and_argsorts_scores():
     assert bad[[3, 4, 7, 10, 12, 13]].all()  # all equal, inf, NaN, a span that overflows: handed to numpy
     orders[bad] = np.argsort(xs[bad], axis=1)
     table = dg._score_table(S)
-    z1, zf1, s1 = np.empty((P, S)), np.empty((P, S)), np.empty((P, S))
+    z1, zf1 = np.empty((P, S)), np.empty((P, S))
     z2, zf2, s2 = np.empty((P, S)), np.empty((P, S)), np.empty((P, S))
-    dg._rank_block(xs, orders, table, z1, zf1, s1)
-    dg._rank_block(xs, np.argsort(xs, axis=1), table, z2, zf2, s2)
+    s1[bad] = np.nan  # the rows _sort_rows handed back are sorted by _rank_block through numpy's permutation
+    dg._rank_block(xs, orders, table, z1, zf1, s1, bad)
+    dg._rank_block(xs, np.argsort(xs, axis=1), table, z2, zf2, s2, np.ones(P, dtype=np.bool_))
     assert _same_bits(z1, z2) and _same_bits(zf1, zf2)
+    assert np.array_equal(s1, s2, equal_nan=True)
