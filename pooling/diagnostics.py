@@ -37,8 +37,10 @@ the rounding error of its chain variances. And when (chains*draws - 1)*p is a wh
 quantile can land an ulp below it, so the indicator, and the tail ESS, can differ there.
 
 Speed: parameters are handled in blocks of `_BLOCK` columns, so memory stays bounded, and nothing
-loops over single parameters in Python. One sort per parameter (numpy's argsort) serves the ranks,
-the median and the quantiles; the normal scores and the folded draws' ranks (a linear merge of the
+loops over single parameters in Python. One sort per parameter serves the ranks, the median and
+the quantiles: a compiled bucket sort (`_sort_rows`), or numpy's argsort for the rows it hands back
+(NaN, infinities, all values equal, values crowded into few buckets); ties share their average rank,
+so either permutation gives the same scores; the normal scores and the folded draws' ranks (a linear merge of the
 two sorted halves) are compiled loops (`_rank_block`). The tail ESS alone needs no sort: its
 quantiles come from np.quantile. The autocovariances are computed lag by lag up to `_LAGS` lags,
 stopping where Geyer's sequence stops (`_geyer_direct`), which settles most parameters of a
