@@ -4,8 +4,9 @@ This is the one place where a per-group answer is defined. Both ways of running 
 
 * summary mode (pooling.summary) calls `accumulate` after every post-warm-up sweep, on the chain's
   state, and keeps nothing else of the draw but histograms and rank counts;
-* a full run (pooling.results) calls the same `accumulate` over its stored draws, and takes the
-  exact intervals of the same quantities from `derived`, which applies the same formulas to stored draws.
+* a full run (pooling.results) calls the same `accumulate` over its stored draws, a block of groups at a time
+  (`accumulate_stored`), and takes the exact intervals of the same quantities from `derived`, which applies
+  the same formulas to stored draws.
 
 Everything is in the engine's internal units (y' = (y - center) / scale, model.build): thresholds,
 limits and the allowed bias are carried into those units once (`Asked.internal`), and results are
@@ -158,48 +159,60 @@ def accumulate(within, n, v_known, mu, tau2, theta, sig, lam, cut, a, inv, run, 
                 hits[H_OUTLYING, j] += 1
 
 
+# A full run's stored draws are read a block of groups at a time, laid out by group (pooling.order.gather):
+# theta (m, S) and, when the model has them, sigma_j (m, S) and lambda_j (m, S), S = chains x D draws with
+# the chains one after another; the shared sigma is one value per draw (S,). Unused arrays have no rows.
+
+
+@njit(nogil=True, cache=True)
+def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, D, j0, j1, run, hits, X, beta):
+    """`accumulate` over every stored draw of the groups j0 .. j1 - 1, chain by chain in draw order, so that each
+    group sees exactly the operations summary mode applies while sampling: mu, tau, cut (S,); theta (S, J); sig
+    (S, J), (S, 1) or (S, 0); lam (S, J) or (S, 0); run (C, N_R, J), hits (C, N_H, J); S = C x D; X (J, p) and
+    beta (S, p) the group-level predictors and their coefficients (p = 0: none)."""
+    C = run.shape[0]
+    shared = within == 1
+    heavy = lam.shape[1] > 0
+    for c in range(C):
+        for t in range(D):
+            s = c * D + t
+            accumulate(within, n[j0:j1] if within != 2 else n, v_known[j0:j1] if within == 2 else v_known, mu[s],
+                       tau[s] * tau[s], theta[s, j0:j1], sig[s] if shared else sig[s, j0:j1],
+                       lam[s, j0:j1] if heavy else lam[s], cut[s], a, 1.0 / (t + 1.0), run[c, :, j0:j1],
+                       hits[c, :, j0:j1], X[j0:j1], beta[s])
+
+
 # derived quantities of stored draws (full runs), by kind
 D_SHRINK, D_OUT, D_BIAS, D_LOGIT_SHRINK, D_LOGIT_OUT = range(5)
 
 
 @njit(nogil=True, cache=True, error_model="numpy")
-def derived(kind, within, n, v_known, mu, tau, theta, sig, lam, a, j0, out, X, beta):
-    """out[s, i] = the quantity `kind` of group j0 + i in draw s, from stored draws (internal units):
-    mu, tau (S,); theta (S, J); sig (S, J), (S,) shared or (S, 0) known; lam (S, J) or (S, 0); X (J, p) and
-    beta (S, p) the group-level predictors and their coefficients (p = 0: none)."""
-    S, m = out.shape
-    heavy = lam.shape[1] > 0
-    for s in range(S):
-        tau2 = tau[s] * tau[s]
-        for i in range(m):
-            j = j0 + i
-            th = theta[s, j]
+def derived(kind, within, n, v_known, mu, tau, theta, sig, sig1, lam, a, j0, m, out, X, beta):
+    """out[i, s] = the quantity `kind` of group j0 + i in draw s (i < m), internal units, from a block of stored
+    draws laid out by group (see above): mu, tau (S,); theta, sig, lam (m, S); sig1 the shared sigma (S,);
+    X (J, p) and beta (S, p) the group-level predictors and their coefficients (p = 0: none)."""
+    S = mu.shape[0]
+    heavy = lam.shape[0] > 0
+    for i in range(m):
+        j = j0 + i
+        for s in range(S):
+            th = theta[i, s]
             if kind == D_BIAS:
-                out[s, i] = th - centre_of(mu[s], X, beta[s], j)
+                out[i, s] = th - centre_of(mu[s], X, beta[s], j)
                 continue
             if within == 0:
-                sg = sig[s, j]
+                sg = sig[i, s]
             elif within == 1:
-                sg = sig[s, 0]
+                sg = sig1[s]
             else:
                 sg = 0.0
             if kind == D_OUT or kind == D_LOGIT_OUT:
                 f, g = outside(th, sg, a)
-                out[s, i] = f if kind == D_OUT else logit_pair(f, g)
+                out[i, s] = f if kind == D_OUT else logit_pair(f, g)
                 continue
             vj = v_of(within, n, v_known, j, sg)
-            t = tau2 / lam[s, j] if heavy else tau2
-            out[s, i] = shrink(vj, t) if kind == D_SHRINK else logit_shrink(vj, t)
-
-
-@njit(nogil=True, cache=True)
-def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, run, hits, X, beta):
-    """`accumulate` over every stored draw of one chain, in draw order: mu, tau, cut (D,); theta (D, J);
-    sig (D, J) or (D, 1) or (D, 0); lam (D, J) or (D, 0); X (J, p); beta (D, p)."""
-    D = mu.shape[0]
-    for s in range(D):
-        accumulate(within, n, v_known, mu[s], tau[s] * tau[s], theta[s], sig[s], lam[s], cut[s], a, 1.0 / (s + 1.0),
-                   run, hits, X, beta[s])
+            t = tau[s] * tau[s] / lam[i, s] if heavy else tau[s] * tau[s]
+            out[i, s] = shrink(vj, t) if kind == D_SHRINK else logit_shrink(vj, t)
 
 
 def lambda_cuts(df_grid: np.ndarray, tail: float = OUTLYING_PRIOR_TAIL) -> np.ndarray:

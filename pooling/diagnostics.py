@@ -37,8 +37,10 @@ the rounding error of its chain variances. And when (chains*draws - 1)*p is a wh
 quantile can land an ulp below it, so the indicator, and the tail ESS, can differ there.
 
 Speed: parameters are handled in blocks of `_BLOCK` columns, so memory stays bounded, and nothing
-loops over single parameters in Python. One sort per parameter (numpy's argsort) serves the ranks,
-the median and the quantiles; the normal scores and the folded draws' ranks (a linear merge of the
+loops over single parameters in Python. One sort per parameter serves the ranks, the median and
+the quantiles: a compiled bucket sort (`_sort_rows`), or numpy's argsort for the rows it hands back
+(NaN, infinities, all values equal, values crowded into few buckets); ties share their average rank,
+so either permutation gives the same scores; the normal scores and the folded draws' ranks (a linear merge of the
 two sorted halves) are compiled loops (`_rank_block`). The tail ESS alone needs no sort: its
 quantiles come from np.quantile. The autocovariances are computed lag by lag up to `_LAGS` lags,
 stopping where Geyer's sequence stops (`_geyer_direct`), which settles most parameters of a
@@ -54,7 +56,8 @@ import numpy as np
 from numba import njit
 from scipy.special import ndtri
 
-from ._blocks import each_block
+from ._blocks import Scratch, each_block
+from .order import gather
 
 __all__ = [
     "split_rhat",
@@ -94,10 +97,72 @@ def _place_scores(vals, where, table, out):
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def _rank_block(xs, orders, table, z, zf, srt):
-    """For each row of xs (P, S), given its sorting permutation `orders` (numpy's argsort, several
-    times faster than a compiled one): srt = the sorted values, z = normal scores of the values,
-    zf = normal scores of the values folded about their median (|x - median|)."""
+def _sort_rows(xs, srt, orders, bad):
+    """srt[p] = row p of xs (P, S) sorted ascending and orders[p] a permutation that sorts it: a counting sort
+    into S equal-width buckets, then an insertion sort that moves a value only past strictly larger ones,
+    O(S) for the smooth spread of a parameter's draws (numpy's argsort took 47 us of 4,000 draws, this
+    about a quarter of it). A row with a NaN or an infinite value, all values equal, or values crowded into
+    few buckets (the insertion sort's moves passing 16 S) is flagged in bad, for numpy's argsort."""
+    p_rows, size = xs.shape
+    count = np.empty(size + 1, dtype=np.int64)
+    for p in range(p_rows):
+        x = xs[p]
+        row = srt[p]
+        order = orders[p]
+        bad[p] = False
+        lo = np.inf
+        hi = -np.inf
+        finite = True
+        for i in range(size):
+            v = x[i]
+            if not (abs(v) < np.inf):
+                finite = False
+                break
+            lo = min(lo, v)
+            hi = max(hi, v)
+        span = hi - lo
+        if not finite or not (span > 0.0) or not (span < np.inf) or not ((size - 1) / span < np.inf):
+            bad[p] = True
+            continue
+        inv = (size - 1) / span
+        for b in range(size + 1):
+            count[b] = 0
+        for i in range(size):
+            count[min(int((x[i] - lo) * inv), size - 1) + 1] += 1
+        for b in range(size):
+            count[b + 1] += count[b]
+        for i in range(size):
+            v = x[i]
+            b = min(int((v - lo) * inv), size - 1)
+            q = count[b]
+            count[b] = q + 1
+            row[q] = v
+            order[q] = i
+        budget = 16 * size
+        for i in range(1, size):
+            v = row[i]
+            if v < row[i - 1]:
+                k = order[i]
+                q = i
+                while q > 0 and row[q - 1] > v:
+                    row[q] = row[q - 1]
+                    order[q] = order[q - 1]
+                    q -= 1
+                row[q] = v
+                order[q] = k
+                budget -= i - q
+                if budget < 0:
+                    break
+        if budget < 0:
+            bad[p] = True
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _rank_block(xs, orders, table, z, zf, srt, redo):
+    """For each row of xs (P, S), given a permutation `orders` that sorts it (any: tied values share their
+    average rank, so their order does not matter): srt = the sorted values (taken through `orders` where
+    redo[p], already in place elsewhere), z = normal scores of the values, zf = normal scores of the values
+    folded about their median (|x - median|)."""
     p_rows, size = xs.shape
     k = size // 2
     folded = np.empty(size)
@@ -106,8 +171,9 @@ def _rank_block(xs, orders, table, z, zf, srt):
         x = xs[p]
         order = orders[p]
         row = srt[p]
-        for i in range(size):
-            row[i] = x[order[i]]
+        if redo[p]:
+            for i in range(size):
+                row[i] = x[order[i]]
         _place_scores(row, order, table, z[p])
         med = row[k] if size % 2 else (row[k - 1] + row[k]) / 2.0
         # the folded values are two sorted runs: med - row[k-1], ..., med - row[0] and row[k] - med, ...;
@@ -312,7 +378,12 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
     if want & {"rhat", "bulk"}:
         flat = np.ascontiguousarray(xs.reshape(p, size))
         z, zf, srt = np.empty((p, size)), np.empty((p, size)), np.empty((p, size))
-        _rank_block(flat, np.argsort(flat, axis=1), _score_table(size), z, zf, srt)
+        orders = np.empty((p, size), dtype=np.int64)
+        bad = np.empty(p, dtype=np.bool_)
+        _sort_rows(flat, srt, orders, bad)
+        if bad.any():
+            orders[bad] = np.argsort(flat[bad], axis=1)
+        _rank_block(flat, orders, _score_table(size), z, zf, srt, bad)  # _sort_rows sorted the rows not bad
         z, zf = z.reshape(p, m, h), zf.reshape(p, m, h)
         if "rhat" in want:
             bulk = _rhat(z, const_seq)
@@ -354,14 +425,6 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
     return out
 
 
-def _transposed(x2: np.ndarray, j0: int, j1: int, rows: int = 64) -> np.ndarray:
-    """x2[:, j0:j1].T as a float64 C-contiguous array, copied a few rows at a time (cache-friendly)."""
-    out = np.empty((j1 - j0, x2.shape[0]))
-    for i in range(0, x2.shape[0], rows):
-        out[:, i : i + rows] = x2[i : i + rows, j0:j1].T
-    return out
-
-
 def _run(x, want: frozenset[str]) -> tuple[dict[str, np.ndarray], tuple[int, ...]]:
     x = np.asarray(x)
     if x.ndim < 2:
@@ -373,12 +436,17 @@ def _run(x, want: frozenset[str]) -> tuple[dict[str, np.ndarray], tuple[int, ...
     x2 = x.reshape(c * n, -1)
     p = x2.shape[1]
     res = {k: np.empty(p) for k in want}
+    if x2.dtype != np.float64 or not x2.flags.c_contiguous:
+        x2 = np.ascontiguousarray(x2, dtype=np.float64)
+    scratch = Scratch(lambda: np.empty((_BLOCK, c * n)))
 
     def one(j0: int) -> None:
         j1 = min(p, j0 + _BLOCK)
-        xb = _transposed(x2, j0, j1).reshape(j1 - j0, c, n)
-        with np.errstate(invalid="ignore", divide="ignore"):  # 0/0 and inf - inf become NaN
-            got = _block(xb, want)
+        with scratch.lend() as buf:
+            gather(x2, j0, j1, buf)
+            xb = buf[: j1 - j0].reshape(j1 - j0, c, n)
+            with np.errstate(invalid="ignore", divide="ignore"):  # 0/0 and inf - inf become NaN
+                got = _block(xb, want)
         for k, v in got.items():
             res[k][j0:j1] = v
 

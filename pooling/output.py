@@ -33,6 +33,11 @@ SUMMARY_FORMAT = 1
 
 def _clean(x):
     """JSON-safe values: NaN and infinities become null, numpy scalars plain numbers."""
+    t = type(x)  # the plain types first: summary.json holds every group's row, some 30 values each
+    if t is float:
+        return x if math.isfinite(x) else None
+    if t is str or t is int or t is bool or x is None:
+        return x
     if isinstance(x, dict):
         return {str(k): _clean(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):

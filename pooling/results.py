@@ -33,6 +33,8 @@ import numpy as np
 import pandas as pd
 
 from . import answers as A
+from . import order as O
+from ._blocks import Scratch, each_block
 from .asked import (PURPOSE_CHECKS, PURPOSE_PREDICTION, ReportOptions, check_k, derived_rng, level_key, level_label,
                     resolve_groups, split_compare)
 from .errors import InputError
@@ -41,9 +43,11 @@ from .posterior import Fit, SCALED, hyper_names, hyper_summary, summarize_draws
 MAX_PAIRWISE = 400
 HEAT_ROWS_MANY = 40  # above HEAT_ALL groups the heat map shows the best 40 over ranks 1..HEAT_ALL
 HEAT_ALL = 60
-TABLE_BLOCK = 128  # groups per block of the interval computations (4,000 draws x 128 groups stay in cache)
+TABLE_BLOCK = 64  # groups per block of the per-group computations (a block of 4,000 draws is 2 MB)
+ACC_BLOCK = 4096  # groups per block of the running summaries over the stored draws
 OUTLYING_AT = 0.5  # a group is flagged outlying when P(outlying) is at least this
 CHECK_DRAWS = 400  # the model checks use at most this many evenly spaced draws (a p-value's MC error <= 0.025)
+CHECK_ROWS = 16  # draws per block of the model checks' arithmetic
 
 
 # ---------------------------------------------------------------------------------------------
@@ -185,7 +189,13 @@ class Results:
 
     @property
     def labels(self) -> tuple[str, ...]:
-        return tuple(self.table["group"])
+        # asked for some fifty times while a run's files are written: made once per table (at 20,000 groups each
+        # tuple of an Arrow string column took 30 ms)
+        held = self.__dict__.get("_labels_of")
+        if held is None or held[0] is not self.table:
+            held = (self.table, tuple(self.table["group"]))
+            self.__dict__["_labels_of"] = held
+        return held[1]
 
     @property
     def targets_met(self) -> bool:
@@ -242,9 +252,16 @@ def _stacked(raw) -> Draws:
 
 
 def _quantiles(x: np.ndarray, probs) -> np.ndarray:
-    """numpy's default (linear) quantiles of each column of x (S, m): rows of the result follow probs."""
-    xt = np.array(x.T, order="C")  # selecting along contiguous memory is several times faster
-    return np.quantile(xt, probs, axis=1, overwrite_input=True)
+    """numpy's default (linear) quantiles of each column of x (S, m), equal to np.quantile's to the bit: rows of
+    the result follow probs (two of them)."""
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    S, m = x.shape
+    buf = np.empty((m, S))
+    O.gather(x, 0, m, buf)
+    buf.sort(axis=1)
+    out = np.empty((2, m))
+    O.sorted_quantiles(buf, m, np.array([(S - 1) * q for q in probs]), out[0], out[1], 0)
+    return out
 
 
 def quantile_index(S: int, q: float) -> int:
@@ -252,37 +269,54 @@ def quantile_index(S: int, q: float) -> int:
     return int(min(S - 1, max(0, np.ceil(q * S) - 1)))
 
 
-def rank_draws(x: np.ndarray, chunk: int = 256) -> np.ndarray:
-    """Rank of each group within each draw, 1 = best (the largest x): R[s, j] = 1 + #{k : x_sk > x_sj},
-    ties broken by position (a stable sort of -x)."""
+RANK_BLOCK = 256  # draws per block of the ranking (two threads share the blocks)
+
+
+def rank_draws(x: np.ndarray, highest: bool = True) -> np.ndarray:
+    """Rank of each group within each draw of x (S, J), 1 = best (the largest x, or the smallest when not
+    `highest`): R[s, j] = 1 + #{k : x_sk better than x_sj}, ties broken by position (the order of a stable
+    sort). A compiled counting sort per draw (pooling.order.rank_rows); a draw it hands back (a NaN, an
+    infinite value, values crowded together) is ranked by numpy's stable argsort."""
+    x = np.ascontiguousarray(x)
     S, J = x.shape
     dtype = np.uint16 if J < np.iinfo(np.uint16).max else np.int32
     ranks = np.empty((S, J), dtype=dtype)
-    counting = np.broadcast_to(np.arange(1, J + 1, dtype=dtype), (chunk, J))
-    for a in range(0, S, chunk):
-        block = x[a:a + chunk]
-        order = np.argsort(-block, axis=1, kind="stable")
-        np.put_along_axis(ranks[a:a + chunk], order, counting[: block.shape[0]], axis=1)
+    bad = np.zeros(S, dtype=np.bool_)
+    sign = 1.0 if highest else -1.0
+
+    def block(s0: int) -> None:
+        O.rank_rows(x, sign, s0, min(S, s0 + RANK_BLOCK), ranks, np.empty(J), np.empty(J, dtype=np.int64),
+                    np.empty(J + 1, dtype=np.int64), bad)
+
+    each_block(block, range(0, S, RANK_BLOCK), threaded=S * J >= 1_000_000)
+    for s in np.flatnonzero(bad):
+        order = np.argsort(-x[s] if highest else x[s], kind="stable")
+        ranks[s, order] = np.arange(1, J + 1, dtype=dtype)
     return ranks
 
 
 def rank_summary(ranks: np.ndarray, level: float, k: int) -> dict[str, np.ndarray]:
     """Mean rank, the central rank interval (inverted empirical CDF, so the bounds are whole ranks),
     P(rank = 1) and P(rank <= k), per group."""
+    ranks = np.ascontiguousarray(ranks)
     S, J = ranks.shape
     i_lo = quantile_index(S, (1 - level) / 2)
     i_hi = quantile_index(S, (1 + level) / 2)
-    out = {"rank_mean": np.empty(J), "rank_low": np.empty(J), "rank_high": np.empty(J),
-           "p_best": np.empty(J), "p_top_k": np.empty(J)}
-    for a in range(0, J, 1024):
-        r = np.ascontiguousarray(ranks[:, a:a + 1024].T)  # (groups, draws): selection runs along memory
-        out["rank_mean"][a:a + 1024] = r.mean(axis=1, dtype=np.float64)
-        out["p_best"][a:a + 1024] = (r == 1).mean(axis=1)
-        out["p_top_k"][a:a + 1024] = (r <= k).mean(axis=1)
-        r.partition([i_lo, i_hi], axis=1)
-        out["rank_low"][a:a + 1024] = r[:, i_lo]
-        out["rank_high"][a:a + 1024] = r[:, i_hi]
-    return out
+    total, best, top = np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64)
+    low, high = np.empty(J), np.empty(J)
+    scratch = Scratch(lambda: np.empty((TABLE_BLOCK, S), dtype=ranks.dtype))
+
+    def block(j0: int) -> None:
+        j1 = min(J, j0 + TABLE_BLOCK)
+        with scratch.lend() as buf:
+            O.rank_counts(ranks, j0, j1, k, total, best, top, buf)
+            got = buf[: j1 - j0]
+            got.sort(axis=1)
+            low[j0:j1], high[j0:j1] = got[:, i_lo], got[:, i_hi]
+
+    each_block(block, range(0, J, TABLE_BLOCK), threaded=S * J >= 1_000_000)
+    # sums of whole numbers below 2**53 are exact in float64, so these equal numpy's means of the ranks
+    return {"rank_mean": total / S, "rank_low": low, "rank_high": high, "p_best": best / S, "p_top_k": top / S}
 
 
 def rank_matrix(ranks: np.ndarray, rows: np.ndarray | None = None, max_rank: int | None = None) -> np.ndarray:
@@ -337,8 +371,13 @@ def _df_cuts(problem, df: np.ndarray | None, S: int) -> np.ndarray:
 
 
 def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
-    """Per-group answers of a full run, internal units: means and counts by answers.accumulate over the
-    stored draws (the function summary mode runs while sampling), intervals exact from the stored draws."""
+    """Per-group answers of a full run, internal units: means and counts by answers.accumulate over the stored
+    draws (the function summary mode runs while sampling), intervals exact from the stored draws.
+
+    The draws are read a block of TABLE_BLOCK groups at a time: the running summaries over the block's
+    columns, then its draws copied into buffers laid out by group (pooling.order.gather), where the derived
+    quantities and the interval ends are computed (pooling.order.sorted_quantiles, equal to np.quantile's).
+    Blocks run on two threads, each writing only its own groups, so the numbers do not depend on the threads."""
     p = fit.problem
     raw = fit.raw
     d = p.data
@@ -349,62 +388,83 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     dr = _stacked(raw)
     run = np.zeros((C, A.N_R, J))
     hits = np.zeros((C, A.N_H, J), dtype=np.uint32)
-    cuts = _df_cuts(p, dr.df, S).reshape(C, D)
-    beta = dr.beta if dr.beta is not None else np.empty((S, 0))
-    for c in range(C):
-        sig = dr.sigma[c * D:(c + 1) * D]
-        lam = dr.lam[c * D:(c + 1) * D]
-        A.accumulate_stored(d.within, d.n, d.v_known, raw.mu[c], raw.tau[c], raw.theta[c], sig, lam, cuts[c], a,
-                            run[c], hits[c], d.X, beta[c * D:(c + 1) * D])
-    out: dict[str, Any] = _merge_chains(run, D)
-    h = hits.sum(axis=0, dtype=np.int64)
-    out["hits"] = h
+    cuts = _df_cuts(p, dr.df, S)
     probs = [(1 - o.level) / 2, (1 + o.level) / 2]
-    lows = {name: np.empty(J) for name in ("theta", "sigma", "shrink", "outside", "bias")}
-    highs = {name: np.empty(J) for name in lows}
-    heavy_lam = dr.lam
+    h = np.array([(S - 1) * q for q in probs])  # numpy's virtual indexes of the linear method
+    names = ("theta", "sigma", "shrink", "outside", "bias")
+    lows = {name: np.empty(J) for name in names}
+    highs = {name: np.empty(J) for name in names}
     kinds = (("shrink", A.D_SHRINK), ("bias", A.D_BIAS)) + ((("outside", A.D_OUT),) if a[A.A_LIMITS] > 0 else ())
+    theta = np.ascontiguousarray(dr.theta)
+    separate = p.within_code == 0
+    sigma = np.ascontiguousarray(dr.sigma) if separate else None
+    sig1 = np.ascontiguousarray(dr.sigma[:, 0]) if p.within_code == 1 else np.empty(0)
+    heavy = dr.lam.shape[1] > 0
+    lam = np.ascontiguousarray(dr.lam) if heavy else None
+    mu, tau = np.ascontiguousarray(dr.mu), np.ascontiguousarray(dr.tau)
+    X, beta = np.ascontiguousarray(d.X), np.ascontiguousarray(dr.beta)
+    sig_all, lam_all = np.ascontiguousarray(dr.sigma), np.ascontiguousarray(dr.lam)
+    none = np.empty((0, S))
+
+    def buffers():
+        return (np.empty((TABLE_BLOCK, S)), np.empty((TABLE_BLOCK, S)) if separate else none,
+                np.empty((TABLE_BLOCK, S)) if heavy else none, np.empty((TABLE_BLOCK, S)))
+
+    scratch = Scratch(buffers)
+
+    def accumulate(j0: int) -> None:  # wide blocks: accumulate's loop over groups runs at memory speed
+        A.accumulate_stored(d.within, d.n, d.v_known, mu, tau, theta, sig_all, lam_all, cuts, a, D, j0,
+                            min(J, j0 + ACC_BLOCK), run, hits, X, beta)
 
     def block(j0: int) -> None:
-        # each block writes only its own slice: the numbers do not depend on the threads (pooling._blocks)
         j1 = min(J, j0 + TABLE_BLOCK)
         m = j1 - j0
-        qs = _quantiles(dr.theta[:, j0:j1], probs)
-        lows["theta"][j0:j1], highs["theta"][j0:j1] = qs
-        if p.within_code == 0:
-            qs = _quantiles(dr.sigma[:, j0:j1], probs)
-            lows["sigma"][j0:j1], highs["sigma"][j0:j1] = qs
-        b = np.empty((S, m))
-        for name, kind in kinds:
-            A.derived(kind, d.within, d.n, d.v_known, dr.mu, dr.tau, dr.theta, dr.sigma, heavy_lam, a, j0, b, d.X,
-                      dr.beta)
-            qs = _quantiles(b, probs)
-            lows[name][j0:j1], highs[name][j0:j1] = qs
 
-    from ._blocks import each_block
+        def ends(x, name):
+            x[:m].sort(axis=1)
+            O.sorted_quantiles(x, m, h, lows[name], highs[name], j0)
 
-    each_block(block, range(0, J, TABLE_BLOCK), threaded=S * J >= 1_000_000)
+        with scratch.lend() as (tb, sb, lb, buf):
+            O.gather(theta, j0, j1, tb)
+            if separate:
+                O.gather(sigma, j0, j1, sb)
+            if heavy:
+                O.gather(lam, j0, j1, lb)
+            for name, kind in kinds:
+                A.derived(kind, d.within, d.n, d.v_known, mu, tau, tb, sb, sig1, lb, a, j0, m, buf, X, beta)
+                ends(buf, name)
+            ends(tb, "theta")  # after the derived quantities, which read the buffers in draw order
+            if separate:
+                ends(sb, "sigma")
+
+    threaded = S * J >= 1_000_000
+    each_block(accumulate, range(0, J, ACC_BLOCK), threaded)
+    each_block(block, range(0, J, TABLE_BLOCK), threaded)
+    out: dict[str, Any] = _merge_chains(run, D)
+    out["hits"] = hits.sum(axis=0, dtype=np.int64)
     if p.within_code == 1:
         lo, hi = np.quantile(dr.sigma[:, 0], probs)
         lows["sigma"][:], highs["sigma"][:] = lo, hi
     out["low"], out["high"] = lows, highs
-    ranks = rank_draws(dr.theta if o.best == "highest" else -dr.theta)
+    ranks = rank_draws(theta, highest=o.best == "highest")
     out.update(rank_summary(ranks, o.level, k))
     out["ranks"] = ranks
     if p.design is not None and p.design.level_names:
-        out["in_level"] = ranks_in_level(dr.theta if o.best == "highest" else -dr.theta, p.design.level_of, o.level)
+        out["in_level"] = ranks_in_level(theta, p.design.level_of, o.level, highest=o.best == "highest")
     return out, {"draws_total": S}
 
 
-def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float) -> dict[str, np.ndarray]:
-    """Per group, its rank among the groups of its own level in every draw (x: (S, J), larger is better), and the
-    mean rank, the central rank interval and P(best in the level), as rank_summary gives them overall."""
+def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float,
+                   highest: bool = True) -> dict[str, np.ndarray]:
+    """Per group, its rank among the groups of its own level in every draw (x: (S, J), larger is better, or
+    smaller when not `highest`), and the mean rank, the central rank interval and P(best in the level), as
+    rank_summary gives them overall."""
     J = x.shape[1]
     out = {"rank_in_level_mean": np.empty(J), "rank_in_level_low": np.empty(J), "rank_in_level_high": np.empty(J),
            "p_best_in_level": np.empty(J)}
     for lv in np.unique(level_of):
         idx = np.flatnonzero(level_of == lv)
-        rs = rank_summary(rank_draws(np.ascontiguousarray(x[:, idx])), level, 1)
+        rs = rank_summary(rank_draws(np.ascontiguousarray(x[:, idx]), highest), level, 1)
         out["rank_in_level_mean"][idx] = rs["rank_mean"]
         out["rank_in_level_low"][idx] = rs["rank_low"]
         out["rank_in_level_high"][idx] = rs["rank_high"]
@@ -876,54 +936,87 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
     m = len(idx)
     ybar = problem.ybar
     n = problem.n
-    if problem.within_code == 2:
-        v = np.broadcast_to(problem.v_known[None, :], (m, J))
-    elif problem.within_code == 1:
-        v = (raw.sigma.reshape(-1)[idx] ** 2)[:, None] / n[None, :]
-    else:
-        v = raw.sigma.reshape(S, J)[idx] ** 2 / n[None, :]
+    within = problem.within_code
+    # sigma per checked draw: (S, J) separate, (S,) shared, none for known
+    sig_rows = np.empty(0) if raw.sigma is None else raw.sigma.reshape(S, J) if within == 0 else raw.sigma.reshape(-1)
+
+    def v_of(r0: int, r1: int) -> np.ndarray:
+        """v_j of the checked draws r0 .. r1 - 1."""
+        if within == 2:
+            return np.broadcast_to(problem.v_known[None, :], (r1 - r0, J))
+        if within == 1:
+            return (sig_rows[idx[r0:r1]] ** 2)[:, None] / n[None, :]
+        return sig_rows[idx[r0:r1]] ** 2 / n[None, :]
+
     mu_t, tau_t = mu[idx, None], tau[idx, None]
     if raw.beta is not None:  # each group about its own centre mu + x_j' beta
         mu_t = mu_t + raw.beta.reshape(S, -1)[idx] @ problem.data.X.T
+    # The random numbers are drawn in full and in this order; everything else is computed a few draws at a
+    # time (the same numbers, in a fraction of the memory, while they are in cache).
     z = rng.standard_normal((m, J))
     if raw.df is not None:
         df = raw.df.reshape(-1)[idx]
-        lam = np.ones((m, J))
         fin = np.isfinite(df)
         if fin.any():
-            lam[fin] = rng.standard_gamma(np.broadcast_to(df[fin, None] / 2.0, (int(fin.sum()), J))) / (df[fin, None] / 2.0)
-        z = z / np.sqrt(lam)
-    rep = mu_t + tau_t * z + np.sqrt(v) * rng.standard_normal((m, J))
+            lam = rng.standard_gamma(np.broadcast_to(df[fin, None] / 2.0, (int(fin.sum()), J)))
+            lam /= df[fin, None] / 2.0
+            np.sqrt(lam, out=lam)
+            if fin.all():
+                z /= lam
+            else:
+                z[fin] = z[fin] / lam  # the other draws divide by sqrt(1) = 1, which changes nothing
+            del lam
+    noise = rng.standard_normal((m, J))
+    rep = z  # rep = mu + tau z + sqrt(v) noise, made in place
+    t_spread = np.empty(m)
+    t_obs_draw, t_rep, who = np.empty(m), np.empty(m), np.empty(m, dtype=np.int64)
+    for r0 in range(0, m, CHECK_ROWS):
+        r1 = min(m, r0 + CHECK_ROWS)
+        v = v_of(r0, r1)
+        mu_c, tau_c = mu_t[r0:r1], tau_t[r0:r1]
+        rc = rep[r0:r1]
+        np.multiply(tau_c, rc, out=rc)
+        np.add(mu_c, rc, out=rc)
+        nc = noise[r0:r1]
+        np.multiply(np.sqrt(v), nc, out=nc)
+        np.add(rc, nc, out=rc)
+        if J >= 2:
+            t_spread[r0:r1] = rc.std(axis=1, ddof=1)
+        scale_j = np.sqrt(tau_c ** 2 + v)
+        dev_obs = np.abs(ybar[None, :] - mu_c) / scale_j
+        dev_rep = np.abs(rc - mu_c) / scale_j
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t_obs_draw[r0:r1] = dev_obs.max(axis=1) / np.median(dev_obs, axis=1)
+            t_rep[r0:r1] = dev_rep.max(axis=1) / np.median(dev_rep, axis=1)
+        who[r0:r1] = dev_obs.argmax(axis=1)
+    del noise, rep, z
     out: dict = {"draws": m}
     if J >= 2:
-        t_rep = rep.std(axis=1, ddof=1)
         t_obs = float(np.std(ybar, ddof=1))
-        out["spread"] = {"observed": t_obs * problem.scale, "replicated": t_rep * problem.scale,
-                         "p_value": float(np.mean(t_rep >= t_obs))}
-    scale_j = np.sqrt(tau_t ** 2 + v)
-    dev_obs = np.abs(ybar[None, :] - mu_t) / scale_j
-    dev_rep = np.abs(rep - mu_t) / scale_j
-    with np.errstate(divide="ignore", invalid="ignore"):
-        t_obs_draw = dev_obs.max(axis=1) / np.median(dev_obs, axis=1)
-        t_rep = dev_rep.max(axis=1) / np.median(dev_rep, axis=1)
-    who = dev_obs.argmax(axis=1)
+        out["spread"] = {"observed": t_obs * problem.scale, "replicated": t_spread * problem.scale,
+                         "p_value": float(np.mean(t_spread >= t_obs))}
     counts = np.bincount(who, minlength=J)
     out["extreme"] = {"observed": t_obs_draw, "replicated": t_rep, "p_value": float(np.mean(t_rep >= t_obs_draw)),
                       "observed_median": float(np.median(t_obs_draw)), "group": int(np.argmax(counts)),
                       "group_share": float(counts.max() / m)}
-    if problem.within_code != 2:
+    if within != 2:
         keep = np.flatnonzero(n >= 2)
         if keep.size:
-            sig = (raw.sigma.reshape(-1)[idx][:, None] if problem.within_code == 1
-                   else raw.sigma.reshape(S, J)[idx][:, keep])
+            sig = sig_rows[idx][:, None] if within == 1 else sig_rows[np.ix_(idx, keep)]
             dfw = n[keep] - 1
-            rep_sd = sig * np.sqrt(rng.chisquare(np.broadcast_to(dfw, (m, keep.size))) / dfw)
+            rep_sd = rng.chisquare(np.broadcast_to(dfw, (m, keep.size)))  # sig sqrt(chi2 / dfw), in place
+            rep_sd /= dfw
+            np.sqrt(rep_sd, out=rep_sd)
+            np.multiply(sig, rep_sd, out=rep_sd)
+            del sig
             obs = np.sqrt(problem.m2[keep] / dfw)
             p = np.mean(rep_sd >= obs[None, :], axis=0)
-            lo, hi = np.quantile(rep_sd, [(1 - level) / 2, (1 + level) / 2], axis=0)
+            by_group = np.ascontiguousarray(rep_sd.T)  # the same order statistics, selected along memory
+            del rep_sd
+            lo, hi = np.quantile(by_group, [(1 - level) / 2, (1 + level) / 2], axis=1)
             k = problem.scale
             out["sd"] = {"groups": keep, "observed": obs * k, "low": lo * k, "high": hi * k,
-                         "median": np.median(rep_sd, axis=0) * k, "p_value": p, "level": level,
+                         "median": np.median(by_group, axis=1) * k, "p_value": p, "level": level,
                          "outside": int(np.sum((obs < lo) | (obs > hi))),
                          "extreme": int(np.sum((p < 0.01) | (p > 0.99)))}
     return out

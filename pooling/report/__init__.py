@@ -64,7 +64,7 @@ def rank_probabilities(fit, best: str = "highest", groups=None, max_rank: int | 
     if rows is None and max_rank is None and J > 2000:
         raise InputError(f"rank_probabilities: {J} groups would make a {J} x {J} table; pass groups=[...] or max_rank=...")
     th = fit.raw.theta.reshape(-1, J)
-    mat = rank_matrix(rank_draws(th if best == "highest" else -th), rows, max_rank)
+    mat = rank_matrix(rank_draws(th, highest=best == "highest"), rows, max_rank)
     m = mat.shape[1] if max_rank is None or max_rank >= J else int(max_rank)
     cols = list(range(1, m + 1)) + ([f">{m}"] if mat.shape[1] > m else [])
     idx = [labels[j] for j in (range(J) if rows is None else rows)]

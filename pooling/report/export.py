@@ -37,21 +37,23 @@ def write_csv(df: pd.DataFrame, path: Path) -> None:
                           float_format=None, na_rep="")
 
 
+def _plain(x):
+    """A numpy scalar as the Python value of the same type (bool, int, float); anything else unchanged."""
+    if isinstance(x, (np.bool_, bool)):
+        return bool(x)
+    if isinstance(x, np.integer):
+        return int(x)
+    if isinstance(x, np.floating):
+        return float(x)
+    return x
+
+
 def records(df: pd.DataFrame) -> list[dict]:
     """Rows as JSON-ready dicts (NaN becomes None downstream)."""
     cols = list(df.columns)
-    arrays = [df[c].to_numpy() for c in cols]
-    out = []
-    for i in range(len(df)):
-        row = {}
-        for c, a in zip(cols, arrays):
-            x = a[i]
-            if isinstance(x, (np.bool_, bool)):
-                x = bool(x)
-            elif isinstance(x, np.integer):
-                x = int(x)
-            elif isinstance(x, np.floating):
-                x = float(x)
-            row[c] = x
-        out.append(row)
-    return out
+    values = []
+    for c in cols:
+        a = df[c].to_numpy()
+        # a numeric column turns into Python numbers in one call (the same values _plain gives one at a time)
+        values.append(a.tolist() if a.dtype.kind in "biuf" else [_plain(x) for x in a])
+    return [dict(zip(cols, row)) for row in zip(*values)]
