@@ -248,7 +248,12 @@ def test_shapes_and_values_for_any_trailing_dims(x):
         else:
             assert isinstance(v, float)
     # Source: arviz 0.23 az.rhat(method="rank") and az.ess(method="bulk"/"mean") on the same draws.
-    _assert_match(x, keys=("rhat", "bulk", "mean"))
+    # Rounded draws (the ties case) are for the rank-based figures: on small integers a pair of Geyer's
+    # autocorrelation sums can be exactly 0, and which side of 0 it lands on is then decided by the order of
+    # the floating-point sums (a tie found by hypothesis: 11 draws x 3 chains, mean ESS 32.1 vs 36.7), so
+    # the mean ESS is compared on continuous draws only.
+    rounded = bool(np.all(x == np.round(x)))
+    _assert_match(x, keys=("rhat", "bulk") if rounded else ("rhat", "bulk", "mean"))
 
 
 @settings(max_examples=20, deadline=None)
