@@ -400,13 +400,38 @@ def read_table_dask(paths_or_glob, group: str, value: str, scheduler=None, *, fo
     dask, dd = _dask()
     files, kind = resolve(paths_or_glob, format)
     source = _show_input(paths_or_glob)
-    if kind == "parquet":
-        ddf = _parquet_frame(dd, files, group, value)
-        whole = frozenset()
-    else:
-        ddf = _csv_frame(dd, files, group, value, encoding, delimiter, thousands, decimal, blocksize)
-        limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
-        whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
+    enc = None
+    try:
+        if kind == "parquet":
+            ddf = _parquet_frame(dd, files, group, value)
+            whole = frozenset()
+        else:
+            local = [f for f in files if "://" not in f]
+            enc = S.check_encoding(encoding) if encoding else (S._detect_encoding(Path(local[0]), None) if local
+                                                               else "utf-8")
+            ddf = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
+            limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
+            whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
+        return _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source)
+    except UnicodeError as exc:  # a file (often not the first, whose encoding was detected) in another encoding
+        raise InputError(_undecodable(files, enc, exc, detected=not encoding)) from None
+
+
+def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected: bool) -> str:
+    """The one line for bytes that the files' encoding does not decode: the first such file and line."""
+    local = [f for f in files if "://" not in f]
+    for f in local:
+        if enc is not None and S.first_undecodable(f, enc) is not None:
+            msg = S._encoding_message(f, enc, exc, detected=detected and f == local[0])
+            if detected and f != local[0]:
+                shown = "UTF-8" if enc == "utf-8-sig" else enc
+                msg += f" (all files are read in {shown}, the encoding detected in the first, '{local[0]}')"
+            return msg
+    return S._encoding_message(local[0] if local else files[0], enc or "utf-8", exc)
+
+
+def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S.GroupStats:
+    """The group statistics of the checked frame, computed on `scheduler`."""
     meta = pd.DataFrame({group: pd.Series([], dtype=object).astype(str), value: pd.Series([], dtype=np.float64),
                          _ORDER: pd.Series([], dtype=np.int64)})
     checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, meta=meta)

@@ -365,7 +365,7 @@ def check_target(out: Path, replace: bool, protect=()) -> Path:
     return out
 
 
-#: what a run folder of pooling held before run folders were marked (version 0.2.0)
+#: the files a run folder of pooling held before run folders were marked (with a refit's extras)
 _UNMARKED_RUN = ("summary.json", "draws.nc", "groups.csv", "report.html", "changes.json", "changes.csv",
                  "history.html")
 

@@ -1142,7 +1142,7 @@ def first_undecodable(path, enc: str) -> tuple[int, bytes, str, bytes | None] | 
 def _raw_line(path, number: int, enc: str) -> bytes | None:
     """Line `number` (1-based) of the file as bytes, for encodings whose line end is the byte 0x0A."""
     try:
-        if "a\n".encode(enc) != b"a\n" or "\r".encode(enc) != b"\r":
+        if not "x\r\nx".encode(enc).endswith(b"x\r\nx"):  # (a byte-order mark may come first)
             return None
     except (LookupError, UnicodeError):
         return None
@@ -1160,6 +1160,7 @@ def _encoding_message(src: str, enc: str, exc: UnicodeError, detected: bool = Fa
     if found is None:
         return f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
     line, bad, reason, raw = found
+    enc = "UTF-8" if enc == "utf-8-sig" else enc  # the detected UTF-8, read past a byte-order mark if one is there
     if not bad:
         return f"bad input in '{src}', line {line}: the text is not in the {enc} encoding ({reason}); name the " \
                "file's encoding with --encoding"

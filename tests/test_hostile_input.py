@@ -671,3 +671,21 @@ def test_folders_of_files_skip_run_folders_and_verify_parquet_pages(tmp_path):
     with pytest.raises(InputError) as e:
         read_table(p, "lab", "y")
     assert "damaged Parquet file" in _one_line(e.value) and "CRC" in str(e.value)
+
+
+def test_folders_of_files_name_the_file_and_line_of_undecodable_bytes(tmp_path):
+    # the folder reader detects the encoding in its first file; a later file in another encoding was an
+    # internal error (a UnicodeDecodeError from Dask's reader), now one line naming the file and line
+    pytest.importorskip("dask")
+    from pooling.dask_stats import read_table_dask
+
+    data = tmp_path / "data"
+    data.mkdir()
+    (data / "a.csv").write_bytes(b"lab,y\na,1\nb,2\n")
+    (data / "b.csv").write_bytes(b"lab,y\na,1\nL\x813,3\nc,4\n")
+    for encoding, needles in ((None, ["b.csv', line 3", "0x81", "UTF-8", "detected in the first"]),
+                              ("cp1252", ["b.csv', line 3", "the byte 0x81", "cp1252", "b'L\\x813,3'"])):
+        with pytest.raises(InputError) as e:
+            read_table_dask(data, "lab", "y", scheduler="sync", encoding=encoding)
+        line = _one_line(e.value)
+        assert all(n in line for n in needles), (needles, line)
