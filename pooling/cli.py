@@ -397,6 +397,7 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     summary = _summary_args(args, stats, more, options)
     _check_memory(args, stats.J, model, settings, summary["summary"])
     fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init, **summary)
+    _check_finite(fit, stats)
     holder: dict = {}
 
     def answers():  # computed while draws.nc is written (output.write_run)
@@ -436,6 +437,22 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
              f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')")
         return E.EXIT_TARGETS_MISSED
     return E.EXIT_OK
+
+
+def _check_finite(fit, stats) -> None:
+    """Refuse to write (or record) a run whose draws of mu or tau are not finite numbers. Seen with
+    forgetting weights so small that every group's effective n is below about 1e-3: the variance block
+    then overflows, whatever the priors, and every answer would be NaN."""
+    import numpy as np
+
+    for name in ("mu", "tau"):
+        x = fit.draws(name)
+        if not np.all(np.isfinite(x)):
+            n = np.asarray(stats.n, dtype=float)
+            raise E.ModelError(f"bad model: {np.mean(~np.isfinite(x)):.0%} of the draws of {name} are not finite numbers: "
+                               f"the data carry too little weight for the sampler (the largest group size, or effective "
+                               f"n after forgetting, is {n.max():.3g}); nothing was written. Give more data, or a "
+                               "longer --half-life")
 
 
 def _physical_memory() -> int | None:
@@ -800,10 +817,10 @@ def _check_weighted(plan, half: float, model) -> None:
     if model.within in ("separate", "shared") and "measurements" in why:  # the model's replication check
         need = ("some group with an effective n of at least 2, of measurements that differ"
                 if model.within == "separate" else "more measurements than groups, by an effective n of at least 1")
-        raise E.InputError(f"bad option --half-life: a half-life of {half:g} days leaves too little weight to estimate "
+        raise E.InputError(f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight to estimate "
                            f"the within-group variance: {figures}, while the {model.within} structure needs {need}; "
                            f"{advice}")
-    raise E.InputError(f"bad option --half-life: a half-life of {half:g} days leaves too little weight ({figures}), "
+    raise E.InputError(f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight ({figures}), "
                        f"and the weighted data are refused: {why.removeprefix('bad model: ')}; {advice}")
 
 

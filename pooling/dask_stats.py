@@ -298,8 +298,7 @@ def _read_parquet_piece(piece, columns):
     except InputError:
         raise
     except Exception as exc:  # damaged pages, a page whose checksum does not match: several pyarrow types
-        raise InputError(f"bad input in '{path}': a damaged Parquet file; the rows after row {first_row} cannot be "
-                         f"read ({S._one_line(exc)[:200]})") from None
+        raise InputError(S.parquet_damage(path, first_row, exc)) from None
     finally:
         pf.close()
     df[_FILE] = path

@@ -890,8 +890,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
                     batch = next(batches, None)
                     df = None if batch is None else batch.to_pandas()
                 except Exception as exc:  # damaged pages: pyarrow raises ArrowInvalid, OSError and others
-                    raise InputError(f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} "
-                                     f"cannot be read ({_one_line(exc)[:200]})") from None
+                    raise InputError(parquet_damage(src, offset, exc)) from None
                 if df is None:
                     break
                 _check_parquet_text(batch, src, offset)
@@ -977,6 +976,15 @@ def open_parquet(path, src: str):
         return pq.ParquetFile(path, page_checksum_verification=True)
     except Exception as exc:  # pyarrow raises several types for a damaged file
         raise InputError(f"bad input in '{src}': not a readable Parquet file ({_one_line(exc)})") from None
+
+
+def parquet_damage(src: str, offset: int, exc: Exception) -> str:
+    """The one line for a Parquet page that cannot be read, or whose bytes do not match its checksum."""
+    if "CRC checksum verification failed" in str(exc):
+        return (f"bad input in '{src}': a damaged Parquet file: a page of the rows after row {offset} does not match "
+                "the checksum written with it (its bytes changed after it was written); nothing was read from it")
+    return f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} cannot be read " \
+           f"({_one_line(exc)[:200]})"
 
 
 def _arrow_family(t) -> str:

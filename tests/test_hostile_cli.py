@@ -150,7 +150,7 @@ CASES = [
     ("enc: --encoding utf-16 on utf-8", {"in.csv": CAFE.encode()}, FIT + ["--encoding", "utf-16"], 2,
      ["not in the utf-16 encoding", "BOM"]),
     ("enc: --encoding ascii on utf-8", {"in.csv": CAFE.encode()}, FIT + ["--encoding", "ascii"], 2,
-     ["not in the ascii encoding"]),
+     ["line 2", "the byte 0xC3 is not text in the ascii encoding", "b'Caf\\xc3\\xa90,10.0'"]),
     ("enc: a byte cp1252 does not define", {"in.csv": GOOD.encode() + b"L\x819,3\n"}, FIT + ["--encoding", "cp1252"],
      2, ["line 14", "the byte 0x81", "b'L\\x819,3'", "--encoding"]),
     ("enc: the same byte, cp1252 detected", {"in.csv": GOOD.encode() + b"L\x819,3\n"}, FIT, 2,
@@ -510,6 +510,22 @@ def test_a_half_life_that_leaves_too_little_weight_says_so(store, tmp_path, monk
     check_outcome(code, err, caught, 2, ["leaves too little weight"])
     code, _, err, caught = run_main(*base, "--half-life", str(longer))
     check_outcome(code, err, caught, {0, 3}, out=tmp_path / "run")
+
+
+def test_draws_that_are_not_finite_are_refused_and_not_recorded(store, tmp_path, monkeypatch):
+    """With a gamma prior on s^2 the replication check does not apply, and weights of 2^-51 and 2^-31 leave an
+    effective n near 1e-9, where the variance block overflows and every draw is NaN (seen by the sweep for
+    issue 13). Such a run was written with NaN answers (exit 3) and recorded, and the next refit of the store
+    failed on the recorded nulls (an internal error). Now it is refused before anything is written."""
+    from pooling.store import jobs
+
+    monkeypatch.chdir(tmp_path)
+    code, _, err, caught = run_main("refit", store, "--out", tmp_path / "run", "--as-of", "2024-06-01",
+                                    "--half-life", "3", "--s2", "gamma:1:1", *TINY)
+    check_outcome(code, err, caught, 2, ["draws of mu are not finite numbers", "effective n", "nothing was written",
+                                        "--half-life"])
+    assert not (tmp_path / "run").exists() and leftovers(tmp_path) == []
+    assert jobs.list_batches(store)[1] == []  # no run recorded
 
 
 # ---------------------------------------------------------------------------------------------
