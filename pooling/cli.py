@@ -445,8 +445,9 @@ def _check_finite(fit, stats) -> None:
     then overflows, whatever the priors, and every answer would be NaN."""
     import numpy as np
 
+    draws = getattr(fit, "kept", fit).draws  # summary mode: the kept fit holds the run's hyperparameter draws
     for name in ("mu", "tau"):
-        x = fit.draws(name)
+        x = draws(name)
         if not np.all(np.isfinite(x)):
             n = np.asarray(stats.n, dtype=float)
             raise E.ModelError(f"bad model: {np.mean(~np.isfinite(x)):.0%} of the draws of {name} are not finite numbers: "

@@ -975,7 +975,8 @@ def open_parquet(path, src: str):
     try:
         return pq.ParquetFile(path, page_checksum_verification=True)
     except Exception as exc:  # pyarrow raises several types for a damaged file
-        raise InputError(f"bad input in '{src}': not a readable Parquet file ({_one_line(exc)})") from None
+        raise InputError(f"bad input in '{src}': not a readable Parquet file: its footer, which describes its columns "
+                         f"and rows, is damaged or cut short (pyarrow: {_one_line(exc)[:160]})") from None
 
 
 def parquet_damage(src: str, offset: int, exc: Exception) -> str:
@@ -1168,6 +1169,8 @@ def _encoding_message(src: str, enc: str, exc: UnicodeError, detected: bool = Fa
     if found is None:
         return f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
     line, bad, reason, raw = found
+    if reason in ("truncated data", "unexpected end of data"):  # the codecs' words for a character cut off at the end
+        reason = "the file ends inside a character"
     enc = "UTF-8" if enc == "utf-8-sig" else enc  # the detected UTF-8, read past a byte-order mark if one is there
     if not bad:
         return f"bad input in '{src}', line {line}: the text is not in the {enc} encoding ({reason}); name the " \
