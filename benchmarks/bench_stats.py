@@ -38,7 +38,7 @@ def run(quick: bool = False) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         csv, pq = Path(tmp) / "parts.csv", Path(tmp) / "parts.parquet"
         df.to_csv(csv, index=False)
-        df.to_parquet(pq)
+        df.to_parquet(pq, write_page_checksum=True)  # as pooling asks of Parquet files: pages verified on reading
         cases = {
             "pandas groupby (in memory)": lambda: df.groupby("supplier")["strength"].agg(["count", "mean", "var"]),
             "from_frame (in memory)": lambda: S.from_frame(df, "supplier", "strength"),

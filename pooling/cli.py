@@ -347,6 +347,7 @@ def _effects(text):
 
 
 MAX_CHAINS = 1000
+MAX_SWEEPS = 10_000_000
 
 
 def _settings_from_args(args):
@@ -357,6 +358,13 @@ def _settings_from_args(args):
         # the first draw, and more chains give no better estimate than longer ones
         raise E.InputError(f"bad option --chains: at most {MAX_CHAINS} chains; found {args.chains}; ask for more "
                            "draws per chain (--draws) instead")
+    for option, value in (("--warmup", args.warmup), ("--draws", args.draws), ("--max-draws", args.max_draws)):
+        # this sampler settles within hundreds of sweeps and reaches its ESS targets within thousands; a
+        # chain that has not after ten million will not after more: a different prior is the cure
+        if value is not None and value > MAX_SWEEPS:
+            raise E.InputError(f"bad option {option}: at most {MAX_SWEEPS:,} sweeps per chain; found {value:,}. "
+                               "A few thousand are plenty when the diagnostics pass; if they do not, try a proper "
+                               "prior on tau rather than longer chains")
 
     return Settings(chains=args.chains, draws=args.draws, warmup=args.warmup, seed=args.seed,
                     max_draws=args.max_draws, threads=args.threads)
@@ -393,8 +401,9 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
             "or fit from Python with pooling.fit, whose draws keep these units")
     # --- end of hardening block ----------------------------------------------------------------------
     summary = _summary_args(args, stats, more, options)
-    _check_memory(args, stats.J, model.within, settings, summary["summary"])
+    _check_memory(args, stats.J, model, settings, summary["summary"])
     fit = do_fit(stats, model, settings, progress=False if args.quiet else None, init=init, **summary)
+    _check_finite(fit, stats)
     holder: dict = {}
 
     def answers():  # computed while draws.nc is written (output.write_run)
@@ -436,6 +445,23 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     return E.EXIT_OK
 
 
+def _check_finite(fit, stats) -> None:
+    """Refuse to write (or record) a run whose draws of mu or tau are not finite numbers. Seen with
+    forgetting weights so small that every group's effective n is below about 1e-3: the variance block
+    then overflows, whatever the priors, and every answer would be NaN."""
+    import numpy as np
+
+    draws = getattr(fit, "kept", fit).draws  # summary mode: the kept fit holds the run's hyperparameter draws
+    for name in ("mu", "tau"):
+        x = draws(name)
+        if not np.all(np.isfinite(x)):
+            n = np.asarray(stats.n, dtype=float)
+            raise E.ModelError(f"bad model: {np.mean(~np.isfinite(x)):.0%} of the draws of {name} are not finite numbers: "
+                               f"the data carry too little weight for the sampler (the largest group size, or effective "
+                               f"n after forgetting, is {n.max():.3g}); nothing was written. Give more data, or a "
+                               "longer --half-life")
+
+
 def _physical_memory() -> int | None:
     try:
         return int(os.sysconf("SC_PAGE_SIZE")) * int(os.sysconf("SC_PHYS_PAGES"))
@@ -443,36 +469,62 @@ def _physical_memory() -> int | None:
         return None
 
 
-def _check_memory(args, J: int, within: str, settings, summary) -> None:
-    """Refuse, before anything is allocated, draws that cannot fit in this machine's memory.
+#: The run needs about this many times the memory of the draws it keeps: the draws in the user's units,
+#: the diagnostics' sorted copies and the answers' per-draw tables come on top (measured with
+#: `pooling fit`, default model, 4 chains: peak memory grew by 1.15 to 1.7 times the kept draws'
+#: bytes at 500 and 2,000 groups; 2 leaves room for the extension rounds' joining).
+MEMORY_FACTOR = 2.0
+#: Beyond this many group-sweeps (chains x (warm-up + draws at the cap) x groups) a run takes days: the
+#: kernel does about 40 to 50 ns per group and sweep on one core (DEVELOPERS.md), so 1e13 is 5 days.
+MAX_GROUP_SWEEPS = 1e13
 
-    Every draw up to the cap is kept: chains x cap x 8 bytes x (the numbers kept per draw), where a
-    draw keeps mu, tau, s, nu and the kernel's count (5 numbers; 6 hyperparameters and the count in
-    summary mode) and, per kept group, theta (and sigma for `separate`; and the rank in summary mode).
+
+def _check_memory(args, J: int, model, settings, summary) -> None:
+    """Refuse, before anything is allocated, draws that cannot fit in this machine's memory, and a run
+    whose sweeps would take days.
+
+    Every draw up to the cap is kept: chains x cap x 8 bytes x (the numbers kept per draw). A draw keeps
+    mu, tau, the kernel's count, s and nu (`separate`), df (heavy tails) and, per group, theta, sigma
+    (`separate`) and lambda (heavy tails); in summary mode the kept groups' theta, sigma, lambda and rank.
+    The whole run needs about MEMORY_FACTOR times that.
     """
     from . import summary as S
 
+    within = model.within
+    sep = within == "separate"
+    heavy = getattr(model.between, "name", "heavy") != "normal"
     if summary in (None, "auto"):
         summary = J > S.AUTO_GROUPS or S.full_draw_bytes(J, within, settings) > S.AUTO_BYTES
     elif summary == "on":
         summary = True
     elif summary == "off":
         summary = False
+    scalars = 3 + (2 if sep else 0) + (1 if heavy else 0)
     if summary:
         kept = min(J, len(getattr(args, "keep", None) or []) + len(getattr(args, "compare", None) or [])
                    + max(0, getattr(args, "keep_sample", 200) or 0) + S.TOP_KEEP)
-        per_draw = 7 + kept * (3 if within == "separate" else 2)
+        per_draw = scalars + 1 + kept * (2 + sep + heavy)
     else:
-        per_draw = 5 + J * (2 if within == "separate" else 1)
+        per_draw = scalars + J * (1 + sep + heavy) + (1 if within == "shared" else 0)
     cap = settings.draw_cap
-    need = settings.chains * cap * per_draw * 8
+    sweeps = float(settings.chains) * (settings.warmup + cap) * max(J, 1)
+    if sweeps > MAX_GROUP_SWEEPS:
+        days = sweeps * 45e-9 / 86400
+        raise E.InputError(f"bad options --warmup/--draws: {settings.chains} chains x ({settings.warmup} warm-up + "
+                           f"{cap} draws at the cap) x {J} groups are {sweeps:.2g} group-sweeps, about {days:.0f} days "
+                           f"of one core; at most {MAX_GROUP_SWEEPS:.0e}: ask for fewer sweeps (a few thousand per "
+                           "chain are plenty when the diagnostics pass)")
+    keep = settings.chains * cap * per_draw * 8
+    need = int(keep * MEMORY_FACTOR)
     have = _physical_memory()
     if have is None or need <= have:
         return
     which = "--max-draws" if settings.max_draws is not None else "--draws (the cap is 4 x --draws)"
     raise E.InputError(f"bad option {which.split()[0]}: {settings.chains} chains x {cap} draws at the cap x {per_draw} "
-                       f"numbers per draw x 8 bytes need {_gib(need)} of memory, more than this machine's "
-                       f"{_gib(have)}; ask for fewer draws with {which}")
+                       f"numbers per draw x 8 bytes are {_gib(keep)} of draws, and the run needs about "
+                       f"{MEMORY_FACTOR:g} times that ({_gib(need)} of memory), more than this machine's {_gib(have)}; "
+                       f"ask for fewer draws with {which}"
+                       + ("" if summary else ", or use summary mode (--summary on)"))
 
 
 def _gib(nbytes: int) -> str:
@@ -687,7 +739,10 @@ def cmd_refit(args, argv) -> int:
     if plan.stats.J == 0 and half is not None:
         _all_weights_underflowed(plan, half)
     _check_store_columns(args, plan.stats, shown)
-    init = None if args.fresh_start else plan.init_for(_model_from_args(args, plan.stats), args.chains)
+    model = _model_from_args(args, plan.stats)
+    if half is not None:
+        _check_weighted(plan, half, model)
+    init = None if args.fresh_start else plan.init_for(model, args.chains)
     settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
                 "seed": args.seed, "warm_start": init is not None}
 
@@ -739,6 +794,72 @@ def _all_weights_underflowed(plan, half: float) -> None:
                        f"half-life of {half:g} days: the oldest batch is {max(ages):.4g} days old "
                        f"({max(ages) / half:.4g} half-lives){young}, and a weight stays above zero only within about "
                        "1074 half-lives; give a longer --half-life")
+
+
+def _fits(stats, model) -> str | None:
+    """None when `model` can be fitted to `stats`, else the model's own one-line refusal."""
+    from .model import build
+
+    try:
+        build(stats, model)
+    except E.ModelError as exc:
+        return str(exc)
+    return None
+
+
+def _check_weighted(plan, half: float, model) -> None:
+    """A half-life that leaves too little weight for `model` (while the unweighted batches would do) is
+    refused as such, with the figures: the largest effective n, the newest batch's weight, and about the
+    shortest half-life that would do."""
+    import math
+
+    import numpy as np
+
+    from .stats import _show
+    from .store.combine import combine, forgetting_weights
+
+    why = _fits(plan.stats, model)
+    if why is None:
+        return
+    batches = list(plan.snapshot.batches)
+
+    def weighed(h):
+        w = forgetting_weights(batches, plan.reference, h) if h is not None else None
+        return combine(plan.snapshot.stats, w, source=plan.stats.source)
+
+    if _fits(weighed(None), model) is not None:
+        return  # the data without forgetting are refused too: the model's own message says why
+    lo, hi = half, half * 2.0
+    while _fits(weighed(hi), model) is not None and hi < 1e300:
+        lo, hi = hi, hi * 2.0
+    for _ in range(30):  # bisection on a log scale, to about 2% of the half-life
+        if hi / lo < 1.02:
+            break
+        mid = math.sqrt(lo * hi)
+        lo, hi = (lo, mid) if _fits(weighed(mid), model) is None else (mid, hi)
+    n = np.asarray(plan.stats.n, dtype=float)
+    j = int(np.argmax(n))
+    figures = (f"the largest effective n is {n[j]:.3g} (group {_show(plan.stats.labels[j])}; {plan.stats.J} groups "
+               f"with {float(n.sum()):.3g} in all) and the newest batch weighs {max(plan.weights):.3g}")
+    advice = f"give a longer --half-life (about {_round_up(hi)} days or more here), or refit without one"
+    if model.within in ("separate", "shared") and "measurements" in why:  # the model's replication check
+        need = ("some group with an effective n of at least 2, of measurements that differ"
+                if model.within == "separate" else "more measurements than groups, by an effective n of at least 1")
+        raise E.InputError(f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight to estimate "
+                           f"the within-group variance: {figures}, while the {model.within} structure needs {need}; "
+                           f"{advice}")
+    raise E.InputError(f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight ({figures}), "
+                       f"and the weighted data are refused: {why.removeprefix('bad model: ')}; {advice}")
+
+
+def _round_up(x: float) -> str:
+    """x rounded up to two significant figures, as text."""
+    import math
+
+    if x <= 0 or not math.isfinite(x):
+        return f"{x:g}"
+    step = 10.0 ** (math.floor(math.log10(x)) - 1)
+    return f"{math.ceil(x / step - 1e-9) * step:.3g}"
 
 
 def _store_name(shown: str) -> str:

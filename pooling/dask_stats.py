@@ -32,6 +32,7 @@ import pandas as pd
 
 from . import stats as S
 from .errors import InputError
+from .runmark import read_marker
 
 MISSING_DASK = "reading a folder, a glob of files or a cluster needs Dask, which is not installed: pip install pooling[dask]"
 _CSV_SUFFIXES = (".csv", ".tsv", ".txt")
@@ -83,12 +84,16 @@ def resolve(paths_or_glob, fmt: str | None = None) -> tuple[list[str], str]:
             files.append(item)
         elif Path(item).is_dir():
             found = sorted(str(p) for p in Path(item).rglob("*")
-                           if p.is_file() and p.suffix.lower() in _CSV_SUFFIXES + _PARQUET_SUFFIXES)
+                           if p.is_file() and p.suffix.lower() in _CSV_SUFFIXES + _PARQUET_SUFFIXES
+                           and not _in_run_folder(p, Path(item)))
             if not found:
-                raise InputError(f"bad input: the folder '{item}' holds no .csv, .tsv, .txt or .parquet file")
+                raise InputError(f"bad input: the folder '{item}' holds no .csv, .tsv, .txt or .parquet file"
+                                 " (run folders of pooling in it are not read)")
             files.extend(found)
         elif re.search(r"[*?\[]", item) and not Path(item).is_file():
-            found = sorted(p for p in _glob.glob(item, recursive=True) if Path(p).is_file())
+            base = _glob_base(item)
+            found = sorted(p for p in _glob.glob(item, recursive=True)
+                           if Path(p).is_file() and not _in_run_folder(Path(p), base))
             if not found:
                 raise InputError(f"bad input: no file matches '{item}'")
             files.extend(found)
@@ -100,6 +105,28 @@ def resolve(paths_or_glob, fmt: str | None = None) -> tuple[list[str], str]:
         raise InputError(f"bad input: '{_show_input(paths_or_glob)}' mixes CSV and Parquet files; "
                          "read them with two narrower globs, or convert one kind")
     return files, kinds.pop()
+
+
+def _in_run_folder(path: Path, top: Path) -> bool:
+    """True when `path` lies in a run folder that pooling wrote (marked: runmark.MARKER) strictly below `top`:
+    such a folder is a run's output (groups.csv, changes.csv), never data, though it may sit among the data."""
+    folder = path.parent
+    seen = 0
+    while folder != top and folder != folder.parent and seen < 64:
+        if read_marker(folder) is not None:
+            return True
+        folder, seen = folder.parent, seen + 1
+    return False
+
+
+def _glob_base(pattern: str) -> Path:
+    """The folder a glob pattern starts from: its leading parts without wildcards."""
+    parts = []
+    for part in Path(pattern).parts:
+        if re.search(r"[*?\[]", part):
+            break
+        parts.append(part)
+    return Path(*parts) if parts else Path(".")
 
 
 def _kind(path: str, fmt: str | None) -> str:
@@ -238,40 +265,73 @@ def _checked_partition(df, group: str, value: str, csv: bool, whole: frozenset, 
     return out
 
 
-def _read_parquet_piece(piece, columns):
-    """One partition of a local Parquet file: a run of row groups, with the file's row numbers."""
-    import pyarrow.parquet as pq
+def _parquet_file(path: str):
+    """A Parquet file opened for reading with every page's checksum verified (stats.open_parquet); a URL
+    through fsspec (which Dask itself needs), so that its pages are verified too: dask's own
+    read_parquet reads them without the check."""
+    if "://" not in path:
+        return S.open_parquet(path, path)
+    import fsspec
 
-    path, groups, first_row = piece
-    df = pq.ParquetFile(path).read_row_groups(groups, columns=columns).to_pandas()
+    try:
+        handle = fsspec.open(path, "rb").open()
+    except Exception as exc:  # the file system's own errors, of many types
+        raise InputError(f"bad input: cannot open '{path}' ({S._one_line(exc)[:200]})") from None
+    try:
+        return S.open_parquet(handle, path)
+    except BaseException:
+        handle.close()
+        raise
+
+
+def _read_parquet_piece(piece, columns):
+    """One partition of a Parquet file: a run of row groups (None: all of them), with the file's row numbers."""
+    path, groups, first_row, rows = piece
+    pf = _parquet_file(path)
+    try:
+        table = pf.read(columns=columns) if groups is None else pf.read_row_groups(groups, columns=columns)
+        if len(table) != rows:  # a value count damaged in the footer: pyarrow stops early
+            raise InputError(f"bad input in '{path}': a damaged Parquet file: its footer says {rows} rows from row "
+                             f"{first_row + 1} on, but {len(table)} could be read")
+        S._check_parquet_text(table, path, first_row)
+        df = table.to_pandas()
+    except InputError:
+        raise
+    except Exception as exc:  # damaged pages, a page whose checksum does not match: several pyarrow types
+        raise InputError(S.parquet_damage(path, first_row, exc)) from None
+    finally:
+        pf.close()
     df[_FILE] = path
     df["__pooling_row__"] = np.arange(first_row, first_row + len(df), dtype=np.int64)
     return df
 
 
 def _parquet_frame(dd, files: list[str], group: str, value: str):
-    if any("://" in f for f in files):
-        return dd.read_parquet(files, columns=[group, value])
-    import pyarrow.parquet as pq
-
     pieces = []
     for f in files:
+        pf = _parquet_file(f)
         try:
-            pf = pq.ParquetFile(f)
-        except Exception as exc:  # pyarrow raises several types for a damaged file
-            raise InputError(f"bad input in '{f}': not a readable Parquet file ({S._one_line(exc)})") from None
-        S._require_columns(pf.schema_arrow.names, {"group": group, "value": value}, f)
-        meta = pf.metadata
+            S._require_columns(pf.schema_arrow.names, {"group": group, "value": value}, f)
+            S.check_parquet_footer(pf, [group, value], f)
+            meta = pf.metadata
+            if meta.num_rows == 0 and len(files) == 1:
+                raise InputError(S.explain_no_rows(pf, [group, value], f))
+        finally:
+            pf.close()
+        if "://" in f:  # one partition per remote file: its row groups are read together
+            if meta.num_rows:
+                pieces.append((f, None, 0, meta.num_rows))
+            continue
         run, rows, start = [], 0, 0
         for k in range(meta.num_row_groups):
             run.append(k)
             rows += meta.row_group(k).num_rows
             if rows >= _PARQUET_ROWS:
-                pieces.append((f, run, start))
+                pieces.append((f, run, start, rows))
                 start += rows
                 run, rows = [], 0
         if run:
-            pieces.append((f, run, start))
+            pieces.append((f, run, start, rows))
     if not pieces:
         raise InputError("bad input: the Parquet files hold no rows")
     first = _read_parquet_piece(pieces[0], [group, value]).iloc[:0]
@@ -339,13 +399,38 @@ def read_table_dask(paths_or_glob, group: str, value: str, scheduler=None, *, fo
     dask, dd = _dask()
     files, kind = resolve(paths_or_glob, format)
     source = _show_input(paths_or_glob)
-    if kind == "parquet":
-        ddf = _parquet_frame(dd, files, group, value)
-        whole = frozenset()
-    else:
-        ddf = _csv_frame(dd, files, group, value, encoding, delimiter, thousands, decimal, blocksize)
-        limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
-        whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
+    enc = None
+    try:
+        if kind == "parquet":
+            ddf = _parquet_frame(dd, files, group, value)
+            whole = frozenset()
+        else:
+            local = [f for f in files if "://" not in f]
+            enc = S.check_encoding(encoding) if encoding else (S._detect_encoding(Path(local[0]), None) if local
+                                                               else "utf-8")
+            ddf = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
+            limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
+            whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
+        return _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source)
+    except UnicodeError as exc:  # a file (often not the first, whose encoding was detected) in another encoding
+        raise InputError(_undecodable(files, enc, exc, detected=not encoding)) from None
+
+
+def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected: bool) -> str:
+    """The one line for bytes that the files' encoding does not decode: the first such file and line."""
+    local = [f for f in files if "://" not in f]
+    for f in local:
+        if enc is not None and S.first_undecodable(f, enc) is not None:
+            msg = S._encoding_message(f, enc, exc, detected=detected and f == local[0])
+            if detected and f != local[0]:
+                shown = "UTF-8" if enc == "utf-8-sig" else enc
+                msg += f" (all files are read in {shown}, the encoding detected in the first, '{local[0]}')"
+            return msg
+    return S._encoding_message(local[0] if local else files[0], enc or "utf-8", exc)
+
+
+def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S.GroupStats:
+    """The group statistics of the checked frame, computed on `scheduler`."""
     meta = pd.DataFrame({group: pd.Series([], dtype=object).astype(str), value: pd.Series([], dtype=np.float64),
                          _ORDER: pd.Series([], dtype=np.int64)})
     checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, meta=meta)

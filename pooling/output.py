@@ -13,6 +13,7 @@ import json
 import math
 import os
 import re
+import shlex
 import shutil
 import tempfile
 import time
@@ -27,6 +28,7 @@ except ImportError:  # pragma: no cover
 
 from . import __version__
 from .errors import InputError, OutputError
+from .runmark import MARKER, read_marker  # noqa: F401 -- read_marker: part of this module's interface
 
 SUMMARY_FORMAT = 1
 
@@ -187,10 +189,9 @@ def check_parent(path: Path) -> Path:
 # ---------------------------------------------------------------------------------------------
 # run folders: marked, checked, written atomically, and their leftovers cleaned
 
-#: The marker file in every run folder this program writes (and in its hidden working folders).
-#: A folder is replaced only when it holds this marker; a hidden leftover of a killed run is removed
-#: only when it holds it and no process holds its lock.
-MARKER = ".pooling-run"
+#: MARKER (runmark.py) is the marker file in every run folder this program writes (and in its hidden
+#: working folders). A folder is replaced only when it holds this marker; a hidden leftover of a killed
+#: run is removed only when it holds it and no process holds its lock.
 MARKER_FORMAT = 1
 _LEFTOVER = re.compile(r"^\..*\.(partial|old)-[A-Za-z0-9_]{8}$")
 _NAME_MAX = 255
@@ -216,18 +217,6 @@ def _name_max(folder: Path) -> int:
 def _stem(name: str) -> str:
     """The run's name inside a hidden working folder's name, short enough that the whole fits."""
     return name if len(os.fsencode(name)) <= 160 else name[:40]
-
-
-def read_marker(folder: Path) -> dict | None:
-    """The marker of a folder this program wrote, or None (no marker, or not one of ours)."""
-    try:
-        with open(Path(folder) / MARKER, "rb") as fh:
-            info = json.loads(fh.read(4096).decode("utf-8"))
-    except (OSError, ValueError):
-        return None
-    if not isinstance(info, dict) or info.get("written_by") != "pooling" or not isinstance(info.get("format"), int):
-        return None
-    return info
 
 
 def _locked_marker(folder: Path, info: dict) -> int:
@@ -353,6 +342,9 @@ def check_target(out: Path, replace: bool, protect=()) -> Path:
             how = "is" if p == real else "holds"
             raise InputError(f"bad option --out: '{out}' {how} {what} '{path}'; a run writes a folder of its own (and "
                              "--replace would remove what is in it): name a new folder")
+        if p.is_dir() and _inside(real, p):  # its groups.csv would sit among the data of a later run
+            raise InputError(f"bad option --out: '{out}' is inside {what} '{path}', whose files are all read as data; "
+                             "write the run folder outside it, for example --out runs/NAME")
     if out.is_symlink():
         raise OutputError(f"cannot write the run folder '{out}': it is a symbolic link; give the folder's own path")
     if _lexists(out):
@@ -378,11 +370,39 @@ def check_target(out: Path, replace: bool, protect=()) -> Path:
     return out
 
 
+#: the files a run folder of pooling held before run folders were marked (with a refit's extras)
+_UNMARKED_RUN = ("summary.json", "draws.nc", "groups.csv", "report.html", "changes.json", "changes.csv",
+                 "history.html")
+
+
+def _unmarked_run(out: Path) -> str | None:
+    """The pooling version named by the summary.json of a run folder written before run folders were
+    marked, when `out` holds such a folder's files and nothing else; else None."""
+    try:
+        names = {e.name for e in os.scandir(out)}
+        with open(out / "summary.json", "rb") as fh:
+            head = fh.read(4096).decode("utf-8", "replace")  # the version is among summary.json's first keys
+    except OSError:
+        return None
+    if not names <= set(_UNMARKED_RUN) or not {"summary.json", "draws.nc"} <= names:
+        return None
+    m = re.search(r'"pooling_version"\s*:\s*"([^"\\]{1,40})"', head)
+    return m.group(1) if m else None
+
+
 def _check_replaceable(out: Path) -> None:
     info = read_marker(out)
-    if info is None or info.get("kind") != "run":
-        raise OutputError(f"cannot replace '{out}': it is not a run folder written by pooling (it has no '{MARKER}' "
-                          "marker); remove it yourself, or choose another --out")
+    if info is not None and info.get("kind") == "run":
+        return
+    version = _unmarked_run(out) if info is None else None
+    if version is not None:
+        raise OutputError(f"cannot replace '{out}': it has no '{MARKER}' marker but holds only a run's files "
+                          f"(summary.json of pooling {version}, draws.nc, ...): a run folder written before run folders "
+                          "were marked. pooling replaces only marked folders: if it holds nothing you need, remove it "
+                          f"(rm -r -- {shlex.quote(str(out))}) and run again, or choose another --out")
+    raise OutputError(f"cannot replace '{out}': it is not a run folder written by pooling (it has no '{MARKER}' "
+                      "marker, nor only the files of a run from before markers: summary.json, draws.nc, groups.csv, "
+                      "report.html); remove it yourself, or choose another --out")
 
 
 def _fsync_folder(folder: Path) -> None:

@@ -25,6 +25,7 @@ import math
 import os
 import re
 import stat
+import threading
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -879,32 +880,30 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
     path = _open_check(path)
     src = str(path)
     if _is_parquet(path):
-        import pyarrow.parquet as pq
-
-        try:
-            pf = pq.ParquetFile(path)
-        except Exception as exc:  # pyarrow raises several types for a damaged file
-            raise InputError(f"bad input in '{src}': not a readable Parquet file ({_one_line(exc)})") from None
-        _require_columns(pf.schema_arrow.names, _roles(columns, text_columns), src)
+        pf = open_parquet(path, src)
         offset = 0
-        batches = pf.iter_batches(batch_size=chunk_rows, columns=columns)
         try:
+            _require_columns(pf.schema_arrow.names, _roles(columns, text_columns), src)
+            check_parquet_footer(pf, columns, src)
+            batches = pf.iter_batches(batch_size=chunk_rows, columns=columns)
             while True:
                 try:
                     batch = next(batches, None)
                     df = None if batch is None else batch.to_pandas()
                 except Exception as exc:  # damaged pages: pyarrow raises ArrowInvalid, OSError and others
-                    raise InputError(f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} "
-                                     f"cannot be read ({_one_line(exc)[:200]})") from None
+                    raise InputError(parquet_damage(src, offset, exc)) from None
                 if df is None:
                     break
                 _check_parquet_text(batch, src, offset)
                 yield offset, df
                 offset += len(df)
+            if offset == 0:
+                raise InputError(explain_no_rows(pf, columns, src))
+            if offset != pf.metadata.num_rows:  # a value count damaged in the footer: pyarrow stops early
+                raise InputError(f"bad input in '{src}': a damaged Parquet file: its footer says "
+                                 f"{pf.metadata.num_rows} rows but {offset} could be read")
         finally:
             pf.close()
-        if offset == 0:
-            raise InputError(f"bad input in '{src}': the Parquet file has the columns but no rows")
         return
     enc = _detect_encoding(path, encoding)
     check_number_format(thousands, decimal)
@@ -934,7 +933,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             thousands=thousands, decimal=decimal or ".", skipinitialspace=True,
         )
     except UnicodeError as exc:
-        raise InputError(_encoding_message(src, enc, exc)) from None
+        raise InputError(_encoding_message(src, enc, exc, detected=not encoding)) from None
     except pd.errors.EmptyDataError:
         raise InputError(f"bad input in '{src}': the file has no header and no data") from None
     except pd.errors.ParserError as exc:
@@ -951,7 +950,7 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             except StopIteration:
                 break
             except UnicodeError as exc:
-                raise InputError(_encoding_message(src, enc, exc)) from None
+                raise InputError(_encoding_message(src, enc, exc, detected=not encoding)) from None
             except pd.errors.ParserError as exc:
                 raise InputError(_parser_message(src, exc, sep)) from None
             df = df.iloc[:, where]
@@ -963,6 +962,115 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
         reader.close()
     if offset == 0:
         raise InputError(f"bad input in '{src}': a header but no data rows")
+
+
+def open_parquet(path, src: str):
+    """A pyarrow ParquetFile that verifies each page's CRC-32 checksum as it reads the page.
+
+    Parquet keeps a checksum only for the pages whose writer chose to write one (pyarrow:
+    write_page_checksum=True); a page without one is read unchecked, and so are the page headers and the
+    footer, which no checksum covers (check_parquet_counts looks at what the footer says of itself).
+    """
+    import pyarrow.parquet as pq
+
+    try:
+        return pq.ParquetFile(path, page_checksum_verification=True)
+    except Exception as exc:  # pyarrow raises several types for a damaged file
+        raise InputError(f"bad input in '{src}': not a readable Parquet file: its footer, which describes its columns "
+                         f"and rows, is damaged or cut short (pyarrow: {_one_line(exc)[:160]})") from None
+
+
+def parquet_damage(src: str, offset: int, exc: Exception) -> str:
+    """The one line for a Parquet page that cannot be read, or whose bytes do not match its checksum."""
+    if "CRC checksum verification failed" in str(exc):
+        return (f"bad input in '{src}': a damaged Parquet file: a page of the rows after row {offset} does not match "
+                "the checksum written with it (its bytes changed after it was written); nothing was read from it")
+    return f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} cannot be read " \
+           f"({_one_line(exc)[:200]})"
+
+
+def _arrow_family(t) -> str:
+    """The kind of values an Arrow type holds, as far as a Parquet column's physical type decides it."""
+    import pyarrow as pa
+
+    if pa.types.is_dictionary(t):
+        t = t.value_type
+    checks = [("text", (pa.types.is_string, pa.types.is_large_string, pa.types.is_binary, pa.types.is_large_binary,
+                        pa.types.is_fixed_size_binary, getattr(pa.types, "is_string_view", lambda _: False),
+                        getattr(pa.types, "is_binary_view", lambda _: False))),
+              ("integer", (pa.types.is_integer,)), ("floating", (pa.types.is_floating,)),
+              ("decimal", (pa.types.is_decimal,)), ("boolean", (pa.types.is_boolean,)),
+              ("time", (pa.types.is_temporal,))]
+    return next((name for name, tests in checks if any(test(t) for test in tests)), "other")
+
+
+def check_parquet_footer(pf, columns, src: str) -> None:
+    """Refuse a Parquet file whose footer contradicts itself: no checksum covers the footer.
+
+    Two checks that need nothing the footer might have lost: the file's row count must be the sum of
+    its row groups' (a count zeroed by damage would read as fewer rows, or none); and where the writer
+    kept the Arrow schema beside the Parquet one (pyarrow and pandas do), each column read must hold
+    the same kind of values in both (a damaged type code would make text read as numbers, or numbers
+    as other numbers).
+    """
+    meta = pf.metadata
+    damaged = f"bad input in '{src}': a damaged Parquet file"
+    total = sum(meta.row_group(k).num_rows for k in range(meta.num_row_groups))
+    if meta.num_rows != total:
+        raise InputError(f"{damaged}: its footer says {meta.num_rows} rows but its row groups hold {total}")
+    stored = (meta.metadata or {}).get(b"ARROW:schema")
+    if stored is None:
+        return
+    import base64
+
+    import pyarrow as pa
+
+    try:
+        kept = pa.ipc.read_schema(pa.py_buffer(base64.b64decode(stored)))
+        kept.names  # noqa: B018 -- names are decoded here: damaged ones are not UTF-8
+    except Exception as exc:  # base64, IPC or UTF-8 errors: the kept schema itself is damaged
+        raise InputError(f"{damaged}: its kept Arrow schema cannot be read ({_one_line(exc)[:120]})") from None
+    have = pf.schema_arrow
+    for name in columns:
+        if name in kept.names and name in have.names:
+            a, b = kept.field(name).type, have.field(name).type
+            if _arrow_family(a) != _arrow_family(b):
+                raise InputError(f"{damaged}: column '{name}' was written as {a} but its Parquet type now reads as "
+                                 f"{b}")
+
+
+def explain_no_rows(pf, columns, src: str) -> str:
+    """Why a Parquet file read no rows: one line, naming damage where the footer shows it.
+
+    For a column that is not repeated, each row group holds one value (or null) per row, so a column chunk
+    whose count of values differs from its row group's rows, or a row group of 0 rows whose column chunk
+    records a smallest and largest value, was damaged. An empty file written as such (0 rows, 0 values,
+    no statistics) is empty.
+    Called only after check_parquet_footer, which refuses a damaged type code (pyarrow cannot always
+    read a column chunk's statistics under a wrong type).
+    """
+    meta = pf.metadata
+    schema = pf.schema
+    wanted = [i for i in range(len(schema)) if schema.column(i).path in columns
+              and schema.column(i).max_repetition_level == 0]
+    damaged = f"bad input in '{src}': a damaged Parquet file"
+    for k in range(meta.num_row_groups):
+        rg = meta.row_group(k)
+        for i in wanted:
+            col = rg.column(i)
+            name = schema.column(i).path
+            if col.num_values != rg.num_rows:
+                return (f"{damaged}: row group {k + 1} says {rg.num_rows} rows but its column '{name}' holds "
+                        f"{col.num_values} values")
+            st = col.statistics
+            if rg.num_rows == 0 and st is not None and st.has_min_max:
+                return (f"{damaged}: row group {k + 1} says 0 rows but its column '{name}' records values (from "
+                        f"{_show(st.min, 30)} to {_show(st.max, 30)})")
+    if meta.num_rows:
+        return f"{damaged}: its footer says {meta.num_rows} rows but none could be read"
+    groups = "no row group" if meta.num_row_groups == 0 else f"{meta.num_row_groups} empty row group" + (
+        "s" if meta.num_row_groups > 1 else "")
+    return f"bad input in '{src}': the Parquet file has the columns but no rows ({groups})"
 
 
 def _check_parquet_text(batch, src: str, offset: int) -> None:
@@ -984,9 +1092,107 @@ def _one_line(exc) -> str:
     return " ".join(str(exc).split())
 
 
-def _encoding_message(src: str, enc: str, exc: UnicodeError) -> str:
+# the stand-in for undecodable bytes while looking for them (a private-use code point: text holding it
+# can at worst misplace the line number of an error message)
+_STAND_IN = "\U000ffffd"
+_UNDECODABLE = threading.local()
+
+
+def _stand_in(exc):
+    if isinstance(exc, UnicodeDecodeError):
+        found = getattr(_UNDECODABLE, "found", None)
+        if found is not None and not found:
+            found.append((bytes(exc.object[exc.start:exc.end]), exc.reason))
+        return _STAND_IN, exc.end
+    raise exc
+
+
+codecs.register_error("pooling-stand-in", _stand_in)
+
+
+def _line_breaks(text: str) -> int:
+    """Line ends in `text` as the CSV readers count them: \n, \r\n, or \r alone."""
+    return text.count("\n") + text.count("\r") - text.count("\r\n")
+
+
+def first_undecodable(path, enc: str) -> tuple[int, bytes, str, bytes | None] | None:
+    """(line number, the bytes, the codec's reason, the line's bytes or None) of the first bytes of `path`
+    that `enc` does not decode; None when all of it decodes. The line's own bytes are given for
+    encodings in which a line ends with the byte 0x0A (ASCII's line end), else None. On the error
+    path only: it reads the file once more."""
+    _UNDECODABLE.found = []
+    try:
+        decoder = codecs.getincrementaldecoder(enc)(errors="pooling-stand-in")
+        breaks, carry_cr = 0, False
+        with open(path, "rb") as fh:
+            while True:
+                block = fh.read(1 << 20)
+                text = decoder.decode(block, final=not block)
+                at = text.find(_STAND_IN)
+                head = text if at < 0 else text[:at]
+                if carry_cr and head.startswith("\n"):
+                    breaks -= 1  # a \r\n cut between two blocks is one line end
+                breaks += _line_breaks(head)
+                carry_cr = head.endswith("\r")
+                if at >= 0:
+                    bad, reason = _UNDECODABLE.found[0] if _UNDECODABLE.found else (b"", "not decodable")
+                    return breaks + 1, bad, reason, _raw_line(path, breaks + 1, enc)
+                if not block:
+                    return None
+    except UnicodeDecodeError:
+        return None
+    except UnicodeError as exc:  # UTF-16 and UTF-32 refuse a stream without a byte-order mark at its start
+        return 1, b"", _one_line(exc), None
+    except (LookupError, OSError):
+        return None
+    finally:
+        _UNDECODABLE.found = None
+
+
+def _raw_line(path, number: int, enc: str) -> bytes | None:
+    """Line `number` (1-based) of the file as bytes, for encodings whose line end is the byte 0x0A."""
+    try:
+        if not "x\r\nx".encode(enc).endswith(b"x\r\nx"):  # (a byte-order mark may come first)
+            return None
+    except (LookupError, UnicodeError):
+        return None
+    with open(path, "rb") as fh:
+        for k, line in enumerate(re.split(rb"\r\n|\r|\n", fh.read()), start=1):  # error path: one read is fine
+            if k == number:
+                return line
+    return None
+
+
+def _encoding_message(src: str, enc: str, exc: UnicodeError, detected: bool = False) -> str:
     what = getattr(exc, "reason", None) or _one_line(exc)
-    return f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
+    how = detected and enc == "cp1252"
+    found = first_undecodable(src, enc) if Path(src).is_file() else None
+    if found is None:
+        return f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
+    line, bad, reason, raw = found
+    if reason in ("truncated data", "unexpected end of data"):  # the codecs' words for a character cut off at the end
+        reason = "the file ends inside a character"
+    enc = "UTF-8" if enc == "utf-8-sig" else enc  # the detected UTF-8, read past a byte-order mark if one is there
+    if not bad:
+        return f"bad input in '{src}', line {line}: the text is not in the {enc} encoding ({reason}); name the " \
+               "file's encoding with --encoding"
+    shown = " ".join(f"0x{b:02X}" for b in bad[:8]) + (" …" if len(bad) > 8 else "")
+    which = f"the byte {shown} is" if len(bad) == 1 else f"the bytes {shown} are"
+    where = f"; the line's bytes are {_show_bytes_at(raw, bad)}" if raw is not None else ""
+    if how:
+        said = f"the file holds no UTF-8 text and was read as Windows-1252 (cp1252), in which {which} not text"
+    else:
+        said = f"{which} not text in the {enc} encoding"
+    return (f"bad input in '{src}', line {line}: {said} ({reason}){where}; correct the line, or name the file's "
+            "encoding with --encoding")
+
+
+def _show_bytes_at(line: bytes, bad: bytes, limit: int = 60) -> str:
+    """A line's bytes for a one-line message, cut around the first occurrence of `bad`."""
+    start = max(line.find(bad), 0) if bad else 0
+    lo = max(0, start - limit // 2)
+    cut = line[lo:lo + limit]
+    return ("…" if lo else "") + repr(cut) + ("…" if lo + limit < len(line) else "")
 
 
 def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:

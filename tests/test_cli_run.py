@@ -92,7 +92,7 @@ def _long_fit(tmp_path, small_csv):
     env = dict(os.environ)
     return subprocess.Popen([sys.executable, "-m", "pooling.cli", "fit", str(small_csv), "--group", "plant",
                              "--value", "thickness", "--out", str(tmp_path / "run"), "--draws", "3000000",
-                             "--warmup", "10", "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                             "--max-draws", "3000000", "--warmup", "10", "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True, env=env)
 
 

@@ -150,7 +150,11 @@ CASES = [
     ("enc: --encoding utf-16 on utf-8", {"in.csv": CAFE.encode()}, FIT + ["--encoding", "utf-16"], 2,
      ["not in the utf-16 encoding", "BOM"]),
     ("enc: --encoding ascii on utf-8", {"in.csv": CAFE.encode()}, FIT + ["--encoding", "ascii"], 2,
-     ["not in the ascii encoding"]),
+     ["line 2", "the byte 0xC3 is not text in the ascii encoding", "b'Caf\\xc3\\xa90,10.0'"]),
+    ("enc: a byte cp1252 does not define", {"in.csv": GOOD.encode() + b"L\x819,3\n"}, FIT + ["--encoding", "cp1252"],
+     2, ["line 14", "the byte 0x81", "b'L\\x819,3'", "--encoding"]),
+    ("enc: the same byte, cp1252 detected", {"in.csv": GOOD.encode() + b"L\x819,3\n"}, FIT, 2,
+     ["line 14", "read as Windows-1252", "the byte 0x81"]),
     ("enc: a character cut at the end", {"in.csv": CAFE.encode() + b"Caf\xc3"}, FIT, 2, ["line 14"]),
     ("enc: lines ended by CR only", {"in.csv": GOOD.replace("\n", "\r").encode()}, FIT, {0, 3}, []),
     ("enc: only a byte-order mark", {"in.csv": b"\xef\xbb\xbf"}, FIT, 2, ["no header and no data"]),
@@ -197,7 +201,11 @@ CASES = [
     ("opt: --estimate and --std-error the same", {"in.csv": GOOD},
      ["fit", "in.csv", "--group", "lab", "--estimate", "y", "--std-error", "y", "--out", "run"], 2, ["both 'y'"]),
     ("opt: --draws 1000000000", {"in.csv": GOOD}, FIT + ["--draws", "1000000000", "--quiet"], 2,
-     ["--draws", "of memory", "TiB"]),
+     ["--draws", "at most 10,000,000 sweeps per chain", "1,000,000,000"]),
+    ("opt: --warmup 1000000000", {"in.csv": GOOD}, FIT + ["--warmup", "1000000000", "--quiet"], 2,
+     ["--warmup", "at most 10,000,000 sweeps per chain"]),
+    ("opt: draws beyond memory", {"in.csv": GOOD}, FIT + ["--chains", "1000", "--draws", "2500000", "--quiet"], 2,
+     ["--draws", "of memory", "TiB", "the run needs about 2 times that"]),
     ("opt: --max-draws 1e11", {"in.csv": GOOD}, FIT + ["--max-draws", "100000000000", "--quiet"], 2, ["--max-draws"]),
     ("opt: --chains 1000000", {"in.csv": GOOD}, FIT + ["--chains", "1000000"], 2, ["--chains", "at most"]),
     ("opt: --draws abc (argparse)", {"in.csv": GOOD}, FIT + ["--draws", "abc"], 2, ["--draws", "'abc'"]),
@@ -236,6 +244,12 @@ CASES = [
     ("out: a symlink loop", {"in.csv": GOOD, "run": ("link", "run")}, FIT, 6, ["loops"]),
     ("out: a NUL in the name", {"in.csv": GOOD}, FIT[:-1] + ["a\x00b"], 2, ["NUL"]),
     ("out: a file in the way", {"in.csv": GOOD, "run": "keep"}, FIT + ["--replace"], 6, ["in the way"]),
+    ("out: inside the input folder", {"d/in.csv": GOOD}, ["fit", "d", "--group", "lab", "--value", "y", "--out",
+                                                          "d/run"], 2, ["'d/run' is inside the input folder 'd'"]),
+    ("out: a run folder from before markers", {"in.csv": GOOD, "run/summary.json": '{\n "format": 1,\n '
+                                               '"pooling_version": "0.1.0"}', "run/draws.nc": "x", "run/groups.csv": "x"},
+     FIT + ["--replace"], 6, ["no '.pooling-run' marker", "pooling 0.1.0", "before run folders were marked",
+                              "rm -r -- run"]),
     # Parquet
     ("parquet: non-UTF-8 binary labels", {"in.csv": _pq_binary_labels}, FIT, 2, ["row 1", "UTF-8", "b'\\xff\\xfe'"]),
     ("parquet: damaged pages", {"in.csv": _pq_damaged}, FIT, 2, ["damaged Parquet file"]),
@@ -248,6 +262,9 @@ CASES = [
      ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "lab"], 2, ["both 'lab'"]),
     ("ingest: --encoding bogus-enc", {"in.csv": GOOD},
      ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--encoding", "bogus-enc"], 2, ["--encoding"]),
+    ("ingest: subnormal values", {"in.csv": "lab,y\n" + "".join(f"L{j},{1e-320 * (j + 1) * (k + 1)}\n"
+                                                                 for j in range(3) for k in range(2))},
+     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"], 2, ["magnitude", "times 1e+320"]),
     ("ingest: a mixed file", {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
      ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"], 2, ["line 14"]),
     ("ingest: --column not in the file", {"in.csv": GOOD},
@@ -344,8 +361,8 @@ HOSTILE_TEXT = st.one_of(
                      "9999999999999999999999", "0x10", "1_0", "\n", "\t"]),
     st.text(max_size=12),
 )
-# --warmup is left out: a warm-up of 1e9 sweeps is a legitimate (endless) request, not bad input
-OPTIONS = ["--chains", "--draws", "--max-draws", "--seed", "--threads", "--tau", "--mu", "--s2", "--sigma2", "--nu",
+OPTIONS = ["--chains", "--warmup", "--draws", "--max-draws", "--seed", "--threads", "--tau", "--mu", "--s2", "--sigma2",
+           "--nu",
            "--nu-grid", "--level", "--top", "--threshold", "--lower-limit", "--allowed-bias", "--compare",
            "--assigned-value", "--sigma-pt", "--keep", "--keep-sample", "--summary-bins", "--encoding", "--delimiter",
            "--thousands", "--within", "--best", "--summary"]
@@ -477,6 +494,44 @@ def test_refit_options(store, tmp_path, monkeypatch, extra, want, needles):
     check_outcome(code, err, caught, want, needles)
     assert not (tmp_path / "run").exists() and leftovers(tmp_path) == []
     assert _digests(tmp_path) == before  # the store and its batches untouched
+
+
+@pytest.mark.parametrize("within", ["separate", "shared"])
+def test_a_half_life_that_leaves_too_little_weight_says_so(store, tmp_path, monkeypatch, within):
+    """Batches 152 and 92 days old at a half-life of 5 days weigh 2^-30 and 2^-18: every group's effective n
+    is far below 2, which the within-group variances need. The message names the half-life, the figures and
+    a half-life that is long enough; a fifth shorter than that is refused again (the named one is rounded up
+    from a bisection to 2%, so it is at most 1.13 times the shortest that fits)."""
+    import re
+
+    monkeypatch.chdir(tmp_path)
+    base = ["refit", store, "--out", tmp_path / "run", "--as-of", "2024-06-01", "--within", within, *TINY]
+    code, _, err, caught = run_main(*base, "--half-life", "5")
+    line = check_outcome(code, err, caught, 2, ["--half-life", "a half-life of 5 days leaves too little weight",
+                                                "within-group variance", "the largest effective n is",
+                                                "the newest batch weighs", f"the {within} structure needs"])
+    assert "need at least one group" not in line and "one measurement each" not in line
+    longer = float(re.search(r"about ([0-9.e+]+) days or more", line).group(1))
+    code, _, err, caught = run_main(*base, "--half-life", str(longer / 1.25))
+    check_outcome(code, err, caught, 2, ["leaves too little weight"])
+    code, _, err, caught = run_main(*base, "--half-life", str(longer))
+    check_outcome(code, err, caught, {0, 3}, out=tmp_path / "run")
+
+
+def test_draws_that_are_not_finite_are_refused_and_not_recorded(store, tmp_path, monkeypatch):
+    """With a gamma prior on s^2 the replication check does not apply, and weights of 2^-51 and 2^-31 leave an
+    effective n near 1e-9, where the variance block overflows and every draw is NaN (seen by the sweep for
+    issue 13). Such a run was written with NaN answers (exit 3) and recorded, and the next refit of the store
+    failed on the recorded nulls (an internal error). Now it is refused before anything is written."""
+    from pooling.store import jobs
+
+    monkeypatch.chdir(tmp_path)
+    code, _, err, caught = run_main("refit", store, "--out", tmp_path / "run", "--as-of", "2024-06-01",
+                                    "--half-life", "3", "--s2", "gamma:1:1", *TINY)
+    check_outcome(code, err, caught, 2, ["draws of mu are not finite numbers", "effective n", "nothing was written",
+                                        "--half-life"])
+    assert not (tmp_path / "run").exists() and leftovers(tmp_path) == []
+    assert jobs.list_batches(store)[1] == []  # no run recorded
 
 
 # ---------------------------------------------------------------------------------------------

@@ -478,3 +478,214 @@ def test_parquet_odd_columns(tmp_path):
     with pytest.raises(InputError) as e:
         read_table(tmp_path / "cut.parquet", "g", "y")
     assert "not a readable Parquet file" in _one_line(e.value)
+
+
+# ---------------------------------------------------------------------------------------------
+# undecodable bytes named by their line; Parquet checked against its own footer and page checksums
+
+
+@pytest.mark.parametrize("encoding", ["cp1252", None])
+def test_a_byte_the_encoding_does_not_define_names_its_line(tmp_path, encoding):
+    # Source: Windows-1252 leaves 0x81, 0x8D, 0x8F, 0x90 and 0x9D undefined (Python's cp1252 codec table,
+    # which refuses them: "character maps to <undefined>"). Without --encoding a file with no UTF-8 line is
+    # read as Windows-1252 (README), so the same byte is refused there too.
+    p = tmp_path / "w.csv"
+    p.write_bytes(b"lab,y\r\na,1\r\nb,2\r\nL\x813,3\r\nc,4\r\n")
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y", encoding=encoding)
+    line = _one_line(e.value)
+    for needle in ("line 4", "the byte 0x81", "b'L\\x813,3'", "--encoding"):
+        assert needle in line, (needle, line)
+    assert ("read as Windows-1252" in line) == (encoding is None)
+
+
+def test_a_lone_surrogate_in_utf16_names_its_line(tmp_path):
+    p = tmp_path / "u16.csv"
+    p.write_bytes("lab,y\na,1\nb,2\n".encode("utf-16") + b"\x00\xd8" + "x,3\nc,4\n".encode("utf-16-le"))
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y", encoding="utf-16")
+    line = _one_line(e.value)
+    assert "line 4" in line and "0x00 0xD8" in line and "utf-16" in line, line
+
+
+def _pq_bytes(table, **kw) -> bytes:
+    import pyarrow.parquet as pq
+
+    buf = io.BytesIO()
+    pq.write_table(table, buf, **kw)
+    return buf.getvalue()
+
+
+def _zero_counts(data: bytes, rows: int, which) -> bytes:
+    """The file with the chosen footer counts equal to `rows` set to 0, as damage would leave them.
+
+    The footer is Thrift's compact protocol: an i64 field one id after its predecessor is the byte 0x16 and
+    a zigzag varint. Each count is overwritten with a varint of 0 of the same length (0x80 ... 0x00), so no
+    offset moves. For 3,000 rows the counts are, in footer order: the file's rows, each column chunk's
+    values, the row group's rows."""
+    def varint(x):
+        out = bytearray()
+        while True:
+            out.append((x & 0x7F) | (0x80 if x >> 7 else 0))
+            x >>= 7
+            if not x:
+                return bytes(out)
+
+    size = int.from_bytes(data[-8:-4], "little")
+    start = len(data) - 8 - size
+    code = b"\x16" + varint(2 * rows)
+    hits = [start + i for i in range(size) if data[start:-8].startswith(code, i)]
+    assert len(hits) == 4, hits  # file rows, two column chunks' values, row group rows
+    out = bytearray(data)
+    for k in which:
+        at = hits[k] + 1
+        out[at:at + len(code) - 1] = b"\x80" * (len(code) - 2) + b"\x00"
+    return bytes(out)
+
+
+@pytest.mark.parametrize("which,needle", [
+    ((0,), "its footer says 0 rows but its row groups hold 3000"),
+    ((3,), "its footer says 3000 rows but its row groups hold 0"),
+    ((1,), "row group 1 says 3000 rows but its column 'lab' holds 0 values"),
+    ((0, 1, 2, 3), "row group 1 says 0 rows but its column 'lab' records values (from 'G0' to 'G4')"),
+])
+def test_a_parquet_row_count_zeroed_by_damage_is_not_an_empty_file(tmp_path, which, needle):
+    import pyarrow as pa
+
+    table = pa.table({"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) for i in range(3000)]})
+    p = tmp_path / "z.parquet"
+    p.write_bytes(_zero_counts(_pq_bytes(table), 3000, which))
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    line = _one_line(e.value)
+    assert "a damaged Parquet file" in line and needle in line and "no rows" not in line, line
+    # an empty file written as such is still called empty
+    empty = tmp_path / "empty.parquet"
+    empty.write_bytes(_pq_bytes(table.slice(0, 0)))
+    with pytest.raises(InputError) as e:
+        read_table(empty, "lab", "y")
+    assert "no rows" in _one_line(e.value) and "damaged" not in str(e.value)
+
+
+def test_a_parquet_type_code_changed_by_damage_is_refused(tmp_path):
+    # pyarrow keeps the Arrow schema beside the Parquet one; a flipped physical type (text read as float)
+    # would otherwise abort inside pyarrow (its column-chunk statistics cannot be read under the new type)
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.table({"lab": [f"G{i % 5}" for i in range(300)], "y": [float(i % 13) for i in range(300)]})
+    data = _pq_bytes(table, write_page_checksum=True)
+    size = int.from_bytes(data[-8:-4], "little")
+    p = tmp_path / "t.parquet"
+    for at in range(len(data) - 8 - size, len(data) - 8):  # every bit of the footer until one turns text to a number
+        damaged = bytearray(data)
+        for bit in range(8):
+            damaged[at] = data[at] ^ (1 << bit)
+            p.write_bytes(bytes(damaged))
+            try:
+                kind = pq.ParquetFile(p).schema_arrow.field("lab").type
+            except Exception:  # noqa: BLE001 -- flips that break the footer outright are another test's
+                continue
+            if pa.types.is_floating(kind) or pa.types.is_integer(kind):
+                with pytest.raises(InputError) as e:
+                    read_table(p, "lab", "y")
+                line = _one_line(e.value)
+                assert "damaged Parquet file" in line and "column 'lab' was written as string" in line, line
+                return
+    pytest.fail("no single-bit flip of the footer turned the text column into numbers")
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(st.integers(0, 10**9))
+def test_every_bit_flip_in_a_parquet_with_page_checksums_is_refused_or_harmless(tmp_path_factory, pick):
+    # Page checksums (CRC-32 of each page, written with pyarrow's write_page_checksum=True) are verified on
+    # reading; the footer, which no checksum covers, is checked against itself. A flip either is refused
+    # with one line or leaves the statistics exactly as they were (a flip in min/max statistics, padding or
+    # unused metadata). benchmarks/parquet_flips.py counts every bit of such a file.
+    import pyarrow as pa
+
+    table = pa.table({"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) + 0.25 * (i % 7)
+                                                                        for i in range(3000)]})
+    data = _pq_bytes(table, write_page_checksum=True)
+    work = tmp_path_factory.mktemp("flip")
+    (work / "ref.parquet").write_bytes(data)
+    ref = read_table(work / "ref.parquet", "lab", "y")
+    bit = pick % (len(data) * 8)
+    damaged = bytearray(data)
+    damaged[bit // 8] ^= 1 << (bit % 8)
+    (work / "f.parquet").write_bytes(bytes(damaged))
+    try:
+        got = read_table(work / "f.parquet", "lab", "y")
+    except InputError as exc:
+        _one_line(exc)
+        return
+    assert got.labels == ref.labels and got.n.tolist() == ref.n.tolist(), bit
+    assert np.array_equal(got.mean, ref.mean) and np.array_equal(got.m2, ref.m2), bit
+
+
+def test_folders_of_files_skip_run_folders_and_verify_parquet_pages(tmp_path):
+    # a run folder (marked .pooling-run) inside a data folder is pooling's output, never data; and the
+    # folder reader (Dask) verifies page checksums as the single-file reader does
+    pytest.importorskip("dask")
+    import pyarrow as pa
+
+    from pooling.dask_stats import read_table_dask
+
+    data = tmp_path / "data"
+    data.mkdir()
+    (data / "a.csv").write_text("lab,y\na,1\na,2\nb,3\n")
+    run = data / "run1"
+    run.mkdir()
+    (run / ".pooling-run").write_text('{"written_by": "pooling", "format": 1, "kind": "run"}\n')
+    (run / "groups.csv").write_text("lab,y\nzz,100\n")
+    s = read_table_dask(data, "lab", "y", scheduler="sync")
+    assert s.labels == ("a", "b") and s.n.tolist() == [2, 1]
+    (run / ".pooling-run").unlink()  # not ours: read as data, as any other folder
+    assert read_table_dask(data, "lab", "y", scheduler="sync").labels == ("a", "b", "zz")
+
+    table = pa.table({"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) + 0.25 * (i % 7)
+                                                                        for i in range(3000)]})
+    good = _pq_bytes(table, write_page_checksum=True)
+    pq_dir = tmp_path / "pq"
+    pq_dir.mkdir()
+    p = pq_dir / "part.parquet"
+    ref = None
+    for at in range(200, len(good) - 200):  # a flip inside a data page that changes the values read unchecked
+        damaged = bytearray(good)
+        damaged[at] ^= 0x10
+        p.write_bytes(bytes(damaged))
+        import pyarrow.parquet as pq
+
+        try:
+            unchecked = pq.ParquetFile(p).read().column("y").to_pylist()
+        except Exception:  # noqa: BLE001
+            continue
+        ref = ref or table.column("y").to_pylist()
+        if unchecked != ref:
+            break
+    else:
+        pytest.fail("no flip changed the values")
+    with pytest.raises(InputError) as e:
+        read_table_dask(pq_dir, "lab", "y", scheduler="sync")
+    assert "damaged Parquet file" in _one_line(e.value) and "does not match the checksum written with it" in str(e.value)
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "damaged Parquet file" in _one_line(e.value) and "does not match the checksum written with it" in str(e.value)
+
+
+def test_folders_of_files_name_the_file_and_line_of_undecodable_bytes(tmp_path):
+    # the folder reader detects the encoding in its first file; a later file in another encoding was an
+    # internal error (a UnicodeDecodeError from Dask's reader), now one line naming the file and line
+    pytest.importorskip("dask")
+    from pooling.dask_stats import read_table_dask
+
+    data = tmp_path / "data"
+    data.mkdir()
+    (data / "a.csv").write_bytes(b"lab,y\na,1\nb,2\n")
+    (data / "b.csv").write_bytes(b"lab,y\na,1\nL\x813,3\nc,4\n")
+    for encoding, needles in ((None, ["b.csv', line 3", "0x81", "UTF-8", "detected in the first"]),
+                              ("cp1252", ["b.csv', line 3", "the byte 0x81", "cp1252", "b'L\\x813,3'"])):
+        with pytest.raises(InputError) as e:
+            read_table_dask(data, "lab", "y", scheduler="sync", encoding=encoding)
+        line = _one_line(e.value)
+        assert all(n in line for n in needles), (needles, line)

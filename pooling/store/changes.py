@@ -172,10 +172,10 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
     hyper = {}
     then_h = prev.summary.get("hyperparameters", {})
     for name in ("mu", "tau"):
-        if name not in then_h:
-            continue
+        t = then_h.get(name) or {}
+        if not all(isinstance(t.get(k), (int, float)) for k in ("mean", "sd")):
+            continue  # not recorded, or recorded as null by a run whose draws were not finite
         x = fit.draws(name)
-        t = then_h[name]
         m, s = float(x.mean()), float(x.std(ddof=1))
         shift = m - t["mean"]
         hyper[name] = {"then_mean": t["mean"], "then_sd": t["sd"], "now_mean": m, "now_sd": s, "shift": shift,

@@ -41,7 +41,7 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     whether the store was created. The file is read and checked before the store is touched, and the batch
     is written in one transaction (refused whole when its group-level columns disagree with the store's).
     """
-    from ..stats import check_unicode_twins, read_table
+    from ..stats import check_unicode_twins, read_table, unit_hint
 
     loc = parse_location(store_path)
     name = Path(file).name if batch is None else batch
@@ -57,7 +57,7 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
         if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
             raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what "
                              f"the store keeps exactly; express them in other units (for example times "
-                             f"{1 / stats.unit:.0e})")
+                             f"{unit_hint(stats.unit)})")
         new = NewBatch(name=name, sha256=stats.file_sha256, source=str(file),
                        dated_at=dated or iso(datetime.now(timezone.utc)), group_column=group, value_column=value)
         if st is None:
