@@ -42,13 +42,14 @@ PYTEST = [sys.executable, "-m", "pytest", "-x", "-q", "-p", "no:cacheprovider", 
 # Each file's quick test selection: the tests that exercise it, about a minute or less on an idle core.
 TESTS: dict[str, list[str]] = {
     "pooling/kernel.py": ["tests/test_kernel_sums.py", "tests/test_kernel_api.py", "tests/test_exact_shared.py",
-                          "tests/test_conditionals.py"],
+                          "tests/test_predictors_kernel.py", "tests/test_conditionals.py"],
     "pooling/model.py": ["tests/test_kernel_api.py", "tests/test_exact_shared.py", "tests/test_predictors_io.py",
                          "tests/test_conditionals.py"],
-    "pooling/posterior.py": ["tests/test_run_summary.py", "tests/test_sampler.py", "tests/test_exact_shared.py"],
+    "pooling/posterior.py": ["tests/test_posterior_units.py", "tests/test_run_summary.py", "tests/test_sampler.py",
+                             "tests/test_exact_shared.py"],
     "pooling/sampler.py": ["tests/test_sampler.py", "tests/test_run_summary.py", "tests/test_kernel_api.py"],
     "pooling/diagnostics.py": ["tests/test_diagnostics.py", "tests/test_run_summary.py"],
-    "pooling/answers.py": ["tests/test_report_stats.py"],
+    "pooling/answers.py": ["tests/test_report_stats.py", "tests/test_answers_exact.py"],
 }
 # modules whose numba functions call into the key's (their cached machine code would hide a mutant)
 DEPENDENTS = {"kernel": ["summary_kernel"], "answers": ["summary_kernel"]}
@@ -93,7 +94,11 @@ def _pytest(root: Path, tests: list[str], cache: Path, timeout: float) -> tuple[
         return "timeout", time.monotonic() - start
     finally:
         _running.remove(proc)
-    return ("survived" if rc == 0 else "killed"), time.monotonic() - start
+    # pytest's exit codes: 0 all passed, 1 a test failed, 2 interrupted (a collection error: the mutant broke an
+    # import); 3-5 internal or usage error or no test collected: the selection, not the mutant, is at fault.
+    # Anything else (a crash, a signal) is the mutant's doing.
+    status = {0: "survived", 3: "error", 4: "error", 5: "error"}.get(rc, "killed")
+    return status, time.monotonic() - start
 
 
 def workspace(folder: Path) -> Path:
@@ -196,7 +201,7 @@ def check(root: Path, rel: str, name: str, tests: list[str]) -> None:
 def report(path: Path, out: Path) -> None:
     rel = str(path.relative_to(ROOT))
     recs = [json.loads(x) for x in out.read_text().splitlines() if x.strip()] if out.exists() else []
-    counts = {s: sum(r["status"] == s for r in recs) for s in ("killed", "survived", "timeout")}
+    counts = {s: sum(r["status"] == s for r in recs) for s in ("killed", "survived", "timeout", "error")}
     print(f"{rel}: {len(mutants(path))} mutants, {len(recs)} run, " + ", ".join(f"{v} {k}" for k, v in counts.items()))
     for r in recs:
         if r["status"] == "survived":
