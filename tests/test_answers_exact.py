@@ -66,6 +66,47 @@ def test_threshold_and_one_sided_limit_probabilities_match_the_normal_cdf():
         assert np.all(np.abs(t["p_mean_outside"] - ref) < mc(ref)), ((lower, upper), t["p_mean_outside"].to_numpy(), ref)
 
 
+@pytest.mark.parametrize("lower,upper", [(8.0, None), (None, 12.0), (8.0, 12.0)])
+def test_outside_fraction_with_one_limit_or_two_in_the_table(lower, upper):
+    # Source: scipy.stats.norm. With every draw at the same (theta_j, sigma_j) the posterior mean of the fraction
+    # of measurements outside, P(y < L) + P(y > U) for y ~ N(theta_j, sigma_j^2) with a missing limit adding
+    # nothing, and both ends of its interval equal the closed form. Written for answers.py:58
+    # `has_u = a[A_HAS_UPPER] >= 0.0` (a missing upper limit read as one at the data's centre).
+    C, D = 2, 50
+    th = np.broadcast_to(np.array([10.0, 11.0, 9.0]), (C, D, 3)).copy()
+    sg = np.broadcast_to(np.array([1.0, 0.5, 2.0]), (C, D, 3)).copy()
+    one = np.ones((C, D))
+    fit = make_idata(th, 10 * one, one, sigma=sg, s=one, nu=5 * one)
+    t = compute(fit, pooling.ReportOptions(lower=lower, upper=upper)).table
+    ref = (stats.norm.cdf(lower, th[0, 0], sg[0, 0]) if lower is not None else 0.0) + \
+          (stats.norm.sf(upper, th[0, 0], sg[0, 0]) if upper is not None else 0.0)
+    for col in ("outside_mean", "outside_low_95", "outside_high_95"):
+        np.testing.assert_allclose(t[col], ref, rtol=1e-12, err_msg=col)
+
+
+@pytest.mark.parametrize("within", ["separate", "shared"])
+def test_shrinkage_weight_of_measured_groups_uses_the_variance_of_their_mean(within):
+    # Source: the shrinkage weight of a group mean, v_j / (v_j + tau^2) with v_j = sigma_j^2 / n_j the sampling
+    # variance of the mean of n_j measurements (BDA3 section 5.4; from memory), averaged over the draws; the
+    # interval ends are numpy's quantiles (linear interpolation, its default) of the same per-draw weights.
+    # Written for answers.py:81 `sg * sg * n[j]`, which a group-size-free test (known structure) cannot see.
+    rng = np.random.default_rng(9)
+    C, D, J = 2, 400, 3
+    n = np.array([2, 5, 20])
+    tau = rng.uniform(0.3, 1.5, (C, D))
+    sig = rng.uniform(0.5, 2.0, (C, D, J) if within == "separate" else (C, D))
+    th = rng.standard_normal((C, D, J))
+    fit = make_idata(th, np.zeros((C, D)), tau, sigma=sig, n=n)
+    t = compute(fit).table
+    s2 = sig.reshape(C * D, -1) ** 2
+    v = s2 / n
+    w = v / (v + tau.reshape(-1, 1) ** 2)
+    np.testing.assert_allclose(t["shrink_weight"], w.mean(axis=0), rtol=1e-9)
+    lo, hi = np.quantile(w, [0.025, 0.975], axis=0)
+    np.testing.assert_allclose(t["shrink_low_95"], lo, rtol=1e-9)
+    np.testing.assert_allclose(t["shrink_high_95"], hi, rtol=1e-9)
+
+
 def test_bias_probability_matches_the_normal_difference():
     # Source: scipy.stats.norm. theta_j ~ N(m_j, s_j^2) and mu ~ N(10, 0.2^2) independent, so
     # theta_j - mu ~ N(m_j - 10, s_j^2 + 0.04) and P(|theta_j - mu| > a) = norm.cdf(-a) + norm.sf(a) of it.
@@ -91,19 +132,11 @@ def schools_heavy():
     return pooling.fit(st, Model(within="known", between=HeavyBetween()), settings, progress=False)
 
 
-def test_heavy_shrinkage_weight_and_outlying_probability_follow_their_definitions(schools_heavy):
-    # Source (definitions, results.COLUMNS): with theta_j ~ N(mu, tau^2 / lambda_j) the shrinkage weight is
-    # w_j = se_j^2 / (se_j^2 + tau^2 / lambda_j) (BDA3 section 5.4's weight with the conditional prior variance
-    # tau^2 / lambda_j of the t as a scale mixture, section 17.2; from memory), and a group is outlying in a draw
-    # when lambda_j is below the 5% point of its prior Gamma(df/2, rate df/2) at the draw's df (scipy.stats.gamma;
-    # no group is outlying at df = inf, where lambda_j = 1). Both are computed here with numpy and scipy from the
-    # run's draws in the user's units and must equal the table to rounding.
-    # Written for answers.py:137 `t = tau2 * lam[j]` (lambda multiplying the between-group variance), :171
-    # `heavy = None` (the interval of w taken from the normal model's formula) and a count of 2 per outlying draw.
-    fit = schools_heavy
+def _heavy_definitions(fit, se):
+    """The heavy model's per-group answers against their definitions (sources in the next tests)."""
     t = compute(fit).table
     tau, lam, df = fit.draws("tau"), fit.draws("lambda"), fit.draws("df")
-    se2 = np.asarray(SCHOOLS_SE, dtype=float) ** 2
+    se2 = np.asarray(se, dtype=float) ** 2
     w = se2 / (se2 + (tau * tau)[:, None] / lam)
     np.testing.assert_allclose(t["shrink_weight"], w.mean(axis=0), rtol=1e-9)
     lo, hi = np.quantile(w, [0.025, 0.975], axis=0)  # numpy's quantile, linear interpolation (its default)
@@ -113,9 +146,33 @@ def test_heavy_shrinkage_weight_and_outlying_probability_follow_their_definition
     cut = np.zeros_like(df)
     cut[finite] = stats.gamma.ppf(0.05, df[finite] / 2, scale=2 / df[finite])
     out = lam < cut[:, None]
-    assert 0 < out.mean() < 0.2  # the check has something to count
     np.testing.assert_allclose(t["p_outlying"], out.mean(axis=0), atol=2.5 / len(df))  # a draw at the cut, to rounding
     np.testing.assert_allclose(t["tail_weight"], lam.mean(axis=0), rtol=1e-12)
+    return out
+
+
+def test_heavy_answers_of_a_single_group():
+    # The same definitions as below for one group alone (allowed with a proper prior on tau): written for
+    # answers.py:117 `heavy = lam.shape[0] > 1`, which took one group's lambda for the normal model's.
+    data = pd.DataFrame({"school": ["A"], "y": SCHOOLS_Y[:1], "se": SCHOOLS_SE[:1]})
+    st = pooling.from_estimates(data, "school", "y", "se")
+    settings = pooling.Settings(chains=2, warmup=300, draws=1000, max_draws=1000, seed=12)
+    model = Model(within="known", between=HeavyBetween(), tau=pooling.HalfNormal(10.0))
+    fit = pooling.fit(st, model, settings, progress=False)
+    _heavy_definitions(fit, SCHOOLS_SE[:1])
+
+
+def test_heavy_shrinkage_weight_and_outlying_probability_follow_their_definitions(schools_heavy):
+    # Source (definitions, results.COLUMNS): with theta_j ~ N(mu, tau^2 / lambda_j) the shrinkage weight is
+    # w_j = se_j^2 / (se_j^2 + tau^2 / lambda_j) (BDA3 section 5.4's weight with the conditional prior variance
+    # tau^2 / lambda_j of the t as a scale mixture, section 17.2; from memory), and a group is outlying in a draw
+    # when lambda_j is below the 5% point of its prior Gamma(df/2, rate df/2) at the draw's df (scipy.stats.gamma;
+    # no group is outlying at df = inf, where lambda_j = 1). Both are computed here with numpy and scipy from the
+    # run's draws in the user's units and must equal the table to rounding.
+    # Written for answers.py:137 `t = tau2 * lam[j]` (lambda multiplying the between-group variance), :171
+    # `heavy = None` (the interval of w taken from the normal model's formula) and a count of 2 per outlying draw.
+    out = _heavy_definitions(schools_heavy, SCHOOLS_SE)
+    assert 0 < out.mean() < 0.2  # the check has something to count
 
 
 def _labs() -> pooling.GroupStats:
