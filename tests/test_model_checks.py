@@ -31,7 +31,9 @@ def test_a_shared_variance_needs_one_degree_of_freedom_and_no_more():
     model = Model(within="shared", tau=pooling.HalfNormal(1.0))
     p = build(_frame({"a": [1.0, 1.4], "b": [2.0], "c": [1.7]}), model)
     assert p.stats.N - p.J == 1
-    with pytest.raises(ModelError, match="shared within-group variance needs replication"):
+    # the message says what to do instead (written for model.py:623, a change to that advice's text)
+    with pytest.raises(ModelError, match="shared within-group variance needs replication.*each group's standard "
+                                         "error and use --within known"):
         build(_frame({"a": [1.0], "b": [2.0], "c": [1.7]}), model)
 
 
@@ -72,3 +74,25 @@ def test_a_list_of_levels_ends_with_an_ellipsis_only_when_some_are_left_out():
     ten = [f"L{i}" for i in range(10)]
     assert not _levels_text(ten).endswith("...")
     assert _levels_text(ten + ["L10"]).endswith(", ...")
+
+
+def test_estimates_far_apart_with_small_errors_come_to_internal_units_of_order_one():
+    # Common practice (model.py's contract: `build` centres and scales the data so that the kernel works on numbers
+    # of order one, whatever their units): five estimates spread over about 1000 with standard errors near 1 (an
+    # odd count, so that the median estimate sits at the centre itself) must have internal estimates of spread
+    # between 1/4 and 4. Written for model.py:837 `dev / dev`, a 0/0 at the median estimate that left the scale
+    # at a fallback far from the data's.
+    data = pd.DataFrame({"g": list("abcde"), "y": [-1500.0, -400.0, 0.0, 700.0, 1300.0], "se": [1.0, 1.2, 0.8, 1.1, 0.9]})
+    p = build(pooling.from_estimates(data, "g", "y", "se"), Model(within="known"))
+    rms = float(np.sqrt(np.mean(p.ybar ** 2)))
+    assert 0.25 <= rms <= 4.0, (p.scale, rms)
+
+
+def test_separate_variances_need_one_group_with_two_different_values():
+    # Common practice: two different measurements of one group already estimate a variance (one degree of freedom),
+    # which is what p(s^2) ∝ 1/s^2 needs to be proper; groups of one value each estimate none and are refused.
+    # Written for model.py:625 `stats.n >= 3`, which asked for three.
+    model = Model(within="separate", tau=pooling.HalfNormal(1.0))
+    build(_frame({"a": [1.0, 1.4], "b": [2.0], "c": [1.7]}), model)
+    with pytest.raises(ModelError, match="need at least one group with two or more measurements that differ"):
+        build(_frame({"a": [1.0, 1.0], "b": [2.0], "c": [1.7]}), model)
