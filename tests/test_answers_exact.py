@@ -105,6 +105,9 @@ def test_shrinkage_weight_of_measured_groups_uses_the_variance_of_their_mean(wit
     lo, hi = np.quantile(w, [0.025, 0.975], axis=0)
     np.testing.assert_allclose(t["shrink_low_95"], lo, rtol=1e-9)
     np.testing.assert_allclose(t["shrink_high_95"], hi, rtol=1e-9)
+    # and the posterior mean of sigma_j, the plain mean of its draws (written for answers.py:141, a running mean
+    # that kept only the last step)
+    np.testing.assert_allclose(t["sigma_mean"], np.broadcast_to(np.sqrt(s2), (C * D, J)).mean(axis=0), rtol=1e-9)
 
 
 def test_bias_probability_matches_the_normal_difference():

@@ -33,7 +33,7 @@ def test_a_shared_variance_needs_one_degree_of_freedom_and_no_more():
     assert p.stats.N - p.J == 1
     # the message says what to do instead (written for model.py:623, a change to that advice's text)
     with pytest.raises(ModelError, match="shared within-group variance needs replication.*each group's standard "
-                                         "error and use --within known"):
+                                         "error and use --within known$"):
         build(_frame({"a": [1.0], "b": [2.0], "c": [1.7]}), model)
 
 
