@@ -210,26 +210,29 @@ def test_bias_with_a_predictor_is_taken_about_the_groups_own_level():
     np.testing.assert_allclose(t["p_bias_over"], np.mean(np.abs(d) > 0.3, axis=0), atol=1.5 / len(mu))
 
 
-def test_summary_mode_outside_interval_when_most_measurements_fall_outside():
+@pytest.mark.parametrize("lower,upper", [(99.85, 100.15), (101.0, None)], ids=["two limits", "lower limit"])
+def test_summary_mode_outside_interval_when_most_measurements_fall_outside(lower, upper):
     # Source: numpy.quantile (linear, its default) of f = Phi((L - theta)/sigma) + Phi((theta - U)/sigma)
     # (scipy.special.ndtr) on the full run's draws, which summary mode draws identically (same seed and sweeps,
     # see tests/test_summary_mode.py); summary mode finds each end within its stated error (one histogram bin,
     # `outside_limit_error`). Limits 0.3 wide about data with sigma near 2 put f near 0.9, where summary mode
     # histograms log(f / (1 - f)) with 1 - f formed as Phi((U - theta)/sigma) - Phi((L - theta)/sigma).
-    # Written for answers.py:66 `g = ... + pa` (the inside probability formed with the wrong sign).
+    # A lower limit alone above most groups' means does the same with one tail. Written for answers.py:66
+    # `g = ... + pa` (the inside probability formed with the wrong sign) and `... else 2.0` (the upper tail's
+    # complement without an upper limit).
     from scipy.special import ndtr
 
     from tests.test_summary_mode import KEEP, LEVEL, PROBS, SETTINGS, _stats
 
     stats_ = _stats(40, 1)
     model = Model(within="separate")
-    o = pooling.ReportOptions(level=LEVEL, lower=99.85, upper=100.15)
+    o = pooling.ReportOptions(level=LEVEL, lower=lower, upper=upper)
     full = pooling.fit(stats_, model, SETTINGS, summary=False)
     part = pooling.fit(stats_, model, SETTINGS, summary=True, options=o, keep=KEEP)
     t = compute(part, o).table
     theta, sigma = full.draws("theta"), full.draws("sigma")
-    f = ndtr((o.lower - theta) / sigma) + ndtr((theta - o.upper) / sigma)
-    assert np.median(f) > 0.8  # the branch f >= 1/2 is what is checked
+    f = ndtr((o.lower - theta) / sigma) + (ndtr((theta - o.upper) / sigma) if upper is not None else 0.0)
+    assert np.median(f) > 0.55  # the branch f >= 1/2 is what is checked
     q = np.quantile(f, PROBS, axis=0)
     bound = t["outside_limit_error"].to_numpy()
     others = np.setdiff1d(np.arange(len(t)), part.kept_index)

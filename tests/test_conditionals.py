@@ -790,3 +790,20 @@ def test_tau_terms_of_the_joint_df_tau_move_are_the_prior_and_its_jacobian(tau):
         ref = ref + stats.halfcauchy.logpdf(t, scale=pri["tau"][1])
     assert pri["tau"][1] != 1.0 or tau is None  # a scale of 1 could not show a scale used the wrong way
     np.testing.assert_allclose(got - got[0], ref - ref[0], rtol=1e-12, atol=1e-11)
+
+
+def test_nu_on_a_grid_of_two_points():
+    # Source: as test_variance_block_draws, nu | sigma^2, s^2 against nu_probs (scipy.stats.invgamma), here on a
+    # grid of exactly two points (the smallest grid on which nu is drawn at all; written for kernel.py:866
+    # `if K > 2`, which left nu at its start there). The draws are independent given their inputs, so the count
+    # of the upper point has variance sum_t p_t (1 - p_t); we allow 4.5 of its standard deviations.
+    n, ybar, m2 = _dye_internal()
+    theta = ybar + THETA_SHIFT
+    grid = (2.0, 8.0)
+    p0 = dyestuff_problem(Model(nu=NuFixed(3.0)))
+    model = Model(s2=Gamma(2.0, 1.5 / p0.scale ** 2), nu=NuGrid(grid, (0.5, 0.5)))
+    sig2, s2_new, nu_new = run_block_b(theta, 0.8, 0, draws=4000, seed=77, model=model)
+    p_hi = nu_probs(sig2, s2_new, np.array(grid), np.array([0.5, 0.5]))[:, 1]
+    assert 0.05 < p_hi.mean() < 0.95  # both points are plausible: the check can see a draw that never moves
+    hits = float(np.sum(nu_new == 8.0))
+    assert abs(hits - p_hi.sum()) < 4.5 * np.sqrt(np.sum(p_hi * (1 - p_hi))), (hits, p_hi.sum())
