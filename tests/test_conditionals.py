@@ -712,20 +712,22 @@ def test_df_window_move_keeps_its_target():
 def df_tau_logp(eta_grid, grid, weights, theta, mu, tau_prior, drop_jacobian=False):
     """log p(df_k, eta = log tau | theta, mu) on grid x eta_grid: log w_k + log p_tau(tau) + eta + sum_j
     log t_df_k(theta_j | mu, tau), scipy.stats.t with scale tau (scipy.stats.norm at df = inf), every lambda_j
-    integrated out (the t is their mixture). `drop_jacobian` leaves out the eta of tau = exp(eta): the
-    deliberate error."""
+    integrated out (the t is their mixture). tau_prior: None (flat), a half-normal scale, or ("cauchy", scale)
+    for scipy.stats.halfcauchy. `drop_jacobian` leaves out the eta of tau = exp(eta): the deliberate error."""
     tau = np.exp(eta_grid)
     out = np.empty((len(grid), len(eta_grid)))
     for k, df in enumerate(grid):
         dist = stats.norm if np.isinf(df) else stats.t(df)
         ll = dist.logpdf((theta[None, :] - mu) / tau[:, None]).sum(axis=1) - len(theta) * np.log(tau)
         out[k] = np.log(weights[k]) + ll + (0.0 if drop_jacobian else eta_grid)
-        if tau_prior is not None:
+        if isinstance(tau_prior, tuple):  # ("cauchy", scale)
+            out[k] += stats.halfcauchy.logpdf(tau, scale=tau_prior[1])
+        elif tau_prior is not None:
             out[k] += stats.halfnorm.logpdf(tau, scale=tau_prior)
     return out
 
 
-@pytest.mark.parametrize("tau_prior", [None, 0.8])
+@pytest.mark.parametrize("tau_prior", [None, 0.8, ("cauchy", 0.1)], ids=["flat", "halfnormal", "halfcauchy"])
 def test_joint_df_tau_move_keeps_its_target(tau_prior):
     # The Metropolis move of (df, tau) with the quartiles of the t kept in place must leave
     # p(df, tau | theta, mu) (every lambda_j integrated out) invariant. Independent chains start at exact
@@ -733,16 +735,21 @@ def test_joint_df_tau_move_keeps_its_target(tau_prior):
     # final df (chi-square) and log tau (KS against the mixture CDF) must still follow it.
     from scipy.integrate import cumulative_trapezoid
 
-    model = Model(within="known", **({} if tau_prior is None else {"tau": HalfNormal(tau_prior * 16.0)}))
+    # ("cauchy", s): a half-Cauchy prior on tau, scale s in the old internal units (the move's half-Cauchy branch;
+    # a wrong scale there barely moves 6 steps, so test_tau_terms_of_the_joint_df_tau_move_... checks it exactly)
+    cauchy = isinstance(tau_prior, tuple)
+    tau_given = None if tau_prior is None else (HalfCauchy(tau_prior[1] * 16.0) if cauchy else HalfNormal(tau_prior * 16.0))
+    model = Model(within="known", **({} if tau_given is None else {"tau": tau_given}))
     p = schools_problem(model)
     d = p.data
     pri = internal(p, model)
+    tau_ref = None if tau_prior is None else (("cauchy", pri["tau"][1]) if cauchy else pri["tau"][1])
     theta = p.ybar + np.array([0.3, -0.2, 0.1, 0.0, -0.1, 0.2, -0.3, 0.05])
     mu = float(np.mean(p.ybar))
     grid = d.df_grid
     weights = np.exp(d.df_logprior)
     eta = np.linspace(-7.0, 5.0, 8001)
-    lp = df_tau_logp(eta, grid, weights, theta, mu, None if tau_prior is None else pri["tau"][1])
+    lp = df_tau_logp(eta, grid, weights, theta, mu, tau_ref)
     dens = np.exp(lp - lp.max())
     mass = np.trapezoid(dens, eta, axis=1)
     probs = mass / mass.sum()
@@ -772,8 +779,49 @@ def test_joint_df_tau_move_keeps_its_target(tau_prior):
     assert stats.chisquare(o, e).pvalue > ALPHA
     marginal = (cdfs * probs[:, None]).sum(axis=0)
     assert stats.kstest(etas, lambda x: np.interp(x, eta, marginal)).pvalue > ALPHA
-    wrong = np.exp(df_tau_logp(eta, grid, weights, theta, mu, None if tau_prior is None else pri["tau"][1],
-                               drop_jacobian=True) - lp.max())
+    wrong = np.exp(df_tau_logp(eta, grid, weights, theta, mu, tau_ref, drop_jacobian=True) - lp.max())
     wm = cumulative_trapezoid(wrong, eta, axis=1, initial=0.0)
     wmarg = wm.sum(axis=0) / wm[:, -1].sum()
     assert stats.kstest(etas, lambda x: np.interp(x, eta, wmarg)).pvalue < ALPHA
+
+
+@pytest.mark.parametrize("tau", [None, HalfNormal(8.0), HalfCauchy(1.6)], ids=["flat", "halfnormal", "halfcauchy"])
+def test_tau_terms_of_the_joint_df_tau_move_are_the_prior_and_its_jacobian(tau):
+    # Source: scipy.stats.halfnorm / halfcauchy. kernel.tau_part(eta) holds the terms of log p(df, eta | theta, mu)
+    # that depend on tau alone: log p_tau(tau) + eta (tau = exp(eta)) - J eta (each group's t density carries
+    # 1/tau). Its differences between two values of eta must equal those of the reference, to rounding; the prior
+    # is stated in the user's units and converted by model.build (tests/kernel_helpers.internal converts it by
+    # hand here). A deterministic check, so that a prior scale applied wrongly cannot hide in a move that shifts
+    # tau only a little at a time (written for kernel.py:681 `tau2 / (d.tau_scale / d.tau_scale)`, which the
+    # Markov test above does not see in 6 moves).
+    model = Model(within="known", **({} if tau is None else {"tau": tau}))
+    p = schools_problem(model)
+    pri = internal(p, model)
+    J = p.J
+    etas = np.linspace(-4.0, 2.0, 13)
+    got = np.array([kernel.tau_part(e, p.data, J) for e in etas])
+    t = np.exp(etas)
+    ref = etas - J * etas
+    if isinstance(tau, HalfNormal):
+        ref = ref + stats.halfnorm.logpdf(t, scale=pri["tau"][1])
+    elif isinstance(tau, HalfCauchy):
+        ref = ref + stats.halfcauchy.logpdf(t, scale=pri["tau"][1])
+    assert pri["tau"][1] != 1.0 or tau is None  # a scale of 1 could not show a scale used the wrong way
+    np.testing.assert_allclose(got - got[0], ref - ref[0], rtol=1e-12, atol=1e-11)
+
+
+def test_nu_on_a_grid_of_two_points():
+    # Source: as test_variance_block_draws, nu | sigma^2, s^2 against nu_probs (scipy.stats.invgamma), here on a
+    # grid of exactly two points (the smallest grid on which nu is drawn at all; written for kernel.py:866
+    # `if K > 2`, which left nu at its start there). The draws are independent given their inputs, so the count
+    # of the upper point has variance sum_t p_t (1 - p_t); we allow 4.5 of its standard deviations.
+    n, ybar, m2 = _dye_internal()
+    theta = ybar + THETA_SHIFT
+    grid = (2.0, 8.0)
+    p0 = dyestuff_problem(Model(nu=NuFixed(3.0)))
+    model = Model(s2=Gamma(2.0, 1.5 / p0.scale ** 2), nu=NuGrid(grid, (0.5, 0.5)))
+    sig2, s2_new, nu_new = run_block_b(theta, 0.8, 0, draws=4000, seed=77, model=model)
+    p_hi = nu_probs(sig2, s2_new, np.array(grid), np.array([0.5, 0.5]))[:, 1]
+    assert 0.05 < p_hi.mean() < 0.95  # both points are plausible: the check can see a draw that never moves
+    hits = float(np.sum(nu_new == 8.0))
+    assert abs(hits - p_hi.sum()) < 4.5 * np.sqrt(np.sum(p_hi * (1 - p_hi))), (hits, p_hi.sum())

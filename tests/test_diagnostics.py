@@ -354,3 +354,15 @@ def test_threaded_blocks_give_the_same_numbers(monkeypatch):
         np.testing.assert_allclose([two[0][0][j], two[0][1][j], two[0][2][j]],
                                    [_ref(x[:, :, j], az.rhat, method="rank"), _ref(x[:, :, j], az.ess, method="bulk"),
                                     _ref(x[:, :, j], az.ess, method="tail")], rtol=RTOL)
+
+
+def test_draws_that_are_not_real_numbers_are_refused():
+    # Common practice (numpy's dtype kinds): strings, objects and complex numbers are not draws of a real
+    # parameter; booleans are (an indicator's draws). Written for diagnostics.py:369 `x.dtype != bool`, which
+    # let strings and objects through to fail later with an unrelated message, or not at all.
+    for bad in (np.array([["a", "b", "c"], ["d", "e", "f"]]), np.full((2, 3), None, dtype=object),
+                np.ones((2, 3)) + 1j):
+        with pytest.raises(ValueError, match="draws must be real numbers"):
+            dg.split_rhat(bad)
+    flags = np.random.default_rng(0).random((2, 50)) < 0.5
+    assert np.isfinite(dg.split_rhat(flags))

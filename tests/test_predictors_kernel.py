@@ -72,9 +72,16 @@ def _Z(p):
     return np.column_stack([np.ones(p.J), p.data.X])
 
 
-def test_log_tau_density_with_predictors_is_the_gaussian_marginal():
-    # Source: scipy.stats.multivariate_normal: y ~ N(Z m0, D + Z S0 Z') with both priors proper
-    p = _problem(mu=Normal(-0.7, 2.0), effects=Normal(0.0, 0.5))
+@pytest.mark.parametrize("tau_prior", [None, "half-normal", "half-Cauchy"])
+def test_log_tau_density_with_predictors_is_the_gaussian_marginal(tau_prior):
+    # Source: scipy.stats.multivariate_normal: y ~ N(Z m0, D + Z S0 Z') with both priors proper; times the prior
+    # of tau (scipy.stats.halfnorm / halfcauchy, scale converted to internal units here) when one is given
+    # (written for the mutant kernel.py:451 `1.5 * tau2 / ...` of the half-normal term, which a flat prior
+    # cannot see)
+    given = {None: None, "half-normal": pooling.HalfNormal(0.3), "half-Cauchy": pooling.HalfCauchy(0.3)}[tau_prior]
+    p = _problem(mu=Normal(-0.7, 2.0), effects=Normal(0.0, 0.5), tau=given)
+    tau_logpdf = (lambda t: 0.0) if given is None else (
+        lambda t: (stats.halfnorm if tau_prior == "half-normal" else stats.halfcauchy).logpdf(t, scale=0.3 / p.scale))
     d = p.data
     Z = _Z(p)
     m0, prec = _priors(p)
@@ -95,7 +102,7 @@ def test_log_tau_density_with_predictors_is_the_gaussian_marginal():
             ours.append(kernel.log_tau_density_reg(eta, dd, v, il, mu_now, beta_now, wk))
             t = math.exp(2 * eta) / (lam if heavy else 1.0)
             cov = np.diag(v + t) + Z @ S0 @ Z.T
-            ref.append(eta + stats.multivariate_normal.logpdf(p.ybar, Z @ m0, cov))
+            ref.append(eta + stats.multivariate_normal.logpdf(p.ybar, Z @ m0, cov) + tau_logpdf(math.exp(eta)))
         ours, ref = np.array(ours), np.array(ref)
         np.testing.assert_allclose(ours - ours[0], ref - ref[0], rtol=0, atol=1e-9)
         # a wrong form: the same without |P|^(-1/2) differs by far more than rounding
