@@ -15,9 +15,9 @@ into it (DEPENDENTS), so that every compiled function that could contain the mut
 Results go to one JSON line per mutant (default mutation-results/<stem>.jsonl); a rerun skips mutants already
 there, so a run can be stopped and taken up again. Usage (DEVELOPERS.md, "Mutation testing"):
 
-    nice -n 10 .venv/bin/python tools/mutation.py pooling/answers.py --sample 40 --seed 20261203
-    .venv/bin/python tools/mutation.py pooling/answers.py --report          # counts and survivors
-    .venv/bin/python tools/mutation.py pooling/answers.py --show 17         # one mutant's diff
+    nice -n 10 .venv/bin/python tests/mutation.py pooling/answers.py --sample 40 --seed 20261203
+    .venv/bin/python tests/mutation.py pooling/answers.py --report          # counts and survivors
+    .venv/bin/python tests/mutation.py pooling/answers.py --show 17         # one mutant's diff
 """
 from __future__ import annotations
 
