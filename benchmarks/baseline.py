@@ -28,12 +28,13 @@ Targets: tau ESS/s of the engine at least 20x the baseline's in the strong case,
 the same starting values, with the same number of warm-up sweeps; the clock (thread CPU time)
 covers the kept draws only. ESS is the bulk ESS of pooling.diagnostics, applied alike to both.
 """
+
 from __future__ import annotations
 
 import numpy as np
+from common import KernelChain, cpu_now, invented_groups, load, problem_of
 from scipy.special import gammaln
 
-from common import KernelChain, cpu_now, invented_groups, load, problem_of
 from pooling import diagnostics as dg
 from pooling import kernel
 
@@ -102,9 +103,14 @@ def _start(problem, chain: int) -> dict:
     """Starting values shared by both samplers: chain-specific but deterministic."""
     g = np.random.default_rng(1000 + chain)
     pooled = float(np.sum(problem.m2) / max(np.sum(problem.n) - problem.J, 1.0))
-    return {"theta": problem.ybar.copy(), "mu": float(np.mean(problem.ybar)) + 0.1 * g.normal(),
-            "tau": float(np.std(problem.ybar)) * np.exp(0.3 * g.normal()),
-            "sigma2": np.full(problem.J, pooled), "s2": pooled, "nu_idx": len(problem.nu_grid) // 2}
+    return {
+        "theta": problem.ybar.copy(),
+        "mu": float(np.mean(problem.ybar)) + 0.1 * g.normal(),
+        "tau": float(np.std(problem.ybar)) * np.exp(0.3 * g.normal()),
+        "sigma2": np.full(problem.J, pooled),
+        "s2": pooled,
+        "nu_idx": len(problem.nu_grid) // 2,
+    }
 
 
 def engine(problem, chain: int, warmup: int, draws: int):
@@ -130,9 +136,15 @@ def _ess_per_second(samples: list[dict], seconds: float) -> dict:
     theta = np.stack([s["theta"] for s in samples]).astype(np.float64)
     ess_theta = dg.bulk_ess(theta)
     worst = int(np.argmin(ess_theta))
-    res = {"ess_tau": float(dg.bulk_ess(tau)), "ess_mu": float(dg.bulk_ess(mu)),
-           "ess_theta_worst": float(ess_theta[worst]), "worst_group": worst, "seconds": seconds,
-           "draws": int(tau.size), "tau_mean": float(tau.mean())}
+    res = {
+        "ess_tau": float(dg.bulk_ess(tau)),
+        "ess_mu": float(dg.bulk_ess(mu)),
+        "ess_theta_worst": float(ess_theta[worst]),
+        "worst_group": worst,
+        "seconds": seconds,
+        "draws": int(tau.size),
+        "tau_mean": float(tau.mean()),
+    }
     for key in ("tau", "mu", "theta_worst"):
         res[f"ess_per_s_{key}"] = res[f"ess_{key}"] / seconds
     return res
@@ -153,30 +165,47 @@ def run(quick: bool = False) -> dict:
         # sigma_j = 3 and n_j in 5..13: standard errors of the group means near 1
         problem = problem_of(invented_groups(J, tau=tau, sigma=3.0, n_lo=5, n_hi=13, seed=11), Model(between=between))
         eng, t_eng = zip(*(engine(problem, c, warmup, eng_draws) for c in range(4)))
-        base, t_base = zip(*(gibbs(problem, np.random.default_rng(50 + c), warmup, base_draws, _start(problem, c))
-                             for c in range(4)))
+        base, t_base = zip(
+            *(gibbs(problem, np.random.default_rng(50 + c), warmup, base_draws, _start(problem, c)) for c in range(4))
+        )
         e = _ess_per_second(list(eng), sum(t_eng))
         b = _ess_per_second(list(base), sum(t_base))
         ratio = {k: e[f"ess_per_s_{k}"] / b[f"ess_per_s_{k}"] for k in ("tau", "mu", "theta_worst")}
         need = 20.0 if tau < 1 else 1.0
-        rows.append({"case": f"{name}, {between}", "tau_true": tau, "J": J, "engine": e, "baseline": b, "ratio": ratio,
-                     "target_tau_ratio": need, "met": bool(ratio["tau"] >= need)})
+        rows.append(
+            {
+                "case": f"{name}, {between}",
+                "tau_true": tau,
+                "J": J,
+                "engine": e,
+                "baseline": b,
+                "ratio": ratio,
+                "target_tau_ratio": need,
+                "met": bool(ratio["tau"] >= need),
+            }
+        )
     return {"name": "baseline", "rows": rows, "load_1min": load()}
 
 
 def table(res: dict) -> list[str]:
-    out = ["engine vs hand-written numpy Gibbs baseline (ESS per second of sampling, J = 2,000, 4 chains, 1 thread)",
-           f"  {'case':>24} {'sampler':>8} {'draws':>6} {'ESS tau':>8} {'ESS mu':>8} {'ESS th*':>8} {'sec':>6} "
-           f"{'tau/s':>8} {'mu/s':>8} {'th*/s':>8}"]
+    out = [
+        "engine vs hand-written numpy Gibbs baseline (ESS per second of sampling, J = 2,000, 4 chains, 1 thread)",
+        f"  {'case':>24} {'sampler':>8} {'draws':>6} {'ESS tau':>8} {'ESS mu':>8} {'ESS th*':>8} {'sec':>6} "
+        f"{'tau/s':>8} {'mu/s':>8} {'th*/s':>8}",
+    ]
     for r in res["rows"]:
         for who in ("engine", "baseline"):
             x = r[who]
-            out.append(f"  {r['case']:>24} {who:>8} {x['draws']:6d} {x['ess_tau']:8.0f} {x['ess_mu']:8.0f} "
-                       f"{x['ess_theta_worst']:8.0f} {x['seconds']:6.2f} {x['ess_per_s_tau']:8.0f} "
-                       f"{x['ess_per_s_mu']:8.0f} {x['ess_per_s_theta_worst']:8.0f}")
+            out.append(
+                f"  {r['case']:>24} {who:>8} {x['draws']:6d} {x['ess_tau']:8.0f} {x['ess_mu']:8.0f} "
+                f"{x['ess_theta_worst']:8.0f} {x['seconds']:6.2f} {x['ess_per_s_tau']:8.0f} "
+                f"{x['ess_per_s_mu']:8.0f} {x['ess_per_s_theta_worst']:8.0f}"
+            )
         q = r["ratio"]
-        out.append(f"  {'':>24} {'ratio':>8}  tau {q['tau']:.1f}x  mu {q['mu']:.1f}x  worst theta {q['theta_worst']:.1f}x"
-                   f"   target tau >= {r['target_tau_ratio']:g}x: {'met' if r['met'] else 'MISSED'}")
+        out.append(
+            f"  {'':>24} {'ratio':>8}  tau {q['tau']:.1f}x  mu {q['mu']:.1f}x  worst theta {q['theta_worst']:.1f}x"
+            f"   target tau >= {r['target_tau_ratio']:g}x: {'met' if r['met'] else 'MISSED'}"
+        )
     out.append("  (th* = the theta with the smallest bulk ESS)")
     return out
 

@@ -10,6 +10,7 @@ Target: a later run under 3 s. Wall time on a shared machine includes waiting fo
 process's CPU time (user + system) is shown too. The table also splits a later run into its stages, measured in one
 process with the same calls the command line makes, to show where the time goes.
 """
+
 from __future__ import annotations
 
 import os
@@ -22,7 +23,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-
 from common import load
 
 
@@ -37,8 +37,22 @@ def _data(path: Path, J: int, seed: int):
 
 
 def _fit(csv: Path, out: Path, env: dict) -> tuple[float, int, str]:
-    cmd = [sys.executable, "-m", "pooling.cli", "fit", str(csv), "--group", "line", "--value", "width_mm",
-           "--out", str(out), "--seed", "1", "--quiet"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "pooling.cli",
+        "fit",
+        str(csv),
+        "--group",
+        "line",
+        "--value",
+        "width_mm",
+        "--out",
+        str(out),
+        "--seed",
+        "1",
+        "--quiet",
+    ]
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t = time.perf_counter()
     p = subprocess.run(cmd, env=env, capture_output=True, text=True)
@@ -98,31 +112,50 @@ def run(quick: bool = False) -> dict:
         t = time.perf_counter()
         subprocess.run([sys.executable, "-c", "import pooling.cli"], env=env, check=True)
         import_only = time.perf_counter() - t
-        p = subprocess.run([sys.executable, "-c", _STAGES, str(csv), str(tmp / "run-stages"), str(tmp / "report")], env=env,
-                           capture_output=True, text=True)
+        p = subprocess.run(
+            [sys.executable, "-c", _STAGES, str(csv), str(tmp / "run-stages"), str(tmp / "report")],
+            env=env,
+            capture_output=True,
+            text=True,
+        )
         stages = {}
         if p.returncode == 0 and p.stdout.strip():
             import json
 
             stages = json.loads(p.stdout.strip().splitlines()[-1])
     best_later = min(later)
-    return {"name": "cli", "J": J, "first_run_s": first, "later_runs_s": later, "later_best_s": best_later,
-            "first_run_cpu_s": first_cpu, "later_runs_cpu_s": later_cpu,
-            "python_import_pooling_cli_s": import_only, "exit_code": code, "stages_s": stages,
-            "target": "< 3 s", "met": bool(best_later < 3.0), "load_1min": load()}
+    return {
+        "name": "cli",
+        "J": J,
+        "first_run_s": first,
+        "later_runs_s": later,
+        "later_best_s": best_later,
+        "first_run_cpu_s": first_cpu,
+        "later_runs_cpu_s": later_cpu,
+        "python_import_pooling_cli_s": import_only,
+        "exit_code": code,
+        "stages_s": stages,
+        "target": "< 3 s",
+        "met": bool(best_later < 3.0),
+        "load_1min": load(),
+    }
 
 
 def table(res: dict) -> list[str]:
-    out = [f"pooling fit, whole process, {res['J']:,} groups, default settings (wall time)",
-           f"  first run (compiles) {res['first_run_s']:.2f} s   later runs "
-           + ", ".join(f"{t:.2f}" for t in res["later_runs_s"])
-           + f" s   best {res['later_best_s']:.2f} s   target {res['target']}: {'met' if res['met'] else 'MISSED'}",
-           f"  CPU time of the process (user + system; what the run costs whatever the load): first "
-           f"{res['first_run_cpu_s']:.2f} s, later " + ", ".join(f"{t:.2f}" for t in res["later_runs_cpu_s"]) + " s",
-           f"  starting Python and importing pooling.cli alone {res['python_import_pooling_cli_s']:.2f} s"]
+    out = [
+        f"pooling fit, whole process, {res['J']:,} groups, default settings (wall time)",
+        f"  first run (compiles) {res['first_run_s']:.2f} s   later runs "
+        + ", ".join(f"{t:.2f}" for t in res["later_runs_s"])
+        + f" s   best {res['later_best_s']:.2f} s   target {res['target']}: {'met' if res['met'] else 'MISSED'}",
+        f"  CPU time of the process (user + system; what the run costs whatever the load): first "
+        f"{res['first_run_cpu_s']:.2f} s, later " + ", ".join(f"{t:.2f}" for t in res["later_runs_cpu_s"]) + " s",
+        f"  starting Python and importing pooling.cli alone {res['python_import_pooling_cli_s']:.2f} s",
+    ]
     st = res.get("stages_s") or {}
     if st:
-        out.append(f"  stages of a later run in one process ({st.get('draws_per_chain')} draws per chain), wall / CPU s:")
+        out.append(
+            f"  stages of a later run in one process ({st.get('draws_per_chain')} draws per chain), wall / CPU s:"
+        )
         for k, v in st["stages"].items():
             out.append(f"    {k:<32} {v['wall']:6.2f} / {v['cpu']:6.2f}")
     return out

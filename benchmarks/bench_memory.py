@@ -11,6 +11,7 @@ What it shows: at a fixed chunk size the growth is the same for 1e6 and 1e7 rows
 allocator's noise), grows with the chunk size, and grows a little with the groups (their labels
 and running statistics), while the file, and pandas' whole-file read, grow with the rows.
 """
+
 from __future__ import annotations
 
 import json
@@ -20,7 +21,6 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
-
 from common import load
 
 _READ = r"""
@@ -64,13 +64,21 @@ def _measure(path: Path, how) -> dict:
     if p.returncode != 0:
         raise RuntimeError(p.stderr.strip().splitlines()[-1])
     r = json.loads(p.stdout.strip().splitlines()[-1])
-    return {"base_mb": r["base_kb"] / 1024, "peak_mb": r["peak_kb"] / 1024,
-            "growth_mb": (r["peak_kb"] - r["base_kb"]) / 1024, "groups_read": r["groups"], "seconds": r["seconds"]}
+    return {
+        "base_mb": r["base_kb"] / 1024,
+        "peak_mb": r["peak_kb"] / 1024,
+        "growth_mb": (r["peak_kb"] - r["base_kb"]) / 1024,
+        "groups_read": r["groups"],
+        "seconds": r["seconds"],
+    }
 
 
 def run(quick: bool = False) -> dict:
-    files = [(1_000_000, 1000), (3_000_000, 1000)] if quick else [(1_000_000, 1000), (10_000_000, 1000),
-                                                                  (10_000_000, 100_000)]
+    files = (
+        [(1_000_000, 1000), (3_000_000, 1000)]
+        if quick
+        else [(1_000_000, 1000), (10_000_000, 1000), (10_000_000, 100_000)]
+    )
     chunks = (100_000, 1_000_000)
     rows_out = []
     with tempfile.TemporaryDirectory() as tmp:
@@ -83,30 +91,57 @@ def run(quick: bool = False) -> dict:
             size = path.stat().st_size / 2**20
             for chunk in chunks:
                 r = _measure(path, chunk)
-                rows_out.append({"rows": rows, "groups": J, "file_mb": size, "reader": f"read_table, chunk_rows={chunk:,}",
-                                 "chunk_rows": chunk, **r})
+                rows_out.append(
+                    {
+                        "rows": rows,
+                        "groups": J,
+                        "file_mb": size,
+                        "reader": f"read_table, chunk_rows={chunk:,}",
+                        "chunk_rows": chunk,
+                        **r,
+                    }
+                )
         rows, J = files[-2] if not quick else files[-1]
         path = paths[(rows, J)]
-        rows_out.append({"rows": rows, "groups": J, "file_mb": path.stat().st_size / 2**20,
-                         "reader": "pandas read_csv, whole file", "chunk_rows": None, **_measure(path, "pandas")})
+        rows_out.append(
+            {
+                "rows": rows,
+                "groups": J,
+                "file_mb": path.stat().st_size / 2**20,
+                "reader": "pandas read_csv, whole file",
+                "chunk_rows": None,
+                **_measure(path, "pandas"),
+            }
+        )
     # the claim, checked on the numbers: same chunk and groups, 10x (or 3x) the rows, about the same growth
     checks = []
     small, big = files[0], files[1]
     for chunk in chunks:
         a = next(r for r in rows_out if (r["rows"], r["groups"], r["chunk_rows"]) == (*small, chunk))
         b = next(r for r in rows_out if (r["rows"], r["groups"], r["chunk_rows"]) == (*big, chunk))
-        checks.append({"chunk_rows": chunk, "rows": [small[0], big[0]], "growth_mb": [a["growth_mb"], b["growth_mb"]],
-                       "ratio": b["growth_mb"] / max(a["growth_mb"], 1e-9), "rows_ratio": big[0] / small[0]})
+        checks.append(
+            {
+                "chunk_rows": chunk,
+                "rows": [small[0], big[0]],
+                "growth_mb": [a["growth_mb"], b["growth_mb"]],
+                "ratio": b["growth_mb"] / max(a["growth_mb"], 1e-9),
+                "rows_ratio": big[0] / small[0],
+            }
+        )
     bounded = all(c["ratio"] < 1.5 for c in checks)
     return {"name": "memory", "cases": rows_out, "checks": checks, "bounded": bounded, "load_1min": load()}
 
 
 def table(res: dict) -> list[str]:
-    out = ["bounded memory: peak resident memory of a fresh process reading a CSV (MB; growth = peak - after imports)",
-           f"  {'rows':>11} {'groups':>8} {'file':>7} {'reader':>32} {'growth':>7} {'peak':>7} {'sec':>6}"]
+    out = [
+        "bounded memory: peak resident memory of a fresh process reading a CSV (MB; growth = peak - after imports)",
+        f"  {'rows':>11} {'groups':>8} {'file':>7} {'reader':>32} {'growth':>7} {'peak':>7} {'sec':>6}",
+    ]
     for r in res["cases"]:
-        out.append(f"  {r['rows']:>11,} {r['groups']:>8,} {r['file_mb']:7.0f} {r['reader']:>32} {r['growth_mb']:7.0f} "
-                   f"{r['peak_mb']:7.0f} {r['seconds']:6.1f}")
+        out.append(
+            f"  {r['rows']:>11,} {r['groups']:>8,} {r['file_mb']:7.0f} {r['reader']:>32} {r['growth_mb']:7.0f} "
+            f"{r['peak_mb']:7.0f} {r['seconds']:6.1f}"
+        )
     for c in res["checks"]:
         out.append(f"  chunk_rows={c['chunk_rows']:,}: {c['rows_ratio']:.0f}x the rows -> {c['ratio']:.2f}x the growth")
     out.append(f"  memory bounded by chunk size and groups, not rows: {'yes' if res['bounded'] else 'NO'}")

@@ -13,6 +13,7 @@ Runs in well under two minutes on two cores:
 
     python benchmarks/bench_refit.py
 """
+
 from __future__ import annotations
 
 import json
@@ -89,28 +90,45 @@ def main() -> int:
                 sample[name].append(time.perf_counter() - t0)
         for name, J, B, store, ingest_s, total_rows in built:
             plan = plans[name]
-            rows.append({
-                "case": name, "groups": J, "batches": B, "rows_ingested": total_rows,
-                "group_rows_in_store": int(sum(len(s.labels) for s in plan.snapshot.stats)),
-                "store_bytes": os.path.getsize(store),
-                "ingest_s": ingest_s, "merge_s": min(merge[name]), "sampling_s": min(sample[name]),
-            })
+            rows.append(
+                {
+                    "case": name,
+                    "groups": J,
+                    "batches": B,
+                    "rows_ingested": total_rows,
+                    "group_rows_in_store": int(sum(len(s.labels) for s in plan.snapshot.stats)),
+                    "store_bytes": os.path.getsize(store),
+                    "ingest_s": ingest_s,
+                    "merge_s": min(merge[name]),
+                    "sampling_s": min(sample[name]),
+                }
+            )
     base = rows[0]
-    print(f"{'case':12}{'J':>7}{'B':>5}{'rows':>10}{'grp rows':>10}{'ingest s':>10}{'merge s':>10}"
-          f"{'sample s':>10}{'merge/base':>12}{'sample/base':>12}")
+    print(
+        f"{'case':12}{'J':>7}{'B':>5}{'rows':>10}{'grp rows':>10}{'ingest s':>10}{'merge s':>10}"
+        f"{'sample s':>10}{'merge/base':>12}{'sample/base':>12}"
+    )
     for r in rows:
         r["merge_ratio"] = r["merge_s"] / base["merge_s"]
         r["sampling_ratio"] = r["sampling_s"] / base["sampling_s"]
-        print(f"{r['case']:12}{r['groups']:>7}{r['batches']:>5}{r['rows_ingested']:>10}{r['group_rows_in_store']:>10}"
-              f"{r['ingest_s']:>10.3f}{r['merge_s']:>10.4f}{r['sampling_s']:>10.3f}{r['merge_ratio']:>12.2f}"
-              f"{r['sampling_ratio']:>12.2f}")
+        print(
+            f"{r['case']:12}{r['groups']:>7}{r['batches']:>5}{r['rows_ingested']:>10}{r['group_rows_in_store']:>10}"
+            f"{r['ingest_s']:>10.3f}{r['merge_s']:>10.4f}{r['sampling_s']:>10.3f}{r['merge_ratio']:>12.2f}"
+            f"{r['sampling_ratio']:>12.2f}"
+        )
     out = Path(__file__).resolve().parent / "results"
     out.mkdir(exist_ok=True)
     result = {
         "benchmark": "refit cost against groups, batches and raw rows",
-        "settings": {"chains": SETTINGS.chains, "warmup": SETTINGS.warmup, "draws": SETTINGS.draws,
-                     "threads": SETTINGS.threads, "merge_repeats": REPEATS * ROUNDS, "sampling_repeats": ROUNDS,
-                     "timing": "fastest of the repeats"},
+        "settings": {
+            "chains": SETTINGS.chains,
+            "warmup": SETTINGS.warmup,
+            "draws": SETTINGS.draws,
+            "threads": SETTINGS.threads,
+            "merge_repeats": REPEATS * ROUNDS,
+            "sampling_repeats": ROUNDS,
+            "timing": "fastest of the repeats",
+        },
         "machine": {"python": sys.version.split()[0], "platform": platform.platform(), "cpus": os.cpu_count()},
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "cases": rows,

@@ -12,6 +12,7 @@ No target is set in the issue; the table shows what each step costs. Wall time, 
 (pyarrow and Dask use several threads, which a thread's CPU time would not count). The files are
 in the page cache, so the figures are for parsing, not for the disk.
 """
+
 from __future__ import annotations
 
 import tempfile
@@ -20,8 +21,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-
 from common import best, load
+
 from pooling import stats as S
 
 
@@ -65,9 +66,11 @@ def run(quick: bool = False) -> dict:
 
 
 def table(res: dict) -> list[str]:
-    out = [f"group statistics: {res['rows']:,} rows, {res['groups']:,} groups (wall time, best of repeats; "
-           f"CSV {res['csv_bytes'] / 1e6:.0f} MB, Parquet {res['parquet_bytes'] / 1e6:.0f} MB)",
-           f"  {'case':>28} {'seconds':>8} {'rows/s':>12} {'time vs pandas groupby':>24}"]
+    out = [
+        f"group statistics: {res['rows']:,} rows, {res['groups']:,} groups (wall time, best of repeats; "
+        f"CSV {res['csv_bytes'] / 1e6:.0f} MB, Parquet {res['parquet_bytes'] / 1e6:.0f} MB)",
+        f"  {'case':>28} {'seconds':>8} {'rows/s':>12} {'time vs pandas groupby':>24}",
+    ]
     for r in res["cases"]:
         out.append(f"  {r['case']:>28} {r['seconds']:8.3f} {r['rows_per_s']:12,.0f} {r['vs_pandas_groupby']:23.1f}x")
     return out

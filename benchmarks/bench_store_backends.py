@@ -17,6 +17,7 @@ the figures are wall times of one run; compare the two stores within a run.
     python benchmarks/bench_store_backends.py            # writes benchmarks/results/bench_store_backends.json
     python benchmarks/bench_store_backends.py --quick    # 100 batches
 """
+
 from __future__ import annotations
 
 import json
@@ -90,8 +91,10 @@ def run_case(store: str, files: list[Path], folder: Path, env: dict) -> dict:
     chunks = [files[i::WORKERS] for i in range(WORKERS)]
     peaks_at = [folder / f"peak-{i}-{abs(hash(store)) % 10_000}" for i in range(WORKERS)]
     t0 = time.perf_counter()
-    procs = [subprocess.Popen([sys.executable, "-c", WORKER, store, str(at), *map(str, c)], env=env,
-                              stderr=subprocess.PIPE) for c, at in zip(chunks, peaks_at)]
+    procs = [
+        subprocess.Popen([sys.executable, "-c", WORKER, store, str(at), *map(str, c)], env=env, stderr=subprocess.PIPE)
+        for c, at in zip(chunks, peaks_at)
+    ]
     for p in procs:
         if _wait(p) != 0:
             raise RuntimeError(f"an ingest worker failed: {p.stderr.read().decode()[-2000:]}")
@@ -100,8 +103,11 @@ def run_case(store: str, files: list[Path], folder: Path, env: dict) -> dict:
     out = folder / f"refit-{abs(hash(store)) % 10_000}"
     peak_at = folder / f"peak-refit-{abs(hash(store)) % 10_000}"
     t0 = time.perf_counter()
-    proc = subprocess.Popen([sys.executable, "-c", REFIT_WRAPPER, str(peak_at), "refit", store, "--out", str(out),
-                             *REFIT], env=env, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(
+        [sys.executable, "-c", REFIT_WRAPPER, str(peak_at), "refit", store, "--out", str(out), *REFIT],
+        env=env,
+        stderr=subprocess.PIPE,
+    )
     code = _wait(proc)
     refit_s = time.perf_counter() - t0
     if code not in (0, 3):
@@ -120,14 +126,25 @@ def run_case(store: str, files: list[Path], folder: Path, env: dict) -> dict:
     exact = 0
     for b, s in zip(snap.batches, snap.stats):
         ref = read_table(by_name[b.name], "line", "strength")
-        exact += bool(s.labels == ref.labels and np.array_equal(s.n, ref.n) and np.array_equal(s.m2, ref.m2)
-                      and np.array_equal(s.mean, ref.mean))
+        exact += bool(
+            s.labels == ref.labels
+            and np.array_equal(s.n, ref.n)
+            and np.array_equal(s.m2, ref.m2)
+            and np.array_equal(s.mean, ref.mean)
+        )
     problems = jobs.check_store(store)[1]
-    return {"ingest_wall_s": round(ingest_s, 2), "batches_per_s": round(len(files) / ingest_s, 1),
-            "ingest_worker_peak_mib": [round(p, 1) for p in peaks], "refit_wall_s": round(refit_s, 2),
-            "refit_read_and_merge_s": round(read_s, 3), "refit_peak_mib": round(refit_peak, 1),
-            "active_batches": len(snap.batches), "batches_exact": exact, "group_rows": sum(
-                len(s.labels) for s in snap.stats), "checkup_problems": len(problems)}
+    return {
+        "ingest_wall_s": round(ingest_s, 2),
+        "batches_per_s": round(len(files) / ingest_s, 1),
+        "ingest_worker_peak_mib": [round(p, 1) for p in peaks],
+        "refit_wall_s": round(refit_s, 2),
+        "refit_read_and_merge_s": round(read_s, 3),
+        "refit_peak_mib": round(refit_peak, 1),
+        "active_batches": len(snap.batches),
+        "batches_exact": exact,
+        "group_rows": sum(len(s.labels) for s in snap.stats),
+        "checkup_problems": len(problems),
+    }
 
 
 def main(argv=None) -> dict:
@@ -140,8 +157,15 @@ def main(argv=None) -> dict:
         folder = Path(tmp)
         files = make_files(folder, batches)
         env = dict(os.environ, NUMBA_CACHE_DIR=os.environ.get("NUMBA_CACHE_DIR", str(ROOT / ".numba-cache")))
-        results = {"batches": batches, "groups": GROUPS, "rows_per_file": GROUPS * PER_GROUP, "workers": WORKERS,
-                   "machine": platform.machine(), "cores": os.cpu_count(), "load_before": os.getloadavg()[0]}
+        results = {
+            "batches": batches,
+            "groups": GROUPS,
+            "rows_per_file": GROUPS * PER_GROUP,
+            "workers": WORKERS,
+            "machine": platform.machine(),
+            "cores": os.cpu_count(),
+            "load_before": os.getloadavg()[0],
+        }
         results["sqlite"] = run_case(str(folder / "plant.store"), files, folder, env)
         if why:
             results["postgresql"] = f"not run: {why}"

@@ -25,6 +25,7 @@ summary mode with full draws of the same seed at J = 1e4 (largest limit error ag
 
 Writes benchmarks/results/bench_summary_mode.json and prints a table.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -54,13 +55,13 @@ def child(J: int, mode: str) -> dict:
     """One case, in this process (run by the parent in a subprocess)."""
     sys.path.insert(0, str(HERE))
     import numpy as np
+    from common import invented_groups
 
     import pooling
-    from common import invented_groups
-    from pooling.output import write_run
-    from pooling.results import compute
     from pooling import summary
     from pooling.asked import ReportOptions
+    from pooling.output import write_run
+    from pooling.results import compute
 
     stats = invented_groups(J, tau=1.0, sigma=2.0, n_lo=2, n_hi=12, seed=1)
     settings = pooling.Settings(chains=CHAINS, warmup=WARMUP, draws=DRAWS, max_draws=DRAWS, seed=1, threads=THREADS)
@@ -71,9 +72,18 @@ def child(J: int, mode: str) -> dict:
     t0, c0 = time.perf_counter(), time.process_time()
     fit = pooling.fit(stats, None, settings, summary=mode != "full", options=options)
     t1, c1 = time.perf_counter(), time.process_time()
-    out = {"J": J, "mode": mode, "chains": CHAINS, "threads": THREADS, "warmup": WARMUP, "draws": DRAWS,
-           "rss_before_mb": round(before, 1), "fit_seconds": round(t1 - t0, 2), "fit_cpu_seconds": round(c1 - c0, 2),
-           "sampling_seconds": round(fit.raw.seconds, 2)}
+    out = {
+        "J": J,
+        "mode": mode,
+        "chains": CHAINS,
+        "threads": THREADS,
+        "warmup": WARMUP,
+        "draws": DRAWS,
+        "rss_before_mb": round(before, 1),
+        "fit_seconds": round(t1 - t0, 2),
+        "fit_cpu_seconds": round(c1 - c0, 2),
+        "sampling_seconds": round(fit.raw.seconds, 2),
+    }
     if mode == "accuracy":
         full = pooling.fit(stats, None, settings, summary=False)
         out.update(_accuracy(fit, full, options))
@@ -85,13 +95,16 @@ def child(J: int, mode: str) -> dict:
             out["folder_mb"] = round(sum(p.stat().st_size for p in (Path(tmp) / "run").iterdir()) / 2**20, 1)
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux
     sweeps = WARMUP + DRAWS
-    out.update(peak_mb=round(peak, 1), per_group_bytes=round((peak - before) * 2**20 / J),
-               sweep_seconds=round(fit.raw.seconds / sweeps, 4),
-               ns_per_group=round(fit.raw.seconds / sweeps * THREADS / (CHAINS * J) * 1e9, 1),
-               cpu_ns_per_group=round((c1 - c0) / (sweeps * CHAINS * J) * 1e9, 1),
-               accumulator_mb_estimate=round(summary.summary_bytes(J, "separate", CHAINS) / 2**20, 1),
-               full_draw_gb=round(CHAINS * DRAWS * J * 8 * 2 / 2**30, 3),
-               load=round(os.getloadavg()[0], 2))
+    out.update(
+        peak_mb=round(peak, 1),
+        per_group_bytes=round((peak - before) * 2**20 / J),
+        sweep_seconds=round(fit.raw.seconds / sweeps, 4),
+        ns_per_group=round(fit.raw.seconds / sweeps * THREADS / (CHAINS * J) * 1e9, 1),
+        cpu_ns_per_group=round((c1 - c0) / (sweeps * CHAINS * J) * 1e9, 1),
+        accumulator_mb_estimate=round(summary.summary_bytes(J, "separate", CHAINS) / 2**20, 1),
+        full_draw_gb=round(CHAINS * DRAWS * J * 8 * 2 / 2**30, 3),
+        load=round(os.getloadavg()[0], 2),
+    )
     del np
     return out
 
@@ -106,30 +119,45 @@ def _accuracy(fit, full, options) -> dict:
     t = fit.table
     others = np.setdiff1d(np.arange(len(t)), fit.kept)
     sd = ref["theta_sd"].to_numpy()[others]
-    res = {"mean_max_abs_diff": float(np.max(np.abs(t["theta_mean"] - ref["theta_mean"]))),
-           "p_top_k_equal": bool(np.array_equal(t["p_top_k"], ref["p_top_k"])),
-           "p_above_equal": bool(np.array_equal(t["p_above"], ref["p_above"]))}
-    for col, err in (("theta_low", "theta_limit_error"), ("theta_high", "theta_limit_error"),
-                     ("sigma_low", "sigma_limit_error"), ("shrink_high", "shrink_limit_error")):
+    res = {
+        "mean_max_abs_diff": float(np.max(np.abs(t["theta_mean"] - ref["theta_mean"]))),
+        "p_top_k_equal": bool(np.array_equal(t["p_top_k"], ref["p_top_k"])),
+        "p_above_equal": bool(np.array_equal(t["p_above"], ref["p_above"])),
+    }
+    for col, err in (
+        ("theta_low", "theta_limit_error"),
+        ("theta_high", "theta_limit_error"),
+        ("sigma_low", "sigma_limit_error"),
+        ("shrink_high", "shrink_limit_error"),
+    ):
         d = np.abs(t[col].to_numpy() - ref[col].to_numpy())[others]
         b = t[err].to_numpy()[others]
-        res[col] = {"within_bound": bool(np.all(d <= b + 1e-12)), "max_error_over_bound": float(np.max(d / b)),
-                    "median_error_over_bound": float(np.median(d / b))}
+        res[col] = {
+            "within_bound": bool(np.all(d <= b + 1e-12)),
+            "max_error_over_bound": float(np.max(d / b)),
+            "median_error_over_bound": float(np.median(d / b)),
+        }
         if col.startswith("theta"):
             res[col].update(median_error_sd=float(np.median(d / sd)), median_bound_sd=float(np.median(b / sd)))
     d = np.abs(t["rank_mean"] - ref["rank_mean"]).to_numpy()[others]
-    res["rank_mean"] = {"within_bound": bool(np.all(d <= t["rank_mean_error"].to_numpy()[others] + 1e-9)),
-                        "max_abs_error": float(d.max()), "median_bound": float(np.median(t["rank_mean_error"]))}
+    res["rank_mean"] = {
+        "within_bound": bool(np.all(d <= t["rank_mean_error"].to_numpy()[others] + 1e-9)),
+        "max_abs_error": float(d.max()),
+        "median_bound": float(np.median(t["rank_mean_error"])),
+    }
     # rank intervals of the groups not kept: contain the exact (full-draw) interval, ends within rank_limit_error
     lo, hi = ref["rank_low"].to_numpy()[others], ref["rank_high"].to_numpy()[others]
     g_lo, g_hi = t["rank_low"].to_numpy()[others].astype(float), t["rank_high"].to_numpy()[others].astype(float)
     e = t["rank_limit_error"].to_numpy()[others]
-    res["rank_interval"] = {"contains_exact": bool(np.all(g_lo <= lo) and np.all(g_hi >= hi)),
-                            "within_bound": bool(np.all(lo - g_lo <= e) and np.all(g_hi - hi <= e)),
-                            "median_bound": float(np.median(e)), "max_bound": float(np.max(e)),
-                            "median_extra_width": float(np.median((g_hi - g_lo) - (hi - lo))),
-                            "median_exact_width": float(np.median(hi - lo)),
-                            "max_end_error": float(max(np.max(lo - g_lo), np.max(g_hi - hi)))}
+    res["rank_interval"] = {
+        "contains_exact": bool(np.all(g_lo <= lo) and np.all(g_hi >= hi)),
+        "within_bound": bool(np.all(lo - g_lo <= e) and np.all(g_hi - hi <= e)),
+        "median_bound": float(np.median(e)),
+        "max_bound": float(np.max(e)),
+        "median_extra_width": float(np.median((g_hi - g_lo) - (hi - lo))),
+        "median_exact_width": float(np.median(hi - lo)),
+        "max_end_error": float(max(np.max(lo - g_lo), np.max(g_hi - hi))),
+    }
     return res
 
 
@@ -150,19 +178,26 @@ def main() -> int:
     if args.child:
         print(json.dumps(child(int(args.child[0]), args.child[1])))
         return 0
-    cases = [(1_000, "summary"), (10_000, "summary"), (100_000, "summary")] + ([(1_000_000, "summary")] if args.big else [])
+    cases = [(1_000, "summary"), (10_000, "summary"), (100_000, "summary")] + (
+        [(1_000_000, "summary")] if args.big else []
+    )
     cases += [(1_000, "full"), (10_000, "full"), (10_000, "accuracy")]
     rows = []
     for J, mode in cases:
         r = run_case(J, mode)
         rows.append(r)
-        print(f"J={J:>9,} {mode:9} peak {r['peak_mb']:8.1f} MB  before {r['rss_before_mb']:7.1f} MB  "
-              f"{r['per_group_bytes']:>7} B/group  sweep {r['sweep_seconds']:.4f} s  {r['cpu_ns_per_group']:7.1f} cpu ns/group  "
-              f"write {r.get('write_seconds', float('nan')):6.2f} s  full draws {r['full_draw_gb']:7.3f} GB  load {r['load']}",
-              flush=True)
-    result = {"machine": {"python": platform.python_version(), "cpus": os.cpu_count(), "platform": platform.platform()},
-              "settings": {"chains": CHAINS, "threads": THREADS, "warmup": WARMUP, "draws": DRAWS}, "cases": rows,
-              "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())}
+        print(
+            f"J={J:>9,} {mode:9} peak {r['peak_mb']:8.1f} MB  before {r['rss_before_mb']:7.1f} MB  "
+            f"{r['per_group_bytes']:>7} B/group  sweep {r['sweep_seconds']:.4f} s  {r['cpu_ns_per_group']:7.1f} cpu ns/group  "
+            f"write {r.get('write_seconds', float('nan')):6.2f} s  full draws {r['full_draw_gb']:7.3f} GB  load {r['load']}",
+            flush=True,
+        )
+    result = {
+        "machine": {"python": platform.python_version(), "cpus": os.cpu_count(), "platform": platform.platform()},
+        "settings": {"chains": CHAINS, "threads": THREADS, "warmup": WARMUP, "draws": DRAWS},
+        "cases": rows,
+        "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+    }
     out = HERE / "results" / "bench_summary_mode.json"
     out.parent.mkdir(exist_ok=True)
     if out.exists() and not args.big:  # keep an earlier J = 1e6 case when re-running the small ones

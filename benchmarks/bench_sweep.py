@@ -20,12 +20,13 @@ The sweeps run exactly as in the sampler's warm-up: kernel.sweeps with zero-row 
 draws stored, so J = 1e6 needs no memory for draws) in the sampler's chunks of sweeps per call.
 Times are thread CPU time, best of interleaved repeats (see common.py).
 """
+
 from __future__ import annotations
 
 import numpy as np
+from common import KernelChain, best, invented_estimates, invented_groups, load, problem_of
 from numba import njit
 
-from common import KernelChain, best, invented_estimates, invented_groups, load, problem_of
 from pooling import kernel
 from pooling.model import Category, Model, Numeric
 
@@ -100,11 +101,19 @@ def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) ->
     if structure == "separate":
         nu = p.nu_grid[int(chain.state[kernel.NU_IDX])]
         shape = 0.5 * (nu + p.n)
-        floor = ((lambda: floor_separate_heavy(chain.rng, k, shape, shape_lam)) if heavy else  # noqa: E731
-                 (lambda: floor_separate(chain.rng, k, shape)))
+        floor = (
+            (lambda: floor_separate_heavy(chain.rng, k, shape, shape_lam))
+            if heavy
+            # noqa: E731
+            else (lambda: floor_separate(chain.rng, k, shape))
+        )
     else:
-        floor = ((lambda: floor_normal_heavy(chain.rng, k, J, shape_lam)) if heavy else  # noqa: E731
-                 (lambda: floor_normal(chain.rng, k, J)))
+        floor = (
+            (lambda: floor_normal_heavy(chain.rng, k, J, shape_lam))
+            if heavy
+            # noqa: E731
+            else (lambda: floor_normal(chain.rng, k, J))
+        )
     floor_separate(chain.rng, 1, np.ones(1))  # compile (or load from the cache) before timing
     floor_normal(chain.rng, 1, 1)
     floor_separate_heavy(chain.rng, 1, np.ones(1), 2.0)
@@ -115,9 +124,15 @@ def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) ->
         t_floor = min(t_floor, best(floor, 1))
     evals = chain.run(max(3, min(200, 20_000 // J)), store=True)["evals"]
     return {
-        "J": J, "structure": structure, "between": p.model.between.name, "df_at_end": float(df), "sweeps_timed": k,
-        "sweep_ns_per_group": t_sweep / k / J * 1e9, "floor_ns_per_group": t_floor / k / J * 1e9,
-        "ratio": t_sweep / t_floor, "density_evals_per_sweep": float(np.mean(evals)),
+        "J": J,
+        "structure": structure,
+        "between": p.model.between.name,
+        "df_at_end": float(df),
+        "sweeps_timed": k,
+        "sweep_ns_per_group": t_sweep / k / J * 1e9,
+        "floor_ns_per_group": t_floor / k / J * 1e9,
+        "ratio": t_sweep / t_floor,
+        "density_evals_per_sweep": float(np.mean(evals)),
         "target": "<= 2" if structure == "separate" and J >= 1000 else None,
         "met": bool(t_sweep / t_floor <= 2.0) if structure == "separate" and J >= 1000 else None,
     }
@@ -130,8 +145,11 @@ def run(quick: bool = False) -> dict:
         stats = invented_groups(J, tau=0.5, sigma=1.0, n_lo=2, n_hi=20, seed=J)
         rows.append(_measure(KernelChain.start(problem_of(stats), seed=1), "separate", budget, repeats))
         if J >= 1000:
-            rows.append(_measure(KernelChain.start(problem_of(stats, Model(between="normal")), seed=1), "separate",
-                                 budget, repeats))
+            rows.append(
+                _measure(
+                    KernelChain.start(problem_of(stats, Model(between="normal")), seed=1), "separate", budget, repeats
+                )
+            )
         del stats
     J = 10_000
     shared = problem_of(invented_groups(J, 0.5, 1.0, 2, 20, seed=7), Model(within="shared"))
@@ -154,22 +172,28 @@ def run(quick: bool = False) -> dict:
 
 
 def table(res: dict) -> list[str]:
-    out = ["sweep vs random-number floor (ns per group and sweep; thread CPU time, best of repeats)",
-           f"  {'J':>9} {'structure':>9} {'between':>8} {'sweep':>8} {'floor':>8} {'ratio':>6} {'evals':>6}  target"]
+    out = [
+        "sweep vs random-number floor (ns per group and sweep; thread CPU time, best of repeats)",
+        f"  {'J':>9} {'structure':>9} {'between':>8} {'sweep':>8} {'floor':>8} {'ratio':>6} {'evals':>6}  target",
+    ]
     for r in res["rows"]:
         if "predictors" in r:
             continue
         tgt = "" if r["target"] is None else f"{r['target']}  {'met' if r['met'] else 'MISSED'}"
-        out.append(f"  {r['J']:>9,} {r['structure']:>9} {r['between']:>8} {r['sweep_ns_per_group']:8.1f} "
-                   f"{r['floor_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f}  {tgt}")
+        out.append(
+            f"  {r['J']:>9,} {r['structure']:>9} {r['between']:>8} {r['sweep_ns_per_group']:8.1f} "
+            f"{r['floor_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f}  {tgt}"
+        )
     pred = [r for r in res["rows"] if "predictors" in r]
     if pred:
         out.append("group-level predictors, separate structure (ns per group and sweep; the same floor)")
         out.append(f"  {'J':>9} {'columns':>8} {'sweep':>8} {'floor':>8} {'ratio':>6} {'evals':>6} {'vs none':>8}")
         for r in pred:
             vs = f"{r['vs_no_predictors']:8.2f}" if "vs_no_predictors" in r else f"{'1':>8}"
-            out.append(f"  {r['J']:>9,} {r['predictors']:>8} {r['sweep_ns_per_group']:8.1f} "
-                       f"{r['floor_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f} {vs}")
+            out.append(
+                f"  {r['J']:>9,} {r['predictors']:>8} {r['sweep_ns_per_group']:8.1f} "
+                f"{r['floor_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['density_evals_per_sweep']:6.2f} {vs}"
+            )
     return out
 
 

@@ -13,14 +13,15 @@ a core. Runs alternate between 1 and 2 threads and the best of each is kept; the
 shows the load average and the cores the 2-thread run actually got (process CPU time / wall).
 The draws are checked to be identical on 1 and 2 threads (each chain owns its Generator).
 """
+
 from __future__ import annotations
 
 import os
 import time
 
 import numpy as np
-
 from common import invented_groups, load, problem_of
+
 from pooling.sampler import Settings, sample_raw
 
 
@@ -59,11 +60,26 @@ def run(quick: bool = False) -> dict:
     # chains do the same work on 1 or 2 threads, so a shortfall here (not in the raw ratio) would
     # mean the threads wait on each other (the GIL, a lock), not on other people's jobs.
     efficiency = ratio / (best[2][1] / max(best[1][1], 1e-9))
-    return {"name": "threads", "J": J, "chains": 2, "sweeps_per_chain": warmup + draws,
-            "wall_1": best[1][0], "wall_2": best[2][0], "cores_used_1": best[1][1], "cores_used_2": best[2][1],
-            "ratio": ratio, "per_core_efficiency": efficiency, "ratio_on_two_whole_cores": 2.0 * efficiency,
-            "target": ">= 1.8", "met": bool(ratio >= 1.8), "identical_draws": same, "repeats": repeats,
-            "load_1min_before": load_before, "load_1min_after": load(), "cpu_count": os.cpu_count()}
+    return {
+        "name": "threads",
+        "J": J,
+        "chains": 2,
+        "sweeps_per_chain": warmup + draws,
+        "wall_1": best[1][0],
+        "wall_2": best[2][0],
+        "cores_used_1": best[1][1],
+        "cores_used_2": best[2][1],
+        "ratio": ratio,
+        "per_core_efficiency": efficiency,
+        "ratio_on_two_whole_cores": 2.0 * efficiency,
+        "target": ">= 1.8",
+        "met": bool(ratio >= 1.8),
+        "identical_draws": same,
+        "repeats": repeats,
+        "load_1min_before": load_before,
+        "load_1min_after": load(),
+        "cpu_count": os.cpu_count(),
+    }
 
 
 def table(res: dict) -> list[str]:

@@ -13,6 +13,7 @@ Summary mode at J = 20,000 should be no slower than full mode (ratio of whole ti
 The tau ESS per second of the whole process (full mode, J = 2,000, strong shrinkage data as in
 baseline.py) is compared with the numpy baseline's tau ESS per second of sampling: target >= 25x.
 """
+
 from __future__ import annotations
 
 import json
@@ -41,14 +42,41 @@ def _table(path: Path, J: int, tau: float, sigma: float, seed: int) -> None:
 
 
 # the command line in a fresh interpreter that reports its own peak resident memory on its last stderr line
-_WRAP = ("import resource, sys\nfrom pooling.cli import main\ncode = main(sys.argv[1:])\n"
-         "print('peak-kb', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\nsys.exit(code)")
+_WRAP = (
+    "import resource, sys\nfrom pooling.cli import main\ncode = main(sys.argv[1:])\n"
+    "print('peak-kb', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\nsys.exit(code)"
+)
 
 
 def _fit(csv: Path, out: Path, env: dict, mode: str) -> dict:
-    cmd = [sys.executable, "-c", _WRAP, "fit", str(csv), "--group", "line", "--value", "width", "--out", str(out),
-           "--seed", "1", "--quiet", "--nu", "4", "--chains", str(CHAINS), "--warmup", str(WARMUP), "--draws", str(DRAWS),
-           "--max-draws", str(DRAWS), "--summary", mode]
+    cmd = [
+        sys.executable,
+        "-c",
+        _WRAP,
+        "fit",
+        str(csv),
+        "--group",
+        "line",
+        "--value",
+        "width",
+        "--out",
+        str(out),
+        "--seed",
+        "1",
+        "--quiet",
+        "--nu",
+        "4",
+        "--chains",
+        str(CHAINS),
+        "--warmup",
+        str(WARMUP),
+        "--draws",
+        str(DRAWS),
+        "--max-draws",
+        str(DRAWS),
+        "--summary",
+        mode,
+    ]
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t = time.perf_counter()
     p = subprocess.run(cmd, env=env, capture_output=True, text=True)
@@ -58,8 +86,13 @@ def _fit(csv: Path, out: Path, env: dict, mode: str) -> dict:
         raise RuntimeError(f"pooling fit failed ({p.returncode}): {p.stderr[-500:]}")
     peak = float(p.stderr.strip().splitlines()[-1].split()[-1]) / 1024
     s = json.loads((out / "summary.json").read_text())
-    return {"whole_s": wall, "cpu_s": (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime),
-            "sampling_s": s["run"]["sweep_seconds"], "peak_mb": peak, "summary": s}
+    return {
+        "whole_s": wall,
+        "cpu_s": (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime),
+        "sampling_s": s["run"]["sweep_seconds"],
+        "peak_mb": peak,
+        "summary": s,
+    }
 
 
 def run(quick: bool = False) -> dict:
@@ -77,10 +110,19 @@ def run(quick: bool = False) -> dict:
             for mode in ("off", "on"):
                 r = _fit(csv, tmp / f"run-{J}-{mode}", env, mode)
                 draws_mb = CHAINS * DRAWS * J * 8 * 3 / 2**20
-                rows.append({"J": J, "mode": "full" if mode == "off" else "summary", "whole_s": round(r["whole_s"], 2),
-                             "cpu_s": round(r["cpu_s"], 2), "sampling_s": round(r["sampling_s"], 2),
-                             "ratio": round(r["whole_s"] / r["sampling_s"], 2), "peak_mb": round(r["peak_mb"], 1),
-                             "draws_mb": round(draws_mb, 1), "target": 3.0 if J == 2_000 else 2.0})
+                rows.append(
+                    {
+                        "J": J,
+                        "mode": "full" if mode == "off" else "summary",
+                        "whole_s": round(r["whole_s"], 2),
+                        "cpu_s": round(r["cpu_s"], 2),
+                        "sampling_s": round(r["sampling_s"], 2),
+                        "ratio": round(r["whole_s"] / r["sampling_s"], 2),
+                        "peak_mb": round(r["peak_mb"], 1),
+                        "draws_mb": round(draws_mb, 1),
+                        "target": 3.0 if J == 2_000 else 2.0,
+                    }
+                )
         # tau ESS per second of the whole process against the numpy baseline (strong shrinkage, J = 2,000)
         sys.path.insert(0, str(HERE))
         from baseline import _ess_per_second, _start, gibbs
@@ -95,33 +137,51 @@ def run(quick: bool = False) -> dict:
         ess_tau = float(np.ravel(az.ess(idata.posterior["tau"].values, method="bulk"))[0])
         engine = ess_tau / r["whole_s"]
         problem = problem_of(invented_groups(2_000, tau=0.3, sigma=3.0, n_lo=5, n_hi=13, seed=11))
-        base = [gibbs(problem, np.random.default_rng(50 + c), 400, 1500 if quick else 4000, _start(problem, c))
-                for c in range(2)]
+        base = [
+            gibbs(problem, np.random.default_rng(50 + c), 400, 1500 if quick else 4000, _start(problem, c))
+            for c in range(2)
+        ]
         b = _ess_per_second([x[0] for x in base], sum(x[1] for x in base))
-        mixing = {"engine_tau_ess": ess_tau, "engine_whole_s": round(r["whole_s"], 2),
-                  "engine_tau_ess_per_s": round(engine, 1), "baseline_tau_ess_per_s": round(b["ess_per_s_tau"], 1),
-                  "ratio": round(engine / b["ess_per_s_tau"], 1), "target": 25.0}
+        mixing = {
+            "engine_tau_ess": ess_tau,
+            "engine_whole_s": round(r["whole_s"], 2),
+            "engine_tau_ess_per_s": round(engine, 1),
+            "baseline_tau_ess_per_s": round(b["ess_per_s_tau"], 1),
+            "ratio": round(engine / b["ess_per_s_tau"], 1),
+            "target": 25.0,
+        }
     full = {(r["J"]): r for r in rows if r["mode"] == "full"}
     summ = {(r["J"]): r for r in rows if r["mode"] == "summary"}
     speed = {J: round(summ[J]["whole_s"] / full[J]["whole_s"], 2) for J in full if J in summ}
-    return {"name": "whole", "rows": rows, "summary_over_full": speed, "mixing": mixing,
-            "load_1min": os.getloadavg()[0]}
+    return {
+        "name": "whole",
+        "rows": rows,
+        "summary_over_full": speed,
+        "mixing": mixing,
+        "load_1min": os.getloadavg()[0],
+    }
 
 
 def table(res: dict) -> list[str]:
-    out = [f"whole `pooling fit` vs the sampling inside it ({CHAINS} chains x ({WARMUP} + {DRAWS}) sweeps, separate, "
-           "nu 4, heavy tails)",
-           f"  {'J':>7} {'mode':>8} {'whole s':>8} {'cpu s':>7} {'sampling s':>10} {'ratio':>6} {'target':>7} "
-           f"{'peak MB':>8} {'draws MB':>9}"]
+    out = [
+        f"whole `pooling fit` vs the sampling inside it ({CHAINS} chains x ({WARMUP} + {DRAWS}) sweeps, separate, "
+        "nu 4, heavy tails)",
+        f"  {'J':>7} {'mode':>8} {'whole s':>8} {'cpu s':>7} {'sampling s':>10} {'ratio':>6} {'target':>7} "
+        f"{'peak MB':>8} {'draws MB':>9}",
+    ]
     for r in res["rows"]:
         ok = "met" if r["ratio"] <= r["target"] else "MISSED"
-        out.append(f"  {r['J']:>7,} {r['mode']:>8} {r['whole_s']:8.2f} {r['cpu_s']:7.2f} {r['sampling_s']:10.2f} "
-                   f"{r['ratio']:6.2f} {'<= ' + format(r['target'], 'g'):>7} {r['peak_mb']:8.1f} {r['draws_mb']:9.1f}  {ok}")
+        out.append(
+            f"  {r['J']:>7,} {r['mode']:>8} {r['whole_s']:8.2f} {r['cpu_s']:7.2f} {r['sampling_s']:10.2f} "
+            f"{r['ratio']:6.2f} {'<= ' + format(r['target'], 'g'):>7} {r['peak_mb']:8.1f} {r['draws_mb']:9.1f}  {ok}"
+        )
     for J, q in res["summary_over_full"].items():
         out.append(f"  summary / full whole time at J = {J:,}: {q:.2f} (target <= 1)")
     m = res["mixing"]
-    out.append(f"  tau ESS per second, whole process (J = 2,000, strong shrinkage): {m['engine_tau_ess_per_s']:.0f} "
-               f"against the numpy baseline's {m['baseline_tau_ess_per_s']:.1f}: {m['ratio']:.0f}x (target >= 25x)")
+    out.append(
+        f"  tau ESS per second, whole process (J = 2,000, strong shrinkage): {m['engine_tau_ess_per_s']:.0f} "
+        f"against the numpy baseline's {m['baseline_tau_ess_per_s']:.1f}: {m['ratio']:.0f}x (target >= 25x)"
+    )
     return out
 
 

@@ -7,6 +7,7 @@ someone else's job. Single-threaded measurements therefore use the thread's CPU 
 every figure is the best of several interleaved repeats: the least disturbed run is the one
 closest to what the code costs. Only the thread-scaling benchmark must use wall time.
 """
+
 from __future__ import annotations
 
 import math
@@ -76,7 +77,7 @@ class KernelChain:
     chain: object
 
     @classmethod
-    def start(cls, problem, seed: int) -> "KernelChain":
+    def start(cls, problem, seed: int) -> KernelChain:
         from pooling.sampler import _Chain
 
         return cls(problem, _Chain(problem, np.random.SeedSequence(seed), None))
@@ -109,7 +110,7 @@ class KernelChain:
         done = 0
         while done < n_sweeps:
             k = min(chunk, n_sweeps - done)
-            rows = kernel.Draws(*(a[done:done + k] for a in out)) if store else out
+            rows = kernel.Draws(*(a[done : done + k] for a in out)) if store else out
             kernel.sweeps(self.chain.rng, k, adapt, d, self.chain.state, self.chain.work, rows, 0)
             done += k
         return out._asdict() if store else None

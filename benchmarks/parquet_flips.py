@@ -11,6 +11,7 @@ file is written twice, with and without page checksums (pyarrow's write_page_che
 show what the checksums buy. Invented data: 5 groups (small file) or 40 groups (large file), values on
 a grid of quarters so that a changed value is an exact difference.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -28,8 +29,9 @@ import numpy as np
 def _table(rows: int, groups: int):
     import pyarrow as pa
 
-    return pa.table({"lab": [f"G{i % groups}" for i in range(rows)],
-                     "y": [float(i % 13) + 0.25 * (i % 7) for i in range(rows)]})
+    return pa.table(
+        {"lab": [f"G{i % groups}" for i in range(rows)], "y": [float(i % 13) + 0.25 * (i % 7) for i in range(rows)]}
+    )
 
 
 def _write(table, checksums: bool, **kw) -> bytes:
@@ -41,8 +43,13 @@ def _write(table, checksums: bool, **kw) -> bytes:
 
 
 def _same(a, b) -> bool:
-    return (a.labels == b.labels and np.array_equal(a.n, b.n) and np.array_equal(a.mean, b.mean)
-            and np.array_equal(a.mean_lo, b.mean_lo) and np.array_equal(a.m2, b.m2))
+    return (
+        a.labels == b.labels
+        and np.array_equal(a.n, b.n)
+        and np.array_equal(a.mean, b.mean)
+        and np.array_equal(a.mean_lo, b.mean_lo)
+        and np.array_equal(a.m2, b.m2)
+    )
 
 
 def flips(data: bytes, bits, folder: Path) -> dict:
@@ -108,8 +115,10 @@ def main(argv=None) -> int:
     res = run(args.quick)
     for name, r in res.items():
         if isinstance(r, dict):
-            print(f"{name}: {r['flips']} flips: {r['refused']} refused, {r['same']} read the same data, "
-                  f"{r['silent']} read silently different data, {r['internal']} internal errors")
+            print(
+                f"{name}: {r['flips']} flips: {r['refused']} refused, {r['same']} read the same data, "
+                f"{r['silent']} read silently different data, {r['internal']} internal errors"
+            )
     out = Path(__file__).resolve().parent / "results"
     out.mkdir(exist_ok=True)
     (out / "parquet_flips.json").write_text(json.dumps(res, indent=1))

@@ -10,6 +10,7 @@ first, then renamed, so a stopped run leaves no half-written file).
 
 A parameter is flagged when the chi-square test of its 10-bin rank histogram gives p < 1e-3.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -40,9 +41,17 @@ def main(argv=None) -> int:
     ap.add_argument("--out", type=Path, default=HERE / "results" / "sbc.json", help="where the JSON goes")
     args = ap.parse_args(argv)
     sbc = _load_sbc()
-    results = {"method": "simulation-based calibration, Talts et al. 2018 (arXiv:1804.06788)",
-               "reps_per_structure": args.reps, "seed": args.seed, "kept_draws": 99, "thin": 10, "bins": sbc.BINS,
-               "reject_below": sbc.ALPHA, "python": platform.python_version(), "structures": {}}
+    results = {
+        "method": "simulation-based calibration, Talts et al. 2018 (arXiv:1804.06788)",
+        "reps_per_structure": args.reps,
+        "seed": args.seed,
+        "kept_draws": 99,
+        "thin": 10,
+        "bins": sbc.BINS,
+        "reject_below": sbc.ALPHA,
+        "python": platform.python_version(),
+        "structures": {},
+    }
     flagged = 0
     for structure in sbc.MODELS:
         start = time.perf_counter()
@@ -55,8 +64,10 @@ def main(argv=None) -> int:
             ok = p > sbc.ALPHA
             flagged += not ok
             entry["parameters"][name] = {"chi2_pvalue": p, "bin_counts": counts.tolist(), "uniform": ok}
-            print(f"{structure:18s} {name:15s} p = {p:7.4f}  bins {' '.join(f'{c:4d}' for c in counts)}"
-                  f"  {'ok' if ok else 'NOT UNIFORM'}")
+            print(
+                f"{structure:18s} {name:15s} p = {p:7.4f}  bins {' '.join(f'{c:4d}' for c in counts)}"
+                f"  {'ok' if ok else 'NOT UNIFORM'}"
+            )
         print(f"{structure:18s} {args.reps} replications in {seconds:.1f} s")
         results["structures"][structure] = entry
     results["flagged"] = flagged

@@ -8,6 +8,7 @@ method, the method effect comes out with its interval, and each method has its o
 
 Run:  python examples/method_effect.py [OUT_DIR]
 """
+
 import sys
 
 import numpy as np
@@ -39,21 +40,29 @@ def main(out_dir=None, seed: int = 7):
     res = compute(fit, pooling.ReportOptions(labs=True))
     pr = res.predictors
     effect = pr["coefficients"][0]
-    print(f"method B vs A: {effect['mean']:+.3f} g/100 g, 95% interval {effect['low']:+.3f} to "
-          f"{effect['high']:+.3f}, P(B reads higher) {effect['p_above_0']:.3f}; the truth is {TRUE_EFFECT:+.2f}")
+    print(
+        f"method B vs A: {effect['mean']:+.3f} g/100 g, 95% interval {effect['low']:+.3f} to "
+        f"{effect['high']:+.3f}, P(B reads higher) {effect['p_above_0']:.3f}; the truth is {TRUE_EFFECT:+.2f}"
+    )
     for c in pr["consensus"]:
-        print(f"consensus value, method {c['level']}: {c['mean']:.3f} (95% interval {c['low']:.3f} to "
-              f"{c['high']:.3f}), {c['groups']} labs")
+        print(
+            f"consensus value, method {c['level']}: {c['mean']:.3f} (95% interval {c['low']:.3f} to "
+            f"{c['high']:.3f}), {c['groups']} labs"
+        )
     sp = pr["spread"]
-    print(f"between-lab sd tau without the method: {sp['tau_without']['mean']:.3f} (95% interval "
-          f"{sp['tau_without']['low']:.3f} to {sp['tau_without']['high']:.3f}); with it: {sp['tau_with']['mean']:.3f} "
-          f"({sp['tau_with']['low']:.3f} to {sp['tau_with']['high']:.3f}); the method explains "
-          f"{100 * sp['share_explained']:.0f}% of tau^2 (truth: the within-method sd is {BETWEEN_SD})")
+    print(
+        f"between-lab sd tau without the method: {sp['tau_without']['mean']:.3f} (95% interval "
+        f"{sp['tau_without']['low']:.3f} to {sp['tau_without']['high']:.3f}); with it: {sp['tau_with']['mean']:.3f} "
+        f"({sp['tau_with']['low']:.3f} to {sp['tau_with']['high']:.3f}); the method explains "
+        f"{100 * sp['share_explained']:.0f}% of tau^2 (truth: the within-method sd is {BETWEEN_SD})"
+    )
     t = res.table.sort_values("rank_in_level_mean")
     for method, sub in t.groupby("level"):
         best = sub.iloc[0]
-        print(f"best lab using method {method}: {best['group']} (P(best among method {method} labs) "
-              f"{best['p_best_in_level']:.2f}; bias against its method's consensus {best['bias_mean']:+.3f})")
+        print(
+            f"best lab using method {method}: {best['group']} (P(best among method {method} labs) "
+            f"{best['p_best_in_level']:.2f}; bias against its method's consensus {best['bias_mean']:+.3f})"
+        )
     print("diagnostics targets met:", res.targets_met)
     if out_dir:
         from pooling.output import write_run

@@ -3,6 +3,7 @@
 Invented scenario: tensile strength (MPa) of test bars from 36 casting suppliers.
 Run:  python examples/quickstart.py [OUT_DIR]
 """
+
 import sys
 
 import pooling
@@ -24,8 +25,10 @@ print("diagnostics targets met:", res.targets_met)
 print("outlying suppliers:", res.tail["outlying"] or "none")
 
 best = res.table.sort_values("rank_mean").iloc[0]
-print(f"most likely best: {best['group']} (P(best) {best['p_best']:.2f}); "
-      f"above 410 MPa with probability >= 0.95: {int((res.table['threshold_side'] == 'above').sum())} suppliers")
+print(
+    f"most likely best: {best['group']} (P(best) {best['p_best']:.2f}); "
+    f"above 410 MPa with probability >= 0.95: {int((res.table['threshold_side'] == 'above').sum())} suppliers"
+)
 
 theta = fit.idata.posterior["theta"]  # labelled draws in MPa: chain, draw, group
 print("draws of theta:", dict(theta.sizes))

@@ -9,6 +9,7 @@ The public surface, in the order of the flow:
     res.table                                           # every group's answers
     fit.idata.posterior["theta"]                        # labelled draws (arviz InferenceData)
 """
+
 from __future__ import annotations
 
 import importlib
@@ -18,14 +19,33 @@ __version__ = "0.2.0"  # the one place the version is kept (pyproject.toml reads
 # Names are imported on first use: `pooling --help` and a Ctrl-C at start-up do not wait for numpy,
 # numba and arviz to load.
 _LAZY = {
-    "InputError": "errors", "ModelError": "errors", "PoolingError": "errors",
-    "Flat": "model", "Gamma": "model", "HalfCauchy": "model", "HalfNormal": "model", "Model": "model",
-    "Normal": "model", "NuFixed": "model", "NuGrid": "model", "Reciprocal": "model", "build": "model",
-    "NormalBetween": "model", "HeavyBetween": "model", "ReportOptions": "asked", "Category": "model",
-    "Numeric": "model", "ScaledInvChi2": "model",
-    "Settings": "sampler", "Targets": "sampler",
-    "GroupStats": "stats", "from_estimates": "stats", "from_frame": "stats", "from_summaries": "stats",
-    "merge": "stats", "read_table": "stats",
+    "InputError": "errors",
+    "ModelError": "errors",
+    "PoolingError": "errors",
+    "Flat": "model",
+    "Gamma": "model",
+    "HalfCauchy": "model",
+    "HalfNormal": "model",
+    "Model": "model",
+    "Normal": "model",
+    "NuFixed": "model",
+    "NuGrid": "model",
+    "Reciprocal": "model",
+    "build": "model",
+    "NormalBetween": "model",
+    "HeavyBetween": "model",
+    "ReportOptions": "asked",
+    "Category": "model",
+    "Numeric": "model",
+    "ScaledInvChi2": "model",
+    "Settings": "sampler",
+    "Targets": "sampler",
+    "GroupStats": "stats",
+    "from_estimates": "stats",
+    "from_frame": "stats",
+    "from_summaries": "stats",
+    "merge": "stats",
+    "read_table": "stats",
 }
 
 
@@ -42,8 +62,18 @@ def __getattr__(name: str):
     raise AttributeError(f"module 'pooling' has no attribute '{name}'")
 
 
-def fit(stats, model=None, settings=None, progress: bool | None = None, init=None, *, summary=None,
-        options=None, keep=None, without: bool = True):
+def fit(
+    stats,
+    model=None,
+    settings=None,
+    progress: bool | None = None,
+    init=None,
+    *,
+    summary=None,
+    options=None,
+    keep=None,
+    without: bool = True,
+):
     """Build the problem, sample it with run-length control, and return the run.
 
     stats: a GroupStats; model: a Model (default Model()); settings: a Settings (default Settings()).
@@ -86,8 +116,33 @@ def _fit_without(stats, model, settings, seed: int, progress, summary, options, 
 
 
 __all__ = [
-    "GroupStats", "read_table", "from_frame", "from_summaries", "from_estimates", "merge",
-    "Model", "Flat", "Normal", "HalfNormal", "HalfCauchy", "Reciprocal", "Gamma", "NuFixed", "NuGrid", "build",
-    "NormalBetween", "HeavyBetween", "ReportOptions", "Category", "Numeric", "ScaledInvChi2",
-    "Settings", "Targets", "fit", "InputError", "ModelError", "PoolingError", "__version__",
+    "GroupStats",
+    "read_table",
+    "from_frame",
+    "from_summaries",
+    "from_estimates",
+    "merge",
+    "Model",
+    "Flat",
+    "Normal",
+    "HalfNormal",
+    "HalfCauchy",
+    "Reciprocal",
+    "Gamma",
+    "NuFixed",
+    "NuGrid",
+    "build",
+    "NormalBetween",
+    "HeavyBetween",
+    "ReportOptions",
+    "Category",
+    "Numeric",
+    "ScaledInvChi2",
+    "Settings",
+    "Targets",
+    "fit",
+    "InputError",
+    "ModelError",
+    "PoolingError",
+    "__version__",
 ]

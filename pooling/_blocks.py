@@ -4,6 +4,7 @@ numpy's sorts, partitions, reductions, ufuncs and FFTs release the GIL, so block
 side by side. Each call writes only its own slice of the results, so the numbers do not depend on
 the number of threads; an error in a block is raised in the caller.
 """
+
 from __future__ import annotations
 
 import contextlib

@@ -4,6 +4,7 @@ arviz 0.2x emits one FutureWarning when imported, addressed to library authors. 
 act on it, so it is filtered here, once, by its exact category, module and message start; every
 other warning from arviz still shows.
 """
+
 from __future__ import annotations
 
 import warnings

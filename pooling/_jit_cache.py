@@ -15,6 +15,7 @@ this user, writable by nobody else. Otherwise (another user made it first, or it
 the kernel is compiled into a private folder that is removed at exit, and one line says so: the
 run works, it only compiles afresh (several seconds).
 """
+
 from __future__ import annotations
 
 import atexit
@@ -78,8 +79,12 @@ def _own_folder(path: str) -> bool:
     except OSError:
         return False
     uid = os.getuid() if hasattr(os, "getuid") else None
-    return (stat.S_ISDIR(st.st_mode) and (uid is None or st.st_uid == uid)
-            and not st.st_mode & (stat.S_IWGRP | stat.S_IWOTH) and _usable(path))
+    return (
+        stat.S_ISDIR(st.st_mode)
+        and (uid is None or st.st_uid == uid)
+        and not st.st_mode & (stat.S_IWGRP | stat.S_IWOTH)
+        and _usable(path)
+    )
 
 
 def _use(path: str) -> None:
@@ -112,15 +117,20 @@ def ensure() -> None:
     except OSError:
         from .errors import OutputError
 
-        raise OutputError("cannot prepare the sampling kernel: numba needs a writable folder for its compiled code and "
-                          "none was found (the package folder, the home folder and the temporary folder are all "
-                          "read-only); set NUMBA_CACHE_DIR to a writable folder") from None
+        raise OutputError(
+            "cannot prepare the sampling kernel: numba needs a writable folder for its compiled code and "
+            "none was found (the package folder, the home folder and the temporary folder are all "
+            "read-only); set NUMBA_CACHE_DIR to a writable folder"
+        ) from None
     atexit.register(shutil.rmtree, private, True)
     choice, folder = "private", private
     _use(private)
     why = f"'{shared}' is not a private folder of this user" if shared else "there is no temporary folder"
-    print(f"{NOTE_PREFIX} the compiled kernel cannot be cached ({why}); it is compiled afresh for this run, which "
-          "takes several seconds; set NUMBA_CACHE_DIR to a folder of your own to keep it", file=sys.stderr)
+    print(
+        f"{NOTE_PREFIX} the compiled kernel cannot be cached ({why}); it is compiled afresh for this run, which "
+        "takes several seconds; set NUMBA_CACHE_DIR to a folder of your own to keep it",
+        file=sys.stderr,
+    )
 
 
 ensure()

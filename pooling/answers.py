@@ -20,14 +20,15 @@ Per draw and group j (v_j = sigma_j^2 / n_j, or se_j^2; t_j = tau^2 / lambda_j, 
     outlying          lambda_j below the 5% point of its prior Gamma(df/2, rate df/2) at the draw's df
     mean outside      theta_j below the lower or above the upper specification limit
 """
+
 from __future__ import annotations
 
 import math
 
 import numpy as np
+from numba import njit
 
 from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
-from numba import njit
 
 # running means (rows of `run`); M2 for theta
 R_THETA, R_THETA_M2, R_SIGMA, R_SHRINK, R_OUT, R_LAM, R_RANK, R_RANK_ERR = range(8)
@@ -176,10 +177,23 @@ def accumulate_stored(within, n, v_known, mu, tau, theta, sig, lam, cut, a, D, j
     for c in range(C):
         for t in range(D):
             s = c * D + t
-            accumulate(within, n[j0:j1] if within != 2 else n, v_known[j0:j1] if within == 2 else v_known, mu[s],
-                       tau[s] * tau[s], theta[s, j0:j1], sig[s] if shared else sig[s, j0:j1],
-                       lam[s, j0:j1] if heavy else lam[s], cut[s], a, 1.0 / (t + 1.0), run[c, :, j0:j1],
-                       hits[c, :, j0:j1], X[j0:j1], beta[s])
+            accumulate(
+                within,
+                n[j0:j1] if within != 2 else n,
+                v_known[j0:j1] if within == 2 else v_known,
+                mu[s],
+                tau[s] * tau[s],
+                theta[s, j0:j1],
+                sig[s] if shared else sig[s, j0:j1],
+                lam[s, j0:j1] if heavy else lam[s],
+                cut[s],
+                a,
+                1.0 / (t + 1.0),
+                run[c, :, j0:j1],
+                hits[c, :, j0:j1],
+                X[j0:j1],
+                beta[s],
+            )
 
 
 # derived quantities of stored draws (full runs), by kind

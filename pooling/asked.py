@@ -6,6 +6,7 @@ The same value serves both ways of running: a full run answers it from the store
 sampling; summary mode (many groups) has to count some answers while the chains run, so it reads the
 internal-unit vector `internal(center, scale)` (pooling.answers) while sampling.
 """
+
 from __future__ import annotations
 
 import math
@@ -20,7 +21,9 @@ BEST = ("highest", "lowest")
 
 def check_level(level) -> None:
     if not (isinstance(level, (float, int, np.floating)) and not isinstance(level, bool) and 0 < level < 1):
-        raise InputError(f"bad option: the interval level must be a number between 0 and 1 (for example 0.95); found {level}")
+        raise InputError(
+            f"bad option: the interval level must be a number between 0 and 1 (for example 0.95); found {level}"
+        )
 
 
 def check_k(k, J: int) -> int:
@@ -41,8 +44,13 @@ def level_label(level: float) -> str:
     ('95%', '97.5%', '99.95%')
     """
     pct = level * 100
-    return f"{pct:.0f}%" if abs(pct - round(pct)) < 1e-9 else f"{pct:.1f}%" if abs(pct * 10 - round(pct * 10)) < 1e-9 \
+    return (
+        f"{pct:.0f}%"
+        if abs(pct - round(pct)) < 1e-9
+        else f"{pct:.1f}%"
+        if abs(pct * 10 - round(pct * 10)) < 1e-9
         else f"{pct:.2f}%"
+    )
 
 
 def level_key(level: float) -> str:
@@ -83,14 +91,16 @@ class ReportOptions:
         object.__setattr__(self, "compare", tuple(str(x) for x in self.compare))
         check_level(self.level)
         if isinstance(self.k, bool) or not isinstance(self.k, (int, np.integer)) or self.k < 1:
-            raise InputError(f"bad option: k (the size of the top group) must be a whole number of at least 1; "
-                             f"found {self.k!r}")
+            raise InputError(
+                f"bad option: k (the size of the top group) must be a whole number of at least 1; found {self.k!r}"
+            )
         if self.best not in BEST:
             raise InputError(f"bad option: best must be 'highest' or 'lowest'; found '{self.best}'")
         for name in ("threshold", "lower", "upper", "allowed_bias", "assigned", "sigma_pt"):
             x = getattr(self, name)
-            if x is not None and (isinstance(x, bool) or not isinstance(x, (int, float, np.floating))
-                                  or not math.isfinite(x)):
+            if x is not None and (
+                isinstance(x, bool) or not isinstance(x, (int, float, np.floating)) or not math.isfinite(x)
+            ):
                 raise InputError(f"bad option: {name} must be a finite number; found {x!r}")
         check_limits(self.lower, self.upper)
         if self.allowed_bias is not None and not self.allowed_bias > 0:
@@ -98,7 +108,9 @@ class ReportOptions:
         if self.sigma_pt is not None and not self.sigma_pt > 0:
             raise InputError(f"bad option: sigma_pt must be positive; found {self.sigma_pt:g}")
         if not (isinstance(self.decide_at, (int, float, np.floating)) and 0.5 < self.decide_at < 1):
-            raise InputError(f"bad option: decide_at must be a probability above 0.5 and below 1; found {self.decide_at!r}")
+            raise InputError(
+                f"bad option: decide_at must be a probability above 0.5 and below 1; found {self.decide_at!r}"
+            )
 
     @property
     def limits(self) -> bool:
@@ -112,23 +124,43 @@ class ReportOptions:
         return self.assigned is not None or self.sigma_pt is not None
 
     def to_dict(self) -> dict:
-        return {"level": self.level, "k": self.k, "best": self.best, "threshold": self.threshold,
-                "lower_limit": self.lower, "upper_limit": self.upper, "allowed_bias": self.allowed_bias,
-                "compare": list(self.compare), "assigned_value": self.assigned, "sigma_pt": self.sigma_pt,
-                "decide_at": self.decide_at, "labs": self.interlab}
+        return {
+            "level": self.level,
+            "k": self.k,
+            "best": self.best,
+            "threshold": self.threshold,
+            "lower_limit": self.lower,
+            "upper_limit": self.upper,
+            "allowed_bias": self.allowed_bias,
+            "compare": list(self.compare),
+            "assigned_value": self.assigned,
+            "sigma_pt": self.sigma_pt,
+            "decide_at": self.decide_at,
+            "labs": self.interlab,
+        }
 
     @staticmethod
-    def from_args(args) -> "ReportOptions":
+    def from_args(args) -> ReportOptions:
         """From the command line's namespace; options it lacks keep their defaults."""
+
         def get(name, default=None):
             v = getattr(args, name, None)
             return default if v is None else v
 
-        return ReportOptions(level=get("level", 0.95), k=get("top", 3), best=get("best", "highest"),
-                             threshold=get("threshold"), lower=get("lower_limit"), upper=get("upper_limit"),
-                             allowed_bias=get("allowed_bias"), compare=tuple(get("compare", ())),
-                             assigned=get("assigned_value"), sigma_pt=get("sigma_pt"),
-                             decide_at=float(get("decide_at", 0.95)), labs=True if get("labs") else None)
+        return ReportOptions(
+            level=get("level", 0.95),
+            k=get("top", 3),
+            best=get("best", "highest"),
+            threshold=get("threshold"),
+            lower=get("lower_limit"),
+            upper=get("upper_limit"),
+            allowed_bias=get("allowed_bias"),
+            compare=tuple(get("compare", ())),
+            assigned=get("assigned_value"),
+            sigma_pt=get("sigma_pt"),
+            decide_at=float(get("decide_at", 0.95)),
+            labs=True if get("labs") else None,
+        )
 
     def internal(self, center: float, scale: float, limits_apply: bool = True) -> np.ndarray:
         """The vector pooling.answers reads, in internal units: (x - center) / scale for the threshold and

@@ -1,4 +1,5 @@
 """The command line: a thin shell that wires the stages together. Exit codes are in pooling.errors."""
+
 from __future__ import annotations
 
 import argparse
@@ -17,6 +18,7 @@ REPORT_RANGE = 1e100  # reporter options, like data (stats.choose_unit), stay wi
 
 # ---------------------------------------------------------------------------------------------
 # option parsing (values are checked here, at the edge)
+
 
 def _num(text: str, what: str) -> float:
     try:
@@ -42,9 +44,12 @@ def parse_prior(text: str, option: str):
         "--sigma2": {"reciprocal": (m.Reciprocal, 0), "scaled-inv-chi2": (m.ScaledInvChi2, 2)},
     }[option]
     if kind not in shapes:
-        forms = {"--mu": "flat or normal:LOC:SCALE", "--tau": "flat, half-normal:SCALE or half-cauchy:SCALE",
-                 "--s2": "reciprocal or gamma:SHAPE:RATE",
-                 "--sigma2": "reciprocal or scaled-inv-chi2:DOF:SCALE2"}[option]
+        forms = {
+            "--mu": "flat or normal:LOC:SCALE",
+            "--tau": "flat, half-normal:SCALE or half-cauchy:SCALE",
+            "--s2": "reciprocal or gamma:SHAPE:RATE",
+            "--sigma2": "reciprocal or scaled-inv-chi2:DOF:SCALE2",
+        }[option]
         raise E.InputError(f"bad option {option}: expected {forms}; found '{text}'")
     cls, nargs = shapes[kind]
     if len(args) != nargs:
@@ -74,11 +79,15 @@ def _nu_value(text: str, option: str) -> float:
     which is the shared structure, and draws of nu near 1e308 overflow any sum of them."""
     x = _num(text, option)
     if 0 < x < NU_MIN:
-        raise E.InputError(f"bad option {option}: nu below {NU_MIN:.0e} adds less than a millionth of a measurement "
-                           f"to each group's variance; give a nu of at least {NU_MIN:.0e}; found '{text}'")
+        raise E.InputError(
+            f"bad option {option}: nu below {NU_MIN:.0e} adds less than a millionth of a measurement "
+            f"to each group's variance; give a nu of at least {NU_MIN:.0e}; found '{text}'"
+        )
     if x > NU_MAX:
-        raise E.InputError(f"bad option {option}: nu above {NU_MAX:.0e} makes every group's variance equal s^2 to "
-                           f"about 1e-6; use --within shared instead; found '{text}'")
+        raise E.InputError(
+            f"bad option {option}: nu above {NU_MAX:.0e} makes every group's variance equal s^2 to "
+            f"about 1e-6; use --within shared instead; found '{text}'"
+        )
     return x
 
 
@@ -95,48 +104,92 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
         p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
         p.add_argument("--delimiter", help="CSV field separator (default: detected)")
         # --- number formats in a CSV (hardening) ---
-        p.add_argument("--thousands", metavar="SEP", help="digit-group separator inside numbers, e.g. ',' for "
-                       "1,234.5 or '.' for 1.234,5 (default: none)")
-        p.add_argument("--decimal-comma", dest="decimal_comma", action="store_true",
-                       help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
+        p.add_argument(
+            "--thousands",
+            metavar="SEP",
+            help="digit-group separator inside numbers, e.g. ',' for 1,234.5 or '.' for 1.234,5 (default: none)",
+        )
+        p.add_argument(
+            "--decimal-comma",
+            dest="decimal_comma",
+            action="store_true",
+            help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)",
+        )
         # --- many files, or a cluster (pooling.dask_stats; needs the extra pooling[dask]) -------
-        p.add_argument("--cluster", metavar="ADDRESS",
-                       help="compute the group statistics on the Dask scheduler at ADDRESS, e.g. tcp://10.0.0.5:8786 "
-                            "(the files must be readable at the same path by every worker). Without it, a DATA that "
-                            "is a folder or a quoted glob such as 'parts/*.parquet' is read with Dask on this "
-                            "machine. Needs: pip install pooling[dask]")
+        p.add_argument(
+            "--cluster",
+            metavar="ADDRESS",
+            help="compute the group statistics on the Dask scheduler at ADDRESS, e.g. tcp://10.0.0.5:8786 "
+            "(the files must be readable at the same path by every worker). Without it, a DATA that "
+            "is a folder or a quoted glob such as 'parts/*.parquet' is read with Dask on this "
+            "machine. Needs: pip install pooling[dask]",
+        )
         # --- end of many files ---------------------------------------------------------------
     g = p.add_argument_group("model")
-    g.add_argument("--within", choices=["separate", "shared", "known"],
-                   help="within-group variance structure (default: separate; known with --estimate)")
-    g.add_argument("--between", default="heavy", metavar="FORM",
-                   help="between-group distribution: heavy (default: Student-t, its df learned from the data, so "
-                        "that an outlying group neither drags the others nor is dragged), heavy:DF (df fixed), or "
-                        "normal")
+    g.add_argument(
+        "--within",
+        choices=["separate", "shared", "known"],
+        help="within-group variance structure (default: separate; known with --estimate)",
+    )
+    g.add_argument(
+        "--between",
+        default="heavy",
+        metavar="FORM",
+        help="between-group distribution: heavy (default: Student-t, its df learned from the data, so "
+        "that an outlying group neither drags the others nor is dragged), heavy:DF (df fixed), or "
+        "normal",
+    )
     g.add_argument("--mu", default="flat", help="prior on mu: flat (default) or normal:LOC:SCALE")
-    g.add_argument("--tau", default="flat",
-                   help="prior on tau: flat (default; needs 3+ groups), half-normal:SCALE or half-cauchy:SCALE")
-    g.add_argument("--s2", default="reciprocal", help="prior on s^2 (separate): reciprocal (default, ∝ 1/s^2) or gamma:SHAPE:RATE")
-    g.add_argument("--sigma2", default="reciprocal",
-                   help="prior on the shared sigma^2 (shared): reciprocal (default, ∝ 1/sigma^2, flat on log sigma) or "
-                        "scaled-inv-chi2:DOF:SCALE2 (as if DOF earlier degrees of freedom had given the variance "
-                        "SCALE2, in squared units of the data)")
+    g.add_argument(
+        "--tau",
+        default="flat",
+        help="prior on tau: flat (default; needs 3+ groups), half-normal:SCALE or half-cauchy:SCALE",
+    )
+    g.add_argument(
+        "--s2", default="reciprocal", help="prior on s^2 (separate): reciprocal (default, ∝ 1/s^2) or gamma:SHAPE:RATE"
+    )
+    g.add_argument(
+        "--sigma2",
+        default="reciprocal",
+        help="prior on the shared sigma^2 (shared): reciprocal (default, ∝ 1/sigma^2, flat on log sigma) or "
+        "scaled-inv-chi2:DOF:SCALE2 (as if DOF earlier degrees of freedom had given the variance "
+        "SCALE2, in squared units of the data)",
+    )
     g.add_argument("--nu", help="hold nu (separate) at this value")
-    g.add_argument("--nu-grid", dest="nu_grid", help="comma-separated grid of nu values, equal prior weights "
-                   "(default: 1,1.5,2,3,4,5,6,8,10,14,20,30,50,100)")
+    g.add_argument(
+        "--nu-grid",
+        dest="nu_grid",
+        help="comma-separated grid of nu values, equal prior weights (default: 1,1.5,2,3,4,5,6,8,10,14,20,30,50,100)",
+    )
     # --- group-level predictors: why groups differ ------------------------------------------------
-    g.add_argument("--category", action="append", metavar="COL",
-                   help="a categorical group-level predictor: a column holding each group's level (a method, an "
-                        "instrument, a region), one value per group; each level is compared with a reference level. "
-                        "Repeat for more")
-    g.add_argument("--numeric", action="append", metavar="COL",
-                   help="a numeric group-level predictor (an age, an altitude), one value per group, centred at its "
-                        "mean over the groups and kept in its own units. Repeat for more")
-    g.add_argument("--reference", action="append", metavar="COL=LEVEL",
-                   help="the reference level of a --category column (default: the level with the most groups)")
-    g.add_argument("--effects", default="flat", metavar="PRIOR",
-                   help="prior on the predictors' effects: flat (default) or normal:SCALE (centred at 0; SCALE in the "
-                        "data's units, per unit of the column for a numeric predictor)")
+    g.add_argument(
+        "--category",
+        action="append",
+        metavar="COL",
+        help="a categorical group-level predictor: a column holding each group's level (a method, an "
+        "instrument, a region), one value per group; each level is compared with a reference level. "
+        "Repeat for more",
+    )
+    g.add_argument(
+        "--numeric",
+        action="append",
+        metavar="COL",
+        help="a numeric group-level predictor (an age, an altitude), one value per group, centred at its "
+        "mean over the groups and kept in its own units. Repeat for more",
+    )
+    g.add_argument(
+        "--reference",
+        action="append",
+        metavar="COL=LEVEL",
+        help="the reference level of a --category column (default: the level with the most groups)",
+    )
+    g.add_argument(
+        "--effects",
+        default="flat",
+        metavar="PRIOR",
+        help="prior on the predictors' effects: flat (default) or normal:SCALE (centred at 0; SCALE in the "
+        "data's units, per unit of the column for a numeric predictor)",
+    )
     # --- end of group-level predictors -----------------------------------------------------------
     r = p.add_argument_group("run")
     r.add_argument("--chains", type=int, default=4)
@@ -149,6 +202,7 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     o.add_argument("--out", required=data, help="run folder to create")
     o.add_argument("--replace", action="store_true", help="replace the run folder if it exists")
     o.add_argument("--quiet", action="store_true", help="no progress bar and no table")
+
     # --- reporter options (pooling.report; read by report.ReportOptions.from_args) -------------
     def _finite(text):
         try:
@@ -159,8 +213,10 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
             raise argparse.ArgumentTypeError(f"expected a finite number, found '{text}'")
         # the reporter computes in the user's units, as for data (stats.choose_unit): within 1e+-100
         if abs(x) > REPORT_RANGE:
-            raise argparse.ArgumentTypeError(f"expected a number of magnitude at most {REPORT_RANGE:.0e} (the "
-                                             f"range the report computes in), found '{text}'")
+            raise argparse.ArgumentTypeError(
+                f"expected a number of magnitude at most {REPORT_RANGE:.0e} (the "
+                f"range the report computes in), found '{text}'"
+            )
         return x
 
     def _positive(text):
@@ -168,8 +224,10 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
         if x <= 0:
             raise argparse.ArgumentTypeError(f"expected a number above 0, found '{text}'")
         if x < 1 / REPORT_RANGE:
-            raise argparse.ArgumentTypeError(f"expected a number of at least {1 / REPORT_RANGE:.0e} (the range the "
-                                             f"report computes in), found '{text}'")
+            raise argparse.ArgumentTypeError(
+                f"expected a number of at least {1 / REPORT_RANGE:.0e} (the range the "
+                f"report computes in), found '{text}'"
+            )
         return x
 
     def _level(text):
@@ -190,41 +248,92 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     q = p.add_argument_group("report")
     q.add_argument("--level", type=_level, default=0.95, metavar="L", help="credible interval level (default 0.95)")
     q.add_argument("--top", type=_count, default=3, metavar="K", help="report P(among the K best) (default 3)")
-    q.add_argument("--best", choices=["highest", "lowest"], default="highest",
-                   help="which end of the scale is best for ranks (default highest)")
+    q.add_argument(
+        "--best",
+        choices=["highest", "lowest"],
+        default="highest",
+        help="which end of the scale is best for ranks (default highest)",
+    )
     q.add_argument("--threshold", type=_finite, metavar="X", help="report P(theta_j above / below this value)")
     q.add_argument("--lower-limit", dest="lower_limit", type=_finite, metavar="X", help="lower specification limit")
     q.add_argument("--upper-limit", dest="upper_limit", type=_finite, metavar="X", help="upper specification limit")
-    q.add_argument("--allowed-bias", dest="allowed_bias", type=_positive, metavar="D",
-                   help="report P(|theta_j - mu| > this) for each group")
-    q.add_argument("--compare", action="append", metavar="GROUPS",
-                   help="groups for the head-to-head matrix P(theta_a > theta_b): repeat the option, or list "
-                        "labels separated by commas")
-    q.add_argument("--assigned-value", dest="assigned_value", type=_finite, metavar="X",
-                   help="x_pt for z-scores (default: ISO 13528 Algorithm A robust mean of the group means)")
-    q.add_argument("--sigma-pt", dest="sigma_pt", type=_positive, metavar="S",
-                   help="sigma_pt for z-scores (default: ISO 13528 Algorithm A robust sd of the group means)")
-    q.add_argument("--decide-at", dest="decide_at", default="0.95", metavar="P",
-                   help="a group is on a side of --threshold (or outside or inside the limits) when its probability "
-                        "is at least P, otherwise undecided (default 0.95)")
-    q.add_argument("--labs", action="store_true",
-                   help="the groups are laboratories in a round: show the interlaboratory view (also shown when "
-                        "--assigned-value or --sigma-pt is given)")
+    q.add_argument(
+        "--allowed-bias",
+        dest="allowed_bias",
+        type=_positive,
+        metavar="D",
+        help="report P(|theta_j - mu| > this) for each group",
+    )
+    q.add_argument(
+        "--compare",
+        action="append",
+        metavar="GROUPS",
+        help="groups for the head-to-head matrix P(theta_a > theta_b): repeat the option, or list "
+        "labels separated by commas",
+    )
+    q.add_argument(
+        "--assigned-value",
+        dest="assigned_value",
+        type=_finite,
+        metavar="X",
+        help="x_pt for z-scores (default: ISO 13528 Algorithm A robust mean of the group means)",
+    )
+    q.add_argument(
+        "--sigma-pt",
+        dest="sigma_pt",
+        type=_positive,
+        metavar="S",
+        help="sigma_pt for z-scores (default: ISO 13528 Algorithm A robust sd of the group means)",
+    )
+    q.add_argument(
+        "--decide-at",
+        dest="decide_at",
+        default="0.95",
+        metavar="P",
+        help="a group is on a side of --threshold (or outside or inside the limits) when its probability "
+        "is at least P, otherwise undecided (default 0.95)",
+    )
+    q.add_argument(
+        "--labs",
+        action="store_true",
+        help="the groups are laboratories in a round: show the interlaboratory view (also shown when "
+        "--assigned-value or --sigma-pt is given)",
+    )
     # --- end of reporter options -------------------------------------------------------------
     # --- summary mode (pooling.summary): many groups in bounded memory -------------------------
     m = p.add_argument_group("summary mode (many groups)")
-    m.add_argument("--summary", choices=["auto", "on", "off"], default="auto",
-                   help="keep running per-group summaries instead of every draw: auto (default) above 20,000 "
-                        "groups or when the draws would exceed 8 GiB; draws.nc then holds the hyperparameters and "
-                        "the kept groups only, groups.csv every group")
-    m.add_argument("--keep", action="append", metavar="GROUPS",
-                   help="in summary mode, keep every draw of these groups (repeat the option, or separate labels "
-                        "with commas); groups named by --compare are kept too")
-    m.add_argument("--keep-sample", dest="keep_sample", type=int, default=200, metavar="N",
-                   help="in summary mode, also keep every draw of N groups drawn by a fixed rule (default 200)")
-    m.add_argument("--summary-bins", dest="summary_bins", type=int, default=64, metavar="B",
-                   help="histogram bins per group for interval limits in summary mode (default 64; the limits' "
-                        "error bound is one bin)")
+    m.add_argument(
+        "--summary",
+        choices=["auto", "on", "off"],
+        default="auto",
+        help="keep running per-group summaries instead of every draw: auto (default) above 20,000 "
+        "groups or when the draws would exceed 8 GiB; draws.nc then holds the hyperparameters and "
+        "the kept groups only, groups.csv every group",
+    )
+    m.add_argument(
+        "--keep",
+        action="append",
+        metavar="GROUPS",
+        help="in summary mode, keep every draw of these groups (repeat the option, or separate labels "
+        "with commas); groups named by --compare are kept too",
+    )
+    m.add_argument(
+        "--keep-sample",
+        dest="keep_sample",
+        type=int,
+        default=200,
+        metavar="N",
+        help="in summary mode, also keep every draw of N groups drawn by a fixed rule (default 200)",
+    )
+    m.add_argument(
+        "--summary-bins",
+        dest="summary_bins",
+        type=int,
+        default=64,
+        metavar="B",
+        help="histogram bins per group for interval limits in summary mode (default 64; the limits' "
+        "error bound is one bin)",
+    )
     # --- end of summary mode -------------------------------------------------------------------
 
 
@@ -240,7 +349,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="pooling",
         description="Compare many groups with a partial-pooling normal model.",
         epilog="exit codes: 0 success; 2 bad input; 3 results written but diagnostics targets missed; "
-               "4 nothing new to do; 5 stopped by the user; 6 output cannot be written; 1 internal error",
+        "4 nothing new to do; 5 stopped by the user; 6 output cannot be written; 1 internal error",
     )
     sub = parser.add_subparsers(dest="command", required=True)
     p_fit = sub.add_parser("fit", help="fit grouped measurements and write a run folder")
@@ -255,27 +364,41 @@ def build_parser() -> argparse.ArgumentParser:
 # ---------------------------------------------------------------------------------------------
 # the commands
 
+
 def _stats_from_args(args):
     from . import stats as S
 
-    modes = {"value": args.value is not None, "summary": any(x is not None for x in (args.size, args.mean, args.sd)),
-             "known": args.estimate is not None or args.std_error is not None}
+    modes = {
+        "value": args.value is not None,
+        "summary": any(x is not None for x in (args.size, args.mean, args.sd)),
+        "known": args.estimate is not None or args.std_error is not None,
+    }
     if sum(modes.values()) != 1:
-        raise E.InputError("bad options: give exactly one of --value COL (measurements), --size/--mean/--sd COLs "
-                           "(one row per group) or --estimate/--std-error COLs (estimates with standard errors)")
-    read = {"encoding": args.encoding, "delimiter": args.delimiter, "thousands": args.thousands,
-            "decimal": "," if args.decimal_comma else None}
+        raise E.InputError(
+            "bad options: give exactly one of --value COL (measurements), --size/--mean/--sd COLs "
+            "(one row per group) or --estimate/--std-error COLs (estimates with standard errors)"
+        )
+    read = {
+        "encoding": args.encoding,
+        "delimiter": args.delimiter,
+        "thousands": args.thousands,
+        "decimal": "," if args.decimal_comma else None,
+    }
     # --- many files, or a cluster: the statistics step on Dask (pooling.dask_stats) ----------
     from . import dask_stats
 
     extra = list(getattr(args, "category", None) or []) + list(getattr(args, "numeric", None) or [])
     if getattr(args, "cluster", None) or dask_stats.looks_like_many(args.data):
         if extra:
-            raise E.InputError("bad options: --category and --numeric columns are read from one file; a folder, a glob "
-                               "or --cluster does not read them")
+            raise E.InputError(
+                "bad options: --category and --numeric columns are read from one file; a folder, a glob "
+                "or --cluster does not read them"
+            )
         if not modes["value"]:
-            raise E.InputError("bad options: a folder, a glob or --cluster reads measurements (--value COL); "
-                               "one row per group or estimates with standard errors come in one file")
+            raise E.InputError(
+                "bad options: a folder, a glob or --cluster reads measurements (--value COL); "
+                "one row per group or estimates with standard errors come in one file"
+            )
         return dask_stats.read_table_dask(args.data, args.group, args.value, scheduler=args.cluster, **read)
     # --- end of many files ---------------------------------------------------------------------
     if modes["value"]:
@@ -301,11 +424,17 @@ def _model_from_args(args, stats):
     from .model import Model
 
     within = args.within or ("known" if stats.kind == "known" else "separate")
-    return Model(within=within, mu=parse_prior(args.mu, "--mu"), tau=parse_prior(args.tau, "--tau"),
-                 s2=parse_prior(args.s2, "--s2"),
-                 sigma2=parse_prior(getattr(args, "sigma2", None) or "reciprocal", "--sigma2"), nu=_nu(args),
-                 between=getattr(args, "between", None) or "heavy",
-                 predictors=_predictors_from_args(args, stats), effects=_effects(getattr(args, "effects", None)))
+    return Model(
+        within=within,
+        mu=parse_prior(args.mu, "--mu"),
+        tau=parse_prior(args.tau, "--tau"),
+        s2=parse_prior(args.s2, "--s2"),
+        sigma2=parse_prior(getattr(args, "sigma2", None) or "reciprocal", "--sigma2"),
+        nu=_nu(args),
+        between=getattr(args, "between", None) or "heavy",
+        predictors=_predictors_from_args(args, stats),
+        effects=_effects(getattr(args, "effects", None)),
+    )
 
 
 def _predictors_from_args(args, stats) -> tuple:
@@ -320,11 +449,13 @@ def _predictors_from_args(args, stats) -> tuple:
     for text in getattr(args, "reference", None) or []:
         col = next((c for c in sorted(cats, key=len, reverse=True) if text.startswith(c + "=")), None)
         if col is None:
-            raise E.InputError(f"bad option --reference: expected COLUMN=LEVEL with COLUMN one of the --category "
-                               f"columns ({', '.join(cats) or 'none given'}); found '{text}'")
+            raise E.InputError(
+                f"bad option --reference: expected COLUMN=LEVEL with COLUMN one of the --category "
+                f"columns ({', '.join(cats) or 'none given'}); found '{text}'"
+            )
         if col in refs:
             raise E.InputError(f"bad option --reference: the reference level of '{col}' is given twice")
-        refs[col] = text[len(col) + 1:]
+        refs[col] = text[len(col) + 1 :]
     for col in cats + nums:
         if (cats + nums).count(col) > 1:
             raise E.InputError(f"bad options: the column '{col}' is named twice among --category and --numeric")
@@ -356,18 +487,28 @@ def _settings_from_args(args):
     if args.chains is not None and args.chains > MAX_CHAINS:
         # each chain keeps its own state, generator and warm-up: a million chains exhaust memory before
         # the first draw, and more chains give no better estimate than longer ones
-        raise E.InputError(f"bad option --chains: at most {MAX_CHAINS} chains; found {args.chains}; ask for more "
-                           "draws per chain (--draws) instead")
+        raise E.InputError(
+            f"bad option --chains: at most {MAX_CHAINS} chains; found {args.chains}; ask for more "
+            "draws per chain (--draws) instead"
+        )
     for option, value in (("--warmup", args.warmup), ("--draws", args.draws), ("--max-draws", args.max_draws)):
         # this sampler settles within hundreds of sweeps and reaches its ESS targets within thousands; a
         # chain that has not after ten million will not after more: a different prior is the cure
         if value is not None and value > MAX_SWEEPS:
-            raise E.InputError(f"bad option {option}: at most {MAX_SWEEPS:,} sweeps per chain; found {value:,}. "
-                               "A few thousand are plenty when the diagnostics pass; if they do not, try a proper "
-                               "prior on tau rather than longer chains")
+            raise E.InputError(
+                f"bad option {option}: at most {MAX_SWEEPS:,} sweeps per chain; found {value:,}. "
+                "A few thousand are plenty when the diagnostics pass; if they do not, try a proper "
+                "prior on tau rather than longer chains"
+            )
 
-    return Settings(chains=args.chains, draws=args.draws, warmup=args.warmup, seed=args.seed,
-                    max_draws=args.max_draws, threads=args.threads)
+    return Settings(
+        chains=args.chains,
+        draws=args.draws,
+        warmup=args.warmup,
+        seed=args.seed,
+        max_draws=args.max_draws,
+        threads=args.threads,
+    )
 
 
 def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) -> int:
@@ -398,7 +539,8 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
         raise E.InputError(
             f"bad input in '{stats.source}': the values are of magnitude near {stats.unit:.0e}, beyond what the "
             f"report can show; express them in other units (for example times {unit_hint(stats.unit)}) and fit again, "
-            "or fit from Python with pooling.fit, whose draws keep these units")
+            "or fit from Python with pooling.fit, whose draws keep these units"
+        )
     # --- end of hardening block ----------------------------------------------------------------------
     summary = _summary_args(args, stats, more, options)
     _check_memory(args, stats.J, model, settings, summary["summary"])
@@ -411,8 +553,15 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
         return holder["res"]
 
     extra = None if more is None else (lambda folder: more(fit, holder["res"], folder))
-    out = write_run(fit, answers, Path(args.out), replace=args.replace, command=["pooling"] + list(argv), extra=extra,
-                    protect=protect)
+    out = write_run(
+        fit,
+        answers,
+        Path(args.out),
+        replace=args.replace,
+        command=["pooling"] + list(argv),
+        extra=extra,
+        protect=protect,
+    )
     res = holder["res"]
     recorded = False
     try:
@@ -437,10 +586,12 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
         from .report.numbers import plural
 
         missed = plural(res.diagnostics["missed_count"], "quantity", "quantities")
-        _say(f"warning: diagnostics targets missed for {missed} after "
-             f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
-             f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
-             f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')")
+        _say(
+            f"warning: diagnostics targets missed for {missed} after "
+            f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
+            f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
+            f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')"
+        )
         return E.EXIT_TARGETS_MISSED
     return E.EXIT_OK
 
@@ -456,10 +607,12 @@ def _check_finite(fit, stats) -> None:
         x = draws(name)
         if not np.all(np.isfinite(x)):
             n = np.asarray(stats.n, dtype=float)
-            raise E.ModelError(f"bad model: {np.mean(~np.isfinite(x)):.0%} of the draws of {name} are not finite numbers: "
-                               f"the data carry too little weight for the sampler (the largest group size, or effective "
-                               f"n after forgetting, is {n.max():.3g}); nothing was written. Give more data, or a "
-                               "longer --half-life")
+            raise E.ModelError(
+                f"bad model: {np.mean(~np.isfinite(x)):.0%} of the draws of {name} are not finite numbers: "
+                f"the data carry too little weight for the sampler (the largest group size, or effective "
+                f"n after forgetting, is {n.max():.3g}); nothing was written. Give more data, or a "
+                "longer --half-life"
+            )
 
 
 def _physical_memory() -> int | None:
@@ -501,8 +654,13 @@ def _check_memory(args, J: int, model, settings, summary) -> None:
         summary = False
     scalars = 3 + (2 if sep else 0) + (1 if heavy else 0)
     if summary:
-        kept = min(J, len(getattr(args, "keep", None) or []) + len(getattr(args, "compare", None) or [])
-                   + max(0, getattr(args, "keep_sample", 200) or 0) + S.TOP_KEEP)
+        kept = min(
+            J,
+            len(getattr(args, "keep", None) or [])
+            + len(getattr(args, "compare", None) or [])
+            + max(0, getattr(args, "keep_sample", 200) or 0)
+            + S.TOP_KEEP,
+        )
         per_draw = scalars + 1 + kept * (2 + sep + heavy)
     else:
         per_draw = scalars + J * (1 + sep + heavy) + (1 if within == "shared" else 0)
@@ -510,21 +668,24 @@ def _check_memory(args, J: int, model, settings, summary) -> None:
     sweeps = float(settings.chains) * (settings.warmup + cap) * max(J, 1)
     if sweeps > MAX_GROUP_SWEEPS:
         days = sweeps * 45e-9 / 86400
-        raise E.InputError(f"bad options --warmup/--draws: {settings.chains} chains x ({settings.warmup} warm-up + "
-                           f"{cap} draws at the cap) x {J} groups are {sweeps:.2g} group-sweeps, about {days:.0f} days "
-                           f"of one core; at most {MAX_GROUP_SWEEPS:.0e}: ask for fewer sweeps (a few thousand per "
-                           "chain are plenty when the diagnostics pass)")
+        raise E.InputError(
+            f"bad options --warmup/--draws: {settings.chains} chains x ({settings.warmup} warm-up + "
+            f"{cap} draws at the cap) x {J} groups are {sweeps:.2g} group-sweeps, about {days:.0f} days "
+            f"of one core; at most {MAX_GROUP_SWEEPS:.0e}: ask for fewer sweeps (a few thousand per "
+            "chain are plenty when the diagnostics pass)"
+        )
     keep = settings.chains * cap * per_draw * 8
     need = int(keep * MEMORY_FACTOR)
     have = _physical_memory()
     if have is None or need <= have:
         return
     which = "--max-draws" if settings.max_draws is not None else "--draws (the cap is 4 x --draws)"
-    raise E.InputError(f"bad option {which.split()[0]}: {settings.chains} chains x {cap} draws at the cap x {per_draw} "
-                       f"numbers per draw x 8 bytes are {_gib(keep)} of draws, and the run needs about "
-                       f"{MEMORY_FACTOR:g} times that ({_gib(need)} of memory), more than this machine's {_gib(have)}; "
-                       f"ask for fewer draws with {which}"
-                       + ("" if summary else ", or use summary mode (--summary on)"))
+    raise E.InputError(
+        f"bad option {which.split()[0]}: {settings.chains} chains x {cap} draws at the cap x {per_draw} "
+        f"numbers per draw x 8 bytes are {_gib(keep)} of draws, and the run needs about "
+        f"{MEMORY_FACTOR:g} times that ({_gib(need)} of memory), more than this machine's {_gib(have)}; "
+        f"ask for fewer draws with {which}" + ("" if summary else ", or use summary mode (--summary on)")
+    )
 
 
 def _gib(nbytes: int) -> str:
@@ -560,8 +721,9 @@ def cmd_demo(args, argv) -> int:
     args.out = args.out or "pooling-demo"
     stats = S.read_table(demo_path(), "supplier", "strength_mpa")
     if not args.quiet:
-        _printing(print, "demo: tensile strength (MPa) of test bars from 36 invented casting suppliers, 2 to 52 "
-                  "bars each")
+        _printing(
+            print, "demo: tensile strength (MPa) of test bars from 36 invented casting suppliers, 2 to 52 bars each"
+        )
     return run_fit(args, stats, argv, protect=_inputs(demo_path()))
 
 
@@ -572,27 +734,33 @@ def _summary_args(args, stats, more, options) -> dict:
     choice = getattr(args, "summary", None) or "auto"
     if more is not None:
         if choice == "on":
-            raise E.InputError("bad options: --summary on is not available with refit, whose change report "
-                               "compares every group's draws; use --summary off or auto")
+            raise E.InputError(
+                "bad options: --summary on is not available with refit, whose change report "
+                "compares every group's draws; use --summary off or auto"
+            )
         return {"summary": False}
     from .asked import split_compare
     from .summary import SummaryOptions
 
-    keep = split_compare(list(getattr(args, "keep", None) or []) + list(getattr(args, "compare", None) or []),
-                         stats.labels)
-    sopts = SummaryOptions(keep=keep, sample=getattr(args, "keep_sample", 200),
-                           bins=getattr(args, "summary_bins", 64))
+    keep = split_compare(
+        list(getattr(args, "keep", None) or []) + list(getattr(args, "compare", None) or []), stats.labels
+    )
+    sopts = SummaryOptions(keep=keep, sample=getattr(args, "keep_sample", 200), bins=getattr(args, "summary_bins", 64))
     return {"summary": choice, "options": options, "keep": sopts}
+
+
 # --- end of summary mode ---------------------------------------------------------------------------
 
 
 # ---------------------------------------------------------------------------------------------
 # the store of batches (nightly reruns): pooling ingest | batches | withdraw | refit | history | checkup | copy-store
 
-STORE_HELP = ("the store: a file path (SQLite; created by ingest), a PostgreSQL URL postgresql://HOST/DATABASE "
-              "or a libpq service written service=NAME, either followed by #STORE to choose the store inside the "
-              "database (default #pooling). Passwords come from the password file or a service file, never from "
-              "the command line")
+STORE_HELP = (
+    "the store: a file path (SQLite; created by ingest), a PostgreSQL URL postgresql://HOST/DATABASE "
+    "or a libpq service written service=NAME, either followed by #STORE to choose the store inside the "
+    "database (default #pooling). Passwords come from the password file or a service file, never from "
+    "the command line"
+)
 
 
 def _add_store_parsers(sub):
@@ -602,20 +770,37 @@ def _add_store_parsers(sub):
     p.add_argument("--group", required=True, help="column holding the group label")
     p.add_argument("--value", required=True, help="column of measurements")
     p.add_argument("--batch", help="name of the batch in the ledger (default: the file's name)")
-    p.add_argument("--at", help="the batch's own date, e.g. 2024-05-31 or 2024-05-31T06:00+02:00 (default: now; "
-                   "UTC when no offset is given); ages for --half-life count from it")
-    p.add_argument("--replace", action="store_true",
-                   help="replace the batch of the same name, or take back content that was withdrawn")
+    p.add_argument(
+        "--at",
+        help="the batch's own date, e.g. 2024-05-31 or 2024-05-31T06:00+02:00 (default: now; "
+        "UTC when no offset is given); ages for --half-life count from it",
+    )
+    p.add_argument(
+        "--replace",
+        action="store_true",
+        help="replace the batch of the same name, or take back content that was withdrawn",
+    )
     p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
     p.add_argument("--delimiter", help="CSV field separator (default: detected)")
-    p.add_argument("--thousands", metavar="SEP", help="digit-group separator inside numbers, e.g. ',' for "
-                   "1,234.5 or '.' for 1.234,5 (default: none)")
-    p.add_argument("--decimal-comma", dest="decimal_comma", action="store_true",
-                   help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)")
-    p.add_argument("--column", action="append", metavar="COL",
-                   help="a group-level column to keep with the batch (a method, an instrument, an age): one value per "
-                        "group, the same in every batch; refit uses it with --category COL or --numeric COL. Every "
-                        "active batch keeps the same columns. Repeat for more")
+    p.add_argument(
+        "--thousands",
+        metavar="SEP",
+        help="digit-group separator inside numbers, e.g. ',' for 1,234.5 or '.' for 1.234,5 (default: none)",
+    )
+    p.add_argument(
+        "--decimal-comma",
+        dest="decimal_comma",
+        action="store_true",
+        help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)",
+    )
+    p.add_argument(
+        "--column",
+        action="append",
+        metavar="COL",
+        help="a group-level column to keep with the batch (a method, an instrument, an age): one value per "
+        "group, the same in every batch; refit uses it with --category COL or --numeric COL. Every "
+        "active batch keeps the same columns. Repeat for more",
+    )
     p.add_argument("--quiet", action="store_true", help="print nothing on success")
     p = sub.add_parser("batches", help="list the ledger of a store: every batch, its status, and the recorded runs")
     p.add_argument("store", help=STORE_HELP)
@@ -627,29 +812,52 @@ def _add_store_parsers(sub):
     p = sub.add_parser("history", help="write one page of how the answers moved over a store's recorded runs")
     p.add_argument("store", help=STORE_HELP)
     p.add_argument("--out", required=True, help="the page to write, for example history.html (replaced if it exists)")
-    p = sub.add_parser("refit", help="merge every active batch, fit, write the run folder (with what changed and "
-                       "the history so far) and record the run in the store")
+    p = sub.add_parser(
+        "refit",
+        help="merge every active batch, fit, write the run folder (with what changed and "
+        "the history so far) and record the run in the store",
+    )
     p.add_argument("store", help=STORE_HELP)
     _add_fit_options(p, data=False)
     f = p.add_argument_group("store")
-    f.add_argument("--half-life", dest="half_life", metavar="DAYS", help="forget old batches: a batch DAYS old counts with weight "
-                   "0.5^(age/DAYS) on its n and M2 (default: no forgetting)")
+    f.add_argument(
+        "--half-life",
+        dest="half_life",
+        metavar="DAYS",
+        help="forget old batches: a batch DAYS old counts with weight "
+        "0.5^(age/DAYS) on its n and M2 (default: no forgetting)",
+    )
     f.add_argument("--as-of", dest="as_of", metavar="DATE", help="reference date for batch ages (default: now)")
-    f.add_argument("--force", action="store_true", help="refit even when no batch was added or withdrawn "
-                   "since the last recorded run (otherwise exit 4)")
-    f.add_argument("--fresh-start", dest="fresh_start", action="store_true",
-                   help="start the chains afresh instead of from the last run's final states")
+    f.add_argument(
+        "--force",
+        action="store_true",
+        help="refit even when no batch was added or withdrawn since the last recorded run (otherwise exit 4)",
+    )
+    f.add_argument(
+        "--fresh-start",
+        dest="fresh_start",
+        action="store_true",
+        help="start the chains afresh instead of from the last run's final states",
+    )
     # the change report reads --threshold, --lower-limit, --upper-limit, --level, --best and --decide-at
-    p = sub.add_parser("checkup", help="check a whole store: every checksum, the schema version and (SQLite) the "
-                       "file's integrity; one line per problem",
-                       epilog="exit codes: 0 the store is sound; 2 problems were found (each printed on its own line) "
-                              "or it is not a store; 6 the store cannot be reached, try again later")
+    p = sub.add_parser(
+        "checkup",
+        help="check a whole store: every checksum, the schema version and (SQLite) the "
+        "file's integrity; one line per problem",
+        epilog="exit codes: 0 the store is sound; 2 problems were found (each printed on its own line) "
+        "or it is not a store; 6 the store cannot be reached, try again later",
+    )
     p.add_argument("store", help=STORE_HELP)
-    p = sub.add_parser("copy-store", help="copy a whole store, with its history and recorded runs, into a new store "
-                       "(SQLite to PostgreSQL or back); verified number by number before it is committed")
+    p = sub.add_parser(
+        "copy-store",
+        help="copy a whole store, with its history and recorded runs, into a new store "
+        "(SQLite to PostgreSQL or back); verified number by number before it is committed",
+    )
     p.add_argument("source", help="the store to copy (" + STORE_HELP + ")")
-    p.add_argument("target", help="the new store: a file that does not exist yet, or a store name not yet used in "
-                   "a PostgreSQL database")
+    p.add_argument(
+        "target",
+        help="the new store: a file that does not exist yet, or a store name not yet used in a PostgreSQL database",
+    )
 
 
 def _opt_num(args, name, flag):
@@ -660,10 +868,14 @@ def _opt_num(args, name, flag):
 def _watch_from_args(args):
     from .store.changes import Watch
 
-    return Watch(threshold=_opt_num(args, "threshold", "--threshold"),
-                 lower=_opt_num(args, "lower_limit", "--lower-limit"), upper=_opt_num(args, "upper_limit", "--upper-limit"),
-                 decide_at=_opt_num(args, "decide_at", "--decide-at"),
-                 level=_opt_num(args, "level", "--level") or 0.95, best=getattr(args, "best", None) or "highest")
+    return Watch(
+        threshold=_opt_num(args, "threshold", "--threshold"),
+        lower=_opt_num(args, "lower_limit", "--lower-limit"),
+        upper=_opt_num(args, "upper_limit", "--upper-limit"),
+        decide_at=_opt_num(args, "decide_at", "--decide-at"),
+        level=_opt_num(args, "level", "--level") or 0.95,
+        best=getattr(args, "best", None) or "highest",
+    )
 
 
 def _shown(store: str) -> str:
@@ -677,16 +889,28 @@ def cmd_ingest(args, argv) -> int:
     from .store import jobs
 
     columns = list(args.column or [])
-    info, created = jobs.ingest_file(args.store, args.file, args.group, args.value, batch=args.batch, at=args.at,
-                                     replace=args.replace, encoding=args.encoding, delimiter=args.delimiter,
-                                     thousands=args.thousands, decimal="," if args.decimal_comma else None,
-                                     columns=columns)
+    info, created = jobs.ingest_file(
+        args.store,
+        args.file,
+        args.group,
+        args.value,
+        batch=args.batch,
+        at=args.at,
+        replace=args.replace,
+        encoding=args.encoding,
+        delimiter=args.delimiter,
+        thousands=args.thousands,
+        decimal="," if args.decimal_comma else None,
+        columns=columns,
+    )
     if not args.quiet:
         if created:
             print(f"created the store '{_shown(args.store)}'")
         kept = f", with the group-level columns {', '.join(repr(c) for c in columns)}" if columns else ""
-        print(f"ingested batch '{info.name}': {info.rows} measurements in {info.groups} groups{kept}, dated "
-              f"{info.dated_at} (sha256 {info.sha256[:12]})")
+        print(
+            f"ingested batch '{info.name}': {info.rows} measurements in {info.groups} groups{kept}, dated "
+            f"{info.dated_at} (sha256 {info.sha256[:12]})"
+        )
     return E.EXIT_OK
 
 
@@ -697,23 +921,45 @@ def cmd_batches(args, argv) -> int:
 
     batches, runs = jobs.list_batches(args.store)
     if args.json:
-        print(json.dumps({"store": _shown(args.store), "batches": [b.to_dict() for b in batches],
-                          "runs": [{"id": r.id, "created_at": r.created_at, "folder": r.folder,
-                                    "state_sha256": r.state_sha256, "batch_ids": list(r.batch_ids),
-                                    "half_life_days": r.half_life_days, "targets_met": r.targets_met} for r in runs]},
-                         indent=2, ensure_ascii=False))
+        print(
+            json.dumps(
+                {
+                    "store": _shown(args.store),
+                    "batches": [b.to_dict() for b in batches],
+                    "runs": [
+                        {
+                            "id": r.id,
+                            "created_at": r.created_at,
+                            "folder": r.folder,
+                            "state_sha256": r.state_sha256,
+                            "batch_ids": list(r.batch_ids),
+                            "half_life_days": r.half_life_days,
+                            "targets_met": r.targets_met,
+                        }
+                        for r in runs
+                    ],
+                },
+                indent=2,
+                ensure_ascii=False,
+            )
+        )
         return E.EXIT_OK
     print(f"{'id':>4}  {'name':28}{'status':11}{'rows':>10}{'groups':>8}  {'dated':26}{'changed':26}sha256")
     for b in batches:
         name = b.name if len(b.name) <= 27 else b.name[:26] + "…"
-        print(f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
-              f"{b.sha256[:12]}")
+        print(
+            f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
+            f"{b.sha256[:12]}"
+        )
     active = sum(b.status == "active" for b in batches)
     print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")
     if runs:
         r = runs[-1]
-        print(f"; the last, run {r.id} of {r.created_at}, is in '{r.folder}'"
-              + ("" if r.targets_met else " (diagnostics targets missed)"), end="")
+        print(
+            f"; the last, run {r.id} of {r.created_at}, is in '{r.folder}'"
+            + ("" if r.targets_met else " (diagnostics targets missed)"),
+            end="",
+        )
     print()
     return E.EXIT_OK
 
@@ -743,8 +989,14 @@ def cmd_refit(args, argv) -> int:
     if half is not None:
         _check_weighted(plan, half, model)
     init = None if args.fresh_start else plan.init_for(model, args.chains)
-    settings = {"chains": args.chains, "draws": args.draws, "warmup": args.warmup, "max_draws": args.max_draws,
-                "seed": args.seed, "warm_start": init is not None}
+    settings = {
+        "chains": args.chains,
+        "draws": args.draws,
+        "warmup": args.warmup,
+        "max_draws": args.max_draws,
+        "seed": args.seed,
+        "warm_start": init is not None,
+    }
 
     def after(fit, res, out):  # the run is recorded before anything is printed: a closed pipe cannot lose it
         try:
@@ -760,13 +1012,18 @@ def cmd_refit(args, argv) -> int:
         from .report.history import HISTORY_FILE, write_history
 
         ledger, runs = jobs.list_batches(plan.store_path)
-        write_history(folder / HISTORY_FILE, _store_name(shown), ledger,
-                      runs + [jobs.run_record(plan, fit, Path(args.out), settings)])
+        write_history(
+            folder / HISTORY_FILE,
+            _store_name(shown),
+            ledger,
+            runs + [jobs.run_record(plan, fit, Path(args.out), settings)],
+        )
         return report
 
     store = str(args.store)
-    protect = [("the store", store)] + [("the store's journal", store + x) for x in ("-wal", "-shm", "-journal")
-                                          if Path(store + x).exists()]
+    protect = [("the store", store)] + [
+        ("the store's journal", store + x) for x in ("-wal", "-shm", "-journal") if Path(store + x).exists()
+    ]
     argv = [shown if a == args.store else a for a in argv]  # summary.json records the command as shown
     return run_fit(args, plan.stats, argv, init=init, more=more, after=after, protect=protect)
 
@@ -779,9 +1036,11 @@ def _check_store_columns(args, stats, shown: str) -> None:
         for col in getattr(args, option, None) or []:
             if col not in stats.columns:
                 have = ", ".join(f"'{c}'" for c in kept) if kept else "none"
-                raise E.InputError(f"bad option --{option}: the store '{shown}' keeps no group-level column '{col}' "
-                                   f"with its active batches (it keeps: {have}); ingest the batches with --column "
-                                   f"{col}, or leave out --{option} {col}")
+                raise E.InputError(
+                    f"bad option --{option}: the store '{shown}' keeps no group-level column '{col}' "
+                    f"with its active batches (it keeps: {have}); ingest the batches with --column "
+                    f"{col}, or leave out --{option} {col}"
+                )
 
 
 def _all_weights_underflowed(plan, half: float) -> None:
@@ -790,10 +1049,12 @@ def _all_weights_underflowed(plan, half: float) -> None:
 
     ages = [age_days(b.dated_at, plan.reference) for b in plan.snapshot.batches]
     young = "" if min(ages) == max(ages) else f", the youngest {min(ages):.4g} days"
-    raise E.InputError(f"bad option --half-life: every batch's weight 0.5^(age/half-life) underflows to zero at a "
-                       f"half-life of {half:g} days: the oldest batch is {max(ages):.4g} days old "
-                       f"({max(ages) / half:.4g} half-lives){young}, and a weight stays above zero only within about "
-                       "1074 half-lives; give a longer --half-life")
+    raise E.InputError(
+        f"bad option --half-life: every batch's weight 0.5^(age/half-life) underflows to zero at a "
+        f"half-life of {half:g} days: the oldest batch is {max(ages):.4g} days old "
+        f"({max(ages) / half:.4g} half-lives){young}, and a weight stays above zero only within about "
+        "1074 half-lives; give a longer --half-life"
+    )
 
 
 def _fits(stats, model) -> str | None:
@@ -839,17 +1100,26 @@ def _check_weighted(plan, half: float, model) -> None:
         lo, hi = (lo, mid) if _fits(weighed(mid), model) is None else (mid, hi)
     n = np.asarray(plan.stats.n, dtype=float)
     j = int(np.argmax(n))
-    figures = (f"the largest effective n is {n[j]:.3g} (group {_show(plan.stats.labels[j])}; {plan.stats.J} groups "
-               f"with {float(n.sum()):.3g} in all) and the newest batch weighs {max(plan.weights):.3g}")
+    figures = (
+        f"the largest effective n is {n[j]:.3g} (group {_show(plan.stats.labels[j])}; {plan.stats.J} groups "
+        f"with {float(n.sum()):.3g} in all) and the newest batch weighs {max(plan.weights):.3g}"
+    )
     advice = f"give a longer --half-life (about {_round_up(hi)} days or more here), or refit without one"
     if model.within in ("separate", "shared") and "measurements" in why:  # the model's replication check
-        need = ("some group with an effective n of at least 2, of measurements that differ"
-                if model.within == "separate" else "more measurements than groups, by an effective n of at least 1")
-        raise E.InputError(f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight to estimate "
-                           f"the within-group variance: {figures}, while the {model.within} structure needs {need}; "
-                           f"{advice}")
-    raise E.InputError(f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight ({figures}), "
-                       f"and the weighted data are refused: {why.removeprefix('bad model: ')}; {advice}")
+        need = (
+            "some group with an effective n of at least 2, of measurements that differ"
+            if model.within == "separate"
+            else "more measurements than groups, by an effective n of at least 1"
+        )
+        raise E.InputError(
+            f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight to estimate "
+            f"the within-group variance: {figures}, while the {model.within} structure needs {need}; "
+            f"{advice}"
+        )
+    raise E.InputError(
+        f"bad option --half-life: a half-life of {half:g} day{'' if half == 1 else 's'} leaves too little weight ({figures}), "
+        f"and the weighted data are refused: {why.removeprefix('bad model: ')}; {advice}"
+    )
 
 
 def _round_up(x: float) -> str:
@@ -887,8 +1157,10 @@ def cmd_checkup(args, argv) -> int:
     if problems:
         for line in problems:
             print(f"{shown}: {line}")
-        raise E.InputError(f"bad store '{shown}': {len(problems)} problem(s) found (listed above); restore the store "
-                           "from a backup, or copy what is sound elsewhere")
+        raise E.InputError(
+            f"bad store '{shown}': {len(problems)} problem(s) found (listed above); restore the store "
+            "from a backup, or copy what is sound elsewhere"
+        )
     print(f"{shown}: sound: every checksum matches; {facts}")
     return E.EXIT_OK
 
@@ -898,17 +1170,27 @@ def cmd_copy_store(args, argv) -> int:
 
     source, target, content = jobs.copy_store(args.source, args.target)
     groups = sum(len(s.labels) for s in content.stats.values())
-    print(f"copied '{source}' to '{target}': {len(content.lines)} batches ({groups} group rows) and "
-          f"{len(content.runs)} recorded runs, read back and identical to the original")
+    print(
+        f"copied '{source}' to '{target}': {len(content.lines)} batches ({groups} group rows) and "
+        f"{len(content.runs)} recorded runs, read back and identical to the original"
+    )
     return E.EXIT_OK
 
 
-STORE_COMMANDS = {"ingest": cmd_ingest, "batches": cmd_batches, "withdraw": cmd_withdraw, "refit": cmd_refit,
-                  "history": cmd_history, "checkup": cmd_checkup, "copy-store": cmd_copy_store}
+STORE_COMMANDS = {
+    "ingest": cmd_ingest,
+    "batches": cmd_batches,
+    "withdraw": cmd_withdraw,
+    "refit": cmd_refit,
+    "history": cmd_history,
+    "checkup": cmd_checkup,
+    "copy-store": cmd_copy_store,
+}
 
 
 # ---------------------------------------------------------------------------------------------
 # stops (Ctrl-C, SIGTERM) and closed pipes
+
 
 class _Stops:
     """What a SIGTERM (a scheduler's stop) does at each moment of a command.
@@ -1030,14 +1312,18 @@ def main(argv: list[str] | None = None, *, _stops: _Stops | None = None) -> int:
             _silence_stdout()
             code = E.EXIT_OK
         except MemoryError as exc:
-            _say(f"pooling: out of memory ({exc}); fewer draws (--draws, --max-draws) or chains, or summary mode "
-                 "(--summary on), need less")
+            _say(
+                f"pooling: out of memory ({exc}); fewer draws (--draws, --max-draws) or chains, or summary mode "
+                "(--summary on), need less"
+            )
             code = E.EXIT_BAD_INPUT
         except Exception as exc:  # a bug: one line, the traceback only on request
             if os.environ.get("POOLING_DEBUG"):
                 raise
-            _say(f"pooling: internal error: {type(exc).__name__}: {exc} (set POOLING_DEBUG=1 for details; "
-                 "please report it)")
+            _say(
+                f"pooling: internal error: {type(exc).__name__}: {exc} (set POOLING_DEBUG=1 for details; "
+                "please report it)"
+            )
             code = E.EXIT_INTERNAL
     except KeyboardInterrupt:  # a stop that landed while an outcome was being reported
         code = E.EXIT_INTERRUPTED

@@ -20,6 +20,7 @@ read in the order given (a glob or a folder: sorted by name), as the pandas path
 
 Requires the optional extra: pip install pooling[dask].
 """
+
 from __future__ import annotations
 
 import glob as _glob
@@ -34,14 +35,18 @@ from . import stats as S
 from .errors import InputError
 from .runmark import read_marker
 
-MISSING_DASK = "reading a folder, a glob of files or a cluster needs Dask, which is not installed: pip install pooling[dask]"
+MISSING_DASK = (
+    "reading a folder, a glob of files or a cluster needs Dask, which is not installed: pip install pooling[dask]"
+)
 _CSV_SUFFIXES = (".csv", ".tsv", ".txt")
 _PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
 _ORDER = "__pooling_order__"  # partition number << 40 | row: first appearance, across partitions
 _FILE = "__pooling_file__"
 _PARQUET_ROWS = 2_000_000  # rows per partition when local Parquet files are split by row groups
 _CONNECT_TIMEOUT = "10s"  # how long to wait for a scheduler before calling its address bad
-_PARSE_ERROR = re.compile(r"could not convert|[Uu]nable to parse|[Mm]ismatched dtypes|invalid literal|cannot safely convert")
+_PARSE_ERROR = re.compile(
+    r"could not convert|[Uu]nable to parse|[Mm]ismatched dtypes|invalid literal|cannot safely convert"
+)
 
 
 def _dask():
@@ -83,17 +88,24 @@ def resolve(paths_or_glob, fmt: str | None = None) -> tuple[list[str], str]:
         if "://" in item:
             files.append(item)
         elif Path(item).is_dir():
-            found = sorted(str(p) for p in Path(item).rglob("*")
-                           if p.is_file() and p.suffix.lower() in _CSV_SUFFIXES + _PARQUET_SUFFIXES
-                           and not _in_run_folder(p, Path(item)))
+            found = sorted(
+                str(p)
+                for p in Path(item).rglob("*")
+                if p.is_file()
+                and p.suffix.lower() in _CSV_SUFFIXES + _PARQUET_SUFFIXES
+                and not _in_run_folder(p, Path(item))
+            )
             if not found:
-                raise InputError(f"bad input: the folder '{item}' holds no .csv, .tsv, .txt or .parquet file"
-                                 " (run folders of pooling in it are not read)")
+                raise InputError(
+                    f"bad input: the folder '{item}' holds no .csv, .tsv, .txt or .parquet file"
+                    " (run folders of pooling in it are not read)"
+                )
             files.extend(found)
         elif re.search(r"[*?\[]", item) and not Path(item).is_file():
             base = _glob_base(item)
-            found = sorted(p for p in _glob.glob(item, recursive=True)
-                           if Path(p).is_file() and not _in_run_folder(Path(p), base))
+            found = sorted(
+                p for p in _glob.glob(item, recursive=True) if Path(p).is_file() and not _in_run_folder(Path(p), base)
+            )
             if not found:
                 raise InputError(f"bad input: no file matches '{item}'")
             files.extend(found)
@@ -102,8 +114,10 @@ def resolve(paths_or_glob, fmt: str | None = None) -> tuple[list[str], str]:
             files.append(item)
     kinds = {_kind(f, fmt) for f in files}
     if len(kinds) > 1:
-        raise InputError(f"bad input: '{_show_input(paths_or_glob)}' mixes CSV and Parquet files; "
-                         "read them with two narrower globs, or convert one kind")
+        raise InputError(
+            f"bad input: '{_show_input(paths_or_glob)}' mixes CSV and Parquet files; "
+            "read them with two narrower globs, or convert one kind"
+        )
     return files, kinds.pop()
 
 
@@ -251,16 +265,22 @@ def _checked_partition(df, group: str, value: str, csv: bool, whole: frozenset, 
             where = df[_FILE].iloc[i] if _FILE in df.columns else file
             cell = df[col].iloc[i]
             found = "an empty cell" if pd.isna(cell) or str(cell).strip() == "" else S._show(cell)
-            row = f", row {int(df['__pooling_row__'].iloc[i]) + 1}" if "__pooling_row__" in df.columns else (
-                f", row {i + 1}" if str(where) in whole else "")
+            row = (
+                f", row {int(df['__pooling_row__'].iloc[i]) + 1}"
+                if "__pooling_row__" in df.columns
+                else (f", row {i + 1}" if str(where) in whole else "")
+            )
             raise InputError(f"bad input in '{where}', column '{col}'{row}: expected {what}, found {found}")
-    out = pd.DataFrame({group: labels.astype(str).str.strip() if csv else labels.astype(str), value: vals},
-                       index=df.index)
+    out = pd.DataFrame(
+        {group: labels.astype(str).str.strip() if csv else labels.astype(str), value: vals}, index=df.index
+    )
     bad = out[group].astype(object).str.contains(S._BAD_LABEL_CHARS, regex=True).to_numpy(dtype=bool)
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputError(f"bad input in '{file}', column '{group}': expected a group label of text, found a control "
-                         f"character in {S._show(out[group].iloc[i])}")
+        raise InputError(
+            f"bad input in '{file}', column '{group}': expected a group label of text, found a control "
+            f"character in {S._show(out[group].iloc[i])}"
+        )
     out[_ORDER] = np.arange(len(df), dtype=np.int64) + (np.int64(number) << np.int64(40))
     return out
 
@@ -291,8 +311,10 @@ def _read_parquet_piece(piece, columns):
     try:
         table = pf.read(columns=columns) if groups is None else pf.read_row_groups(groups, columns=columns)
         if len(table) != rows:  # a value count damaged in the footer: pyarrow stops early
-            raise InputError(f"bad input in '{path}': a damaged Parquet file: its footer says {rows} rows from row "
-                             f"{first_row + 1} on, but {len(table)} could be read")
+            raise InputError(
+                f"bad input in '{path}': a damaged Parquet file: its footer says {rows} rows from row "
+                f"{first_row + 1} on, but {len(table)} could be read"
+            )
         S._check_parquet_text(table, path, first_row)
         df = table.to_pandas()
     except InputError:
@@ -354,9 +376,19 @@ def _csv_frame(dd, files: list[str], group: str, value: str, encoding, delimiter
         names = {str(c).strip(): c for c in raw}
     g_raw, v_raw = names.get(group, group), names.get(value, value)
     ddf = dd.read_csv(
-        files, sep=sep, usecols=[g_raw, v_raw], dtype={g_raw: str, v_raw: "float64"}, keep_default_na=False,
-        na_values={v_raw: S._MISSING}, skip_blank_lines=True, encoding=enc, thousands=thousands,
-        decimal=decimal or ".", skipinitialspace=True, include_path_column=_FILE, blocksize=blocksize,
+        files,
+        sep=sep,
+        usecols=[g_raw, v_raw],
+        dtype={g_raw: str, v_raw: "float64"},
+        keep_default_na=False,
+        na_values={v_raw: S._MISSING},
+        skip_blank_lines=True,
+        encoding=enc,
+        thousands=thousands,
+        decimal=decimal or ".",
+        skipinitialspace=True,
+        include_path_column=_FILE,
+        blocksize=blocksize,
     )
     return ddf.rename(columns={g_raw: group, v_raw: value})
 
@@ -383,9 +415,19 @@ def _compute(dask, scheduler, *things):
         client.close()
 
 
-def read_table_dask(paths_or_glob, group: str, value: str, scheduler=None, *, format: str | None = None,
-                    encoding: str | None = None, delimiter: str | None = None, thousands: str | None = None,
-                    decimal: str | None = None, blocksize="64MB") -> S.GroupStats:
+def read_table_dask(
+    paths_or_glob,
+    group: str,
+    value: str,
+    scheduler=None,
+    *,
+    format: str | None = None,
+    encoding: str | None = None,
+    delimiter: str | None = None,
+    thousands: str | None = None,
+    decimal: str | None = None,
+    blocksize="64MB",
+) -> S.GroupStats:
     """Statistics of long tables in many CSV or Parquet files, computed on Dask.
 
     `paths_or_glob` is a folder, a glob pattern ('runs/2026-*/part-*.parquet'), a list of files, or
@@ -406,8 +448,11 @@ def read_table_dask(paths_or_glob, group: str, value: str, scheduler=None, *, fo
             whole = frozenset()
         else:
             local = [f for f in files if "://" not in f]
-            enc = S.check_encoding(encoding) if encoding else (S._detect_encoding(Path(local[0]), None) if local
-                                                               else "utf-8")
+            enc = (
+                S.check_encoding(encoding)
+                if encoding
+                else (S._detect_encoding(Path(local[0]), None) if local else "utf-8")
+            )
             ddf = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
             limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
             whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
@@ -431,8 +476,13 @@ def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected:
 
 def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S.GroupStats:
     """The group statistics of the checked frame, computed on `scheduler`."""
-    meta = pd.DataFrame({group: pd.Series([], dtype=object).astype(str), value: pd.Series([], dtype=np.float64),
-                         _ORDER: pd.Series([], dtype=np.int64)})
+    meta = pd.DataFrame(
+        {
+            group: pd.Series([], dtype=object).astype(str),
+            value: pd.Series([], dtype=np.float64),
+            _ORDER: pd.Series([], dtype=np.int64),
+        }
+    )
     checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, meta=meta)
     grouped = checked.groupby(group)
     # one output partition: J groups' statistics are small by design, and the shuffle-based
@@ -447,8 +497,10 @@ def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S
         if not _PARSE_ERROR.search(str(exc)):
             raise
         # the CSV reader meeting text where a number belongs, in some block of some file
-        raise InputError(f"bad input in '{source}', column '{value}': expected numbers, found something else "
-                         f"({S._one_line(exc)[:200]})") from None
+        raise InputError(
+            f"bad input in '{source}', column '{value}': expected numbers, found something else "
+            f"({S._one_line(exc)[:200]})"
+        ) from None
     if len(moments) == 0:
         raise InputError(f"bad input in '{source}': no data rows")
     order = np.argsort(first.reindex(moments.index).to_numpy(), kind="stable")
@@ -456,5 +508,13 @@ def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S
     n, hi, lo, m2, unit = (np.array([t[i] for t in moments.to_numpy()[order]], dtype=np.float64) for i in range(5))
     top = float(unit.max())
     f = unit / top  # a common unit for all groups (powers of two: exact)
-    return S.GroupStats(labels, n.astype(np.int64), hi * f, m2 * f * f, mean_lo=lo * f, unit=top, source=source,
-                        meta={"files": len(files), "format": kind})
+    return S.GroupStats(
+        labels,
+        n.astype(np.int64),
+        hi * f,
+        m2 * f * f,
+        mean_lo=lo * f,
+        unit=top,
+        source=source,
+        meta={"files": len(files), "format": kind},
+    )

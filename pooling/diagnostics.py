@@ -48,14 +48,14 @@ well-mixing run; only the parameters whose sequence is still positive there get 
 autocovariance by FFT. Large inputs (at least `_THREADED_MIN` numbers) have their blocks computed
 on two threads (pooling._blocks), with results identical to one thread.
 """
-from __future__ import annotations
-from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
+from __future__ import annotations
 
 import numpy as np
 from numba import njit
 from scipy.special import ndtri
 
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 from ._blocks import Scratch, each_block
 from .order import gather
 
@@ -370,7 +370,7 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
     if n_draws % 2 == 0:
         xs = xb.reshape(p, m, h)  # the two halves of a chain are consecutive: a view
     else:
-        xs = np.concatenate([xb[..., :h], xb[..., n_draws - h:]], axis=1)
+        xs = np.concatenate([xb[..., :h], xb[..., n_draws - h :]], axis=1)
     out: dict[str, np.ndarray] = {}
     const_seq = _const_seq(xs)
 
@@ -513,8 +513,15 @@ def check_targets(named: dict[str, np.ndarray], rhat_max: float = 1.01, ess_min:
         bad = ~(rhat < rhat_max) | ~(bulk >= ess_min) | ~(tail >= ess_min)
         for flat in np.flatnonzero(bad.ravel()):
             idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
-            misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
-                           "bulk_ess": float(bulk.ravel()[flat]), "tail_ess": float(tail.ravel()[flat])})
+            misses.append(
+                {
+                    "name": name,
+                    "index": idx,
+                    "rhat": float(rhat.ravel()[flat]),
+                    "bulk_ess": float(bulk.ravel()[flat]),
+                    "tail_ess": float(tail.ravel()[flat]),
+                }
+            )
     return misses
 
 
@@ -523,7 +530,9 @@ def worst(named: dict[str, np.ndarray]) -> dict[str, dict[str, float]]:
     out = {}
     for name, x in named.items():
         rhat, bulk, tail = (np.asarray(v, dtype=float) for v in rhat_ess(x))
-        out[name] = {"rhat_max": float(np.max(rhat)) if rhat.size else float("nan"),
-                     "bulk_ess_min": float(np.min(bulk)) if bulk.size else float("nan"),
-                     "tail_ess_min": float(np.min(tail)) if tail.size else float("nan")}
+        out[name] = {
+            "rhat_max": float(np.max(rhat)) if rhat.size else float("nan"),
+            "bulk_ess_min": float(np.min(bulk)) if bulk.size else float("nan"),
+            "tail_ess_min": float(np.min(tail)) if tail.size else float("nan"),
+        }
     return out

@@ -10,6 +10,7 @@ Exit codes of the command line (documented in the README):
     5  stopped by the user (Ctrl-C or SIGTERM); nothing half-written is left
     6  output cannot be written (folder exists, not writable, disk full)
 """
+
 from __future__ import annotations
 
 EXIT_OK = 0

@@ -53,14 +53,16 @@ With the normal between-group distribution and no predictors the sweep consumes 
 it did before heavy tails existed, draw for draw (tests/test_kernel_api.py pins the draws of a fixed seed);
 predictors take a separate branch (p > 0) and leave that path untouched.
 """
+
 from __future__ import annotations
-from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 from typing import NamedTuple
 
 import numpy as np
 from numba import njit
+
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 # layout of the per-chain scalar state vector
 ETA, MU, S2, NU_IDX, WIDTH, SIGMA2, JUMP_SUM, JUMP_COUNT, DF_IDX = range(9)
@@ -190,8 +192,9 @@ def t_quartile_logs(df_grid: np.ndarray) -> np.ndarray:
     """log of the upper quartile of the standard Student-t for each df (the normal's at df = inf)."""
     from scipy.special import stdtrit
 
-    return np.array([math.log(float(stdtrit(df, 0.75))) if math.isfinite(df) else math.log(0.6744897501960817)
-                     for df in df_grid])
+    return np.array(
+        [math.log(float(stdtrit(df, 0.75))) if math.isfinite(df) else math.log(0.6744897501960817) for df in df_grid]
+    )
 
 
 def make_work(d: Data) -> Work:
@@ -200,10 +203,22 @@ def make_work(d: Data) -> Work:
     heavy = d.between == BETWEEN_HEAVY
     p = d.X.shape[1]
     q = p + 1 if p > 0 else 0
-    return Work(np.empty(J), np.empty(2), np.empty(d.nu_grid.shape[0]), np.empty(J if collapsed else 0),
-                np.ones(J if heavy else 0), np.empty(J if heavy else 0), np.empty(d.df_grid.shape[0]),
-                np.empty(J if p > 0 else 0), np.empty(J if p > 0 else 0), np.zeros(q * q), np.zeros(q), np.zeros(q),
-                np.empty(J if p > 0 else 0), np.empty(J if p > 0 else 0))
+    return Work(
+        np.empty(J),
+        np.empty(2),
+        np.empty(d.nu_grid.shape[0]),
+        np.empty(J if collapsed else 0),
+        np.ones(J if heavy else 0),
+        np.empty(J if heavy else 0),
+        np.empty(d.df_grid.shape[0]),
+        np.empty(J if p > 0 else 0),
+        np.empty(J if p > 0 else 0),
+        np.zeros(q * q),
+        np.zeros(q),
+        np.zeros(q),
+        np.empty(J if p > 0 else 0),
+        np.empty(J if p > 0 else 0),
+    )
 
 
 def draws_shape(d: Data, rows: int) -> dict[str, tuple[int, ...]]:
@@ -211,10 +226,18 @@ def draws_shape(d: Data, rows: int) -> dict[str, tuple[int, ...]]:
     J = d.ybar.shape[0]
     sep = d.within == WITHIN_SEPARATE
     heavy = d.between == BETWEEN_HEAVY
-    return {"mu": (rows,), "tau": (rows,), "theta": (rows, J),
-            "sigma": (rows, J if sep else 1 if d.within == WITHIN_SHARED else 0),
-            "s": (rows if sep else 0,), "nu": (rows if sep else 0,), "df": (rows if heavy else 0,),
-            "lam": (rows, J if heavy else 0), "evals": (rows,), "beta": (rows, d.X.shape[1])}
+    return {
+        "mu": (rows,),
+        "tau": (rows,),
+        "theta": (rows, J),
+        "sigma": (rows, J if sep else 1 if d.within == WITHIN_SHARED else 0),
+        "s": (rows if sep else 0,),
+        "nu": (rows if sep else 0,),
+        "df": (rows if heavy else 0,),
+        "lam": (rows, J if heavy else 0),
+        "evals": (rows,),
+        "beta": (rows, d.X.shape[1]),
+    }
 
 
 DRAW_DTYPES: dict = {}  # every stored draw is float64 (lambda too: summary mode's running sums read the state's
@@ -713,8 +736,11 @@ def df_tau_step(rng, d, sc, z2, sz):
         t_new = d.df_logprior[k_new] + J * d.df_const[k_new] - 0.5 * sz * math.exp(-a)
     else:
         h = 0.5 * (df_new + 1.0)
-        t_new = (d.df_logprior[k_new] + J * (d.df_const[k_new] + h * math.log(df_new))
-                 - h * (sum_log_shifted(z2, df_new * math.exp(a)) - J * a))
+        t_new = (
+            d.df_logprior[k_new]
+            + J * (d.df_const[k_new] + h * math.log(df_new))
+            - h * (sum_log_shifted(z2, df_new * math.exp(a)) - J * a)
+        )
     new = t_new + tau_part(eta_new, d, J)
     if math.log(rng.random()) < new - old:
         sc[DF_IDX] = k_new
@@ -872,8 +898,12 @@ def block_b(rng, d, scalars, theta, sigma2, lp):
             top = -np.inf
             for k in range(K):
                 h = 0.5 * nu_grid[k]
-                lp[k] = (nu_logprior[k] + J * (h * math.log(h * s2) - math.lgamma(h))
-                         - (h + 1.0) * log_sum - h * s2 * inv_sum)
+                lp[k] = (
+                    nu_logprior[k]
+                    + J * (h * math.log(h * s2) - math.lgamma(h))
+                    - (h + 1.0) * log_sum
+                    - h * s2 * inv_sum
+                )
                 top = max(top, lp[k])
             total = 0.0
             for k in range(K):
@@ -991,7 +1021,7 @@ def collapsed_nu_loglik(k, J, nu_grid, nu_logprior, table, s2, n, half_ss, n_cla
     acc = 0.0
     if n_classes >= 0:
         for c in range(n_classes):
-            acc += (h + 0.5 * sizes[c]) * sum_log_shifted(half_ss[starts[c]:starts[c + 1]], hs2)
+            acc += (h + 0.5 * sizes[c]) * sum_log_shifted(half_ss[starts[c] : starts[c + 1]], hs2)
     else:
         for j in range(n.shape[0]):
             acc += (h + 0.5 * n[j]) * math.log(hs2 + half_ss[j])
@@ -1013,9 +1043,9 @@ def collapsed_nu_step(rng, d, scalars, theta, half_ss):
     layout = d.layout
     n_classes = layout[0]
     c = max(n_classes, 0)
-    starts = layout[1:c + 2]
-    sizes = layout[c + 2:2 * c + 2]
-    pos = layout[2 * c + 2:]
+    starts = layout[1 : c + 2]
+    sizes = layout[c + 2 : 2 * c + 2]
+    pos = layout[2 * c + 2 :]
     J = n.shape[0]
     K = d.nu_grid.shape[0]
     k = int(scalars[NU_IDX])
@@ -1026,10 +1056,9 @@ def collapsed_nu_step(rng, d, scalars, theta, half_ss):
         r = ybar[j] - theta[j]
         half_ss[pos[j] if n_classes >= 0 else j] = 0.5 * (m2[j] + n[j] * r * r)
     s2 = scalars[S2]
-    diff = (collapsed_nu_loglik(k_new, J, d.nu_grid, d.nu_logprior, d.nu_table, s2, n, half_ss, n_classes, starts,
-                                sizes)
-            - collapsed_nu_loglik(k, J, d.nu_grid, d.nu_logprior, d.nu_table, s2, n, half_ss, n_classes, starts,
-                                  sizes))
+    diff = collapsed_nu_loglik(
+        k_new, J, d.nu_grid, d.nu_logprior, d.nu_table, s2, n, half_ss, n_classes, starts, sizes
+    ) - collapsed_nu_loglik(k, J, d.nu_grid, d.nu_logprior, d.nu_table, s2, n, half_ss, n_classes, starts, sizes)
     if math.log(rng.random()) < diff:
         scalars[NU_IDX] = k_new
 

@@ -21,6 +21,7 @@ with a message that says what to do instead, and returns a `Problem`: the data c
 to order one (so that 1e12 offsets and tiny or huge units sample alike) with the priors carried
 into the same units. Every result is mapped back to the user's units in the posterior stage.
 """
+
 from __future__ import annotations
 
 import math
@@ -131,7 +132,11 @@ class NuGrid:
     weights: tuple[float, ...] | None = None
 
     def describe(self) -> str:
-        w = "uniform over the points" if self.weights is None else "weights " + ", ".join(f"{x:g}" for x in self.weights)
+        w = (
+            "uniform over the points"
+            if self.weights is None
+            else "weights " + ", ".join(f"{x:g}" for x in self.weights)
+        )
         return "grid {" + ", ".join(f"{x:g}" for x in self.values) + "}, " + w
 
     def log_prior(self) -> np.ndarray:
@@ -157,8 +162,9 @@ DF_NORMAL_FROM = 40.0  # prior mass of df above this goes to df = inf (the norma
 DEFAULT_DF_GRID = (1.0, 1.5, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 24.0, 32.0, math.inf)
 
 
-def gamma_df_weights(grid: tuple[float, ...], rate: float = DF_PRIOR_RATE, normal_from: float = DF_NORMAL_FROM
-                     ) -> tuple[float, ...]:
+def gamma_df_weights(
+    grid: tuple[float, ...], rate: float = DF_PRIOR_RATE, normal_from: float = DF_NORMAL_FROM
+) -> tuple[float, ...]:
     """Prior weights on a df grid from the Gamma(2, rate) density on df: each finite point gets the mass of
     its cell (edges at the geometric midpoints between neighbours; the first cell from 0, the last finite
     one up to `normal_from`, or up to the last finite point if that is larger), and df = inf gets the mass
@@ -210,18 +216,24 @@ class HeavyBetween:
     def __post_init__(self):
         if self.df is not None:
             if not (isinstance(self.df, (int, float)) and not math.isnan(self.df) and self.df > 0):
-                raise ModelError(f"bad model: the degrees of freedom of the between-group distribution must be a "
-                                 f"number above 0 (or inf for the normal); found {self.df!r}")
+                raise ModelError(
+                    f"bad model: the degrees of freedom of the between-group distribution must be a "
+                    f"number above 0 (or inf for the normal); found {self.df!r}"
+                )
             return
         vals = tuple(float(x) for x in self.grid)
         if not vals or any(math.isnan(x) or x <= 0 for x in vals) or len(set(vals)) != len(vals):
-            raise ModelError(f"bad model: the df grid must hold distinct numbers above 0 (inf allowed); found {self.grid}")
+            raise ModelError(
+                f"bad model: the df grid must hold distinct numbers above 0 (inf allowed); found {self.grid}"
+            )
         object.__setattr__(self, "grid", vals)
         if self.weights is not None:
             w = tuple(float(x) for x in self.weights)
             if len(w) != len(vals) or any(not math.isfinite(x) or x < 0 for x in w) or sum(w) <= 0:
-                raise ModelError("bad model: the df grid weights must be one non-negative number per grid point, "
-                                 f"not all zero; found {self.weights}")
+                raise ModelError(
+                    "bad model: the df grid weights must be one non-negative number per grid point, "
+                    f"not all zero; found {self.weights}"
+                )
             object.__setattr__(self, "weights", w)
 
     @property
@@ -240,9 +252,12 @@ class HeavyBetween:
         grid, w = self.grid_and_weights()
         points = ", ".join("inf" if math.isinf(g) else f"{g:g}" for g in grid)
         if self.weights is None:
-            how = (f"prior weights from Gamma(2, rate {DF_PRIOR_RATE:g}) on df over each point's cell, the mass above "
-                   f"{DF_NORMAL_FROM:g} on df = inf (the normal); P(df = inf) = {w[-1]:.3f}" if math.isinf(grid[-1]) else
-                   f"prior weights from Gamma(2, rate {DF_PRIOR_RATE:g}) on df over each point's cell")
+            how = (
+                f"prior weights from Gamma(2, rate {DF_PRIOR_RATE:g}) on df over each point's cell, the mass above "
+                f"{DF_NORMAL_FROM:g} on df = inf (the normal); P(df = inf) = {w[-1]:.3f}"
+                if math.isinf(grid[-1])
+                else f"prior weights from Gamma(2, rate {DF_PRIOR_RATE:g}) on df over each point's cell"
+            )
         else:
             how = "prior weights " + ", ".join(f"{x:g}" for x in w)
         return f"heavy tails: theta_j ~ Student-t(df, mu, tau), df learned on the grid {{{points}}}; {how}"
@@ -268,7 +283,9 @@ def parse_between(text) -> NormalBetween | HeavyBetween:
         try:
             df = float(raw)
         except ValueError:
-            raise ModelError(f"bad model: heavy:DF needs a number of degrees of freedom after ':'; found '{text}'") from None
+            raise ModelError(
+                f"bad model: heavy:DF needs a number of degrees of freedom after ':'; found '{text}'"
+            ) from None
         return HeavyBetween(df=df)
     raise ModelError(f"bad model: the between-group distribution must be normal, heavy or heavy:DF; found '{text}'")
 
@@ -330,8 +347,10 @@ def _check_effect_prior(prior, what: str) -> None:
     if not isinstance(prior, (Flat, Normal)):
         raise ModelError(f"bad model: the prior on the effects of '{what}' must be flat or normal; found {prior!r}")
     if isinstance(prior, Normal) and not (math.isfinite(prior.scale) and prior.scale > 0 and math.isfinite(prior.loc)):
-        raise ModelError(f"bad model: the normal prior on the effects of '{what}' needs a finite centre and a positive "
-                         f"scale; found loc={prior.loc}, scale={prior.scale}")
+        raise ModelError(
+            f"bad model: the normal prior on the effects of '{what}' needs a finite centre and a positive "
+            f"scale; found loc={prior.loc}, scale={prior.scale}"
+        )
 
 
 def _decode_predictor(d: dict):
@@ -382,34 +401,50 @@ class Model:
         object.__setattr__(self, "predictors", preds)
         _check_effect_prior(self.effects, "the predictors")
         if self.within not in STRUCTURES:
-            raise ModelError(f"bad model: within-group structure must be one of {', '.join(STRUCTURES)}; found '{self.within}'")
+            raise ModelError(
+                f"bad model: within-group structure must be one of {', '.join(STRUCTURES)}; found '{self.within}'"
+            )
         if not isinstance(self.mu, (Flat, Normal)):
             raise ModelError(f"bad model: the prior on mu must be flat or normal; found {self.mu!r}")
         if not isinstance(self.tau, (Flat, HalfNormal, HalfCauchy)):
-            raise ModelError(f"bad model: the prior on tau must be flat, half-normal or half-Cauchy; found {self.tau!r}")
+            raise ModelError(
+                f"bad model: the prior on tau must be flat, half-normal or half-Cauchy; found {self.tau!r}"
+            )
         if not isinstance(self.s2, (Reciprocal, Gamma)):
             raise ModelError(f"bad model: the prior on s^2 must be 1/s^2 or gamma; found {self.s2!r}")
         for name, p in (("mu", self.mu), ("tau", self.tau)):
             scale = getattr(p, "scale", 1.0)
             if not (math.isfinite(scale) and scale > 0):
-                raise ModelError(f"bad model: the scale of the prior on {name} must be a positive number; found {scale}")
+                raise ModelError(
+                    f"bad model: the scale of the prior on {name} must be a positive number; found {scale}"
+                )
         if isinstance(self.mu, Normal) and not math.isfinite(self.mu.loc):
             raise ModelError(f"bad model: the centre of the prior on mu must be a finite number; found {self.mu.loc}")
         if isinstance(self.s2, Gamma) and not (self.s2.shape > 0 and self.s2.rate > 0):
-            raise ModelError("bad model: the gamma prior on s^2 needs shape > 0 and rate > 0; "
-                             f"found shape={self.s2.shape}, rate={self.s2.rate}")
+            raise ModelError(
+                "bad model: the gamma prior on s^2 needs shape > 0 and rate > 0; "
+                f"found shape={self.s2.shape}, rate={self.s2.rate}"
+            )
         if not isinstance(self.sigma2, (Reciprocal, ScaledInvChi2)):
-            raise ModelError(f"bad model: the prior on the shared sigma^2 must be 1/sigma^2 or scaled-inv-chi2; "
-                             f"found {self.sigma2!r}")
+            raise ModelError(
+                f"bad model: the prior on the shared sigma^2 must be 1/sigma^2 or scaled-inv-chi2; "
+                f"found {self.sigma2!r}"
+            )
         if isinstance(self.sigma2, ScaledInvChi2):
             if self.within != "shared":
-                raise ModelError("bad model: a prior on sigma^2 (sigma2) is for the shared structure only; found "
-                                 f"within='{self.within}' (separate: priors s2 and nu; known: no sigma to give a "
-                                 "prior)")
-            if not all(isinstance(x, (int, float)) and math.isfinite(x) and x > 0
-                       for x in (self.sigma2.dof, self.sigma2.scale2)):
-                raise ModelError("bad model: the scaled-inv-chi2 prior on sigma^2 needs dof > 0 and scale2 > 0, "
-                                 f"both finite; found dof={self.sigma2.dof!r}, scale2={self.sigma2.scale2!r}")
+                raise ModelError(
+                    "bad model: a prior on sigma^2 (sigma2) is for the shared structure only; found "
+                    f"within='{self.within}' (separate: priors s2 and nu; known: no sigma to give a "
+                    "prior)"
+                )
+            if not all(
+                isinstance(x, (int, float)) and math.isfinite(x) and x > 0
+                for x in (self.sigma2.dof, self.sigma2.scale2)
+            ):
+                raise ModelError(
+                    "bad model: the scaled-inv-chi2 prior on sigma^2 needs dof > 0 and scale2 > 0, "
+                    f"both finite; found dof={self.sigma2.dof!r}, scale2={self.sigma2.scale2!r}"
+                )
         if isinstance(self.nu, NuFixed) and not (math.isfinite(self.nu.value) and self.nu.value > 0):
             raise ModelError(f"bad model: nu must be a positive number; found {self.nu.value}")
         if isinstance(self.nu, NuGrid):
@@ -419,17 +454,22 @@ class Model:
             if self.nu.weights is not None:
                 w = np.asarray(self.nu.weights, dtype=float)
                 if w.shape != vals.shape or np.any(w < 0) or not np.isfinite(w).all() or w.sum() <= 0:
-                    raise ModelError("bad model: the nu grid weights must be one non-negative number per grid point, "
-                                     f"not all zero; found {self.nu.weights}")
+                    raise ModelError(
+                        "bad model: the nu grid weights must be one non-negative number per grid point, "
+                        f"not all zero; found {self.nu.weights}"
+                    )
 
     def priors(self) -> dict[str, str]:
         """Plain statements of every prior in force, for summaries and reports."""
         out = {"between": self.between.describe(), "mu": self.mu.describe(), "tau": self.tau.describe()}
         for x in self.predictors:
             prior = (x.prior or self.effects).describe()
-            what = (f"categorical '{x.column}', contrasts against the reference level "
-                    + (f"'{x.reference}'" if x.reference is not None else "with the most groups")
-                    if isinstance(x, Category) else f"numeric '{x.column}', centred at its mean over the groups")
+            what = (
+                f"categorical '{x.column}', contrasts against the reference level "
+                + (f"'{x.reference}'" if x.reference is not None else "with the most groups")
+                if isinstance(x, Category)
+                else f"numeric '{x.column}', centred at its mean over the groups"
+            )
             out[f"effects of {x.column}"] = f"{prior} ({what})"
         if self.within == "separate":
             out["s2"] = self.s2.describe()
@@ -455,9 +495,16 @@ class Model:
                     d["grid"] = ["inf" if math.isinf(g) else g for g in d["grid"]]
             return d
 
-        out = {"within": self.within, "between": enc_between(self.between), "mu": enc(self.mu), "tau": enc(self.tau),
-               "s2": enc(self.s2), "nu": enc(self.nu)}
+        out = {
+            "within": self.within,
+            "between": enc_between(self.between),
+            "mu": enc(self.mu),
+            "tau": enc(self.tau),
+            "s2": enc(self.s2),
+            "nu": enc(self.nu),
+        }
         if self.predictors:  # written only when there are predictors: earlier records stay as they were
+
             def enc_pred(x):
                 d = {"kind": x.kind, "column": x.column}
                 if x.kind == "category":
@@ -473,10 +520,24 @@ class Model:
         return out
 
     @staticmethod
-    def from_dict(d: dict) -> "Model":
+    def from_dict(d: dict) -> Model:
         """The inverse of to_dict. A record without 'between' (written before heavy tails existed) was a normal fit."""
-        kinds = {c.__name__: c for c in (Flat, Normal, HalfNormal, HalfCauchy, Reciprocal, Gamma, NuFixed, NuGrid,
-                                         NormalBetween, HeavyBetween, ScaledInvChi2)}
+        kinds = {
+            c.__name__: c
+            for c in (
+                Flat,
+                Normal,
+                HalfNormal,
+                HalfCauchy,
+                Reciprocal,
+                Gamma,
+                NuFixed,
+                NuGrid,
+                NormalBetween,
+                HeavyBetween,
+                ScaledInvChi2,
+            )
+        }
 
         def num(v):
             return math.inf if v == "inf" else v
@@ -495,8 +556,17 @@ class Model:
         preds = tuple(_decode_predictor(x) for x in d.get("predictors", ()))
         effects = dec(d["effects"]) if "effects" in d else Flat()
         sigma2 = dec(d["sigma2"]) if "sigma2" in d else Reciprocal()
-        return Model(d["within"], dec(d["mu"]), dec(d["tau"]), dec(d["s2"]), dec(d["nu"]), between=between,
-                     predictors=preds, effects=effects, sigma2=sigma2)
+        return Model(
+            d["within"],
+            dec(d["mu"]),
+            dec(d["tau"]),
+            dec(d["s2"]),
+            dec(d["nu"]),
+            between=between,
+            predictors=preds,
+            effects=effects,
+            sigma2=sigma2,
+        )
 
 
 # ---------------------------------------------------------------------------------------------
@@ -545,8 +615,16 @@ class Design:
         idx = np.asarray(idx, dtype=np.int64)
         cats = tuple(dict(c, index=c["index"][idx]) for c in self.categories)
         nums = tuple(dict(c, values=c["values"][idx]) for c in self.numerics)
-        return Design(np.ascontiguousarray(self.X[idx]), self.coefficients, self.to_user, cats, nums, self.level_names,
-                      self.level_of[idx] if self.level_of.size else self.level_of, self.level_x)
+        return Design(
+            np.ascontiguousarray(self.X[idx]),
+            self.coefficients,
+            self.to_user,
+            cats,
+            nums,
+            self.level_names,
+            self.level_of[idx] if self.level_of.size else self.level_of,
+            self.level_x,
+        )
 
 
 @dataclass(frozen=True, eq=False)
@@ -559,7 +637,7 @@ class Problem:
     stats: GroupStats
     center: float
     scale: float
-    data: "kernel.Data"
+    data: kernel.Data
     design: Design | None = None
 
     @property
@@ -599,7 +677,7 @@ class Problem:
     def heavy(self) -> bool:
         return self.data.between == 1
 
-    def subset(self, idx) -> "Problem":
+    def subset(self, idx) -> Problem:
         """The same problem restricted to the groups at positions `idx` (the same centre, scale and priors):
         what the answers of a subset of groups (summary mode's kept groups) are computed against."""
         from . import kernel
@@ -609,8 +687,14 @@ class Problem:
         n = np.ascontiguousarray(d.n[idx])
         table, layout = kernel.prepare(n, d.nu_grid)
         design = None if self.design is None else self.design.subset(idx)
-        data = d._replace(n=n, ybar=np.ascontiguousarray(d.ybar[idx]), m2=np.ascontiguousarray(d.m2[idx]),
-                          v_known=np.ascontiguousarray(d.v_known[idx]), nu_table=table, layout=layout)
+        data = d._replace(
+            n=n,
+            ybar=np.ascontiguousarray(d.ybar[idx]),
+            m2=np.ascontiguousarray(d.m2[idx]),
+            v_known=np.ascontiguousarray(d.v_known[idx]),
+            nu_table=table,
+            layout=layout,
+        )
         if design is not None:
             data = data._replace(X=design.X, XT=np.ascontiguousarray(design.X.T))
         return Problem(self.model, self.stats.subset(idx), self.center, self.scale, data, design)
@@ -626,9 +710,11 @@ def _check_statistics(stats: GroupStats):
     if len(set(stats.labels)) != stats.J or not all(isinstance(lab, str) for lab in stats.labels):
         _refuse("bad model: the group labels must be distinct strings")
     check_unicode_twins(stats.labels, stats.source)  # every path to the sampler passes here
-    checks: list[tuple[str, Any, Any, str]] = [("n", stats.n, stats.n > 0 if stats.kind == "raw" else stats.n >= 0, "a size above 0"),
-              ("mean", stats.mean + stats.mean_lo, None, "a finite mean"),
-              ("m2", stats.m2, stats.m2 >= 0, "a sum of squared deviations >= 0")]
+    checks: list[tuple[str, Any, Any, str]] = [
+        ("n", stats.n, stats.n > 0 if stats.kind == "raw" else stats.n >= 0, "a size above 0"),
+        ("mean", stats.mean + stats.mean_lo, None, "a finite mean"),
+        ("m2", stats.m2, stats.m2 >= 0, "a sum of squared deviations >= 0"),
+    ]
     if stats.kind == "known":
         checks.append(("se", _se(stats), _se(stats) > 0, "a standard error above 0"))
     for name, arr, ok, what in checks:
@@ -646,26 +732,36 @@ def _check_identifiable(stats: GroupStats, model: Model):
         _refuse("bad model: estimates need a standard error per group")
     _check_statistics(stats)
     if model.within == "known" and stats.kind != "known":
-        _refuse("bad model: the 'known' structure needs one estimate and one standard error per group; "
-                "these data are measurements: use --within separate or shared")
+        _refuse(
+            "bad model: the 'known' structure needs one estimate and one standard error per group; "
+            "these data are measurements: use --within separate or shared"
+        )
     if model.within != "known" and stats.kind == "known":
-        _refuse(f"bad model: estimates with standard errors can only be fitted with the 'known' structure; found '{model.within}'")
+        _refuse(
+            f"bad model: estimates with standard errors can only be fitted with the 'known' structure; found '{model.within}'"
+        )
     if isinstance(model.tau, Flat) and J < 3:
-        _refuse(f"bad model: a flat prior on tau gives an improper posterior with fewer than 3 groups (found {J}); "
-                "use a proper prior instead, for example a half-Cauchy or half-normal with a scale near the spread "
-                "you expect between groups (--tau half-cauchy:SCALE or --tau half-normal:SCALE)")
+        _refuse(
+            f"bad model: a flat prior on tau gives an improper posterior with fewer than 3 groups (found {J}); "
+            "use a proper prior instead, for example a half-Cauchy or half-normal with a scale near the spread "
+            "you expect between groups (--tau half-cauchy:SCALE or --tau half-normal:SCALE)"
+        )
     if model.within == "shared":
         df = stats.N - J
         if df < 1 or float(np.sum(stats.m2)) <= 0.0:
-            _refuse("bad model: a shared within-group variance needs replication (some group with two or more "
-                    f"measurements that differ); found {stats.N} measurements in {J} groups with "
-                    f"{'no spread' if df >= 1 else 'one measurement each'}. Supply replicated measurements, or give "
-                    "each group's standard error and use --within known")
+            _refuse(
+                "bad model: a shared within-group variance needs replication (some group with two or more "
+                f"measurements that differ); found {stats.N} measurements in {J} groups with "
+                f"{'no spread' if df >= 1 else 'one measurement each'}. Supply replicated measurements, or give "
+                "each group's standard error and use --within known"
+            )
     if model.within == "separate" and isinstance(model.s2, Reciprocal):
         if not np.any((stats.n >= 2) & (stats.m2 > 0)):
-            _refuse("bad model: separate within-group variances with p(s^2) ∝ 1/s^2 need at least one group with two "
-                    "or more measurements that differ; found none. Supply replicated measurements, put a proper "
-                    "gamma prior on s^2 (--s2 gamma:SHAPE:RATE), or use --within known with standard errors")
+            _refuse(
+                "bad model: separate within-group variances with p(s^2) ∝ 1/s^2 need at least one group with two "
+                "or more measurements that differ; found none. Supply replicated measurements, put a proper "
+                "gamma prior on s^2 (--s2 gamma:SHAPE:RATE), or use --within known with standard errors"
+            )
 
 
 def build(stats: GroupStats, model: Model | None = None) -> Problem:
@@ -706,9 +802,11 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
         s2_shape = 0.5 * model.sigma2.dof
         s2_rate = 0.5 * model.sigma2.dof * model.sigma2.scale2 / (scale * scale)
         if not (math.isfinite(s2_rate) and s2_rate > 0):
-            _refuse(f"bad model: the prior on sigma^2, {model.sigma2.describe()}, is out of range for these data (its "
-                    f"scale is {model.sigma2.scale2:g} against a data spread near {scale:g}); give scale2 near the "
-                    "variance you expect within a group")
+            _refuse(
+                f"bad model: the prior on sigma^2, {model.sigma2.describe()}, is out of range for these data (its "
+                f"scale is {model.sigma2.scale2:g} against a data spread near {scale:g}); give scale2 near the "
+                "variance you expect within a group"
+            )
     if isinstance(model.nu, NuFixed):
         grid, logp = np.array([model.nu.value], dtype=float), np.zeros(1)
     else:
@@ -724,13 +822,28 @@ def build(stats: GroupStats, model: Model | None = None) -> Problem:
     else:
         df_grid, df_logprior, between = np.array([math.inf]), np.zeros(1), kernel.BETWEEN_NORMAL
     data = kernel.Data(
-        within=int(WITHIN_CODE[model.within]), n=np.ascontiguousarray(n), ybar=np.ascontiguousarray(ybar, dtype=np.float64),
-        m2=np.ascontiguousarray(m2, dtype=np.float64), v_known=np.ascontiguousarray(v_known, dtype=np.float64),
-        mu_kind=int(mu_kind), mu_loc=float(mu_loc), mu_scale=float(mu_scale), tau_kind=int(tau_kind),
-        tau_scale=float(tau_scale), s2_shape=float(s2_shape), s2_rate=float(s2_rate), nu_grid=grid,
-        nu_logprior=np.asarray(logp, dtype=np.float64), nu_table=table, layout=layout, between=int(between),
-        df_grid=df_grid, df_logprior=df_logprior, df_const=kernel.t_constants(df_grid),
-        df_logq=kernel.t_quartile_logs(df_grid))
+        within=int(WITHIN_CODE[model.within]),
+        n=np.ascontiguousarray(n),
+        ybar=np.ascontiguousarray(ybar, dtype=np.float64),
+        m2=np.ascontiguousarray(m2, dtype=np.float64),
+        v_known=np.ascontiguousarray(v_known, dtype=np.float64),
+        mu_kind=int(mu_kind),
+        mu_loc=float(mu_loc),
+        mu_scale=float(mu_scale),
+        tau_kind=int(tau_kind),
+        tau_scale=float(tau_scale),
+        s2_shape=float(s2_shape),
+        s2_rate=float(s2_rate),
+        nu_grid=grid,
+        nu_logprior=np.asarray(logp, dtype=np.float64),
+        nu_table=table,
+        layout=layout,
+        between=int(between),
+        df_grid=df_grid,
+        df_logprior=df_logprior,
+        df_const=kernel.t_constants(df_grid),
+        df_logq=kernel.t_quartile_logs(df_grid),
+    )
     if design is not None:
         loc, prec = _effect_priors(model, design)
         data = data._replace(X=design.X, XT=np.ascontiguousarray(design.X.T), beta_loc=loc, beta_prec=prec)
@@ -755,9 +868,11 @@ def _design(stats: GroupStats, model: Model, scale: float) -> Design:
     for x in model.predictors:
         if x.column not in have:
             read = ", ".join(f"'{c}'" for c in have) or "none were read"
-            _refuse(f"bad model: the predictor '{x.column}' is not among the data's group-level columns ({read}); "
-                    "read it with the statistics (--category or --numeric on the command line; group_columns=[...] "
-                    "in pooling.read_table and the other readers)")
+            _refuse(
+                f"bad model: the predictor '{x.column}' is not among the data's group-level columns ({read}); "
+                "read it with the statistics (--category or --numeric on the command line; group_columns=[...] "
+                "in pooling.read_table and the other readers)"
+            )
         values = have[x.column]
         if isinstance(x, Category):
             counts: dict[str, int] = {}
@@ -767,29 +882,52 @@ def _design(stats: GroupStats, model: Model, scale: float) -> Design:
             if x.levels is not None:
                 empty = [lv for lv in x.levels if lv not in counts]
                 if empty:
-                    _refuse(f"bad model: the level {_show(empty[0])} of '{x.column}' has no groups (the levels found "
-                            f"are {_levels_text(found)}); a level without groups has no effect to estimate: drop it "
-                            "from the stated levels")
+                    _refuse(
+                        f"bad model: the level {_show(empty[0])} of '{x.column}' has no groups (the levels found "
+                        f"are {_levels_text(found)}); a level without groups has no effect to estimate: drop it "
+                        "from the stated levels"
+                    )
                 extra = [lv for lv in found if lv not in x.levels]
                 if extra:
-                    _refuse(f"bad model: groups hold the level {_show(extra[0])} of '{x.column}', which is not among "
-                            f"the stated levels {_levels_text(x.levels)}; state every level, or none")
+                    _refuse(
+                        f"bad model: groups hold the level {_show(extra[0])} of '{x.column}', which is not among "
+                        f"the stated levels {_levels_text(x.levels)}; state every level, or none"
+                    )
             if x.reference is not None and x.reference not in counts:
-                _refuse(f"bad model: the reference level {_show(x.reference)} of '{x.column}' has no groups (the "
-                        f"levels found are {_levels_text(found)}); choose one of those")
+                _refuse(
+                    f"bad model: the reference level {_show(x.reference)} of '{x.column}' has no groups (the "
+                    f"levels found are {_levels_text(found)}); choose one of those"
+                )
             if len(found) < 2:
-                _refuse(f"bad model: the categorical predictor '{x.column}' has the one level {_show(found[0])} in "
-                        "every group, so it cannot explain why groups differ; drop it")
+                _refuse(
+                    f"bad model: the categorical predictor '{x.column}' has the one level {_show(found[0])} in "
+                    "every group, so it cannot explain why groups differ; drop it"
+                )
             ref = x.reference if x.reference is not None else max(found, key=lambda lv: (counts[lv], -found.index(lv)))
             order = [ref] + [lv for lv in found if lv != ref]
             index = np.array([order.index(v) for v in values], dtype=np.int64)
             for k, lv in enumerate(order[1:], start=1):
                 cols.append((index == k).astype(np.float64))
-                coefs.append({"name": f"{x.column}: {lv} vs {ref}", "column": x.column, "kind": "category",
-                              "level": lv, "reference": ref, "groups": counts[lv]})
+                coefs.append(
+                    {
+                        "name": f"{x.column}: {lv} vs {ref}",
+                        "column": x.column,
+                        "kind": "category",
+                        "level": lv,
+                        "reference": ref,
+                        "groups": counts[lv],
+                    }
+                )
                 to_user.append(scale)
-            cats.append({"column": x.column, "levels": tuple(order), "reference": ref, "index": index,
-                         "groups": tuple(counts[lv] for lv in order)})
+            cats.append(
+                {
+                    "column": x.column,
+                    "levels": tuple(order),
+                    "reference": ref,
+                    "index": index,
+                    "groups": tuple(counts[lv] for lv in order),
+                }
+            )
         else:
             nv = np.empty(J)
             for j, v in enumerate(values):
@@ -798,18 +936,23 @@ def _design(stats: GroupStats, model: Model, scale: float) -> Design:
                 except ValueError:
                     nv[j] = np.nan
                 if not math.isfinite(nv[j]):
-                    _refuse(f"bad model: the numeric predictor '{x.column}' has {_show(v)} for group "
-                            f"{_show(stats.labels[j])}; expected a finite number (make it a categorical predictor if "
-                            "its values are names)")
+                    _refuse(
+                        f"bad model: the numeric predictor '{x.column}' has {_show(v)} for group "
+                        f"{_show(stats.labels[j])}; expected a finite number (make it a categorical predictor if "
+                        "its values are names)"
+                    )
             centre = float(np.mean(nv))
             spread = float(np.sqrt(np.mean((nv - centre) ** 2)))
             if not spread > 1e-12 * max(1.0, abs(centre)):
-                _refuse(f"bad model: the numeric predictor '{x.column}' is {nv[0]:g} in every group, so it cannot "
-                        "explain why groups differ (it cannot be told apart from mu); drop it")
+                _refuse(
+                    f"bad model: the numeric predictor '{x.column}' is {nv[0]:g} in every group, so it cannot "
+                    "explain why groups differ (it cannot be told apart from mu); drop it"
+                )
             unit_scale = 2.0 ** round(math.log2(spread))
             cols.append((nv - centre) / unit_scale)
-            coefs.append({"name": x.column, "column": x.column, "kind": "numeric", "centre": centre,
-                          "unit_scale": unit_scale})
+            coefs.append(
+                {"name": x.column, "column": x.column, "kind": "numeric", "centre": centre, "unit_scale": unit_scale}
+            )
             to_user.append(scale / unit_scale)
             nums.append({"column": x.column, "centre": centre, "unit_scale": unit_scale, "values": nv})
     X = np.ascontiguousarray(np.column_stack(cols), dtype=np.float64)
@@ -843,19 +986,25 @@ def _check_design(X: np.ndarray, coefs: list[dict], stats: GroupStats, model: Mo
     for k in range(1, p + 1):
         sv = np.linalg.svd(Z[:, : k + 1], compute_uv=False)
         if sv[-1] <= 1e-9 * sv[0]:
-            _refuse(f"bad model: the predictor column '{coefs[k - 1]['name']}' cannot be told apart from mu and the "
-                    "predictors before it in these groups (two categorical columns that split the groups the same "
-                    "way, or a numeric column that follows a categorical one); drop one of them")
+            _refuse(
+                f"bad model: the predictor column '{coefs[k - 1]['name']}' cannot be told apart from mu and the "
+                "predictors before it in these groups (two categorical columns that split the groups the same "
+                "way, or a numeric column that follows a categorical one); drop one of them"
+            )
     flat = 1 + sum(1 for prior in _prior_of_each(model, coefs) if isinstance(prior, Flat))
     need = flat + (2 if isinstance(model.tau, Flat) else 1)
     if J < need:
-        tau_txt = ("a flat prior on tau needs at least 2 groups beyond the flat coefficients"
-                   if isinstance(model.tau, Flat) else
-                   "the between-group spread needs at least 1 group beyond the flat coefficients")
-        _refuse(f"bad model: {flat} coefficients with flat priors (mu and {flat - 1} effects) are too many for {J} "
-                f"groups: {tau_txt}. Use fewer predictors or levels"
-                + (", a proper prior on tau (--tau half-normal:SCALE)" if isinstance(model.tau, Flat) else "")
-                + ", or a normal prior on the effects (--effects normal:SCALE)")
+        tau_txt = (
+            "a flat prior on tau needs at least 2 groups beyond the flat coefficients"
+            if isinstance(model.tau, Flat)
+            else "the between-group spread needs at least 1 group beyond the flat coefficients"
+        )
+        _refuse(
+            f"bad model: {flat} coefficients with flat priors (mu and {flat - 1} effects) are too many for {J} "
+            f"groups: {tau_txt}. Use fewer predictors or levels"
+            + (", a proper prior on tau (--tau half-normal:SCALE)" if isinstance(model.tau, Flat) else "")
+            + ", or a normal prior on the effects (--effects normal:SCALE)"
+        )
 
 
 def _prior_of_each(model: Model, coefs: list[dict]) -> list:

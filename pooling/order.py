@@ -19,11 +19,13 @@ group's draws) and ranks want rows (one draw's groups). The building blocks, eac
   all values equal, or whose values crowd into few buckets (the insertion sort's moves passing 16 J) is
   handed back, to be ranked by numpy's stable argsort. Either way the ranks are those defined above.
 """
+
 from __future__ import annotations
-from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import numpy as np
 from numba import njit
+
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 _TILE = 16  # rows of the source read together by `gather`
 _MOVES_PER_VALUE = 16  # insertion-sort moves per value before `rank_rows` hands a draw back

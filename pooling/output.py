@@ -6,6 +6,7 @@ complete folder or no folder. An existing folder is replaced only when asked, an
 run folder this program wrote: each holds a small marker file, `.pooling-run` (check_target,
 clean_leftovers).
 """
+
 from __future__ import annotations
 
 import errno
@@ -70,8 +71,16 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
         h[f"high_{L}"] = h.pop("high")
         hyper[name] = h
     lab = {k: v for k, v in res.lab.items() if k != "interval_excludes_0"}
-    for key in ("consensus", "between_sd", "repeatability_sd", "reproducibility_sd", "icc", "repeatability_limit",
-                "reproducibility_limit", "s"):
+    for key in (
+        "consensus",
+        "between_sd",
+        "repeatability_sd",
+        "reproducibility_sd",
+        "icc",
+        "repeatability_limit",
+        "reproducibility_limit",
+        "s",
+    ):
         v = lab.get(key)
         if isinstance(v, dict):
             v = dict(v)
@@ -86,20 +95,32 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
             checks["spread_of_means"] = {"observed": ch["spread"]["observed"], "p_value": ch["spread"]["p_value"]}
         if "extreme" in ch:
             ex = ch["extreme"]
-            checks["most_extreme_group"] = {"p_value": ex["p_value"], "observed_median": ex["observed_median"],
-                                            "group": res.labels[ex["group"]], "group_share": ex["group_share"]}
+            checks["most_extreme_group"] = {
+                "p_value": ex["p_value"],
+                "observed_median": ex["observed_median"],
+                "group": res.labels[ex["group"]],
+                "group_share": ex["group_share"],
+            }
         if "sd" in ch:
             sd = ch["sd"]
-            checks["within_sd"] = {"groups_checked": int(len(sd["groups"])), "outside_interval": sd["outside"],
-                                   "extreme_p": sd["extreme"], "level": sd["level"]}
+            checks["within_sd"] = {
+                "groups_checked": int(len(sd["groups"])),
+                "outside_interval": sd["outside"],
+                "extreme_p": sd["extreme"],
+                "level": sd["level"],
+            }
     out = {
         "format": SUMMARY_FORMAT,
         "pooling_version": __version__,
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "command": command,
         "mode": res.mode,
-        "model": {"within": p.model.within, "between": p.model.between.name, "priors": p.model.priors(),
-                  "spec": p.model.to_dict()},
+        "model": {
+            "within": p.model.within,
+            "between": p.model.between.name,
+            "priors": p.model.priors(),
+            "spec": p.model.to_dict(),
+        },
         "data": res.data,
         "run": res.run,
         "report_options": res.options.to_dict(),
@@ -163,7 +184,9 @@ def dumps_readable(x, level: int = 0) -> str:
     a list of objects or lists has one element per line, everything else is written on one line."""
     pad, inner = "  " * level, "  " * (level + 1)
     if isinstance(x, dict) and x and level < 4:
-        items = [f"{inner}{json.dumps(str(k), ensure_ascii=False)}: {dumps_readable(v, level + 1)}" for k, v in x.items()]
+        items = [
+            f"{inner}{json.dumps(str(k), ensure_ascii=False)}: {dumps_readable(v, level + 1)}" for k, v in x.items()
+        ]
         return "{\n" + ",\n".join(items) + "\n" + pad + "}"
     if isinstance(x, list) and x and all(isinstance(v, (dict, list)) for v in x):
         return "[\n" + ",\n".join(inner + _flat(v) for v in x) + "\n" + pad + "]"
@@ -227,8 +250,14 @@ def _locked_marker(folder: Path, info: dict) -> int:
         if fcntl is not None:
             # blocking: a cleaner that opened the still-empty file first finds no marker, lets go, and we go on
             fcntl.flock(fd, fcntl.LOCK_EX)
-        body = {"written_by": "pooling", "format": MARKER_FORMAT, "pooling_version": __version__, "pid": os.getpid(),
-                "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()), **info}
+        body = {
+            "written_by": "pooling",
+            "format": MARKER_FORMAT,
+            "pooling_version": __version__,
+            "pid": os.getpid(),
+            "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            **info,
+        }
         os.write(fd, (json.dumps(body) + "\n").encode("utf-8"))
     except BaseException:
         os.close(fd)
@@ -283,8 +312,14 @@ def clean_leftovers(parent: Path) -> list[str]:
         try:
             info = read_marker(folder) or {}
             target = info.get("target")
-            if (info.get("kind") == "aside" and isinstance(target, str) and "/" not in target and target
-                    and not _lexists(folder.parent / target) and read_marker(folder / "run") is not None):
+            if (
+                info.get("kind") == "aside"
+                and isinstance(target, str)
+                and "/" not in target
+                and target
+                and not _lexists(folder.parent / target)
+                and read_marker(folder / "run") is not None
+            ):
                 os.rename(folder / "run", folder.parent / target)
                 done.append(f"put back '{target}'")
             shutil.rmtree(folder, ignore_errors=True)
@@ -316,23 +351,29 @@ def check_target(out: Path, replace: bool, protect=()) -> Path:
         size = len(os.fsencode(part))
         if size > where:
             shown = part if len(part) <= 40 else part[:39] + "…"
-            raise OutputError(f"cannot write the run folder: the name '{shown}' is {size} bytes long, beyond the "
-                              f"{where} that the file system allows; choose a shorter --out")
+            raise OutputError(
+                f"cannot write the run folder: the name '{shown}' is {size} bytes long, beyond the "
+                f"{where} that the file system allows; choose a shorter --out"
+            )
     try:
         real = full.resolve()
         cwd = Path.cwd().resolve()
     except RuntimeError:  # Python 3.11 and 3.12 raise this for a loop of symbolic links
-        raise OutputError(f"cannot write the run folder '{out}': it is (or passes through) a symbolic link that "
-                          "loops") from None
+        raise OutputError(
+            f"cannot write the run folder '{out}': it is (or passes through) a symbolic link that loops"
+        ) from None
     except OSError as exc:
         if exc.errno == errno.ELOOP:
-            raise OutputError(f"cannot write the run folder '{out}': it is (or passes through) a symbolic link "
-                              "that loops") from None
+            raise OutputError(
+                f"cannot write the run folder '{out}': it is (or passes through) a symbolic link that loops"
+            ) from None
         raise OutputError(f"cannot write the run folder '{out}': {exc.strerror or exc}") from None
     if _inside(cwd, real):
         what = "is the current folder" if cwd == real else f"holds the current folder '{cwd}'"
-        raise InputError(f"bad option --out: '{out}' {what}; a run writes a folder of its own (and --replace would "
-                         "empty it): name a new folder, for example --out runs/NAME")
+        raise InputError(
+            f"bad option --out: '{out}' {what}; a run writes a folder of its own (and --replace would "
+            "empty it): name a new folder, for example --out runs/NAME"
+        )
     for what, path in protect:
         try:
             p = Path(path).resolve()
@@ -340,19 +381,24 @@ def check_target(out: Path, replace: bool, protect=()) -> Path:
             continue
         if _inside(p, real):
             how = "is" if p == real else "holds"
-            raise InputError(f"bad option --out: '{out}' {how} {what} '{path}'; a run writes a folder of its own (and "
-                             "--replace would remove what is in it): name a new folder")
+            raise InputError(
+                f"bad option --out: '{out}' {how} {what} '{path}'; a run writes a folder of its own (and "
+                "--replace would remove what is in it): name a new folder"
+            )
         if p.is_dir() and _inside(real, p):  # its groups.csv would sit among the data of a later run
-            raise InputError(f"bad option --out: '{out}' is inside {what} '{path}', whose files are all read as data; "
-                             "write the run folder outside it, for example --out runs/NAME")
+            raise InputError(
+                f"bad option --out: '{out}' is inside {what} '{path}', whose files are all read as data; "
+                "write the run folder outside it, for example --out runs/NAME"
+            )
     if out.is_symlink():
         raise OutputError(f"cannot write the run folder '{out}': it is a symbolic link; give the folder's own path")
     if _lexists(out):
         if not out.is_dir():
             raise OutputError(f"cannot write the run folder '{out}': a file of that name is in the way")
         if not replace:
-            raise OutputError(f"cannot write the run folder '{out}': it exists already; choose another --out or pass "
-                              "--replace")
+            raise OutputError(
+                f"cannot write the run folder '{out}': it exists already; choose another --out or pass --replace"
+            )
         _check_replaceable(out)
     parent = full.parent
     blocker = parent
@@ -371,8 +417,7 @@ def check_target(out: Path, replace: bool, protect=()) -> Path:
 
 
 #: the files a run folder of pooling held before run folders were marked (with a refit's extras)
-_UNMARKED_RUN = ("summary.json", "draws.nc", "groups.csv", "report.html", "changes.json", "changes.csv",
-                 "history.html")
+_UNMARKED_RUN = ("summary.json", "draws.nc", "groups.csv", "report.html", "changes.json", "changes.csv", "history.html")
 
 
 def _unmarked_run(out: Path) -> str | None:
@@ -396,13 +441,17 @@ def _check_replaceable(out: Path) -> None:
         return
     version = _unmarked_run(out) if info is None else None
     if version is not None:
-        raise OutputError(f"cannot replace '{out}': it has no '{MARKER}' marker but holds only a run's files "
-                          f"(summary.json of pooling {version}, draws.nc, ...): a run folder written before run folders "
-                          "were marked. pooling replaces only marked folders: if it holds nothing you need, remove it "
-                          f"(rm -r -- {shlex.quote(str(out))}) and run again, or choose another --out")
-    raise OutputError(f"cannot replace '{out}': it is not a run folder written by pooling (it has no '{MARKER}' "
-                      "marker, nor only the files of a run from before markers: summary.json, draws.nc, groups.csv, "
-                      "report.html); remove it yourself, or choose another --out")
+        raise OutputError(
+            f"cannot replace '{out}': it has no '{MARKER}' marker but holds only a run's files "
+            f"(summary.json of pooling {version}, draws.nc, ...): a run folder written before run folders "
+            "were marked. pooling replaces only marked folders: if it holds nothing you need, remove it "
+            f"(rm -r -- {shlex.quote(str(out))}) and run again, or choose another --out"
+        )
+    raise OutputError(
+        f"cannot replace '{out}': it is not a run folder written by pooling (it has no '{MARKER}' "
+        "marker, nor only the files of a run from before markers: summary.json, draws.nc, groups.csv, "
+        "report.html); remove it yourself, or choose another --out"
+    )
 
 
 def _fsync_folder(folder: Path) -> None:
@@ -470,7 +519,9 @@ def atomic_folder(out: Path, replace: bool, fill, protect=()) -> Path:
         shutil.rmtree(tmp, ignore_errors=True)
         if exc.errno == errno.ENOSPC:
             why = f" ({exc.strerror})" if exc.strerror and "No space" not in exc.strerror else ""
-            raise OutputError(f"cannot write the run folder '{out}': the disk is full{why}; nothing was written") from None
+            raise OutputError(
+                f"cannot write the run folder '{out}': the disk is full{why}; nothing was written"
+            ) from None
         raise OutputError(f"cannot write the run folder '{out}': {exc.strerror or exc}; nothing was written") from None
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
@@ -500,12 +551,18 @@ def draws_parts(fit) -> dict:
     out = parts(kept.raw, kept.problem, packed=True)
     post = out["posterior"]
     acc = fit.acc
-    post.add("rank", ("chain", "draw", "group"), acc.ranks,
-             {"meaning": f"rank among all {fit.J} groups, 1 = {fit.options.best} theta"})
+    post.add(
+        "rank",
+        ("chain", "draw", "group"),
+        acc.ranks,
+        {"meaning": f"rank among all {fit.J} groups, 1 = {fit.options.best} theta"},
+    )
     if fit.problem.within_code != 2:
         post.add("within_sd", ("chain", "draw"), acc.within_sd, {"scale_factor": float(fit.problem.scale)})
-    note = {"summary_mode": f"kept groups only: {len(fit.kept_index)} of {fit.J}; every group is in groups.csv",
-            "groups_total": str(fit.J)}
+    note = {
+        "summary_mode": f"kept groups only: {len(fit.kept_index)} of {fit.J}; every group is in groups.csv",
+        "groups_total": str(fit.J),
+    }
     for part in out.values():
         part.attrs.update(note)
     out["constant_data"].add("kept_because", ("group",), np.array(acc.setup.kept_reason, dtype=object))
@@ -589,8 +646,9 @@ class _Background:
             raise self.error
 
 
-def write_run(fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None,
-              protect=()) -> Path:
+def write_run(
+    fit, res, out, *, replace: bool = False, command: list[str] | None = None, extra=None, protect=()
+) -> Path:
     """Write the run folder as one atomic folder: draws.nc (from the fit), summary.json, groups.csv and
     report.html (from its results), and whatever `extra(folder)` adds. When `extra` returns a dict (a refit's
     change report), report.html opens with it, so extra runs first.

@@ -20,6 +20,7 @@ first use:
 Group labels are the `group` coordinate, kept exactly as they came in. A summary-mode run (pooling.summary)
 is a different object that holds a `Fit` of its kept groups.
 """
+
 from __future__ import annotations
 
 import functools
@@ -66,7 +67,9 @@ class Part:
 
     @property
     def nbytes(self) -> int:
-        return sum(int(v.nbytes) for _, v, _ in self.variables.values()) + sum(int(c.nbytes) for c in self.coords.values())
+        return sum(int(v.nbytes) for _, v, _ in self.variables.values()) + sum(
+            int(c.nbytes) for c in self.coords.values()
+        )
 
 
 def _jsonable_miss(m: dict, labels) -> dict:
@@ -111,7 +114,7 @@ class Fit:
         return user_parts(self.raw, self.problem)
 
     @functools.cached_property
-    def idata(self) -> "az.InferenceData":
+    def idata(self) -> az.InferenceData:
         """The posterior as an arviz InferenceData in the user's units (built on first use; imports arviz)."""
         return idata_from_parts(self.parts)
 
@@ -131,7 +134,10 @@ class Fit:
         """Worst R-hat and ESS per checked variable, the targets, and what still misses."""
         last = self.raw.rounds[-1] if self.raw.rounds else {}
         return {
-            "targets": {"rhat_below": self.raw.settings.targets.rhat_max, "ess_at_least": self.raw.settings.targets.ess_min},
+            "targets": {
+                "rhat_below": self.raw.settings.targets.rhat_max,
+                "ess_at_least": self.raw.settings.targets.ess_min,
+            },
             "met": self.targets_met,
             "worst": last.get("worst", {}),
             "missed": [_jsonable_miss(m, self.labels) for m in self.misses[:50]],
@@ -160,9 +166,14 @@ def hyper_names(problem: Problem) -> list[str]:
 
 
 def _base_attrs(raw: RawDraws, problem: Problem) -> dict:
-    return {"created_by": "pooling", "model": json.dumps(problem.model.to_dict()), "seed": str(raw.seed),
-            "data_fingerprint": problem.stats.fingerprint(), "internal_center": repr(problem.center),
-            "internal_scale": repr(problem.scale)}
+    return {
+        "created_by": "pooling",
+        "model": json.dumps(problem.model.to_dict()),
+        "seed": str(raw.seed),
+        "data_fingerprint": problem.stats.fingerprint(),
+        "internal_center": repr(problem.center),
+        "internal_scale": repr(problem.scale),
+    }
 
 
 def parts(raw: RawDraws, problem: Problem, packed: bool) -> dict[str, Part]:
@@ -204,18 +215,34 @@ def parts(raw: RawDraws, problem: Problem, packed: bool) -> dict[str, Part]:
     elif within == "shared":
         add("sigma", ("chain", "draw"), raw.sigma)
     if raw.df is not None:
-        post.add("df", ("chain", "draw"), raw.df, {"meaning": "degrees of freedom of the between-group Student-t; "
-                                                             "inf is the normal limit"})
-        post.add("lambda", ("chain", "draw", "group"), raw.lam,
-                 {"meaning": "latent precision of each group in the between-group distribution: "
-                             "theta_j ~ N(mu, tau^2 / lambda_j)"})
+        post.add(
+            "df",
+            ("chain", "draw"),
+            raw.df,
+            {"meaning": "degrees of freedom of the between-group Student-t; inf is the normal limit"},
+        )
+        post.add(
+            "lambda",
+            ("chain", "draw", "group"),
+            raw.lam,
+            {
+                "meaning": "latent precision of each group in the between-group distribution: "
+                "theta_j ~ N(mu, tau^2 / lambda_j)"
+            },
+        )
     if raw.beta is not None:
         # each coefficient has its own unit (the data's, or the data's per unit of a numeric column), and CF allows
         # one scale_factor per variable, so beta is written in the user's units (differences: no offset to lose)
         post.coords["coefficient"] = np.array(_design(problem).names, dtype=object)
-        post.add("beta", ("chain", "draw", "coefficient"), raw.beta * _design(problem).to_user,
-                 {"meaning": "effects of the group-level predictors: each group's centre is mu + x_j' beta (contrasts "
-                             "against the reference level; numeric predictors centred at their mean over the groups)"})
+        post.add(
+            "beta",
+            ("chain", "draw", "coefficient"),
+            raw.beta * _design(problem).to_user,
+            {
+                "meaning": "effects of the group-level predictors: each group's centre is mu + x_j' beta (contrasts "
+                "against the reference level; numeric predictors centred at their mean over the groups)"
+            },
+        )
     sstats = Part({}, {"chain": chain, "draw": draw}, dict(attrs))
     sstats.add("tau_evaluations", ("chain", "draw"), raw.evals)
     const = Part({}, {"group": labels}, dict(attrs))
@@ -233,7 +260,7 @@ def user_parts(raw: RawDraws, problem: Problem) -> dict[str, Part]:
     return parts(raw, problem, packed=False)
 
 
-def idata_from_parts(parts_: dict[str, Part]) -> "az.InferenceData":
+def idata_from_parts(parts_: dict[str, Part]) -> az.InferenceData:
     """An arviz InferenceData holding the same arrays (not copied)."""
     import xarray as xr
 
@@ -255,10 +282,15 @@ def summarize_draws(x: np.ndarray, level: float = 0.95, scale: float = 1.0, cent
     flat = x.reshape(-1)
     lo, med, hi = np.quantile(flat, [(1 - level) / 2, 0.5, (1 + level) / 2])
     return {
-        "mean": float(flat.mean()) * scale + center, "sd": float(flat.std(ddof=1)) * scale,
-        "median": float(med) * scale + center, "low": float(lo) * scale + center, "high": float(hi) * scale + center,
-        "mean_mc_error": float(dg.mean_mc_error(x)) * scale, "rhat": float(dg.split_rhat(x)),
-        "bulk_ess": float(dg.bulk_ess(x)), "tail_ess": float(dg.tail_ess(x)),
+        "mean": float(flat.mean()) * scale + center,
+        "sd": float(flat.std(ddof=1)) * scale,
+        "median": float(med) * scale + center,
+        "low": float(lo) * scale + center,
+        "high": float(hi) * scale + center,
+        "mean_mc_error": float(dg.mean_mc_error(x)) * scale,
+        "rhat": float(dg.split_rhat(x)),
+        "bulk_ess": float(dg.bulk_ess(x)),
+        "tail_ess": float(dg.tail_ess(x)),
     }
 
 

@@ -22,6 +22,7 @@ counts, derived for exact intervals), summary mode's histogram in summary_kernel
 interval there, and its column in `_assemble` below, with its description in COLUMNS. Both modes then
 have it.
 """
+
 from __future__ import annotations
 
 import math
@@ -35,10 +36,19 @@ import pandas as pd
 from . import answers as A
 from . import order as O
 from ._blocks import Scratch, each_block
-from .asked import (PURPOSE_CHECKS, PURPOSE_PREDICTION, ReportOptions, check_k, derived_rng, level_key, level_label,
-                    resolve_groups, split_compare)
+from .asked import (
+    PURPOSE_CHECKS,
+    PURPOSE_PREDICTION,
+    ReportOptions,
+    check_k,
+    derived_rng,
+    level_key,
+    level_label,
+    resolve_groups,
+    split_compare,
+)
 from .errors import InputError
-from .posterior import Fit, SCALED, hyper_names, hyper_summary, summarize_draws
+from .posterior import SCALED, Fit, hyper_names, hyper_summary, summarize_draws
 
 MAX_PAIRWISE = 400
 HEAT_ROWS_MANY = 40  # above HEAT_ALL groups the heat map shows the best 40 over ranks 1..HEAT_ALL
@@ -55,7 +65,7 @@ CHECK_ROWS = 16  # draws per block of the model checks' arithmetic
 
 COLUMNS = {
     "group": "group label, exactly as in the data (in groups.csv, text cells beginning with = + - @, a tab or a "
-             "carriage return carry a leading apostrophe so that spreadsheets do not run them as formulas)",
+    "carriage return carry a leading apostrophe so that spreadsheets do not run them as formulas)",
     "n": "number of measurements in the group (fractional when a store's half-life down-weights old batches)",
     "raw_mean": "the group's own mean (or its given estimate, for the known structure)",
     "raw_sd": "the group's own standard deviation (n - 1 divisor); empty for a single measurement",
@@ -68,45 +78,44 @@ COLUMNS = {
     "sigma_low": "lower end of the {L} credible interval of sigma_j",
     "sigma_high": "upper end of the {L} credible interval of sigma_j",
     "shrink_weight": "posterior mean of the shrinkage weight v_j / (v_j + tau^2 / lambda_j), v_j = sigma_j^2 / n_j "
-                     "(se_j^2 when known; lambda_j = 1 for the normal between-group distribution): 0 keeps the "
-                     "group's own mean, 1 replaces it with the pooled mean",
+    "(se_j^2 when known; lambda_j = 1 for the normal between-group distribution): 0 keeps the "
+    "group's own mean, 1 replaces it with the pooled mean",
     "shrink_low": "lower end of the {L} credible interval of the shrinkage weight",
     "shrink_high": "upper end of the {L} credible interval of the shrinkage weight",
     "shrink_realised": "(own mean - posterior mean) / (own mean - posterior mean of mu): the share of the way "
-                       "to the pooled mean the estimate actually moved (0: not at all, 1: all the way); unsteady "
-                       "for own means close to mu",
+    "to the pooled mean the estimate actually moved (0: not at all, 1: all the way); unsteady "
+    "for own means close to mu",
     "p_above": "P(theta_j > threshold)",
     "p_below": "P(theta_j < threshold)",
     "threshold_side": "above or below the threshold when P(above) or P(below) is at least decide_at, else undecided",
     "p_mean_outside": "P(theta_j outside the specification limits): the group's mean, not its single measurements",
     "limits_side": "outside when p_mean_outside is at least decide_at, inside when it is at most 1 - decide_at, "
-                   "else undecided",
+    "else undecided",
     "outside_mean": "predicted fraction of the group's future measurements outside the specification limits "
-                    "(posterior mean of P(y_new outside | theta_j, sigma_j))",
+    "(posterior mean of P(y_new outside | theta_j, sigma_j))",
     "outside_low": "lower end of the {L} credible interval of that fraction",
     "outside_high": "upper end of the {L} credible interval of that fraction",
     "bias_mean": "posterior mean of theta_j - c_j, the bias against the consensus value of the group's own level: "
-                 "c_j = mu, or with group-level predictors c_j = mu + x_j' beta (the consensus_mean column)",
+    "c_j = mu, or with group-level predictors c_j = mu + x_j' beta (the consensus_mean column)",
     "bias_low": "lower end of the {L} credible interval of the bias",
     "bias_high": "upper end of the {L} credible interval of the bias",
     "p_bias_over": "P(|theta_j - mu| > allowed bias)",
-    "bias_side": "over when p_bias_over is at least decide_at, within when it is at most 1 - decide_at, else "
-                 "undecided",
+    "bias_side": "over when p_bias_over is at least decide_at, within when it is at most 1 - decide_at, else undecided",
     "tail_weight": "posterior mean of lambda_j, the group's weight in the heavy-tailed between-group distribution "
-                   "theta_j ~ N(mu, tau^2 / lambda_j): about 1 for an ordinary group; a weight w lets the group's "
-                   "deviation from mu be about 1/sqrt(w) times as wide as tau (0.04: five times)",
+    "theta_j ~ N(mu, tau^2 / lambda_j): about 1 for an ordinary group; a weight w lets the group's "
+    "deviation from mu be about 1/sqrt(w) times as wide as tau (0.04: five times)",
     "p_outlying": "P(lambda_j is below the 5% point of its prior at the drawn df): the probability that the group "
-                  "needs a wider allowance than 95% of groups would get",
+    "needs a wider allowance than 95% of groups would get",
     "outlying": "true when p_outlying is at least 0.5: the group sits outside the between-group distribution of "
-                "the others, more likely than not",
+    "the others, more likely than not",
     "level": "with categorical predictors: the group's level (its value of each categorical predictor, joined "
-             "by ' / ')",
+    "by ' / ')",
     "consensus_mean": "with group-level predictors: posterior mean of c_j = mu + x_j' beta, the consensus value of "
-                      "groups like this one (its level, and its own values of the numeric predictors)",
+    "groups like this one (its level, and its own values of the numeric predictors)",
     "consensus_low": "lower end of the {L} credible interval of c_j",
     "consensus_high": "upper end of the {L} credible interval of c_j",
     "rank_in_level_mean": "with categorical predictors: posterior mean rank among the groups of the same level "
-                          "(1 = best)",
+    "(1 = best)",
     "rank_in_level_low": "lower end of the {L} interval of the rank within the level (whole ranks)",
     "rank_in_level_high": "upper end of the {L} interval of the rank within the level (whole ranks)",
     "p_best_in_level": "probability of being the best group of its level",
@@ -119,21 +128,21 @@ COLUMNS = {
     "z_score": "(own mean - assigned value) / sigma_pt",
     "z_signal": "ISO 13528: none for |z| <= 2, warning for 2 < |z| < 3, action for |z| >= 3",
     "kept": "summary mode: why every draw of this group was kept (named, sample, top candidate); empty when only "
-            "summaries were kept",
+    "summaries were kept",
     "theta_limit_error": "summary mode: largest possible error of theta_low and theta_high (histogram bin width); "
-                         "0 for kept groups",
+    "0 for kept groups",
     "sigma_limit_error": "summary mode: largest possible error of sigma_low and sigma_high; 0 when exact",
     "shrink_limit_error": "summary mode: largest possible error of shrink_low and shrink_high; 0 when exact",
     "outside_limit_error": "summary mode: largest possible error of outside_low and outside_high; 0 for kept groups",
     "bias_limit_error": "summary mode: largest possible error of bias_low and bias_high (above 100,000 groups: "
-                        "theta's bound plus max |mu_s - mean mu|)",
+    "theta's bound plus max |mu_s - mean mu|)",
     "rank_mean_error": "summary mode: largest possible error of rank_mean (half the rank bucket's count - 1, "
-                       "averaged over draws); 0 for kept groups",
+    "averaged over draws); 0 for kept groups",
     "rank_limit_error": "summary mode: largest possible error of rank_low and rank_high, in ranks: the exact "
-                        "rank_low is in [rank_low, rank_low + e], the exact rank_high in [rank_high - e, rank_high]; "
-                        "0 for kept groups",
+    "rank_low is in [rank_low, rank_low + e], the exact rank_high in [rank_high - e, rank_high]; "
+    "0 for kept groups",
     "theta_rhat_classic": "summary mode: classic R-hat of theta_j from the chains' means and variances (not split, "
-                          "not rank-normalised): a screen for all groups",
+    "not rank-normalised): a screen for all groups",
 }
 
 
@@ -144,7 +153,7 @@ def column_base(name: str) -> str:
         return head
     for stem in ("_low_", "_high_"):
         i = name.find(stem)
-        if i > 0 and name[i + len(stem):].replace("_", "").isdigit():
+        if i > 0 and name[i + len(stem) :].replace("_", "").isdigit():
             return name[: i + len(stem) - 1]
     return name
 
@@ -247,8 +256,17 @@ def _stacked(raw) -> Draws:
         sigma = raw.sigma.reshape(S, J)
     lam = raw.lam.reshape(S, J) if raw.lam is not None else np.empty((S, 0))
     beta = raw.beta.reshape(S, -1) if raw.beta is not None else np.empty((S, 0))
-    return Draws(raw.mu.reshape(S), raw.tau.reshape(S), raw.theta.reshape(S, J), sigma, lam,
-                 None if raw.df is None else raw.df.reshape(S), C, D, beta)
+    return Draws(
+        raw.mu.reshape(S),
+        raw.tau.reshape(S),
+        raw.theta.reshape(S, J),
+        sigma,
+        lam,
+        None if raw.df is None else raw.df.reshape(S),
+        C,
+        D,
+        beta,
+    )
 
 
 def _quantiles(x: np.ndarray, probs) -> np.ndarray:
@@ -285,8 +303,17 @@ def rank_draws(x: np.ndarray, highest: bool = True) -> np.ndarray:
     sign = 1.0 if highest else -1.0
 
     def block(s0: int) -> None:
-        O.rank_rows(x, sign, s0, min(S, s0 + RANK_BLOCK), ranks, np.empty(J), np.empty(J, dtype=np.int64),
-                    np.empty(J + 1, dtype=np.int64), bad)
+        O.rank_rows(
+            x,
+            sign,
+            s0,
+            min(S, s0 + RANK_BLOCK),
+            ranks,
+            np.empty(J),
+            np.empty(J, dtype=np.int64),
+            np.empty(J + 1, dtype=np.int64),
+            bad,
+        )
 
     each_block(block, range(0, S, RANK_BLOCK), threaded=S * J >= 1_000_000)
     for s in np.flatnonzero(bad):
@@ -338,7 +365,7 @@ def prob_greater(theta: np.ndarray, idx: np.ndarray) -> np.ndarray:
     m = len(idx)
     out = np.empty((m, m))
     for a in range(m):
-        out[a] = (sub[:, a:a + 1] > sub).mean(axis=0)
+        out[a] = (sub[:, a : a + 1] > sub).mean(axis=0)
     out[np.arange(m), np.arange(m)] = np.nan
     return out
 
@@ -354,9 +381,14 @@ def _merge_chains(run: np.ndarray, D: int) -> dict[str, np.ndarray]:
     S = C * D
     th_mean = run[:, A.R_THETA].mean(axis=0)
     m2 = run[:, A.R_THETA_M2].sum(axis=0) + D * ((run[:, A.R_THETA] - th_mean) ** 2).sum(axis=0)
-    return {"theta_mean": th_mean, "theta_sd": np.sqrt(m2 / max(S - 1, 1)),
-            "sigma_mean": run[:, A.R_SIGMA].mean(axis=0), "shrink_weight": run[:, A.R_SHRINK].mean(axis=0),
-            "outside_mean": run[:, A.R_OUT].mean(axis=0), "tail_weight": run[:, A.R_LAM].mean(axis=0)}
+    return {
+        "theta_mean": th_mean,
+        "theta_sd": np.sqrt(m2 / max(S - 1, 1)),
+        "sigma_mean": run[:, A.R_SIGMA].mean(axis=0),
+        "shrink_weight": run[:, A.R_SHRINK].mean(axis=0),
+        "outside_mean": run[:, A.R_OUT].mean(axis=0),
+        "tail_weight": run[:, A.R_LAM].mean(axis=0),
+    }
 
 
 def _df_cuts(problem, df: np.ndarray | None, S: int) -> np.ndarray:
@@ -407,14 +439,35 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     none = np.empty((0, S))
 
     def buffers():
-        return (np.empty((TABLE_BLOCK, S)), np.empty((TABLE_BLOCK, S)) if separate else none,
-                np.empty((TABLE_BLOCK, S)) if heavy else none, np.empty((TABLE_BLOCK, S)))
+        return (
+            np.empty((TABLE_BLOCK, S)),
+            np.empty((TABLE_BLOCK, S)) if separate else none,
+            np.empty((TABLE_BLOCK, S)) if heavy else none,
+            np.empty((TABLE_BLOCK, S)),
+        )
 
     scratch = Scratch(buffers)
 
     def accumulate(j0: int) -> None:  # wide blocks: accumulate's loop over groups runs at memory speed
-        A.accumulate_stored(d.within, d.n, d.v_known, mu, tau, theta, sig_all, lam_all, cuts, a, D, j0,
-                            min(J, j0 + ACC_BLOCK), run, hits, X, beta)
+        A.accumulate_stored(
+            d.within,
+            d.n,
+            d.v_known,
+            mu,
+            tau,
+            theta,
+            sig_all,
+            lam_all,
+            cuts,
+            a,
+            D,
+            j0,
+            min(J, j0 + ACC_BLOCK),
+            run,
+            hits,
+            X,
+            beta,
+        )
 
     def block(j0: int) -> None:
         j1 = min(J, j0 + TABLE_BLOCK)
@@ -454,14 +507,17 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     return out, {"draws_total": S}
 
 
-def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float,
-                   highest: bool = True) -> dict[str, np.ndarray]:
+def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float, highest: bool = True) -> dict[str, np.ndarray]:
     """Per group, its rank among the groups of its own level in every draw (x: (S, J), larger is better, or
     smaller when not `highest`), and the mean rank, the central rank interval and P(best in the level), as
     rank_summary gives them overall."""
     J = x.shape[1]
-    out = {"rank_in_level_mean": np.empty(J), "rank_in_level_low": np.empty(J), "rank_in_level_high": np.empty(J),
-           "p_best_in_level": np.empty(J)}
+    out = {
+        "rank_in_level_mean": np.empty(J),
+        "rank_in_level_low": np.empty(J),
+        "rank_in_level_high": np.empty(J),
+        "p_best_in_level": np.empty(J),
+    }
     for lv in np.unique(level_of):
         idx = np.flatnonzero(level_of == lv)
         rs = rank_summary(rank_draws(np.ascontiguousarray(x[:, idx]), highest), level, 1)
@@ -497,8 +553,8 @@ def centre_interval(p, raw, level: float) -> tuple[np.ndarray, np.ndarray]:
     lo, hi = np.empty(len(rows)), np.empty(len(rows))
     probs = [(1 - level) / 2, (1 + level) / 2]
     for a in range(0, len(rows), TABLE_BLOCK):
-        c = mu[:, None] + b @ rows[a:a + TABLE_BLOCK].T
-        lo[a:a + TABLE_BLOCK], hi[a:a + TABLE_BLOCK] = _quantiles(c, probs)
+        c = mu[:, None] + b @ rows[a : a + TABLE_BLOCK].T
+        lo[a : a + TABLE_BLOCK], hi[a : a + TABLE_BLOCK] = _quantiles(c, probs)
     return lo[inverse], hi[inverse]
 
 
@@ -587,8 +643,17 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
         errors["bias"] = errors["theta"] + cbound
     out["rank_mean"] = acc.run[:, A.R_RANK].sum(axis=0) / S
     r_lo, r_hi, r_err = np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64)
-    sk.rank_intervals(acc.rhist, acc.wmax, sh.rank_edges, quantile_index(S, probs[0]), quantile_index(S, probs[1]), J,
-                      r_lo, r_hi, r_err)
+    sk.rank_intervals(
+        acc.rhist,
+        acc.wmax,
+        sh.rank_edges,
+        quantile_index(S, probs[0]),
+        quantile_index(S, probs[1]),
+        J,
+        r_lo,
+        r_hi,
+        r_err,
+    )
     out["rank_low"], out["rank_high"] = r_lo.astype(float), r_hi.astype(float)
     out["p_best"] = h[A.H_BEST] / S
     out["p_top_k"] = h[A.H_TOP] / S
@@ -596,8 +661,12 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
     errors["rank_limit"] = r_err.astype(float)
     if acc.lrun is not None and acc.lrun.shape[2]:  # ranks within levels: bucket mid-ranks, an exact P(best)
         nan = np.full(J, np.nan)
-        out["in_level"] = {"rank_in_level_mean": acc.lrun[:, 0].sum(axis=0) / S, "rank_in_level_low": nan,
-                           "rank_in_level_high": nan, "p_best_in_level": acc.lrun[:, 2].sum(axis=0) / S}
+        out["in_level"] = {
+            "rank_in_level_mean": acc.lrun[:, 0].sum(axis=0) / S,
+            "rank_in_level_low": nan,
+            "rank_in_level_high": nan,
+            "p_best_in_level": acc.lrun[:, 2].sum(axis=0) / S,
+        }
         errors["rank_in_level_mean"] = acc.lrun[:, 1].sum(axis=0) / S
     # kept groups: every column from their stored draws, as a full run computes it (error 0)
     kept = sh.kept
@@ -621,12 +690,21 @@ def _summary_group_answers(fit, o: ReportOptions, k: int) -> tuple[dict, dict]:
     rhat = _classic_rhat(acc.run, D)
     finite = rhat[np.isfinite(rhat)]
     figures = {
-        "draws_total": S, "kept_groups": int(len(kept)), "bins": int(sh.bins), "rank_buckets": int(acc.buckets),
-        "grid_half_width_sd": acc.grid["grid_half_width_sd"], "mu_spread_D": D_mu * p.scale,
-        "rank_grid_bins": int(len(sh.rank_edges) - 1), "bias_from_histogram": bool(sh.rowmap[sk.Q_BIAS] >= 0),
-        "classic_rhat": {"max": float(finite.max()) if finite.size else None,
-                         "above_1.01": int(np.sum(finite >= 1.01)), "groups": int(finite.size)},
-        "rank_exact_up_to": RANK_EXACT, "bias_hist_groups": BIAS_HIST_GROUPS,
+        "draws_total": S,
+        "kept_groups": int(len(kept)),
+        "bins": int(sh.bins),
+        "rank_buckets": int(acc.buckets),
+        "grid_half_width_sd": acc.grid["grid_half_width_sd"],
+        "mu_spread_D": D_mu * p.scale,
+        "rank_grid_bins": int(len(sh.rank_edges) - 1),
+        "bias_from_histogram": bool(sh.rowmap[sk.Q_BIAS] >= 0),
+        "classic_rhat": {
+            "max": float(finite.max()) if finite.size else None,
+            "above_1.01": int(np.sum(finite >= 1.01)),
+            "groups": int(finite.size),
+        },
+        "rank_exact_up_to": RANK_EXACT,
+        "bias_hist_groups": BIAS_HIST_GROUPS,
     }
     out["errors"] = errors
     out["classic_rhat"] = rhat
@@ -783,19 +861,29 @@ def tail_summary(problem, raw, table: pd.DataFrame) -> dict | None:
     median = float(grid[min(int(np.searchsorted(cum, 0.5)), len(grid) - 1)])
     flagged = table.loc[table["outlying"], "group"].tolist()
     return {
-        "between": between.name, "fixed_df": between.df, "grid": [float(x) for x in grid],
-        "prior": prior.tolist(), "posterior": post.tolist(),
+        "between": between.name,
+        "fixed_df": between.df,
+        "grid": [float(x) for x in grid],
+        "prior": prior.tolist(),
+        "posterior": post.tolist(),
         "p_normal": float(post[np.isinf(grid)].sum()) if np.isinf(grid).any() else 0.0,
-        "p_df_at_most_4": float(post[grid <= 4].sum()), "median_df": median,
-        "outlying": flagged, "outlying_rule": f"p_outlying >= {OUTLYING_AT:g}",
+        "p_df_at_most_4": float(post[grid <= 4].sum()),
+        "median_df": median,
+        "outlying": flagged,
+        "outlying_rule": f"p_outlying >= {OUTLYING_AT:g}",
         "cut_tail": A.OUTLYING_PRIOR_TAIL,
     }
 
 
 def _summ(x: np.ndarray, level: float, scale: float = 1.0, center: float = 0.0) -> dict:
     lo, med, hi = np.quantile(x, [(1 - level) / 2, 0.5, (1 + level) / 2])
-    return {"mean": float(x.mean()) * scale + center, "median": float(med) * scale + center,
-            "sd": float(x.std(ddof=1)) * scale, "low": float(lo) * scale + center, "high": float(hi) * scale + center}
+    return {
+        "mean": float(x.mean()) * scale + center,
+        "median": float(med) * scale + center,
+        "sd": float(x.std(ddof=1)) * scale,
+        "low": float(lo) * scale + center,
+        "high": float(hi) * scale + center,
+    }
 
 
 def _repeatability_draws(problem, raw, within_sd=None) -> np.ndarray | None:
@@ -821,8 +909,13 @@ def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd
     level = o.level
     L = level_key(level)
     mu, tau = raw.mu.reshape(-1), raw.tau.reshape(-1)
-    out: dict = {"level": level, "structure": problem.model.within, "between": problem.model.between.name,
-                 "consensus": _summ(mu, level, k, c), "between_sd": _summ(tau, level, k)}
+    out: dict = {
+        "level": level,
+        "structure": problem.model.within,
+        "between": problem.model.between.name,
+        "consensus": _summ(mu, level, k, c),
+        "between_sd": _summ(tau, level, k),
+    }
     sr = _repeatability_draws(problem, raw, within_sd)
     if sr is not None:
         sR = np.hypot(tau, sr)
@@ -865,8 +958,10 @@ def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd
     flagged_z = signal == "action"
     out["allowed_bias"] = o.allowed_bias
     out["agreement"] = {
-        "z_action": int(np.sum(flagged_z)), "z_warning": int(np.sum(signal == "warning")),
-        "interval_excludes_0": int(excludes.sum()), "both": int(np.sum(flagged_z & excludes)),
+        "z_action": int(np.sum(flagged_z)),
+        "z_warning": int(np.sum(signal == "warning")),
+        "interval_excludes_0": int(excludes.sum()),
+        "both": int(np.sum(flagged_z & excludes)),
     }
     out["interval_excludes_0"] = excludes
     return out
@@ -892,7 +987,7 @@ def new_group_outside(problem, raw, o: ReportOptions, seed: int) -> dict | None:
     theta_new = mu + tau * z
     if problem.within_code == 0:
         nu, s = raw.nu.reshape(-1), raw.s.reshape(-1)
-        sigma_new = np.sqrt(nu * s ** 2 / rng.chisquare(nu))
+        sigma_new = np.sqrt(nu * s**2 / rng.chisquare(nu))
     else:
         sigma_new = raw.sigma.reshape(-1)
     a = o.internal(problem.center, problem.scale)
@@ -905,9 +1000,14 @@ def new_group_outside(problem, raw, o: ReportOptions, seed: int) -> dict | None:
         f += ndtr((theta_new - a[A.A_UPPER]) / sigma_new)
     lo, hi = np.quantile(f, [(1 - o.level) / 2, (1 + o.level) / 2])
     k, c = problem.scale, problem.center
-    return {"mean": float(f.mean()), "low": float(lo), "high": float(hi),
-            "mc_error": float(f.std(ddof=1) / np.sqrt(S)),
-            "theta_new": _summ(theta_new, o.level, k, c), "sigma_new_median": float(np.median(sigma_new)) * k}
+    return {
+        "mean": float(f.mean()),
+        "low": float(lo),
+        "high": float(hi),
+        "mc_error": float(f.std(ddof=1) / np.sqrt(S)),
+        "theta_new": _summ(theta_new, o.level, k, c),
+        "sigma_new_median": float(np.median(sigma_new)) * k,
+    }
 
 
 def _thin(S: int) -> np.ndarray:
@@ -982,7 +1082,7 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
         np.add(rc, nc, out=rc)
         if J >= 2:
             t_spread[r0:r1] = rc.std(axis=1, ddof=1)
-        scale_j = np.sqrt(tau_c ** 2 + v)
+        scale_j = np.sqrt(tau_c**2 + v)
         dev_obs = np.abs(ybar[None, :] - mu_c) / scale_j
         dev_rep = np.abs(rc - mu_c) / scale_j
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -993,12 +1093,20 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
     out: dict = {"draws": m}
     if J >= 2:
         t_obs = float(np.std(ybar, ddof=1))
-        out["spread"] = {"observed": t_obs * problem.scale, "replicated": t_spread * problem.scale,
-                         "p_value": float(np.mean(t_spread >= t_obs))}
+        out["spread"] = {
+            "observed": t_obs * problem.scale,
+            "replicated": t_spread * problem.scale,
+            "p_value": float(np.mean(t_spread >= t_obs)),
+        }
     counts = np.bincount(who, minlength=J)
-    out["extreme"] = {"observed": t_obs_draw, "replicated": t_rep, "p_value": float(np.mean(t_rep >= t_obs_draw)),
-                      "observed_median": float(np.median(t_obs_draw)), "group": int(np.argmax(counts)),
-                      "group_share": float(counts.max() / m)}
+    out["extreme"] = {
+        "observed": t_obs_draw,
+        "replicated": t_rep,
+        "p_value": float(np.mean(t_rep >= t_obs_draw)),
+        "observed_median": float(np.median(t_obs_draw)),
+        "group": int(np.argmax(counts)),
+        "group_share": float(counts.max() / m),
+    }
     if within != 2:
         keep = np.flatnonzero(n >= 2)
         if keep.size:
@@ -1015,10 +1123,17 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
             del rep_sd
             lo, hi = np.quantile(by_group, [(1 - level) / 2, (1 + level) / 2], axis=1)
             k = problem.scale
-            out["sd"] = {"groups": keep, "observed": obs * k, "low": lo * k, "high": hi * k,
-                         "median": np.median(by_group, axis=1) * k, "p_value": p, "level": level,
-                         "outside": int(np.sum((obs < lo) | (obs > hi))),
-                         "extreme": int(np.sum((p < 0.01) | (p > 0.99)))}
+            out["sd"] = {
+                "groups": keep,
+                "observed": obs * k,
+                "low": lo * k,
+                "high": hi * k,
+                "median": np.median(by_group, axis=1) * k,
+                "p_value": p,
+                "level": level,
+                "outside": int(np.sum((obs < lo) | (obs > hi))),
+                "extreme": int(np.sum((p < 0.01) | (p > 0.99))),
+            }
     return out
 
 
@@ -1032,12 +1147,15 @@ def _coef_index(design, column: str, level_name: str) -> int | None:
     """The column of X of a level's contrast (None for the reference level); refuses an unknown column or level."""
     cats = {c["column"]: c for c in design.categories}
     if column not in cats:
-        raise InputError(f"bad option: '{column}' is not a categorical predictor of this fit; the categorical "
-                         f"predictors are {', '.join(repr(c) for c in cats) or 'none'}")
+        raise InputError(
+            f"bad option: '{column}' is not a categorical predictor of this fit; the categorical "
+            f"predictors are {', '.join(repr(c) for c in cats) or 'none'}"
+        )
     levels = cats[column]["levels"]
     if level_name not in levels:
-        raise InputError(f"bad option: '{column}' has no level '{level_name}'; its levels are "
-                         + ", ".join(repr(x) for x in levels))
+        raise InputError(
+            f"bad option: '{column}' has no level '{level_name}'; its levels are " + ", ".join(repr(x) for x in levels)
+        )
     if level_name == cats[column]["reference"]:
         return None
     return next(k for k, c in enumerate(design.coefficients) if c["column"] == column and c.get("level") == level_name)
@@ -1085,11 +1203,17 @@ def predictor_answers(p, raw, o: ReportOptions, without=None) -> dict | None:
         x = beta[:, :, i]
         sm = summarize_draws(x, level, float(des.to_user[i]))
         sm["p_above_0"] = float(np.mean(x > 0))
-        coefs.append({**{key: info[key] for key in ("name", "column", "kind")},
-                      **({"level": info["level"], "reference": info["reference"], "unit": "data units"}
-                         if info["kind"] == "category" else
-                         {"centred_at": info["centre"], "unit": f"data units per unit of '{info['column']}'"}),
-                      **sm})
+        coefs.append(
+            {
+                **{key: info[key] for key in ("name", "column", "kind")},
+                **(
+                    {"level": info["level"], "reference": info["reference"], "unit": "data units"}
+                    if info["kind"] == "category"
+                    else {"centred_at": info["centre"], "unit": f"data units per unit of '{info['column']}'"}
+                ),
+                **sm,
+            }
+        )
     contrasts = []
     for cat in des.categories:
         levels = cat["levels"]
@@ -1106,29 +1230,51 @@ def predictor_answers(p, raw, o: ReportOptions, without=None) -> dict | None:
     for i, name in enumerate(des.level_names):
         x = raw.mu + beta @ des.level_x[i]
         consensus.append({"level": name, "groups": int(counts[i]), **summarize_draws(x, level, k, c)})
-    tau2 = float(np.mean(raw.tau ** 2))
-    spread = {"tau_with": summarize_draws(raw.tau, level, k), "tau_without": None, "share_explained": None,
-              "share_rule": "1 - E[tau^2 | with] / E[tau^2 | without]; no interval (two fits' draws cannot be "
-                            "paired); the intervals of tau with and without show the uncertainty",
-              "without_fit": None}
+    tau2 = float(np.mean(raw.tau**2))
+    spread = {
+        "tau_with": summarize_draws(raw.tau, level, k),
+        "tau_without": None,
+        "share_explained": None,
+        "share_rule": "1 - E[tau^2 | with] / E[tau^2 | without]; no interval (two fits' draws cannot be "
+        "paired); the intervals of tau with and without show the uncertainty",
+        "without_fit": None,
+    }
     if without is not None:
         wr = without.raw
         spread["tau_without"] = summarize_draws(wr.tau, level, without.problem.scale)
-        tau2_wo = float(np.mean(wr.tau ** 2)) * (without.problem.scale / k) ** 2
+        tau2_wo = float(np.mean(wr.tau**2)) * (without.problem.scale / k) ** 2
         spread["share_explained"] = 1.0 - tau2 / tau2_wo if tau2_wo > 0 else None
         mode = "summary" if getattr(without, "summary_mode", False) else "full"
-        spread["without_fit"] = {"seed": wr.seed, "draws_per_chain": int(wr.mu.shape[1]),
-                                 "chains": int(wr.mu.shape[0]), "targets_met": bool(without.targets_met), "mode": mode,
-                                 "mu": summarize_draws(wr.mu, level, without.problem.scale, without.problem.center)}
-    return {"coefficients": coefs, "contrasts": contrasts, "consensus": consensus, "spread": spread,
-            "categories": [{"column": cat["column"], "levels": list(cat["levels"]), "reference": cat["reference"],
-                            "groups": list(cat["groups"])} for cat in des.categories],
-            "numeric": [{"column": x["column"], "centred_at": x["centre"]} for x in des.numerics],
-            "prior": {f"{x.column}": (x.prior or p.model.effects).describe() for x in p.model.predictors},
-            "mu_means": "the consensus value of the reference level"
-                        + (", at the numeric predictors' means" if des.numerics else "")
-                        if des.categories else "the centre at the numeric predictors' means",
-            "level": level}
+        spread["without_fit"] = {
+            "seed": wr.seed,
+            "draws_per_chain": int(wr.mu.shape[1]),
+            "chains": int(wr.mu.shape[0]),
+            "targets_met": bool(without.targets_met),
+            "mode": mode,
+            "mu": summarize_draws(wr.mu, level, without.problem.scale, without.problem.center),
+        }
+    return {
+        "coefficients": coefs,
+        "contrasts": contrasts,
+        "consensus": consensus,
+        "spread": spread,
+        "categories": [
+            {
+                "column": cat["column"],
+                "levels": list(cat["levels"]),
+                "reference": cat["reference"],
+                "groups": list(cat["groups"]),
+            }
+            for cat in des.categories
+        ],
+        "numeric": [{"column": x["column"], "centred_at": x["centre"]} for x in des.numerics],
+        "prior": {f"{x.column}": (x.prior or p.model.effects).describe() for x in p.model.predictors},
+        "mu_means": "the consensus value of the reference level"
+        + (", at the numeric predictors' means" if des.numerics else "")
+        if des.categories
+        else "the centre at the numeric predictors' means",
+        "level": level,
+    }
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1136,34 +1282,36 @@ def predictor_answers(p, raw, o: ReportOptions, without=None) -> dict | None:
 
 SUMMARY_METHODS = {
     "means_and_sd": "Welford running mean and M2 per chain and group, merged across chains (Chan, Golub and "
-                    "LeVeque): equal to the mean and sd of all draws to rounding",
+    "LeVeque): equal to the mean and sd of all draws to rounding",
     "probabilities": "exact counts of the draws: P(above / below the threshold), P(|bias| > allowed), P(outside "
-                     "the limits), P(outlying), P(best), P(top k) (a size-k heap scan per draw)",
+    "the limits), P(outlying), P(best), P(top k) (a size-k heap scan per draw)",
     "interval_limits": "per group and quantity a histogram of {bins} equal bins on a grid fixed after warm-up "
-                       "(centre +- {half:.2f} warm-up sd, in the scale theta, log sigma, logit shrinkage, logit "
-                       "outside fraction), with underflow and overflow bins bounded by the extreme draws; each "
-                       "order statistic is located exactly and interpolated inside its bin, so a limit is off by "
-                       "at most one bin width (the *_limit_error columns)",
+    "(centre +- {half:.2f} warm-up sd, in the scale theta, log sigma, logit shrinkage, logit "
+    "outside fraction), with underflow and overflow bins bounded by the extreme draws; each "
+    "order statistic is located exactly and interpolated inside its bin, so a limit is off by "
+    "at most one bin width (the *_limit_error columns)",
     "bias_limits": "{bias}",
     "shrinkage_interval": "histogram of logit w_j (separate, and every structure with heavy tails, where lambda_j "
-                          "moves each group's weight); exact from the tau (and sigma) draws for shared and known with "
-                          "the normal between-group distribution, where w_j is a decreasing function of one "
-                          "hyperparameter ratio",
+    "moves each group's weight); exact from the tau (and sigma) draws for shared and known with "
+    "the normal between-group distribution, where w_j is a decreasing function of one "
+    "hyperparameter ratio",
     "rank_mean": "kept groups exact; others by a bucket count of all groups per draw ({G} buckets): the "
-                 "midpoint of the possible ranks, off by at most rank_mean_error",
+    "midpoint of the possible ranks, off by at most rank_mean_error",
     "rank_interval": "kept groups exact from their rank in every draw; others from a histogram, per group, of "
-                     "each draw's lower rank bound (1 + groups in better buckets) on one rank grid of {RB} bins "
-                     "({RGRID}), widened by the largest bucket count - 1 seen: the interval contains the exact "
-                     "one, each end off by at most rank_limit_error",
+    "each draw's lower rank bound (1 + groups in better buckets) on one rank grid of {RB} bins "
+    "({RGRID}), widened by the largest bucket count - 1 seen: the interval contains the exact "
+    "one, each end off by at most rank_limit_error",
     "kept_groups": "named groups, {sample} groups drawn from the run's own seed, and up to {top} top-k candidates "
-                   "chosen after warm-up",
+    "chosen after warm-up",
     "diagnostics": "run-length control on mu, tau, the variance hyperparameters and the kept groups' stored draws; "
-                   "a classic R-hat from chain means for every group as a screen",
+    "a classic R-hat from chain means for every group as a screen",
 }
-SUMMARY_LEVEL_METHOD = ("ranks within levels: a bucket count per level (max(1024, groups of the level) buckets) "
-                        "gives the mid-rank among the groups of the level, off by at most rank_in_level_mean_error; "
-                        "P(best in level) is an exact count; the rank interval within a level needs every group's "
-                        "draws and is left empty (refit with --summary off)")
+SUMMARY_LEVEL_METHOD = (
+    "ranks within levels: a bucket count per level (max(1024, groups of the level) buckets) "
+    "gives the mid-rank among the groups of the level, off by at most rank_in_level_mean_error; "
+    "P(best in level) is an exact count; the rank interval within a level needs every group's "
+    "draws and is left empty (refit with --summary off)"
+)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1176,8 +1324,10 @@ def _check_summary_options(fit, o: ReportOptions) -> ReportOptions:
     for name in ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias"):
         a, b = getattr(o, name), getattr(applied, name)
         if a != b and not (name == "k" and min(a, fit.J) == min(b, fit.J)):
-            raise InputError(f"bad option: summary mode applied {name} = {b!r} while sampling; a report with "
-                             f"{name} = {a!r} needs a new run")
+            raise InputError(
+                f"bad option: summary mode applied {name} = {b!r} while sampling; a report with "
+                f"{name} = {a!r} needs a new run"
+            )
     return o
 
 
@@ -1233,13 +1383,16 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
             kept = {lab: i for i, lab in enumerate(fit.kept_labels)}
             missing = [lab for lab in compare if lab not in kept]
             if missing:
-                raise InputError(f"bad option: summary mode compares only groups whose draws were kept; "
-                                 f"'{missing[0]}' was not kept (name it with --keep, or pass it to --compare before "
-                                 "the run)")
+                raise InputError(
+                    f"bad option: summary mode compares only groups whose draws were kept; "
+                    f"'{missing[0]}' was not kept (name it with --keep, or pass it to --compare before "
+                    "the run)"
+                )
             idx = np.array([kept[lab] for lab in compare], dtype=np.int64)
             th = fit.raw.theta.reshape(-1, fit.raw.theta.shape[2])
-            pairs = pd.DataFrame(prob_greater(th, idx), index=pd.Index(list(compare), name="group"),
-                                 columns=list(compare))
+            pairs = pd.DataFrame(
+                prob_greater(th, idx), index=pd.Index(list(compare), name="group"), columns=list(compare)
+            )
     else:
         ranks = g.pop("ranks")
         order = np.argsort(table["rank_mean"].to_numpy(), kind="stable")
@@ -1247,60 +1400,124 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
         mat = rank_matrix(ranks, rows, max_rank)
         del ranks
         m = mat.shape[1] if max_rank is None else max_rank
-        heat = {"rows": rows, "matrix": mat,
-                "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else [])}
+        heat = {
+            "rows": rows,
+            "matrix": mat,
+            "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else []),
+        }
         if pair_idx is not None:
             th = fit.raw.theta.reshape(-1, J)
-            pairs = pd.DataFrame(prob_greater(th, pair_idx), index=pd.Index(list(compare), name="group"),
-                                 columns=list(compare))
+            pairs = pd.DataFrame(
+                prob_greater(th, pair_idx), index=pd.Index(list(compare), name="group"), columns=list(compare)
+            )
     clock.append(time.perf_counter())
     st = p.stats
     s = raw.settings
-    run = {"chains": s.chains, "warmup": s.warmup, "draws_requested": s.draws,
-           "draws_per_chain": int(raw.mu.shape[1]), "draw_cap": s.draw_cap, "seed": raw.seed,
-           "seconds": round(raw.seconds, 3), "sweep_seconds": round(float(raw.sweep_seconds), 3),
-           "tau_evaluations_per_sweep": float(raw.evals.mean()),
-           "internal_center": p.center, "internal_scale": p.scale, "draws_total": S}
-    data = {"source": st.source, "file_sha256": st.file_sha256, "statistics_sha256": st.fingerprint(),
-            "groups": st.J, "measurements": float(st.N) if st.kind == "raw" else None, "kind": st.kind}
+    run = {
+        "chains": s.chains,
+        "warmup": s.warmup,
+        "draws_requested": s.draws,
+        "draws_per_chain": int(raw.mu.shape[1]),
+        "draw_cap": s.draw_cap,
+        "seed": raw.seed,
+        "seconds": round(raw.seconds, 3),
+        "sweep_seconds": round(float(raw.sweep_seconds), 3),
+        "tau_evaluations_per_sweep": float(raw.evals.mean()),
+        "internal_center": p.center,
+        "internal_scale": p.scale,
+        "draws_total": S,
+    }
+    data = {
+        "source": st.source,
+        "file_sha256": st.file_sha256,
+        "statistics_sha256": st.fingerprint(),
+        "groups": st.J,
+        "measurements": float(st.N) if st.kind == "raw" else None,
+        "kind": st.kind,
+    }
     methods: dict = {}
     summary_info = None
     if summary_mode:
         sh = fit.acc.setup
-        bias = ("a histogram of theta_j - mu, as for the other limits" if figures["bias_from_histogram"] else
-                "theta limits minus the posterior mean of mu: off by at most the theta bound plus "
-                f"max_s |mu_s - mean mu| = {figures['mu_spread_D']:.3g}")
+        bias = (
+            "a histogram of theta_j - mu, as for the other limits"
+            if figures["bias_from_histogram"]
+            else "theta limits minus the posterior mean of mu: off by at most the theta bound plus "
+            f"max_s |mu_s - mean mu| = {figures['mu_spread_D']:.3g}"
+        )
         RB = figures["rank_grid_bins"]
-        methods = {key: text.format(bins=sh.bins, half=figures["grid_half_width_sd"], bias=bias, G=fit.acc.buckets,
-                                    sample=fit.summary_options.sample, top=fit.summary_options.top, RB=RB,
-                                    RGRID="one rank each" if RB == J else
-                                    f"one rank each up to rank {figures['rank_exact_up_to']}, then geometric up to J")
-                   for key, text in SUMMARY_METHODS.items()}
+        methods = {
+            key: text.format(
+                bins=sh.bins,
+                half=figures["grid_half_width_sd"],
+                bias=bias,
+                G=fit.acc.buckets,
+                sample=fit.summary_options.sample,
+                top=fit.summary_options.top,
+                RB=RB,
+                RGRID="one rank each"
+                if RB == J
+                else f"one rank each up to rank {figures['rank_exact_up_to']}, then geometric up to J",
+            )
+            for key, text in SUMMARY_METHODS.items()
+        }
         if "in_level" in g:
             methods["ranks_within_levels"] = SUMMARY_LEVEL_METHOD
         errs = {c: table[c].to_numpy(dtype=float) for c in table.columns if c.endswith("_error")}
-        figures["limit_error"] = {name: {"max": float(np.nanmax(e)) if np.isfinite(e).any() else None,
-                                         "median": float(np.nanmedian(e)) if np.isfinite(e).any() else None}
-                                  for name, e in errs.items()}
-        summary_info = {"groups": J, "kept_groups": int(len(fit.kept_index)), "kept_labels": fit.kept_labels,
-                        "figures": figures, "methods": methods,
-                        "settings": {"bins": fit.summary_options.bins, "sample": fit.summary_options.sample,
-                                     "top_candidates": fit.summary_options.top,
-                                     "named": list(fit.summary_options.keep)}}
+        figures["limit_error"] = {
+            name: {
+                "max": float(np.nanmax(e)) if np.isfinite(e).any() else None,
+                "median": float(np.nanmedian(e)) if np.isfinite(e).any() else None,
+            }
+            for name, e in errs.items()
+        }
+        summary_info = {
+            "groups": J,
+            "kept_groups": int(len(fit.kept_index)),
+            "kept_labels": fit.kept_labels,
+            "figures": figures,
+            "methods": methods,
+            "settings": {
+                "bins": fit.summary_options.bins,
+                "sample": fit.summary_options.sample,
+                "top_candidates": fit.summary_options.top,
+                "named": list(fit.summary_options.keep),
+            },
+        }
     diag = fit.diagnostics()
     if summary_mode:
         diag["classic_rhat_all_groups"] = figures["classic_rhat"]
     names = ("groups", "interlab_and_checks", "ranks_and_pairs")
     seconds = {n: round(b - a, 3) for n, a, b in zip(names, clock, clock[1:])}
-    return Results(options=o, mode="summary" if summary_mode else "full", model=p.model, problem=p, table=table,
-                   hyper=hyper, hyper_draws=hyper_draws, diagnostics=diag, run=run, data=data, lab=lab, tail=tail,
-                   new_group=new_group, checks=checks, pairs=pairs, heat=heat, methods=methods, summary=summary_info,
-                   seconds=seconds, predictors=predictors)
+    return Results(
+        options=o,
+        mode="summary" if summary_mode else "full",
+        model=p.model,
+        problem=p,
+        table=table,
+        hyper=hyper,
+        hyper_draws=hyper_draws,
+        diagnostics=diag,
+        run=run,
+        data=data,
+        lab=lab,
+        tail=tail,
+        new_group=new_group,
+        checks=checks,
+        pairs=pairs,
+        heat=heat,
+        methods=methods,
+        summary=summary_info,
+        seconds=seconds,
+        predictors=predictors,
+    )
 
 
 def needs_draws(fit, what: str) -> None:
     """Refuse a summary-mode fit where every group's draws are needed, pointing to its table."""
     if getattr(fit, "summary_mode", False):
-        raise InputError(f"{what} needs every group's draws, which a summary-mode run does not keep; use the "
-                         "per-group table (pooling.results.compute(fit).table, groups.csv), or refit with "
-                         "--summary off")
+        raise InputError(
+            f"{what} needs every group's draws, which a summary-mode run does not keep; use the "
+            "per-group table (pooling.results.compute(fit).table, groups.csv), or refit with "
+            "--summary off"
+        )

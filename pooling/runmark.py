@@ -4,6 +4,7 @@ folders of data (dask_stats.py): a run folder is pooling's output, never input.
 Every run folder this program writes holds `.pooling-run`, one line of JSON with "written_by": "pooling"
 (DEVELOPERS.md, "Run folders"). This module only reads it; output.py writes it.
 """
+
 from __future__ import annotations
 
 import json
@@ -23,4 +24,3 @@ def read_marker(folder) -> dict | None:
     if not isinstance(info, dict) or info.get("written_by") != "pooling" or not isinstance(info.get("format"), int):
         return None
     return info
-

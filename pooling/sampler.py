@@ -5,6 +5,7 @@ the draws are the same whatever the number of threads. Sweeps run in chunks: bet
 main thread reports progress and can stop the run cleanly (Ctrl-C), in which case nothing is
 returned and nothing is written.
 """
+
 from __future__ import annotations
 
 import os
@@ -19,7 +20,7 @@ import numpy as np
 
 from . import diagnostics as dg
 from . import kernel
-from .errors import Interrupted, InputError
+from .errors import InputError, Interrupted
 from .model import Problem
 
 
@@ -161,7 +162,7 @@ class _Chain:
             if stop.is_set():
                 return
             k = min(chunk, n_sweeps - done)
-            rows = kernel.Draws(**{key: arr[done:done + k] for key, arr in out.items()}) if out is not None else none
+            rows = kernel.Draws(**{key: arr[done : done + k] for key, arr in out.items()}) if out is not None else none
             kernel.sweeps(self.rng, k, adapt, d, self.state, self.work, rows, 0)
             done += k
             tick(k)
@@ -170,8 +171,13 @@ class _Chain:
 
     def export_state(self) -> dict:
         st = self.state
-        return {"state": st.scalars.tolist(), "theta": st.theta.tolist(), "sigma2": st.sigma2.tolist(),
-                "lam": st.lam.tolist(), "beta": st.beta.tolist()}
+        return {
+            "state": st.scalars.tolist(),
+            "theta": st.theta.tolist(),
+            "sigma2": st.sigma2.tolist(),
+            "lam": st.lam.tolist(),
+            "beta": st.beta.tolist(),
+        }
 
 
 def _preallocate(chains, problem: Problem, n_sweeps: int) -> dict[str, np.ndarray]:
@@ -179,8 +185,10 @@ def _preallocate(chains, problem: Problem, n_sweeps: int) -> dict[str, np.ndarra
     draws afterwards copies nothing (at 1,000 groups x 4 x 1,000 draws a stack of the chains' own
     arrays cost ~0.25 s, mostly touching fresh memory)."""
     shapes = kernel.draws_shape(problem.data, n_sweeps)
-    block = {key: np.empty((len(chains),) + shape, dtype=kernel.DRAW_DTYPES.get(key, np.float64))
-             for key, shape in shapes.items()}
+    block = {
+        key: np.empty((len(chains),) + shape, dtype=kernel.DRAW_DTYPES.get(key, np.float64))
+        for key, shape in shapes.items()
+    }
     for i, c in enumerate(chains):
         c.into = {key: arr[i] for key, arr in block.items()}
     return block
@@ -246,11 +254,23 @@ def _run_phase_timed(chains, problem, n_sweeps, store, adapt, threads, bar):
 
 def resolve_seed(settings: Settings) -> int:
     """The run's seed: the one given, or a fresh one (recorded in the summary so the run can be repeated)."""
-    return settings.seed if settings.seed is not None else cast(int, np.random.SeedSequence().entropy) % (2**63)  # drawn fresh: an int
+    return (
+        settings.seed if settings.seed is not None else cast(int, np.random.SeedSequence().entropy) % (2**63)
+    )  # drawn fresh: an int
 
 
-def draw_until_targets(chains, problem: Problem, settings: Settings, threads: int, bar, seed: int, start: float,
-                       diagnose, collect=None, timer: list | None = None) -> tuple[RawDraws, list[dict], int]:
+def draw_until_targets(
+    chains,
+    problem: Problem,
+    settings: Settings,
+    threads: int,
+    bar,
+    seed: int,
+    start: float,
+    diagnose,
+    collect=None,
+    timer: list | None = None,
+) -> tuple[RawDraws, list[dict], int]:
     """Draw `settings.draws` per chain, then extend until `diagnose` reports no misses or the cap is reached.
 
     `collect(chains, problem, seed, settings, rounds, start)` gathers the chains' draws (default: every
@@ -283,8 +303,13 @@ def draw_until_targets(chains, problem: Problem, settings: Settings, threads: in
             bar.refresh()
 
 
-def sample_raw(problem: Problem, settings: Settings | None = None, progress: bool | None = None,
-               init: list[dict] | None = None, diagnose=None) -> RawDraws:
+def sample_raw(
+    problem: Problem,
+    settings: Settings | None = None,
+    progress: bool | None = None,
+    init: list[dict] | None = None,
+    diagnose=None,
+) -> RawDraws:
     """Warm up, draw, and extend until `diagnose(draws)` reports no misses or the cap is reached.
 
     diagnose takes a RawDraws and returns (misses, round_record); by default `diagnose_raw` with the
@@ -312,6 +337,7 @@ def sample_raw(problem: Problem, settings: Settings | None = None, progress: boo
 
 def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws:
     """Every draw of every group: the preallocated blocks of each round, joined along the draws."""
+
     def stack(key):
         parts = [b[key] for b in blocks]
         return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=1)
@@ -320,11 +346,20 @@ def _collect(blocks, chains, problem, seed, settings, rounds, start) -> RawDraws
     sigma = None if within == 2 else stack("sigma")[:, :, 0] if within == 1 else stack("sigma")
     heavy = problem.heavy
     return RawDraws(
-        mu=stack("mu"), tau=stack("tau"), theta=stack("theta"), sigma=sigma,
-        s=stack("s") if within == 0 else None, nu=stack("nu") if within == 0 else None,
-        evals=stack("evals"), seed=seed, settings=settings, rounds=list(rounds),
-        seconds=time.perf_counter() - start, final_states=[c.export_state() for c in chains],
-        df=stack("df") if heavy else None, lam=stack("lam") if heavy else None,
+        mu=stack("mu"),
+        tau=stack("tau"),
+        theta=stack("theta"),
+        sigma=sigma,
+        s=stack("s") if within == 0 else None,
+        nu=stack("nu") if within == 0 else None,
+        evals=stack("evals"),
+        seed=seed,
+        settings=settings,
+        rounds=list(rounds),
+        seconds=time.perf_counter() - start,
+        final_states=[c.export_state() for c in chains],
+        df=stack("df") if heavy else None,
+        lam=stack("lam") if heavy else None,
         beta=stack("beta") if problem.data.X.shape[1] else None,
     )
 
@@ -369,14 +404,29 @@ def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
         rest = x.shape[2:]
         for flat in np.flatnonzero(bad.ravel()):
             idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
-            misses.append({"name": name, "index": idx, "rhat": float(rhat.ravel()[flat]),
-                           "bulk_ess": float(bulk.ravel()[flat]), "tail_ess": float(tail.ravel()[flat])})
+            misses.append(
+                {
+                    "name": name,
+                    "index": idx,
+                    "rhat": float(rhat.ravel()[flat]),
+                    "bulk_ess": float(bulk.ravel()[flat]),
+                    "tail_ess": float(tail.ravel()[flat]),
+                }
+            )
         live = ~constant
-        worst[name] = {"rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),
-                       "bulk_ess_min": float(np.min(bulk[live])) if live.any() else float("nan"),
-                       "tail_ess_min": float(np.min(tail[live])) if live.any() else float("nan")}
-    low = min((min(w["bulk_ess_min"], w["tail_ess_min"]) for w in worst.values()
-               if np.isfinite(w["bulk_ess_min"]) and np.isfinite(w["tail_ess_min"])), default=np.inf)
+        worst[name] = {
+            "rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),
+            "bulk_ess_min": float(np.min(bulk[live])) if live.any() else float("nan"),
+            "tail_ess_min": float(np.min(tail[live])) if live.any() else float("nan"),
+        }
+    low = min(
+        (
+            min(w["bulk_ess_min"], w["tail_ess_min"])
+            for w in worst.values()
+            if np.isfinite(w["bulk_ess_min"]) and np.isfinite(w["tail_ess_min"])
+        ),
+        default=np.inf,
+    )
     growth = float(np.clip(1.15 * targets.ess_min / low, 1.25, 4.0)) if low > 0 else 4.0
     record = {"worst": worst, "misses": len(misses), "growth": growth, "missed_list": misses}
     return misses, record

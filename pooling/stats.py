@@ -15,6 +15,7 @@ Data of extreme magnitude (1e-300 or 1e300) are held in a unit: a power of two, 
 mean * unit, m2 * unit^2 and se * unit are the user's values exactly while the stored numbers stay
 of order one (a spread of 1e-301 would otherwise square to zero). Nearly all data have unit 1.
 """
+
 from __future__ import annotations
 
 import codecs
@@ -137,12 +138,20 @@ class GroupStats:
             df["sd"] = self.raw_sd
         return df
 
-    def subset(self, keep: np.ndarray) -> "GroupStats":
+    def subset(self, keep: np.ndarray) -> GroupStats:
         keep = np.asarray(keep)
         return GroupStats(
-            tuple(np.asarray(self.labels, dtype=object)[keep]), self.n[keep].copy(), self.mean[keep].copy(),
-            self.m2[keep].copy(), None if self.se is None else self.se[keep].copy(), self.mean_lo[keep].copy(),
-            self.kind, self.unit, self.source, self.file_sha256, dict(self.meta),
+            tuple(np.asarray(self.labels, dtype=object)[keep]),
+            self.n[keep].copy(),
+            self.mean[keep].copy(),
+            self.m2[keep].copy(),
+            None if self.se is None else self.se[keep].copy(),
+            self.mean_lo[keep].copy(),
+            self.kind,
+            self.unit,
+            self.source,
+            self.file_sha256,
+            dict(self.meta),
             {name: v[keep] for name, v in self.columns.items()},
         )
 
@@ -160,24 +169,42 @@ class GroupStats:
             if isinstance(given, dict):
                 missing = [lab for lab in self.labels if lab not in given]
                 if missing:
-                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has no "
-                                     f"value for group {_show(missing[0])}")
+                    raise InputError(
+                        f"bad input in {_where(self.source)}: the group-level column '{name}' has no "
+                        f"value for group {_show(missing[0])}"
+                    )
                 seq = [given[lab] for lab in self.labels]
             else:
                 seq = list(given)
                 if len(seq) != self.J:
-                    raise InputError(f"bad input in {_where(self.source)}: the group-level column '{name}' has "
-                                     f"{len(seq)} values for {self.J} groups")
+                    raise InputError(
+                        f"bad input in {_where(self.source)}: the group-level column '{name}' has "
+                        f"{len(seq)} values for {self.J} groups"
+                    )
             out = np.empty(self.J, dtype=object)
             for j, (lab, x) in enumerate(zip(self.labels, seq)):
                 text = cell_text(x)
                 if text is None:
-                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(lab)}: "
-                                     "expected a value for the group-level column, found an empty cell")
+                    raise InputError(
+                        f"bad input in {_where(self.source)}, column '{name}', group {_show(lab)}: "
+                        "expected a value for the group-level column, found an empty cell"
+                    )
                 out[j] = text
             cols[str(name)] = out
-        return GroupStats(self.labels, self.n, self.mean, self.m2, self.se, self.mean_lo, self.kind, self.unit,
-                          self.source, self.file_sha256, dict(self.meta), cols)
+        return GroupStats(
+            self.labels,
+            self.n,
+            self.mean,
+            self.m2,
+            self.se,
+            self.mean_lo,
+            self.kind,
+            self.unit,
+            self.source,
+            self.file_sha256,
+            dict(self.meta),
+            cols,
+        )
 
 
 def _two_sum(a, b):
@@ -242,14 +269,18 @@ def merge_columns(a: GroupStats, b: GroupStats, labels) -> dict:
             for lab, x in zip(s.labels, s.columns[name]):
                 prev = got.setdefault(lab, x)
                 if prev != x and not _same_number(prev, x):
-                    raise InputError(f"bad input in {_where(b.source)}, column '{name}', group {_show(lab)}: a "
-                                     f"group-level column holds one value per group; found {_show(prev)} in "
-                                     f"{_where(a.source)} and {_show(x)} here")
+                    raise InputError(
+                        f"bad input in {_where(b.source)}, column '{name}', group {_show(lab)}: a "
+                        f"group-level column holds one value per group; found {_show(prev)} in "
+                        f"{_where(a.source)} and {_show(x)} here"
+                    )
         missing = [lab for lab in labels if lab not in got]
         if missing:
             side = a if name not in b.columns else b
-            raise InputError(f"bad input in {_where(side.source)}: the group-level column '{name}' has no value for "
-                             f"group {_show(missing[0])}")
+            raise InputError(
+                f"bad input in {_where(side.source)}: the group-level column '{name}' has no value for "
+                f"group {_show(missing[0])}"
+            )
         out[name] = got
     return out
 
@@ -259,9 +290,20 @@ def to_unit(s: GroupStats, unit: float) -> GroupStats:
     if unit == s.unit:
         return s
     f = s.unit / unit
-    return GroupStats(s.labels, s.n.copy(), s.mean * f, s.m2 * f * f, se=None if s.se is None else s.se * f,
-                      mean_lo=s.mean_lo * f, kind=s.kind, unit=unit, source=s.source, file_sha256=s.file_sha256,
-                      meta=dict(s.meta), columns=dict(s.columns))
+    return GroupStats(
+        s.labels,
+        s.n.copy(),
+        s.mean * f,
+        s.m2 * f * f,
+        se=None if s.se is None else s.se * f,
+        mean_lo=s.mean_lo * f,
+        kind=s.kind,
+        unit=unit,
+        source=s.source,
+        file_sha256=s.file_sha256,
+        meta=dict(s.meta),
+        columns=dict(s.columns),
+    )
 
 
 def choose_unit(*arrays) -> float:
@@ -320,14 +362,24 @@ class _Running:
                 grown[:, : self.acc.shape[1]] = self.acc
                 self.acc = grown
         a = self.acc[:, pos]
-        self.acc[0, pos], self.acc[1, pos], self.acc[2, pos], self.acc[3, pos] = merge_moments(a[0], a[1], a[2], a[3], n, hi, lo, m2)
+        self.acc[0, pos], self.acc[1, pos], self.acc[2, pos], self.acc[3, pos] = merge_moments(
+            a[0], a[1], a[2], a[3], n, hi, lo, m2
+        )
 
     def stats(self, unit: float, source: str, sha: str | None, whole: bool = True) -> GroupStats:
         """whole: the sizes are counts (int64); False keeps them as they are (down-weighted sizes)."""
         J = len(self.labels)
         n, hi, lo, m2 = (self.acc[k, :J].copy() for k in range(4))
-        return GroupStats(tuple(self.labels), n.astype(np.int64) if whole else n, hi, m2, mean_lo=lo, unit=unit,
-                          source=source, file_sha256=sha)
+        return GroupStats(
+            tuple(self.labels),
+            n.astype(np.int64) if whole else n,
+            hi,
+            m2,
+            mean_lo=lo,
+            unit=unit,
+            source=source,
+            file_sha256=sha,
+        )
 
 
 def unit_hint(unit: float) -> str:
@@ -351,15 +403,19 @@ def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Se
                 try:
                     bytes(cell).decode("utf-8")
                 except UnicodeDecodeError:
-                    raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
-                                     f"expected text in UTF-8, found the bytes {_show_bytes(bytes(cell))}") from None
+                    raise InputError(
+                        f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                        f"expected text in UTF-8, found the bytes {_show_bytes(bytes(cell))}"
+                    ) from None
         raise
     except UnicodeEncodeError:
         for i, cell in enumerate(raw.astype(object)):
             if isinstance(cell, str) and re.search("[\ud800-\udfff]", cell):
                 ch = re.search("[\ud800-\udfff]", cell).group()  # type: ignore[union-attr]  # found just above
-                raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
-                                 f"expected text, found the unpaired surrogate U+{ord(ch):04X}") from None
+                raise InputError(
+                    f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                    f"expected text, found the unpaired surrogate U+{ord(ch):04X}"
+                ) from None
         raise
 
 
@@ -402,7 +458,11 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int, wri
     if bad.any():
         i = int(np.argmax(bad))
         cell = raw.iloc[i]
-        found = "an empty cell" if cell is None or (isinstance(cell, float) and np.isnan(cell)) or pd.isna(cell) else _show(cell)
+        found = (
+            "an empty cell"
+            if cell is None or (isinstance(cell, float) and np.isnan(cell)) or pd.isna(cell)
+            else _show(cell)
+        )
         found += _number_hint(cell)
         raise InputError(
             f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
@@ -438,7 +498,7 @@ def _show_bytes(data: bytes, limit: int = 60) -> str:
     except UnicodeDecodeError as exc:
         start = exc.start
     lo = max(0, start - limit // 2)
-    cut = data[lo:lo + limit]
+    cut = data[lo : lo + limit]
     return ("…" if lo else "") + repr(cut) + ("…" if lo + limit < len(data) else "")
 
 
@@ -471,9 +531,11 @@ def check_unicode_twins(labels, source: str, what: str = "the group labels") -> 
     pair = unicode_twins(labels)
     if pair is not None:
         a, b = pair
-        raise InputError(f"bad input in {_where(source)}: {what} {_show(a)} ({_code_points(a)}) and {_show(b)} "
-                         f"({_code_points(b)}) look the same but differ in their Unicode form, so they would be two "
-                         "groups; write every label one way (for example NFC, composed accents) and try again")
+        raise InputError(
+            f"bad input in {_where(source)}: {what} {_show(a)} ({_code_points(a)}) and {_show(b)} "
+            f"({_code_points(b)}) look the same but differ in their Unicode form, so they would be two "
+            "groups; write every label one way (for example NFC, composed accents) and try again"
+        )
 
 
 # Control characters break the run folder (HDF5 strings end at NUL) or the terminal (escape codes);
@@ -557,16 +619,20 @@ def _column_text(raw: pd.Series, source: str, column: str, row_offset: int) -> n
     out = np.empty(len(values), dtype=object)
     for i, x in enumerate(values):
         if x is None:
-            raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a "
-                             "value of the group-level column, found an empty cell")
+            raise InputError(
+                f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a "
+                "value of the group-level column, found an empty cell"
+            )
         out[i] = x
     distinct = pd.unique(out)
     bad = [x for x in distinct if re.search(_BAD_LABEL_CHARS, x)]
     if bad:
         i = int(np.flatnonzero(out == bad[0])[0])
         ch = re.search(_BAD_LABEL_CHARS, bad[0]).group()  # type: ignore[union-attr]  # a bad label
-        raise InputError(f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected text, "
-                         f"found the control character U+{ord(ch):04X}")
+        raise InputError(
+            f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected text, "
+            f"found the control character U+{ord(ch):04X}"
+        )
     return out
 
 
@@ -593,9 +659,11 @@ class _PerGroup:
                 if prev is None:
                     seen[g] = (v, row_offset + int(i) + 1)
                 elif prev[0] != v and not _same_number(prev[0], v):
-                    raise InputError(f"bad input in {_where(self.source)}, column '{name}', group {_show(g)}: a "
-                                     f"group-level column must hold one value per group; found {_show(prev[0])} in "
-                                     f"row {prev[1]} and {_show(v)} in row {row_offset + int(i) + 1}")
+                    raise InputError(
+                        f"bad input in {_where(self.source)}, column '{name}', group {_show(g)}: a "
+                        f"group-level column must hold one value per group; found {_show(prev[0])} in "
+                        f"row {prev[1]} and {_show(v)} in row {row_offset + int(i) + 1}"
+                    )
 
     def values(self, labels) -> dict[str, list[str]]:
         return {name: [self.first[name][lab][0] for lab in labels] for name in self.names}
@@ -616,13 +684,21 @@ def _check_column_names(group_columns, taken, source: str):
         if names.count(c) > 1:
             raise InputError(f"bad options: the group-level column '{c}' is named twice")
         if c in taken:
-            raise InputError(f"bad options: '{c}' is the column of the {taken[c]}; a group-level column must be "
-                             "another column")
+            raise InputError(
+                f"bad options: '{c}' is the column of the {taken[c]}; a group-level column must be another column"
+            )
     return tuple(names)
 
 
-_OPTION = {"group": "--group", "value": "--value", "size": "--size", "mean": "--mean", "standard deviation": "--sd",
-           "estimate": "--estimate", "standard error": "--std-error"}
+_OPTION = {
+    "group": "--group",
+    "value": "--value",
+    "size": "--size",
+    "mean": "--mean",
+    "standard deviation": "--sd",
+    "estimate": "--estimate",
+    "standard error": "--std-error",
+}
 
 
 def _check_distinct(wanted: dict[str, str]) -> None:
@@ -632,8 +708,10 @@ def _check_distinct(wanted: dict[str, str]) -> None:
     for role, col in wanted.items():
         if col in seen:
             first = seen[col]
-            raise InputError(f"bad options: the {first} column ({_OPTION.get(first, first)}) and the {role} column "
-                             f"({_OPTION.get(role, role)}) are both '{col}'; each needs a column of its own")
+            raise InputError(
+                f"bad options: the {first} column ({_OPTION.get(first, first)}) and the {role} column "
+                f"({_OPTION.get(role, role)}) are both '{col}'; each needs a column of its own"
+            )
         seen[col] = role
 
 
@@ -643,9 +721,13 @@ def _require_columns(columns, wanted: dict[str, str], source: str):
     for role, col in wanted.items():
         if col not in cols:
             shown = ", ".join(_show(c, 40) for c in cols[:12]) + (" ..." if len(cols) > 12 else "")
-            raise InputError(f"bad input in {_where(source)}: no column '{col}' (the {role} column); found {shown or 'no columns'}")
+            raise InputError(
+                f"bad input in {_where(source)}: no column '{col}' (the {role} column); found {shown or 'no columns'}"
+            )
         if cols.count(col) > 1:
-            raise InputError(f"bad input in {_where(source)}: the column name '{col}' appears {cols.count(col)} times in the header")
+            raise InputError(
+                f"bad input in {_where(source)}: the column name '{col}' appears {cols.count(col)} times in the header"
+            )
 
 
 def from_frame(df: pd.DataFrame, group: str, value: str, source: str = "<frame>", group_columns=()) -> GroupStats:
@@ -687,8 +769,12 @@ def _sha256_file(path: Path) -> str:
     return h.hexdigest()
 
 
-_KINDS = [(stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"),
-          (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket")]
+_KINDS = [
+    (stat.S_ISFIFO, "a named pipe (FIFO)"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+    (stat.S_ISSOCK, "a socket"),
+]
 
 
 def _open_check(path) -> Path:
@@ -699,14 +785,18 @@ def _open_check(path) -> Path:
         st = os.stat(path)
     except OSError as exc:
         if exc.errno == errno.ELOOP:
-            raise InputError(f"bad input: '{path}' is a symbolic link that loops (it leads back to itself); "
-                             "expected a CSV or Parquet file") from None
+            raise InputError(
+                f"bad input: '{path}' is a symbolic link that loops (it leads back to itself); "
+                "expected a CSV or Parquet file"
+            ) from None
         if exc.errno == errno.ENAMETOOLONG:
-            raise InputError(f"bad input: the file name '{_show(str(path), 40)[1:-1]}' is too long for the file "
-                             "system") from None
+            raise InputError(
+                f"bad input: the file name '{_show(str(path), 40)[1:-1]}' is too long for the file system"
+            ) from None
         if exc.errno == errno.ENOENT and os.path.islink(path):
-            raise InputError(f"bad input: '{path}' is a symbolic link to '{os.readlink(path)}', which does not "
-                             "exist") from None
+            raise InputError(
+                f"bad input: '{path}' is a symbolic link to '{os.readlink(path)}', which does not exist"
+            ) from None
         if exc.errno in (errno.ENOENT, errno.ENOTDIR):
             raise InputError(f"bad input: the file '{path}' does not exist") from None
         raise InputError(f"bad input: the file '{path}' cannot be read ({exc.strerror or exc})") from None
@@ -714,8 +804,10 @@ def _open_check(path) -> Path:
         raise InputError(f"bad input: '{path}' is a folder, expected a CSV or Parquet file")
     if not stat.S_ISREG(st.st_mode):
         kind = next((what for test, what in _KINDS if test(st.st_mode)), "not a regular file")
-        raise InputError(f"bad input: '{path}' is {kind}, not a regular file; expected a CSV or Parquet file "
-                         "(copy the data into a file first)")
+        raise InputError(
+            f"bad input: '{path}' is {kind}, not a regular file; expected a CSV or Parquet file "
+            "(copy the data into a file first)"
+        )
     if not os.access(path, os.R_OK):
         raise InputError(f"bad input: the file '{path}' cannot be read (permission denied)")
     if st.st_size == 0:
@@ -736,12 +828,15 @@ def _sniff_delimiter(path: Path, encoding: str, columns=()) -> str:
     where that does not decide, the csv module's guess, then the most frequent candidate."""
     import csv
 
-    with open(path, "r", encoding=encoding, newline="") as fh:
+    with open(path, encoding=encoding, newline="") as fh:
         sample = fh.read(64 * 1024)
     first = next((ln for ln in sample.splitlines() if ln.strip()), "")
     wanted = set(columns)
-    fits = [d for d in _SEPARATORS
-            if wanted and wanted <= {cell.strip() for cell in next(csv.reader([first], delimiter=d), [])}]
+    fits = [
+        d
+        for d in _SEPARATORS
+        if wanted and wanted <= {cell.strip() for cell in next(csv.reader([first], delimiter=d), [])}
+    ]
     if len(fits) == 1:
         return fits[0]
     candidates = "".join(fits) or _SEPARATORS
@@ -762,8 +857,10 @@ def check_encoding(encoding: str) -> str:
     # bytes-to-bytes codecs (base64, zlib, rot13) are known to Python but are no text encoding; open()
     # refuses them by this same attribute of the codec's record
     if info is None or not getattr(info, "_is_text_encoding", True):
-        raise InputError(f"bad option --encoding: {_show(encoding)} is not a text encoding Python knows; for example "
-                         "utf-8, cp1252, latin-1, utf-16") from None
+        raise InputError(
+            f"bad option --encoding: {_show(encoding)} is not a text encoding Python knows; for example "
+            "utf-8, cp1252, latin-1, utf-16"
+        ) from None
     return encoding
 
 
@@ -837,25 +934,31 @@ def _detect_encoding(path: Path, encoding: str | None) -> str:
     if head.startswith(b"\xff\xfe") or head.startswith(b"\xfe\xff"):
         return "utf-16"
     if b"\x00" in head:
-        raise InputError(f"bad input in '{path}': the file is not a text table (it holds NUL bytes); expected a CSV "
-                         "or Parquet file (UTF-16 or UTF-32 text without a byte-order mark: name it, for example "
-                         "--encoding utf-16)")
+        raise InputError(
+            f"bad input in '{path}': the file is not a text table (it holds NUL bytes); expected a CSV "
+            "or Parquet file (UTF-16 or UTF-32 text without a byte-order mark: name it, for example "
+            "--encoding utf-16)"
+        )
     bad = _scan_utf8(path)
     if bad is None:
         return "utf-8-sig"
     if bad is False:
         return "cp1252"
     line, data = bad
-    raise InputError(f"bad input in '{path}', line {line}: the file is UTF-8 except for this line, whose bytes "
-                     f"{_show_bytes(data)} are not (a line from another system, in Windows-1252?); correct the line, "
-                     "or name the encoding of the whole file with --encoding")
+    raise InputError(
+        f"bad input in '{path}', line {line}: the file is UTF-8 except for this line, whose bytes "
+        f"{_show_bytes(data)} are not (a line from another system, in Windows-1252?); correct the line, "
+        "or name the encoding of the whole file with --encoding"
+    )
 
 
 def check_number_format(thousands: str | None, decimal: str | None) -> None:
     """--thousands: one character that is neither a digit, a sign, an exponent letter nor the decimal mark."""
     if thousands is not None and (len(thousands) != 1 or thousands.isalnum() or thousands in "+-"):
-        raise InputError(f"bad option --thousands: expected one separator character such as ',' '.' or \"'\"; "
-                         f"found {_show(thousands)}")
+        raise InputError(
+            f"bad option --thousands: expected one separator character such as ',' '.' or \"'\"; "
+            f"found {_show(thousands)}"
+        )
     if thousands is not None and thousands == (decimal or "."):
         raise InputError(f"bad options: the thousands separator and the decimal mark are both '{thousands}'")
 
@@ -867,9 +970,16 @@ def _roles(columns, text_columns=()) -> dict[str, str]:
     return roles
 
 
-def iter_table_chunks(path, columns: list[str], encoding: str | None = None, delimiter: str | None = None,
-                      chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None,
-                      text_columns=()):
+def iter_table_chunks(
+    path,
+    columns: list[str],
+    encoding: str | None = None,
+    delimiter: str | None = None,
+    chunk_rows: int = _CHUNK_ROWS,
+    thousands: str | None = None,
+    decimal: str | None = None,
+    text_columns=(),
+):
     """Yield (row_offset, DataFrame) chunks holding `columns` of a CSV or Parquet file.
 
     `thousands` is a digit-group separator inside numbers (for example ","), `decimal` the decimal mark
@@ -900,26 +1010,32 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
             if offset == 0:
                 raise InputError(explain_no_rows(pf, columns, src))
             if offset != pf.metadata.num_rows:  # a value count damaged in the footer: pyarrow stops early
-                raise InputError(f"bad input in '{src}': a damaged Parquet file: its footer says "
-                                 f"{pf.metadata.num_rows} rows but {offset} could be read")
+                raise InputError(
+                    f"bad input in '{src}': a damaged Parquet file: its footer says "
+                    f"{pf.metadata.num_rows} rows but {offset} could be read"
+                )
         finally:
             pf.close()
         return
     enc = _detect_encoding(path, encoding)
     check_number_format(thousands, decimal)
-    if delimiter is not None and (len(delimiter) != 1 or delimiter in "\r\n\"" or delimiter.isalnum()):
-        raise InputError(f"bad option --delimiter: expected one separator character such as ',' ';' '|' or a tab; "
-                         f"found {_show(delimiter)}")
+    if delimiter is not None and (len(delimiter) != 1 or delimiter in '\r\n"' or delimiter.isalnum()):
+        raise InputError(
+            f"bad option --delimiter: expected one separator character such as ',' ';' '|' or a tab; "
+            f"found {_show(delimiter)}"
+        )
     try:
         sep = delimiter or _sniff_delimiter(path, enc, columns)  # "1,5" with a comma separator works when quoted
         raw_header, first_row = _first_rows(path, enc, sep)
         if raw_header is None:
             raise InputError(f"bad input in '{src}': the file has no header and no data")
         _require_columns(raw_header, _roles(columns, text_columns), src)
-        if first_row is not None and any(c.strip() for c in first_row[len(raw_header):]):
+        if first_row is not None and any(c.strip() for c in first_row[len(raw_header) :]):
             # pandas would take the surplus as an index and shift every column by one
-            raise InputError(f"bad input in '{src}', row 1: expected {len(raw_header)} fields as in the header, found "
-                             f"{len(first_row)} (an unquoted '{sep}' inside a label or a number?)")
+            raise InputError(
+                f"bad input in '{src}', row 1: expected {len(raw_header)} fields as in the header, found "
+                f"{len(first_row)} (an unquoted '{sep}' inside a label or a number?)"
+            )
         header = list(pd.read_csv(path, sep=sep, nrows=0, encoding=enc, skipinitialspace=True).columns)
         names = [str(c).strip() for c in header]
         where = [names.index(c) for c in columns]
@@ -928,9 +1044,18 @@ def iter_table_chunks(path, columns: list[str], encoding: str | None = None, del
         text = {c: str for c in header if c not in numeric}
         rows = chunk_rows if len(header) <= 8 else max(1, chunk_rows * 8 // len(header))
         reader = pd.read_csv(
-            path, sep=sep, index_col=False, dtype=text, keep_default_na=False,
-            na_values={c: _MISSING for c in numeric}, skip_blank_lines=True, encoding=enc, chunksize=rows,
-            thousands=thousands, decimal=decimal or ".", skipinitialspace=True,
+            path,
+            sep=sep,
+            index_col=False,
+            dtype=text,
+            keep_default_na=False,
+            na_values={c: _MISSING for c in numeric},
+            skip_blank_lines=True,
+            encoding=enc,
+            chunksize=rows,
+            thousands=thousands,
+            decimal=decimal or ".",
+            skipinitialspace=True,
         )
     except UnicodeError as exc:
         raise InputError(_encoding_message(src, enc, exc, detected=not encoding)) from None
@@ -976,17 +1101,23 @@ def open_parquet(path, src: str):
     try:
         return pq.ParquetFile(path, page_checksum_verification=True)
     except Exception as exc:  # pyarrow raises several types for a damaged file
-        raise InputError(f"bad input in '{src}': not a readable Parquet file: its footer, which describes its columns "
-                         f"and rows, is damaged or cut short (pyarrow: {_one_line(exc)[:160]})") from None
+        raise InputError(
+            f"bad input in '{src}': not a readable Parquet file: its footer, which describes its columns "
+            f"and rows, is damaged or cut short (pyarrow: {_one_line(exc)[:160]})"
+        ) from None
 
 
 def parquet_damage(src: str, offset: int, exc: Exception) -> str:
     """The one line for a Parquet page that cannot be read, or whose bytes do not match its checksum."""
     if "CRC checksum verification failed" in str(exc):
-        return (f"bad input in '{src}': a damaged Parquet file: a page of the rows after row {offset} does not match "
-                "the checksum written with it (its bytes changed after it was written); nothing was read from it")
-    return f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} cannot be read " \
-           f"({_one_line(exc)[:200]})"
+        return (
+            f"bad input in '{src}': a damaged Parquet file: a page of the rows after row {offset} does not match "
+            "the checksum written with it (its bytes changed after it was written); nothing was read from it"
+        )
+    return (
+        f"bad input in '{src}': a damaged Parquet file; the rows after row {offset} cannot be read "
+        f"({_one_line(exc)[:200]})"
+    )
 
 
 def _arrow_family(t) -> str:
@@ -995,12 +1126,25 @@ def _arrow_family(t) -> str:
 
     if pa.types.is_dictionary(t):
         t = t.value_type
-    checks = [("text", (pa.types.is_string, pa.types.is_large_string, pa.types.is_binary, pa.types.is_large_binary,
-                        pa.types.is_fixed_size_binary, getattr(pa.types, "is_string_view", lambda _: False),
-                        getattr(pa.types, "is_binary_view", lambda _: False))),
-              ("integer", (pa.types.is_integer,)), ("floating", (pa.types.is_floating,)),
-              ("decimal", (pa.types.is_decimal,)), ("boolean", (pa.types.is_boolean,)),
-              ("time", (pa.types.is_temporal,))]
+    checks = [
+        (
+            "text",
+            (
+                pa.types.is_string,
+                pa.types.is_large_string,
+                pa.types.is_binary,
+                pa.types.is_large_binary,
+                pa.types.is_fixed_size_binary,
+                getattr(pa.types, "is_string_view", lambda _: False),
+                getattr(pa.types, "is_binary_view", lambda _: False),
+            ),
+        ),
+        ("integer", (pa.types.is_integer,)),
+        ("floating", (pa.types.is_floating,)),
+        ("decimal", (pa.types.is_decimal,)),
+        ("boolean", (pa.types.is_boolean,)),
+        ("time", (pa.types.is_temporal,)),
+    ]
     return next((name for name, tests in checks if any(test(t) for test in tests)), "other")
 
 
@@ -1035,8 +1179,7 @@ def check_parquet_footer(pf, columns, src: str) -> None:
         if name in kept.names and name in have.names:
             a, b = kept.field(name).type, have.field(name).type
             if _arrow_family(a) != _arrow_family(b):
-                raise InputError(f"{damaged}: column '{name}' was written as {a} but its Parquet type now reads as "
-                                 f"{b}")
+                raise InputError(f"{damaged}: column '{name}' was written as {a} but its Parquet type now reads as {b}")
 
 
 def explain_no_rows(pf, columns, src: str) -> str:
@@ -1051,8 +1194,9 @@ def explain_no_rows(pf, columns, src: str) -> str:
     """
     meta = pf.metadata
     schema = pf.schema
-    wanted = [i for i in range(len(schema)) if schema.column(i).path in columns
-              and schema.column(i).max_repetition_level == 0]
+    wanted = [
+        i for i in range(len(schema)) if schema.column(i).path in columns and schema.column(i).max_repetition_level == 0
+    ]
     damaged = f"bad input in '{src}': a damaged Parquet file"
     for k in range(meta.num_row_groups):
         rg = meta.row_group(k)
@@ -1060,16 +1204,23 @@ def explain_no_rows(pf, columns, src: str) -> str:
             col = rg.column(i)
             name = schema.column(i).path
             if col.num_values != rg.num_rows:
-                return (f"{damaged}: row group {k + 1} says {rg.num_rows} rows but its column '{name}' holds "
-                        f"{col.num_values} values")
+                return (
+                    f"{damaged}: row group {k + 1} says {rg.num_rows} rows but its column '{name}' holds "
+                    f"{col.num_values} values"
+                )
             st = col.statistics
             if rg.num_rows == 0 and st is not None and st.has_min_max:
-                return (f"{damaged}: row group {k + 1} says 0 rows but its column '{name}' records values (from "
-                        f"{_show(st.min, 30)} to {_show(st.max, 30)})")
+                return (
+                    f"{damaged}: row group {k + 1} says 0 rows but its column '{name}' records values (from "
+                    f"{_show(st.min, 30)} to {_show(st.max, 30)})"
+                )
     if meta.num_rows:
         return f"{damaged}: its footer says {meta.num_rows} rows but none could be read"
-    groups = "no row group" if meta.num_row_groups == 0 else f"{meta.num_row_groups} empty row group" + (
-        "s" if meta.num_row_groups > 1 else "")
+    groups = (
+        "no row group"
+        if meta.num_row_groups == 0
+        else f"{meta.num_row_groups} empty row group" + ("s" if meta.num_row_groups > 1 else "")
+    )
     return f"bad input in '{src}': the Parquet file has the columns but no rows ({groups})"
 
 
@@ -1083,9 +1234,10 @@ def _check_parquet_text(batch, src: str, offset: int) -> None:
             try:
                 column.validate(full=True)
             except (pa.ArrowInvalid, pa.ArrowException) as exc:
-                raise InputError(f"bad input in '{src}', column '{name}', rows {offset + 1} to {offset + len(column)}: "
-                                 f"text that is not valid UTF-8, a damaged Parquet file? ({_one_line(exc)[:120]})"
-                                 ) from None
+                raise InputError(
+                    f"bad input in '{src}', column '{name}', rows {offset + 1} to {offset + len(column)}: "
+                    f"text that is not valid UTF-8, a damaged Parquet file? ({_one_line(exc)[:120]})"
+                ) from None
 
 
 def _one_line(exc) -> str:
@@ -1102,7 +1254,7 @@ def _stand_in(exc):
     if isinstance(exc, UnicodeDecodeError):
         found = getattr(_UNDECODABLE, "found", None)
         if found is not None and not found:
-            found.append((bytes(exc.object[exc.start:exc.end]), exc.reason))
+            found.append((bytes(exc.object[exc.start : exc.end]), exc.reason))
         return _STAND_IN, exc.end
     raise exc
 
@@ -1168,14 +1320,18 @@ def _encoding_message(src: str, enc: str, exc: UnicodeError, detected: bool = Fa
     how = detected and enc == "cp1252"
     found = first_undecodable(src, enc) if Path(src).is_file() else None
     if found is None:
-        return f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
+        return (
+            f"bad input in '{src}': the text is not in the {enc} encoding ({what}); name the right one with --encoding"
+        )
     line, bad, reason, raw = found
     if reason in ("truncated data", "unexpected end of data"):  # the codecs' words for a character cut off at the end
         reason = "the file ends inside a character"
     enc = "UTF-8" if enc == "utf-8-sig" else enc  # the detected UTF-8, read past a byte-order mark if one is there
     if not bad:
-        return f"bad input in '{src}', line {line}: the text is not in the {enc} encoding ({reason}); name the " \
-               "file's encoding with --encoding"
+        return (
+            f"bad input in '{src}', line {line}: the text is not in the {enc} encoding ({reason}); name the "
+            "file's encoding with --encoding"
+        )
     shown = " ".join(f"0x{b:02X}" for b in bad[:8]) + (" …" if len(bad) > 8 else "")
     which = f"the byte {shown} is" if len(bad) == 1 else f"the bytes {shown} are"
     where = f"; the line's bytes are {_show_bytes_at(raw, bad)}" if raw is not None else ""
@@ -1183,15 +1339,17 @@ def _encoding_message(src: str, enc: str, exc: UnicodeError, detected: bool = Fa
         said = f"the file holds no UTF-8 text and was read as Windows-1252 (cp1252), in which {which} not text"
     else:
         said = f"{which} not text in the {enc} encoding"
-    return (f"bad input in '{src}', line {line}: {said} ({reason}){where}; correct the line, or name the file's "
-            "encoding with --encoding")
+    return (
+        f"bad input in '{src}', line {line}: {said} ({reason}){where}; correct the line, or name the file's "
+        "encoding with --encoding"
+    )
 
 
 def _show_bytes_at(line: bytes, bad: bytes, limit: int = 60) -> str:
     """A line's bytes for a one-line message, cut around the first occurrence of `bad`."""
     start = max(line.find(bad), 0) if bad else 0
     lo = max(0, start - limit // 2)
-    cut = line[lo:lo + limit]
+    cut = line[lo : lo + limit]
     return ("…" if lo else "") + repr(cut) + ("…" if lo + limit < len(line) else "")
 
 
@@ -1199,8 +1357,18 @@ def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:
     """The text of one cell of a CSV as it stands in the file (data row `row`, 1-based), read again
     with every cell as text: for messages only, on the error path."""
     try:
-        with pd.read_csv(src, sep=sep, dtype=str, keep_default_na=False, index_col=False, usecols=[column],
-                         skip_blank_lines=True, encoding=enc, chunksize=100_000, skipinitialspace=True) as reader:
+        with pd.read_csv(
+            src,
+            sep=sep,
+            dtype=str,
+            keep_default_na=False,
+            index_col=False,
+            usecols=[column],
+            skip_blank_lines=True,
+            encoding=enc,
+            chunksize=100_000,
+            skipinitialspace=True,
+        ) as reader:
             seen = 0
             for chunk in reader:
                 if seen + len(chunk) >= row:
@@ -1214,8 +1382,10 @@ def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:
 def _parser_message(src: str, exc, sep: str) -> str:
     m = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", str(exc))
     if m:
-        return (f"bad input in '{src}', line {m.group(2)}: expected {m.group(1)} fields as in the header, found "
-                f"{m.group(3)} (an unquoted '{sep}' inside a label or a number?)")
+        return (
+            f"bad input in '{src}', line {m.group(2)}: expected {m.group(1)} fields as in the header, found "
+            f"{m.group(3)} (an unquoted '{sep}' inside a label or a number?)"
+        )
     return f"bad input in '{src}': cannot be read as a table ({_one_line(exc)})"
 
 
@@ -1229,7 +1399,7 @@ def _first_rows(path: Path, enc: str, sep: str) -> tuple[list[str] | None, list[
         return [str(c).strip() for c in header], None
     header = None
     try:
-        with open(path, "r", encoding=enc, newline="") as fh:
+        with open(path, encoding=enc, newline="") as fh:
             for row in csv.reader(fh, delimiter=sep, skipinitialspace=True):
                 if not any(cell.strip() for cell in row):
                     continue
@@ -1245,9 +1415,18 @@ def _first_rows(path: Path, enc: str, sep: str) -> tuple[list[str] | None, list[
     return header, None
 
 
-def read_table(path, group: str, value: str, *, encoding: str | None = None, delimiter: str | None = None,
-               chunk_rows: int = _CHUNK_ROWS, thousands: str | None = None, decimal: str | None = None,
-               group_columns=()) -> GroupStats:
+def read_table(
+    path,
+    group: str,
+    value: str,
+    *,
+    encoding: str | None = None,
+    delimiter: str | None = None,
+    chunk_rows: int = _CHUNK_ROWS,
+    thousands: str | None = None,
+    decimal: str | None = None,
+    group_columns=(),
+) -> GroupStats:
     """Statistics of a long table in a CSV or Parquet file, read in chunks of `chunk_rows` rows.
 
     Peak memory grows with the number of groups and the chunk size, not with the file's rows.
@@ -1261,8 +1440,9 @@ def read_table(path, group: str, value: str, *, encoding: str | None = None, del
     csv_file = not _is_parquet(_open_check(path))
     extra = _check_column_names(group_columns, {group: "group labels", value: "measurements"}, src)
     per_group = _PerGroup(extra, src) if extra else None
-    chunks = iter_table_chunks(path, [group, value, *extra], encoding, delimiter, chunk_rows, thousands, decimal,
-                               text_columns=extra)
+    chunks = iter_table_chunks(
+        path, [group, value, *extra], encoding, delimiter, chunk_rows, thousands, decimal, text_columns=extra
+    )
     with contextlib.closing(chunks):  # a refused chunk closes the file at once, not when collected
         for offset, df in chunks:
             labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
@@ -1283,18 +1463,24 @@ def _written(df: pd.DataFrame):
     return lambda row: _cell_text(where[0], where[1], where[2], where[3], row)
 
 
-def _read_whole(path, columns, encoding=None, delimiter=None, thousands=None, decimal=None,
-                text_columns=()) -> pd.DataFrame:
-    parts = [df for _, df in iter_table_chunks(path, columns, encoding, delimiter, thousands=thousands, decimal=decimal,
-                                               text_columns=text_columns)]
+def _read_whole(
+    path, columns, encoding=None, delimiter=None, thousands=None, decimal=None, text_columns=()
+) -> pd.DataFrame:
+    parts = [
+        df
+        for _, df in iter_table_chunks(
+            path, columns, encoding, delimiter, thousands=thousands, decimal=decimal, text_columns=text_columns
+        )
+    ]
     df = pd.concat(parts, ignore_index=True)
     if not _is_parquet(Path(path)):  # blanks around a label in a CSV are formatting, as in read_table
         df[columns[0]] = df[columns[0]].str.strip()
     return df
 
 
-def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", group_columns=(),
-                   **read) -> GroupStats:
+def from_summaries(
+    data, group: str, n: str, mean: str, sd: str, source: str = "<frame>", group_columns=(), **read
+) -> GroupStats:
     """Statistics from one row per group: its size n, mean and sample standard deviation (ddof=1), and
     `group_columns` (predictors: one value per group).
 
@@ -1303,8 +1489,9 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
     where = str(data) if not isinstance(data, pd.DataFrame) else source
-    extra = _check_column_names(group_columns, {group: "group labels", n: "sizes", mean: "means",
-                                                sd: "standard deviations"}, where)
+    extra = _check_column_names(
+        group_columns, {group: "group labels", n: "sizes", mean: "means", sd: "standard deviations"}, where
+    )
     _check_distinct({"group": group, "size": n, "mean": mean, "standard deviation": sd})
     if not isinstance(data, pd.DataFrame):
         source = str(data)
@@ -1313,8 +1500,9 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
         sha = _sha256_file(Path(source))
     else:
         sha = None
-    _require_columns(data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd,
-                                    **_roles([], extra)}, source)
+    _require_columns(
+        data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd, **_roles([], extra)}, source
+    )
     labels = _check_groups(data[group], source, group, 0)
     _check_unique(labels, source, group)
     nv = _check_values(data[n], source, n, 0)
@@ -1327,12 +1515,16 @@ def from_summaries(data, group: str, n: str, mean: str, sd: str, source: str = "
     for i in range(len(nv)):
         if nv[i] < 1 or nv[i] != np.round(nv[i]) or nv[i] > MAX_COUNT:
             found = _show(data[n].iloc[i]) if nv[i] > MAX_COUNT else f"{nv[i]:g}"
-            raise InputError(f"bad input in {_where(source)}, column '{n}', group {_show(labels.iloc[i])}: "
-                             f"expected a whole number of at least 1 and at most 2^53 = {MAX_COUNT:.0f} (the counts "
-                             f"a double holds exactly), found {found}")
+            raise InputError(
+                f"bad input in {_where(source)}, column '{n}', group {_show(labels.iloc[i])}: "
+                f"expected a whole number of at least 1 and at most 2^53 = {MAX_COUNT:.0f} (the counts "
+                f"a double holds exactly), found {found}"
+            )
         if sv[i] < 0:
-            raise InputError(f"bad input in {_where(source)}, column '{sd}', group {_show(labels.iloc[i])}: "
-                             f"expected a standard deviation >= 0, found {sv[i]:g}")
+            raise InputError(
+                f"bad input in {_where(source)}, column '{sd}', group {_show(labels.iloc[i])}: "
+                f"expected a standard deviation >= 0, found {sv[i]:g}"
+            )
     unit = choose_unit(mv, sv)
     mv, sv = mv / unit, sv / unit
     m2 = sv * sv * np.maximum(nv - 1, 0)
@@ -1348,8 +1540,16 @@ def _empty_cells(col: pd.Series) -> np.ndarray:
     return empty
 
 
-def from_estimates(data, group: str, estimate: str, std_error: str, source: str = "<frame>",
-                   n: str | None = None, group_columns=(), **read) -> GroupStats:
+def from_estimates(
+    data,
+    group: str,
+    estimate: str,
+    std_error: str,
+    source: str = "<frame>",
+    n: str | None = None,
+    group_columns=(),
+    **read,
+) -> GroupStats:
     """Statistics for the `known` structure: one estimate and its standard error per group (and `group_columns`,
     predictors: one value per group).
 
@@ -1366,8 +1566,9 @@ def from_estimates(data, group: str, estimate: str, std_error: str, source: str 
         sha = _sha256_file(Path(source))
     else:
         sha = None
-    _require_columns(data.columns, {"group": group, "estimate": estimate, "standard error": std_error,
-                                    **_roles([], extra)}, source)
+    _require_columns(
+        data.columns, {"group": group, "estimate": estimate, "standard error": std_error, **_roles([], extra)}, source
+    )
     labels = _check_groups(data[group], source, group, 0)
     _check_unique(labels, source, group)
     est = _check_values(data[estimate], source, estimate, 0)
@@ -1375,12 +1576,23 @@ def from_estimates(data, group: str, estimate: str, std_error: str, source: str 
     bad = se <= 0
     if bad.any():
         i = int(np.argmax(bad))
-        raise InputError(f"bad input in {_where(source)}, column '{std_error}', group {_show(labels.iloc[i])}: "
-                         f"expected a standard error > 0, found {se[i]:g}")
+        raise InputError(
+            f"bad input in {_where(source)}, column '{std_error}', group {_show(labels.iloc[i])}: "
+            f"expected a standard error > 0, found {se[i]:g}"
+        )
     nn = np.zeros(len(est), dtype=np.int64) if n is None else _check_values(data[n], source, n, 0).astype(np.int64)
     unit = choose_unit(est, se)
-    out = GroupStats(tuple(labels), nn, est / unit, np.zeros(len(est)), se=se / unit, kind="known", unit=unit,
-                     source=source, file_sha256=sha)
+    out = GroupStats(
+        tuple(labels),
+        nn,
+        est / unit,
+        np.zeros(len(est)),
+        se=se / unit,
+        kind="known",
+        unit=unit,
+        source=source,
+        file_sha256=sha,
+    )
     return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
 
 
@@ -1388,5 +1600,7 @@ def _check_unique(labels: pd.Series, source: str, column: str):
     dup = labels.duplicated()
     if dup.any():
         i = int(np.argmax(dup.to_numpy()))
-        raise InputError(f"bad input in {_where(source)}, column '{column}', row {i + 1}: "
-                         f"expected one row per group, found {_show(labels.iloc[i])} again")
+        raise InputError(
+            f"bad input in {_where(source)}, column '{column}', row {i + 1}: "
+            f"expected one row per group, found {_show(labels.iloc[i])} again"
+        )

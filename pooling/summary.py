@@ -71,6 +71,7 @@ group a classic (not split, not rank-normalised) R-hat of theta from the chains'
 variances is reported beside it, as a screen, not a target: over 1e6 groups some exceed 1.01 by
 chance at any run length.
 """
+
 from __future__ import annotations
 
 import os
@@ -85,8 +86,7 @@ from .asked import PURPOSE_KEPT, ReportOptions, check_k, derived_rng, resolve_gr
 from .errors import InputError
 from .model import Problem
 from .posterior import Fit, _jsonable_miss
-from .sampler import (RawDraws, Settings, _Chain, _progress, _run_phase, diagnose_raw, draw_until_targets,
-                      resolve_seed)
+from .sampler import RawDraws, Settings, _Chain, _progress, _run_phase, diagnose_raw, draw_until_targets, resolve_seed
 
 AUTO_GROUPS = 20_000
 AUTO_BYTES = 8 * 2**30
@@ -145,25 +145,41 @@ def wants_summary(problem: Problem, settings: Settings | None, choice=None) -> b
     return J > AUTO_GROUPS or full_draw_bytes(J, problem.model.within, settings) > AUTO_BYTES
 
 
-def summary_bytes(J: int, within: str, chains: int, bins: int = BINS, limits: bool = False,
-                  draw_cap: int = 4000, levels: bool = False) -> int:
+def summary_bytes(
+    J: int, within: str, chains: int, bins: int = BINS, limits: bool = False, draw_cap: int = 4000, levels: bool = False
+) -> int:
     """About how many bytes summary mode holds per run (accumulators and scratch), excluding the data; levels:
     ranks within the levels of categorical predictors (3 running sums, a bucket index and about two bucket
     counts per group and chain)."""
-    rows = (1 + (2 if within == "separate" else 0) + (1 if limits and within != "known" else 0)
-            + (1 if J < BIAS_HIST_GROUPS else 0))
+    rows = (
+        1
+        + (2 if within == "separate" else 0)
+        + (1 if limits and within != "known" else 0)
+        + (1 if J < BIAS_HIST_GROUPS else 0)
+    )
     count = 2 if draw_cap <= np.iinfo(np.uint16).max else 4
     # per chain: histograms, out-of-grid extremes, running means, counters, bucket index and count,
     # the chain's theta, sigma^2 and lambda, the sweep's scratch (v, 1/lambda, z^2, SS/2) and sigma_j;
     # shared: grid origin and widths and the rank -> rank-bin table
     rank_bins = len(rank_grid(J, RANK_BINS, RANK_EXACT)) - 1
-    per_chain = (rows * (bins + 2) * count + rows * 16 + A.N_R * 8 + A.N_H * 4 + 4 + 8 + 8 * 8
-                 + rank_bins * count + 4 + (3 * 8 + 8 + 2 * 8 if levels else 0))
+    per_chain = (
+        rows * (bins + 2) * count
+        + rows * 16
+        + A.N_R * 8
+        + A.N_H * 4
+        + 4
+        + 8
+        + 8 * 8
+        + rank_bins * count
+        + 4
+        + (3 * 8 + 8 + 2 * 8 if levels else 0)
+    )
     return int(J * (chains * per_chain + rows * 24 + 4))
 
 
 # ---------------------------------------------------------------------------------------------
 # chains
+
 
 class _SummaryChain(_Chain):
     """A full-draw chain (same start, same stream) whose post-warm-up draws update running summaries."""
@@ -191,26 +207,41 @@ class _SummaryChain(_Chain):
                 if stop.is_set():
                     return
                 k = min(chunk, n_sweeps - done)
-                sk.pilot(self.rng, k, d, self.state, self.work, self.sg, setup.asked, setup.logn,
-                         setup.rowmap[sk.Q_BIAS] >= 0, setup.asked[A.A_LIMITS] > 0, self.count, self.pilot_mean,
-                         self.pilot_msq)
+                sk.pilot(
+                    self.rng,
+                    k,
+                    d,
+                    self.state,
+                    self.work,
+                    self.sg,
+                    setup.asked,
+                    setup.logn,
+                    setup.rowmap[sk.Q_BIAS] >= 0,
+                    setup.asked[A.A_LIMITS] > 0,
+                    self.count,
+                    self.pilot_mean,
+                    self.pilot_msq,
+                )
                 done += k
                 tick(k)
             return
         m = setup.kept.shape[0]
         heavy = p.heavy
-        out = sk.KeptRows(np.empty((n_sweeps, sk.N_Y + d.X.shape[1])), np.empty(n_sweeps),
-                          np.empty((n_sweeps, m)),
-                          np.empty((n_sweeps, m if p.within_code == 0 else 0)),
-                          np.empty((n_sweeps, m if heavy else 0)),
-                          np.empty((n_sweeps, m), dtype=np.int64))
+        out = sk.KeptRows(
+            np.empty((n_sweeps, sk.N_Y + d.X.shape[1])),
+            np.empty(n_sweeps),
+            np.empty((n_sweeps, m)),
+            np.empty((n_sweeps, m if p.within_code == 0 else 0)),
+            np.empty((n_sweeps, m if heavy else 0)),
+            np.empty((n_sweeps, m), dtype=np.int64),
+        )
         sh = setup.frozen()
         done = 0
         while done < n_sweeps:
             if stop.is_set():
                 return
             k = min(chunk, n_sweeps - done)
-            rows = sk.KeptRows(*(x[done:done + k] for x in out))
+            rows = sk.KeptRows(*(x[done : done + k] for x in out))
             sk.summarise(self.rng, k, d, self.state, self.work, sh, self.acc, rows)
             done += k
             tick(k)
@@ -219,8 +250,13 @@ class _SummaryChain(_Chain):
     def export_state(self) -> dict:
         # arrays, not lists: at a million groups a list of Python floats costs 30 bytes a number
         st = self.state
-        return {"state": st.scalars.copy(), "theta": st.theta.copy(), "sigma2": st.sigma2.copy(), "lam": st.lam.copy(),
-                "beta": st.beta.copy()}
+        return {
+            "state": st.scalars.copy(),
+            "theta": st.theta.copy(),
+            "sigma2": st.sigma2.copy(),
+            "lam": st.lam.copy(),
+            "beta": st.beta.copy(),
+        }
 
 
 @dataclass
@@ -247,8 +283,21 @@ class _Setup:
     lev_bucket: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # each level's bucket (lo, 1/width)
 
     def frozen(self) -> sk.Shared:
-        return sk.Shared(self.asked, self.cuts, int(self.k), self.logn, self.rowmap, self.glo, self.ginv, self.bucket,
-                         self.kept, self.rank_bin, self.lev, self.lev_off, self.lev_bucket)
+        return sk.Shared(
+            self.asked,
+            self.cuts,
+            int(self.k),
+            self.logn,
+            self.rowmap,
+            self.glo,
+            self.ginv,
+            self.bucket,
+            self.kept,
+            self.rank_bin,
+            self.lev,
+            self.lev_off,
+            self.lev_bucket,
+        )
 
 
 def _rowmap(problem: Problem, asked: np.ndarray) -> np.ndarray:
@@ -368,6 +417,7 @@ def _choose_kept(problem: Problem, sopts: SummaryOptions, named: np.ndarray, x_m
 # ---------------------------------------------------------------------------------------------
 # the run
 
+
 @dataclass
 class Accumulated:
     """Every chain's running summaries, stacked on a leading chain axis, and what was shared."""
@@ -387,9 +437,14 @@ class Accumulated:
     lrun: np.ndarray | None = None  # (chains, 3, J or 0): ranks within levels (summary_kernel.level_ranks)
 
 
-def sample_summary(problem: Problem, settings: Settings | None = None, options: ReportOptions | None = None,
-                   summary: SummaryOptions | None = None, progress: bool | None = None,
-                   init: list[dict] | None = None) -> tuple[RawDraws, Accumulated]:
+def sample_summary(
+    problem: Problem,
+    settings: Settings | None = None,
+    options: ReportOptions | None = None,
+    summary: SummaryOptions | None = None,
+    progress: bool | None = None,
+    init: list[dict] | None = None,
+) -> tuple[RawDraws, Accumulated]:
     """Warm up, place the grids, draw with running summaries, extend until the kept draws meet the targets.
 
     Returns the hyperparameter and kept-group draws as a RawDraws (theta, sigma and lambda over the kept
@@ -399,8 +454,10 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
     o = options or ReportOptions()
     sopts = summary or SummaryOptions()
     if settings.warmup < MIN_WARMUP:
-        raise InputError(f"bad option: summary mode needs at least {MIN_WARMUP} warm-up sweeps to place its "
-                         f"histogram grids; found --warmup {settings.warmup}")
+        raise InputError(
+            f"bad option: summary mode needs at least {MIN_WARMUP} warm-up sweeps to place its "
+            f"histogram grids; found --warmup {settings.warmup}"
+        )
     k = check_k(o.k, problem.J)
     named = resolve_groups(problem.stats.labels, sopts.keep) if sopts.keep else np.zeros(0, dtype=np.int64)
     seed = resolve_seed(settings)
@@ -408,8 +465,15 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
     chains = [_SummaryChain(problem, s, None if init is None else init[i]) for i, s in enumerate(streams)]
     asked = o.internal(problem.center, problem.scale, limits_apply=problem.within_code != 2)
     cuts = A.lambda_cuts(problem.df_grid) if problem.heavy else np.zeros(1)
-    setup = _Setup(asked=asked, cuts=cuts, k=k, logn=np.log(np.maximum(problem.n, 1e-300)),
-                   rowmap=_rowmap(problem, asked), bins=int(sopts.bins), level=float(o.level))
+    setup = _Setup(
+        asked=asked,
+        cuts=cuts,
+        k=k,
+        logn=np.log(np.maximum(problem.n, 1e-300)),
+        rowmap=_rowmap(problem, asked),
+        bins=int(sopts.bins),
+        level=float(o.level),
+    )
     for c in chains:
         c.shared = setup
     threads = settings.threads or min(settings.chains, os.cpu_count() or 1)
@@ -443,14 +507,37 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
             c.mode = "draw"
             L = setup.lev_bucket.shape[0]
             nb = int(setup.lev_off[-1])
-            c.acc = sk.Acc(acc["run"][i], acc["hits"][i], acc["hist"][i], acc["ext"][i], acc["rhist"][i],
-                           acc["wmax"][i], c.sg, np.zeros(G, dtype=np.int64), np.zeros(problem.J, dtype=np.int64),
-                           np.zeros(G, dtype=np.int64), np.zeros(1), acc["lrun"][i], np.zeros(nb, dtype=np.int64),
-                           np.zeros(problem.J if L else 0, dtype=np.int64), np.zeros(nb, dtype=np.int64), np.zeros(L),
-                           np.zeros(L, dtype=np.int64))
-        raw, rounds, have = draw_until_targets(chains, problem, settings, threads, bar, seed, start,
-                                               lambda r: diagnose_raw(r, settings.targets), collect=_collect,
-                                               timer=timer)
+            c.acc = sk.Acc(
+                acc["run"][i],
+                acc["hits"][i],
+                acc["hist"][i],
+                acc["ext"][i],
+                acc["rhist"][i],
+                acc["wmax"][i],
+                c.sg,
+                np.zeros(G, dtype=np.int64),
+                np.zeros(problem.J, dtype=np.int64),
+                np.zeros(G, dtype=np.int64),
+                np.zeros(1),
+                acc["lrun"][i],
+                np.zeros(nb, dtype=np.int64),
+                np.zeros(problem.J if L else 0, dtype=np.int64),
+                np.zeros(nb, dtype=np.int64),
+                np.zeros(L),
+                np.zeros(L, dtype=np.int64),
+            )
+        raw, rounds, have = draw_until_targets(
+            chains,
+            problem,
+            settings,
+            threads,
+            bar,
+            seed,
+            start,
+            lambda r: diagnose_raw(r, settings.targets),
+            collect=_collect,
+            timer=timer,
+        )
     finally:
         if bar is not None:
             bar.close()
@@ -460,8 +547,21 @@ def sample_summary(problem: Problem, settings: Settings | None = None, options: 
     raw.seconds = time.perf_counter() - start
     ranks = np.stack([np.concatenate([part["rank"] for part in c.parts], axis=0) for c in chains])
     sr = np.stack([np.concatenate([part["hyper"][:, sk.Y_SR] for part in c.parts]) for c in chains])
-    return raw, Accumulated(acc["run"], acc["hits"], acc["hist"], acc["ext"], setup, have, grid, ranks, G, sr,
-                            acc["rhist"], acc["wmax"], acc["lrun"])
+    return raw, Accumulated(
+        acc["run"],
+        acc["hits"],
+        acc["hist"],
+        acc["ext"],
+        setup,
+        have,
+        grid,
+        ranks,
+        G,
+        sr,
+        acc["rhist"],
+        acc["wmax"],
+        acc["lrun"],
+    )
 
 
 def _allocate(problem: Problem, settings: Settings, sh: _Setup, G: int) -> dict:
@@ -470,10 +570,15 @@ def _allocate(problem: Problem, settings: Settings, sh: _Setup, G: int) -> dict:
     count = np.uint16 if settings.draw_cap <= np.iinfo(np.uint16).max else np.uint32
     ext = np.empty((C, rows, J, 2))
     ext[..., 0], ext[..., 1] = np.inf, -np.inf
-    return {"run": np.zeros((C, A.N_R, J)), "hits": np.zeros((C, A.N_H, J), dtype=np.uint32),
-            "hist": np.zeros((C, rows, J, sh.bins + 2), dtype=count), "ext": ext,
-            "rhist": np.zeros((C, J, len(sh.rank_edges) - 1), dtype=count), "wmax": np.zeros((C, J), dtype=np.uint32),
-            "lrun": np.zeros((C, 3, J if sh.lev.shape[0] else 0))}
+    return {
+        "run": np.zeros((C, A.N_R, J)),
+        "hits": np.zeros((C, A.N_H, J), dtype=np.uint32),
+        "hist": np.zeros((C, rows, J, sh.bins + 2), dtype=count),
+        "ext": ext,
+        "rhist": np.zeros((C, J, len(sh.rank_edges) - 1), dtype=count),
+        "wmax": np.zeros((C, J), dtype=np.uint32),
+        "lrun": np.zeros((C, 3, J if sh.lev.shape[0] else 0)),
+    }
 
 
 def _collect(chains, problem: Problem, seed, settings, rounds, start) -> RawDraws:
@@ -485,17 +590,27 @@ def _collect(chains, problem: Problem, seed, settings, rounds, start) -> RawDraw
     sigma = stack("sigma") if within == 0 else hyper[:, :, sk.Y_SIGMA] if within == 1 else None
     heavy = problem.heavy
     return RawDraws(
-        mu=hyper[:, :, sk.Y_MU], tau=hyper[:, :, sk.Y_TAU], theta=stack("theta"), sigma=sigma,
-        s=hyper[:, :, sk.Y_S] if within == 0 else None, nu=hyper[:, :, sk.Y_NU] if within == 0 else None,
-        evals=stack("evals"), seed=seed, settings=settings, rounds=list(rounds),
-        seconds=time.perf_counter() - start, final_states=[],
-        df=hyper[:, :, sk.Y_DF] if heavy else None, lam=stack("lam") if heavy else None,
-        beta=np.ascontiguousarray(hyper[:, :, sk.N_Y:]) if problem.data.X.shape[1] else None,
+        mu=hyper[:, :, sk.Y_MU],
+        tau=hyper[:, :, sk.Y_TAU],
+        theta=stack("theta"),
+        sigma=sigma,
+        s=hyper[:, :, sk.Y_S] if within == 0 else None,
+        nu=hyper[:, :, sk.Y_NU] if within == 0 else None,
+        evals=stack("evals"),
+        seed=seed,
+        settings=settings,
+        rounds=list(rounds),
+        seconds=time.perf_counter() - start,
+        final_states=[],
+        df=hyper[:, :, sk.Y_DF] if heavy else None,
+        lam=stack("lam") if heavy else None,
+        beta=np.ascontiguousarray(hyper[:, :, sk.N_Y :]) if problem.data.X.shape[1] else None,
     )
 
 
 # ---------------------------------------------------------------------------------------------
 # the fit
+
 
 @dataclass(eq=False)
 class SummaryFit:
@@ -545,13 +660,21 @@ class SummaryFit:
         d = self.kept.diagnostics()
         names = self.kept_labels
         d["missed"] = [_jsonable_miss(m, names) for m in self.misses[:50]]
-        d["per_group_from"] = (f"the stored draws of {len(names)} kept groups (rank-normalised split R-hat, bulk and "
-                               "tail ESS); every group: classic R-hat from chain means (a screen)")
+        d["per_group_from"] = (
+            f"the stored draws of {len(names)} kept groups (rank-normalised split R-hat, bulk and "
+            "tail ESS); every group: classic R-hat from chain means (a screen)"
+        )
         return d
 
 
-def fit_summary(problem: Problem, settings: Settings | None = None, options: ReportOptions | None = None, keep=None,
-                progress: bool | None = None, init=None) -> SummaryFit:
+def fit_summary(
+    problem: Problem,
+    settings: Settings | None = None,
+    options: ReportOptions | None = None,
+    keep=None,
+    progress: bool | None = None,
+    init=None,
+) -> SummaryFit:
     """Run summary mode on a built problem. options: what will be asked of the run (pooling.asked.ReportOptions;
     its level, k, best, threshold, limits and allowed bias are counted while sampling); keep: a SummaryOptions
     or a list of labels."""

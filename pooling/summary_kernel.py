@@ -32,8 +32,8 @@ Ranks within levels (group-level categorical predictors): the same bucket count,
 its level and the half-width that bounds its error; P(best in the level) is an exact count (the largest value of
 each level, a stable first-wins scan as for P(best)).
 """
+
 from __future__ import annotations
-from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 
 import math
 from typing import NamedTuple
@@ -41,8 +41,9 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit
 
+from . import _jit_cache  # noqa: F401  (first: numba needs a writable cache folder, pooling/_jit_cache.py)
 from . import answers as A
-from .kernel import DF_IDX, ETA, MU, S2, NU_IDX, SIGMA2, sweep
+from .kernel import DF_IDX, ETA, MU, NU_IDX, S2, SIGMA2, sweep
 
 # summarised quantities: rows of the pilot arrays and (through rowmap) of the histograms
 Q_THETA, Q_LOGSIGMA, Q_LOGITW, Q_LOGITF, Q_BIAS = range(5)

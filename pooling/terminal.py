@@ -7,6 +7,7 @@ the groups are labs, the number rules of report/numbers.py (decimals from the da
 notation for ordinary numbers, probabilities whose ends are told apart), estimates without n, and a missed-targets
 line that says what to do.
 """
+
 from __future__ import annotations
 
 import sys
@@ -18,6 +19,7 @@ from .report.numbers import Values, ess, plural, prob, rhat, sig, typical_sd, wh
 
 MAX_ROWS = 12
 NAMED = 5  # names listed on a side of a decision before "and N more"
+
 
 class Numbers(Values):
     """Values for the terminal: decimals from a typical posterior sd, no digit-group separators."""
@@ -65,27 +67,39 @@ def print_results(res, out, stream=None) -> None:
         print(text, file=stream)
 
     num = Numbers(typical_sd(t["theta_sd"]) if len(t) else 1.0)
-    w(f"model: {p.model.within} within-group variances, {p.model.between.name} between-group distribution; priors: "
-      + "; ".join(f"{k} {v}" for k, v in p.model.priors().items() if k != "between"))
-    data = plural(st.J, noun) + (f", {plural(st.N, 'measurement')}" if st.kind == "raw" else
-                                 ", estimates with standard errors")
-    mode = (f"; summary mode: every draw kept for the hyperparameters and {plural(res.summary['kept_groups'], 'group')}"
-            if res.mode == "summary" else "")
+    w(
+        f"model: {p.model.within} within-group variances, {p.model.between.name} between-group distribution; priors: "
+        + "; ".join(f"{k} {v}" for k, v in p.model.priors().items() if k != "between")
+    )
+    data = plural(st.J, noun) + (
+        f", {plural(st.N, 'measurement')}" if st.kind == "raw" else ", estimates with standard errors"
+    )
+    mode = (
+        f"; summary mode: every draw kept for the hyperparameters and {plural(res.summary['kept_groups'], 'group')}"
+        if res.mode == "summary"
+        else ""
+    )
     w(f"data: {data}; {run['chains']} chains x {run['draws_per_chain']} draws, seed {run['seed']}{mode}")
     w()
-    head = (f"{'':8}{'median':>14}{lvl + ' interval':>31}{'mean':>14}{'sd':>12}{'R-hat':>8}{'bulk ESS':>10}"
-            f"{'tail ESS':>10}")
+    head = (
+        f"{'':8}{'median':>14}{lvl + ' interval':>31}{'mean':>14}{'sd':>12}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}"
+    )
     w(head)
     for name, s in res.hyper.items():
         f = (lambda x, extra=0: sig(x, 4, dash="-")) if name == "nu" else num
         interval = f"{f(s['low'])} to {f(s['high'])}"
-        w(f"{name:8}{f(s['median']):>14}{interval:>31}{f(s['mean']):>14}{f(s['sd'], 1):>12}"
-          f"{rhat(s['rhat'], '-'):>8}{ess(s['bulk_ess'], '-'):>10}{ess(s['tail_ess'], '-'):>10}")
+        w(
+            f"{name:8}{f(s['median']):>14}{interval:>31}{f(s['mean']):>14}{f(s['sd'], 1):>12}"
+            f"{rhat(s['rhat'], '-'):>8}{ess(s['bulk_ess'], '-'):>10}{ess(s['tail_ess'], '-'):>10}"
+        )
     if res.tail is not None:
         tl = res.tail
         median = "normal" if not np.isfinite(tl["median_df"]) else f"{tl['median_df']:g}"
-        df_txt = (f"df fixed at {tl['fixed_df']:g}" if tl["fixed_df"] is not None else
-                  f"df median {median}, P(normal) {prob(tl['p_normal'], '-')}")
+        df_txt = (
+            f"df fixed at {tl['fixed_df']:g}"
+            if tl["fixed_df"] is not None
+            else f"df median {median}, P(normal) {prob(tl['p_normal'], '-')}"
+        )
         flagged = tl["outlying"]
         names = ", ".join(_clip(x, 20) for x in flagged[:5]) + (" ..." if len(flagged) > 5 else "")
         w(f"heavy tails: {df_txt}; {plural(len(flagged), noun)} flagged outlying" + (f": {names}" if flagged else ""))
@@ -96,7 +110,7 @@ def print_results(res, out, stream=None) -> None:
         order = np.argsort(-np.abs(t["bias_mean"].to_numpy(dtype=float)), kind="stable")
     else:
         order = np.argsort(t["rank_mean"].to_numpy(), kind="stable")
-    rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2:]])
+    rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2 :]])
     lo, hi = res.col("theta_low"), res.col("theta_high")
     known = st.kind == "known"
     cols = [(noun, 24, "<"), ("n", 7, ">")] if not known else [(noun, 24, "<")]
@@ -118,8 +132,12 @@ def print_results(res, out, stream=None) -> None:
     if o.interlab:
         w(f"labs, largest bias first (bias: posterior mean of theta - mu; z against x_pt and sigma_pt){cut}")
     else:
-        w(f"{noun}s, best first (" + ("highest" if o.best == "highest" else "lowest") + " is best; shrink: the weight "
-          f"of the pooled mean in the estimate, 0 own mean to 1 pooled mean){cut}")
+        w(
+            f"{noun}s, best first ("
+            + ("highest" if o.best == "highest" else "lowest")
+            + " is best; shrink: the weight "
+            f"of the pooled mean in the estimate, 0 own mean to 1 pooled mean){cut}"
+        )
     w("".join(f"{name:{align}{width}}" for name, width, align in cols))
     for i, j in enumerate(rows):
         if len(order) > MAX_ROWS and i == MAX_ROWS // 2:
@@ -145,22 +163,37 @@ def print_results(res, out, stream=None) -> None:
             cells.append("yes" if t["outlying"].iat[j] else "")
         w("".join(f"{c:{align}{width}}" for c, (_, width, align) in zip(cells, cols)))
     if o.threshold is not None:
-        w(_side_line(t, "threshold_side", ("above", "below", "undecided"), f"threshold {o.threshold:g}", o.decide_at,
-                     noun))
+        w(
+            _side_line(
+                t, "threshold_side", ("above", "below", "undecided"), f"threshold {o.threshold:g}", o.decide_at, noun
+            )
+        )
     if o.limits:
         w(_side_line(t, "limits_side", ("outside", "inside", "undecided"), "limits, by the mean", o.decide_at, noun))
     if o.interlab:
         sig_ = t["z_signal"].to_numpy()
         act = t.loc[sig_ == "action", "group"].tolist()
         warn = t.loc[sig_ == "warning", "group"].tolist()
+
         def few(names):
-            return f" ({', '.join(_clip(x, 20) for x in names[:NAMED])}{' ...' if len(names) > NAMED else ''})" \
-                if names else ""
+            return (
+                f" ({', '.join(_clip(x, 20) for x in names[:NAMED])}{' ...' if len(names) > NAMED else ''})"
+                if names
+                else ""
+            )
 
         w(f"z-scores: {plural(len(act), 'action signal')}{few(act)}, {plural(len(warn), 'warning')}{few(warn)}")
         if o.allowed_bias is not None:
-            w(_side_line(t, "bias_side", ("over", "within", "undecided"), f"bias beyond +-{o.allowed_bias:g}",
-                         o.decide_at, noun))
+            w(
+                _side_line(
+                    t,
+                    "bias_side",
+                    ("over", "within", "undecided"),
+                    f"bias beyond +-{o.allowed_bias:g}",
+                    o.decide_at,
+                    noun,
+                )
+            )
     w()
     diag = res.diagnostics
     tg = diag["targets"]
@@ -173,16 +206,20 @@ def print_results(res, out, stream=None) -> None:
         if "group" in worst:
             what += f" of {_clip(worst['group'], 20)}"
         bulk = worst.get("bulk_ess")
-        w(f"diagnostics targets MISSED for {plural(diag['missed_count'], 'quantity', 'quantities')} after "
-          f"{run['draws_per_chain']} draws per chain (worst: {what}, R-hat {rhat(worst.get('rhat'), '-')}, bulk ESS "
-          f"{ess(bulk, '-')}); do not use these results yet: run again with more draws, "
-          f"for example --draws {2 * run['draws_requested']} --max-draws {8 * run['draws_requested']}, or with a "
-          "proper prior on tau (--tau half-cauchy:SCALE)")
+        w(
+            f"diagnostics targets MISSED for {plural(diag['missed_count'], 'quantity', 'quantities')} after "
+            f"{run['draws_per_chain']} draws per chain (worst: {what}, R-hat {rhat(worst.get('rhat'), '-')}, bulk ESS "
+            f"{ess(bulk, '-')}); do not use these results yet: run again with more draws, "
+            f"for example --draws {2 * run['draws_requested']} --max-draws {8 * run['draws_requested']}, or with a "
+            "proper prior on tau (--tau half-cauchy:SCALE)"
+        )
     if res.mode == "summary":
         cr = res.summary["figures"]["classic_rhat"]
         if cr["groups"]:
-            w(f"all groups, classic R-hat of theta: largest {rhat(cr['max'], '-')}, {whole(cr['above_1.01'])} at 1.01 "
-              "or more")
+            w(
+                f"all groups, classic R-hat of theta: largest {rhat(cr['max'], '-')}, {whole(cr['above_1.01'])} at 1.01 "
+                "or more"
+            )
     w(f"run folder: {out}" + (" (groups.csv has every group)" if res.mode == "summary" else ""))
 
 
@@ -194,18 +231,24 @@ def print_predictors(res, num: Numbers, lvl: str, w) -> None:
     w(f"why groups differ (group-level predictors; mu is {pr['mu_means']}):")
     for c in pr["coefficients"]:
         extra = 1 if c["kind"] == "category" else 2
-        w(f"  {_clip(c['name'], 30):32}{num(c['mean'], extra):>12}   {lvl} interval "
-          f"{num(c['low'], extra)} to {num(c['high'], extra)}   P(> 0) {prob(c['p_above_0'])}")
+        w(
+            f"  {_clip(c['name'], 30):32}{num(c['mean'], extra):>12}   {lvl} interval "
+            f"{num(c['low'], extra)} to {num(c['high'], extra)}   P(> 0) {prob(c['p_above_0'])}"
+        )
     ref = {c["column"]: c["reference"] for c in pr["categories"]}
     more = [c for c in pr["contrasts"] if c["b"] != ref[c["column"]]]
     for c in more[:10]:
-        w(f"  {_clip(c['column'] + ': ' + c['a'] + ' vs ' + c['b'], 30):32}{num(c['mean'], 1):>12}   {lvl} interval "
-          f"{num(c['low'], 1)} to {num(c['high'], 1)}   P(> 0) {prob(c['p_above_0'])}")
+        w(
+            f"  {_clip(c['column'] + ': ' + c['a'] + ' vs ' + c['b'], 30):32}{num(c['mean'], 1):>12}   {lvl} interval "
+            f"{num(c['low'], 1)} to {num(c['high'], 1)}   P(> 0) {prob(c['p_above_0'])}"
+        )
     if len(more) > 10:
         w(f"  ... {len(more) - 10} more differences between levels in summary.json")
     if pr["consensus"]:
-        shown = "; ".join(f"{_clip(c['level'], 16)} {num(c['mean'])} ({num(c['low'])} to {num(c['high'])})"
-                          for c in pr["consensus"][:6])
+        shown = "; ".join(
+            f"{_clip(c['level'], 16)} {num(c['mean'])} ({num(c['low'])} to {num(c['high'])})"
+            for c in pr["consensus"][:6]
+        )
         w(f"consensus value by level ({lvl} intervals): {shown}" + (" ..." if len(pr["consensus"]) > 6 else ""))
     sp = pr["spread"]
     tw = sp["tau_with"]
@@ -213,8 +256,10 @@ def print_predictors(res, num: Numbers, lvl: str, w) -> None:
     if sp["tau_without"] is not None:
         wo = sp["tau_without"]
         share = sp["share_explained"]
-        line += (f", {num(wo['mean'])} ({num(wo['low'])} to {num(wo['high'])}) without them (a second fit of the same "
-                 "data, made by this command)")
+        line += (
+            f", {num(wo['mean'])} ({num(wo['low'])} to {num(wo['high'])}) without them (a second fit of the same "
+            "data, made by this command)"
+        )
         if share is not None:
             line += f"; they explain {100 * share:.0f}% of tau^2"
     w(line)

@@ -16,6 +16,7 @@ Statistical Software 36(3), fits them as a worked example. The published figures
 tests/test_predictors_exact.py recomputes these with statsmodels and checks that the typed data reproduce them,
 so a typing error in the numbers below would fail there.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -39,9 +40,18 @@ TRIALS = [
 ]
 
 # Source: Viechtbauer (2010), JSS 36(3), the mixed-effects model with latitude (metafor's printout; from memory)
-PUBLISHED = {"tau2_latitude": 0.0764, "intercept": 0.2515, "intercept_se": 0.2491, "slope": -0.0291,
-             "slope_se": 0.0072, "qe": 30.7331, "tau2_none": 0.3132, "estimate_none": -0.7145,
-             "estimate_none_se": 0.1798, "r2": 0.7562}
+PUBLISHED = {
+    "tau2_latitude": 0.0764,
+    "intercept": 0.2515,
+    "intercept_se": 0.2491,
+    "slope": -0.0291,
+    "slope_se": 0.0072,
+    "qe": 30.7331,
+    "tau2_none": 0.3132,
+    "estimate_none": -0.7145,
+    "estimate_none_se": 0.1798,
+    "r2": 0.7562,
+}
 
 
 def frame() -> pd.DataFrame:

@@ -1,5 +1,6 @@
 """Shared fixtures. Data here are small invented tables for exercising the edges (not for checking
 statistics: the statistical tests name their outside references)."""
+
 from __future__ import annotations
 
 import os
@@ -34,8 +35,13 @@ def run_cli(capsys):
 def small_csv(tmp_path):
     """A tiny long table: five groups of uneven size."""
     rows = ["plant,thickness"]
-    values = {"P1": [10.1, 10.4, 9.8, 10.0], "P2": [10.9, 11.2], "P3": [9.5, 9.9, 9.7, 9.6, 9.8],
-              "P4": [10.3, 10.2, 10.6], "P5": [10.0, 10.8]}
+    values = {
+        "P1": [10.1, 10.4, 9.8, 10.0],
+        "P2": [10.9, 11.2],
+        "P3": [9.5, 9.9, 9.7, 9.6, 9.8],
+        "P4": [10.3, 10.2, 10.6],
+        "P5": [10.0, 10.8],
+    }
     for g, vs in values.items():
         rows += [f"{g},{v}" for v in vs]
     p = tmp_path / "plants.csv"

@@ -5,6 +5,7 @@ an unbalanced cut of the dyestuff batches (Davies 1947, via Box and Tiao 1973). 
 user's units, as a user states them; `internal` converts them to the kernel's units independently of
 model.build, so that a wrong conversion (or a wrong default) in model.build fails the tests that use it.
 """
+
 from __future__ import annotations
 
 import math
@@ -34,8 +35,12 @@ DYESTUFF = [
 CUT = [1, 2, 3, 4, 5, 5]
 
 # The defaults as the README states them (a mismatch with Model() is what the default tests catch).
-README_DEFAULT = {"mu": Flat(), "tau": Flat(), "s2": Reciprocal(), "nu_grid": (1.0, 1.5, 2.0, 3.0, 4.0, 5.0, 6.0, 8.0,
-                                                                                 10.0, 14.0, 20.0, 30.0, 50.0, 100.0)}
+README_DEFAULT = {
+    "mu": Flat(),
+    "tau": Flat(),
+    "s2": Reciprocal(),
+    "nu_grid": (1.0, 1.5, 2.0, 3.0, 4.0, 5.0, 6.0, 8.0, 10.0, 14.0, 20.0, 30.0, 50.0, 100.0),
+}
 
 
 def dyestuff_stats():
@@ -44,8 +49,9 @@ def dyestuff_stats():
 
 
 def schools_stats():
-    return from_estimates(pd.DataFrame({"school": list("ABCDEFGH"), "y": SCHOOLS_Y, "se": SCHOOLS_SE}),
-                          "school", "y", "se")
+    return from_estimates(
+        pd.DataFrame({"school": list("ABCDEFGH"), "y": SCHOOLS_Y, "se": SCHOOLS_SE}), "school", "y", "se"
+    )
 
 
 def internal(problem, model: Model) -> dict:
@@ -54,9 +60,11 @@ def internal(problem, model: Model) -> dict:
     c, k = problem.center, problem.scale
     mu = model.mu
     tau = model.tau
-    out = {"mu": (0, 0.0, 1.0) if isinstance(mu, Flat) else (1, (mu.loc - c) / k, mu.scale / k),
-           "tau": (0, 1.0) if isinstance(tau, Flat) else (1 if isinstance(tau, HalfNormal) else 2, tau.scale / k),
-           "s2": (0.0, 0.0) if isinstance(model.s2, Reciprocal) else (model.s2.shape, model.s2.rate * k * k)}
+    out = {
+        "mu": (0, 0.0, 1.0) if isinstance(mu, Flat) else (1, (mu.loc - c) / k, mu.scale / k),
+        "tau": (0, 1.0) if isinstance(tau, Flat) else (1 if isinstance(tau, HalfNormal) else 2, tau.scale / k),
+        "s2": (0.0, 0.0) if isinstance(model.s2, Reciprocal) else (model.s2.shape, model.s2.rate * k * k),
+    }
     if isinstance(model.nu, NuFixed):
         out["nu_grid"], out["nu_weights"] = np.array([model.nu.value]), np.ones(1)
     else:
@@ -76,8 +84,9 @@ def start_state(problem, *, eta=0.0, s2=1.0, nu_idx=None, sigma2=None, df_idx=No
     sc[kernel.WIDTH] = 1.0
     sc[kernel.SIGMA2] = 1.0
     sc[kernel.DF_IDX] = len(problem.df_grid) // 2 if df_idx is None else df_idx
-    return kernel.State(sc, problem.ybar.copy(), np.ones(J) if sigma2 is None else sigma2.copy(),
-                        np.ones(J if problem.heavy else 0))
+    return kernel.State(
+        sc, problem.ybar.copy(), np.ones(J) if sigma2 is None else sigma2.copy(), np.ones(J if problem.heavy else 0)
+    )
 
 
 def run(problem, *, n_sweeps, seed, state=None, adapt=False) -> dict:
@@ -102,6 +111,27 @@ def schools_problem(model: Model):
     return build(schools_stats(), model)
 
 
-__all__ = ["SCHOOLS_Y", "SCHOOLS_SE", "DYESTUFF", "CUT", "README_DEFAULT", "dyestuff_stats", "schools_stats",
-           "internal", "start_state", "run", "dyestuff_problem", "schools_problem", "Model", "Normal", "HalfCauchy",
-           "HalfNormal", "Gamma", "NuGrid", "NuFixed", "Flat", "Reciprocal", "math"]
+__all__ = [
+    "SCHOOLS_Y",
+    "SCHOOLS_SE",
+    "DYESTUFF",
+    "CUT",
+    "README_DEFAULT",
+    "dyestuff_stats",
+    "schools_stats",
+    "internal",
+    "start_state",
+    "run",
+    "dyestuff_problem",
+    "schools_problem",
+    "Model",
+    "Normal",
+    "HalfCauchy",
+    "HalfNormal",
+    "Gamma",
+    "NuGrid",
+    "NuFixed",
+    "Flat",
+    "Reciprocal",
+    "math",
+]

@@ -19,6 +19,7 @@ there, so a run can be stopped and taken up again. Usage (DEVELOPERS.md, "Mutati
     .venv/bin/python tests/mutation.py pooling/answers.py --report          # counts and survivors
     .venv/bin/python tests/mutation.py pooling/answers.py --show 17         # one mutant's diff
 """
+
 from __future__ import annotations
 
 import argparse
@@ -41,12 +42,25 @@ PYTEST = [sys.executable, "-m", "pytest", "-x", "-q", "-p", "no:cacheprovider", 
 
 # Each file's quick test selection: the tests that exercise it, about a minute or less on an idle core.
 TESTS: dict[str, list[str]] = {
-    "pooling/kernel.py": ["tests/test_kernel_sums.py", "tests/test_kernel_api.py", "tests/test_exact_shared.py",
-                          "tests/test_predictors_kernel.py", "tests/test_conditionals.py"],
-    "pooling/model.py": ["tests/test_kernel_api.py", "tests/test_exact_shared.py", "tests/test_predictors_io.py",
-                         "tests/test_conditionals.py"],
-    "pooling/posterior.py": ["tests/test_posterior_units.py", "tests/test_run_summary.py", "tests/test_sampler.py",
-                             "tests/test_exact_shared.py"],
+    "pooling/kernel.py": [
+        "tests/test_kernel_sums.py",
+        "tests/test_kernel_api.py",
+        "tests/test_exact_shared.py",
+        "tests/test_predictors_kernel.py",
+        "tests/test_conditionals.py",
+    ],
+    "pooling/model.py": [
+        "tests/test_kernel_api.py",
+        "tests/test_exact_shared.py",
+        "tests/test_predictors_io.py",
+        "tests/test_conditionals.py",
+    ],
+    "pooling/posterior.py": [
+        "tests/test_posterior_units.py",
+        "tests/test_run_summary.py",
+        "tests/test_sampler.py",
+        "tests/test_exact_shared.py",
+    ],
     "pooling/sampler.py": ["tests/test_sampler.py", "tests/test_run_summary.py", "tests/test_kernel_api.py"],
     "pooling/diagnostics.py": ["tests/test_diagnostics.py", "tests/test_run_summary.py"],
     "pooling/answers.py": ["tests/test_report_stats.py", "tests/test_answers_exact.py"],
@@ -83,8 +97,9 @@ _running: list[subprocess.Popen] = []
 def _pytest(root: Path, tests: list[str], cache: Path, timeout: float) -> tuple[str, float]:
     env = dict(os.environ, NUMBA_CACHE_DIR=str(cache), PYTHONDONTWRITEBYTECODE="1", PYTHONPATH=str(root))
     start = time.monotonic()
-    proc = subprocess.Popen(PYTEST + tests, cwd=root, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-                            start_new_session=True)
+    proc = subprocess.Popen(
+        PYTEST + tests, cwd=root, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True
+    )
     _running.append(proc)
     try:
         rc = proc.wait(timeout=timeout)
@@ -109,8 +124,13 @@ def workspace(folder: Path) -> Path:
         shutil.copytree(ROOT / name, folder / name, ignore=shutil.ignore_patterns("__pycache__", "*.bak"))
     for name in ("pyproject.toml", "README.md", "DEVELOPERS.md"):
         shutil.copy2(ROOT / name, folder / name)
-    found = subprocess.run([sys.executable, "-c", "import pooling; print(pooling.__file__)"], cwd=folder,
-                           env=dict(os.environ, PYTHONPATH=str(folder)), capture_output=True, text=True).stdout
+    found = subprocess.run(
+        [sys.executable, "-c", "import pooling; print(pooling.__file__)"],
+        cwd=folder,
+        env=dict(os.environ, PYTHONPATH=str(folder)),
+        capture_output=True,
+        text=True,
+    ).stdout
     assert found.startswith(str(folder)), f"pooling would be imported from {found!r}, not from the copy"
     return folder
 
@@ -165,12 +185,20 @@ def run(root: Path, rel: str, sample: int | None, seed: int, out: Path, deadline
                     status, took = _pytest(root, tests, cache, timeout)
                 finally:
                     path.write_text(original)
-                rec = {"file": rel, "id": key(m), "line": m.line_number + 1, "status": status,
-                       "seconds": round(took, 1), "diff": text}
+                rec = {
+                    "file": rel,
+                    "id": key(m),
+                    "line": m.line_number + 1,
+                    "status": status,
+                    "seconds": round(took, 1),
+                    "diff": text,
+                }
                 with out.open("a") as f:
                     f.write(json.dumps(rec) + "\n")
-                print(f"  [{n + 1}/{len(todo)}] {rel}:{rec['id']} {status} ({took:.0f} s) {text.splitlines()[-1].strip()}",
-                      flush=True)
+                print(
+                    f"  [{n + 1}/{len(todo)}] {rel}:{rec['id']} {status} ({took:.0f} s) {text.splitlines()[-1].strip()}",
+                    flush=True,
+                )
         except KeyboardInterrupt:
             pass
         finally:
@@ -237,8 +265,12 @@ def main(argv=None) -> None:
         elif a.report:
             report(path, out)
         elif a.check:
-            check(workspace(a.workspace.resolve()) if a.workspace else ROOT, rel, a.check,
-                  (a.tests or TESTS[rel]) + (["-k", a.keyword] if a.keyword else []))
+            check(
+                workspace(a.workspace.resolve()) if a.workspace else ROOT,
+                rel,
+                a.check,
+                (a.tests or TESTS[rel]) + (["-k", a.keyword] if a.keyword else []),
+            )
         else:
             run(workspace(a.workspace.resolve()) if a.workspace else ROOT, rel, a.sample, a.seed, out, deadline)
 

@@ -7,6 +7,7 @@ README tells a team to: a role with a password (scram-sha-256) found through a p
 (PGPASSFILE), never on a command line. Only the cluster's own superuser connects without a
 password (trust, local socket only), to make the role and the database.
 """
+
 from __future__ import annotations
 
 import glob
@@ -26,8 +27,10 @@ PORT = 5432  # private socket folder and no TCP: no clash with any other server 
 
 def find_bin() -> Path | None:
     """The folder of initdb and pg_ctl: Debian's /usr/lib/postgresql/<version>/bin (newest), else PATH."""
-    found = sorted(glob.glob("/usr/lib/postgresql/*/bin/initdb"), key=lambda p: int(Path(p).parts[-3])
-                   if Path(p).parts[-3].isdigit() else 0)
+    found = sorted(
+        glob.glob("/usr/lib/postgresql/*/bin/initdb"),
+        key=lambda p: int(Path(p).parts[-3]) if Path(p).parts[-3].isdigit() else 0,
+    )
     if found:
         return Path(found[-1]).parent
     which = shutil.which("initdb")
@@ -88,31 +91,61 @@ class Cluster:
             raise RuntimeError(f"{what} failed ({r.returncode}): {r.stdout}\n{r.stderr}\n{log[-2000:]}")
 
     def _initdb(self) -> None:
-        r = self._as_server_user([str(self.bin / "initdb"), "-D", str(self.data), "-U", "postgres", "-E", "UTF8",
-                                  "--locale=C", "--auth-local=trust", "--auth-host=reject"])
+        r = self._as_server_user(
+            [
+                str(self.bin / "initdb"),
+                "-D",
+                str(self.data),
+                "-U",
+                "postgres",
+                "-E",
+                "UTF8",
+                "--locale=C",
+                "--auth-local=trust",
+                "--auth-host=reject",
+            ]
+        )
         self._check(r, "initdb")
         hba = self.data / "pg_hba.conf"
         # the superuser without a password (for set-up only), every other role by password
         rules = "local all postgres trust\\nlocal all all scram-sha-256\\n"
         self._as_server_user(["sh", "-c", f"printf '{rules}' > {hba}"])
         self.start()
-        sql = (f"CREATE ROLE {ROLE} LOGIN PASSWORD '{PASSWORD}'; "
-               f"CREATE DATABASE {DATABASE} OWNER {ROLE} ENCODING 'UTF8' TEMPLATE template0;")
+        sql = (
+            f"CREATE ROLE {ROLE} LOGIN PASSWORD '{PASSWORD}'; "
+            f"CREATE DATABASE {DATABASE} OWNER {ROLE} ENCODING 'UTF8' TEMPLATE template0;"
+        )
         for stmt in sql.split("; "):
             self._check(self.psql_admin(stmt), "making the role and database")
         self.pgpass.write_text(f"*:*:{DATABASE}:{ROLE}:{PASSWORD}\n")
         os.chmod(self.pgpass, 0o600)
 
     def psql_admin(self, sql: str) -> subprocess.CompletedProcess:
-        return self._as_server_user([str(self.bin / "psql"), "-h", str(self.sock), "-p", str(PORT), "-U", "postgres",
-                                     "-d", "postgres", "-v", "ON_ERROR_STOP=1", "-qAtc", sql])
+        return self._as_server_user(
+            [
+                str(self.bin / "psql"),
+                "-h",
+                str(self.sock),
+                "-p",
+                str(PORT),
+                "-U",
+                "postgres",
+                "-d",
+                "postgres",
+                "-v",
+                "ON_ERROR_STOP=1",
+                "-qAtc",
+                sql,
+            ]
+        )
 
     def start(self) -> None:
         opts = f"-c listen_addresses='' -c unix_socket_directories='{self.sock}' -p {PORT}"
         if not self.fsync:
             opts += " -c fsync=off -c synchronous_commit=off -c full_page_writes=off"
-        r = self._as_server_user([str(self.bin / "pg_ctl"), "-D", str(self.data), "-l", str(self.log), "-o", opts,
-                                  "-w", "-t", "60", "start"])
+        r = self._as_server_user(
+            [str(self.bin / "pg_ctl"), "-D", str(self.data), "-l", str(self.log), "-o", opts, "-w", "-t", "60", "start"]
+        )
         self._check(r, "pg_ctl start")
         self.running = True
 

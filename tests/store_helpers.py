@@ -1,4 +1,5 @@
 """Helpers shared by the store tests (not a test module): both stores, SQLite and PostgreSQL."""
+
 from __future__ import annotations
 
 import sqlite3
@@ -11,8 +12,9 @@ from pooling.store.location import parse_location
 def _row_text(table: str, names, row) -> str:
     """One row as text, columns by name, floats by their bits (so -0.0 and 0.0, or 1 ulp, are told apart)."""
     cells = sorted(zip(names, row))
-    return f"{table}: " + repr([(k, ("float", np.float64(v).view(np.uint64).item()) if isinstance(v, float) else v)
-                                for k, v in cells])
+    return f"{table}: " + repr(
+        [(k, ("float", np.float64(v).view(np.uint64).item()) if isinstance(v, float) else v) for k, v in cells]
+    )
 
 
 def sql_dump(where) -> list[str]:
@@ -37,9 +39,13 @@ def sql_dump(where) -> list[str]:
 
     with psycopg.connect(loc.conninfo, autocommit=True) as con:
         cur = con.cursor(binary=True)
-        tables = [r[0] for r in cur.execute(
-            "SELECT table_name FROM information_schema.tables WHERE table_schema = %s ORDER BY table_name",
-            (loc.name,)).fetchall()]
+        tables = [
+            r[0]
+            for r in cur.execute(
+                "SELECT table_name FROM information_schema.tables WHERE table_schema = %s ORDER BY table_name",
+                (loc.name,),
+            ).fetchall()
+        ]
         for t in tables:
             cur.execute(f'SELECT * FROM "{loc.name}"."{t}" ORDER BY 1, 2')
             names = [d.name for d in cur.description]

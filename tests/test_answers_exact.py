@@ -10,6 +10,7 @@ Two kinds of reference, each stated beside its check:
 These tests were written to kill mutants that survived the mutation run (DEVELOPERS.md, "Mutation
 testing"); each names the one it was written for.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -55,15 +56,20 @@ def test_threshold_and_one_sided_limit_probabilities_match_the_normal_cdf():
     assert np.all(np.abs(t["p_above"] - ref) < mc(ref)), (t["p_above"].to_numpy(), ref)
     for lower, upper in ((9.7, None), (None, 10.9), (9.7, 10.9)):
         t = compute(fit, pooling.ReportOptions(lower=lower, upper=upper)).table
-        ref = (stats.norm.cdf(lower, m, s) if lower is not None else 0.0) + \
-              (stats.norm.sf(upper, m, s) if upper is not None else 0.0)
+        ref = (stats.norm.cdf(lower, m, s) if lower is not None else 0.0) + (
+            stats.norm.sf(upper, m, s) if upper is not None else 0.0
+        )
         own = np.zeros(J)
         if lower is not None:
             own += np.mean(flat < lower, axis=0)
         if upper is not None:
             own += np.mean(flat > upper, axis=0)
         np.testing.assert_array_equal(t["p_mean_outside"], own, err_msg=str((lower, upper)))
-        assert np.all(np.abs(t["p_mean_outside"] - ref) < mc(ref)), ((lower, upper), t["p_mean_outside"].to_numpy(), ref)
+        assert np.all(np.abs(t["p_mean_outside"] - ref) < mc(ref)), (
+            (lower, upper),
+            t["p_mean_outside"].to_numpy(),
+            ref,
+        )
 
 
 @pytest.mark.parametrize("lower,upper", [(8.0, None), (None, 12.0), (8.0, 12.0)])
@@ -78,8 +84,9 @@ def test_outside_fraction_with_one_limit_or_two_in_the_table(lower, upper):
     one = np.ones((C, D))
     fit = make_idata(th, 10 * one, one, sigma=sg, s=one, nu=5 * one)
     t = compute(fit, pooling.ReportOptions(lower=lower, upper=upper)).table
-    ref = (stats.norm.cdf(lower, th[0, 0], sg[0, 0]) if lower is not None else 0.0) + \
-          (stats.norm.sf(upper, th[0, 0], sg[0, 0]) if upper is not None else 0.0)
+    ref = (stats.norm.cdf(lower, th[0, 0], sg[0, 0]) if lower is not None else 0.0) + (
+        stats.norm.sf(upper, th[0, 0], sg[0, 0]) if upper is not None else 0.0
+    )
     for col in ("outside_mean", "outside_low_95", "outside_high_95"):
         np.testing.assert_allclose(t[col], ref, rtol=1e-12, err_msg=col)
 
@@ -119,7 +126,7 @@ def test_bias_probability_matches_the_normal_difference():
     mu = 10.0 + 0.2 * np.random.default_rng(3).standard_normal((C, D))
     fit = make_idata(th, mu, np.ones((C, D)))
     t = compute(fit, pooling.ReportOptions(allowed_bias=0.7)).table
-    sd = np.sqrt(s ** 2 + 0.04)
+    sd = np.sqrt(s**2 + 0.04)
     ref = stats.norm.cdf(-0.7, m - 10.0, sd) + stats.norm.sf(0.7, m - 10.0, sd)
     S = C * D
     assert np.all(np.abs(t["p_bias_over"] - ref) < Z * np.sqrt(ref * (1 - ref) / S)), (t["p_bias_over"].to_numpy(), ref)

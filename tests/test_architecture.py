@@ -3,6 +3,7 @@ modules (counting imports inside functions too), so the flow input -> statistics
 sampler -> posterior -> results -> presenters (page, terminal, run folder) -> command line runs one way, and
 the computing core never imports the shell. (Common practice: a dependency graph without cycles, checked by
 walking the import statements with the standard library's ast module.)"""
+
 from __future__ import annotations
 
 import ast
@@ -59,7 +60,7 @@ def _cycle(g):
         stack.append(n)
         for t in sorted(g[n]):
             if state.get(t) == 1:
-                return stack[stack.index(t):] + [t]
+                return stack[stack.index(t) :] + [t]
             if state.get(t) is None:
                 c = visit(t)
                 if c:
@@ -89,10 +90,26 @@ def test_the_computing_core_does_not_import_the_shell():
     # world (the run folder, the page, the terminal, the command line); and the presenters never compute
     # from draws (they import the results, never the kernel, the sampler or the per-draw formulas)
     g = graph()
-    core = ["pooling.stats", "pooling.model", "pooling.kernel", "pooling.sampler", "pooling.posterior",
-            "pooling.answers", "pooling.summary", "pooling.summary_kernel", "pooling.results", "pooling.asked"]
-    shell = {"pooling.output", "pooling.cli", "pooling.terminal", "pooling.report.page", "pooling.report.plots",
-             "pooling.report.history"}
+    core = [
+        "pooling.stats",
+        "pooling.model",
+        "pooling.kernel",
+        "pooling.sampler",
+        "pooling.posterior",
+        "pooling.answers",
+        "pooling.summary",
+        "pooling.summary_kernel",
+        "pooling.results",
+        "pooling.asked",
+    ]
+    shell = {
+        "pooling.output",
+        "pooling.cli",
+        "pooling.terminal",
+        "pooling.report.page",
+        "pooling.report.plots",
+        "pooling.report.history",
+    }
     for m in core:
         assert not (g[m] & shell), (m, g[m] & shell)
     for presenter in ("pooling.report.page", "pooling.terminal", "pooling.report.plots"):

@@ -1,4 +1,5 @@
 """The run folder and exit codes of `pooling fit` (the README's "Exit codes" table is the contract)."""
+
 from __future__ import annotations
 
 import hashlib
@@ -15,8 +16,24 @@ from pooling._compat import az
 
 
 def _fit(run_cli, data, out, *extra):
-    return run_cli("fit", data, "--group", "plant", "--value", "thickness", "--out", out, "--seed", "5",
-                   "--draws", "300", "--warmup", "200", "--quiet", *extra)
+    return run_cli(
+        "fit",
+        data,
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--out",
+        out,
+        "--seed",
+        "5",
+        "--draws",
+        "300",
+        "--warmup",
+        "200",
+        "--quiet",
+        *extra,
+    )
 
 
 def test_run_folder_contents(run_cli, small_csv, tmp_path):
@@ -71,8 +88,25 @@ def test_existing_folder_is_not_overwritten(run_cli, small_csv, tmp_path):
 def test_missed_targets_exit_3_with_results_written(run_cli, small_csv, tmp_path):
     """20 draws per chain cannot reach an ESS of 400 (4 x 20 = 80 draws in all)."""
     out = tmp_path / "run"
-    code, _, err = run_cli("fit", small_csv, "--group", "plant", "--value", "thickness", "--out", out,
-                           "--draws", "20", "--max-draws", "20", "--warmup", "50", "--seed", "1", "--quiet")
+    code, _, err = run_cli(
+        "fit",
+        small_csv,
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--out",
+        out,
+        "--draws",
+        "20",
+        "--max-draws",
+        "20",
+        "--warmup",
+        "50",
+        "--seed",
+        "1",
+        "--quiet",
+    )
     assert code == 3
     assert "warning" in err and "missed" in err
     summary = json.loads((out / "summary.json").read_text())
@@ -90,10 +124,32 @@ def test_demo_writes_a_complete_folder(run_cli, tmp_path):
 
 def _long_fit(tmp_path, small_csv):
     env = dict(os.environ)
-    return subprocess.Popen([sys.executable, "-m", "pooling.cli", "fit", str(small_csv), "--group", "plant",
-                             "--value", "thickness", "--out", str(tmp_path / "run"), "--draws", "3000000",
-                             "--max-draws", "3000000", "--warmup", "10", "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            text=True, env=env)
+    return subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "pooling.cli",
+            "fit",
+            str(small_csv),
+            "--group",
+            "plant",
+            "--value",
+            "thickness",
+            "--out",
+            str(tmp_path / "run"),
+            "--draws",
+            "3000000",
+            "--max-draws",
+            "3000000",
+            "--warmup",
+            "10",
+            "--quiet",
+        ],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env,
+    )
 
 
 def _interrupt(tmp_path, small_csv, sig):

@@ -51,6 +51,7 @@ Statistics 6(4), Table 2; from memory, cross-checked in test_eight_schools.py) a
 cut of the dyestuff batches (Davies 1947, as tabled in Box and Tiao 1973, Table 5.1.1; from
 memory, cross-checked in test_exact_shared.py), in the kernel's internal units.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -59,8 +60,23 @@ from scipy import integrate, special, stats
 
 from pooling import kernel
 from pooling.model import ScaledInvChi2
-from tests.kernel_helpers import (README_DEFAULT, SCHOOLS_SE, SCHOOLS_Y, Gamma, HalfCauchy, HalfNormal, Model, Normal,
-                                  NuFixed, NuGrid, dyestuff_problem, internal, run, schools_problem, start_state)
+from tests.kernel_helpers import (
+    README_DEFAULT,
+    SCHOOLS_SE,
+    SCHOOLS_Y,
+    Gamma,
+    HalfCauchy,
+    HalfNormal,
+    Model,
+    Normal,
+    NuFixed,
+    NuGrid,
+    dyestuff_problem,
+    internal,
+    run,
+    schools_problem,
+    start_state,
+)
 
 ALPHA = 1e-3  # rejection level of every goodness-of-fit test in this file
 
@@ -152,7 +168,9 @@ def nu_probs(sigma2, s2, nu_grid, nu_weights, wrong=False):
     logp = np.empty((len(s2), len(nu_grid)))
     for k, nu in enumerate(nu_grid):
         a = nu if wrong else nu / 2.0
-        logp[:, k] = np.log(nu_weights[k]) + stats.invgamma.logpdf(sigma2, a=a, scale=nu * s2[:, None] / 2.0).sum(axis=1)
+        logp[:, k] = np.log(nu_weights[k]) + stats.invgamma.logpdf(sigma2, a=a, scale=nu * s2[:, None] / 2.0).sum(
+            axis=1
+        )
     logp -= logp.max(axis=1, keepdims=True)
     p = np.exp(logp)
     return p / p.sum(axis=1, keepdims=True)
@@ -164,6 +182,7 @@ def group_marginal(nu, s2, n_j, ss_j):
     By scipy.integrate.quad over log sigma^2 (an independent route, not the closed form), with
     Scaled-Inv-chi2(nu, s^2) = scipy.stats.invgamma(a = nu/2, scale = nu s^2/2).
     """
+
     def logf(u):
         x = np.exp(u)
         return stats.invgamma.logpdf(x, a=nu / 2.0, scale=nu * s2 / 2.0) - 0.5 * n_j * u - ss_j / (2.0 * x) + u
@@ -171,8 +190,9 @@ def group_marginal(nu, s2, n_j, ss_j):
     grid = np.linspace(-30.0, 30.0, 6001)
     top = float(np.max(logf(grid)))
     u0 = float(grid[np.argmax(logf(grid))])
-    val, _ = integrate.quad(lambda u: np.exp(logf(u) - top), u0 - 30.0, u0 + 30.0, points=[u0], limit=200,
-                            epsabs=0.0, epsrel=1e-10)
+    val, _ = integrate.quad(
+        lambda u: np.exp(logf(u) - top), u0 - 30.0, u0 + 30.0, points=[u0], limit=200, epsabs=0.0, epsrel=1e-10
+    )
     return top + np.log(val)
 
 
@@ -187,8 +207,7 @@ def shared_pit(out, n, ybar, m2, df_shift=0.0, prior=(0.0, 0.0)):
     theta = out["theta"]
     nu0, s02 = prior
     ss = m2.sum() + np.sum(n * (ybar - theta) ** 2, axis=1)
-    return stats.invgamma.cdf(out["sigma"][:, 0] ** 2, a=(n.sum() + nu0 + df_shift) / 2.0,
-                              scale=(ss + nu0 * s02) / 2.0)
+    return stats.invgamma.cdf(out["sigma"][:, 0] ** 2, a=(n.sum() + nu0 + df_shift) / 2.0, scale=(ss + nu0 * s02) / 2.0)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -207,9 +226,14 @@ THETA_SHIFT = np.array([0.1, -0.2, 0.05, 0.3, -0.1, 0.0])  # theta_j - ybar_j: s
 def separate_grid_run():
     """Full sweeps: separate, nu on a grid with unequal weights, gamma s^2 prior, normal mu, half-Cauchy tau,
     the normal between-group distribution."""
-    model = Model(within="separate", between="normal", mu=Normal(DYE_C + 0.3 * DYE_K, 0.4 * DYE_K),
-                  tau=HalfCauchy(0.5 * DYE_K), s2=Gamma(2.0, 1.5 / DYE_K ** 2),
-                  nu=NuGrid(tuple(SEP_GRID), tuple(SEP_WEIGHTS)))
+    model = Model(
+        within="separate",
+        between="normal",
+        mu=Normal(DYE_C + 0.3 * DYE_K, 0.4 * DYE_K),
+        tau=HalfCauchy(0.5 * DYE_K),
+        s2=Gamma(2.0, 1.5 / DYE_K**2),
+        nu=NuGrid(tuple(SEP_GRID), tuple(SEP_WEIGHTS)),
+    )
     p = dyestuff_problem(model)
     out = run(p, n_sweeps=N_SWEEPS, seed=20240611)
     return dict(out=out, n=p.n, ybar=p.ybar, mu_prior=internal(p, model)["mu"], lam=None)
@@ -299,8 +323,10 @@ def test_variance_block_draws(nu_idx, s2_prior):
         s2_prior = {"reciprocal": (0.0, 0.0)}[type(README_DEFAULT["s2"]).__name__.lower()]
     else:
         p0 = dyestuff_problem(Model(nu=NuFixed(3.0)))
-        model = Model(s2=Gamma(s2_prior[0], s2_prior[1] / p0.scale ** 2),
-                      nu=NuGrid(tuple(grid), tuple(weights)) if nu_idx is not None else NuFixed(3.0))
+        model = Model(
+            s2=Gamma(s2_prior[0], s2_prior[1] / p0.scale**2),
+            nu=NuGrid(tuple(grid), tuple(weights)) if nu_idx is not None else NuFixed(3.0),
+        )
     sig2, s2_new, nu_new = run_block_b(theta, s2, nu_idx or 0, draws=10_000, seed=41 + (nu_idx or 0), model=model)
     # sigma_j^2 | theta, s^2, nu: i.i.d. draws from one inverse gamma per group (KS, Bonferroni over groups)
     right, wrong = sigma2_law(n, ybar, m2, theta, s2, nu), sigma2_law(n, ybar, m2, theta, s2, nu, df_shift=-1.0)
@@ -358,8 +384,9 @@ def test_collapsed_nu_move_keeps_its_target(by_size):
     n, ybar, m2 = p.n, p.ybar, p.m2
     theta, s2 = ybar + THETA_SHIFT, 0.8
     ss = m2 + n * (ybar - theta) ** 2
-    logp = np.log(SEP_WEIGHTS) + np.array([sum(group_marginal(nu, s2, n[j], ss[j]) for j in range(len(n)))
-                                           for nu in SEP_GRID])
+    logp = np.log(SEP_WEIGHTS) + np.array(
+        [sum(group_marginal(nu, s2, n[j], ss[j]) for j in range(len(n))) for nu in SEP_GRID]
+    )
     target = np.exp(logp - logp.max())
     target /= target.sum()
     assert target.max() < 0.9  # the target is spread over the grid, so the test has something to see
@@ -417,7 +444,9 @@ def test_common_scale_move_keeps_its_target(s2_prior, moves):
     ss = m2 + n * (ybar - theta) ** 2
     h = nu / 2.0
     p0 = dyestuff_problem(Model(nu=NuFixed(4.0)))
-    model = Model(nu=NuFixed(4.0), **({} if s2_prior[0] == 0 else {"s2": Gamma(s2_prior[0], s2_prior[1] / p0.scale ** 2)}))
+    model = Model(
+        nu=NuFixed(4.0), **({} if s2_prior[0] == 0 else {"s2": Gamma(s2_prior[0], s2_prior[1] / p0.scale**2)})
+    )
     d = dyestuff_problem(model).data
     assert (d.s2_shape, d.s2_rate) == pytest.approx(s2_prior)
     # the closed form of the per-group integral against quadrature, at a few values of s^2
@@ -434,8 +463,9 @@ def test_common_scale_move_keeps_its_target(s2_prior, moves):
     rng = np.random.default_rng(2000)
     chains = 4000
     log_s2 = np.interp(rng.random(chains), cdf, grid)
-    sigma2 = stats.invgamma.rvs(a=h + n / 2.0, scale=h * np.exp(log_s2)[:, None] + ss / 2.0,
-                                size=(chains, len(n)), random_state=rng)
+    sigma2 = stats.invgamma.rvs(
+        a=h + n / 2.0, scale=h * np.exp(log_s2)[:, None] + ss / 2.0, size=(chains, len(n)), random_state=rng
+    )
     state = np.zeros(kernel.N_SCALARS)
     s2_after, sig1_after = np.empty(chains), np.empty(chains)
     for c in range(chains):
@@ -482,7 +512,7 @@ def test_shared_sigma2_given_theta_under_a_proper_prior():
     model = Model(within="shared", sigma2=ScaledInvChi2(dof=8.0, scale2=1600.0))
     p = dyestuff_problem(model)
     n, ybar, m2 = p.n, p.ybar, p.m2
-    prior = (8.0, 1600.0 / p.scale ** 2)
+    prior = (8.0, 1600.0 / p.scale**2)
     out = run(p, n_sweeps=N_SWEEPS, seed=12)
     assert _ks_uniform(shared_pit(out, n, ybar, m2, prior=prior)) > ALPHA
     # the prior left out (the flat-prior law) is rejected: the test sees the prior's inputs
@@ -493,8 +523,9 @@ def test_shared_sigma2_given_theta_under_a_proper_prior():
 @pytest.mark.parametrize("mu_prior", [None, (-3.2, 4.8)])
 def test_theta_and_mu_given_known_variances(mu_prior, between):
     # user units: mu ~ N(-3.2, 4.8^2) (or flat), tau ~ half-normal(12.8)
-    model = Model(within="known", between=between, tau=HalfNormal(12.8),
-                  **({} if mu_prior is None else {"mu": Normal(*mu_prior)}))
+    model = Model(
+        within="known", between=between, tau=HalfNormal(12.8), **({} if mu_prior is None else {"mu": Normal(*mu_prior)})
+    )
     p = schools_problem(model)
     pri = internal(p, model)
     ybar, v = p.ybar, p.v_known
@@ -581,8 +612,12 @@ def slice_finals(cdf, problem, chains=3000, steps=12, seed=99):
 
 @pytest.mark.parametrize("mu_prior,tau_prior", TAU_CASES)
 def test_slice_update_of_log_tau_keeps_its_target(mu_prior, tau_prior):
-    model = Model(within="known", between="normal", **({} if mu_prior is None else {"mu": mu_prior}),
-                  **({} if tau_prior is None else {"tau": tau_prior}))
+    model = Model(
+        within="known",
+        between="normal",
+        **({} if mu_prior is None else {"mu": mu_prior}),
+        **({} if tau_prior is None else {"tau": tau_prior}),
+    )
     p = schools_problem(model)
     pri = internal(p, model)
     ybar, v = p.ybar, p.v_known
@@ -738,7 +773,9 @@ def test_joint_df_tau_move_keeps_its_target(tau_prior):
     # ("cauchy", s): a half-Cauchy prior on tau, scale s in the old internal units (the move's half-Cauchy branch;
     # a wrong scale there barely moves 6 steps, so test_tau_terms_of_the_joint_df_tau_move_... checks it exactly)
     cauchy = isinstance(tau_prior, tuple)
-    tau_given = None if tau_prior is None else (HalfCauchy(tau_prior[1] * 16.0) if cauchy else HalfNormal(tau_prior * 16.0))
+    tau_given = (
+        None if tau_prior is None else (HalfCauchy(tau_prior[1] * 16.0) if cauchy else HalfNormal(tau_prior * 16.0))
+    )
     model = Model(within="known", **({} if tau_given is None else {"tau": tau_given}))
     p = schools_problem(model)
     d = p.data
@@ -819,7 +856,7 @@ def test_nu_on_a_grid_of_two_points():
     theta = ybar + THETA_SHIFT
     grid = (2.0, 8.0)
     p0 = dyestuff_problem(Model(nu=NuFixed(3.0)))
-    model = Model(s2=Gamma(2.0, 1.5 / p0.scale ** 2), nu=NuGrid(grid, (0.5, 0.5)))
+    model = Model(s2=Gamma(2.0, 1.5 / p0.scale**2), nu=NuGrid(grid, (0.5, 0.5)))
     sig2, s2_new, nu_new = run_block_b(theta, 0.8, 0, draws=4000, seed=77, model=model)
     p_hi = nu_probs(sig2, s2_new, np.array(grid), np.array([0.5, 0.5]))[:, 1]
     assert 0.05 < p_hi.mean() < 0.95  # both points are plausible: the check can see a draw that never moves

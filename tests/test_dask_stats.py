@@ -10,6 +10,7 @@ values near 1e12); their correctness is settled by the exact reference, not by t
 
 The cluster is a dask.distributed LocalCluster of two single-threaded workers in this process.
 """
+
 from __future__ import annotations
 
 import sys
@@ -32,20 +33,20 @@ REL = 1e-12  # the issue's requirement; see the module docstring for the margin
 
 @pytest.fixture(scope="module")
 def cluster():
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                                  dashboard_address=None) as c:
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None) as c:
         yield c
 
 
-def _write_parts(folder, offset: float, seed: int, files: int = 3, rows: int = 1500, groups: int = 40,
-                 decimals: int = 4):
+def _write_parts(
+    folder, offset: float, seed: int, files: int = 3, rows: int = 1500, groups: int = 40, decimals: int = 4
+):
     """Invented long tables in `files` CSV files; returns the cells as text, per file."""
     g = np.random.default_rng(seed)
     folder.mkdir(parents=True, exist_ok=True)
     texts = []
     for f in range(files):
         lab = g.integers(0, groups, rows)
-        lab[: 3] = groups + f  # a group that appears in this file only, near its top
+        lab[:3] = groups + f  # a group that appears in this file only, near its top
         y = offset + 0.01 * lab + g.normal(0.0, 0.1, rows)
         cells = [(f"G{k:03d}", f"{v:.{decimals}f}") for k, v in zip(lab, y)]
         (folder / f"part-{f:02d}.csv").write_text("lab,y\n" + "\n".join(f"{a},{b}" for a, b in cells) + "\n")
@@ -138,7 +139,9 @@ def test_a_missing_value_names_the_file_and_row(tmp_path):
     lines = path.read_text().splitlines()
     lines[7] = lines[7].split(",")[0] + ","  # data row 7 has an empty value
     path.write_text("\n".join(lines) + "\n")
-    with pytest.raises(InputError, match=r"part-01\.csv', column 'y', row 7: expected a finite number, found an empty cell"):
+    with pytest.raises(
+        InputError, match=r"part-01\.csv', column 'y', row 7: expected a finite number, found an empty cell"
+    ):
         D.read_table_dask(folder, "lab", "y", scheduler="sync")
 
 
@@ -182,9 +185,29 @@ def test_the_command_line_reads_a_quoted_glob_on_the_cluster(tmp_path, run_cli, 
     folder = tmp_path / "cli"
     texts = _write_parts(folder, offset=1e9, seed=9, files=2, rows=300, groups=12)
     out = tmp_path / "run"
-    code, _, err = run_cli("fit", str(folder / "part-*.csv"), "--group", "lab", "--value", "y", "--out", out,
-                           "--cluster", cluster.scheduler_address, "--chains", 2, "--warmup", 200, "--draws", 200,
-                           "--max-draws", 200, "--seed", 1, "--quiet")
+    code, _, err = run_cli(
+        "fit",
+        str(folder / "part-*.csv"),
+        "--group",
+        "lab",
+        "--value",
+        "y",
+        "--out",
+        out,
+        "--cluster",
+        cluster.scheduler_address,
+        "--chains",
+        2,
+        "--warmup",
+        200,
+        "--draws",
+        200,
+        "--max-draws",
+        200,
+        "--seed",
+        1,
+        "--quiet",
+    )
     assert code in (0, 3), err  # 3: written, but a short run may miss the diagnostics targets
     groups = pd.read_csv(out / "groups.csv")
     assert len(groups) == len(_exact(texts))
@@ -193,8 +216,9 @@ def test_the_command_line_reads_a_quoted_glob_on_the_cluster(tmp_path, run_cli, 
 def test_the_command_line_refuses_a_folder_of_summaries(tmp_path, run_cli):
     folder = tmp_path / "summaries"
     _write_parts(folder, offset=10.0, seed=10, files=2, rows=20)
-    code, _, err = run_cli("fit", folder, "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s",
-                           "--out", tmp_path / "never")
+    code, _, err = run_cli(
+        "fit", folder, "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", tmp_path / "never"
+    )
     assert code == 2
     assert "reads measurements (--value COL)" in err and "Traceback" not in err
     assert not (tmp_path / "never").exists()

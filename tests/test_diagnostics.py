@@ -1,5 +1,6 @@
 """Tests of pooling.diagnostics against arviz (a general-purpose reference implementation of the
 same definitions) and against known properties of the estimators."""
+
 from __future__ import annotations
 
 import functools
@@ -65,7 +66,7 @@ def _ar1(rng, phi, shape, burn=200):
 # agreement with arviz
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _posterior(dataset):
     return az.load_arviz_data(dataset).posterior
 
@@ -163,8 +164,11 @@ def test_iid_ess_near_total_draws():
     size = c * n
     x = rng.standard_normal((c, n, reps))
     _, bulk, tail = dg.rhat_ess(x)
-    for name, ess, budget in [("bulk", bulk, 2 / np.sqrt(size)), ("mean", dg.mean_ess(x), 2 / np.sqrt(size)),
-                              ("tail", tail, 4 / np.sqrt(size))]:
+    for name, ess, budget in [
+        ("bulk", bulk, 2 / np.sqrt(size)),
+        ("mean", dg.mean_ess(x), 2 / np.sqrt(size)),
+        ("tail", tail, 4 / np.sqrt(size)),
+    ]:
         ratio = ess / size
         mcse = ratio.std(ddof=1) / np.sqrt(reps)
         # Source: true ESS of iid draws is the number of draws, S = chains*draws.
@@ -259,8 +263,9 @@ def test_shapes_and_values_for_any_trailing_dims(x):
 @settings(max_examples=20, deadline=None)
 @given(_draws(), st.sampled_from(["exp", "cube", "arctan", "logistic"]))
 def test_bulk_and_tail_ess_invariant_under_increasing_transforms(x, how):
-    f = {"exp": np.exp, "cube": lambda v: v**3 + v, "arctan": np.arctan,
-         "logistic": lambda v: 1 / (1 + np.exp(-v))}[how]
+    f = {"exp": np.exp, "cube": lambda v: v**3 + v, "arctan": np.arctan, "logistic": lambda v: 1 / (1 + np.exp(-v))}[
+        how
+    ]
     y = f(x)
     # Source: Vehtari et al. (2021): bulk ESS is computed from ranks only, so any strictly
     # increasing transform leaves it unchanged; the tail ESS uses indicators of order statistics.
@@ -281,7 +286,7 @@ def test_rhat_invariant_under_increasing_transforms_odd_about_the_median(chains,
     rng = np.random.default_rng(seed)
     x = rng.integers(-20, 21, size=(chains, n, 3)).astype(float)
     h = n // 2
-    m = np.median(np.concatenate([x[:, :h], x[:, n - h:]], axis=1).reshape(-1, 3), axis=0)
+    m = np.median(np.concatenate([x[:, :h], x[:, n - h :]], axis=1).reshape(-1, 3), axis=0)
     u = x - m
     y = m + u ** (2 * power + 1) + u
     # Source: Vehtari et al. (2021), rank normalisation and folding; arviz 0.23 on both arrays.
@@ -302,25 +307,31 @@ def test_check_targets_and_worst():
     tau = _ar1(rng, 0.97, (4, 500))  # low ESS
     named = {"mu": mu, "tau": tau, "theta": theta}
     misses = dg.check_targets(named, rhat_max=1.01, ess_min=400)
-    ref = {k: (_ref(v, az.rhat, method="rank"), _ref(v, az.ess, method="bulk"), _ref(v, az.ess, method="tail"))
-           for k, v in named.items()}
+    ref = {
+        k: (_ref(v, az.rhat, method="rank"), _ref(v, az.ess, method="bulk"), _ref(v, az.ess, method="tail"))
+        for k, v in named.items()
+    }
     # Source: arviz 0.23 rhat(method="rank") and ess(method="bulk"/"tail") decide which entries miss.
     expected = []
     for k, (r, b, t) in ref.items():
         bad = ~(r < 1.01) | ~(b >= 400) | ~(t >= 400)
-        expected += [(k, tuple(int(i) for i in np.unravel_index(j, r.shape)) if r.ndim else ())
-                     for j in np.flatnonzero(np.ravel(bad))]
+        expected += [
+            (k, tuple(int(i) for i in np.unravel_index(j, r.shape)) if r.ndim else ())
+            for j in np.flatnonzero(np.ravel(bad))
+        ]
     assert [(m["name"], m["index"]) for m in misses] == expected
     assert ("theta", (4,)) in expected and ("tau", ()) in expected and ("mu", ()) not in expected
     for m in misses:
-        r, b, t = (np.ravel(a)[np.ravel_multi_index(m["index"], np.shape(a)) if m["index"] else 0]
-                   for a in ref[m["name"]])
+        r, b, t = (
+            np.ravel(a)[np.ravel_multi_index(m["index"], np.shape(a)) if m["index"] else 0] for a in ref[m["name"]]
+        )
         np.testing.assert_allclose([m["rhat"], m["bulk_ess"], m["tail_ess"]], [r, b, t], rtol=RTOL)
     w = dg.worst(named)
     for k, (r, b, t) in ref.items():
         # Source: arviz 0.23, the extremes over each variable's entries.
-        np.testing.assert_allclose([w[k]["rhat_max"], w[k]["bulk_ess_min"], w[k]["tail_ess_min"]],
-                                   [np.max(r), np.min(b), np.min(t)], rtol=RTOL)
+        np.testing.assert_allclose(
+            [w[k]["rhat_max"], w[k]["bulk_ess_min"], w[k]["tail_ess_min"]], [np.max(r), np.min(b), np.min(t)], rtol=RTOL
+        )
 
 
 def test_bad_shapes_are_refused():
@@ -332,6 +343,7 @@ def test_bad_shapes_are_refused():
 
 
 # --- blocks on threads (benchmarks/README.md, `pooling fit` whole process) ---------------------
+
 
 def test_threaded_blocks_give_the_same_numbers(monkeypatch):
     # Source: the documented contract of diagnostics._run: blocks are independent and each writes
@@ -351,17 +363,26 @@ def test_threaded_blocks_give_the_same_numbers(monkeypatch):
     for a, b in zip((*one[0], one[1], one[2]), (*two[0], two[1], two[2])):
         np.testing.assert_array_equal(a, b)
     for j in (0, 150, 299):
-        np.testing.assert_allclose([two[0][0][j], two[0][1][j], two[0][2][j]],
-                                   [_ref(x[:, :, j], az.rhat, method="rank"), _ref(x[:, :, j], az.ess, method="bulk"),
-                                    _ref(x[:, :, j], az.ess, method="tail")], rtol=RTOL)
+        np.testing.assert_allclose(
+            [two[0][0][j], two[0][1][j], two[0][2][j]],
+            [
+                _ref(x[:, :, j], az.rhat, method="rank"),
+                _ref(x[:, :, j], az.ess, method="bulk"),
+                _ref(x[:, :, j], az.ess, method="tail"),
+            ],
+            rtol=RTOL,
+        )
 
 
 def test_draws_that_are_not_real_numbers_are_refused():
     # Common practice (numpy's dtype kinds): strings, objects and complex numbers are not draws of a real
     # parameter; booleans are (an indicator's draws). Written for diagnostics.py:369 `x.dtype != bool`, which
     # let strings and objects through to fail later with an unrelated message, or not at all.
-    for bad in (np.array([["a", "b", "c"], ["d", "e", "f"]]), np.full((2, 3), None, dtype=object),
-                np.ones((2, 3)) + 1j):
+    for bad in (
+        np.array([["a", "b", "c"], ["d", "e", "f"]]),
+        np.full((2, 3), None, dtype=object),
+        np.ones((2, 3)) + 1j,
+    ):
         with pytest.raises(ValueError, match="draws must be real numbers"):
             dg.split_rhat(bad)
     flags = np.random.default_rng(0).random((2, 50)) < 0.5

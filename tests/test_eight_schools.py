@@ -19,6 +19,7 @@ Tolerances come from Monte Carlo error only:
     with theta and mu integrated out analytically; its grid error is checked to be below 1% of
     that tolerance by halving the grid.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -49,7 +50,9 @@ def y(reference):
 def ours(reference, y):
     schools = [str(s) for s in reference.posterior["school"].values]
     est = pooling.from_estimates(pd.DataFrame({"school": schools, "y": y, "se": SIGMA}), "school", "y", "se")
-    model = pooling.Model(within="known", between="normal", mu=pooling.Normal(MU0, S0), tau=pooling.HalfCauchy(TAU_SCALE))
+    model = pooling.Model(
+        within="known", between="normal", mu=pooling.Normal(MU0, S0), tau=pooling.HalfCauchy(TAU_SCALE)
+    )
     # 4 x 10,000 draws: our MCSEs are then a third of arviz's, so the comparison with arviz is
     # limited by the reference draws and the comparison with the exact posterior is tight
     fit = pooling.fit(est, model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=8, max_draws=10_000))
@@ -74,15 +77,15 @@ def log_marginal(tau, y):
     a = np.sum(1.0 / d, axis=1)
     b = np.sum(r / d, axis=1)
     c = np.sum(r * r / d, axis=1)
-    k = 1.0 + S0 ** 2 * a
-    return -0.5 * (np.sum(np.log(d), axis=1) + np.log(k) + c - S0 ** 2 * b * b / k)
+    k = 1.0 + S0**2 * a
+    return -0.5 * (np.sum(np.log(d), axis=1) + np.log(k) + c - S0**2 * b * b / k)
 
 
 def mu_given_tau(tau, y):
     """mu | tau, y ~ N(m, V): 1/V = sum_j 1/(sigma_j^2 + tau^2) + 1/s0^2, m = V (sum_j y_j/(sigma_j^2 + tau^2) + m0/s0^2)."""
     d = SIGMA[None, :] ** 2 + np.asarray(tau)[:, None] ** 2
-    prec = np.sum(1.0 / d, axis=1) + 1.0 / S0 ** 2
-    return (np.sum(y / d, axis=1) + MU0 / S0 ** 2) / prec, 1.0 / prec
+    prec = np.sum(1.0 / d, axis=1) + 1.0 / S0**2
+    return (np.sum(y / d, axis=1) + MU0 / S0**2) / prec, 1.0 / prec
 
 
 def exact_summaries(y, points=40_001, tau_max=150.0):
@@ -100,16 +103,19 @@ def exact_summaries(y, points=40_001, tau_max=150.0):
     m, V = mu_given_tau(tau, y)
     # theta_1 | tau, y: mean B m + (1 - B) y_1, variance v tau^2 / (v + tau^2) + B^2 V, B = v / (v + tau^2)
     v1 = SIGMA[0] ** 2
-    B = v1 / (v1 + tau ** 2)
-    t_mean, t_var = B * m + (1 - B) * y[0], v1 * tau ** 2 / (v1 + tau ** 2) + B * B * V
-    out = {"tau": {"mean": integrate.trapezoid(w * tau, tau)},
-           "mu": {"mean": integrate.trapezoid(w * m, tau)},
-           "theta1": {"mean": integrate.trapezoid(w * t_mean, tau)}}
+    B = v1 / (v1 + tau**2)
+    t_mean, t_var = B * m + (1 - B) * y[0], v1 * tau**2 / (v1 + tau**2) + B * B * V
+    out = {
+        "tau": {"mean": integrate.trapezoid(w * tau, tau)},
+        "mu": {"mean": integrate.trapezoid(w * m, tau)},
+        "theta1": {"mean": integrate.trapezoid(w * t_mean, tau)},
+    }
     cdf_tau = integrate.cumulative_trapezoid(w, tau, initial=0.0)
     out["tail_mass"] = 1.0 - cdf_tau[-1]
     for p in PROBS:
         out["tau"][p] = float(np.interp(p, cdf_tau, tau))
         for name, loc, var in (("mu", m, V), ("theta1", t_mean, t_var)):
+
             def f(x):
                 return integrate.trapezoid(w * stats.norm.cdf(x, loc, np.sqrt(var)), tau) - p  # noqa: B023 (called in this iteration)
 
@@ -126,8 +132,9 @@ def test_exact_integrand_matches_scipy(y):
     # the vectorised closed form against scipy.stats.multivariate_normal, up to the constant
     taus = np.array([0.0, 0.5, 3.0, 10.0, 60.0])
     ours = log_marginal(taus, y)
-    ref = np.array([stats.multivariate_normal.logpdf(y, np.full(8, MU0), np.diag(SIGMA ** 2 + t * t) + S0 ** 2)
-                    for t in taus])
+    ref = np.array(
+        [stats.multivariate_normal.logpdf(y, np.full(8, MU0), np.diag(SIGMA**2 + t * t) + S0**2) for t in taus]
+    )
     np.testing.assert_allclose(ours - ours[0], ref - ref[0], rtol=0, atol=1e-10)
 
 

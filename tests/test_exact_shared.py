@@ -25,6 +25,7 @@ the probability compared). The grid error is checked by repeating the integratio
 half the points in each direction: the two differ by less than 5% of each tolerance, and as the
 rule is of second order the error of the fine grid is about a third of that difference.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -49,8 +50,9 @@ CASES = {
     # the package defaults for `shared` (mu flat, tau flat, p(log sigma) flat), normal between-group distribution
     "defaults": pooling.Model(within="shared", between="normal"),
     # proper priors on mu and tau, so that their terms in the exact density are exercised too
-    "proper": pooling.Model(within="shared", between="normal", mu=pooling.Normal(1500.0, 50.0),
-                            tau=pooling.HalfCauchy(25.0)),
+    "proper": pooling.Model(
+        within="shared", between="normal", mu=pooling.Normal(1500.0, 50.0), tau=pooling.HalfCauchy(25.0)
+    ),
 }
 
 
@@ -100,18 +102,25 @@ def exact_posterior(model, n_eta=2200, n_lam=700):
     sw = swy = swyy = 0.0
     logd = 0.0
     for j in range(J):
-        d = sig ** 2 / n[j] + tau ** 2
+        d = sig**2 / n[j] + tau**2
         sw, swy, swyy, logd = sw + 1.0 / d, swy + ybar[j] / d, swyy + ybar[j] ** 2 / d, logd + np.log(d)
     if isinstance(model.mu, pooling.Normal):
         s0 = model.mu.scale
-        sw, swy, swyy = sw + 1.0 / s0 ** 2, swy + model.mu.loc / s0 ** 2, swyy + model.mu.loc ** 2 / s0 ** 2
+        sw, swy, swyy = sw + 1.0 / s0**2, swy + model.mu.loc / s0**2, swyy + model.mu.loc**2 / s0**2
     V = 1.0 / sw
     m = V * swy
     Q = swyy - sw * m * m
     # log density in (eta, lambda): the Jacobians tau and sigma turn p(tau) and p(sigma) ∝ 1/sigma
     # into densities in the logs, so p(log sigma) is flat and the "+ lam" cancels the 1/sigma
-    lp = (_prior_terms(model, tau) + np.log(tau) - (N - J) * np.log(sig) - W / (2.0 * sig ** 2)
-          + 0.5 * np.log(V) - 0.5 * logd - 0.5 * Q)
+    lp = (
+        _prior_terms(model, tau)
+        + np.log(tau)
+        - (N - J) * np.log(sig)
+        - W / (2.0 * sig**2)
+        + 0.5 * np.log(V)
+        - 0.5 * logd
+        - 0.5 * Q
+    )
     w = np.exp(lp - lp.max())
     w /= w.sum()  # the grid is uniform in (eta, lambda): cell weights
     out = {}
@@ -128,13 +137,14 @@ def exact_posterior(model, n_eta=2200, n_lam=700):
     keep = w > 1e-13  # the 1.5 million cells below this carry less than 2e-7 of the mass in total
     comps = {"mu": (m, V)}
     for label, j in (("theta_A", 0), ("theta_E", 4)):
-        v = sig ** 2 / n[j]
-        B = v / (v + tau ** 2)
-        comps[label] = (B * m + (1 - B) * ybar[j], v * tau ** 2 / (v + tau ** 2) + B * B * V)
+        v = sig**2 / n[j]
+        B = v / (v + tau**2)
+        comps[label] = (B * m + (1 - B) * ybar[j], v * tau**2 / (v + tau**2) + B * B * V)
     for name, (loc, var) in comps.items():
         wk, lk, sk = w[keep], np.broadcast_to(loc, w.shape)[keep], np.sqrt(np.broadcast_to(var, w.shape)[keep])
         out[name] = {"mean": float(np.sum(wk * lk) / wk.sum())}
         for p in PROBS:
+
             def f(x):
                 return np.sum(wk * special.ndtr((x - lk) / sk)) / wk.sum() - p  # noqa: B023 (called in this iteration)
 
@@ -148,8 +158,9 @@ def case(request):
     exact = exact_posterior(model)
     stats_ = pooling.from_frame(frame(), "batch", "grams")
     # 4 x 10,000 draws at a fixed seed, no extension, so that the MCSEs are small and fixed
-    fit = pooling.fit(stats_, model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=1947,
-                                                      max_draws=10_000))
+    fit = pooling.fit(
+        stats_, model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=1947, max_draws=10_000)
+    )
     return request.param, model, exact, fit
 
 

@@ -16,6 +16,7 @@ Checks and their references:
   on y * 1e-300, y * 1e300 and y + 1e12 the draws agree to the rounding of the inputs and outputs.
 - sufficient statistics of huge tables against numpy's two-pass sums and pandas' groupby.
 """
+
 from __future__ import annotations
 
 import math
@@ -26,8 +27,7 @@ import pytest
 from scipy import special
 
 import pooling
-from pooling import InputError, ModelError, Model, Settings
-
+from pooling import InputError, Model, ModelError, Settings
 from pooling._compat import az  # noqa: E402
 
 
@@ -43,13 +43,13 @@ def _exact_known(y, se, tau_prior=None, grid=4001):
     def log_post(eta):
         out, ms, Vs = np.empty(eta.size), np.empty(eta.size), np.empty(eta.size)
         for a0 in range(0, eta.size, 256):  # blocks of the grid keep memory at 256 x J
-            tau2 = np.exp(2 * eta[a0:a0 + 256])[:, None]
+            tau2 = np.exp(2 * eta[a0 : a0 + 256])[:, None]
             a = 1.0 / (v[None, :] + tau2)
             V = 1.0 / a.sum(axis=1)
             m = V * (a @ y)
             r = y[None, :] - m[:, None]
-            out[a0:a0 + 256] = 0.5 * np.log(V) + 0.5 * np.log(a).sum(axis=1) - 0.5 * (a * r * r).sum(axis=1)
-            ms[a0:a0 + 256], Vs[a0:a0 + 256] = m, V
+            out[a0 : a0 + 256] = 0.5 * np.log(V) + 0.5 * np.log(a).sum(axis=1) - 0.5 * (a * r * r).sum(axis=1)
+            ms[a0 : a0 + 256], Vs[a0 : a0 + 256] = m, V
         if tau_prior is not None:
             out = out + tau_prior(np.exp(eta))
         return out + eta, ms, Vs  # + eta: the Jacobian of tau = exp(eta)
@@ -79,8 +79,12 @@ def _exact_known(y, se, tau_prior=None, grid=4001):
         var = wj * v[j] + (1 - wj) ** 2 * V
         return integrate(special.ndtr((t - mean) / np.sqrt(var)))
 
-    return {"tau": lambda t: float(np.interp(math.log(t), eta, cw)), "mu": cdf_mu, "theta": cdf_theta,
-            "tau_q": lambda q: float(np.exp(np.interp(q, cw, eta)))}
+    return {
+        "tau": lambda t: float(np.interp(math.log(t), eta, cw)),
+        "mu": cdf_mu,
+        "theta": cdf_theta,
+        "tau_q": lambda q: float(np.exp(np.interp(q, cw, eta))),
+    }
 
 
 def _check_probability(draws, p_exact, what):
@@ -90,7 +94,9 @@ def _check_probability(draws, p_exact, what):
     ess = float(az.ess(ind))
     ess = ess if math.isfinite(ess) and ess > 0 else ind.size
     se = math.sqrt(max(p_exact * (1 - p_exact), 1e-4) / ess)
-    assert abs(p_hat - p_exact) < 4.5 * se, f"{what}: sampled {p_hat:.4f}, exact {p_exact:.4f}, MC se {se:.4f}, ESS {ess:.0f}"
+    assert abs(p_hat - p_exact) < 4.5 * se, (
+        f"{what}: sampled {p_hat:.4f}, exact {p_exact:.4f}, MC se {se:.4f}, ESS {ess:.0f}"
+    )
 
 
 def _compare_known(fit, y, se, ex, groups=(0, 1)):
@@ -107,17 +113,23 @@ def _compare_known(fit, y, se, ex, groups=(0, 1)):
 
 
 def _fit(stats, model, chains=4, draws=1500, warmup=500, seed=11, max_draws=None):
-    return pooling.fit(stats, model, Settings(chains=chains, draws=draws, warmup=warmup, seed=seed,
-                                              max_draws=max_draws or draws), progress=False)
+    return pooling.fit(
+        stats,
+        model,
+        Settings(chains=chains, draws=draws, warmup=warmup, seed=seed, max_draws=max_draws or draws),
+        progress=False,
+    )
 
 
 # ---------------------------------------------------------------------------------------------
 # tau far below and far above the standard errors; 3 groups; many groups (known structure, exact)
 
+
 @pytest.mark.parametrize("case", ["tau_far_below_se", "tau_far_above_se", "three_groups", "all_identical"])
 def test_known_structure_matches_the_exact_posterior(case):
-    rng = np.random.default_rng({"tau_far_below_se": 1, "tau_far_above_se": 2, "three_groups": 3,
-                                 "all_identical": 4}[case])
+    rng = np.random.default_rng(
+        {"tau_far_below_se": 1, "tau_far_above_se": 2, "three_groups": 3, "all_identical": 4}[case]
+    )
     if case == "tau_far_below_se":  # tau 0.001 against standard errors near 1: strong pooling
         se = rng.uniform(0.8, 1.5, 10)
         y = rng.normal(0.0, 0.001, 10) + rng.normal(0.0, se)
@@ -157,6 +169,7 @@ def test_many_groups_known_structure_matches_the_exact_posterior():
 # ---------------------------------------------------------------------------------------------
 # rescaling: the same seed gives the rescaled posterior
 
+
 def _raw_table(seed=21, J=7):
     rng = np.random.default_rng(seed)
     g, y = [], []
@@ -177,7 +190,7 @@ def _fit_frame(g, y, within="separate", seed=5):
 @pytest.mark.parametrize("power", [-997, 997])
 def test_power_of_two_rescaling_is_exact(within, power):
     g, y = _raw_table()
-    f = 2.0 ** power  # 2^-997 ~ 7.5e-301 and 2^997 ~ 1.3e300
+    f = 2.0**power  # 2^-997 ~ 7.5e-301 and 2^997 ~ 1.3e300
     _, base = _fit_frame(g, y, within)
     stats, scaled = _fit_frame(g, y * f, within)
     assert stats.unit != 1.0  # the data really are held in another unit
@@ -186,8 +199,9 @@ def test_power_of_two_rescaling_is_exact(within, power):
     if within == "separate":
         np.testing.assert_array_equal(scaled.draws("nu"), base.draws("nu"))
     # the statistics the run folder reports are in the user's units
-    np.testing.assert_array_equal(scaled.idata.constant_data["raw_mean"].values,
-                                  base.idata.constant_data["raw_mean"].values * f)
+    np.testing.assert_array_equal(
+        scaled.idata.constant_data["raw_mean"].values, base.idata.constant_data["raw_mean"].values * f
+    )
 
 
 @pytest.mark.parametrize("factor", [1e-300, 1e300])
@@ -232,7 +246,21 @@ def test_command_line_at_extreme_scale_is_right_or_refused(run_cli, tmp_path, fa
     g, y = _raw_table()
     for name, f in (("plain", 1.0), ("scaled", factor)):
         pd.DataFrame({"g": g, "y": y * f}).to_csv(tmp_path / f"{name}.csv", index=False, float_format="%.17g")
-    args = ["--group", "g", "--value", "y", "--quiet", "--chains", "2", "--draws", "200", "--warmup", "100", "--seed", "2"]
+    args = [
+        "--group",
+        "g",
+        "--value",
+        "y",
+        "--quiet",
+        "--chains",
+        "2",
+        "--draws",
+        "200",
+        "--warmup",
+        "100",
+        "--seed",
+        "2",
+    ]
     code, _, err = run_cli("fit", tmp_path / "scaled.csv", "--out", tmp_path / "scaled-run", *args)
     if code == 2:
         lines = [ln for ln in err.splitlines() if ln.strip()]
@@ -265,6 +293,7 @@ def test_store_at_extreme_scale_is_refused(tmp_path):
 # ---------------------------------------------------------------------------------------------
 # group sizes at the edges
 
+
 def test_one_observation_per_group():
     g = [f"g{j}" for j in range(6)]
     y = [1.0, 2.5, 0.5, 1.7, 3.0, 2.2]
@@ -280,8 +309,9 @@ def test_one_observation_per_group():
     assert np.all(np.isfinite(fit.draws("theta"))) and np.all(fit.draws("sigma") > 0)
     # single measurements with known standard errors are the known structure: exact check
     se = np.full(6, 0.8)
-    _compare_known(_fit(_estimates(y, se), Model(within="known", between="normal")), np.array(y), se,
-                   _exact_known(np.array(y), se))
+    _compare_known(
+        _fit(_estimates(y, se), Model(within="known", between="normal")), np.array(y), se, _exact_known(np.array(y), se)
+    )
 
 
 def test_a_group_of_a_million_beside_groups_of_two():
@@ -347,6 +377,7 @@ def test_all_groups_identical_raw_data_are_symmetric():
 # ---------------------------------------------------------------------------------------------
 # a million groups: the statistics step (the sampler at this size is a benchmark, not a test)
 
+
 def test_a_million_groups_statistics_step():
     rng = np.random.default_rng(13)
     J = 1_000_000
@@ -389,7 +420,7 @@ def test_interlab_anova_is_in_user_units_at_extreme_scale():
     from pooling.report import interlab
 
     g, y = _raw_table()
-    f = 2.0 ** -997
+    f = 2.0**-997
     base = interlab(_fit_frame(g, y)[1])["anova"]
     scaled = interlab(_fit_frame(g, y * f)[1])["anova"]
     for k in ("grand_mean", "between_sd", "repeatability_sd", "reproducibility_sd"):
@@ -411,7 +442,7 @@ def test_interlab_posterior_components_keep_their_digits_at_extreme_scale():
     g, y = _raw_table()
     st, fit = _fit_frame(g, y)
     base = interlab(fit)
-    f = 2.0 ** -997
+    f = 2.0**-997
     p = fit.problem
     scaled = interlab(Fit(replace(p, center=p.center * f, scale=p.scale * f), fit.raw, fit.misses))
     for k in ("repeatability_sd", "reproducibility_sd", "between_sd"):

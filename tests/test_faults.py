@@ -9,6 +9,7 @@ monkeypatched mkdtemp that raises EACCES. A full disk is a 64 KiB tmpfs, and, wh
 allowed, a monkeypatched disk_usage or write that raises ENOSPC. Mount tests skip (and say why) when
 mount(8) is refused.
 """
+
 from __future__ import annotations
 
 import errno
@@ -53,6 +54,7 @@ def _digest(folder: Path) -> dict[str, str]:
 # ---------------------------------------------------------------------------------------------
 # Ctrl-C and SIGTERM to a real process, while it samples
 
+
 def _stop_while_sampling(tmp_path, small_csv, sig):
     """Start `pooling fit` with its stderr on a pseudo-terminal, so the progress bar shows when the
     sweeps have begun; then send `sig` and collect what the process says and returns."""
@@ -60,8 +62,27 @@ def _stop_while_sampling(tmp_path, small_csv, sig):
     master, slave = pty.openpty()
     # a terminal of 0 columns (a fresh pty) gets an empty progress bar: give it a size
     fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 100, 0, 0))
-    cmd = [sys.executable, "-m", "pooling.cli", "fit", str(small_csv), "--group", "plant", "--value", "thickness",
-           "--out", str(out), "--chains", "2", "--warmup", "10000000", "--draws", "10", "--seed", "1"]  # the largest warm-up allowed
+    cmd = [
+        sys.executable,
+        "-m",
+        "pooling.cli",
+        "fit",
+        str(small_csv),
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--out",
+        str(out),
+        "--chains",
+        "2",
+        "--warmup",
+        "10000000",
+        "--draws",
+        "10",
+        "--seed",
+        "1",
+    ]  # the largest warm-up allowed
     proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=slave, close_fds=True)
     os.close(slave)
     seen, deadline = b"", time.monotonic() + 60
@@ -132,8 +153,24 @@ def test_interrupt_after_the_folder_is_in_place_says_so(run_cli, small_csv, tmp_
 
     monkeypatch.setattr(terminal, "print_results", stopped)
     out = tmp_path / "run"
-    code, _, err = run_cli("fit", small_csv, "--group", "plant", "--value", "thickness", "--out", out,
-                           "--seed", "1", "--draws", "200", "--warmup", "200", "--max-draws", "200")
+    code, _, err = run_cli(
+        "fit",
+        small_csv,
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--out",
+        out,
+        "--seed",
+        "1",
+        "--draws",
+        "200",
+        "--warmup",
+        "200",
+        "--max-draws",
+        "200",
+    )
     line = _one_line(err)
     assert code == 5 and "after the run folder" in line and "was written" in line and "nothing" not in line
     assert (out / "draws.nc").exists() and (out / "report.html").exists()
@@ -163,6 +200,7 @@ def test_interrupt_while_replacing_keeps_the_old_folder(run_cli, small_csv, tmp_
 
 # ---------------------------------------------------------------------------------------------
 # an unwritable output folder
+
 
 def test_out_below_a_regular_file(run_cli, small_csv, tmp_path):
     blocker = tmp_path / "not-a-folder"
@@ -227,6 +265,7 @@ def test_read_only_folder_is_refused_before_sampling(run_cli, small_csv, mount_t
 # ---------------------------------------------------------------------------------------------
 # a full disk
 
+
 def test_full_disk_real_tmpfs(run_cli, small_csv, mount_tmpfs):
     """A 64 KiB tmpfs: HDF5 would crash the process writing draws.nc there (seen with h5py 3.16:
     a segmentation fault and a partial folder), so the space is checked before the write."""
@@ -286,6 +325,7 @@ def test_disk_full_while_replacing_keeps_the_old_folder(run_cli, small_csv, tmp_
 # ---------------------------------------------------------------------------------------------
 # a run folder is never overwritten without --replace
 
+
 def test_existing_folder_is_never_overwritten(run_cli, small_csv, tmp_path):
     out = tmp_path / "run"
     assert _fit(run_cli, small_csv, out)[0] in (0, 3)
@@ -315,8 +355,11 @@ def test_folder_made_by_someone_else_during_the_fit_is_not_overwritten(small_csv
     from pooling.output import write_run
     from pooling.results import compute
 
-    fit = pooling.fit(pooling.read_table(small_csv, "plant", "thickness"),
-                      settings=pooling.Settings(chains=2, draws=30, warmup=30, seed=1), progress=False)
+    fit = pooling.fit(
+        pooling.read_table(small_csv, "plant", "thickness"),
+        settings=pooling.Settings(chains=2, draws=30, warmup=30, seed=1),
+        progress=False,
+    )
     out = tmp_path / "run"
     out.mkdir()
     (out / "theirs.txt").write_text("theirs")

@@ -20,6 +20,7 @@ Tolerance: 4 Monte Carlo standard errors of our estimate (arviz's mcse for means
 4 chains x 10,000 draws at a fixed seed); the grids are checked to be fine enough (a coarser grid
 moves no answer by more than 5% of that tolerance).
 """
+
 from __future__ import annotations
 
 import functools
@@ -70,7 +71,7 @@ def _quantiles(grid, dens, probs):
     return [float(np.interp(q, cdf, grid)) for q in probs]
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def exact(df, n_mu=161, n_tau=201, n_s=161):
     """Posterior means and the PROBS quantiles of mu, tau and every theta_j, by quadrature."""
     mu, u, s = grids(n_mu, n_tau, n_s)
@@ -121,12 +122,15 @@ def exact(df, n_mu=161, n_tau=201, n_s=161):
 
 
 def _fit(df):
-    est = pooling.from_estimates(pd.DataFrame({"school": list("ABCDEFGH"), "y": SCHOOLS_Y, "se": SCHOOLS_SE}),
-                                 "school", "y", "se")
-    model = pooling.Model(within="known", between=f"heavy:{df:g}", mu=pooling.Normal(MU0, S0),
-                          tau=pooling.HalfCauchy(TAU_SCALE))
-    fit = pooling.fit(est, model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=1973, max_draws=10_000),
-                      progress=False)
+    est = pooling.from_estimates(
+        pd.DataFrame({"school": list("ABCDEFGH"), "y": SCHOOLS_Y, "se": SCHOOLS_SE}), "school", "y", "se"
+    )
+    model = pooling.Model(
+        within="known", between=f"heavy:{df:g}", mu=pooling.Normal(MU0, S0), tau=pooling.HalfCauchy(TAU_SCALE)
+    )
+    fit = pooling.fit(
+        est, model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=1973, max_draws=10_000), progress=False
+    )
     assert fit.targets_met, fit.misses[:3]
     return fit
 

@@ -18,6 +18,7 @@ weighted average of the groups' moves). Measured on 14 simulated sets (J = 50: 6
 0.18 sd for theta, 0.06 sd for mu, tau ratio 0.92 to 0.97, posterior median df 16 to 24.
 Data: simulated from the normal model (mu 10, tau 1, sigma 2, 3 to 8 measurements a group), fixed seeds.
 """
+
 from __future__ import annotations
 
 import numpy as np

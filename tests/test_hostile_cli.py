@@ -11,6 +11,7 @@ Store damage is covered with the store (tests/test_store_*.py).
 Categories: encodings, numbers, labels, options, paths (--out and inputs), Parquet damage, refit
 options, closed pipes, signals, leftovers of killed runs, a user with no writable home.
 """
+
 from __future__ import annotations
 
 import hashlib
@@ -42,6 +43,7 @@ ROOT = Path(__file__).resolve().parent.parent
 # ---------------------------------------------------------------------------------------------
 # the checks every case gets
 
+
 def run_main(*argv):
     """cli.main in-process: (exit code, stdout, stderr, warnings raised meanwhile)."""
     import contextlib
@@ -55,14 +57,20 @@ def run_main(*argv):
                 code = cli.main([str(a) for a in argv])
             except SystemExit as exc:  # argparse's refusals (one line, see cli._Parser)
                 code = exc.code
-    shown = [f"{w.category.__name__}: {w.message}" for w in caught
-             if not issubclass(w.category, (DeprecationWarning, PendingDeprecationWarning))]
+    shown = [
+        f"{w.category.__name__}: {w.message}"
+        for w in caught
+        if not issubclass(w.category, (DeprecationWarning, PendingDeprecationWarning))
+    ]
     return code, out.getvalue(), err.getvalue(), shown
 
 
 def _digests(folder: Path) -> dict[str, str]:
-    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
-            for p in sorted(folder.rglob("*")) if p.is_file() and not p.is_symlink()}
+    return {
+        str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file() and not p.is_symlink()
+    }
 
 
 def leftovers(folder: Path) -> list[str]:
@@ -133,28 +141,73 @@ def _pq_damaged():
 
 CASES = [
     # encodings
-    ("enc: utf-8 with one Windows-1252 line", {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")}, FIT, 2,
-     ["line 14", "UTF-8 except for this line", "b'Caf\\xe99,3'", "--encoding"]),
-    ("enc: the same file with --encoding cp1252", {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
-     FIT + ["--encoding", "cp1252"], {0, 3}, []),
+    (
+        "enc: utf-8 with one Windows-1252 line",
+        {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
+        FIT,
+        2,
+        ["line 14", "UTF-8 except for this line", "b'Caf\\xe99,3'", "--encoding"],
+    ),
+    (
+        "enc: the same file with --encoding cp1252",
+        {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
+        FIT + ["--encoding", "cp1252"],
+        {0, 3},
+        [],
+    ),
     ("enc: utf-32 with its byte-order mark", {"in.csv": CAFE.encode("utf-32")}, FIT, {0, 3}, []),
-    ("enc: utf-32 big-endian with its mark", {"in.csv": b"\x00\x00\xfe\xff" + CAFE.encode("utf-32-be")}, FIT,
-     {0, 3}, []),
+    (
+        "enc: utf-32 big-endian with its mark",
+        {"in.csv": b"\x00\x00\xfe\xff" + CAFE.encode("utf-32-be")},
+        FIT,
+        {0, 3},
+        [],
+    ),
     ("enc: utf-16 with its mark", {"in.csv": CAFE.encode("utf-16")}, FIT, {0, 3}, []),
     ("enc: utf-16 without a mark", {"in.csv": CAFE.encode("utf-16-le")}, FIT, 2, ["NUL bytes", "--encoding"]),
     ("enc: a legacy Windows-1252 file", {"in.csv": CAFE.encode("cp1252")}, FIT, {0, 3}, []),
-    ("enc: --encoding bogus-enc", {"in.csv": GOOD.encode()}, FIT + ["--encoding", "bogus-enc"], 2,
-     ["--encoding", "'bogus-enc'", "not a text encoding"]),
-    ("enc: --encoding base64 (bytes codec)", {"in.csv": GOOD.encode()}, FIT + ["--encoding", "base64"], 2,
-     ["'base64'", "not a text encoding"]),
-    ("enc: --encoding utf-16 on utf-8", {"in.csv": CAFE.encode()}, FIT + ["--encoding", "utf-16"], 2,
-     ["not in the utf-16 encoding", "BOM"]),
-    ("enc: --encoding ascii on utf-8", {"in.csv": CAFE.encode()}, FIT + ["--encoding", "ascii"], 2,
-     ["line 2", "the byte 0xC3 is not text in the ascii encoding", "b'Caf\\xc3\\xa90,10.0'"]),
-    ("enc: a byte cp1252 does not define", {"in.csv": GOOD.encode() + b"L\x819,3\n"}, FIT + ["--encoding", "cp1252"],
-     2, ["line 14", "the byte 0x81", "b'L\\x819,3'", "--encoding"]),
-    ("enc: the same byte, cp1252 detected", {"in.csv": GOOD.encode() + b"L\x819,3\n"}, FIT, 2,
-     ["line 14", "read as Windows-1252", "the byte 0x81"]),
+    (
+        "enc: --encoding bogus-enc",
+        {"in.csv": GOOD.encode()},
+        FIT + ["--encoding", "bogus-enc"],
+        2,
+        ["--encoding", "'bogus-enc'", "not a text encoding"],
+    ),
+    (
+        "enc: --encoding base64 (bytes codec)",
+        {"in.csv": GOOD.encode()},
+        FIT + ["--encoding", "base64"],
+        2,
+        ["'base64'", "not a text encoding"],
+    ),
+    (
+        "enc: --encoding utf-16 on utf-8",
+        {"in.csv": CAFE.encode()},
+        FIT + ["--encoding", "utf-16"],
+        2,
+        ["not in the utf-16 encoding", "BOM"],
+    ),
+    (
+        "enc: --encoding ascii on utf-8",
+        {"in.csv": CAFE.encode()},
+        FIT + ["--encoding", "ascii"],
+        2,
+        ["line 2", "the byte 0xC3 is not text in the ascii encoding", "b'Caf\\xc3\\xa90,10.0'"],
+    ),
+    (
+        "enc: a byte cp1252 does not define",
+        {"in.csv": GOOD.encode() + b"L\x819,3\n"},
+        FIT + ["--encoding", "cp1252"],
+        2,
+        ["line 14", "the byte 0x81", "b'L\\x819,3'", "--encoding"],
+    ),
+    (
+        "enc: the same byte, cp1252 detected",
+        {"in.csv": GOOD.encode() + b"L\x819,3\n"},
+        FIT,
+        2,
+        ["line 14", "read as Windows-1252", "the byte 0x81"],
+    ),
     ("enc: a character cut at the end", {"in.csv": CAFE.encode() + b"Caf\xc3"}, FIT, 2, ["line 14"]),
     ("enc: lines ended by CR only", {"in.csv": GOOD.replace("\n", "\r").encode()}, FIT, {0, 3}, []),
     ("enc: only a byte-order mark", {"in.csv": b"\xef\xbb\xbf"}, FIT, 2, ["no header and no data"]),
@@ -169,22 +222,51 @@ CASES = [
     ("num: --thousands ab", {"in.csv": GOOD}, FIT + ["--thousands", "ab"], 2, ["--thousands"]),
     ("num: --delimiter ''", {"in.csv": GOOD}, FIT + ["--delimiter", ""], 2, ["--delimiter"]),
     ("num: --delimiter newline", {"in.csv": GOOD}, FIT + ["--delimiter", "\n"], 2, ["--delimiter", "'\\n'"]),
-    ("num: summary n = 9e18", {"in.csv": "lab,n,m,s\na,9e18,1,1\nb,5,2,1\nc,4,3,1\n"},
-     ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", "run"], 2,
-     ["column 'n'", "group 'a'", "2^53", "'9e+18'"]),
-    ("num: summary n = 1e19", {"in.csv": "lab,n,m,s\na,1e19,1,1\nb,5,2,1\nc,4,3,1\n"},
-     ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", "run"], 2,
-     ["group 'a'", "'1e+19'"]),
-    ("num: summary n = 2^53 fits", {"in.csv": f"lab,n,m,s\na,{2**53},1,1\nb,2,2,1\nc,2,3,1\n"},
-     ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", "run"], {0, 3}, []),
-    ("num: standard errors of 1e-300", {"in.csv": "lab,e,s\na,1,1e-300\nb,2,1e-300\nc,3,1e-300\n"},
-     ["fit", "in.csv", "--group", "lab", "--estimate", "e", "--std-error", "s", "--out", "run"], {0, 3}, []),
-    ("num: the largest double", {"in.csv": "lab,y\n" + "".join(f"L{j},{1.7976931348623157e308 * (-1) ** k}\n"
-                                                                 for j in range(3) for k in range(2))},
-     FIT, 2, ["magnitude", "times 1e-307"]),
-    ("num: subnormal values", {"in.csv": "lab,y\n" + "".join(f"L{j},{1e-320 * (j + 1) * (k + 1)}\n"
-                                                             for j in range(3) for k in range(2))},
-     FIT, 2, ["magnitude", "times 1e+320"]),
+    (
+        "num: summary n = 9e18",
+        {"in.csv": "lab,n,m,s\na,9e18,1,1\nb,5,2,1\nc,4,3,1\n"},
+        ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", "run"],
+        2,
+        ["column 'n'", "group 'a'", "2^53", "'9e+18'"],
+    ),
+    (
+        "num: summary n = 1e19",
+        {"in.csv": "lab,n,m,s\na,1e19,1,1\nb,5,2,1\nc,4,3,1\n"},
+        ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", "run"],
+        2,
+        ["group 'a'", "'1e+19'"],
+    ),
+    (
+        "num: summary n = 2^53 fits",
+        {"in.csv": f"lab,n,m,s\na,{2**53},1,1\nb,2,2,1\nc,2,3,1\n"},
+        ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "m", "--sd", "s", "--out", "run"],
+        {0, 3},
+        [],
+    ),
+    (
+        "num: standard errors of 1e-300",
+        {"in.csv": "lab,e,s\na,1,1e-300\nb,2,1e-300\nc,3,1e-300\n"},
+        ["fit", "in.csv", "--group", "lab", "--estimate", "e", "--std-error", "s", "--out", "run"],
+        {0, 3},
+        [],
+    ),
+    (
+        "num: the largest double",
+        {
+            "in.csv": "lab,y\n"
+            + "".join(f"L{j},{1.7976931348623157e308 * (-1) ** k}\n" for j in range(3) for k in range(2))
+        },
+        FIT,
+        2,
+        ["magnitude", "times 1e-307"],
+    ),
+    (
+        "num: subnormal values",
+        {"in.csv": "lab,y\n" + "".join(f"L{j},{1e-320 * (j + 1) * (k + 1)}\n" for j in range(3) for k in range(2))},
+        FIT,
+        2,
+        ["magnitude", "times 1e+320"],
+    ),
     # labels
     ("label: escape code", {"in.csv": GOOD + "\x1b[2J,1\n"}, FIT, 2, ["row 13", "U+001B"]),
     ("label: NUL byte", {"in.csv": GOOD + "a\x00b,1\n"}, FIT, 2, ["NUL bytes"]),
@@ -193,19 +275,48 @@ CASES = [
     ("label: 100,000 characters", {"in.csv": GOOD + "x" * 100_000 + ",1\n" + "x" * 100_000 + ",2\n"}, FIT, {0, 3}, []),
     ("label: formula and markup", {"in.csv": GOOD + "\"=cmd|' /C calc'!A0\",1\n<script>,2\n"}, FIT, {0, 3}, []),
     # options
-    ("opt: --group lab --value lab", {"in.csv": GOOD},
-     ["fit", "in.csv", "--group", "lab", "--value", "lab", "--out", "run"], 2, ["--group", "--value", "both 'lab'"]),
-    ("opt: --size and --mean the same column", {"in.csv": "lab,n,s\na,3,1\nb,3,1\nc,3,1\n"},
-     ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "n", "--sd", "s", "--out", "run"], 2,
-     ["--size", "--mean", "both 'n'"]),
-    ("opt: --estimate and --std-error the same", {"in.csv": GOOD},
-     ["fit", "in.csv", "--group", "lab", "--estimate", "y", "--std-error", "y", "--out", "run"], 2, ["both 'y'"]),
-    ("opt: --draws 1000000000", {"in.csv": GOOD}, FIT + ["--draws", "1000000000", "--quiet"], 2,
-     ["--draws", "at most 10,000,000 sweeps per chain", "1,000,000,000"]),
-    ("opt: --warmup 1000000000", {"in.csv": GOOD}, FIT + ["--warmup", "1000000000", "--quiet"], 2,
-     ["--warmup", "at most 10,000,000 sweeps per chain"]),
-    ("opt: draws beyond memory", {"in.csv": GOOD}, FIT + ["--chains", "1000", "--draws", "2500000", "--quiet"], 2,
-     ["--draws", "of memory", "TiB", "the run needs about 2 times that"]),
+    (
+        "opt: --group lab --value lab",
+        {"in.csv": GOOD},
+        ["fit", "in.csv", "--group", "lab", "--value", "lab", "--out", "run"],
+        2,
+        ["--group", "--value", "both 'lab'"],
+    ),
+    (
+        "opt: --size and --mean the same column",
+        {"in.csv": "lab,n,s\na,3,1\nb,3,1\nc,3,1\n"},
+        ["fit", "in.csv", "--group", "lab", "--size", "n", "--mean", "n", "--sd", "s", "--out", "run"],
+        2,
+        ["--size", "--mean", "both 'n'"],
+    ),
+    (
+        "opt: --estimate and --std-error the same",
+        {"in.csv": GOOD},
+        ["fit", "in.csv", "--group", "lab", "--estimate", "y", "--std-error", "y", "--out", "run"],
+        2,
+        ["both 'y'"],
+    ),
+    (
+        "opt: --draws 1000000000",
+        {"in.csv": GOOD},
+        FIT + ["--draws", "1000000000", "--quiet"],
+        2,
+        ["--draws", "at most 10,000,000 sweeps per chain", "1,000,000,000"],
+    ),
+    (
+        "opt: --warmup 1000000000",
+        {"in.csv": GOOD},
+        FIT + ["--warmup", "1000000000", "--quiet"],
+        2,
+        ["--warmup", "at most 10,000,000 sweeps per chain"],
+    ),
+    (
+        "opt: draws beyond memory",
+        {"in.csv": GOOD},
+        FIT + ["--chains", "1000", "--draws", "2500000", "--quiet"],
+        2,
+        ["--draws", "of memory", "TiB", "the run needs about 2 times that"],
+    ),
     ("opt: --max-draws 1e11", {"in.csv": GOOD}, FIT + ["--max-draws", "100000000000", "--quiet"], 2, ["--max-draws"]),
     ("opt: --chains 1000000", {"in.csv": GOOD}, FIT + ["--chains", "1000000"], 2, ["--chains", "at most"]),
     ("opt: --draws abc (argparse)", {"in.csv": GOOD}, FIT + ["--draws", "abc"], 2, ["--draws", "'abc'"]),
@@ -222,56 +333,127 @@ CASES = [
     ("in: a FIFO", {"in.csv": "fifo"}, FIT, 2, ["named pipe", "not a regular file"]),
     ("in: a symlink loop", {"in.csv": ("link", "in.csv")}, FIT, 2, ["symbolic link that loops"]),
     ("in: a dangling symlink", {"in.csv": ("link", "gone.csv")}, FIT, 2, ["symbolic link to 'gone.csv'"]),
-    ("in: /dev/null", {}, ["fit", "/dev/null", "--group", "lab", "--value", "y", "--out", "run"], 2,
-     ["character device"]),
+    (
+        "in: /dev/null",
+        {},
+        ["fit", "/dev/null", "--group", "lab", "--value", "y", "--out", "run"],
+        2,
+        ["character device"],
+    ),
     ("in: an empty file", {"in.csv": b""}, FIT, 2, ["empty"]),
-    ("in: a 300-character name", {}, ["fit", "x" * 300 + ".csv", "--group", "lab", "--value", "y", "--out", "run"], 2,
-     ["too long"]),
+    (
+        "in: a 300-character name",
+        {},
+        ["fit", "x" * 300 + ".csv", "--group", "lab", "--value", "y", "--out", "run"],
+        2,
+        ["too long"],
+    ),
     # --out
     ("out: .", {"in.csv": GOOD}, FIT[:-1] + ["."], 2, ["--out", "current folder"]),
     ("out: . --replace", {"in.csv": GOOD}, FIT[:-1] + [".", "--replace"], 2, ["current folder"]),
     ("out: ..", {"in.csv": GOOD}, FIT[:-1] + ["..", "--replace"], 2, ["holds the current folder"]),
     ("out: the input file", {"in.csv": GOOD}, FIT[:-1] + ["in.csv", "--replace"], 2, ["is the input file"]),
-    ("out: the folder of the input", {"d/in.csv": GOOD}, ["fit", "d/in.csv", "--group", "lab", "--value", "y",
-                                                          "--out", "d", "--replace"], 2, ["'d' holds the input file"]),
+    (
+        "out: the folder of the input",
+        {"d/in.csv": GOOD},
+        ["fit", "d/in.csv", "--group", "lab", "--value", "y", "--out", "d", "--replace"],
+        2,
+        ["'d' holds the input file"],
+    ),
     ("out: below a file", {"in.csv": GOOD, "afile": "x"}, FIT[:-1] + ["afile/run"], 6, ["is a file, in the way"]),
     ("out: a 300-character name", {"in.csv": GOOD}, FIT[:-1] + ["x" * 300], 6, ["300 bytes long", "255"]),
     ("out: a 300-character folder on the way", {"in.csv": GOOD}, FIT[:-1] + ["y" * 300 + "/run"], 6, ["300 bytes"]),
-    ("out: a folder not written by pooling", {"in.csv": GOOD, "run/keep.txt": "mine"}, FIT + ["--replace"], 6,
-     ["not a run folder written by pooling"]),
-    ("out: a symlink to a folder", {"in.csv": GOOD, "real/x": "x", "run": ("link", "real")}, FIT + ["--replace"], 6,
-     ["symbolic link"]),
+    (
+        "out: a folder not written by pooling",
+        {"in.csv": GOOD, "run/keep.txt": "mine"},
+        FIT + ["--replace"],
+        6,
+        ["not a run folder written by pooling"],
+    ),
+    (
+        "out: a symlink to a folder",
+        {"in.csv": GOOD, "real/x": "x", "run": ("link", "real")},
+        FIT + ["--replace"],
+        6,
+        ["symbolic link"],
+    ),
     ("out: a symlink loop", {"in.csv": GOOD, "run": ("link", "run")}, FIT, 6, ["loops"]),
     ("out: a NUL in the name", {"in.csv": GOOD}, FIT[:-1] + ["a\x00b"], 2, ["NUL"]),
     ("out: a file in the way", {"in.csv": GOOD, "run": "keep"}, FIT + ["--replace"], 6, ["in the way"]),
-    ("out: inside the input folder", {"d/in.csv": GOOD}, ["fit", "d", "--group", "lab", "--value", "y", "--out",
-                                                          "d/run"], 2, ["'d/run' is inside the input folder 'd'"]),
-    ("out: a run folder from before markers", {"in.csv": GOOD, "run/summary.json": '{\n "format": 1,\n '
-                                               '"pooling_version": "0.1.0"}', "run/draws.nc": "x", "run/groups.csv": "x"},
-     FIT + ["--replace"], 6, ["no '.pooling-run' marker", "pooling 0.1.0", "before run folders were marked",
-                              "rm -r -- run"]),
+    (
+        "out: inside the input folder",
+        {"d/in.csv": GOOD},
+        ["fit", "d", "--group", "lab", "--value", "y", "--out", "d/run"],
+        2,
+        ["'d/run' is inside the input folder 'd'"],
+    ),
+    (
+        "out: a run folder from before markers",
+        {
+            "in.csv": GOOD,
+            "run/summary.json": '{\n "format": 1,\n "pooling_version": "0.1.0"}',
+            "run/draws.nc": "x",
+            "run/groups.csv": "x",
+        },
+        FIT + ["--replace"],
+        6,
+        ["no '.pooling-run' marker", "pooling 0.1.0", "before run folders were marked", "rm -r -- run"],
+    ),
     # Parquet
     ("parquet: non-UTF-8 binary labels", {"in.csv": _pq_binary_labels}, FIT, 2, ["row 1", "UTF-8", "b'\\xff\\xfe'"]),
     ("parquet: damaged pages", {"in.csv": _pq_damaged}, FIT, 2, ["damaged Parquet file"]),
     ("parquet: zero rows", {"in.csv": _pq(lab=[], y=[])}, FIT, 2, ["in.csv", "no rows"]),
-    ("parquet: cut short", {"in.csv": lambda: _pq(lab=["a", "b"], y=[1.0, 2.0])()[:-9]}, FIT, 2,
-     ["not a readable Parquet file"]),
+    (
+        "parquet: cut short",
+        {"in.csv": lambda: _pq(lab=["a", "b"], y=[1.0, 2.0])()[:-9]},
+        FIT,
+        2,
+        ["not a readable Parquet file"],
+    ),
     ("parquet: inf", {"in.csv": _pq(lab=["a", "b", "c"], y=[1.0, float("inf"), 2.0])}, FIT, 2, ["row 2", "finite"]),
     # ingest (the store's own damage is tested with the store)
-    ("ingest: --group lab --value lab", {"in.csv": GOOD},
-     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "lab"], 2, ["both 'lab'"]),
-    ("ingest: --encoding bogus-enc", {"in.csv": GOOD},
-     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--encoding", "bogus-enc"], 2, ["--encoding"]),
-    ("ingest: subnormal values", {"in.csv": "lab,y\n" + "".join(f"L{j},{1e-320 * (j + 1) * (k + 1)}\n"
-                                                                 for j in range(3) for k in range(2))},
-     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"], 2, ["magnitude", "times 1e+320"]),
-    ("ingest: a mixed file", {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
-     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"], 2, ["line 14"]),
-    ("ingest: --column not in the file", {"in.csv": GOOD},
-     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--column", "method"], 2, ["no column 'method'"]),
-    ("ingest: --column the group column", {"in.csv": GOOD},
-     ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--column", "lab"], 2,
-     ["'lab' is the column of the group labels"]),
+    (
+        "ingest: --group lab --value lab",
+        {"in.csv": GOOD},
+        ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "lab"],
+        2,
+        ["both 'lab'"],
+    ),
+    (
+        "ingest: --encoding bogus-enc",
+        {"in.csv": GOOD},
+        ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--encoding", "bogus-enc"],
+        2,
+        ["--encoding"],
+    ),
+    (
+        "ingest: subnormal values",
+        {"in.csv": "lab,y\n" + "".join(f"L{j},{1e-320 * (j + 1) * (k + 1)}\n" for j in range(3) for k in range(2))},
+        ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"],
+        2,
+        ["magnitude", "times 1e+320"],
+    ),
+    (
+        "ingest: a mixed file",
+        {"in.csv": CAFE.encode() + "Café9,3\n".encode("cp1252")},
+        ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y"],
+        2,
+        ["line 14"],
+    ),
+    (
+        "ingest: --column not in the file",
+        {"in.csv": GOOD},
+        ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--column", "method"],
+        2,
+        ["no column 'method'"],
+    ),
+    (
+        "ingest: --column the group column",
+        {"in.csv": GOOD},
+        ["ingest", "s.store", "in.csv", "--group", "lab", "--value", "y", "--column", "lab"],
+        2,
+        ["'lab' is the column of the group labels"],
+    ),
 ]
 
 
@@ -313,13 +495,19 @@ def test_named_case(tmp_path, monkeypatch, name, files, argv, want, needles):
 # ---------------------------------------------------------------------------------------------
 # property tests: random damage, random option values, random --out paths
 
+
 def _valid_csv() -> bytes:
     return GOOD.encode()
 
 
 @HYP
-@given(st.lists(st.tuples(st.integers(0, len(GOOD) - 1), st.integers(0, 255),
-                          st.sampled_from(["flip", "insert", "delete"])), min_size=1, max_size=4))
+@given(
+    st.lists(
+        st.tuples(st.integers(0, len(GOOD) - 1), st.integers(0, 255), st.sampled_from(["flip", "insert", "delete"])),
+        min_size=1,
+        max_size=4,
+    )
+)
 def test_damaged_csv_fits_or_gives_one_line(tmp_path_factory, edits):
     work = tmp_path_factory.mktemp("csv")
     data = bytearray(_valid_csv())
@@ -356,16 +544,70 @@ def test_damaged_parquet_fits_or_gives_one_line(tmp_path_factory, flips):
 
 
 HOSTILE_TEXT = st.one_of(
-    st.sampled_from(["", " ", "-1", "0", "1e999", "nan", "inf", "-inf", "1e308", "1e-320", "2e9", "abc", "1,5", "\x00",
-                     "../..", "a" * 300, "é", "half-cauchy:", "normal:1:", ":", "gamma:1e308:1e-308", "1e400,1",
-                     "9999999999999999999999", "0x10", "1_0", "\n", "\t"]),
+    st.sampled_from(
+        [
+            "",
+            " ",
+            "-1",
+            "0",
+            "1e999",
+            "nan",
+            "inf",
+            "-inf",
+            "1e308",
+            "1e-320",
+            "2e9",
+            "abc",
+            "1,5",
+            "\x00",
+            "../..",
+            "a" * 300,
+            "é",
+            "half-cauchy:",
+            "normal:1:",
+            ":",
+            "gamma:1e308:1e-308",
+            "1e400,1",
+            "9999999999999999999999",
+            "0x10",
+            "1_0",
+            "\n",
+            "\t",
+        ]
+    ),
     st.text(max_size=12),
 )
-OPTIONS = ["--chains", "--warmup", "--draws", "--max-draws", "--seed", "--threads", "--tau", "--mu", "--s2", "--sigma2",
-           "--nu",
-           "--nu-grid", "--level", "--top", "--threshold", "--lower-limit", "--allowed-bias", "--compare",
-           "--assigned-value", "--sigma-pt", "--keep", "--keep-sample", "--summary-bins", "--encoding", "--delimiter",
-           "--thousands", "--within", "--best", "--summary"]
+OPTIONS = [
+    "--chains",
+    "--warmup",
+    "--draws",
+    "--max-draws",
+    "--seed",
+    "--threads",
+    "--tau",
+    "--mu",
+    "--s2",
+    "--sigma2",
+    "--nu",
+    "--nu-grid",
+    "--level",
+    "--top",
+    "--threshold",
+    "--lower-limit",
+    "--allowed-bias",
+    "--compare",
+    "--assigned-value",
+    "--sigma-pt",
+    "--keep",
+    "--keep-sample",
+    "--summary-bins",
+    "--encoding",
+    "--delimiter",
+    "--thousands",
+    "--within",
+    "--best",
+    "--summary",
+]
 
 
 @HYP
@@ -376,15 +618,51 @@ def test_hostile_option_values_fit_or_give_one_line(tmp_path_factory, options):
     out = work / "run"
     flat = [x for pair in options for x in pair]
     # keep whatever samples small: the run-size options given here come after these defaults
-    code, _, err, caught = run_main("fit", work / "in.csv", "--group", "lab", "--value", "y", "--out", out,
-                                    "--chains", "2", "--draws", "30", "--warmup", "30", "--max-draws", "60",
-                                    "--seed", "1", "--quiet", *[x for x in flat])
+    code, _, err, caught = run_main(
+        "fit",
+        work / "in.csv",
+        "--group",
+        "lab",
+        "--value",
+        "y",
+        "--out",
+        out,
+        "--chains",
+        "2",
+        "--draws",
+        "30",
+        "--warmup",
+        "30",
+        "--max-draws",
+        "60",
+        "--seed",
+        "1",
+        "--quiet",
+        *[x for x in flat],
+    )
     check_outcome(code, err, caught, {0, 2, 3, 6}, out=out)
     assert leftovers(work) == [] and (work / "in.csv").read_text() == GOOD
 
 
-OUT_PARTS = st.sampled_from([".", "..", "in.csv", "d", "d/in.csv", "afile", "run", "x" * 300, "", "link", "é",
-                             "a b", "-run", "--replace", "new"])
+OUT_PARTS = st.sampled_from(
+    [
+        ".",
+        "..",
+        "in.csv",
+        "d",
+        "d/in.csv",
+        "afile",
+        "run",
+        "x" * 300,
+        "",
+        "link",
+        "é",
+        "a b",
+        "-run",
+        "--replace",
+        "new",
+    ]
+)
 
 
 @HYP
@@ -403,8 +681,9 @@ def test_no_out_path_loses_data(tmp_path_factory, monkeypatch, parts, replace):
     before = _digests(work)
     monkeypatch.chdir(work)
     target = "/".join(parts)
-    code, _, err, caught = run_main("fit", "in.csv", "--group", "lab", "--value", "y", "--out", target, *TINY,
-                                    *(["--replace"] if replace else []))
+    code, _, err, caught = run_main(
+        "fit", "in.csv", "--group", "lab", "--value", "y", "--out", target, *TINY, *(["--replace"] if replace else [])
+    )
     check_outcome(code, err, caught, {0, 2, 3, 6})
     after = _digests(work)
     written = Path(os.path.abspath(work / target)) if code in (0, 3) else None
@@ -420,8 +699,11 @@ LETTERS = st.sampled_from(["A", "Bé", "Çà", "Ω", "ß", "ü", "€", "東京"
 
 
 @HYP
-@given(st.sampled_from(ENCODINGS), st.lists(LETTERS, min_size=3, max_size=8, unique=True),
-       st.one_of(st.none(), st.integers(0, 7)))
+@given(
+    st.sampled_from(ENCODINGS),
+    st.lists(LETTERS, min_size=3, max_size=8, unique=True),
+    st.one_of(st.none(), st.integers(0, 7)),
+)
 def test_encodings_read_or_name_the_line(tmp_path_factory, encoding, labels, foreign):
     """Property: a table in any of these encodings is read with its labels intact (a file that is not
     UTF-8 is read as Windows-1252, which agrees with Latin-1 on every letter here); a UTF-8 table with
@@ -447,8 +729,9 @@ def test_encodings_read_or_name_the_line(tmp_path_factory, encoding, labels, for
             bad_line = k + 1
     (work / "in.csv").write_bytes(data)
     if bad_line is not None:
-        code, _, err, caught = run_main("fit", work / "in.csv", "--group", "lab", "--value", "y", "--out",
-                                        work / "run", *TINY)
+        code, _, err, caught = run_main(
+            "fit", work / "in.csv", "--group", "lab", "--value", "y", "--out", work / "run", *TINY
+        )
         check_outcome(code, err, caught, 2, [f"line {bad_line}", "UTF-8 except for this line"])
         assert not (work / "run").exists()
         return
@@ -458,6 +741,7 @@ def test_encodings_read_or_name_the_line(tmp_path_factory, encoding, labels, for
 # ---------------------------------------------------------------------------------------------
 # refit: options of the store's command (store damage itself: tests/test_store_*.py)
 
+
 @pytest.fixture
 def store(tmp_path):
     from pooling.store import jobs
@@ -465,23 +749,36 @@ def store(tmp_path):
     folder = tmp_path / "st"
     folder.mkdir()
     for k, day in enumerate(["2024-01-01", "2024-03-01"]):
-        (folder / f"b{k}.csv").write_text("lab,y\n" + "".join(f"L{j},{10 + j + 0.1 * i + k}\n" for j in range(4)
-                                                                for i in range(3)))
+        (folder / f"b{k}.csv").write_text(
+            "lab,y\n" + "".join(f"L{j},{10 + j + 0.1 * i + k}\n" for j in range(4) for i in range(3))
+        )
         jobs.ingest_file(folder / "s.store", folder / f"b{k}.csv", "lab", "y", at=day)
     return folder / "s.store"
 
 
-@pytest.mark.parametrize("extra,want,needles", [
-    (["--half-life", "1e-300"], 2, ["--half-life", "underflows to zero", "oldest batch is", "1e-300 days"]),
-    (["--half-life", "0"], 2, ["--half-life"]),
-    (["--half-life", "nan"], 2, ["--half-life"]),
-    (["--as-of", "yesterday"], 2, ["--as-of"]),
-    (["--decide-at", "2"], 2, ["--decide-at"]),
-    (["--summary", "on"], 2, ["--summary on"]),
-    (["--out-is-store"], 2, ["is the store"]),
-    (["--out-holds-store"], 2, ["holds the store"]),
-], ids=["half-life 1e-300", "half-life 0", "half-life nan", "as-of", "decide-at", "summary on", "out is the store",
-        "out holds the store"])
+@pytest.mark.parametrize(
+    "extra,want,needles",
+    [
+        (["--half-life", "1e-300"], 2, ["--half-life", "underflows to zero", "oldest batch is", "1e-300 days"]),
+        (["--half-life", "0"], 2, ["--half-life"]),
+        (["--half-life", "nan"], 2, ["--half-life"]),
+        (["--as-of", "yesterday"], 2, ["--as-of"]),
+        (["--decide-at", "2"], 2, ["--decide-at"]),
+        (["--summary", "on"], 2, ["--summary on"]),
+        (["--out-is-store"], 2, ["is the store"]),
+        (["--out-holds-store"], 2, ["holds the store"]),
+    ],
+    ids=[
+        "half-life 1e-300",
+        "half-life 0",
+        "half-life nan",
+        "as-of",
+        "decide-at",
+        "summary on",
+        "out is the store",
+        "out holds the store",
+    ],
+)
 def test_refit_options(store, tmp_path, monkeypatch, extra, want, needles):
     monkeypatch.chdir(tmp_path)
     before = _digests(tmp_path)
@@ -507,9 +804,20 @@ def test_a_half_life_that_leaves_too_little_weight_says_so(store, tmp_path, monk
     monkeypatch.chdir(tmp_path)
     base = ["refit", store, "--out", tmp_path / "run", "--as-of", "2024-06-01", "--within", within, *TINY]
     code, _, err, caught = run_main(*base, "--half-life", "5")
-    line = check_outcome(code, err, caught, 2, ["--half-life", "a half-life of 5 days leaves too little weight",
-                                                "within-group variance", "the largest effective n is",
-                                                "the newest batch weighs", f"the {within} structure needs"])
+    line = check_outcome(
+        code,
+        err,
+        caught,
+        2,
+        [
+            "--half-life",
+            "a half-life of 5 days leaves too little weight",
+            "within-group variance",
+            "the largest effective n is",
+            "the newest batch weighs",
+            f"the {within} structure needs",
+        ],
+    )
     assert "need at least one group" not in line and "one measurement each" not in line
     longer = float(re.search(r"about ([0-9.e+]+) days or more", line).group(1))
     code, _, err, caught = run_main(*base, "--half-life", str(longer / 1.25))
@@ -526,16 +834,33 @@ def test_draws_that_are_not_finite_are_refused_and_not_recorded(store, tmp_path,
     from pooling.store import jobs
 
     monkeypatch.chdir(tmp_path)
-    code, _, err, caught = run_main("refit", store, "--out", tmp_path / "run", "--as-of", "2024-06-01",
-                                    "--half-life", "3", "--s2", "gamma:1:1", *TINY)
-    check_outcome(code, err, caught, 2, ["draws of mu are not finite numbers", "effective n", "nothing was written",
-                                        "--half-life"])
+    code, _, err, caught = run_main(
+        "refit",
+        store,
+        "--out",
+        tmp_path / "run",
+        "--as-of",
+        "2024-06-01",
+        "--half-life",
+        "3",
+        "--s2",
+        "gamma:1:1",
+        *TINY,
+    )
+    check_outcome(
+        code,
+        err,
+        caught,
+        2,
+        ["draws of mu are not finite numbers", "effective n", "nothing was written", "--half-life"],
+    )
     assert not (tmp_path / "run").exists() and leftovers(tmp_path) == []
     assert jobs.list_batches(store)[1] == []  # no run recorded
 
 
 # ---------------------------------------------------------------------------------------------
 # run folders: marked, replaced only when marked, leftovers of killed runs cleaned
+
 
 def test_replace_swaps_in_a_new_run_and_removes_the_old_only_after(tmp_path, monkeypatch):
     from pooling import output
@@ -555,8 +880,21 @@ def test_replace_swaps_in_a_new_run_and_removes_the_old_only_after(tmp_path, mon
         return real_rmtree(path, *a, **k)
 
     monkeypatch.setattr(output.shutil, "rmtree", watch)
-    code, _, err, _ = run_main("fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out", out, *TINY[:-3],
-                               "--seed", "7", "--quiet", "--replace")
+    code, _, err, _ = run_main(
+        "fit",
+        tmp_path / "in.csv",
+        "--group",
+        "lab",
+        "--value",
+        "y",
+        "--out",
+        out,
+        *TINY[:-3],
+        "--seed",
+        "7",
+        "--quiet",
+        "--replace",
+    )
     assert code in (0, 3), err
     assert seen == [7] and leftovers(tmp_path) == []
 
@@ -585,8 +923,9 @@ def test_leftovers_of_killed_runs_are_removed_or_put_back(tmp_path):
     (aside / "run").mkdir()
     (aside / "run" / output.MARKER).write_text(json.dumps({"written_by": "pooling", "format": 1, "kind": "run"}))
     (aside / "run" / "summary.json").write_text("{}")
-    code, _, err, _ = run_main("fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out", tmp_path / "d",
-                               *TINY)
+    code, _, err, _ = run_main(
+        "fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out", tmp_path / "d", *TINY
+    )
     assert code in (0, 3), err
     assert not dead.exists() and not aside.exists() and foreign.exists()
     assert (tmp_path / "c" / "summary.json").read_text() == "{}"
@@ -607,14 +946,16 @@ def test_a_leftover_held_by_a_live_process_is_kept(tmp_path):
     try:
         live = Path(proc.stdout.readline().strip())
         assert live.exists()
-        rc, _, err, _ = run_main("fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out",
-                                 tmp_path / "one", *TINY)
+        rc, _, err, _ = run_main(
+            "fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out", tmp_path / "one", *TINY
+        )
         assert rc in (0, 3), err
         assert live.exists()  # held: not touched
         proc.send_signal(signal.SIGKILL)  # the way a run dies without cleaning up
         proc.wait(timeout=30)
-        rc, _, err, _ = run_main("fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out",
-                                 tmp_path / "two", *TINY)
+        rc, _, err, _ = run_main(
+            "fit", tmp_path / "in.csv", "--group", "lab", "--value", "y", "--out", tmp_path / "two", *TINY
+        )
         assert rc in (0, 3), err
         assert not live.exists()
     finally:
@@ -626,6 +967,7 @@ def test_a_leftover_held_by_a_live_process_is_kept(tmp_path):
 # ---------------------------------------------------------------------------------------------
 # subprocesses: closed pipes and SIGTERM
 
+
 def _env():
     env = dict(os.environ)
     env.pop("POOLING_DEBUG", None)
@@ -634,8 +976,13 @@ def _env():
 
 def _closed_pipe(argv, cwd):
     """Run `pooling ARGV` with stdout a pipe whose reader has already gone, as `| head` leaves it."""
-    proc = subprocess.Popen([sys.executable, "-m", "pooling.cli", *map(str, argv)], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, cwd=cwd, env=_env())
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "pooling.cli", *map(str, argv)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        cwd=cwd,
+        env=_env(),
+    )
     proc.stdout.close()
     _, err = proc.communicate(timeout=300)
     return proc.returncode, err.decode("utf-8", "replace")
@@ -645,8 +992,7 @@ def test_output_into_a_closed_pipe_ends_quietly_and_the_refit_is_recorded(store,
     from pooling.store import jobs
 
     (tmp_path / "in.csv").write_text(GOOD)
-    rc, err = _closed_pipe(["fit", "in.csv", "--group", "lab", "--value", "y", "--out", "run",
-                            *TINY[:-1]], tmp_path)
+    rc, err = _closed_pipe(["fit", "in.csv", "--group", "lab", "--value", "y", "--out", "run", *TINY[:-1]], tmp_path)
     assert rc in (0, 3) and "Traceback" not in err and "Broken pipe" not in err and "Exception" not in err, err
     assert (tmp_path / "run" / "summary.json").exists()
     rc, err = _closed_pipe(["refit", store, "--out", "refit-run", *TINY[:-1]], tmp_path)
@@ -656,8 +1002,9 @@ def test_output_into_a_closed_pipe_ends_quietly_and_the_refit_is_recorded(store,
     rc, err = _closed_pipe(["batches", store], tmp_path)
     assert rc == 0 and err == "", err
     # and through a real `| head -1`, with output larger than the pipe's buffer
-    pipeline = (f"{sys.executable} -m pooling.cli batches {store} --json | head -c 10 >/dev/null; "
-                "echo ${PIPESTATUS[0]} >&2")
+    pipeline = (
+        f"{sys.executable} -m pooling.cli batches {store} --json | head -c 10 >/dev/null; echo ${{PIPESTATUS[0]}} >&2"
+    )
     r = subprocess.run(["bash", "-c", pipeline], capture_output=True, text=True, env=_env(), timeout=120, check=False)
     assert r.stderr.strip() == "0", r.stderr
 
@@ -689,9 +1036,14 @@ cli.run()
 def test_sigterm_after_the_refit_is_recorded_exits_5(store, tmp_path, when):
     from pooling.store import jobs
 
-    proc = subprocess.run([sys.executable, "-c", SIGTERM_SCRIPT, when, "refit", str(store), "--out",
-                           str(tmp_path / "run"), *TINY], capture_output=True, text=True, env=_env(), timeout=300,
-                          check=False)
+    proc = subprocess.run(
+        [sys.executable, "-c", SIGTERM_SCRIPT, when, "refit", str(store), "--out", str(tmp_path / "run"), *TINY],
+        capture_output=True,
+        text=True,
+        env=_env(),
+        timeout=300,
+        check=False,
+    )
     assert proc.returncode == 5, (proc.returncode, proc.stderr)  # not -15: the signal is handled to the end
     lines = [ln for ln in proc.stderr.splitlines() if ln.strip() and not ln.startswith("warning: diagnostics")]
     assert len(lines) == 1 and "stopped by the user" in lines[0] and "Traceback" not in proc.stderr, proc.stderr
@@ -704,13 +1056,16 @@ def test_sigterm_after_the_refit_is_recorded_exits_5(store, tmp_path, when):
 # ---------------------------------------------------------------------------------------------
 # a scheduler's user with no writable home and a venv it cannot write (README, nightly recipe)
 
+
 def _as_nobody(tmp_path: Path, argv: list[str], shared: str | None = None):
     """Run `pooling ARGV` as the user nobody with HOME unset, in a private mount namespace where /root is
     a fresh tmpfs holding only a bind mount of the interpreter's tree (so that nobody can run the venv
     without any change to the machine). Skips where that cannot be arranged."""
     if os.geteuid() != 0:
-        pytest.skip("needs root to switch to the user nobody; as another user the package folder is writable, "
-                    "so the case cannot arise")
+        pytest.skip(
+            "needs root to switch to the user nobody; as another user the package folder is writable, "
+            "so the case cannot arise"
+        )
     for tool in ("unshare", "runuser", "mount"):
         if shutil.which(tool) is None:
             pytest.skip(f"{tool} is not installed")
@@ -721,8 +1076,13 @@ def _as_nobody(tmp_path: Path, argv: list[str], shared: str | None = None):
     home = nobody.pw_dir
     if home and os.path.isdir(home) and os.access(home, os.W_OK):
         pytest.skip(f"nobody's home '{home}' exists here")
-    probe = subprocess.run(["unshare", "-m", "sh", "-c", "mount --make-rprivate / && mount -t tmpfs tmpfs /mnt"],
-                           capture_output=True, text=True, timeout=60, check=False)
+    probe = subprocess.run(
+        ["unshare", "-m", "sh", "-c", "mount --make-rprivate / && mount -t tmpfs tmpfs /mnt"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
     if probe.returncode != 0:
         pytest.skip(f"a private mount namespace is refused here ({probe.stderr.strip()[:120]})")
     box = Path(tempfile.mkdtemp(prefix="pooling-nobody-"))
@@ -737,20 +1097,41 @@ def _as_nobody(tmp_path: Path, argv: list[str], shared: str | None = None):
         (box / "tmp" / f"pooling-numba-cache-{nobody.pw_uid}").chmod(0o777)
     # /root is private (0700) and may hold the interpreter (pyenv) or this checkout: in this namespace
     # alone, /root becomes a fresh tmpfs that shows only those trees, bind-mounted, to everyone
-    inside = sorted({Path(p).relative_to("/root").parts[0] for p in (os.path.realpath(sys.base_prefix), str(ROOT))
-                     if p.startswith("/root/")})
+    inside = sorted(
+        {
+            Path(p).relative_to("/root").parts[0]
+            for p in (os.path.realpath(sys.base_prefix), str(ROOT))
+            if p.startswith("/root/")
+        }
+    )
     prep = ""
     if inside:
-        prep = (f"mkdir -p {box}/stage && mount --bind /root {box}/stage && "
-                "mount -t tmpfs -o mode=755,size=1m tmpfs /root && ")
+        prep = (
+            f"mkdir -p {box}/stage && mount --bind /root {box}/stage && "
+            "mount -t tmpfs -o mode=755,size=1m tmpfs /root && "
+        )
         prep += "".join(f"mkdir -p /root/{d} && mount --bind {box}/stage/{d} /root/{d} && " for d in inside)
-    command = ["env", "-u", "HOME", "-u", "NUMBA_CACHE_DIR", "-u", "XDG_CACHE_HOME", f"TMPDIR={box}/tmp",
-               sys.executable, "-m", "pooling.cli", *argv]
-    script = (f"mount --make-rprivate / && {prep}cd {box} && exec runuser -u nobody -- "
-              + " ".join(shlex.quote(x) for x in command))
+    command = [
+        "env",
+        "-u",
+        "HOME",
+        "-u",
+        "NUMBA_CACHE_DIR",
+        "-u",
+        "XDG_CACHE_HOME",
+        f"TMPDIR={box}/tmp",
+        sys.executable,
+        "-m",
+        "pooling.cli",
+        *argv,
+    ]
+    script = f"mount --make-rprivate / && {prep}cd {box} && exec runuser -u nobody -- " + " ".join(
+        shlex.quote(x) for x in command
+    )
     try:
-        r = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=300,
-                           check=False)
+        r = subprocess.run(
+            ["unshare", "-m", "sh", "-c", script], capture_output=True, text=True, timeout=300, check=False
+        )
     except subprocess.TimeoutExpired:
         shutil.rmtree(box, ignore_errors=True)
         raise
@@ -777,8 +1158,9 @@ def test_a_user_with_no_home_can_fit(tmp_path):
 def test_a_shared_cache_folder_made_by_another_user_is_not_used(tmp_path):
     """numba loads its cache files as pickles: a cache folder someone else could write is refused, the
     kernel is compiled afresh in a private folder, and one line says so."""
-    r, box = _as_nobody(tmp_path, ["fit", "in.csv", "--group", "lab", "--value", "y", "--out", "out/run", *TINY],
-                        shared="foreign")
+    r, box = _as_nobody(
+        tmp_path, ["fit", "in.csv", "--group", "lab", "--value", "y", "--out", "out/run", *TINY], shared="foreign"
+    )
     try:
         assert r.returncode in (0, 3), r.stderr
         notes = [ln for ln in r.stderr.splitlines() if ln.startswith("pooling: note:")]

@@ -7,6 +7,7 @@ and numpy, which computes the expected group statistics from the very values tha
 Property tests run on the reading layer (pooling.read_table / from_frame); a few named cases run
 the whole command line with tiny chains.
 """
+
 from __future__ import annotations
 
 import csv
@@ -66,9 +67,13 @@ def _one_line(exc: BaseException) -> str:
 def tables(draw):
     """A valid long table and a random but legal way of writing it."""
     groups = draw(st.lists(st.one_of(LABEL, TRICKY), min_size=1, max_size=6, unique_by=lambda s: s.strip()))
-    rows = draw(st.lists(st.tuples(st.sampled_from(groups),
-                                   st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)),
-                         min_size=1, max_size=30))
+    rows = draw(
+        st.lists(
+            st.tuples(st.sampled_from(groups), st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)),
+            min_size=1,
+            max_size=30,
+        )
+    )
     fmt = {
         "delimiter": draw(st.sampled_from([",", ";", "\t", "|"])),
         "quoting": draw(st.sampled_from([csv.QUOTE_MINIMAL, csv.QUOTE_ALL])),
@@ -101,8 +106,9 @@ def _write(path, rows, fmt):
             num = f"{v:,.17g}" if abs(v) < 1e16 else repr(v)
         cells = [g, num][:: -1 if fmt["value_first"] else 1] + [f"n{i}"] * len(fmt["extra"])
         buf = io.StringIO()
-        csv.writer(buf, delimiter=fmt["delimiter"], quoting=fmt["quoting"],
-                   lineterminator=fmt["lineterminator"]).writerow(cells)
+        csv.writer(
+            buf, delimiter=fmt["delimiter"], quoting=fmt["quoting"], lineterminator=fmt["lineterminator"]
+        ).writerow(cells)
         lines.append(buf.getvalue())
     for k in sorted(fmt["blank_lines"], reverse=True):
         lines.insert(k + 1, fmt["lineterminator"])
@@ -156,8 +162,14 @@ def test_any_bytes_fit_or_give_one_line(tmp_path_factory, data):
         _one_line(exc)
 
 
-CELLS = st.one_of(st.none(), st.floats(), st.integers(-10, 10), st.booleans(), st.text(LABEL_CHARS, max_size=6),
-                  st.sampled_from(["", " ", "nan", "inf", "1e400", "\x00", "\ud800", "1,5"]))
+CELLS = st.one_of(
+    st.none(),
+    st.floats(),
+    st.integers(-10, 10),
+    st.booleans(),
+    st.text(LABEL_CHARS, max_size=6),
+    st.sampled_from(["", " ", "nan", "inf", "1e400", "\x00", "\ud800", "1,5"]),
+)
 
 
 @FAST
@@ -178,6 +190,7 @@ def test_any_frame_fits_or_gives_one_line(rows):
 
 # ---------------------------------------------------------------------------------------------
 # named cases on the reading layer
+
 
 def _write_text(tmp_path, text, name="in.csv", encoding="utf-8"):
     p = tmp_path / name
@@ -275,7 +288,9 @@ def test_group_names_that_look_like_missing_values_or_numbers(tmp_path):
     assert s.labels == ("NA", "null", "nan", "1", "01", "1.0", "TRUE")
 
 
-@pytest.mark.parametrize("text,row", [("lab,y\na,1\n,2\n", 2), ("lab,y\na,1\n   ,2\n", 2), ('lab,y\na,1\nb,2\n"",3\n', 3)])
+@pytest.mark.parametrize(
+    "text,row", [("lab,y\na,1\n,2\n", 2), ("lab,y\na,1\n   ,2\n", 2), ('lab,y\na,1\nb,2\n"",3\n', 3)]
+)
 def test_missing_group_values_name_the_row(tmp_path, text, row):
     p = _write_text(tmp_path, text)
     with pytest.raises(InputError) as e:
@@ -304,12 +319,15 @@ def test_very_long_labels(tmp_path):
     assert len(_one_line(e.value)) < 300
 
 
-@pytest.mark.parametrize("text,needle", [
-    ("lab,y\na,1,3\nb,2,4\n", "row 1: expected 2 fields"),        # pandas would shift every column by one
-    ("x,lab,y\n1,a,1,9\n2,b,2,9\n", "row 1: expected 3 fields"),
-    ("lab,y\na,1\nb,2,4\n", "line 3: expected 2 fields"),         # pandas would drop the surplus
-    ("lab,y\na,1,5\n", "row 1: expected 2 fields"),               # an unquoted decimal comma
-])
+@pytest.mark.parametrize(
+    "text,needle",
+    [
+        ("lab,y\na,1,3\nb,2,4\n", "row 1: expected 2 fields"),  # pandas would shift every column by one
+        ("x,lab,y\n1,a,1,9\n2,b,2,9\n", "row 1: expected 3 fields"),
+        ("lab,y\na,1\nb,2,4\n", "line 3: expected 2 fields"),  # pandas would drop the surplus
+        ("lab,y\na,1,5\n", "row 1: expected 2 fields"),  # an unquoted decimal comma
+    ],
+)
 def test_rows_longer_than_the_header_are_refused_not_shifted(tmp_path, text, needle):
     p = _write_text(tmp_path, text)
     with pytest.raises(InputError) as e:
@@ -382,12 +400,16 @@ def test_hand_made_statistics_are_checked_before_sampling():
     """GroupStats built in Python skip the readers' checks; build() refuses what would give nonsense."""
     from pooling.stats import GroupStats
 
-    ok = dict(labels=("a", "b", "c"), n=np.array([3, 3, 3]), mean=np.array([1.0, 2.0, 3.0]), m2=np.array([1.0, 1.0, 1.0]))
+    ok = dict(
+        labels=("a", "b", "c"), n=np.array([3, 3, 3]), mean=np.array([1.0, 2.0, 3.0]), m2=np.array([1.0, 1.0, 1.0])
+    )
     pooling.build(GroupStats(**ok))
-    for change, needle in [({"mean": np.array([1.0, np.nan, 3.0])}, "group 'b' has mean"),
-                           ({"n": np.array([3, 0, 3])}, "group 'b' has n = 0"),
-                           ({"m2": np.array([1.0, -1.0, 1.0])}, "group 'b' has m2"),
-                           ({"labels": ("a", "a", "c")}, "distinct strings")]:
+    for change, needle in [
+        ({"mean": np.array([1.0, np.nan, 3.0])}, "group 'b' has mean"),
+        ({"n": np.array([3, 0, 3])}, "group 'b' has n = 0"),
+        ({"m2": np.array([1.0, -1.0, 1.0])}, "group 'b' has m2"),
+        ({"labels": ("a", "a", "c")}, "distinct strings"),
+    ]:
         with pytest.raises(pooling.ModelError) as e:
             pooling.build(GroupStats(**{**ok, **change}))
         assert needle in _one_line(e.value)
@@ -396,10 +418,12 @@ def test_hand_made_statistics_are_checked_before_sampling():
 # ---------------------------------------------------------------------------------------------
 # the whole command line on a few of them
 
+
 def _cli(run_cli, tmp_path, path, *opts):
     out = tmp_path / "run"
-    code, _, err = run_cli("fit", path, "--out", out, "--quiet", "--chains", "2", "--draws", "40", "--warmup", "40",
-                           "--seed", "1", *opts)
+    code, _, err = run_cli(
+        "fit", path, "--out", out, "--quiet", "--chains", "2", "--draws", "40", "--warmup", "40", "--seed", "1", *opts
+    )
     return code, err, out
 
 
@@ -407,13 +431,16 @@ def _no_partial(tmp_path):
     return not [p for p in tmp_path.iterdir() if ".partial-" in p.name or ".old-" in p.name]
 
 
-@pytest.mark.parametrize("text,opts,needle", [
-    ("lab,y\na,1,3\nb,2,4\nc,3,3\n", [], "expected 2 fields"),
-    ("lab;y\nA;1,5\nB;2,5\nC;3,5\n", [], "--decimal-comma"),
-    ('lab,y\nA,"1,234.5"\nB,2\nC,3\n', [], "--thousands"),
-    ("\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", [], "not a text table"),
-    ("lab,y\na,1\n", ["--thousands", ".", "--decimal-comma"], None),
-])
+@pytest.mark.parametrize(
+    "text,opts,needle",
+    [
+        ("lab,y\na,1,3\nb,2,4\nc,3,3\n", [], "expected 2 fields"),
+        ("lab;y\nA;1,5\nB;2,5\nC;3,5\n", [], "--decimal-comma"),
+        ('lab,y\nA,"1,234.5"\nB,2\nC,3\n', [], "--thousands"),
+        ("\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR", [], "not a text table"),
+        ("lab,y\na,1\n", ["--thousands", ".", "--decimal-comma"], None),
+    ],
+)
 def test_cli_bad_tables_one_line_exit_2_nothing_written(run_cli, tmp_path, text, opts, needle):
     p = tmp_path / "in.csv"
     p.write_bytes(text.encode("latin-1"))
@@ -426,7 +453,9 @@ def test_cli_bad_tables_one_line_exit_2_nothing_written(run_cli, tmp_path, text,
 
 
 def test_cli_european_table_fits_with_its_options(run_cli, tmp_path):
-    rows = ["Labor;Messwert"] + [f"L{j};{1000 + j + 0.25 * k:.2f}".replace(".", ",") for j in range(4) for k in range(3)]
+    rows = ["Labor;Messwert"] + [
+        f"L{j};{1000 + j + 0.25 * k:.2f}".replace(".", ",") for j in range(4) for k in range(3)
+    ]
     p = tmp_path / "eu.csv"
     p.write_bytes(("\n".join(rows) + "\n").encode("cp1252"))
     code, err, out = _cli(run_cli, tmp_path, p, "--group", "Labor", "--value", "Messwert", "--decimal-comma")
@@ -442,8 +471,22 @@ def test_cli_european_table_fits_with_its_options(run_cli, tmp_path):
 def test_cli_summaries_take_the_reading_options(run_cli, tmp_path):
     p = tmp_path / "sum.csv"
     p.write_bytes("lab;n;mittel;sd\nA;5;10,5;1,25\nB;7;11,0;0,5\nC;4;9,75;2,0\n".encode("cp1252"))
-    code, err, out = _cli(run_cli, tmp_path, p, "--group", "lab", "--size", "n", "--mean", "mittel", "--sd", "sd",
-                          "--decimal-comma", "--within", "shared")
+    code, err, out = _cli(
+        run_cli,
+        tmp_path,
+        p,
+        "--group",
+        "lab",
+        "--size",
+        "n",
+        "--mean",
+        "mittel",
+        "--sd",
+        "sd",
+        "--decimal-comma",
+        "--within",
+        "shared",
+    )
     assert code in (0, 3), err
     s = pooling.from_summaries(p, "lab", "n", "mittel", "sd", decimal=",")
     np.testing.assert_allclose(s.raw_mean, [10.5, 11.0, 9.75])
@@ -463,13 +506,19 @@ def test_parquet_odd_columns(tmp_path):
 
     p = write(pd.DataFrame({"g": pd.Categorical(["a,b", "<x>", "a,b"]), "y": [1.0, 2.0, 3.0]}), "cat.parquet")
     _assert_stats(read_table(p, "g", "y"), ["a,b", "<x>", "a,b"], [1.0, 2.0, 3.0])
-    p = write(pa.table({"g": ["a", "b"], "y": pa.array([decimal.Decimal("1.50"), decimal.Decimal("2.25")],
-                                                      pa.decimal128(5, 2))}), "dec.parquet")
+    p = write(
+        pa.table(
+            {"g": ["a", "b"], "y": pa.array([decimal.Decimal("1.50"), decimal.Decimal("2.25")], pa.decimal128(5, 2))}
+        ),
+        "dec.parquet",
+    )
     _assert_stats(read_table(p, "g", "y"), ["a", "b"], [1.5, 2.25])
-    for table, needle in [(pa.table({"g": ["a", "b"], "y": pa.array([1.0, None])}), "row 2"),
-                          (pd.DataFrame({"g": ["a", "b"], "y": pd.to_datetime(["2024-01-01", "2024-01-02"])}), "row 1"),
-                          (pa.table({"g": ["a"], "y": pa.array([[1.0]])}), "row 1"),
-                          (pd.DataFrame({"g": ["a\x00", "b"], "y": [1.0, 2.0]}), "U+0000")]:
+    for table, needle in [
+        (pa.table({"g": ["a", "b"], "y": pa.array([1.0, None])}), "row 2"),
+        (pd.DataFrame({"g": ["a", "b"], "y": pd.to_datetime(["2024-01-01", "2024-01-02"])}), "row 1"),
+        (pa.table({"g": ["a"], "y": pa.array([[1.0]])}), "row 1"),
+        (pd.DataFrame({"g": ["a\x00", "b"], "y": [1.0, 2.0]}), "U+0000"),
+    ]:
         with pytest.raises(InputError) as e:
             read_table(write(table, "bad.parquet"), "g", "y")
         assert needle in _one_line(e.value)
@@ -523,6 +572,7 @@ def _zero_counts(data: bytes, rows: int, which) -> bytes:
     a zigzag varint. Each count is overwritten with a varint of 0 of the same length (0x80 ... 0x00), so no
     offset moves. For 3,000 rows the counts are, in footer order: the file's rows, each column chunk's
     values, the row group's rows."""
+
     def varint(x):
         out = bytearray()
         while True:
@@ -539,16 +589,19 @@ def _zero_counts(data: bytes, rows: int, which) -> bytes:
     out = bytearray(data)
     for k in which:
         at = hits[k] + 1
-        out[at:at + len(code) - 1] = b"\x80" * (len(code) - 2) + b"\x00"
+        out[at : at + len(code) - 1] = b"\x80" * (len(code) - 2) + b"\x00"
     return bytes(out)
 
 
-@pytest.mark.parametrize("which,needle", [
-    ((0,), "its footer says 0 rows but its row groups hold 3000"),
-    ((3,), "its footer says 3000 rows but its row groups hold 0"),
-    ((1,), "row group 1 says 3000 rows but its column 'lab' holds 0 values"),
-    ((0, 1, 2, 3), "row group 1 says 0 rows but its column 'lab' records values (from 'G0' to 'G4')"),
-])
+@pytest.mark.parametrize(
+    "which,needle",
+    [
+        ((0,), "its footer says 0 rows but its row groups hold 3000"),
+        ((3,), "its footer says 3000 rows but its row groups hold 0"),
+        ((1,), "row group 1 says 3000 rows but its column 'lab' holds 0 values"),
+        ((0, 1, 2, 3), "row group 1 says 0 rows but its column 'lab' records values (from 'G0' to 'G4')"),
+    ],
+)
 def test_a_parquet_row_count_zeroed_by_damage_is_not_an_empty_file(tmp_path, which, needle):
     import pyarrow as pa
 
@@ -604,8 +657,9 @@ def test_every_bit_flip_in_a_parquet_with_page_checksums_is_refused_or_harmless(
     # unused metadata). benchmarks/parquet_flips.py counts every bit of such a file.
     import pyarrow as pa
 
-    table = pa.table({"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) + 0.25 * (i % 7)
-                                                                        for i in range(3000)]})
+    table = pa.table(
+        {"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) + 0.25 * (i % 7) for i in range(3000)]}
+    )
     data = _pq_bytes(table, write_page_checksum=True)
     work = tmp_path_factory.mktemp("flip")
     (work / "ref.parquet").write_bytes(data)
@@ -643,8 +697,9 @@ def test_folders_of_files_skip_run_folders_and_verify_parquet_pages(tmp_path):
     (run / ".pooling-run").unlink()  # not ours: read as data, as any other folder
     assert read_table_dask(data, "lab", "y", scheduler="sync").labels == ("a", "b", "zz")
 
-    table = pa.table({"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) + 0.25 * (i % 7)
-                                                                        for i in range(3000)]})
+    table = pa.table(
+        {"lab": [f"G{i % 5}" for i in range(3000)], "y": [float(i % 13) + 0.25 * (i % 7) for i in range(3000)]}
+    )
     good = _pq_bytes(table, write_page_checksum=True)
     pq_dir = tmp_path / "pq"
     pq_dir.mkdir()
@@ -667,10 +722,14 @@ def test_folders_of_files_skip_run_folders_and_verify_parquet_pages(tmp_path):
         pytest.fail("no flip changed the values")
     with pytest.raises(InputError) as e:
         read_table_dask(pq_dir, "lab", "y", scheduler="sync")
-    assert "damaged Parquet file" in _one_line(e.value) and "does not match the checksum written with it" in str(e.value)
+    assert "damaged Parquet file" in _one_line(e.value) and "does not match the checksum written with it" in str(
+        e.value
+    )
     with pytest.raises(InputError) as e:
         read_table(p, "lab", "y")
-    assert "damaged Parquet file" in _one_line(e.value) and "does not match the checksum written with it" in str(e.value)
+    assert "damaged Parquet file" in _one_line(e.value) and "does not match the checksum written with it" in str(
+        e.value
+    )
 
 
 def test_folders_of_files_name_the_file_and_line_of_undecodable_bytes(tmp_path):
@@ -683,8 +742,10 @@ def test_folders_of_files_name_the_file_and_line_of_undecodable_bytes(tmp_path):
     data.mkdir()
     (data / "a.csv").write_bytes(b"lab,y\na,1\nb,2\n")
     (data / "b.csv").write_bytes(b"lab,y\na,1\nL\x813,3\nc,4\n")
-    for encoding, needles in ((None, ["b.csv', line 3", "0x81", "UTF-8", "detected in the first"]),
-                              ("cp1252", ["b.csv', line 3", "the byte 0x81", "cp1252", "b'L\\x813,3'"])):
+    for encoding, needles in (
+        (None, ["b.csv', line 3", "0x81", "UTF-8", "detected in the first"]),
+        ("cp1252", ["b.csv', line 3", "the byte 0x81", "cp1252", "b'L\\x813,3'"]),
+    ):
         with pytest.raises(InputError) as e:
             read_table_dask(data, "lab", "y", scheduler="sync", encoding=encoding)
         line = _one_line(e.value)

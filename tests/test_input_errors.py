@@ -3,6 +3,7 @@
 The expected behaviour is the project's own contract (README, "Exit codes"); checking it needs no
 outside reference. Each case is a small file a user could plausibly hand over.
 """
+
 from __future__ import annotations
 
 import subprocess
@@ -25,25 +26,70 @@ def _one_line(stderr: str) -> str:
 
 
 CASES = [
-    ("text in value", "lab,y\na,1.0\nb,n/a\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'y'", "row 2", "'n/a'"]),
-    ("inf in value", "lab,y\na,1.0\nb,inf\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'y'", "row 2", "finite"]),
-    ("empty cell in value", "lab,y\na,1.0\nb,\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'y'", "row 2", "empty"]),
-    ("empty group label", "lab,y\na,1.0\n,2.0\nc,2\n", ["--group", "lab", "--value", "y"], ["column 'lab'", "row 2", "group label"]),
-    ("missing column", "lab,y\na,1\n", ["--group", "lab", "--value", "strength"], ["no column 'strength'", "'lab'", "'y'"]),
+    (
+        "text in value",
+        "lab,y\na,1.0\nb,n/a\nc,2\n",
+        ["--group", "lab", "--value", "y"],
+        ["column 'y'", "row 2", "'n/a'"],
+    ),
+    (
+        "inf in value",
+        "lab,y\na,1.0\nb,inf\nc,2\n",
+        ["--group", "lab", "--value", "y"],
+        ["column 'y'", "row 2", "finite"],
+    ),
+    (
+        "empty cell in value",
+        "lab,y\na,1.0\nb,\nc,2\n",
+        ["--group", "lab", "--value", "y"],
+        ["column 'y'", "row 2", "empty"],
+    ),
+    (
+        "empty group label",
+        "lab,y\na,1.0\n,2.0\nc,2\n",
+        ["--group", "lab", "--value", "y"],
+        ["column 'lab'", "row 2", "group label"],
+    ),
+    (
+        "missing column",
+        "lab,y\na,1\n",
+        ["--group", "lab", "--value", "strength"],
+        ["no column 'strength'", "'lab'", "'y'"],
+    ),
     ("header only", "lab,y\n", ["--group", "lab", "--value", "y"], ["no data rows"]),
     ("duplicated header", "lab,y,y\na,1,2\n", ["--group", "lab", "--value", "y"], ["'y' appears 2 times"]),
-    ("n = 0 in summaries", "lab,n,m,s\na,3,1.0,0.5\nb,0,2.0,0.5\n",
-     ["--group", "lab", "--size", "n", "--mean", "m", "--sd", "s"], ["column 'n'", "group 'b'", "at least 1", "found 0"]),
-    ("non-positive standard error", "lab,est,se\na,1.0,0.5\nb,2.0,0\nc,1.5,0.2\n",
-     ["--group", "lab", "--estimate", "est", "--std-error", "se"], ["column 'se'", "group 'b'", "> 0", "found 0"]),
-    ("one row per group, repeated", "lab,est,se\na,1.0,0.5\na,2.0,0.1\nc,1.5,0.2\n",
-     ["--group", "lab", "--estimate", "est", "--std-error", "se"], ["row 2", "one row per group", "'a'"]),
+    (
+        "n = 0 in summaries",
+        "lab,n,m,s\na,3,1.0,0.5\nb,0,2.0,0.5\n",
+        ["--group", "lab", "--size", "n", "--mean", "m", "--sd", "s"],
+        ["column 'n'", "group 'b'", "at least 1", "found 0"],
+    ),
+    (
+        "non-positive standard error",
+        "lab,est,se\na,1.0,0.5\nb,2.0,0\nc,1.5,0.2\n",
+        ["--group", "lab", "--estimate", "est", "--std-error", "se"],
+        ["column 'se'", "group 'b'", "> 0", "found 0"],
+    ),
+    (
+        "one row per group, repeated",
+        "lab,est,se\na,1.0,0.5\na,2.0,0.1\nc,1.5,0.2\n",
+        ["--group", "lab", "--estimate", "est", "--std-error", "se"],
+        ["row 2", "one row per group", "'a'"],
+    ),
     # Source: Unicode Standard Annex #15 (normalisation forms): U+00FC and U+0075 U+0308 are
     # canonically equivalent, and so are the Kelvin sign U+212A and the letter K.
-    ("composed and decomposed label", "lab,y\nZ\u00fcrich,1.0\nBern,2.0\nZu\u0308rich,1.5\nBern,2.5\n",
-     ["--group", "lab", "--value", "y"], ["Unicode form", "U+00FC", "U+0075 U+0308", "two groups"]),
-    ("Kelvin sign and K", "lab,y\nK,1.0\nL,2.0\n\u212a,1.5\nL,2.5\nK,1.2\n",
-     ["--group", "lab", "--value", "y"], ["Unicode form", "U+212A", "U+004B"]),
+    (
+        "composed and decomposed label",
+        "lab,y\nZ\u00fcrich,1.0\nBern,2.0\nZu\u0308rich,1.5\nBern,2.5\n",
+        ["--group", "lab", "--value", "y"],
+        ["Unicode form", "U+00FC", "U+0075 U+0308", "two groups"],
+    ),
+    (
+        "Kelvin sign and K",
+        "lab,y\nK,1.0\nL,2.0\n\u212a,1.5\nL,2.5\nK,1.2\n",
+        ["--group", "lab", "--value", "y"],
+        ["Unicode form", "U+212A", "U+004B"],
+    ),
 ]
 
 
@@ -76,8 +122,9 @@ def test_missing_file(run_cli, tmp_path):
 
 
 def test_bad_prior_option(run_cli, small_csv, tmp_path):
-    code, stderr, out = _fit(run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness",
-                             "--tau", "half-cauchy:abc")
+    code, stderr, out = _fit(
+        run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness", "--tau", "half-cauchy:abc"
+    )
     assert code == 2 and "--tau" in _one_line(stderr) and "'abc'" in stderr
     assert not out.exists()
 
@@ -104,8 +151,24 @@ def test_no_traceback_in_a_real_process(tmp_path):
     """The installed entry point, as a user runs it: one line on stderr and exit code 2."""
     path = tmp_path / "bad.csv"
     path.write_text("lab,y\na,1\nb,oops\n")
-    proc = subprocess.run([sys.executable, "-m", "pooling.cli", "fit", str(path), "--group", "lab", "--value", "y",
-                           "--out", str(tmp_path / "run")], capture_output=True, text=True, timeout=120)
+    proc = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "pooling.cli",
+            "fit",
+            str(path),
+            "--group",
+            "lab",
+            "--value",
+            "y",
+            "--out",
+            str(tmp_path / "run"),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
     assert proc.returncode == 2
     assert proc.stderr.strip().count("\n") == 0 and "Traceback" not in proc.stderr
     assert "'oops'" in proc.stderr and "row 2" in proc.stderr
@@ -122,8 +185,9 @@ def test_unicode_twins_finds_exactly_the_canonically_equivalent_pairs():
 
     from pooling.stats import unicode_twins
 
-    letters = st.sampled_from(["a", "e", "u", "K", "\u00e9", "\u00fc", "\u0301", "\u0308", "\u212a", "\u00c5",
-                               "\u212b", "A", "\u030a", "Z"])
+    letters = st.sampled_from(
+        ["a", "e", "u", "K", "\u00e9", "\u00fc", "\u0301", "\u0308", "\u212a", "\u00c5", "\u212b", "A", "\u030a", "Z"]
+    )
     label = st.lists(letters, min_size=1, max_size=4).map("".join)
 
     @settings(max_examples=400, deadline=None)
@@ -140,13 +204,25 @@ def test_unicode_twins_finds_exactly_the_canonically_equivalent_pairs():
 
 
 def test_sigma2_prior_is_for_the_shared_structure_only(run_cli, small_csv, tmp_path):
-    code, stderr, out = _fit(run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness",
-                             "--sigma2", "scaled-inv-chi2:4:0.01")
+    code, stderr, out = _fit(
+        run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness", "--sigma2", "scaled-inv-chi2:4:0.01"
+    )
     line = _one_line(stderr)
     assert code == 2 and "shared structure only" in line and "within='separate'" in line
     assert not out.exists()
-    code, stderr, out = _fit(run_cli, small_csv, tmp_path, "--group", "plant", "--value", "thickness",
-                             "--within", "shared", "--sigma2", "scaled-inv-chi2:4")
+    code, stderr, out = _fit(
+        run_cli,
+        small_csv,
+        tmp_path,
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--within",
+        "shared",
+        "--sigma2",
+        "scaled-inv-chi2:4",
+    )
     assert code == 2 and "--sigma2" in _one_line(stderr) and "takes 2 number(s)" in stderr
     assert not out.exists()
 

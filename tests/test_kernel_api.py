@@ -9,6 +9,7 @@ entirely different numbers from the first sweeps on, while a rounding difference
 compiles for the host; a summation may be vectorised differently) moves them by a few ulps only in
 the first sweeps. Hence 1e-9 relative: far above rounding, far below any real change.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -23,22 +24,42 @@ REFERENCE = {
     "separate": {
         "mu": [0.4645767734080724, 0.9175882629256725, 0.3439678314060635, 0.05032159779753703],
         "tau": [0.9433950230079954, 0.8127020049469423, 0.8881167305268599, 1.846830164397109],
-        "theta": [[-1.1934066192496813, 1.36662971823516, 0.4886562992314448], [-0.983751866866649, 1.1196749957895813, -0.009105102353450377], [-0.02116189097358634, 1.4696099983480841, -0.4237426317060085], [-1.3463822161013352, 1.698765954910151, -0.20825375349162184]],
+        "theta": [
+            [-1.1934066192496813, 1.36662971823516, 0.4886562992314448],
+            [-0.983751866866649, 1.1196749957895813, -0.009105102353450377],
+            [-0.02116189097358634, 1.4696099983480841, -0.4237426317060085],
+            [-1.3463822161013352, 1.698765954910151, -0.20825375349162184],
+        ],
     },
     "separate_fixed": {
         "mu": [-0.33917697033838, 0.45798016775939837, 0.935301515876823, 0.9141908851497533],
         "tau": [1.4791265756682686, 1.2364588415186075, 1.2763444191722813, 1.545940940636063],
-        "theta": [[-0.6035335802138646, 1.840757462935151, -0.6599229067760174], [-0.40038644087006847, 1.8940517781859647, -0.3436596583769629], [-0.7394767667527917, 1.793428212526807, 0.004137218450347882], [-0.3717588263804896, 1.4427142539584719, 0.7176476991194463]],
+        "theta": [
+            [-0.6035335802138646, 1.840757462935151, -0.6599229067760174],
+            [-0.40038644087006847, 1.8940517781859647, -0.3436596583769629],
+            [-0.7394767667527917, 1.793428212526807, 0.004137218450347882],
+            [-0.3717588263804896, 1.4427142539584719, 0.7176476991194463],
+        ],
     },
     "shared": {
         "mu": [-0.034918435475228216, 0.9482807592254259, 0.28264694129982204, 1.169590093148656],
         "tau": [1.7838746092741253, 1.054530128473897, 1.4318274270330986, 1.1863034303527622],
-        "theta": [[-0.9210713404825164, 1.861651281758663, -0.06558960845677242], [-0.8247244860090354, 1.7304956612582274, 0.07379525280686809], [-0.5137741062017442, 1.6452526552107871, 0.31366225468857306], [-1.0290078678712173, 2.0614514837503743, 0.560002534343654]],
+        "theta": [
+            [-0.9210713404825164, 1.861651281758663, -0.06558960845677242],
+            [-0.8247244860090354, 1.7304956612582274, 0.07379525280686809],
+            [-0.5137741062017442, 1.6452526552107871, 0.31366225468857306],
+            [-1.0290078678712173, 2.0614514837503743, 0.560002534343654],
+        ],
     },
     "known": {
         "mu": [0.006340766300841842, 0.16500137944754598, 0.702442395578927, -0.18692895676586083],
         "tau": [0.7025339512456201, 0.1612213631502232, 0.30080054466894357, 0.5853805430933123],
-        "theta": [[0.9904494898644561, -0.25152694680579757, 0.47333599088486744], [0.19893161296083064, 0.21623806867686865, 0.29952818397622566], [1.3551784180528743, 0.2598171979445081, -0.08411095376282512], [-0.42091703390728225, 0.06556287637672195, 0.10301663984853732]],
+        "theta": [
+            [0.9904494898644561, -0.25152694680579757, 0.47333599088486744],
+            [0.19893161296083064, 0.21623806867686865, 0.29952818397622566],
+            [1.3551784180528743, 0.2598171979445081, -0.08411095376282512],
+            [-0.42091703390728225, 0.06556287637672195, 0.10301663984853732],
+        ],
     },
 }
 
@@ -51,27 +72,43 @@ def _data():
         for _ in range(2 + j % 4):
             rows.append((f"g{j}", th + rng.normal(0, 0.8)))
     raw = from_frame(pd.DataFrame(rows, columns=["g", "y"]), "g", "y")
-    est = pd.DataFrame({"g": [f"s{j}" for j in range(8)], "e": [28.0, 8, -3, 7, -1, 1, 18, 12],
-                        "se": [15.0, 10, 16, 11, 9, 11, 10, 18]})
+    est = pd.DataFrame(
+        {
+            "g": [f"s{j}" for j in range(8)],
+            "e": [28.0, 8, -3, 7, -1, 1, 18, 12],
+            "se": [15.0, 10, 16, 11, 9, 11, 10, 18],
+        }
+    )
     return raw, from_estimates(est, "g", "e", "se")
 
 
 @pytest.mark.parametrize("name", list(REFERENCE))
 def test_normal_model_gives_the_earlier_draws(name):
     raw, known = _data()
-    models = {"separate": (raw, Model(between="normal")), "separate_fixed": (raw, Model(nu=NuFixed(4.0), between="normal")),
-              "shared": (raw, Model(within="shared", between="normal")),
-              "known": (known, Model(within="known", between="normal"))}
+    models = {
+        "separate": (raw, Model(between="normal")),
+        "separate_fixed": (raw, Model(nu=NuFixed(4.0), between="normal")),
+        "shared": (raw, Model(within="shared", between="normal")),
+        "known": (known, Model(within="known", between="normal")),
+    }
     stats, model = models[name]
     p = build(stats, model)
-    r = sample_raw(p, Settings(chains=2, draws=4, warmup=30, seed=11, max_draws=4), progress=False,
-                   diagnose=lambda raw: ([], {"worst": {}, "misses": 0, "growth": 1, "missed_list": []}))
+    r = sample_raw(
+        p,
+        Settings(chains=2, draws=4, warmup=30, seed=11, max_draws=4),
+        progress=False,
+        diagnose=lambda raw: ([], {"worst": {}, "misses": 0, "growth": 1, "missed_list": []}),
+    )
     ref = REFERENCE[name]
     np.testing.assert_allclose(r.mu[0], ref["mu"], rtol=1e-9)
     np.testing.assert_allclose(r.tau[1], ref["tau"], rtol=1e-9)
     np.testing.assert_allclose(r.theta[0, :, :3], ref["theta"], rtol=1e-9)
     # and the heavy-tailed default is a different stream (it draws lambda_j and df every sweep)
     h = build(stats, Model(within=model.within, nu=model.nu))
-    rh = sample_raw(h, Settings(chains=2, draws=4, warmup=30, seed=11, max_draws=4), progress=False,
-                    diagnose=lambda raw: ([], {"worst": {}, "misses": 0, "growth": 1, "missed_list": []}))
+    rh = sample_raw(
+        h,
+        Settings(chains=2, draws=4, warmup=30, seed=11, max_draws=4),
+        progress=False,
+        diagnose=lambda raw: ([], {"worst": {}, "misses": 0, "growth": 1, "missed_list": []}),
+    )
     assert not np.allclose(rh.mu[0], ref["mu"])

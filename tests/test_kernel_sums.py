@@ -5,6 +5,7 @@ whose product leaves the normal range; weighted_sums is vectorised (its sums rea
 must agree with the plain formulas to rounding: the tolerance, 1e-13 relative to the sum of the
 absolute terms, is about J * 2^-52 for the J <= 1003 used here, the error bound of a float64 sum.
 """
+
 from __future__ import annotations
 
 import math
@@ -33,8 +34,14 @@ def test_sum_log_shifted_equals_the_plain_sum(J):
 def test_blocks_beyond_the_normal_range_fall_back_to_single_logs():
     # products of 16 terms near 1e-200 or 1e200 under- or overflow; the result must not
     g = np.random.default_rng(1)
-    x = np.concatenate([g.uniform(0.5, 2.0, 16) * 1e-200, g.uniform(0.5, 2.0, 16) * 1e200,
-                        g.uniform(0.5, 2.0, 16), np.array([1e-300, 1e300, 3.0])])
+    x = np.concatenate(
+        [
+            g.uniform(0.5, 2.0, 16) * 1e-200,
+            g.uniform(0.5, 2.0, 16) * 1e200,
+            g.uniform(0.5, 2.0, 16),
+            np.array([1e-300, 1e300, 3.0]),
+        ]
+    )
     got = kernel.sum_log_shifted(x, 0.0)
     ref = _fsum_log(x, 0.0)
     assert np.isfinite(got)
@@ -58,10 +65,29 @@ def _known_data(ybar, v, between=0, df_grid=(math.inf,)):
     J = len(ybar)
     grid = np.asarray(df_grid, dtype=float)
     table, layout = kernel.prepare(np.ones(J), np.array([4.0]))
-    return kernel.Data(2, np.ones(J), np.asarray(ybar, dtype=float), np.zeros(J), np.asarray(v, dtype=float), 0, 0.0,
-                       1.0, 0, 1.0, 0.0, 0.0, np.array([4.0]), np.zeros(1), table, layout, between, grid,
-                       np.full(len(grid), -math.log(len(grid))), kernel.t_constants(grid),
-                       kernel.t_quartile_logs(grid))
+    return kernel.Data(
+        2,
+        np.ones(J),
+        np.asarray(ybar, dtype=float),
+        np.zeros(J),
+        np.asarray(v, dtype=float),
+        0,
+        0.0,
+        1.0,
+        0,
+        1.0,
+        0.0,
+        0.0,
+        np.array([4.0]),
+        np.zeros(1),
+        table,
+        layout,
+        between,
+        grid,
+        np.full(len(grid), -math.log(len(grid))),
+        kernel.t_constants(grid),
+        kernel.t_quartile_logs(grid),
+    )
 
 
 def test_log_tau_density_with_heavy_tails_equals_its_formula():
@@ -154,8 +180,13 @@ def test_collapsed_nu_loglik_equals_the_plain_formula(by_size):
     s2 = 0.9
     for k, nu in enumerate(grid):
         h = nu / 2.0
-        terms = [h * math.log(h * s2) - math.lgamma(h) + math.lgamma(h + n[j] / 2.0)
-                 - (h + n[j] / 2.0) * math.log(h * s2 + ss[j] / 2.0) for j in range(J)]
+        terms = [
+            h * math.log(h * s2)
+            - math.lgamma(h)
+            + math.lgamma(h + n[j] / 2.0)
+            - (h + n[j] / 2.0) * math.log(h * s2 + ss[j] / 2.0)
+            for j in range(J)
+        ]
         ref = logprior[k] + math.fsum(terms)
         got = kernel.collapsed_nu_loglik(k, J, grid, logprior, table, s2, n, half, c, starts, sizes)
         assert abs(got - ref) <= 1e-12 * math.fsum(abs(t) for t in terms)

@@ -6,6 +6,7 @@ text), the csv module (what a spreadsheet import reads), xarray/arviz reading th
 OWASP's CSV-injection guidance for which leading characters make a spreadsheet cell a formula
 (=, +, -, @, tab, carriage return).
 """
+
 from __future__ import annotations
 
 import contextlib
@@ -25,17 +26,34 @@ from hypothesis import strategies as st
 import pooling
 from pooling._compat import az
 from pooling.output import write_run
-from pooling.results import compute
 from pooling.posterior import finish
+from pooling.results import compute
 from pooling.sampler import RawDraws, Settings
 
 FORMULA_START = ("=", "+", "-", "@", "\t", "\r")  # Source: OWASP, "CSV Injection" (from memory)
 
 HOSTILE = [
-    "Zürich ☃ 東京", "\U0001d518nicode astral", "a,b", "semi;colon|pipe", 'say "hi"', "it's", "line1\nline2",
-    "crlf\r\ninside", "<script>alert(1)</script>", "</td></tr></table><h1>x</h1>", "<img src=x onerror=alert(2)>",
-    "AT&T &amp; co", "=1+1", "=HYPERLINK(\"http://example.invalid\",\"x\")", "+SUM(A1:A9)", "-2", "@cmd", "NA",
-    "é" * 300, "back\\slash", "{\"json\": [1]}",
+    "Zürich ☃ 東京",
+    "\U0001d518nicode astral",
+    "a,b",
+    "semi;colon|pipe",
+    'say "hi"',
+    "it's",
+    "line1\nline2",
+    "crlf\r\ninside",
+    "<script>alert(1)</script>",
+    "</td></tr></table><h1>x</h1>",
+    "<img src=x onerror=alert(2)>",
+    "AT&T &amp; co",
+    "=1+1",
+    '=HYPERLINK("http://example.invalid","x")',
+    "+SUM(A1:A9)",
+    "-2",
+    "@cmd",
+    "NA",
+    "é" * 300,
+    "back\\slash",
+    '{"json": [1]}',
 ]
 # only a Python frame can carry blanks or a tab/CR at either end (a CSV treats them as formatting)
 FRAME_ONLY = ["\tTab first", "\rCR first", "  padded  "]
@@ -77,8 +95,27 @@ def cli_run(tmp_path_factory):
     out = d / "run"
     err = io.StringIO()
     with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(err):
-        code = main(["fit", str(path), "--group", "lab", "--value", "y", "--out", str(out), "--quiet",
-                     "--chains", "2", "--draws", "100", "--warmup", "100", "--seed", "3"])
+        code = main(
+            [
+                "fit",
+                str(path),
+                "--group",
+                "lab",
+                "--value",
+                "y",
+                "--out",
+                str(out),
+                "--quiet",
+                "--chains",
+                "2",
+                "--draws",
+                "100",
+                "--warmup",
+                "100",
+                "--seed",
+                "3",
+            ]
+        )
     assert code in (0, 3), err.getvalue()
     return out, HOSTILE
 
@@ -172,14 +209,15 @@ def test_terminal_table_keeps_one_line_per_group(api_run):
     assert fit_like.posterior.sizes["group"] == len(labels)
     # the terminal presents a run's results; rebuild the small run from the statistics of the same labels
     df = pd.DataFrame(_table(labels, np.random.default_rng(8)), columns=["g", "y"])
-    fit = pooling.fit(pooling.from_frame(df, "g", "y"), settings=Settings(chains=2, draws=20, warmup=20, seed=1),
-                      progress=False)
+    fit = pooling.fit(
+        pooling.from_frame(df, "g", "y"), settings=Settings(chains=2, draws=20, warmup=20, seed=1), progress=False
+    )
     buf = io.StringIO()
     print_results(compute(fit), out, stream=buf)
     lines = buf.getvalue().splitlines()
     assert "\r" not in buf.getvalue() and "\t" not in buf.getvalue()
     start = lines.index(next(ln for ln in lines if ln.startswith("group "))) + 1  # the header row
-    rows = lines[start:lines.index("", start)]
+    rows = lines[start : lines.index("", start)]
     # 24 groups: the 6 best, a '...' line, the 6 worst; a label's newline would add a line
     assert len(rows) == 13 and rows[6].strip() == "..."
 
@@ -197,9 +235,20 @@ def _fake_fit(labels):
     problem = pooling.build(stats, pooling.Model(within="shared", tau=pooling.HalfNormal(1.0), between="normal"))
     rng = np.random.default_rng(0)
     C, D = 2, 8
-    raw = RawDraws(mu=rng.normal(size=(C, D)), tau=rng.gamma(2.0, size=(C, D)), theta=rng.normal(size=(C, D, J)),
-                   sigma=rng.gamma(2.0, size=(C, D)), s=None, nu=None, evals=np.ones((C, D)), seed=0,
-                   settings=Settings(chains=C, draws=D, warmup=0), rounds=[], seconds=0.0, final_states=[])
+    raw = RawDraws(
+        mu=rng.normal(size=(C, D)),
+        tau=rng.gamma(2.0, size=(C, D)),
+        theta=rng.normal(size=(C, D, J)),
+        sigma=rng.gamma(2.0, size=(C, D)),
+        s=None,
+        nu=None,
+        evals=np.ones((C, D)),
+        seed=0,
+        settings=Settings(chains=C, draws=D, warmup=0),
+        rounds=[],
+        seconds=0.0,
+        final_states=[],
+    )
     return finish(raw, problem)
 
 

@@ -19,6 +19,7 @@ numpy's two-pass M2 about 4e-13 at 1e9, so 1e-12 leaves room for neither to fail
 alone. Against the certified decimals the bound is the representation error of the inputs: each
 value is stored within half an ulp, which moves the sd by at most ulp(c) / 0.1 relative.
 """
+
 from __future__ import annotations
 
 from fractions import Fraction

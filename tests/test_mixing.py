@@ -16,6 +16,7 @@ To show that the problem is hard, i.e. that the test could fail, the plain condi
 sampler is run on the same data with the same number of draws and must stay below 0.05 (it
 measured 0.0015: 6 effective draws of tau out of 4000).
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -44,7 +45,8 @@ def simulated():
     return {
         "known": pooling.from_estimates(pd.DataFrame({"g": labels, "y": y, "se": se}), "g", "y", "se"),
         "shared": pooling.from_frame(pd.DataFrame({"g": np.array(labels)[rows], "y": values}), "g", "y"),
-        "y": y, "se": se,
+        "y": y,
+        "se": se,
     }
 
 
@@ -58,8 +60,11 @@ def test_tau_ess_per_draw_under_strong_shrinkage(simulated, within):
     # each structure with its package defaults (separate: nu on the default grid, p(s^2) ∝ 1/s^2);
     # separate and shared fit the same raw measurements
     data = simulated["known" if within == "known" else "shared"]
-    fit = pooling.fit(data, pooling.Model(within=within),
-                      pooling.Settings(chains=CHAINS, draws=DRAWS, warmup=WARMUP, seed=17, max_draws=DRAWS))
+    fit = pooling.fit(
+        data,
+        pooling.Model(within=within),
+        pooling.Settings(chains=CHAINS, draws=DRAWS, warmup=WARMUP, seed=17, max_draws=DRAWS),
+    )
     tau = fit.idata.posterior["tau"].values
     assert tau.shape == (CHAINS, DRAWS)
     # shrinkage is really strong here: the posterior of tau sits far below the standard errors

@@ -4,6 +4,7 @@ between-group prior says of itself, and that a Problem cannot be changed after i
 Written for the mutants of model.py that survived the mutation run (DEVELOPERS.md, "Mutation testing"); each
 test names the one it was written for.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -32,8 +33,10 @@ def test_a_shared_variance_needs_one_degree_of_freedom_and_no_more():
     p = build(_frame({"a": [1.0, 1.4], "b": [2.0], "c": [1.7]}), model)
     assert p.stats.N - p.J == 1
     # the message says what to do instead (written for model.py:623, a change to that advice's text)
-    with pytest.raises(ModelError, match="shared within-group variance needs replication.*each group's standard "
-                                         "error and use --within known$"):
+    with pytest.raises(
+        ModelError,
+        match="shared within-group variance needs replication.*each group's standard error and use --within known$",
+    ):
         build(_frame({"a": [1.0], "b": [2.0], "c": [1.7]}), model)
 
 
@@ -82,9 +85,11 @@ def test_estimates_far_apart_with_small_errors_come_to_internal_units_of_order_o
     # odd count, so that the median estimate sits at the centre itself) must have internal estimates of spread
     # between 1/4 and 4. Written for model.py:837 `dev / dev`, a 0/0 at the median estimate that left the scale
     # at a fallback far from the data's.
-    data = pd.DataFrame({"g": list("abcde"), "y": [-1500.0, -400.0, 0.0, 700.0, 1300.0], "se": [1.0, 1.2, 0.8, 1.1, 0.9]})
+    data = pd.DataFrame(
+        {"g": list("abcde"), "y": [-1500.0, -400.0, 0.0, 700.0, 1300.0], "se": [1.0, 1.2, 0.8, 1.1, 0.9]}
+    )
     p = build(pooling.from_estimates(data, "g", "y", "se"), Model(within="known"))
-    rms = float(np.sqrt(np.mean(p.ybar ** 2)))
+    rms = float(np.sqrt(np.mean(p.ybar**2)))
     assert 0.25 <= rms <= 4.0, (p.scale, rms)
 
 

@@ -20,6 +20,7 @@ that scipy ships with its own tests (scipy/stats/tests/data/nist_anova); without
    the printed value), each posterior sd within 10% (the sd of an sd estimate from a few thousand effective
    draws is about 1-2%).
 """
+
 from __future__ import annotations
 
 import csv
@@ -34,10 +35,10 @@ import scipy
 from pooling import diagnostics as dg
 
 NIST = Path(scipy.__file__).parent / "stats" / "tests" / "data" / "nist_anova"
-NAMES = ["SiRstv", "SmLs01", "SmLs02", "SmLs03", "AtmWtAg", "SmLs04", "SmLs05", "SmLs06", "SmLs07", "SmLs08",
-         "SmLs09"]
-pytestmark = pytest.mark.skipif(not (NIST / "SmLs07.dat").exists(),
-                                reason=f"scipy's copy of the NIST StRD ANOVA data is not installed ({NIST})")
+NAMES = ["SiRstv", "SmLs01", "SmLs02", "SmLs03", "AtmWtAg", "SmLs04", "SmLs05", "SmLs06", "SmLs07", "SmLs08", "SmLs09"]
+pytestmark = pytest.mark.skipif(
+    not (NIST / "SmLs07.dat").exists(), reason=f"scipy's copy of the NIST StRD ANOVA data is not installed ({NIST})"
+)
 
 
 def read_nist(name):
@@ -48,7 +49,11 @@ def read_nist(name):
         parts = ln.split()
         if ln.startswith("Between"):
             cert["df_between"], cert["ss_between"], cert["ms_between"], cert["f"] = (
-                int(parts[2]), float(parts[3]), float(parts[4]), float(parts[5]))
+                int(parts[2]),
+                float(parts[3]),
+                float(parts[4]),
+                float(parts[5]),
+            )
         elif ln.startswith("Within"):
             cert["df_within"], cert["ss_within"], cert["ms_within"] = int(parts[2]), float(parts[3]), float(parts[4])
         elif "R-Squared" in ln:
@@ -95,9 +100,32 @@ def runs(tmp_path_factory):
         cert, groups = read_nist(name)
         _write_csv(groups, d / f"{name}.csv")
         extra = ["--tau", "half-cauchy:0.001"] if len(groups) < 3 else []
-        code = main(["fit", str(d / f"{name}.csv"), "--group", "treatment", "--value", "response", "--within",
-                     "shared", "--between", "normal", "--out", str(d / name), "--seed", "5", "--chains", "4",
-                     "--draws", "4000", "--max-draws", "4000", "--quiet", *extra])
+        code = main(
+            [
+                "fit",
+                str(d / f"{name}.csv"),
+                "--group",
+                "treatment",
+                "--value",
+                "response",
+                "--within",
+                "shared",
+                "--between",
+                "normal",
+                "--out",
+                str(d / name),
+                "--seed",
+                "5",
+                "--chains",
+                "4",
+                "--draws",
+                "4000",
+                "--max-draws",
+                "4000",
+                "--quiet",
+                *extra,
+            ]
+        )
         out[name] = (code, cert, groups, d / name)
     return out
 
@@ -121,8 +149,10 @@ def test_classical_figures_match_the_certified_values(runs, name):
     reach_w = abs(float(ssw_flt - ssw_dec)) + 1e-12 * cert["ss_within"]
     assert abs(an["ss_between"] - cert["ss_between"]) <= reach_b
     assert abs(an["ss_within"] - cert["ss_within"]) <= reach_w
-    for key, _ss, df, reach in (("ms_between", "ss_between", "df_between", reach_b),
-                               ("ms_within", "ss_within", "df_within", reach_w)):
+    for key, _ss, df, reach in (
+        ("ms_between", "ss_between", "df_between", reach_b),
+        ("ms_within", "ss_within", "df_within", reach_w),
+    ):
         assert abs(an[key] - cert[key]) <= reach / cert[df] + 1e-12 * cert[key]
     # F and R^2 through the same bounds (first-order propagation of both sums' errors)
     rel = reach_b / cert["ss_between"] + reach_w / cert["ss_within"]
@@ -156,12 +186,20 @@ def exact_posterior(n, ybar, W, tau_prior_scale=None, grid=(900, 500)):
     tau, sig = np.exp(e)[:, None], np.exp(s)[None, :]
     sw = swy = logd = 0.0
     for j in range(J):
-        d = sig ** 2 / n[j] + tau ** 2
+        d = sig**2 / n[j] + tau**2
         sw, swy, logd = sw + 1 / d, swy + ybar[j] / d, logd + np.log(d)
     m, V = swy / sw, 1.0 / sw
-    Q = sum((ybar[j] - m) ** 2 / (sig ** 2 / n[j] + tau ** 2) for j in range(J))
-    lp = (-(N - J) * np.log(sig) - W / (2 * sig ** 2) + 0.5 * np.log(V) - 0.5 * logd - 0.5 * Q
-          + e[:, None] - s[None, :] + s[None, :])  # + log tau: Jacobian of log tau; - log sigma + log sigma: p(sigma) and its Jacobian
+    Q = sum((ybar[j] - m) ** 2 / (sig**2 / n[j] + tau**2) for j in range(J))
+    lp = (
+        -(N - J) * np.log(sig)
+        - W / (2 * sig**2)
+        + 0.5 * np.log(V)
+        - 0.5 * logd
+        - 0.5 * Q
+        + e[:, None]
+        - s[None, :]
+        + s[None, :]
+    )  # + log tau: Jacobian of log tau; - log sigma + log sigma: p(sigma) and its Jacobian
     if tau_prior_scale is not None:
         lp = lp - np.log1p((tau / tau_prior_scale) ** 2)
     w = np.exp(lp - lp.max())
@@ -169,12 +207,12 @@ def exact_posterior(n, ybar, W, tau_prior_scale=None, grid=(900, 500)):
     edge = float(w[[0, -1], :].sum() + w[:, [0, -1]].sum())
     means, sds = np.empty(J), np.empty(J)
     for j in range(J):
-        v = sig ** 2 / n[j]
-        B = v / (v + tau ** 2)
+        v = sig**2 / n[j]
+        B = v / (v + tau**2)
         cm = (1 - B) * ybar[j] + B * m
         cv = (1 - B) * v + B * B * V
         means[j] = (w * cm).sum()
-        sds[j] = np.sqrt((w * (cv + cm ** 2)).sum() - means[j] ** 2)
+        sds[j] = np.sqrt((w * (cv + cm**2)).sum() - means[j] ** 2)
     return means, sds, edge
 
 
@@ -187,12 +225,14 @@ def test_posterior_of_every_group_matches_the_exact_one(runs, name):
     code, cert, groups, folder = runs[name]
     assert code == 0
     st = pooling.read_table(folder.parent / f"{name}.csv", "treatment", "response")
-    model = pooling.Model(within="shared", between="normal",
-                          **({"tau": pooling.HalfCauchy(0.001)} if len(groups) < 3 else {}))
+    model = pooling.Model(
+        within="shared", between="normal", **({"tau": pooling.HalfCauchy(0.001)} if len(groups) < 3 else {})
+    )
     p = pooling.build(st, model)
     # exact, in internal units (where the data keep every digit), then mapped to the user's
-    means_i, sds_i, edge = exact_posterior(p.n, p.ybar, float(np.sum(p.m2)),
-                                           None if len(groups) >= 3 else 0.001 / p.scale)
+    means_i, sds_i, edge = exact_posterior(
+        p.n, p.ybar, float(np.sum(p.m2)), None if len(groups) >= 3 else 0.001 / p.scale
+    )
     assert edge < 1e-6
     c, k = p.center, p.scale
     table = pd.read_csv(folder / "groups.csv")

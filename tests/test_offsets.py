@@ -10,6 +10,7 @@ the chains draw the same numbers, and (common practice, IEEE 754 arithmetic):
     float64 step of O (the last addition rounds once at O's magnitude);
   * every other figure (sds, widths, biases, shrinkage, probabilities, ranks, z-scores, R-hat, ESS) is equal.
 """
+
 from __future__ import annotations
 
 import json
@@ -21,8 +22,15 @@ import pytest
 
 OFFSETS = (1e9, 1e12, 1e15)
 # (centre in eighths, half-spreads in eighths): each group holds its centre and centre +- each half-spread
-GROUPS = {"A": (0, (1, 3)), "B": (6, (2,)), "C": (-5, (1, 2, 4)), "D": (3, (1,)), "E": (11, (3, 5)),
-          "F": (-2, (2, 3)), "G": (40, (1, 2))}  # G sits far out: the heavy tails' weights take part too
+GROUPS = {
+    "A": (0, (1, 3)),
+    "B": (6, (2,)),
+    "C": (-5, (1, 2, 4)),
+    "D": (3, (1,)),
+    "E": (11, (3, 5)),
+    "F": (-2, (2, 3)),
+    "G": (40, (1, 2)),
+}  # G sits far out: the heavy tails' weights take part too
 THRESHOLD = 2.0  # a multiple of 1/8: exact at every offset
 
 
@@ -46,10 +54,34 @@ def runs(tmp_path_factory):
         path = d / f"o{offset:.0e}.csv"
         _table(offset).to_csv(path, index=False, float_format="%.17g")
         folder = d / f"run{offset:.0e}"
-        code = main(["fit", str(path), "--group", "lab", "--value", "value", "--out", str(folder), "--seed", "7",
-                     "--draws", "1000", "--max-draws", "1000", "--quiet", "--threshold", str(offset + THRESHOLD),
-                     "--lower-limit", str(offset - 1.0), "--upper-limit", str(offset + 3.0), "--allowed-bias", "0.5",
-                     "--labs"])
+        code = main(
+            [
+                "fit",
+                str(path),
+                "--group",
+                "lab",
+                "--value",
+                "value",
+                "--out",
+                str(folder),
+                "--seed",
+                "7",
+                "--draws",
+                "1000",
+                "--max-draws",
+                "1000",
+                "--quiet",
+                "--threshold",
+                str(offset + THRESHOLD),
+                "--lower-limit",
+                str(offset - 1.0),
+                "--upper-limit",
+                str(offset + 3.0),
+                "--allowed-bias",
+                "0.5",
+                "--labs",
+            ]
+        )
         assert code in (0, 3)
         out[offset] = (pd.read_csv(folder / "groups.csv"), json.loads((folder / "summary.json").read_text()))
     return out
@@ -84,20 +116,31 @@ def test_groups_csv_is_shifted_exactly(runs, offset):
     for col in base.columns:
         a, b = base[col], shifted[col]
         if col in LOCATIONS:
-            np.testing.assert_array_less(np.abs(b.to_numpy() - (a.to_numpy() + offset)), 2 * np.spacing(offset) + 1e-300)
+            np.testing.assert_array_less(
+                np.abs(b.to_numpy() - (a.to_numpy() + offset)), 2 * np.spacing(offset) + 1e-300
+            )
         elif pd.api.types.is_numeric_dtype(a):
             np.testing.assert_array_equal(a.to_numpy(), b.to_numpy(), err_msg=col)
         else:
             assert list(a) == list(b), col
     # and the answers are sane at every offset: each mean inside its interval
-    assert np.all(shifted["theta_low_95"] <= shifted["theta_mean"]) and np.all(shifted["theta_mean"] <= shifted["theta_high_95"])
+    assert np.all(shifted["theta_low_95"] <= shifted["theta_mean"]) and np.all(
+        shifted["theta_mean"] <= shifted["theta_high_95"]
+    )
 
 
 @pytest.mark.parametrize("offset", OFFSETS)
 def test_summary_json_is_shifted_exactly(runs, offset):
     a, b = runs[0.0][1], runs[offset][1]
-    for key in ("hyperparameters", "interlab", "heavy_tails", "predictive_checks", "new_group_outside", "diagnostics",
-                "groups_table"):
+    for key in (
+        "hyperparameters",
+        "interlab",
+        "heavy_tails",
+        "predictive_checks",
+        "new_group_outside",
+        "diagnostics",
+        "groups_table",
+    ):
         _same_or_shifted(a[key], b[key], offset, key)
     assert b["run"]["internal_center"] - offset == a["run"]["internal_center"]
     assert b["run"]["internal_scale"] == a["run"]["internal_scale"]

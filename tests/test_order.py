@@ -6,6 +6,7 @@ rank-normalised diagnostics. Nothing may move, so each check here is exact equal
 awkward cases as well as the smooth ones: ties, NaN, +-inf, all values equal, values crowded into one
 bucket of the counting sort, signed zeros, one or two values.
 """
+
 from __future__ import annotations
 
 import numpy as np

@@ -7,6 +7,7 @@ lab or is dragged itself (and the chains cannot decide which); the defaults (Stu
 distribution, df learned) must instead: meet the diagnostics targets, keep the lab near its own mean with
 a bias interval that excludes zero, flag it (and no other lab), and leave mu at the other labs' mean.
 """
+
 from __future__ import annotations
 
 import json
@@ -36,8 +37,24 @@ def runs(tmp_path_factory):
     _round(d / "round.csv")
     codes = {}
     for between in ("heavy", "normal"):
-        codes[between] = main(["fit", str(d / "round.csv"), "--group", "lab", "--value", "result", "--labs",
-                               "--out", str(d / between), "--seed", "2", "--quiet", "--between", between])
+        codes[between] = main(
+            [
+                "fit",
+                str(d / "round.csv"),
+                "--group",
+                "lab",
+                "--value",
+                "result",
+                "--labs",
+                "--out",
+                str(d / between),
+                "--seed",
+                "2",
+                "--quiet",
+                "--between",
+                between,
+            ]
+        )
     tables = {b: pd.DataFrame(json.loads((d / b / "summary.json").read_text())["groups_table"]) for b in codes}
     summaries = {b: json.loads((d / b / "summary.json").read_text()) for b in codes}
     return codes, tables, summaries, d

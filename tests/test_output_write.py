@@ -4,6 +4,7 @@ add_offset (so every digit survives any offset, and netCDF readers decode the us
 Uncompressed is a speed choice measured in benchmarks/README.md (`pooling fit`, whole process); these
 tests check that it does not change what is written or leave the interpreter in a changed state.
 """
+
 from __future__ import annotations
 
 import os
@@ -50,8 +51,9 @@ def test_draws_nc_round_trips_uncompressed(tmp_path):
     # Source: the documented contract of output.write_run (draws.nc holds the InferenceData's
     # groups exactly; re-opened, each group is `identical`, values, coordinates and attributes).
     env = dict(os.environ, PYTHONWARNINGS="ignore")
-    p = subprocess.run([sys.executable, "-c", _SCRIPT, str(tmp_path / "run")], env=env, capture_output=True,
-                       text=True, timeout=300)
+    p = subprocess.run(
+        [sys.executable, "-c", _SCRIPT, str(tmp_path / "run")], env=env, capture_output=True, text=True, timeout=300
+    )
     assert p.returncode == 0 and p.stdout.strip().endswith("ok"), p.stderr[-2000:]
 
 
@@ -78,8 +80,13 @@ def test_a_run_from_the_command_line_imports_no_heavy_library(tmp_path):
     # matplotlib cost ~1.7 s of imports, so the command line must not load them; a regression shows
     # here as a name in the list rather than as a slower benchmark.
     env = dict(os.environ, PYTHONWARNINGS="ignore")
-    p = subprocess.run([sys.executable, "-c", _LIGHT, str(tmp_path / "d.csv"), str(tmp_path / "run")], env=env,
-                       capture_output=True, text=True, timeout=300)
+    p = subprocess.run(
+        [sys.executable, "-c", _LIGHT, str(tmp_path / "d.csv"), str(tmp_path / "run")],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
     assert p.returncode == 0, p.stderr[-2000:]
     assert p.stdout.split()[-2:] == ["heavy", "none"], p.stdout
     assert (tmp_path / "run" / "draws.nc").exists() and (tmp_path / "run" / "report.html").exists()
@@ -96,8 +103,9 @@ def _small_fit(seed=6):
     n = g.integers(3, 7, 8)
     frame = pd.DataFrame({"g": np.repeat([f"g{j}" for j in range(8)], n), "y": g.normal(5.0, 1.0, n.sum())})
     st = stats.from_frame(frame, "g", "y")
-    return pooling.fit(st, model.Model(), sampler.Settings(chains=2, draws=120, warmup=100, seed=seed,
-                                                           max_draws=120), progress=False)
+    return pooling.fit(
+        st, model.Model(), sampler.Settings(chains=2, draws=120, warmup=100, seed=seed, max_draws=120), progress=False
+    )
 
 
 def test_user_draws_are_the_internal_draws_mapped():
@@ -148,7 +156,9 @@ def test_readable_json_is_the_same_json():
 
     values = st.recursive(
         st.none() | st.booleans() | st.integers() | st.floats(allow_nan=False, allow_infinity=False) | st.text(),
-        lambda c: st.lists(c, max_size=4) | st.dictionaries(st.text(max_size=5), c, max_size=4), max_leaves=30)
+        lambda c: st.lists(c, max_size=4) | st.dictionaries(st.text(max_size=5), c, max_size=4),
+        max_leaves=30,
+    )
 
     @settings(max_examples=300, deadline=None)
     @given(values)

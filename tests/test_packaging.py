@@ -1,4 +1,5 @@
 """Packaging details a user would notice."""
+
 from __future__ import annotations
 
 import subprocess
@@ -10,8 +11,7 @@ def test_arviz_refactor_notice_is_silenced_but_other_warnings_are_not():
 
     The filter must be targeted: a FutureWarning raised afterwards by anyone still shows.
     """
-    code = ("import warnings, pooling.posterior, pooling.report\n"
-            "warnings.warn('still shown', FutureWarning)\n")
+    code = "import warnings, pooling.posterior, pooling.report\nwarnings.warn('still shown', FutureWarning)\n"
     proc = subprocess.run([sys.executable, "-W", "default", "-c", code], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert "refactor" not in proc.stderr

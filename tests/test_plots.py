@@ -9,6 +9,7 @@ and the definition of linear interpolation between colour stops.
 The tables below are generated with fixed seeds only to exercise the drawing code; the expected
 values come from the references above, never from an earlier output.
 """
+
 from __future__ import annotations
 
 import math
@@ -28,7 +29,7 @@ from pooling.report import plots, svg
 NS = "{http://www.w3.org/2000/svg}"
 SCRIPT = "<script>alert(1)</script>"
 AMP = "a & b $x$"
-HOSTILE = [SCRIPT, AMP, 'say "hi" & \'bye\'', "bell\x07inside", "</svg><svg>", "plain"]
+HOSTILE = [SCRIPT, AMP, "say \"hi\" & 'bye'", "bell\x07inside", "</svg><svg>", "plain"]
 # Coordinates are written rounded to 0.1 px, so a written value is within 0.05 px of the exact one;
 # a line through two written points then predicts a third within 0.05 px, and the third is itself
 # within 0.05 px: 0.1 px in all (plus a relative 1e-6 for the floating-point arithmetic).
@@ -43,24 +44,41 @@ def _table(labels, seed=0):
     w = 4 / (4 + 16 / n)
     post = 100 + w * (raw - 100)
     sd = 4 / np.sqrt(n + 4)
-    return pd.DataFrame({"group": list(labels), "n": n, "raw_mean": raw, "theta_mean": post,
-                         "theta_low_95": post - 2 * sd, "theta_high_95": post + 2 * sd, "shrink_weight": 1 - w,
-                         "outlying": np.arange(J) % 7 == 3})
+    return pd.DataFrame(
+        {
+            "group": list(labels),
+            "n": n,
+            "raw_mean": raw,
+            "theta_mean": post,
+            "theta_low_95": post - 2 * sd,
+            "theta_high_95": post + 2 * sd,
+            "shrink_weight": 1 - w,
+            "outlying": np.arange(J) % 7 == 3,
+        }
+    )
 
 
 def _predictive(J, seed=1):
     rng = np.random.default_rng(seed)
     med = 2 + rng.random(J)
     spread = {"observed": 2.2, "replicated": 2 + 0.1 * rng.standard_normal(400), "p_value": 0.37}
-    sd = {"median": med, "low": med * 0.5, "high": med * 1.6, "observed": med * (0.7 + 0.6 * rng.random(J)),
-          "level": 0.9}
+    sd = {
+        "median": med,
+        "low": med * 0.5,
+        "high": med * 1.6,
+        "observed": med * (0.7 + 0.6 * rng.random(J)),
+        "level": 0.9,
+    }
     return spread, sd
 
 
 def _traces(seed=2, chains=4, draws=700):
     rng = np.random.default_rng(seed)
-    return {"mu": 10 + rng.standard_normal((chains, draws)), "tau": np.abs(rng.standard_normal((chains, draws))),
-            "nu": rng.choice([3.0, 5.0, 8.0], (chains, draws))}
+    return {
+        "mu": 10 + rng.standard_normal((chains, draws)),
+        "tau": np.abs(rng.standard_normal((chains, draws))),
+        "nu": rng.choice([3.0, 5.0, 8.0], (chains, draws)),
+    }
 
 
 def _heat(J, seed=3):
@@ -75,13 +93,15 @@ def _all_figures(labels):
     m, _, cols = _heat(len(labels))
     rng = np.random.default_rng(5)
     extreme = {"observed": 2 + rng.random(300), "replicated": 2 + rng.random(300), "p_value": 0.4, "group": 0}
-    return {"shrinkage": plots.shrinkage(t, 100.0, title="pull"),
-            "intervals": plots.intervals(t, 100.0, 0.95, lower=95.0, upper=106.0, threshold=101.0),
-            "rank_heat": plots.rank_heat(m, labels, cols),
-            "predictive": plots.predictive(spread, sd, labels, extreme),
-            "hyper_traces": plots.hyper_traces(_traces()),
-            "summary-hist": plots.histograms(t, 100.0),
-            "df_posterior": plots.df_posterior([1.0, 4.0, 16.0, np.inf], [0.1, 0.3, 0.4, 0.2], [0.5, 0.3, 0.1, 0.1])}
+    return {
+        "shrinkage": plots.shrinkage(t, 100.0, title="pull"),
+        "intervals": plots.intervals(t, 100.0, 0.95, lower=95.0, upper=106.0, threshold=101.0),
+        "rank_heat": plots.rank_heat(m, labels, cols),
+        "predictive": plots.predictive(spread, sd, labels, extreme),
+        "hyper_traces": plots.hyper_traces(_traces()),
+        "summary-hist": plots.histograms(t, 100.0),
+        "df_posterior": plots.df_posterior([1.0, 4.0, 16.0, np.inf], [0.1, 0.3, 0.4, 0.2], [0.5, 0.3, 0.1, 0.1]),
+    }
 
 
 def _parse(text):
@@ -96,6 +116,7 @@ def _texts(root):
 
 # ---------------------------------------------------------------------------------------------
 # well-formed, self-contained, unique ids
+
 
 @pytest.mark.parametrize("labels", [HOSTILE, [f"group {j}" for j in range(200)]], ids=["few", "many"])
 def test_every_figure_parses_and_ids_are_unique_across_the_report(labels):
@@ -124,6 +145,7 @@ def test_figures_are_deterministic():
 
 # ---------------------------------------------------------------------------------------------
 # labels from the data
+
 
 def test_labels_are_escaped_and_read_back_as_text():
     # Source: html.escape(quote=True) semantics and XML well-formedness (ElementTree): the raw label
@@ -156,19 +178,24 @@ def test_text_escape_property():
 # ---------------------------------------------------------------------------------------------
 # ticks
 
+
 def _mantissa(step):
     e = math.floor(math.log10(step))
-    m = step / 10.0 ** e
+    m = step / 10.0**e
     return m, e
 
 
 @settings(max_examples=400, deadline=None)
-@given(centre_m=st.floats(-9.99, 9.99, allow_nan=False), centre_e=st.integers(-200, 200),
-       rel_span=st.floats(1e-6, 50.0), negative=st.booleans())
+@given(
+    centre_m=st.floats(-9.99, 9.99, allow_nan=False),
+    centre_e=st.integers(-200, 200),
+    rel_span=st.floats(1e-6, 50.0),
+    negative=st.booleans(),
+)
 def test_ticks_are_nice_and_cover_the_range(centre_m, centre_e, rel_span, negative):
     # Common practice (the nice-number labelling idea, from memory): a step of 1, 2 or 5 times a
     # power of ten; the ticks cover the data range; 4 to 8 of them; labels consistent and exact.
-    mag = 10.0 ** centre_e
+    mag = 10.0**centre_e
     centre = centre_m * mag
     span = rel_span * mag
     lo, hi = (centre - span, centre) if negative else (centre, centre + span)
@@ -208,6 +235,7 @@ def test_degenerate_ranges_still_get_ticks():
 
 # ---------------------------------------------------------------------------------------------
 # geometry
+
 
 def _affine_check(values, pixels):
     """Pixels must be an increasing affine function of values: a line through the two extreme
@@ -252,12 +280,13 @@ def test_band_line_sits_on_linear_scales():
 # ---------------------------------------------------------------------------------------------
 # colours and size
 
+
 def test_heat_colour_reproduces_its_stops_and_interpolates_linearly():
     # Source: definition of piecewise-linear interpolation between evenly spaced stops.
     stops = plots.HEAT_STOPS
     for i, c in enumerate(stops):
         assert plots.heat_hex(i / (len(stops) - 1)) == c
-    rgb = np.array([[int(c[k:k + 2], 16) for k in (1, 3, 5)] for c in stops], float)
+    rgb = np.array([[int(c[k : k + 2], 16) for k in (1, 3, 5)] for c in stops], float)
     for i in range(len(stops) - 1):
         for f in (0.25, 0.5, 0.8):
             x = (i + f) / (len(stops) - 1)
@@ -272,8 +301,12 @@ def test_ten_thousand_groups_stay_small():
     t = _table([f"site-{j:05d}" for j in range(J)], seed=7)
     spread, sd = _predictive(J)
     m, labels, cols = _heat(40)
-    figs = {"shrinkage": plots.shrinkage(t, 100.0), "intervals": plots.intervals(t, 100.0, 0.95, threshold=101.0),
-            "predictive": plots.predictive(spread, sd, t["group"]), "rank_heat": plots.rank_heat(m, labels, cols)}
+    figs = {
+        "shrinkage": plots.shrinkage(t, 100.0),
+        "intervals": plots.intervals(t, 100.0, 0.95, threshold=101.0),
+        "predictive": plots.predictive(spread, sd, t["group"]),
+        "rank_heat": plots.rank_heat(m, labels, cols),
+    }
     for name, text in figs.items():
         assert len(text.encode("utf-8")) < 1.5e6, (name, len(text))
         root = _parse(text)
@@ -283,7 +316,9 @@ def test_ten_thousand_groups_stay_small():
 
 
 def test_no_plotting_library_is_imported():
-    code = ("import sys, pooling.report, pooling.report.plots, pooling.report.page; "
-            "print(sorted(m for m in sys.modules if m.split('.')[0] == 'matplotlib'))")
+    code = (
+        "import sys, pooling.report, pooling.report.plots, pooling.report.page; "
+        "print(sorted(m for m in sys.modules if m.split('.')[0] == 'matplotlib'))"
+    )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"

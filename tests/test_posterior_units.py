@@ -7,6 +7,7 @@ their internal scale is far from 1 and their centre far from 0, where a scale ap
 centre added to a spread, shows at once. Written for the mutants that survived the mutation run of
 posterior.py (DEVELOPERS.md, "Mutation testing"): :258 `mean / scale`, :224 the known structure's constants.
 """
+
 from __future__ import annotations
 
 import numpy as np

@@ -2,6 +2,7 @@
 numbers), the method effect is recovered with a 95% interval that covers the truth, tau without the method is much
 larger than with it, and each method has its consensus value near its truth. (tests/test_readme_and_examples.py
 runs the script as written; this test checks its claims.)"""
+
 from __future__ import annotations
 
 import importlib.util

@@ -30,6 +30,7 @@ predictor and the allocation (random, alternate, systematic) as a categorical on
    Gamma(lambda; 2, rate 2) dlambda by the trapezoid rule in log lambda, and theta_1's mean through the same
    integral; our sampler within 4 MCSE.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -56,6 +57,7 @@ def _stats(t):
 
 def reml(y, v, Z):
     """REML tau^2 and the GLS fit at it (statsmodels WLS), maximising l_R over tau^2 in [0, 10]."""
+
     def neg(t2):
         r = sm.WLS(y, Z, weights=1.0 / (v + t2)).fit()
         return 0.5 * (np.sum(np.log(v + t2)) - np.linalg.slogdet(r.normalized_cov_params)[1] + r.ssr)
@@ -110,24 +112,32 @@ def exact_posterior(y, v, Z, points=40_001, tau_max=8.0):
     dens /= integrate.trapezoid(dens, tau)
     cov = np.linalg.inv(P)
     cdf = integrate.cumulative_trapezoid(dens, tau, initial=0.0)
-    out = {"tail_mass": float(dens[-1] * tau_max), "mode_tau": float(tau[np.argmax(dens)]), "tau_grid": tau,
-           "b_of_tau": b, "cdf": cdf, "tau": {"mean": integrate.trapezoid(dens * tau, tau)}}
+    out = {
+        "tail_mass": float(dens[-1] * tau_max),
+        "mode_tau": float(tau[np.argmax(dens)]),
+        "tau_grid": tau,
+        "b_of_tau": b,
+        "cdf": cdf,
+        "tau": {"mean": integrate.trapezoid(dens * tau, tau)},
+    }
     for p in PROBS:
         out["tau"][p] = float(np.interp(p, cdf, tau))
     # theta_1 | tau, y: mean B c_1 + (1 - B) y_1, variance v_1 t / (v_1 + t) + B^2 z_1' cov z_1, B = v_1 / (v_1 + t)
-    B = v[0] / (v[0] + tau ** 2)
+    B = v[0] / (v[0] + tau**2)
     c1 = b @ Z[0]
     t_mean = B * c1 + (1 - B) * y[0]
-    t_var = v[0] * tau ** 2 / (v[0] + tau ** 2) + B * B * np.einsum("a,tab,b->t", Z[0], cov, Z[0])
+    t_var = v[0] * tau**2 / (v[0] + tau**2) + B * B * np.einsum("a,tab,b->t", Z[0], cov, Z[0])
     names = ["mu"] + [f"beta{k}" for k in range(Z.shape[1] - 1)]
     comps = [(name, b[:, k], cov[:, k, k]) for k, name in enumerate(names)] + [("theta1", t_mean, t_var)]
     for name, loc, var in comps:
-        out[name] = {"mean": integrate.trapezoid(dens * loc, tau),
-                     "sd": np.sqrt(integrate.trapezoid(dens * (var + loc ** 2), tau)
-                                   - integrate.trapezoid(dens * loc, tau) ** 2)}
+        out[name] = {
+            "mean": integrate.trapezoid(dens * loc, tau),
+            "sd": np.sqrt(integrate.trapezoid(dens * (var + loc**2), tau) - integrate.trapezoid(dens * loc, tau) ** 2),
+        }
         sd = np.sqrt(var)
         lo, hi = float(np.min(loc - 12 * sd)), float(np.max(loc + 12 * sd))
         for p in PROBS:
+
             def cdf_minus(x, loc=loc, sd=sd, p=p):
                 return integrate.trapezoid(dens * stats.norm.cdf(x, loc, sd), tau) - p
 
@@ -143,8 +153,13 @@ def case(request, bcg):
     preds = (Numeric("ablat"),) + ((Category("alloc", reference="random"),) if with_alloc else ())
     model = pooling.Model(within="known", between="normal", predictors=preds)
     # 4 x 10,000 draws: Monte Carlo errors of about 1% of a posterior sd
-    fit = pooling.fit(_stats(bcg), model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=1994,
-                                                           max_draws=10_000), progress=False, without=False)
+    fit = pooling.fit(
+        _stats(bcg),
+        model,
+        pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=1994, max_draws=10_000),
+        progress=False,
+        without=False,
+    )
     assert fit.targets_met, fit.misses[:3]
     return {"exact": exact_posterior(y, v, Z), "fit": fit, "y": y, "v": v, "Z": Z, "with_alloc": with_alloc}
 
@@ -274,9 +289,14 @@ def heavy_exact(y, v, Z, n_mu=61, n_b=61, n_tau=126):
     post = np.exp(logp - logp.max())
     total = post.sum()
     edge = (post[[0, -1]].sum() + post[:, [0, -1]].sum() + post[:, :, -1].sum()) / total
-    return {"mu": float((post * M[..., None]).sum() / total), "beta0": float((post * Bb[..., None]).sum() / total),
-            "tau": float((post * taus).sum() / total), "theta1": float((post * th1_num).sum() / total),
-            "edge_mass": float(edge), "lambda_rule": float(lw.sum())}
+    return {
+        "mu": float((post * M[..., None]).sum() / total),
+        "beta0": float((post * Bb[..., None]).sum() / total),
+        "tau": float((post * taus).sum() / total),
+        "theta1": float((post * th1_num).sum() / total),
+        "edge_mass": float(edge),
+        "lambda_rule": float(lw.sum()),
+    }
 
 
 @pytest.fixture(scope="module")
@@ -284,8 +304,13 @@ def heavy(bcg):
     y, v = bcg.yi.to_numpy(), bcg.vi.to_numpy()
     Z = design(bcg)
     model = pooling.Model(within="known", between="heavy:4", predictors=(Numeric("ablat"),))
-    fit = pooling.fit(_stats(bcg), model, pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=4,
-                                                           max_draws=10_000), progress=False, without=False)
+    fit = pooling.fit(
+        _stats(bcg),
+        model,
+        pooling.Settings(chains=4, draws=10_000, warmup=1_000, seed=4, max_draws=10_000),
+        progress=False,
+        without=False,
+    )
     assert fit.targets_met, fit.misses[:3]
     return {"exact": heavy_exact(y, v, Z), "fit": fit, "y": y, "v": v, "Z": Z}
 

@@ -5,6 +5,7 @@ These tests check behaviour, not statistics, so their tables are invented (the s
 test_predictors_exact.py, test_predictors_kernel.py and test_predictors_sbc.py). Messages must name the file,
 column, group or rows and say what to do; bad input exits with code 2 and no traceback.
 """
+
 from __future__ import annotations
 
 import json
@@ -81,8 +82,16 @@ def test_numbers_written_two_ways_are_one_value_and_empty_cells_are_refused(tmp_
 
 
 def test_summary_and_estimate_tables_and_parquet_carry_columns(tmp_path):
-    summ = pd.DataFrame({"lab": ["a", "b", "c", "d"], "n": [3, 4, 5, 3], "mean": [1.0, 2.0, 1.5, 1.2],
-                         "sd": [0.3, 0.2, 0.4, 0.3], "method": ["X", "Y", "X", "Y"], "age": [1.5, 2, 3, 4]})
+    summ = pd.DataFrame(
+        {
+            "lab": ["a", "b", "c", "d"],
+            "n": [3, 4, 5, 3],
+            "mean": [1.0, 2.0, 1.5, 1.2],
+            "sd": [0.3, 0.2, 0.4, 0.3],
+            "method": ["X", "Y", "X", "Y"],
+            "age": [1.5, 2, 3, 4],
+        }
+    )
     path = tmp_path / "summary.csv"
     summ.to_csv(path, index=False)
     st = pooling.from_summaries(path, "lab", "n", "mean", "sd", group_columns=["method", "age"])
@@ -98,14 +107,25 @@ def test_summary_and_estimate_tables_and_parquet_carry_columns(tmp_path):
 
 
 def test_merge_refuses_a_group_whose_value_changed():
-    a = pooling.from_frame(pd.DataFrame({"g": ["a", "b"], "y": [1.0, 2.0], "m": ["X", "Y"]}), "g", "y",
-                           group_columns=["m"], source="day1.csv")
-    b = pooling.from_frame(pd.DataFrame({"g": ["a", "c"], "y": [1.5, 2.5], "m": ["Z", "Y"]}), "g", "y",
-                           group_columns=["m"], source="day2.csv")
+    a = pooling.from_frame(
+        pd.DataFrame({"g": ["a", "b"], "y": [1.0, 2.0], "m": ["X", "Y"]}),
+        "g",
+        "y",
+        group_columns=["m"],
+        source="day1.csv",
+    )
+    b = pooling.from_frame(
+        pd.DataFrame({"g": ["a", "c"], "y": [1.5, 2.5], "m": ["Z", "Y"]}),
+        "g",
+        "y",
+        group_columns=["m"],
+        source="day2.csv",
+    )
     with pytest.raises(InputError, match=r"group 'a': .*'X' in 'day1.csv' and 'Z' here"):
         pooling.merge(a, b)
-    ok = pooling.from_frame(pd.DataFrame({"g": ["a", "c"], "y": [1.5, 2.5], "m": ["X", "Y"]}), "g", "y",
-                            group_columns=["m"])
+    ok = pooling.from_frame(
+        pd.DataFrame({"g": ["a", "c"], "y": [1.5, 2.5], "m": ["X", "Y"]}), "g", "y", group_columns=["m"]
+    )
     merged = pooling.merge(a, ok)
     assert dict(zip(merged.labels, merged.columns["m"])) == {"a": "X", "b": "Y", "c": "Y"}
 
@@ -125,22 +145,30 @@ def labs():
     return pooling.from_frame(_long(), "lab", "y", group_columns=["method", "site", "age"])
 
 
-@pytest.mark.parametrize("predictors,kw,pattern", [
-    ((Category("region"),), {}, r"the predictor 'region' is not among the data's group-level columns"),
-    ((Category("method", reference="C"),), {}, r"reference level 'C' of 'method' has no groups .*choose one"),
-    ((Category("method", levels=("A", "B", "C")),), {}, r"level 'C' of 'method' has no groups.*drop it"),
-    ((Category("method", levels=("A",)),), {}, r"level 'B' of 'method', which is not among the stated levels"),
-    ((Numeric("method"),), {}, r"numeric predictor 'method' has 'B' for group 'L00'; expected a finite number"),
-])
+@pytest.mark.parametrize(
+    "predictors,kw,pattern",
+    [
+        ((Category("region"),), {}, r"the predictor 'region' is not among the data's group-level columns"),
+        ((Category("method", reference="C"),), {}, r"reference level 'C' of 'method' has no groups .*choose one"),
+        ((Category("method", levels=("A", "B", "C")),), {}, r"level 'C' of 'method' has no groups.*drop it"),
+        ((Category("method", levels=("A",)),), {}, r"level 'B' of 'method', which is not among the stated levels"),
+        ((Numeric("method"),), {}, r"numeric predictor 'method' has 'B' for group 'L00'; expected a finite number"),
+    ],
+)
 def test_unidentifiable_set_ups_are_refused(labs, predictors, kw, pattern):
     with pytest.raises(ModelError, match=pattern):
         build(labs, Model(predictors=predictors, **kw))
 
 
 def test_one_level_a_constant_and_collinear_columns_are_refused(labs):
-    one = labs.with_columns({"kit": ["K1"] * labs.J, "temp": [20.0] * labs.J,
-                             "copy": list(labs.columns["method"]),
-                             "twice": [str(2 * float(a)) for a in labs.columns["age"]]})
+    one = labs.with_columns(
+        {
+            "kit": ["K1"] * labs.J,
+            "temp": [20.0] * labs.J,
+            "copy": list(labs.columns["method"]),
+            "twice": [str(2 * float(a)) for a in labs.columns["age"]],
+        }
+    )
     with pytest.raises(ModelError, match=r"'kit' has the one level 'K1' in every group.*drop it"):
         build(one, Model(predictors=(Category("kit"),)))
     with pytest.raises(ModelError, match=r"numeric predictor 'temp' is 20 in every group.*drop it"):
@@ -153,12 +181,21 @@ def test_one_level_a_constant_and_collinear_columns_are_refused(labs):
 
 def test_more_coefficients_than_groups_allow(labs):
     few = labs.subset(np.arange(4))  # 4 groups; method, site and age: mu and 3 effects
-    with pytest.raises(ModelError, match=r"4 coefficients with flat priors .* too many for 4 groups.*--tau "
-                                         r"half-normal:SCALE.*--effects normal:SCALE"):
+    with pytest.raises(
+        ModelError,
+        match=r"4 coefficients with flat priors .* too many for 4 groups.*--tau "
+        r"half-normal:SCALE.*--effects normal:SCALE",
+    ):
         build(few, Model(predictors=(Category("method"), Category("site"), Numeric("age"))))
     # a normal prior on the effects leaves mu alone flat: identified
-    build(few, Model(predictors=(Category("method"), Numeric("age")), effects=pooling.Normal(0.0, 1.0),
-                     tau=pooling.HalfNormal(1.0)))
+    build(
+        few,
+        Model(
+            predictors=(Category("method"), Numeric("age")),
+            effects=pooling.Normal(0.0, 1.0),
+            tau=pooling.HalfNormal(1.0),
+        ),
+    )
     with pytest.raises(ModelError, match="named as a predictor twice"):
         Model(predictors=(Category("method"), Numeric("method")))
 
@@ -172,8 +209,10 @@ def test_reference_defaults_to_the_level_with_most_groups(labs):
 
 
 def test_model_record_round_trips_and_is_unchanged_without_predictors():
-    m = Model(predictors=(Category("method", reference="B", levels=("A", "B")),
-                          Numeric("age", pooling.Normal(0, 2))), effects=pooling.Normal(0.0, 0.5))
+    m = Model(
+        predictors=(Category("method", reference="B", levels=("A", "B")), Numeric("age", pooling.Normal(0, 2))),
+        effects=pooling.Normal(0.0, 0.5),
+    )
     assert Model.from_dict(json.loads(json.dumps(m.to_dict()))) == m
     assert "predictors" not in Model().to_dict() and "effects" not in Model().to_dict()
 
@@ -222,15 +261,38 @@ def test_bias_is_against_each_level_and_ranks_within_levels(labs):
 
 
 def _cli(*args, cwd):
-    return subprocess.run([sys.executable, "-m", "pooling.cli", *args], cwd=cwd, capture_output=True, text=True,
-                          timeout=600, check=False)
+    return subprocess.run(
+        [sys.executable, "-m", "pooling.cli", *args], cwd=cwd, capture_output=True, text=True, timeout=600, check=False
+    )
 
 
 def test_command_line_run_folder(tmp_path):
     _long(n_groups=15, seed=3).to_csv(tmp_path / "labs.csv", index=False)
-    r = _cli("fit", "labs.csv", "--group", "lab", "--value", "y", "--category", "method", "--numeric", "age",
-             "--reference", "method=A", "--effects", "normal:5", "--out", "run", "--draws", "300", "--warmup", "300",
-             "--seed", "2", cwd=tmp_path)
+    r = _cli(
+        "fit",
+        "labs.csv",
+        "--group",
+        "lab",
+        "--value",
+        "y",
+        "--category",
+        "method",
+        "--numeric",
+        "age",
+        "--reference",
+        "method=A",
+        "--effects",
+        "normal:5",
+        "--out",
+        "run",
+        "--draws",
+        "300",
+        "--warmup",
+        "300",
+        "--seed",
+        "2",
+        cwd=tmp_path,
+    )
     assert r.returncode in (0, 3), r.stderr
     assert "why groups differ" in r.stdout and "without them (a second fit of the same data" in r.stdout
     s = json.loads((tmp_path / "run" / "summary.json").read_text())
@@ -238,15 +300,20 @@ def test_command_line_run_folder(tmp_path):
     assert [c["name"] for c in pr["coefficients"]] == ["method: B vs A", "age"]
     assert {"low_95", "high_95", "p_above_0"} <= set(pr["coefficients"][0])
     assert pr["spread"]["tau_without"]["mean"] > 0 and pr["spread"]["share_explained"] is not None
-    assert s["model"]["spec"]["predictors"][0] == {"kind": "category", "column": "method", "reference": "A",
-                                                    "levels": None, "prior": None}
+    assert s["model"]["spec"]["predictors"][0] == {
+        "kind": "category",
+        "column": "method",
+        "reference": "A",
+        "levels": None,
+        "prior": None,
+    }
     g = pd.read_csv(tmp_path / "run" / "groups.csv")
     assert {"level", "consensus_mean", "consensus_low_95", "rank_in_level_mean", "p_best_in_level"} <= set(g.columns)
     html = (tmp_path / "run" / "report.html").read_text()
     assert 'id="predictors"' in html and "Why groups differ" in html
     for name in ("by_level", "along_numeric"):
         start = html.index(f'data-figure="{name}"')
-        svg = html[html.rindex("<svg", 0, start):html.index("</svg>", start) + 6]
+        svg = html[html.rindex("<svg", 0, start) : html.index("</svg>", start) + 6]
         ET.fromstring(svg)  # well-formed
     import xarray as xr
 
@@ -256,12 +323,15 @@ def test_command_line_run_folder(tmp_path):
     assert np.mean(beta[:, 0]) == pytest.approx(pr["coefficients"][0]["mean"], rel=1e-9)
 
 
-@pytest.mark.parametrize("args,pattern", [
-    (("--reference", "method:A", "--category", "method"), "bad option --reference: expected COLUMN=LEVEL"),
-    (("--effects", "cauchy:1", "--category", "method"), "bad option --effects: expected flat or normal:SCALE"),
-    (("--category", "method", "--numeric", "method"), "named twice"),
-    (("--category", "nothere"), "no column 'nothere'"),
-])
+@pytest.mark.parametrize(
+    "args,pattern",
+    [
+        (("--reference", "method:A", "--category", "method"), "bad option --reference: expected COLUMN=LEVEL"),
+        (("--effects", "cauchy:1", "--category", "method"), "bad option --effects: expected flat or normal:SCALE"),
+        (("--category", "method", "--numeric", "method"), "named twice"),
+        (("--category", "nothere"), "no column 'nothere'"),
+    ],
+)
 def test_command_line_refusals(tmp_path, args, pattern):
     _long().to_csv(tmp_path / "labs.csv", index=False)
     r = _cli("fit", "labs.csv", "--group", "lab", "--value", "y", "--out", "run", *args, cwd=tmp_path)
@@ -289,8 +359,21 @@ def test_refit_path_takes_predictors_from_the_statistics(tmp_path, monkeypatch):
     df = _long()
     df[["lab", "y"]].to_csv(tmp_path / "day1.csv", index=False)
     methods = dict(zip(df.lab, df.method))
-    assert cli.main(["ingest", str(tmp_path / "s.store"), str(tmp_path / "day1.csv"), "--group", "lab", "--value", "y",
-                     "--quiet"]) == 0
+    assert (
+        cli.main(
+            [
+                "ingest",
+                str(tmp_path / "s.store"),
+                str(tmp_path / "day1.csv"),
+                "--group",
+                "lab",
+                "--value",
+                "y",
+                "--quiet",
+            ]
+        )
+        == 0
+    )
     real = jobs.plan_refit
 
     def with_columns(*args, **kw):
@@ -299,8 +382,23 @@ def test_refit_path_takes_predictors_from_the_statistics(tmp_path, monkeypatch):
         return plan
 
     monkeypatch.setattr(jobs, "plan_refit", with_columns)
-    code = cli.main(["refit", str(tmp_path / "s.store"), "--out", str(tmp_path / "run"), "--category", "method",
-                     "--draws", "200", "--warmup", "200", "--quiet", "--seed", "1"])
+    code = cli.main(
+        [
+            "refit",
+            str(tmp_path / "s.store"),
+            "--out",
+            str(tmp_path / "run"),
+            "--category",
+            "method",
+            "--draws",
+            "200",
+            "--warmup",
+            "200",
+            "--quiet",
+            "--seed",
+            "1",
+        ]
+    )
     assert code in (0, 3)
     s = json.loads((tmp_path / "run" / "summary.json").read_text())
     assert [c["name"] for c in s["predictors"]["coefficients"]] == ["method: B vs A"]

@@ -22,6 +22,7 @@ Each test rejects at p < 1e-3 with a fixed seed, and runs the same statistic aga
 be rejected. Inputs: the BCG trials (tests/bcg_data.py), latitude and allocation as predictors, in the kernel's
 internal units.
 """
+
 from __future__ import annotations
 
 import math
@@ -80,8 +81,15 @@ def test_log_tau_density_with_predictors_is_the_gaussian_marginal(tau_prior):
     # cannot see)
     given = {None: None, "half-normal": pooling.HalfNormal(0.3), "half-Cauchy": pooling.HalfCauchy(0.3)}[tau_prior]
     p = _problem(mu=Normal(-0.7, 2.0), effects=Normal(0.0, 0.5), tau=given)
-    tau_logpdf = (lambda t: 0.0) if given is None else (
-        lambda t: (stats.halfnorm if tau_prior == "half-normal" else stats.halfcauchy).logpdf(t, scale=0.3 / p.scale))
+    tau_logpdf = (
+        (lambda t: 0.0)
+        if given is None
+        else (
+            lambda t: (stats.halfnorm if tau_prior == "half-normal" else stats.halfcauchy).logpdf(
+                t, scale=0.3 / p.scale
+            )
+        )
+    )
     d = p.data
     Z = _Z(p)
     m0, prec = _priors(p)
@@ -188,8 +196,12 @@ def test_tail_move_takes_deviations_about_each_centre():
     z = (theta - c) / math.exp(eta)
 
     def probs(zz):
-        lp = np.array([math.log(w) + (stats.norm.logpdf(zz).sum() if np.isinf(g) else stats.t(g).logpdf(zz).sum())
-                       for g, w in zip(grid, weights)])
+        lp = np.array(
+            [
+                math.log(w) + (stats.norm.logpdf(zz).sum() if np.isinf(g) else stats.t(g).logpdf(zz).sum())
+                for g, w in zip(grid, weights)
+            ]
+        )
         e = np.exp(lp - lp.max())
         return e / e.sum()
 

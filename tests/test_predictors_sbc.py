@@ -19,6 +19,7 @@ the default heavy-tailed one (df on its default grid with its default prior weig
 Ranks are taken for mu, tau, both coefficients, theta_1 (and df, sigma_1, s where the model has them). A power
 check simulates the effects from N(0, 1) but fits them with normal:0.2: the coefficients' ranks must be rejected.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -41,11 +42,17 @@ PREDICTORS = (Category("method", reference="A"), Numeric("x"))
 DEFAULT_HEAVY = HeavyBetween()
 
 MODELS = {
-    "known-heavy": pooling.Model(within="known", mu=MU_PRIOR, tau=TAU_PRIOR, predictors=PREDICTORS,
-                                 effects=EFFECTS),
-    "separate-normal": pooling.Model(within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR,
-                                     nu=pooling.NuFixed(5.0), between="normal", predictors=PREDICTORS,
-                                     effects=EFFECTS),
+    "known-heavy": pooling.Model(within="known", mu=MU_PRIOR, tau=TAU_PRIOR, predictors=PREDICTORS, effects=EFFECTS),
+    "separate-normal": pooling.Model(
+        within="separate",
+        mu=MU_PRIOR,
+        tau=TAU_PRIOR,
+        s2=S2_PRIOR,
+        nu=pooling.NuFixed(5.0),
+        between="normal",
+        predictors=PREDICTORS,
+        effects=EFFECTS,
+    ),
 }
 assert MODELS["known-heavy"].between == DEFAULT_HEAVY  # the default between-group distribution is calibrated
 
@@ -69,8 +76,9 @@ def simulate(structure: str, rng) -> tuple[GroupStats, dict]:
     columns = {"method": list(METHOD), "x": list(X)}
     if structure.startswith("known"):
         y = theta + SE * rng.standard_normal(J)
-        data = GroupStats(LABELS, np.zeros(J, dtype=np.int64), y, np.zeros(J), se=SE.copy(), kind="known",
-                          source="simulated")
+        data = GroupStats(
+            LABELS, np.zeros(J, dtype=np.int64), y, np.zeros(J), se=SE.copy(), kind="known", source="simulated"
+        )
         return data.with_columns(columns), truth
     s2 = rng.gamma(S2_PRIOR.shape, 1.0 / S2_PRIOR.rate)
     sigma2 = 5.0 * s2 / rng.chisquare(5.0, J)  # Scaled-Inv-chi2(5, s^2)
@@ -84,8 +92,9 @@ def simulate(structure: str, rng) -> tuple[GroupStats, dict]:
     return data.with_columns(columns), truth
 
 
-def sbc_ranks(structure: str, reps: int, seed: int, model=None, kept: int = 99, thin: int = 10,
-              warmup: int = 200) -> dict[str, np.ndarray]:
+def sbc_ranks(
+    structure: str, reps: int, seed: int, model=None, kept: int = 99, thin: int = 10, warmup: int = 200
+) -> dict[str, np.ndarray]:
     model = model or MODELS[structure]
     ranks: dict[str, list[int]] = {}
 
@@ -97,8 +106,9 @@ def sbc_ranks(structure: str, reps: int, seed: int, model=None, kept: int = 99, 
         data, truth = simulate(structure, np.random.default_rng(sim_seq))
         ties = np.random.default_rng(tie_seq)
         problem = build(data, model)
-        settings = sampler.Settings(chains=1, draws=kept * thin, warmup=warmup,
-                                    seed=int(fit_seq.generate_state(1)[0]), threads=1)
+        settings = sampler.Settings(
+            chains=1, draws=kept * thin, warmup=warmup, seed=int(fit_seq.generate_state(1)[0]), threads=1
+        )
         fit = posterior.finish(sampler.sample_raw(problem, settings, progress=False, diagnose=no_extension), problem)
         beta = fit.draws("beta")
         for name, value in truth.items():
@@ -110,7 +120,7 @@ def sbc_ranks(structure: str, reps: int, seed: int, model=None, kept: int = 99, 
                 x = fit.draws(name)
                 if x.ndim == 2:
                     x = x[:, 0]
-            draws = x.reshape(-1)[thin - 1::thin]
+            draws = x.reshape(-1)[thin - 1 :: thin]
             # ties only for the discrete df: broken at random, which keeps the rank uniform
             rank = int(np.sum(draws < value)) + int(ties.integers(0, np.sum(draws == value) + 1))
             ranks.setdefault(name, []).append(rank)
@@ -136,7 +146,6 @@ def test_sbc_detects_a_wrong_prior_on_the_effects():
     # simulate beta ~ N(0, 1), fit with N(0, 0.2^2): the posterior of beta is pulled to 0, the true values rank at
     # the ends, and the histogram must be rejected
     m = MODELS["known-heavy"]
-    wrong = pooling.Model(within="known", mu=m.mu, tau=m.tau, predictors=PREDICTORS,
-                          effects=pooling.Normal(0.0, 0.2))
+    wrong = pooling.Model(within="known", mu=m.mu, tau=m.tau, predictors=PREDICTORS, effects=pooling.Normal(0.0, 0.2))
     ranks = sbc_ranks("known-heavy", 200, seed=2016, model=wrong)
     assert min(uniformity_pvalue(ranks["beta_method"]), uniformity_pvalue(ranks["beta_x"])) < ALPHA

@@ -5,6 +5,7 @@ installed entry point and the files they name are small invented tables (FILES b
 set-up command is run for real in a fresh venv (slow: it installs the package). The test command
 is run by CI itself (.ci/run reads it out of the README); here we check that .ci/run does read it.
 """
+
 from __future__ import annotations
 
 import os
@@ -42,18 +43,32 @@ def _long_table(n_groups=6, group="supplier", value="strength", seed=0) -> str:
 
 FILES = {
     "parts.csv": lambda: _long_table(),
-    "summary.csv": lambda: "lab,n,mean,sd\n" + "".join(f"L{j},{4 + j},{50 + 0.4 * j:.2f},{1 + 0.1 * j:.2f}\n" for j in range(7)),
-    "estimates.csv": lambda: "site,effect,se\n" + "".join(f"S{j},{0.3 * (j % 4) - 0.2:.2f},{0.2 + 0.05 * j:.2f}\n" for j in range(9)),
+    "summary.csv": lambda: (
+        "lab,n,mean,sd\n" + "".join(f"L{j},{4 + j},{50 + 0.4 * j:.2f},{1 + 0.1 * j:.2f}\n" for j in range(7))
+    ),
+    "estimates.csv": lambda: (
+        "site,effect,se\n" + "".join(f"S{j},{0.3 * (j % 4) - 0.2:.2f},{0.2 + 0.05 * j:.2f}\n" for j in range(9))
+    ),
 }
-FILES["labs.csv"] = lambda: "lab,method,age,fat\n" + "".join(
-    f"L{j:02d},{'AB'[j % 2]},{2 + j % 5},{26.4 + 0.3 * (j % 2) + 0.01 * (j % 5) + 0.05 * ((i * 7 + j) % 3 - 1):.3f}\n"
-    for j in range(10) for i in range(3))
-for day, reps in ((1, (0, 1)), (2, (2,))):  # the same labs with their method and age, on two days
-    FILES[f"round-day-{day}.csv"] = (lambda reps=reps: "lab,method,age,fat\n" + "".join(
+FILES["labs.csv"] = lambda: (
+    "lab,method,age,fat\n"
+    + "".join(
         f"L{j:02d},{'AB'[j % 2]},{2 + j % 5},{26.4 + 0.3 * (j % 2) + 0.01 * (j % 5) + 0.05 * ((i * 7 + j) % 3 - 1):.3f}\n"
-        for j in range(10) for i in reps))
+        for j in range(10)
+        for i in range(3)
+    )
+)
+for day, reps in ((1, (0, 1)), (2, (2,))):  # the same labs with their method and age, on two days
+    FILES[f"round-day-{day}.csv"] = lambda reps=reps: (
+        "lab,method,age,fat\n"
+        + "".join(
+            f"L{j:02d},{'AB'[j % 2]},{2 + j % 5},{26.4 + 0.3 * (j % 2) + 0.01 * (j % 5) + 0.05 * ((i * 7 + j) % 3 - 1):.3f}\n"
+            for j in range(10)
+            for i in reps
+        )
+    )
 for day in range(1, 4):
-    FILES[f"batch-2026-12-0{day}.csv"] = (lambda d=day: _long_table(group="supplier", value="strength", seed=d))
+    FILES[f"batch-2026-12-0{day}.csv"] = lambda d=day: _long_table(group="supplier", value="strength", seed=d)
 
 
 @pytest.fixture
@@ -109,8 +124,13 @@ def test_ci_runs_the_readme_test_command():
 def test_demo_command_on_a_fresh_venv(tmp_path):
     """The README's first command, as written, in a copy of the checkout with no venv."""
     work = tmp_path / "checkout"
-    files = subprocess.run(["git", "ls-files", "--cached", "--others", "--exclude-standard"], cwd=ROOT,
-                           capture_output=True, text=True, check=True).stdout.split()
+    files = subprocess.run(
+        ["git", "ls-files", "--cached", "--others", "--exclude-standard"],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout.split()
     for f in files:
         src = ROOT / f
         if src.is_file():
@@ -130,7 +150,8 @@ EXAMPLES = sorted((ROOT / "examples").glob("*.py"))
 @pytest.mark.parametrize("script", EXAMPLES, ids=[p.name for p in EXAMPLES])
 def test_example_script_runs(script, tmp_path):
     args = [str(tmp_path / "example-run")] if "OUT_DIR" in script.read_text() else []
-    proc = subprocess.run([sys.executable, str(script), *args], cwd=tmp_path, capture_output=True, text=True,
-                          timeout=600)
+    proc = subprocess.run(
+        [sys.executable, str(script), *args], cwd=tmp_path, capture_output=True, text=True, timeout=600
+    )
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.strip()

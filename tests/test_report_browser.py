@@ -6,6 +6,7 @@ that opens every folded <details>, then records the page's height, where the ans
 reaching past the viewport's edges and the sections present; Chromium's --dump-dom prints the result. The widths
 are 1400 px (a desktop) and 800 px (a narrow window or a tablet). A screenshot must not be blank and must show
 the SVG pictures."""
+
 from __future__ import annotations
 
 import html
@@ -23,18 +24,40 @@ import pytest
 
 from pooling import cli
 
-pytestmark = [pytest.mark.browser,
-              pytest.mark.skipif(not any(p and os.access(p, os.X_OK) for p in (
-                  shutil.which("chromium"), "/usr/bin/chromium", shutil.which("chromium-browser"))),
-                  reason="headless Chromium is not installed (apt-get install chromium; .ci/run installs it)")]
+pytestmark = [
+    pytest.mark.browser,
+    pytest.mark.skipif(
+        not any(
+            p and os.access(p, os.X_OK)
+            for p in (shutil.which("chromium"), "/usr/bin/chromium", shutil.which("chromium-browser"))
+        ),
+        reason="headless Chromium is not installed (apt-get install chromium; .ci/run installs it)",
+    ),
+]
 
-CHROMIUM = next((p for p in (shutil.which("chromium"), "/usr/bin/chromium", shutil.which("chromium-browser"))
-                 if p and os.access(p, os.X_OK)), None)
+CHROMIUM = next(
+    (
+        p
+        for p in (shutil.which("chromium"), "/usr/bin/chromium", shutil.which("chromium-browser"))
+        if p and os.access(p, os.X_OK)
+    ),
+    None,
+)
 # Flags: no sandbox (CI containers run as root), no GPU, and nothing that reaches the network
 # (QUIC, background fetches, component updates, sync).
-FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-         "--disable-background-networking", "--disable-component-update", "--disable-sync",
-         "--hide-scrollbars", "--disable-extensions", "--mute-audio"]
+FLAGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--hide-scrollbars",
+    "--disable-extensions",
+    "--mute-audio",
+]
 WIDTHS = (1400, 800)
 VERDICT_WITHIN = 900  # px from the top of the page: the answer is on the first screen
 RUN = ["--draws", "300", "--warmup", "300", "--max-draws", "300", "--chains", "2", "--quiet"]
@@ -63,8 +86,14 @@ window.addEventListener('load', function () {
 
 
 def _chromium(args: list[str], tmp: Path, timeout: int = 180) -> subprocess.CompletedProcess:
-    return subprocess.run([CHROMIUM, *FLAGS, f"--user-data-dir={tmp / 'profile'}", *args], capture_output=True,
-                          text=True, timeout=timeout, env={**os.environ, "HOME": str(tmp)}, check=False)
+    return subprocess.run(
+        [CHROMIUM, *FLAGS, f"--user-data-dir={tmp / 'profile'}", *args],
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        env={**os.environ, "HOME": str(tmp)},
+        check=False,
+    )
 
 
 def measure(page: Path, width: int) -> dict:
@@ -75,16 +104,19 @@ def measure(page: Path, width: int) -> dict:
         text = page.read_text(encoding="utf-8")
         copy = tmp / "page.html"
         copy.write_text(text.replace("</body>", MEASURE + "</body>"), encoding="utf-8")
-        proc = _chromium([f"--window-size={width},900", "--virtual-time-budget=10000", "--dump-dom", copy.as_uri()],
-                         tmp)
+        proc = _chromium(
+            [f"--window-size={width},900", "--virtual-time-budget=10000", "--dump-dom", copy.as_uri()], tmp
+        )
         m = re.search(r'<pre id="measured">(.*?)</pre>', proc.stdout, re.DOTALL)
         assert m, f"the page was not measured; chromium said: {proc.stderr[-2000:]}"
         out = json.loads(html.unescape(m.group(1)))
         folded = tmp / "folded.html"
-        folded.write_text(text.replace("</body>", MEASURE.replace("d.open = true", "d.open = false") + "</body>"),
-                          encoding="utf-8")
-        proc = _chromium([f"--window-size={width},900", "--virtual-time-budget=10000", "--dump-dom", folded.as_uri()],
-                         tmp)
+        folded.write_text(
+            text.replace("</body>", MEASURE.replace("d.open = true", "d.open = false") + "</body>"), encoding="utf-8"
+        )
+        proc = _chromium(
+            [f"--window-size={width},900", "--virtual-time-budget=10000", "--dump-dom", folded.as_uri()], tmp
+        )
         m = re.search(r'<pre id="measured">(.*?)</pre>', proc.stdout, re.DOTALL)
         assert m, f"the page was not measured; chromium said: {proc.stderr[-2000:]}"
         closed = json.loads(html.unescape(m.group(1)))
@@ -112,14 +144,29 @@ def screenshot(page: Path, width: int, height: int, shot: Path) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # runs (invented scenarios: these tests check layout and behaviour, not statistics)
 
+
 @pytest.fixture(scope="module")
 def pages(tmp_path_factory):
     d = tmp_path_factory.mktemp("pages")
     rng = np.random.default_rng(14)
     out = {}
     # the demo, with a threshold, a limit and a head-to-head comparison
-    code = cli.main(["demo", "--out", str(d / "demo"), "--seed", "3", "--lower-limit", "380", "--threshold", "400",
-                     "--compare", "S01,S02,S12", *RUN])
+    code = cli.main(
+        [
+            "demo",
+            "--out",
+            str(d / "demo"),
+            "--seed",
+            "3",
+            "--lower-limit",
+            "380",
+            "--threshold",
+            "400",
+            "--compare",
+            "S01,S02,S12",
+            *RUN,
+        ]
+    )
     assert code in (0, 3)
     out["demo"] = d / "demo" / "report.html"
     # 60 suppliers of uneven size
@@ -128,8 +175,25 @@ def pages(tmp_path_factory):
         theta = rng.normal(410.0, 8.0)
         rows += [(f"V{j + 1:02d}", x) for x in rng.normal(theta, 12.0, int(rng.integers(2, 50)))]
     pd.DataFrame(rows, columns=["supplier", "strength"]).to_csv(d / "sixty.csv", index=False)
-    code = cli.main(["fit", str(d / "sixty.csv"), "--group", "supplier", "--value", "strength", "--out",
-                     str(d / "sixty"), "--seed", "2", "--threshold", "400", "--lower-limit", "385", *RUN])
+    code = cli.main(
+        [
+            "fit",
+            str(d / "sixty.csv"),
+            "--group",
+            "supplier",
+            "--value",
+            "strength",
+            "--out",
+            str(d / "sixty"),
+            "--seed",
+            "2",
+            "--threshold",
+            "400",
+            "--lower-limit",
+            "385",
+            *RUN,
+        ]
+    )
     assert code in (0, 3)
     out["sixty"] = d / "sixty" / "report.html"
     # a round of 16 labs, one far off the others
@@ -138,18 +202,56 @@ def pages(tmp_path_factory):
         bias = rng.normal(0.0, 0.15) + (1.6 if j == 5 else 0.0)
         rows += [(f"Lab {j + 1:02d}", x) for x in rng.normal(5.2 + bias, 0.08, 3)]
     pd.DataFrame(rows, columns=["lab", "lead"]).to_csv(d / "round.csv", index=False)
-    code = cli.main(["fit", str(d / "round.csv"), "--group", "lab", "--value", "lead", "--out", str(d / "round"),
-                     "--seed", "2", "--labs", "--allowed-bias", "0.3", *RUN])
+    code = cli.main(
+        [
+            "fit",
+            str(d / "round.csv"),
+            "--group",
+            "lab",
+            "--value",
+            "lead",
+            "--out",
+            str(d / "round"),
+            "--seed",
+            "2",
+            "--labs",
+            "--allowed-bias",
+            "0.3",
+            *RUN,
+        ]
+    )
     assert code in (0, 3)
     out["round"] = d / "round" / "report.html"
     # many groups in summary mode, from one row per group
     J = 600
     n = rng.integers(2, 30, J)
     means = rng.normal(50.0, 3.0, J) + rng.normal(0.0, 4.0, J) / np.sqrt(n)
-    pd.DataFrame({"store": [f"St{j:05d}" for j in range(J)], "n": n, "mean": means,
-                  "sd": np.abs(rng.normal(4.0, 0.5, J))}).to_csv(d / "many.csv", index=False)
-    code = cli.main(["fit", str(d / "many.csv"), "--group", "store", "--size", "n", "--mean", "mean", "--sd", "sd",
-                     "--out", str(d / "many"), "--seed", "2", "--summary", "on", "--threshold", "52", *RUN])
+    pd.DataFrame(
+        {"store": [f"St{j:05d}" for j in range(J)], "n": n, "mean": means, "sd": np.abs(rng.normal(4.0, 0.5, J))}
+    ).to_csv(d / "many.csv", index=False)
+    code = cli.main(
+        [
+            "fit",
+            str(d / "many.csv"),
+            "--group",
+            "store",
+            "--size",
+            "n",
+            "--mean",
+            "mean",
+            "--sd",
+            "sd",
+            "--out",
+            str(d / "many"),
+            "--seed",
+            "2",
+            "--summary",
+            "on",
+            "--threshold",
+            "52",
+            *RUN,
+        ]
+    )
     assert code in (0, 3)
     out["many"] = d / "many" / "report.html"
     return out
@@ -170,18 +272,40 @@ def nights(tmp_path_factory):
         path = d / f"night{night:02d}.csv"
         pd.DataFrame(rows, columns=["machine", "torque"]).to_csv(path, index=False)
         day = f"2024-05-{night + 1:02d}"
-        assert cli.main(["ingest", str(store), str(path), "--group", "machine", "--value", "torque", "--at", day,
-                         "--quiet"]) == 0
+        assert (
+            cli.main(
+                ["ingest", str(store), str(path), "--group", "machine", "--value", "torque", "--at", day, "--quiet"]
+            )
+            == 0
+        )
         if night == 7:
             assert cli.main(["withdraw", str(store), "night03.csv", "--reason", "gauge out of calibration"]) == 0
-        code = cli.main(["refit", str(store), "--out", str(d / f"run-{day}"), "--seed", str(night + 1),
-                         "--half-life", "5", "--as-of", day, "--threshold", "101", "--tau", "half-cauchy:5", *RUN])
+        code = cli.main(
+            [
+                "refit",
+                str(store),
+                "--out",
+                str(d / f"run-{day}"),
+                "--seed",
+                str(night + 1),
+                "--half-life",
+                "5",
+                "--as-of",
+                day,
+                "--threshold",
+                "101",
+                "--tau",
+                "half-cauchy:5",
+                *RUN,
+            ]
+        )
         assert code in (0, 3)
     assert cli.main(["history", str(store), "--out", str(d / "history.html")]) == 0
     return d
 
 
 # ---------------------------------------------------------------------------------------------
+
 
 def test_report_renders_in_headless_chromium(pages, tmp_path):
     page = pages["demo"]

@@ -1,6 +1,7 @@
 """The interlaboratory comparators against outside references: one-way ANOVA against statsmodels,
 the method-of-moments variance components against REML and against their expectation, z-score
 signals at the ISO 13528 limits, and ISO 13528 Algorithm A against the normal distribution."""
+
 from __future__ import annotations
 
 import warnings
@@ -37,7 +38,9 @@ def test_oneway_anova_matches_statsmodels_anova_lm(grunfeld_frame, unbalanced):
     # tolerance is floating-point round-off (1e-9 relative).
     df = grunfeld_frame
     if unbalanced:  # drop a different number of years from each firm
-        keep = np.concatenate([np.flatnonzero(df["firm"] == f)[: 20 - 2 * i] for i, f in enumerate(df["firm"].unique())])
+        keep = np.concatenate(
+            [np.flatnonzero(df["firm"] == f)[: 20 - 2 * i] for i, f in enumerate(df["firm"].unique())]
+        )
         df = df.iloc[np.sort(keep)].reset_index(drop=True)
     ours = _anova_of(df, "firm", "invest")
     ref = anova_lm(ols("invest ~ C(firm)", data=df).fit())
@@ -112,14 +115,30 @@ def test_anova_needs_replication():
 # ---------------------------------------------------------------------------------------------
 # z-scores
 
+
 def test_z_signals_at_the_iso_13528_limits():
     # Source: ISO 13528:2015, 9.4.1 (from memory): |z| <= 2.0 acceptable, no signal;
     # 2.0 < |z| < 3.0 warning signal; |z| >= 3.0 action signal. Checked on both sides of each
     # limit and for negative z. (The issue text writes the warning limit as |z| >= 2; the standard
     # puts |z| = 2.0 exactly among the acceptable results, and that is what is implemented.)
     z = np.array([0.0, 1.999, 2.0, 2.001, 2.999, 3.0, 3.001, -1.999, -2.0, -2.001, -2.999, -3.0, -3.001, 12.0, np.nan])
-    want = ["none", "none", "none", "warning", "warning", "action", "action",
-            "none", "none", "warning", "warning", "action", "action", "action", ""]
+    want = [
+        "none",
+        "none",
+        "none",
+        "warning",
+        "warning",
+        "action",
+        "action",
+        "none",
+        "none",
+        "warning",
+        "warning",
+        "action",
+        "action",
+        "action",
+        "",
+    ]
     assert list(z_signal(z)) == want
 
 
@@ -166,6 +185,7 @@ def test_algorithm_a_resists_an_outlier():
 # ---------------------------------------------------------------------------------------------
 # the random-effects comparator for estimates with standard errors (known structure)
 
+
 def test_random_effects_dl_matches_statsmodels():
     # Source: statsmodels.stats.meta_analysis.combine_effects(method_re="dl"), a general-purpose
     # implementation of DerSimonian and Laird (1986). Heterogeneous estimates (invented, seeded), so
@@ -179,7 +199,7 @@ def test_random_effects_dl_matches_statsmodels():
     for offset in (0.0, 1e9):
         se = g.uniform(0.5, 2.0, 12)
         x = offset + g.normal(0.0, 2.5, 12) + g.normal(0.0, 1.0, 12) * se
-        ref = combine_effects(x - offset, se ** 2, method_re="dl")
+        ref = combine_effects(x - offset, se**2, method_re="dl")
         got = random_effects_dl(x, se)
         assert ref.tau2 > 0 and not got["truncated"]
         assert got["between_sd"] ** 2 == pytest.approx(ref.tau2, rel=1e-10)
@@ -218,8 +238,26 @@ def test_known_structure_report_shows_the_random_effects_comparator(tmp_path):
     se = [15.0, 10.0, 16.0, 11.0, 9.0, 11.0, 10.0, 18.0]
     path.write_text("school,effect,se\n" + "".join(f"S{j},{a},{b}\n" for j, (a, b) in enumerate(zip(y, se))))
     out = tmp_path / "run"
-    code = cli.main(["fit", str(path), "--group", "school", "--estimate", "effect", "--std-error", "se",
-                     "--tau", "half-cauchy:10", "--out", str(out), "--seed", "1", "--quiet", "--labs"])
+    code = cli.main(
+        [
+            "fit",
+            str(path),
+            "--group",
+            "school",
+            "--estimate",
+            "effect",
+            "--std-error",
+            "se",
+            "--tau",
+            "half-cauchy:10",
+            "--out",
+            str(out),
+            "--seed",
+            "1",
+            "--quiet",
+            "--labs",
+        ]
+    )
     assert code in (0, 3)
     re_ = json.loads((out / "summary.json").read_text())["interlab"]["random_effects"]
     assert round(re_["consensus"], 1) == 7.7

@@ -4,6 +4,7 @@ The data here are generated with a fixed seed only to carry awkward group labels
 whole command line; the checks compare the files with the draws written beside them (draws.nc)
 and with independent routines (scipy.stats.rankdata, numpy quantiles, the csv module).
 """
+
 from __future__ import annotations
 
 import csv
@@ -20,8 +21,7 @@ from pooling import cli
 from pooling.report import neutralise, write_csv
 
 SCRIPT = "<script>alert(1)</script>"
-LABELS = [SCRIPT, "=1+2", "+SUM(A1)", "-2+3", "@cmd", 'A "quoted", label', "Ünïcode ✓", "$x$ dollars",
-          "plain-name"]
+LABELS = [SCRIPT, "=1+2", "+SUM(A1)", "-2+3", "@cmd", 'A "quoted", label', "Ünïcode ✓", "$x$ dollars", "plain-name"]
 THRESHOLD = 10.0
 
 
@@ -37,11 +37,47 @@ def run(tmp_path_factory):
     data = base / "bars.csv"
     pd.DataFrame(rows, columns=["lab", "y"]).to_csv(data, index=False)
     out = base / "run"
-    argv = ["fit", str(data), "--group", "lab", "--value", "y", "--delimiter", ",", "--out", str(out), "--quiet",
-            "--seed", "7", "--draws", "500", "--warmup", "300", "--max-draws", "500",
-            "--level", "0.9", "--top", "2", "--best", "lowest", "--threshold", str(THRESHOLD),
-            "--lower-limit", "8", "--upper-limit", "12.5", "--allowed-bias", "0.5",
-            "--compare", "=1+2", "--compare", "plain-name,@cmd", "--compare", 'A "quoted", label']
+    argv = [
+        "fit",
+        str(data),
+        "--group",
+        "lab",
+        "--value",
+        "y",
+        "--delimiter",
+        ",",
+        "--out",
+        str(out),
+        "--quiet",
+        "--seed",
+        "7",
+        "--draws",
+        "500",
+        "--warmup",
+        "300",
+        "--max-draws",
+        "500",
+        "--level",
+        "0.9",
+        "--top",
+        "2",
+        "--best",
+        "lowest",
+        "--threshold",
+        str(THRESHOLD),
+        "--lower-limit",
+        "8",
+        "--upper-limit",
+        "12.5",
+        "--allowed-bias",
+        "0.5",
+        "--compare",
+        "=1+2",
+        "--compare",
+        "plain-name,@cmd",
+        "--compare",
+        'A "quoted", label',
+    ]
     code = cli.main(argv)
     assert code in (0, 3), code  # 3: written, but a short run may miss a diagnostics target
     return out
@@ -70,7 +106,7 @@ def test_report_html_escapes_every_label_and_needs_no_network(run):
     ids = re.findall(r'\sid="([^"]+)"', page)
     assert len(ids) == len(set(ids))  # one document: every id once, across all the pictures
     for m in re.finditer(r"https?://", page):
-        assert page.startswith("http://www.w3.org/", m.start()), page[m.start(): m.start() + 60]
+        assert page.startswith("http://www.w3.org/", m.start()), page[m.start() : m.start() + 60]
     # the caution and the stated model are present
     assert "never replaces" in page and "licensed professional judgment" in page
     assert "Scaled-Inv-chi2" in page and "statistics SHA-256" in page
@@ -102,8 +138,16 @@ def test_summary_json_keeps_labels_as_they_are(run):
     assert summary["report_options"]["compare"] == ["=1+2", "plain-name", "@cmd", 'A "quoted", label']
     assert summary["pairwise"]["groups"] == summary["report_options"]["compare"]
     lab = summary["interlab"]
-    for key in ("consensus", "between_sd", "repeatability_sd", "reproducibility_sd", "icc", "anova", "z_basis",
-                "agreement"):
+    for key in (
+        "consensus",
+        "between_sd",
+        "repeatability_sd",
+        "reproducibility_sd",
+        "icc",
+        "anova",
+        "z_basis",
+        "agreement",
+    ):
         assert lab[key] is not None, key
     # the per-lab bias and z-scores are columns of every group's row
     assert {"bias_mean", "bias_low_90", "bias_high_90", "z_score", "z_signal"} <= set(summary["groups_table"][0])
@@ -146,27 +190,54 @@ def test_neutralise_covers_tab_and_carriage_return(tmp_path):
 
 
 def test_terminal_table_shows_shrinkage_and_p_best(tmp_path, capsys):
-    code = cli.main(["demo", "--out", str(tmp_path / "demo"), "--draws", "300", "--warmup", "200",
-                     "--max-draws", "300", "--seed", "1"])
+    code = cli.main(
+        [
+            "demo",
+            "--out",
+            str(tmp_path / "demo"),
+            "--draws",
+            "300",
+            "--warmup",
+            "200",
+            "--max-draws",
+            "300",
+            "--seed",
+            "1",
+        ]
+    )
     assert code in (0, 3)
     text = capsys.readouterr().out
     assert "shrink" in text and "P(best)" in text
 
 
-@pytest.mark.parametrize("extra, what", [
-    (["--lower-limit", "12", "--upper-limit", "8"], "lower specification limit"),
-    (["--compare", "no-such-lab"], "no group 'no-such-lab'"),
-])
+@pytest.mark.parametrize(
+    "extra, what",
+    [
+        (["--lower-limit", "12", "--upper-limit", "8"], "lower specification limit"),
+        (["--compare", "no-such-lab"], "no group 'no-such-lab'"),
+    ],
+)
 def test_bad_report_options_write_nothing(tmp_path, capsys, extra, what):
     out = tmp_path / "run"
-    code = cli.main(["demo", "--out", str(out), "--quiet", "--draws", "100", "--warmup", "50", "--max-draws", "100"] + extra)
+    code = cli.main(
+        ["demo", "--out", str(out), "--quiet", "--draws", "100", "--warmup", "50", "--max-draws", "100"] + extra
+    )
     err = capsys.readouterr().err
     assert code == 2 and what in err and err.count("\n") == 1
     assert not out.exists() and not list(tmp_path.iterdir())
 
 
-@pytest.mark.parametrize("option, value", [("--level", "1.5"), ("--level", "x"), ("--top", "0"),
-                                           ("--allowed-bias", "-1"), ("--threshold", "nan"), ("--sigma-pt", "0")])
+@pytest.mark.parametrize(
+    "option, value",
+    [
+        ("--level", "1.5"),
+        ("--level", "x"),
+        ("--top", "0"),
+        ("--allowed-bias", "-1"),
+        ("--threshold", "nan"),
+        ("--sigma-pt", "0"),
+    ],
+)
 def test_bad_report_numbers_are_refused_before_sampling(tmp_path, capsys, option, value):
     with pytest.raises(SystemExit) as exc:
         cli.main(["demo", "--out", str(tmp_path / "run"), "--quiet", option, value])

@@ -4,6 +4,7 @@ threshold and limits, estimates without n, and the line that says what to do whe
 
 These check behaviour, not statistics: the data are small invented tables (and the eight schools' published
 estimates where a known structure is needed)."""
+
 from __future__ import annotations
 
 import io
@@ -70,6 +71,7 @@ def visible_text(page: str) -> str:
 # ---------------------------------------------------------------------------------------------
 # the number rules
 
+
 def test_probabilities_tell_their_ends_apart():
     assert prob(0.0) == "0" and prob(1.0) == "1"
     assert prob(0.0004) == "<0.001" and prob(0.9996) == ">0.999"
@@ -84,8 +86,11 @@ def test_plain_decimals_for_ordinary_numbers():
     assert sig(0.5, 3) == "0.5"
     assert sig(3e13, 3) == "3.00e+13"  # only magnitudes no plain decimal can carry
     assert whole(1234) == "1,234" and whole(58.97133393105582) == "59.0"
-    assert plural(1, "group") == "1 group" and plural(2, "lab") == "2 labs" and plural(1.5, "batch", "batches") == \
-        "1.5 batches"
+    assert (
+        plural(1, "group") == "1 group"
+        and plural(2, "lab") == "2 labs"
+        and plural(1.5, "batch", "batches") == "1.5 batches"
+    )
     # values keep the digits their spread calls for, whatever their offset
     assert Numbers(0.01)(10_000_000.123) == "10000000.123"
     assert Values(3.0)(412.37) == "412.4"
@@ -94,6 +99,7 @@ def test_plain_decimals_for_ordinary_numbers():
 
 # ---------------------------------------------------------------------------------------------
 # the page
+
 
 def test_sections_follow_the_options(fit20):
     plain = render(compute(fit20, ReportOptions()), "t", None)
@@ -105,8 +111,14 @@ def test_sections_follow_the_options(fit20):
         assert "labs" in sections(render(compute(fit20, options), "t", None)), options
     ids = sections(render(compute(fit20, ReportOptions(threshold=100.0, compare=("G00", "G01"))), "t", None))
     assert "sides" in ids and "h2h" in ids
-    ids = sections(render(compute(fit20, ReportOptions(lower=90.0)), "t", None, changes={
-        "previous_run": None, "batches": {"active": 2}, "new_groups": [], "store": {}}))
+    ids = sections(
+        render(
+            compute(fit20, ReportOptions(lower=90.0)),
+            "t",
+            None,
+            changes={"previous_run": None, "batches": {"active": 2}, "new_groups": [], "store": {}},
+        )
+    )
     assert ids[:2] == ["changes", "verdict"] and "sides" in ids
 
 
@@ -140,8 +152,11 @@ def test_labs_are_judged_not_ranked_in_the_answer(fit20):
 def test_a_missed_target_heads_the_answer_with_what_to_do():
     rng = np.random.default_rng(11)
     df = _frame(rng.normal(0.0, 1.0, 8), [3] * 8, 1.0, 12)
-    fit = pooling.fit(pooling.from_frame(df, "g", "y"),
-                      settings=pooling.Settings(chains=2, draws=30, warmup=30, max_draws=30, seed=2), progress=False)
+    fit = pooling.fit(
+        pooling.from_frame(df, "g", "y"),
+        settings=pooling.Settings(chains=2, draws=30, warmup=30, max_draws=30, seed=2),
+        progress=False,
+    )
     res = compute(fit)
     assert not res.targets_met  # 30 draws cannot reach 400 effective draws
     block = verdict(render(res, "t", None))
@@ -173,9 +188,15 @@ def test_summary_mode_page_plain_numbers_and_rank_statement():
     rng = np.random.default_rng(21)
     J = 300
     n = rng.integers(2, 12, J)
-    stats = pooling.from_summaries(pd.DataFrame({"g": [f"S{j:04d}" for j in range(J)], "n": n,
-                                                 "m": 1500.0 + rng.normal(0, 40, J), "s": np.full(J, 30.0)}),
-                                   "g", "n", "m", "s")
+    stats = pooling.from_summaries(
+        pd.DataFrame(
+            {"g": [f"S{j:04d}" for j in range(J)], "n": n, "m": 1500.0 + rng.normal(0, 40, J), "s": np.full(J, 30.0)}
+        ),
+        "g",
+        "n",
+        "m",
+        "s",
+    )
     o = ReportOptions(threshold=1500.0)
     fit = pooling.fit(stats, settings=SMALL, progress=False, summary=True, options=o)
     page = render(compute(fit, o), "t", None)
@@ -187,6 +208,7 @@ def test_summary_mode_page_plain_numbers_and_rank_statement():
 
 # ---------------------------------------------------------------------------------------------
 # the terminal
+
 
 def test_terminal_follows_level_best_threshold_and_limits(fit20):
     res = compute(fit20, ReportOptions(level=0.9, best="lowest", threshold=100.0, lower=85.0, upper=115.0))
@@ -229,9 +251,35 @@ def test_a_group_of_one_with_an_empty_sd_is_read_as_meant(tmp_path):
     assert long.n.tolist() == [1, 1] and long.m2.tolist() == [0.0, 0.0] and long.mean.tolist() == [10.2, 11.0]
     from pooling import cli
 
-    code = cli.main(["fit", str(path), "--group", "g", "--size", "n", "--mean", "mean", "--sd", "sd", "--out",
-                     str(tmp_path / "run"), "--chains", "2", "--draws", "200", "--warmup", "200", "--max-draws", "200",
-                     "--seed", "1", "--tau", "half-cauchy:1", "--quiet"])
+    code = cli.main(
+        [
+            "fit",
+            str(path),
+            "--group",
+            "g",
+            "--size",
+            "n",
+            "--mean",
+            "mean",
+            "--sd",
+            "sd",
+            "--out",
+            str(tmp_path / "run"),
+            "--chains",
+            "2",
+            "--draws",
+            "200",
+            "--warmup",
+            "200",
+            "--max-draws",
+            "200",
+            "--seed",
+            "1",
+            "--tau",
+            "half-cauchy:1",
+            "--quiet",
+        ]
+    )
     assert code in (0, 3) and (tmp_path / "run" / "report.html").exists()
     path.write_text("g,n,mean,sd\nA,2,10.2,\nB,3,10.5,0.4\n")
     with pytest.raises(pooling.InputError, match=r"column 'sd', row 1: expected a finite number, found an empty cell"):

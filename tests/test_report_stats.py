@@ -5,6 +5,7 @@ These tests feed the results core hand-made draws (a posterior.Fit made from the
 into the problem's internal units as a run keeps them) whose posterior is known in closed form, so the
 references are exact formulas evaluated by scipy.stats and the tolerances are Monte Carlo errors of the draws.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -28,21 +29,35 @@ def make_idata(theta, mu, tau, sigma=None, s=None, nu=None, n=None, raw_mean=Non
     n = np.full(J, 5) if n is None else np.asarray(n)
     raw_mean = theta.mean(axis=(0, 1)) if raw_mean is None else np.asarray(raw_mean, dtype=float)
     if sigma is None:
-        st = pooling.GroupStats(labels, np.zeros(J, dtype=np.int64), raw_mean, np.zeros(J), se=np.ones(J),
-                                kind="known")
+        st = pooling.GroupStats(labels, np.zeros(J, dtype=np.int64), raw_mean, np.zeros(J), se=np.ones(J), kind="known")
         within = "known"
     else:
         st = pooling.GroupStats(labels, n, raw_mean, (n - 1.0) * 1.0)  # raw sd 1 in every group
         within = "separate" if sigma.ndim == 3 else "shared"
     if within == "separate" and s is None:  # hyperparameters the answers do not read
         s, nu = np.ones((C, D)), np.full((C, D), 4.0)
-    model = pooling.Model(within=within, between="normal", tau=pooling.HalfNormal(1.0),
-                          **({"nu": pooling.NuGrid(tuple(np.unique(nu)))} if nu is not None else {}))
+    model = pooling.Model(
+        within=within,
+        between="normal",
+        tau=pooling.HalfNormal(1.0),
+        **({"nu": pooling.NuGrid(tuple(np.unique(nu)))} if nu is not None else {}),
+    )
     p = pooling.build(st, model)
     c, k = p.center, p.scale
-    raw = RawDraws(mu=(mu - c) / k, tau=tau / k, theta=(theta - c) / k, sigma=None if sigma is None else sigma / k,
-                   s=None if s is None else s / k, nu=nu, evals=np.ones((C, D)), seed=1,
-                   settings=Settings(chains=C, draws=D, warmup=0), rounds=[], seconds=0.0, final_states=[])
+    raw = RawDraws(
+        mu=(mu - c) / k,
+        tau=tau / k,
+        theta=(theta - c) / k,
+        sigma=None if sigma is None else sigma / k,
+        s=None if s is None else s / k,
+        nu=nu,
+        evals=np.ones((C, D)),
+        seed=1,
+        settings=Settings(chains=C, draws=D, warmup=0),
+        rounds=[],
+        seconds=0.0,
+        final_states=[],
+    )
     return Fit(p, raw, [])
 
 
@@ -63,6 +78,7 @@ def normal_groups(means, sds, draws, seed, chains=2):
 # ---------------------------------------------------------------------------------------------
 # ranks
 
+
 def test_rank_probabilities_are_doubly_stochastic():
     # Source: definition. In each draw the ranks are a permutation of 1..J, so the average of
     # permutation matrices has every row and every column summing to 1 (Birkhoff: a doubly
@@ -78,8 +94,9 @@ def test_rank_probabilities_are_doubly_stochastic():
 def test_rank_columns_match_scipy_rankdata_draw_by_draw():
     # Source: scipy.stats.rankdata (an independent ranking routine) applied to every draw; the
     # table's mean rank, P(best), P(top k) and rank interval must equal what those ranks give.
-    idata = normal_groups(np.array([0.0, 0.3, 0.3, 1.0, -0.5, 0.1]), np.array([0.2, 1.0, 0.5, 0.4, 0.9, 0.05]),
-                          2000, seed=3)
+    idata = normal_groups(
+        np.array([0.0, 0.3, 0.3, 1.0, -0.5, 0.1]), np.array([0.2, 1.0, 0.5, 0.4, 0.9, 0.05]), 2000, seed=3
+    )
     theta = view_theta(idata)
     ref = stats.rankdata(-theta, axis=1, method="ordinal")  # 1 = highest
     t = group_table(idata, level=0.9, k=2, best="highest")
@@ -111,6 +128,7 @@ def test_rank_matrix_with_a_tail_column_still_sums_to_one():
 # ---------------------------------------------------------------------------------------------
 # head to head
 
+
 def test_pairwise_matches_the_normal_difference_formula():
     # Source: for independent theta_a ~ N(m_a, s_a^2), theta_b ~ N(m_b, s_b^2), theta_a - theta_b is
     # N(m_a - m_b, s_a^2 + s_b^2), so P(theta_a > theta_b) = Phi((m_a - m_b) / sqrt(s_a^2 + s_b^2));
@@ -141,6 +159,7 @@ def test_pairwise_refuses_an_unknown_group():
 
 # ---------------------------------------------------------------------------------------------
 # specification limits
+
 
 def test_outside_fraction_is_the_normal_tail_for_fixed_parameters():
     # Source: scipy.stats.norm: for y ~ N(theta, sigma^2), P(y < L) + P(y > U) = cdf(L) + sf(U).
@@ -186,7 +205,7 @@ def test_outside_fraction_with_uncertain_theta_matches_the_predictive():
     t = group_table(idata, lower=8.5, upper=12.0)
     f = outside_fraction(view_theta(idata), sig, 8.5, 12.0)
     mcse = f.std(axis=0, ddof=1) / np.sqrt(C * D)
-    sd_pred = np.sqrt(v + sig ** 2)
+    sd_pred = np.sqrt(v + sig**2)
     ref = stats.norm.cdf(8.5, m, sd_pred) + stats.norm.sf(12.0, m, sd_pred)
     assert np.all(np.abs(t["outside_mean"].to_numpy() - ref) < 4.5 * mcse), (t["outside_mean"].to_numpy(), ref, mcse)
 

@@ -4,6 +4,7 @@ Source: arviz (the example data's library; az.rhat(method="rank"), az.ess(method
 and numpy's quantiles, applied to the draws the run wrote (draws.nc, read back with arviz). The run is made
 at level 0.9, so an interval computed at another level under the same keys is caught.
 """
+
 from __future__ import annotations
 
 import json
@@ -30,8 +31,23 @@ def run(tmp_path_factory):
     rng = np.random.default_rng(12)  # invented data: the check is of the bookkeeping, against arviz
     rows = [(f"m{j}", 20.0 + rng.normal(0, 1.0) + rng.normal(0, 0.8)) for j in range(9) for _ in range(4)]
     pd.DataFrame(rows, columns=["machine", "y"]).to_csv(d / "m.csv", index=False)
-    code = main(["fit", str(d / "m.csv"), "--group", "machine", "--value", "y", "--out", str(d / "run"), "--seed", "3",
-                 "--level", str(LEVEL), "--quiet"])
+    code = main(
+        [
+            "fit",
+            str(d / "m.csv"),
+            "--group",
+            "machine",
+            "--value",
+            "y",
+            "--out",
+            str(d / "run"),
+            "--seed",
+            "3",
+            "--level",
+            str(LEVEL),
+            "--quiet",
+        ]
+    )
     assert code in (0, 3)
     return json.loads((d / "run" / "summary.json").read_text()), az.from_netcdf(str(d / "run" / "draws.nc"))
 
@@ -99,11 +115,13 @@ def test_each_target_alone_extends_the_run(monkeypatch, which):
         return misses, record
 
     monkeypatch.setattr(sampler.dg, "rhat_ess", fake)
-    stats = pooling.from_frame(pd.DataFrame({"g": list("aabbccdd"), "y": [1.0, 1.2, 2.0, 2.1, 0.5, 0.9, 1.4, 1.6]}),
-                               "g", "y")
+    stats = pooling.from_frame(
+        pd.DataFrame({"g": list("aabbccdd"), "y": [1.0, 1.2, 2.0, 2.1, 0.5, 0.9, 1.4, 1.6]}), "g", "y"
+    )
     p = pooling.build(stats, pooling.Model(within="shared"))
-    raw = sampler.sample_raw(p, pooling.Settings(chains=2, draws=50, warmup=20, seed=1), progress=False,
-                             diagnose=diagnose)
+    raw = sampler.sample_raw(
+        p, pooling.Settings(chains=2, draws=50, warmup=20, seed=1), progress=False, diagnose=diagnose
+    )
     assert [r["draws_per_chain"] for r in raw.rounds][0] == 50 and len(raw.rounds) == 2
     assert raw.rounds[0]["misses"] > 0 and raw.rounds[1]["misses"] == 0
     key = {"rhat": "rhat", "bulk": "bulk_ess", "tail": "tail_ess"}[which]

@@ -2,6 +2,7 @@
 control, and a clean stop. These are properties of the design (DESIGN.md, "Kernel rules"), checked
 directly; the statistical correctness of the draws is checked against outside references elsewhere.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -52,8 +53,11 @@ def test_layout_of_the_posterior(stats):
 def test_run_length_control_extends_until_the_cap(stats):
     """With a target no chain can meet, the run extends to its cap and reports what misses."""
     tight = pooling.Targets(rhat_max=1.0, ess_min=1e9)
-    fit = pooling.fit(stats, pooling.Model(within="shared"),
-                      pooling.Settings(chains=2, draws=100, warmup=50, seed=2, max_draws=260, targets=tight))
+    fit = pooling.fit(
+        stats,
+        pooling.Model(within="shared"),
+        pooling.Settings(chains=2, draws=100, warmup=50, seed=2, max_draws=260, targets=tight),
+    )
     assert fit.idata.posterior.sizes["draw"] == 260
     assert not fit.targets_met and len(fit.misses) > 0
     rounds = fit.diagnostics()["rounds"]
@@ -62,8 +66,9 @@ def test_run_length_control_extends_until_the_cap(stats):
 
 def test_run_length_control_stops_when_met(stats):
     loose = pooling.Targets(rhat_max=2.0, ess_min=10)
-    fit = pooling.fit(stats, pooling.Model(within="shared"),
-                      pooling.Settings(chains=2, draws=100, warmup=50, seed=2, targets=loose))
+    fit = pooling.fit(
+        stats, pooling.Model(within="shared"), pooling.Settings(chains=2, draws=100, warmup=50, seed=2, targets=loose)
+    )
     assert fit.idata.posterior.sizes["draw"] == 100 and fit.targets_met
 
 
@@ -86,12 +91,18 @@ def test_interrupt_discards_the_draws(stats, monkeypatch):
 def test_one_chain_checks_only_the_ess_targets(stats):
     """R-hat needs two chains (NaN with one); a single long chain can still meet the ESS targets."""
     loose = pooling.Targets(rhat_max=1.01, ess_min=50)
-    fit = pooling.fit(stats, pooling.Model(within="shared"),
-                      pooling.Settings(chains=1, draws=400, warmup=200, seed=4, max_draws=400, targets=loose))
+    fit = pooling.fit(
+        stats,
+        pooling.Model(within="shared"),
+        pooling.Settings(chains=1, draws=400, warmup=200, seed=4, max_draws=400, targets=loose),
+    )
     assert fit.targets_met, fit.misses
     tight = pooling.Targets(rhat_max=1.01, ess_min=1e9)
-    fit = pooling.fit(stats, pooling.Model(within="shared"),
-                      pooling.Settings(chains=1, draws=100, warmup=50, seed=4, max_draws=100, targets=tight))
+    fit = pooling.fit(
+        stats,
+        pooling.Model(within="shared"),
+        pooling.Settings(chains=1, draws=100, warmup=50, seed=4, max_draws=100, targets=tight),
+    )
     assert not fit.targets_met and all(np.isnan(m["rhat"]) for m in fit.misses)
 
 
@@ -118,8 +129,14 @@ def test_warm_start_with_predictors_keeps_the_coefficients():
     settings = pooling.Settings(chains=2, warmup=200, draws=400, max_draws=400, seed=5)
     cold = pooling.fit(st, model, settings, progress=False, without=False)
     assert np.all(np.abs(np.asarray([s["beta"] for s in cold.raw.final_states])) > 0)  # a start away from 0
-    warm = pooling.fit(st, model, pooling.Settings(chains=2, warmup=50, draws=400, max_draws=400, seed=6),
-                       progress=False, without=False, init=cold.raw.final_states)
+    warm = pooling.fit(
+        st,
+        model,
+        pooling.Settings(chains=2, warmup=50, draws=400, max_draws=400, seed=6),
+        progress=False,
+        without=False,
+        init=cold.raw.final_states,
+    )
     for name in ("beta", "mu", "tau"):
         assert np.all(np.isfinite(warm.draws(name))), name
     a, b = cold.raw.beta[..., 0], warm.raw.beta[..., 0]
@@ -137,12 +154,16 @@ def test_an_extension_is_sized_by_the_ess_shortfall(stats):
     import math
 
     targets = pooling.Targets(rhat_max=2.0, ess_min=300)
-    fit = pooling.fit(stats, pooling.Model(within="shared"),
-                      pooling.Settings(chains=2, draws=100, warmup=50, seed=2, max_draws=5000, targets=targets),
-                      progress=False)
+    fit = pooling.fit(
+        stats,
+        pooling.Model(within="shared"),
+        pooling.Settings(chains=2, draws=100, warmup=50, seed=2, max_draws=5000, targets=targets),
+        progress=False,
+    )
     first, second = fit.raw.rounds[0], fit.raw.rounds[1]
-    low = min(min(w["bulk_ess_min"], w["tail_ess_min"]) for w in first["worst"].values()
-              if math.isfinite(w["bulk_ess_min"]))
+    low = min(
+        min(w["bulk_ess_min"], w["tail_ess_min"]) for w in first["worst"].values() if math.isfinite(w["bulk_ess_min"])
+    )
     growth = 1.15 * 300 / low
     assert 1.25 < growth < 4.0, growth  # the shortfall, not a bound, sizes this extension
     assert second["draws_per_chain"] == 100 + max(math.ceil(100 * growth) - 100, 25)
@@ -152,9 +173,12 @@ def test_misses_name_their_group(stats):
     # What misses the targets is reported per group: theta and sigma misses carry the group's index and label
     # (the run's summary lists them so that a reader can see which group has not converged).
     tight = pooling.Targets(rhat_max=1.0, ess_min=1e9)
-    fit = pooling.fit(stats, pooling.Model(within="separate"),
-                      pooling.Settings(chains=2, draws=60, warmup=30, seed=2, max_draws=60, targets=tight),
-                      progress=False)
+    fit = pooling.fit(
+        stats,
+        pooling.Model(within="separate"),
+        pooling.Settings(chains=2, draws=60, warmup=30, seed=2, max_draws=60, targets=tight),
+        progress=False,
+    )
     per_group = [m for m in fit.diagnostics()["missed"] if m["name"] in ("theta", "sigma")]
     assert len(per_group) == 2 * fit.J
     for m in per_group:

@@ -44,6 +44,7 @@ left out, and assert that the ranks are rejected: the tests can fail.
 
 benchmarks/sbc.py runs the same code with more replications.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -66,13 +67,15 @@ SIGMA2_PRIOR = pooling.ScaledInvChi2(dof=10.0, scale2=1.0)  # the shared sigma^2
 DEFAULT_HEAVY = HeavyBetween()  # the default between-group distribution, its grid and prior weights
 
 # the fixed first batch of the shared calibration (arbitrary numbers): 3 measurements per group
-D0 = GroupStats(LABELS, np.array([3, 3, 3, 3]), np.array([0.3, -0.2, 0.1, -0.4]), np.array([2.0, 1.0, 3.0, 2.0]),
-                source="D0")
+D0 = GroupStats(
+    LABELS, np.array([3, 3, 3, 3]), np.array([0.3, -0.2, 0.1, -0.4]), np.array([2.0, 1.0, 3.0, 2.0]), source="D0"
+)
 N1_SHARED = (2, 3, 4, 6)  # the second batch
 
 MODELS = {
-    "separate-nu-fixed": pooling.Model(within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR,
-                                       nu=pooling.NuFixed(5.0)),
+    "separate-nu-fixed": pooling.Model(
+        within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR, nu=pooling.NuFixed(5.0)
+    ),
     "separate-nu-grid": pooling.Model(within="separate", mu=MU_PRIOR, tau=TAU_PRIOR, s2=S2_PRIOR),
     "shared": pooling.Model(within="shared", mu=MU_PRIOR, tau=TAU_PRIOR, between="normal"),
     "known": pooling.Model(within="known", mu=MU_PRIOR, tau=TAU_PRIOR),
@@ -80,8 +83,9 @@ MODELS = {
     "shared-heavy": pooling.Model(within="shared", mu=MU_PRIOR, tau=TAU_PRIOR, sigma2=SIGMA2_PRIOR),
 }
 # the default between-group distribution is what is calibrated, through Model and build, in every structure
-assert all(MODELS[k].between == DEFAULT_HEAVY for k in ("separate-nu-fixed", "separate-nu-grid", "known",
-                                                         "shared-heavy"))
+assert all(
+    MODELS[k].between == DEFAULT_HEAVY for k in ("separate-nu-fixed", "separate-nu-grid", "known", "shared-heavy")
+)
 
 
 def _between_draw(structure: str, J: int, rng) -> tuple[np.ndarray, float | None]:
@@ -118,19 +122,30 @@ class SharedGivenD0:
     def __init__(self, n_eta=600, n_lam=600):
         n, ybar, W = D0.n.astype(float), D0.mean, float(D0.m2.sum())
         N, J = n.sum(), len(n)
-        self.eta = np.linspace(np.log(1e-6), np.log(8.0), n_eta + 1)  # cell edges; half-normal(1) mass beyond 8 is 1e-15
+        self.eta = np.linspace(
+            np.log(1e-6), np.log(8.0), n_eta + 1
+        )  # cell edges; half-normal(1) mass beyond 8 is 1e-15
         self.lam = np.linspace(np.log(0.08), np.log(40.0), n_lam + 1)
         e, l_ = 0.5 * (self.eta[1:] + self.eta[:-1]), 0.5 * (self.lam[1:] + self.lam[:-1])
         tau, sig = np.exp(e)[:, None], np.exp(l_)[None, :]
         sw, swy, swyy, logd = 1.0, 0.0, 0.0, 0.0  # the N(0, 1) prior on mu as the first term
         for j in range(J):
-            d = sig ** 2 / n[j] + tau ** 2
+            d = sig**2 / n[j] + tau**2
             sw, swy, swyy, logd = sw + 1 / d, swy + ybar[j] / d, swyy + ybar[j] ** 2 / d, logd + np.log(d)
         m = swy / sw
-        lp = (stats.halfnorm.logpdf(tau) + np.log(tau) - (N - J) * np.log(sig) - W / (2 * sig ** 2)
-              - 0.5 * np.log(sw) - 0.5 * logd - 0.5 * (swyy - sw * m * m))
+        lp = (
+            stats.halfnorm.logpdf(tau)
+            + np.log(tau)
+            - (N - J) * np.log(sig)
+            - W / (2 * sig**2)
+            - 0.5 * np.log(sw)
+            - 0.5 * logd
+            - 0.5 * (swyy - sw * m * m)
+        )
         w = np.exp(lp - lp.max()).ravel()
-        self.edge_mass = float((w.reshape(lp.shape)[[0, -1], :].sum() + w.reshape(lp.shape)[:, [0, -1]].sum()) / w.sum())
+        self.edge_mass = float(
+            (w.reshape(lp.shape)[[0, -1], :].sum() + w.reshape(lp.shape)[:, [0, -1]].sum()) / w.sum()
+        )
         self.cum = np.cumsum(w) / w.sum()
         self.shape = lp.shape
 
@@ -140,11 +155,11 @@ class SharedGivenD0:
         tau = np.exp(self.eta[i] + (self.eta[i + 1] - self.eta[i]) * rng.random())
         sigma = np.exp(self.lam[j] + (self.lam[j + 1] - self.lam[j]) * rng.random())
         n, ybar = D0.n.astype(float), D0.mean
-        d = sigma ** 2 / n + tau ** 2
+        d = sigma**2 / n + tau**2
         V = 1.0 / (1.0 + np.sum(1.0 / d))
         mu = V * np.sum(ybar / d) + np.sqrt(V) * rng.standard_normal()
-        v = sigma ** 2 / n
-        theta = (mu * v + ybar * tau ** 2) / d + np.sqrt(v * tau ** 2 / d) * rng.standard_normal(len(n))
+        v = sigma**2 / n
+        theta = (mu * v + ybar * tau**2) / d + np.sqrt(v * tau**2 / d) * rng.standard_normal(len(n))
         return mu, tau, sigma, theta
 
 
@@ -178,8 +193,14 @@ def simulate(structure: str, rng) -> tuple[GroupStats, dict]:
         widen, df = _between_draw(structure, J, rng)
         theta = mu + tau * widen * rng.standard_normal(J)
         sigma = float(np.sqrt(SIGMA2_PRIOR.dof * SIGMA2_PRIOR.scale2 / rng.chisquare(SIGMA2_PRIOR.dof)))
-        truth = {"mu": mu, "tau": tau, "df": df, "sigma": sigma, "lambda[0]": float(widen[0]) ** -2,
-                 "log p(sigma^2)": float(sigma2_log_prior(sigma))}
+        truth = {
+            "mu": mu,
+            "tau": tau,
+            "df": df,
+            "sigma": sigma,
+            "lambda[0]": float(widen[0]) ** -2,
+            "log p(sigma^2)": float(sigma2_log_prior(sigma)),
+        }
         truth |= {f"theta[{j}]": float(theta[j]) for j in range(J)}
         return _raw_stats(theta, np.full(J, sigma), N_GROUPS, rng), truth
     if structure == "shared":
@@ -193,22 +214,36 @@ def simulate(structure: str, rng) -> tuple[GroupStats, dict]:
     extra = {} if df is None else {"df": df}
     if structure.startswith("known"):
         y = theta + SE_KNOWN * rng.standard_normal(J)
-        est = GroupStats(LABELS, np.zeros(J, dtype=np.int64), y, np.zeros(J), se=SE_KNOWN.copy(), kind="known",
-                         source="simulated")
+        est = GroupStats(
+            LABELS, np.zeros(J, dtype=np.int64), y, np.zeros(J), se=SE_KNOWN.copy(), kind="known", source="simulated"
+        )
         return est, {"mu": mu, "tau": tau, "theta": theta[0], **extra}
     s2 = rng.gamma(S2_PRIOR.shape, 1.0 / S2_PRIOR.rate)  # numpy's gamma takes a scale = 1 / rate
     nu_grid = np.asarray(pooling.NuGrid().values)
     nu = 5.0 if structure == "separate-nu-fixed" else float(rng.choice(nu_grid))  # the default grid, equal weights
     sigma2 = nu * s2 / rng.chisquare(nu, J)  # Scaled-Inv-chi2(nu, s^2)
-    truth = {"mu": mu, "tau": tau, "theta": theta[0], "sigma": float(np.sqrt(sigma2[0])), "s": float(np.sqrt(s2)),
-             **extra}
+    truth = {
+        "mu": mu,
+        "tau": tau,
+        "theta": theta[0],
+        "sigma": float(np.sqrt(sigma2[0])),
+        "s": float(np.sqrt(s2)),
+        **extra,
+    }
     if structure == "separate-nu-grid":
         truth["nu"] = nu
     return _raw_stats(theta, np.sqrt(sigma2), N_GROUPS, rng), truth
 
 
-def sbc_ranks(structure: str, reps: int, seed: int, kept: int = 99, thin: int = 10, warmup: int = 200,
-              model: pooling.Model | None = None) -> dict[str, np.ndarray]:
+def sbc_ranks(
+    structure: str,
+    reps: int,
+    seed: int,
+    kept: int = 99,
+    thin: int = 10,
+    warmup: int = 200,
+    model: pooling.Model | None = None,
+) -> dict[str, np.ndarray]:
     """Ranks (0..kept) of the true values among `kept` draws (every `thin`-th of one chain), per parameter."""
     model = model or MODELS[structure]
     ranks: dict[str, list[int]] = {}
@@ -219,8 +254,9 @@ def sbc_ranks(structure: str, reps: int, seed: int, kept: int = 99, thin: int = 
         data, truth = simulate(structure, np.random.default_rng(sim_seq))
         ties = np.random.default_rng(tie_seq)
         problem = build(data, model)
-        settings = sampler.Settings(chains=1, draws=kept * thin, warmup=warmup, seed=int(fit_seq.generate_state(1)[0]),
-                                    threads=1)
+        settings = sampler.Settings(
+            chains=1, draws=kept * thin, warmup=warmup, seed=int(fit_seq.generate_state(1)[0]), threads=1
+        )
         raw = sampler.sample_raw(problem, settings, progress=False, diagnose=no_extension)
         fit = posterior.finish(raw, problem)
         for name, value in truth.items():
@@ -231,7 +267,7 @@ def sbc_ranks(structure: str, reps: int, seed: int, kept: int = 99, thin: int = 
                 x = fit.draws(base)
                 if x.ndim == 2:
                     x = x[:, int(col.rstrip("]") or 0)]
-            draws = x.reshape(-1)[thin - 1::thin]
+            draws = x.reshape(-1)[thin - 1 :: thin]
             # ties happen only for the discrete nu and df, and for lambda_j = 1 exactly at df = inf: break
             # them at random, which keeps the rank uniform under a calibrated sampler
             rank = int(np.sum(draws < value)) + int(ties.integers(0, np.sum(draws == value) + 1))
@@ -297,17 +333,20 @@ def test_ranks_are_uniform_shared_with_df_learned():
         assert p > ALPHA, ("shared-heavy", name, p, np.bincount(r * BINS // 100, minlength=BINS))
 
 
-@pytest.mark.parametrize("wrong, check", [
-    # the df grid's prior weights left out (uniform weights instead of the default's): the df ranks are rejected
-    (dict(between=HeavyBetween(weights=(1.0,) * len(DEFAULT_HEAVY.grid))), "df"),
-    # the shared sigma^2 fitted with p(sigma^2) ∝ 1/sigma^2 instead of its proper prior. The ranks of sigma itself
-    # cannot see this: the flat-prior posterior of a normal scale has exact frequentist coverage, so the true sigma
-    # ranks uniformly in it whatever prior drew it. The log prior density of sigma^2 as a test quantity does
-    # (Modrak, Moon, Kim, Kay, Burkner and Vehtari 2023, Bayesian Analysis, "Simulation-based calibration checking
-    # for Bayesian computation: the choice of test quantities shapes sensitivity"; from memory): the true sigma^2
-    # is drawn from the wider-posterior draws' density times the prior, so it ranks high in that density.
-    (dict(sigma2=pooling.Reciprocal()), "log p(sigma^2)"),
-])
+@pytest.mark.parametrize(
+    "wrong, check",
+    [
+        # the df grid's prior weights left out (uniform weights instead of the default's): the df ranks are rejected
+        (dict(between=HeavyBetween(weights=(1.0,) * len(DEFAULT_HEAVY.grid))), "df"),
+        # the shared sigma^2 fitted with p(sigma^2) ∝ 1/sigma^2 instead of its proper prior. The ranks of sigma itself
+        # cannot see this: the flat-prior posterior of a normal scale has exact frequentist coverage, so the true sigma
+        # ranks uniformly in it whatever prior drew it. The log prior density of sigma^2 as a test quantity does
+        # (Modrak, Moon, Kim, Kay, Burkner and Vehtari 2023, Bayesian Analysis, "Simulation-based calibration checking
+        # for Bayesian computation: the choice of test quantities shapes sensitivity"; from memory): the true sigma^2
+        # is drawn from the wider-posterior draws' density times the prior, so it ranks high in that density.
+        (dict(sigma2=pooling.Reciprocal()), "log p(sigma^2)"),
+    ],
+)
 def test_shared_sbc_detects_a_dropped_prior(wrong, check):
     m = MODELS["shared-heavy"]
     fields = dict(within="shared", mu=m.mu, tau=m.tau, sigma2=m.sigma2, between=m.between) | wrong

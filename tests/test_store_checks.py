@@ -4,6 +4,7 @@ random byte flips in a store file, copies between SQLite and PostgreSQL, and cre
 These are fault and hostile-input tests: they check behaviour (what is refused, with which exit code
 and message; what is copied bit for bit), not statistics; the data are small invented tables.
 """
+
 from __future__ import annotations
 
 import json
@@ -34,8 +35,9 @@ def _days(folder: Path, k: int = 3, groups: int = 6, seed: int = 1) -> list[Path
     rng = np.random.default_rng(seed)
     out = []
     for d in range(k):
-        rows = [(f"L{j}", "AB"[j % 2], rng.normal(50 + j, 2)) for j in range(groups)
-                for _ in range(int(rng.integers(2, 6)))]
+        rows = [
+            (f"L{j}", "AB"[j % 2], rng.normal(50 + j, 2)) for j in range(groups) for _ in range(int(rng.integers(2, 6)))
+        ]
         p = folder / f"day-{d}.csv"
         pd.DataFrame(rows, columns=["lab", "method", "y"]).to_csv(p, index=False, float_format="%.17g")
         out.append(p)
@@ -44,15 +46,43 @@ def _days(folder: Path, k: int = 3, groups: int = 6, seed: int = 1) -> list[Path
 
 def _run_record(batch_ids, n_groups=6) -> RunRecord:
     """A recorded run as a refit keeps it (invented numbers; a NaN where a value was not computed)."""
-    groups = tuple(GroupResult(f"L{j}", 4.0 + j, 50.0 + j, 50.5 + j, 0.7, 49.0 + j, 52.0 + j, 1.0 + j, 0.4,
-                               p_above=0.25 * (j % 4), p_outside=float("nan")) for j in range(n_groups))
+    groups = tuple(
+        GroupResult(
+            f"L{j}",
+            4.0 + j,
+            50.0 + j,
+            50.5 + j,
+            0.7,
+            49.0 + j,
+            52.0 + j,
+            1.0 + j,
+            0.4,
+            p_above=0.25 * (j % 4),
+            p_outside=float("nan"),
+        )
+        for j in range(n_groups)
+    )
     # (a 'shared' run's state: a refit of the default 'separate' structure starts afresh from it)
-    state = {"within": "shared", "center": 52.0, "scale": 2.0, "nu_grid": [1.0, 2.0],
-             "labels": [g.label for g in groups],
-             "chains": [{"state": [0.1, -0.2, 0.3], "theta": [0.5] * n_groups, "sigma2": [1.5] * n_groups}]}
-    return RunRecord("2026-11-05T02:30:00+00:00", "/srv/runs/2026-11-05", "ab" * 32, tuple(batch_ids),
-                     "2026-11-05T02:30:00+00:00", 30.0, True, {"model": {"within": "separate"}, "mu": [50.1, 0.3]},
-                     groups, state)
+    state = {
+        "within": "shared",
+        "center": 52.0,
+        "scale": 2.0,
+        "nu_grid": [1.0, 2.0],
+        "labels": [g.label for g in groups],
+        "chains": [{"state": [0.1, -0.2, 0.3], "theta": [0.5] * n_groups, "sigma2": [1.5] * n_groups}],
+    }
+    return RunRecord(
+        "2026-11-05T02:30:00+00:00",
+        "/srv/runs/2026-11-05",
+        "ab" * 32,
+        tuple(batch_ids),
+        "2026-11-05T02:30:00+00:00",
+        30.0,
+        True,
+        {"model": {"within": "separate"}, "mu": [50.1, 0.3]},
+        groups,
+        state,
+    )
 
 
 def _store_with_history(store, folder: Path) -> list[Path]:
@@ -61,8 +91,7 @@ def _store_with_history(store, folder: Path) -> list[Path]:
     for d, f in enumerate(files[:3]):
         jobs.ingest_file(store, f, "lab", "y", at=f"2026-11-0{d + 1}", columns=["method"])
     jobs.withdraw_batch(store, "day-1.csv", "bad gauge")
-    jobs.ingest_file(store, files[3], "lab", "y", batch="day-2.csv", replace=True, at="2026-11-04",
-                     columns=["method"])
+    jobs.ingest_file(store, files[3], "lab", "y", batch="day-2.csv", replace=True, at="2026-11-04", columns=["method"])
     with open_store(store) as st:
         st.record_run(_run_record([b.id for b in st.snapshot().batches]))
     return files
@@ -82,21 +111,32 @@ def _one_line(capsys, argv) -> tuple[int, str, str]:
 
 CHANGES = {
     "n": ("UPDATE batch_groups SET n = n + 1 WHERE batch_id = 1 AND position = 2", "statistics of batch 1"),
-    "mean": ("UPDATE batch_groups SET mean = mean * (1 + 1e-15) WHERE batch_id = 1 AND position = 0",
-             "statistics of batch 1"),
-    "mean_lo": ("UPDATE batch_groups SET mean_lo = 1e-300 WHERE batch_id = 4 AND position = 1",
-                "statistics of batch 4"),
+    "mean": (
+        "UPDATE batch_groups SET mean = mean * (1 + 1e-15) WHERE batch_id = 1 AND position = 0",
+        "statistics of batch 1",
+    ),
+    "mean_lo": (
+        "UPDATE batch_groups SET mean_lo = 1e-300 WHERE batch_id = 4 AND position = 1",
+        "statistics of batch 4",
+    ),
     "m2": ("UPDATE batch_groups SET m2 = 0 WHERE batch_id = 1 AND position = 3", "statistics of batch 1"),
     "label": ("UPDATE batch_groups SET label = 'L9' WHERE batch_id = 1 AND position = 4", "statistics of batch 1"),
-    "a group-level value": ("UPDATE batch_columns SET value = 'B' WHERE batch_id = 1 AND position = 2",
-                            "statistics of batch 1"),
-    "a group-level row gone": ("DELETE FROM batch_columns WHERE batch_id = 4 AND position = 0", "statistics of batch 4"),
-    "a group-level row added": ("INSERT INTO batch_columns (batch_id, column_name, position, value) "
-                                "VALUES (1, 'age', 0, '7')", "statistics of batch 1"),
+    "a group-level value": (
+        "UPDATE batch_columns SET value = 'B' WHERE batch_id = 1 AND position = 2",
+        "statistics of batch 1",
+    ),
+    "a group-level row gone": (
+        "DELETE FROM batch_columns WHERE batch_id = 4 AND position = 0",
+        "statistics of batch 4",
+    ),
+    "a group-level row added": (
+        "INSERT INTO batch_columns (batch_id, column_name, position, value) VALUES (1, 'age', 0, '7')",
+        "statistics of batch 1",
+    ),
     "a group row gone": ("DELETE FROM batch_groups WHERE batch_id = 4 AND position = 5", "statistics of batch 4"),
     "date": ("UPDATE batches SET dated_at = '2026-10-01T00:00:00+00:00' WHERE id = 1", "ledger line of batch 1"),
     "status": ("UPDATE batches SET status = 'active' WHERE id = 2", "ledger line of batch 2"),
-    "rows": ("UPDATE batches SET \"rows\" = 1000 WHERE id = 3", "ledger line of batch 3"),
+    "rows": ('UPDATE batches SET "rows" = 1000 WHERE id = 3', "ledger line of batch 3"),
     "a ledger line gone": ("DELETE FROM batches WHERE id = 2", "ledger head"),
     "the head": ("UPDATE store_head SET batch_lines = batch_lines + 1", "ledger head"),
     "run result": ("UPDATE run_groups SET post_mean = 0 WHERE position = 1", "group results of run 1"),
@@ -144,8 +184,12 @@ def test_a_newer_schema_version_is_refused_with_one_line(tmp_path, capsys, backe
     _store_with_history(store, tmp_path)
     execute(store, "UPDATE pooling_store SET value = '4' WHERE key = 'format'")
     before = sql_dump(store)
-    for argv in (["batches", store], ["checkup", store], ["withdraw", store, "day-0.csv"],
-                 ["ingest", store, tmp_path / "day-3.csv", "--group", "lab", "--value", "y", "--batch", "x"]):
+    for argv in (
+        ["batches", store],
+        ["checkup", store],
+        ["withdraw", store, "day-0.csv"],
+        ["ingest", store, tmp_path / "day-3.csv", "--group", "lab", "--value", "y", "--batch", "x"],
+    ):
         code, _, line = _one_line(capsys, argv)
         assert code == 2 and "schema version 4 was written by a newer pooling" in line, line
     assert sql_dump(store) == before
@@ -163,6 +207,7 @@ def test_an_ingest_dated_past_the_last_instant_is_refused(tmp_path, capsys, back
 # ---------------------------------------------------------------------------------------------
 # SQLite: random single-byte flips in a store file
 
+
 def _raw_tables(path: Path):
     """Every row of every data table, read with plain sqlite3 (no checks of ours): what the file holds."""
     con = sqlite3.connect(str(path))
@@ -171,8 +216,10 @@ def _raw_tables(path: Path):
         out = {}
         for t in ("pooling_store", "store_head", "batches", "batch_groups", "batch_columns", "runs", "run_groups"):
             rows = con.execute(f"SELECT * FROM {t} ORDER BY 1, 2").fetchall()
-            out[t] = [tuple(("f", np.float64(x).view(np.uint64).item()) if isinstance(x, float) else x for x in r)
-                      for r in rows]
+            out[t] = [
+                tuple(("f", np.float64(x).view(np.uint64).item()) if isinstance(x, float) else x for x in r)
+                for r in rows
+            ]
         return out
     finally:
         con.close()
@@ -189,14 +236,53 @@ def _read_back(path: Path):
     def bits(a):
         return np.asarray(a, dtype=np.float64).view(np.uint64).tolist()
 
-    stats = [(s.batch_id, s.labels, s.n.tolist(), bits(s.mean), bits(s.mean_lo), bits(s.m2), s.columns)
-             for s in snap.stats]
-    groups = [(g.label, bits([g.n, g.raw_mean, g.post_mean, g.post_sd, g.q_lo, g.q_hi, g.rank_mean, g.rank_sd,
-                              g.p_above, g.p_outside])) for g in last.groups]
-    run_fields = [(r.id, r.created_at, r.folder, r.state_sha256, r.batch_ids, r.reference_at, r.half_life_days,
-                   r.targets_met, json.dumps(r.summary)) for r in runs]
-    return (snap.batches, stats, snap.state_sha256, ledger, run_fields, groups, json.dumps(last.final_state),
-            json.dumps(last.summary))
+    stats = [
+        (s.batch_id, s.labels, s.n.tolist(), bits(s.mean), bits(s.mean_lo), bits(s.m2), s.columns) for s in snap.stats
+    ]
+    groups = [
+        (
+            g.label,
+            bits(
+                [
+                    g.n,
+                    g.raw_mean,
+                    g.post_mean,
+                    g.post_sd,
+                    g.q_lo,
+                    g.q_hi,
+                    g.rank_mean,
+                    g.rank_sd,
+                    g.p_above,
+                    g.p_outside,
+                ]
+            ),
+        )
+        for g in last.groups
+    ]
+    run_fields = [
+        (
+            r.id,
+            r.created_at,
+            r.folder,
+            r.state_sha256,
+            r.batch_ids,
+            r.reference_at,
+            r.half_life_days,
+            r.targets_met,
+            json.dumps(r.summary),
+        )
+        for r in runs
+    ]
+    return (
+        snap.batches,
+        stats,
+        snap.state_sha256,
+        ledger,
+        run_fields,
+        groups,
+        json.dumps(last.final_state),
+        json.dumps(last.summary),
+    )
 
 
 def test_random_single_byte_flips_never_pass_silently(tmp_path):
@@ -216,11 +302,21 @@ def test_random_single_byte_flips_never_pass_silently(tmp_path):
     raw_reference = _raw_tables(store)
     original = store.read_bytes()
     rng = np.random.default_rng(20261203)
-    counts = dict.fromkeys(["flips", "changed a stored value", "of which refused", "refused by a checksum",
-                            "refused by SQLite or the file checks", "changed only the creation note",
-                            "damage off the read path, reported by checkup",
-                            "changed a value no refit reads, refused by checkup", "changed nothing read back",
-                            "silent changes"], 0)
+    counts = dict.fromkeys(
+        [
+            "flips",
+            "changed a stored value",
+            "of which refused",
+            "refused by a checksum",
+            "refused by SQLite or the file checks",
+            "changed only the creation note",
+            "damage off the read path, reported by checkup",
+            "changed a value no refit reads, refused by checkup",
+            "changed nothing read back",
+            "silent changes",
+        ],
+        0,
+    )
     silent = []
     copy = tmp_path / "flip.store"
 
@@ -238,9 +334,12 @@ def test_random_single_byte_flips_never_pass_silently(tmp_path):
         try:
             raw = _raw_tables(copy)
             changed = raw != raw_reference
-            note_only = changed and all(raw[t] == raw_reference[t] for t in raw if t != "pooling_store") and [
-                r for r in raw["pooling_store"] if r[0] == b"format"] == [
-                r for r in raw_reference["pooling_store"] if r[0] == b"format"]
+            note_only = (
+                changed
+                and all(raw[t] == raw_reference[t] for t in raw if t != "pooling_store")
+                and [r for r in raw["pooling_store"] if r[0] == b"format"]
+                == [r for r in raw_reference["pooling_store"] if r[0] == b"format"]
+            )
         except (sqlite3.DatabaseError, ValueError):  # ValueError: a column name that is no longer UTF-8
             raw, changed, note_only = None, False, False  # plain queries cannot read the tables
         counts["changed a stored value"] += changed
@@ -287,6 +386,7 @@ def test_random_single_byte_flips_never_pass_silently(tmp_path):
 # ---------------------------------------------------------------------------------------------
 # SQLite: stores of schema version 1 (made before checksums) are upgraded in place
 
+
 def test_a_schema_1_store_is_upgraded_in_place_by_the_first_command(tmp_path, capsys):
     store = tmp_path / "v1.store"
     shutil.copy(V1 / "v1.store", store)
@@ -322,8 +422,15 @@ def test_a_schema_1_store_is_upgraded_in_place_by_the_first_command(tmp_path, ca
 def test_two_jobs_opening_a_schema_1_store_at_once_upgrade_it_once(tmp_path):
     store = tmp_path / "v1.store"
     shutil.copy(V1 / "v1.store", store)
-    procs = [subprocess.Popen([sys.executable, "-m", "pooling.cli", "checkup", str(store)], stdout=subprocess.PIPE,
-                              stderr=subprocess.PIPE, text=True) for _ in range(3)]
+    procs = [
+        subprocess.Popen(
+            [sys.executable, "-m", "pooling.cli", "checkup", str(store)],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+        for _ in range(3)
+    ]
     for p in procs:
         out, err = p.communicate(timeout=120)
         assert p.returncode == 0 and "sound" in out, err
@@ -335,7 +442,7 @@ def test_two_jobs_opening_a_schema_1_store_at_once_upgrade_it_once(tmp_path):
 def test_a_damaged_schema_1_store_is_not_upgraded(tmp_path, capsys):
     store = tmp_path / "v1.store"
     raw = bytearray((V1 / "v1.store").read_bytes())
-    raw[4096 * 3:4096 * 3 + 200] = bytes(200)  # zeros over the top of a page
+    raw[4096 * 3 : 4096 * 3 + 200] = bytes(200)  # zeros over the top of a page
     store.write_bytes(bytes(raw))
     code, _, line = _one_line(capsys, ["batches", store])
     assert code == 2 and line.startswith("pooling: bad store") and "damaged" in line
@@ -351,6 +458,7 @@ def test_a_damaged_schema_1_store_is_not_upgraded(tmp_path, capsys):
 # ---------------------------------------------------------------------------------------------
 # copies between SQLite and PostgreSQL, both ways, bit for bit
 
+
 def test_a_store_copied_to_postgresql_and_back_is_the_same_bit_for_bit(tmp_path, capsys, pg_cluster):
     first = tmp_path / "first.store"
     _store_with_history(first, tmp_path)
@@ -365,6 +473,7 @@ def test_a_store_copied_to_postgresql_and_back_is_the_same_bit_for_bit(tmp_path,
     with open_store(first) as a, open_store(pg) as b, open_store(back) as c:
         ca, cb, cc = a.export(), b.export(), c.export()
     assert jobs.content_differences(ca, cb) == [] and jobs.content_differences(ca, cc) == []
+
     # the same, independently of the copying code: every row of every table, floats by their bits
     def rows(where):
         return [ln for ln in sql_dump(where) if "copied_" not in ln]
@@ -387,8 +496,25 @@ def test_a_store_copied_to_postgresql_and_back_is_the_same_bit_for_bit(tmp_path,
     assert code == 4 and "nothing new" in line
     # and it works as a store: a new delivery lands, is checked and refitted
     late = _days(tmp_path / "late", k=1, seed=99)[0] if (tmp_path / "late").mkdir() is None else None
-    assert cli.main(["ingest", pg, str(late), "--group", "lab", "--value", "y", "--batch", "late", "--column",
-                     "method", "--quiet"]) == 0
+    assert (
+        cli.main(
+            [
+                "ingest",
+                pg,
+                str(late),
+                "--group",
+                "lab",
+                "--value",
+                "y",
+                "--batch",
+                "late",
+                "--column",
+                "method",
+                "--quiet",
+            ]
+        )
+        == 0
+    )
     assert cli.main(["refit", pg, "--out", str(tmp_path / "run-3"), *TINY]) in (0, 3)
 
 
@@ -413,6 +539,7 @@ def test_copy_refuses_an_existing_target_and_a_damaged_source(tmp_path, capsys, 
 # ---------------------------------------------------------------------------------------------
 # PostgreSQL: stores in one database, connections, credentials
 
+
 def test_several_stores_share_one_database_and_a_foreign_schema_is_refused(tmp_path, capsys, pg_cluster):
     files = _days(tmp_path, k=2)
     a, b = pg_cluster.url("plant_a"), pg_cluster.url("plant_b")
@@ -436,8 +563,9 @@ def test_several_stores_share_one_database_and_a_foreign_schema_is_refused(tmp_p
 def _run_cmd(argv, env_extra=None, env_drop=()):
     env = {k: v for k, v in os.environ.items() if k not in env_drop}
     env.update(env_extra or {})
-    p = subprocess.run([sys.executable, "-m", "pooling.cli", *map(str, argv)], capture_output=True, text=True,
-                       timeout=120, env=env)
+    p = subprocess.run(
+        [sys.executable, "-m", "pooling.cli", *map(str, argv)], capture_output=True, text=True, timeout=120, env=env
+    )
     return p.returncode, p.stdout, p.stderr
 
 
@@ -460,8 +588,9 @@ def test_credentials_never_on_the_command_line_nor_in_any_output(tmp_path, pg_cl
     assert _run_cmd(["ingest", store, f, "--group", "lab", "--value", "y"])[0] == 0
     code, out, err = _run_cmd(["refit", store, "--out", tmp_path / "run", "--tau", "half-cauchy:2", *TINY])
     assert code in (0, 3), err
-    texts = [out, err] + [p.read_text(errors="replace") for p in (tmp_path / "run").iterdir()
-                          if p.suffix in (".json", ".csv", ".html")]
+    texts = [out, err] + [
+        p.read_text(errors="replace") for p in (tmp_path / "run").iterdir() if p.suffix in (".json", ".csv", ".html")
+    ]
     assert all(PASSWORD not in t for t in texts)
     assert json.loads((tmp_path / "run" / "changes.json").read_text())["store"]["path"] == store
     # a wrong password (from a password file, or PGPASSWORD): exit 6, one line naming host and database
@@ -494,8 +623,7 @@ def test_a_libpq_service_names_the_database(tmp_path, pg_cluster):
     code, out, err = _run_cmd(["batches", "service=elsewhere"], env)
     assert code == 2 and "elsewhere" in err and len(err.strip().splitlines()) == 1
     # a file whose name begins with service= is written ./service=...
-    code, out, err = _run_cmd(["ingest", "./service=plant.store", f, "--group", "lab", "--value", "y"],
-                              env_extra=env)
+    code, out, err = _run_cmd(["ingest", "./service=plant.store", f, "--group", "lab", "--value", "y"], env_extra=env)
     assert code == 0 and (Path.cwd() / "service=plant.store").exists(), err
     (Path.cwd() / "service=plant.store").unlink()
 
@@ -503,8 +631,10 @@ def test_a_libpq_service_names_the_database(tmp_path, pg_cluster):
 def test_the_command_line_imports_psycopg_only_for_a_postgresql_store(tmp_path):
     store = tmp_path / "s.store"
     jobs.ingest_file(store, _days(tmp_path, k=1)[0], "lab", "y")
-    probe = ("import sys; from pooling.cli import main; code = main(['batches', sys.argv[1]]); "
-             "print('psycopg' in sys.modules, code)")
+    probe = (
+        "import sys; from pooling.cli import main; code = main(['batches', sys.argv[1]]); "
+        "print('psycopg' in sys.modules, code)"
+    )
     out = subprocess.run([sys.executable, "-c", probe, str(store)], capture_output=True, text=True, timeout=120).stdout
     assert out.strip().splitlines()[-1] == "False 0"
 
@@ -516,7 +646,7 @@ def test_the_readme_team_commands_run_against_a_server(tmp_path, pg_cluster):
 
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
     section = readme.split("<!-- team store section -->")[1].split("<!-- /team store section -->")[0]
-    service = section[section.index("[plant]"):].split("\n\n")[0]
+    service = section[section.index("[plant]") :].split("\n\n")[0]
     values = {"host": str(pg_cluster.sock), "port": str(PORT), "dbname": DATABASE, "user": ROLE}
     lines = [ln.strip() for ln in service.splitlines()]
     assert [ln.split("=")[0] for ln in lines[1:]] == list(values)
@@ -527,7 +657,8 @@ def test_the_readme_team_commands_run_against_a_server(tmp_path, pg_cluster):
     day = "2026-12-01"
     (tmp_path / "incoming").mkdir()
     (tmp_path / "incoming" / f"{day}.csv").write_text(
-        "supplier,strength\n" + "".join(f"S{j},{400 + j + 0.5 * k}\n" for j in range(5) for k in range(4)))
+        "supplier,strength\n" + "".join(f"S{j},{400 + j + 0.5 * k}\n" for j in range(5) for k in range(4))
+    )
     jobs.ingest_file(tmp_path / "parts.store", tmp_path / "incoming" / f"{day}.csv", "supplier", "strength")
     env = dict(os.environ, PGSERVICEFILE=str(tmp_path / "services.conf"))
     for cmd in commands:
@@ -542,8 +673,10 @@ def test_the_readme_team_commands_run_against_a_server(tmp_path, pg_cluster):
 
 
 def test_without_psycopg_a_postgresql_store_is_one_line(tmp_path):
-    probe = ("import sys; sys.modules['psycopg'] = None; from pooling.cli import main; "
-             "sys.exit(main(['batches', 'postgresql://quality@db.plant.example/quality#castings']))")
+    probe = (
+        "import sys; sys.modules['psycopg'] = None; from pooling.cli import main; "
+        "sys.exit(main(['batches', 'postgresql://quality@db.plant.example/quality#castings']))"
+    )
     p = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=120)
     lines = p.stderr.strip().splitlines()
     assert p.returncode == 2 and len(lines) == 1 and "pip install 'pooling[postgresql]'" in lines[0], p.stderr

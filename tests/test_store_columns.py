@@ -8,6 +8,7 @@ sweeps on the same random streams, from statistics that agree to a few units in 
 batch by batch, the fit reads the rows at once), so the draws and every answer agree to round-off. Every test
 that takes `backend` runs on both stores (SQLite and PostgreSQL; conftest.py).
 """
+
 from __future__ import annotations
 
 import json
@@ -44,12 +45,14 @@ def _round(folder: Path, days: int = 3, labs: int = 14, seed: int = 3) -> list[P
     rng = np.random.default_rng(seed)
     method = {f"L{j:02d}": "B" if j % 3 == 0 else "A" for j in range(labs)}
     age = {f"L{j:02d}": 1 + (j * 7) % 9 for j in range(labs)}
-    theta = {lab: 20.0 + (0.6 if method[lab] == "B" else 0.0) + 0.05 * age[lab] + rng.normal(0, 0.15)
-             for lab in method}
+    theta = {lab: 20.0 + (0.6 if method[lab] == "B" else 0.0) + 0.05 * age[lab] + rng.normal(0, 0.15) for lab in method}
     out = []
     for d in range(days):
-        rows = [(lab, method[lab], age[lab], theta[lab] + rng.normal(0, 0.25)) for lab in method
-                for _ in range(int(rng.integers(1, 4)))]
+        rows = [
+            (lab, method[lab], age[lab], theta[lab] + rng.normal(0, 0.25))
+            for lab in method
+            for _ in range(int(rng.integers(1, 4)))
+        ]
         p = folder / f"day-{d}.csv"
         pd.DataFrame(rows, columns=["lab", "method", "age", "y"]).to_csv(p, index=False, float_format="%.17g")
         out.append(p)
@@ -106,15 +109,19 @@ def test_a_refit_with_predictors_matches_a_fit_of_the_concatenated_deliveries(tm
         ref = read_table(f, "lab", "y", group_columns=["method", "age"])
         assert s.labels == ref.labels and set(s.columns) == {"method", "age"}
         assert list(s.columns["method"]) == list(ref.columns["method"]) and list(s.columns["age"]) == list(
-            ref.columns["age"])
+            ref.columns["age"]
+        )
     refit, one = tmp_path / "refit", tmp_path / "one"
     assert cli.main(["refit", store, "--out", str(refit), *PREDICTORS, *RUN]) in (0, 3)
-    assert cli.main(["fit", str(tmp_path / "all.csv"), "--group", "lab", "--value", "y", "--out", str(one),
-                     *PREDICTORS, *RUN]) in (0, 3)
+    assert cli.main(
+        ["fit", str(tmp_path / "all.csv"), "--group", "lab", "--value", "y", "--out", str(one), *PREDICTORS, *RUN]
+    ) in (0, 3)
     a = json.loads((refit / "summary.json").read_text())
     b = json.loads((one / "summary.json").read_text())
-    assert a["model"] == b["model"] and [c["name"] for c in a["predictors"]["coefficients"]] == ["method: B vs A",
-                                                                                                  "age"]
+    assert a["model"] == b["model"] and [c["name"] for c in a["predictors"]["coefficients"]] == [
+        "method: B vs A",
+        "age",
+    ]
     # coefficients, contrasts, consensus per level, tau with and without the predictors: equal to round-off
     _numbers_agree(a["predictors"], b["predictors"])
     pa = xr.open_dataset(refit / "draws.nc", group="posterior", engine="h5netcdf").load()
@@ -161,8 +168,16 @@ def test_a_group_whose_value_changes_between_batches_is_refused_whole(tmp_path, 
     code = _ingest(store, tmp_path / "changed.csv", "--column", "method", "--column", "age")
     line = _err_line(capsys)
     assert code == 2 and line.startswith("pooling: bad input in ")
-    for part in (f"'{tmp_path / 'changed.csv'}'", f"store '{shown}'", "group 'L04'", "column 'method'", "'A'", "'C'",
-                 "batch 'day-0.csv'", "nothing was changed"):
+    for part in (
+        f"'{tmp_path / 'changed.csv'}'",
+        f"store '{shown}'",
+        "group 'L04'",
+        "column 'method'",
+        "'A'",
+        "'C'",
+        "batch 'day-0.csv'",
+        "nothing was changed",
+    ):
         assert part in line, (part, line)
     assert sql_dump(store) == before
     # a number written another way is the same value: age 7 and 7.0
@@ -172,14 +187,18 @@ def test_a_group_whose_value_changes_between_batches_is_refused_whole(tmp_path, 
     assert _ingest(store, tmp_path / "same.csv", "--column", "method", "--column", "age") == 0
 
 
-@pytest.mark.parametrize("day0,day1,says", [
-    (["method", "age"], ["method"], "ingest it with --column age"),
-    (["method"], [], "ingest it with --column method"),
-    (["method"], ["method", "age"], "ingest it without --column age"),
-    ([], ["method"], "ingest it without --column method"),
-])
-def test_a_batch_keeping_other_columns_than_the_store_is_refused(tmp_path, capsys, backend, new_store, day0, day1,
-                                                                 says):
+@pytest.mark.parametrize(
+    "day0,day1,says",
+    [
+        (["method", "age"], ["method"], "ingest it with --column age"),
+        (["method"], [], "ingest it with --column method"),
+        (["method"], ["method", "age"], "ingest it without --column age"),
+        ([], ["method"], "ingest it without --column method"),
+    ],
+)
+def test_a_batch_keeping_other_columns_than_the_store_is_refused(
+    tmp_path, capsys, backend, new_store, day0, day1, says
+):
     files = _round(tmp_path, days=2)
     store = new_store()
     assert _ingest(store, files[0], *[x for c in day0 for x in ("--column", c)]) == 0
@@ -217,8 +236,10 @@ def test_withdrawn_and_replaced_batches_do_not_bind_the_values(tmp_path, capsys,
 
 def _paused(tmp_path: Path) -> tuple[dict, Path, Path]:
     marker, resume = tmp_path / f"paused-{uuid.uuid4().hex[:6]}", tmp_path / "resume"
-    env = dict(os.environ, **{PAUSE_ENV: str(marker), PAUSE_AT_ENV: "before-commit", PAUSE_SECONDS_ENV: "100",
-                              RESUME_ENV: str(resume)})
+    env = dict(
+        os.environ,
+        **{PAUSE_ENV: str(marker), PAUSE_AT_ENV: "before-commit", PAUSE_SECONDS_ENV: "100", RESUME_ENV: str(resume)},
+    )
     return env, marker, resume
 
 
@@ -240,17 +261,29 @@ def test_two_ingests_at_once_cannot_give_a_group_two_values(tmp_path, backend, n
     env, marker, resume = _paused(tmp_path)
 
     def cmd(f):
-        return [sys.executable, "-m", "pooling.cli", "ingest", str(store), str(f), "--group", "lab", "--value", "y",
-                "--column", "method"]
+        return [
+            sys.executable,
+            "-m",
+            "pooling.cli",
+            "ingest",
+            str(store),
+            str(f),
+            "--group",
+            "lab",
+            "--value",
+            "y",
+            "--column",
+            "method",
+        ]
 
-    first = subprocess.Popen(cmd(tmp_path / "first.csv"), env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                             text=True)
+    first = subprocess.Popen(
+        cmd(tmp_path / "first.csv"), env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+    )
     end = time.monotonic() + 120
     while not marker.exists():
         assert first.poll() is None and time.monotonic() < end, first.communicate()
         time.sleep(0.05)
-    second = subprocess.Popen(cmd(tmp_path / "second.csv"), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                              text=True)
+    second = subprocess.Popen(cmd(tmp_path / "second.csv"), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     time.sleep(3.0)  # long enough for the second to have read the store, were it not kept waiting
     assert second.poll() is None, second.communicate()
     resume.write_text("go")
@@ -327,16 +360,31 @@ def test_summary_mode_carries_the_predictors_of_the_store_statistics(tmp_path, c
     model = Model(predictors=(Category("method"), Numeric("age")))
     settings = pooling.Settings(chains=2, warmup=200, draws=300, max_draws=300, seed=9)
     full = pooling.fit(plan.stats, model, settings, progress=False, summary=False, without=False)
-    part = pooling.fit(plan.stats, model, settings, progress=False, summary=True,
-                       options=pooling.ReportOptions(), without=False)
+    part = pooling.fit(
+        plan.stats, model, settings, progress=False, summary=True, options=pooling.ReportOptions(), without=False
+    )
     # the same sweeps on the same Generators (pooling.summary): identical draws of the coefficients
     np.testing.assert_array_equal(part.raw.beta, full.raw.beta)
     np.testing.assert_array_equal(part.raw.mu, full.raw.mu)
     # and through the command line: --summary on and off give the same answers about the predictors
     pd.concat([pd.read_csv(f) for f in files]).to_csv(tmp_path / "all.csv", index=False, float_format="%.17g")
     for mode in ("on", "off"):
-        assert cli.main(["fit", str(tmp_path / "all.csv"), "--group", "lab", "--value", "y", "--out",
-                         str(tmp_path / mode), "--summary", mode, *PREDICTORS, *RUN]) in (0, 3)
+        assert cli.main(
+            [
+                "fit",
+                str(tmp_path / "all.csv"),
+                "--group",
+                "lab",
+                "--value",
+                "y",
+                "--out",
+                str(tmp_path / mode),
+                "--summary",
+                mode,
+                *PREDICTORS,
+                *RUN,
+            ]
+        ) in (0, 3)
     on = json.loads((tmp_path / "on" / "summary.json").read_text())
     off = json.loads((tmp_path / "off" / "summary.json").read_text())
     assert on["mode"] != off["mode"]

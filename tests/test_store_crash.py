@@ -13,6 +13,7 @@ discard; the test checks that they were there.
 
 Every subprocess is bounded in time.
 """
+
 from __future__ import annotations
 
 import os
@@ -35,8 +36,21 @@ from pooling.store.ledger import PAUSE_AT_ENV, PAUSE_ENV, PAUSE_SECONDS_ENV, RES
 from pooling.store.location import parse_location
 
 BOUND = 120  # seconds any one subprocess may take before the test fails
-TINY_REFIT = ["--chains", "2", "--warmup", "100", "--draws", "100", "--max-draws", "100", "--seed", "4", "--quiet",
-              "--tau", "half-cauchy:1"]
+TINY_REFIT = [
+    "--chains",
+    "2",
+    "--warmup",
+    "100",
+    "--draws",
+    "100",
+    "--max-draws",
+    "100",
+    "--seed",
+    "4",
+    "--quiet",
+    "--tau",
+    "half-cauchy:1",
+]
 
 
 def _integrity(store) -> list[str]:
@@ -45,8 +59,19 @@ def _integrity(store) -> list[str]:
 
 
 def _ingest_cmd(store, file, group="g", value="y", *extra):
-    return [sys.executable, "-m", "pooling.cli", "ingest", str(store), str(file), "--group", group, "--value", value,
-            *extra]
+    return [
+        sys.executable,
+        "-m",
+        "pooling.cli",
+        "ingest",
+        str(store),
+        str(file),
+        "--group",
+        group,
+        "--value",
+        value,
+        *extra,
+    ]
 
 
 def _spawn(cmd, env=None):
@@ -55,8 +80,10 @@ def _spawn(cmd, env=None):
 
 def _paused_env(tmp_path: Path, point: str, seconds: float = 100) -> tuple[dict, Path, Path]:
     marker, resume = tmp_path / f"paused-{point}", tmp_path / f"resume-{point}"
-    env = dict(os.environ, **{PAUSE_ENV: str(marker), PAUSE_AT_ENV: point, PAUSE_SECONDS_ENV: str(seconds),
-                              RESUME_ENV: str(resume)})
+    env = dict(
+        os.environ,
+        **{PAUSE_ENV: str(marker), PAUSE_AT_ENV: point, PAUSE_SECONDS_ENV: str(seconds), RESUME_ENV: str(resume)},
+    )
     return env, marker, resume
 
 
@@ -84,11 +111,13 @@ def files(tmp_path_factory):
     rng = np.random.default_rng(21)
     J = 60_000
     labels = np.array([f"site-{i:05d}" for i in range(J)])
-    pd.DataFrame({"g": np.concatenate([labels, labels[:5000]]),
-                  "y": rng.normal(1e9, 0.1, J + 5000)}).to_csv(d / "big.csv", index=False, float_format="%.17g")
+    pd.DataFrame({"g": np.concatenate([labels, labels[:5000]]), "y": rng.normal(1e9, 0.1, J + 5000)}).to_csv(
+        d / "big.csv", index=False, float_format="%.17g"
+    )
     for k in range(4):
         pd.DataFrame({"g": rng.choice(labels[:40], 300), "y": rng.normal(5.0, 1.0, 300)}).to_csv(
-            d / f"small-{k}.csv", index=False, float_format="%.17g")
+            d / f"small-{k}.csv", index=False, float_format="%.17g"
+        )
     return d
 
 
@@ -248,6 +277,7 @@ def test_the_server_stopped_in_the_middle_of_a_transaction(files, tmp_path, pg_c
 # ---------------------------------------------------------------------------------------------
 # SQLite: store creations killed half-way leave hidden siblings; the next command removes them
 
+
 def _leftovers(folder: Path, name: str) -> list[str]:
     return sorted(p.name for p in folder.iterdir() if p.name.startswith(f".{name}.new-"))
 
@@ -295,7 +325,7 @@ def test_integrity_check_of_sqlite_itself_after_the_faults(files, tmp_path):
     raw = bytearray(store.read_bytes())
     rng = np.random.default_rng(3)
     page = 4096 * 20
-    raw[page:page + 4096] = rng.integers(0, 256, 4096, dtype=np.uint8).tobytes()
+    raw[page : page + 4096] = rng.integers(0, 256, 4096, dtype=np.uint8).tobytes()
     store.write_bytes(bytes(raw))
     con = sqlite3.connect(str(store))
     try:

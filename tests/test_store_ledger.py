@@ -3,6 +3,7 @@
 Every test that takes `new_store` runs on both stores (SQLite and PostgreSQL; conftest.py). No
 sampling here; these run in a few seconds.
 """
+
 from __future__ import annotations
 
 import json
@@ -99,14 +100,32 @@ def test_a_batch_with_decimal_commas_ingests_the_same_numbers(tmp_path, new_stor
     comma = tmp_path / "comma.csv"
     values = [("A", "1234.5"), ("A", "1236.25"), ("B", "999.75"), ("B", "1001.5"), ("B", "1000.125")]
     point.write_text("lab,y\n" + "".join(f"{g},{v}\n" for g, v in values))
+
     def european(v):
         whole, frac = v.split(".")
         return (f"{whole[:-3]}.{whole[-3:]}" if len(whole) > 3 else whole) + "," + frac
+
     comma.write_text("lab;y\n" + "".join(f"{g};{european(v)}\n" for g, v in values))
     a, b = new_store("a"), new_store("b")
     assert cli.main(["ingest", str(a), str(point), "--group", "lab", "--value", "y", "--quiet"]) == 0
-    assert cli.main(["ingest", str(b), str(comma), "--group", "lab", "--value", "y", "--thousands", ".",
-                     "--decimal-comma", "--quiet"]) == 0
+    assert (
+        cli.main(
+            [
+                "ingest",
+                str(b),
+                str(comma),
+                "--group",
+                "lab",
+                "--value",
+                "y",
+                "--thousands",
+                ".",
+                "--decimal-comma",
+                "--quiet",
+            ]
+        )
+        == 0
+    )
     with open_store(a) as sa, open_store(b) as sb:
         x, y = sa.snapshot(), sb.snapshot()
     assert len(y.stats) == len(x.stats) == 1
@@ -123,8 +142,9 @@ def test_name_with_other_content_is_refused_unless_replaced(tmp_path, capsys, ne
     store = new_store()
     jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y", batch="monday")
     before = _dump(store)
-    code = cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
-                     "--batch", "monday"])
+    code = cli.main(
+        ["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y", "--batch", "monday"]
+    )
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2 and len(err) == 1 and "a batch named 'monday'" in err[0] and "--replace" in err[0]
     assert _dump(store) == before
@@ -164,15 +184,37 @@ def test_withdraw_is_recorded_and_leaves_the_batch_out(tmp_path, capsys, new_sto
     assert cli.main(["withdraw", str(store), "no-such-batch"]) == 2
     # withdrawn content comes back only when asked
     capsys.readouterr()
-    assert cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
-                     "--batch", "again"]) == 2
+    assert (
+        cli.main(
+            ["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y", "--batch", "again"]
+        )
+        == 2
+    )
     assert "was withdrawn as batch 'batch-1.csv'" in capsys.readouterr().err
-    assert cli.main(["ingest", str(store), str(tmp_path / "batch-1.csv"), "--group", "lab", "--value", "y",
-                     "--replace", "--quiet"]) == 0
+    assert (
+        cli.main(
+            [
+                "ingest",
+                str(store),
+                str(tmp_path / "batch-1.csv"),
+                "--group",
+                "lab",
+                "--value",
+                "y",
+                "--replace",
+                "--quiet",
+            ]
+        )
+        == 0
+    )
     with open_store(store) as st:
         statuses = [(b.name, b.status) for b in st.batches()]
-    assert statuses == [("batch-0.csv", "active"), ("batch-1.csv", "replaced"), ("batch-2.csv", "active"),
-                        ("batch-1.csv", "active")]
+    assert statuses == [
+        ("batch-0.csv", "active"),
+        ("batch-1.csv", "replaced"),
+        ("batch-2.csv", "active"),
+        ("batch-1.csv", "active"),
+    ]
     # the ledger as JSON
     capsys.readouterr()
     assert cli.main(["batches", str(store), "--json"]) == 0
@@ -268,8 +310,9 @@ def test_bad_dates_and_names_are_refused_before_the_store_changes(tmp_path, caps
     rng = np.random.default_rng(8)
     _write_batches(tmp_path, rng, k=1, offset=0.0, spread=1.0, rows=40, groups=3)
     store = new_store()
-    code = cli.main(["ingest", str(store), str(tmp_path / "batch-0.csv"), "--group", "lab", "--value", "y",
-                     "--at", "last tuesday"])
+    code = cli.main(
+        ["ingest", str(store), str(tmp_path / "batch-0.csv"), "--group", "lab", "--value", "y", "--at", "last tuesday"]
+    )
     assert code == 2 and "--at" in capsys.readouterr().err
     assert not store_exists(store)  # nothing was created for a refused ingest
     with pytest.raises(InputError, match="column 'nope'"):
@@ -283,8 +326,13 @@ def test_bad_refit_options_are_refused_before_any_work(tmp_path, capsys, new_sto
     store = new_store()
     jobs.ingest_file(store, tmp_path / "batch-0.csv", "lab", "y")
     before = _dump(store)
-    for extra, word in ((["--half-life", "0"], "--half-life"), (["--half-life", "soon"], "--half-life"),
-                        (["--decide-at", "0.3"], "--decide-at"), (["--as-of", "yesterday"], "--as-of"), ([], "--out")):
+    for extra, word in (
+        (["--half-life", "0"], "--half-life"),
+        (["--half-life", "soon"], "--half-life"),
+        (["--decide-at", "0.3"], "--decide-at"),
+        (["--as-of", "yesterday"], "--as-of"),
+        ([], "--out"),
+    ):
         capsys.readouterr()
         out = [] if word == "--out" else ["--out", str(tmp_path / "run")]
         code = cli.main(["refit", str(store), *out, *extra])

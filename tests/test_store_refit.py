@@ -4,6 +4,7 @@ the change report, forgetting, warm starts, and the run recorded only once its f
 The data are the embedded demo (36 invented casting suppliers), dealt into batches at random.
 Every test runs on both stores (SQLite and PostgreSQL; the `backend` fixture of conftest.py).
 """
+
 from __future__ import annotations
 
 import json
@@ -43,13 +44,33 @@ def world(tmp_path_factory, new_module_store):
     df.to_csv(d / "all.csv", index=False)
     store = new_module_store("castings")
     for k in range(4):
-        assert cli.main(["ingest", str(store), str(d / f"day-{k}.csv"), "--group", GROUP, "--value", VALUE,
-                         "--at", f"2024-06-0{k + 1}", "--quiet"]) == 0
-    code = cli.main(["refit", str(store), "--out", str(d / "run-1"), "--seed", "101", "--threshold", str(THRESHOLD),
-                     *RUN])
+        assert (
+            cli.main(
+                [
+                    "ingest",
+                    str(store),
+                    str(d / f"day-{k}.csv"),
+                    "--group",
+                    GROUP,
+                    "--value",
+                    VALUE,
+                    "--at",
+                    f"2024-06-0{k + 1}",
+                    "--quiet",
+                ]
+            )
+            == 0
+        )
+    code = cli.main(
+        ["refit", str(store), "--out", str(d / "run-1"), "--seed", "101", "--threshold", str(THRESHOLD), *RUN]
+    )
     assert code == 0
-    one = pooling.fit(read_table(d / "all.csv", GROUP, VALUE), pooling.Model(),
-                      pooling.Settings(chains=4, warmup=500, draws=1000, seed=202), progress=False)
+    one = pooling.fit(
+        read_table(d / "all.csv", GROUP, VALUE),
+        pooling.Model(),
+        pooling.Settings(chains=4, warmup=500, draws=1000, seed=202),
+        progress=False,
+    )
     return d, store, one
 
 
@@ -97,14 +118,34 @@ def test_withdrawn_batch_new_group_and_the_change_report(world):
     d, store, _ = world
     # a later delivery: 60 high bars from the small supplier S15, and a supplier never seen before
     rng = np.random.default_rng(7)
-    extra = pd.DataFrame({GROUP: ["S15"] * 60 + ["S99"] * 10,
-                          VALUE: np.concatenate([rng.normal(428.0, 3.0, 60), rng.normal(405.0, 8.0, 10)])})
+    extra = pd.DataFrame(
+        {
+            GROUP: ["S15"] * 60 + ["S99"] * 10,
+            VALUE: np.concatenate([rng.normal(428.0, 3.0, 60), rng.normal(405.0, 8.0, 10)]),
+        }
+    )
     extra.to_csv(d / "day-5.csv", index=False)
     assert cli.main(["withdraw", str(store), "day-2.csv", "--reason", "gauge out of calibration"]) == 0
-    assert cli.main(["ingest", str(store), str(d / "day-5.csv"), "--group", GROUP, "--value", VALUE,
-                     "--at", "2024-06-05", "--quiet"]) == 0
-    code = cli.main(["refit", str(store), "--out", str(d / "run-2"), "--seed", "303", "--threshold", str(THRESHOLD),
-                     *RUN])
+    assert (
+        cli.main(
+            [
+                "ingest",
+                str(store),
+                str(d / "day-5.csv"),
+                "--group",
+                GROUP,
+                "--value",
+                VALUE,
+                "--at",
+                "2024-06-05",
+                "--quiet",
+            ]
+        )
+        == 0
+    )
+    code = cli.main(
+        ["refit", str(store), "--out", str(d / "run-2"), "--seed", "303", "--threshold", str(THRESHOLD), *RUN]
+    )
     assert code == 0
     rep = json.loads((d / "run-2" / "changes.json").read_text())
     table = pd.read_csv(d / "run-2" / "changes.csv", keep_default_na=False, na_values=[""])
@@ -159,7 +200,7 @@ def test_forgetting_weights_reach_the_statistics(world):
     d, store, _ = world
     plan = jobs.plan_refit(store, half_life_days=2.0, as_of="2024-06-05", force=True)
     # ages 4, 3, 1 and 0 days for the active batches dated June 1, 2, 4 and 5
-    np.testing.assert_allclose(plan.weights, [2.0 ** -2, 2.0 ** -1.5, 2.0 ** -0.5, 1.0], rtol=1e-15)
+    np.testing.assert_allclose(plan.weights, [2.0**-2, 2.0**-1.5, 2.0**-0.5, 1.0], rtol=1e-15)
     files = ["day-0.csv", "day-1.csv", "day-3.csv", "day-5.csv"]
     parts = [pd.read_csv(d / f).assign(w=w) for f, w in zip(files, plan.weights)]
     df = pd.concat(parts)
@@ -177,8 +218,7 @@ def test_warm_start_carries_states_across_units_and_new_groups(world):
     # another problem: data shifted by 1000 and with one more group, so centre, scale and labels differ
     s = one.problem.stats
     labels = s.labels + ("NEW",)
-    st2 = pooling.GroupStats(labels, np.append(s.n, 5), np.append(s.mean, 400.0) + 1000.0,
-                             np.append(s.m2, 40.0) * 4.0)
+    st2 = pooling.GroupStats(labels, np.append(s.n, 5), np.append(s.mean, 400.0) + 1000.0, np.append(s.m2, 40.0) * 4.0)
     prob = pooling.build(st2, one.problem.model)
     assert (prob.center, prob.scale) != (one.problem.center, one.problem.scale)
     init = warm_start(fs, prob, chains=6)
@@ -189,12 +229,13 @@ def test_warm_start_carries_states_across_units_and_new_groups(world):
         # user units are preserved: theta and mu map through (x * k + c), variances through k^2
         np.testing.assert_allclose(start["theta"][:-1] * k1 + c1, np.asarray(old["theta"]) * k0 + c0, rtol=1e-13)
         assert start["theta"][-1] == prob.ybar[-1]
-        np.testing.assert_allclose(start["sigma2"][:-1] * k1 ** 2, np.asarray(old["sigma2"]) * k0 ** 2, rtol=1e-13)
+        np.testing.assert_allclose(start["sigma2"][:-1] * k1**2, np.asarray(old["sigma2"]) * k0**2, rtol=1e-13)
         from pooling import kernel
 
         assert start["state"][kernel.MU] * k1 + c1 == pytest.approx(old["state"][kernel.MU] * k0 + c0, rel=1e-13)
-        assert np.exp(start["state"][kernel.ETA]) * k1 == pytest.approx(np.exp(old["state"][kernel.ETA]) * k0,
-                                                                          rel=1e-12)
+        assert np.exp(start["state"][kernel.ETA]) * k1 == pytest.approx(
+            np.exp(old["state"][kernel.ETA]) * k0, rel=1e-12
+        )
     # another structure: nothing is carried over
     assert warm_start(fs, pooling.build(st2, pooling.Model(within="shared")), chains=4) is None
 
@@ -261,14 +302,38 @@ def test_history_of_runs_recorded_before_group_intervals():
     from pooling.report.history import render_history
     from pooling.store.base import BatchInfo, RunRecord
 
-    ledger = [BatchInfo(i, f"b{i}.csv", "0" * 64, f"b{i}.csv", 10, 3, f"2024-06-0{i}T00:00:00+00:00",
-                        f"2024-06-0{i}T01:00:00+00:00", "withdrawn" if i == 1 else "active") for i in (1, 2, 3)]
-    hyper = {"mu": {"mean": 10.0, "sd": 0.5, "q_lo": 9.0, "q_hi": 11.0},
-             "tau": {"mean": 1.0, "sd": 0.3, "q_lo": 0.5, "q_hi": 1.6}}
-    runs = [RunRecord(f"2024-06-0{k}T02:00:00+00:00", f"/runs/{k}", "x", ids, f"2024-06-0{k}T00:00:00+00:00", None,
-                      True, {"hyperparameters": hyper, "watch": {"threshold": 10.0, "level": 0.9}, "groups": 3},
-                      id=k)
-            for k, ids in ((1, (1, 2)), (2, (2, 3)))]
+    ledger = [
+        BatchInfo(
+            i,
+            f"b{i}.csv",
+            "0" * 64,
+            f"b{i}.csv",
+            10,
+            3,
+            f"2024-06-0{i}T00:00:00+00:00",
+            f"2024-06-0{i}T01:00:00+00:00",
+            "withdrawn" if i == 1 else "active",
+        )
+        for i in (1, 2, 3)
+    ]
+    hyper = {
+        "mu": {"mean": 10.0, "sd": 0.5, "q_lo": 9.0, "q_hi": 11.0},
+        "tau": {"mean": 1.0, "sd": 0.3, "q_lo": 0.5, "q_hi": 1.6},
+    }
+    runs = [
+        RunRecord(
+            f"2024-06-0{k}T02:00:00+00:00",
+            f"/runs/{k}",
+            "x",
+            ids,
+            f"2024-06-0{k}T00:00:00+00:00",
+            None,
+            True,
+            {"hyperparameters": hyper, "watch": {"threshold": 10.0, "level": 0.9}, "groups": 3},
+            id=k,
+        )
+        for k, ids in ((1, (1, 2)), (2, (2, 3)))
+    ]
     page = render_history("'old.store'", ledger, runs)
     assert "2 runs from 2024-06-01 to 2024-06-02" in page
     assert "None of the recorded runs kept its groups" in page

@@ -6,6 +6,7 @@ stated bound. The references are computed here, from the full-draw fit's arrays,
 (numpy.quantile's default linear method, numpy.argsort for ranks): not with the code under test.
 Both runs go through pooling.results, which must give every group's row for both.
 """
+
 from __future__ import annotations
 
 import csv
@@ -32,8 +33,9 @@ def _stats(J: int, seed: int, known: bool = False):
     if known:
         se = rng.uniform(0.5, 1.5, J)
         est = rng.normal(0.0, 1.0, J) + se * rng.normal(size=J)
-        return pooling.from_estimates(pd.DataFrame({"g": [f"k{j:02d}" for j in range(J)], "e": est, "s": se}),
-                                      "g", "e", "s")
+        return pooling.from_estimates(
+            pd.DataFrame({"g": [f"k{j:02d}" for j in range(J)], "e": est, "s": se}), "g", "e", "s"
+        )
     labels, values = [], []
     for j in range(J):
         n = int(rng.integers(2, 10))
@@ -85,17 +87,22 @@ def test_same_seed_same_draws(separate):
         np.testing.assert_array_equal(full.idata.posterior[name].values, part.idata.posterior[name].values)
     kept = part.kept
     assert 0 < len(kept) < 40 // 2  # most groups must go through the summaries, or the test checks little
-    np.testing.assert_array_equal(full.idata.posterior["theta"].values[:, :, kept], part.idata.posterior["theta"].values)
-    np.testing.assert_array_equal(full.idata.posterior["sigma"].values[:, :, kept], part.idata.posterior["sigma"].values)
-    np.testing.assert_array_equal(full.idata.posterior["lambda"].values[:, :, kept],
-                                  part.idata.posterior["lambda"].values)
+    np.testing.assert_array_equal(
+        full.idata.posterior["theta"].values[:, :, kept], part.idata.posterior["theta"].values
+    )
+    np.testing.assert_array_equal(
+        full.idata.posterior["sigma"].values[:, :, kept], part.idata.posterior["sigma"].values
+    )
+    np.testing.assert_array_equal(
+        full.idata.posterior["lambda"].values[:, :, kept], part.idata.posterior["lambda"].values
+    )
 
 
 def test_means_and_probabilities_match_full_draws(separate):
     full, part, o = separate
     t = part.table
     theta, sigma, mu = (_draws(full, x) for x in ("theta", "sigma", "mu"))
-    v = sigma ** 2 / full.problem.stats.n[None, :]
+    v = sigma**2 / full.problem.stats.n[None, :]
     w = v / (v + _t2(full))
     from scipy.special import ndtr
 
@@ -115,8 +122,16 @@ def test_means_and_probabilities_match_full_draws(separate):
     np.testing.assert_array_equal(t["p_mean_outside"], ((theta < o.lower) | (theta > o.upper)).mean(axis=0))
     # and the full run's own table, through the same results code, agrees
     ft = compute(full, o).table
-    for col in ("theta_mean", "shrink_weight", "p_above", "p_bias_over", "p_best", "p_top_k", "tail_weight",
-                "p_outlying"):
+    for col in (
+        "theta_mean",
+        "shrink_weight",
+        "p_above",
+        "p_bias_over",
+        "p_best",
+        "p_top_k",
+        "tail_weight",
+        "p_outlying",
+    ):
         np.testing.assert_allclose(t[col], ft[col], rtol=0, atol=1e-10, err_msg=col)
 
 
@@ -147,7 +162,7 @@ def test_interval_limits_within_their_stated_error(separate):
     full, part, o = separate
     t = part.table
     theta, sigma, mu = (_draws(full, x) for x in ("theta", "sigma", "mu"))
-    v = sigma ** 2 / full.problem.stats.n[None, :]
+    v = sigma**2 / full.problem.stats.n[None, :]
     from scipy.special import ndtr
 
     exact = {  # Source: numpy.quantile, default linear method (Hyndman and Fan type 7), on the same draws
@@ -226,10 +241,20 @@ def test_heavy_tail_weights_from_their_histogram(within):
 def test_same_results_whatever_the_threads():
     stats = _stats(25, 3)
     o = ReportOptions(level=LEVEL, threshold=100.0)
-    runs = [Part(pooling.fit(stats, pooling.Model(), pooling.Settings(chains=3, warmup=40, draws=80, max_draws=80,
-                                                                      seed=5, threads=th),
-                             summary=True, options=o, keep=KEEP), o)
-            for th in (1, 3)]
+    runs = [
+        Part(
+            pooling.fit(
+                stats,
+                pooling.Model(),
+                pooling.Settings(chains=3, warmup=40, draws=80, max_draws=80, seed=5, threads=th),
+                summary=True,
+                options=o,
+                keep=KEEP,
+            ),
+            o,
+        )
+        for th in (1, 3)
+    ]
     pd.testing.assert_frame_equal(runs[0].table, runs[1].table, check_exact=True)
     np.testing.assert_array_equal(runs[0].idata.posterior["theta"].values, runs[1].idata.posterior["theta"].values)
 
@@ -238,8 +263,16 @@ def test_histogram_quantiles_against_numpy():
     """The histogram quantile on its own, for a symmetric and a skewed sample, beyond the grid too."""
     rng = np.random.default_rng(9)
     J, S, B = 6, 3000, 32
-    x = np.column_stack([rng.normal(0, 1, S), rng.normal(5, 2, S), rng.lognormal(0, 1, S), rng.standard_t(2, S),
-                         rng.exponential(1, S), rng.uniform(-1, 1, S)])
+    x = np.column_stack(
+        [
+            rng.normal(0, 1, S),
+            rng.normal(5, 2, S),
+            rng.lognormal(0, 1, S),
+            rng.standard_t(2, S),
+            rng.exponential(1, S),
+            rng.uniform(-1, 1, S),
+        ]
+    )
     C = 2
     hist = np.zeros((C, 1, J, B + 2), dtype=np.uint16)
     ext = np.empty((C, 1, J, 2))
@@ -268,8 +301,9 @@ def test_automatic_switch():
     # 20,001 groups would switch it on; so does a draw budget above AUTO_BYTES
     assert summary.full_draw_bytes(summary.AUTO_GROUPS + 1, "shared", pooling.Settings()) < summary.AUTO_BYTES
     big_draws = pooling.Settings(draws=100_000)
-    assert summary.wants_summary(small, big_draws) == (summary.full_draw_bytes(10, "separate", big_draws)
-                                                        > summary.AUTO_BYTES)
+    assert summary.wants_summary(small, big_draws) == (
+        summary.full_draw_bytes(10, "separate", big_draws) > summary.AUTO_BYTES
+    )
     with pytest.raises(pooling.InputError):
         summary.wants_summary(small, None, "sometimes")
 
@@ -296,10 +330,33 @@ def cli_runs(tmp_path_factory):
             rows.append((label, 20.0 + 0.3 * j + rng.normal(0, 1)))
     data = d / "lines.csv"
     pd.DataFrame(rows, columns=["line", "width"]).to_csv(data, index=False)
-    common = ["fit", str(data), "--group", "line", "--value", "width", "--seed", "3", "--chains", "2", "--warmup", "40",
-              "--draws", "100", "--max-draws", "100", "--quiet", "--threshold", "24", "--upper-limit", "28"]
-    codes = {mode: main(common + ["--out", str(d / mode), "--summary", mode, "--keep-sample", "3",
-                                  "--keep", "line-05"]) for mode in ("on", "off")}
+    common = [
+        "fit",
+        str(data),
+        "--group",
+        "line",
+        "--value",
+        "width",
+        "--seed",
+        "3",
+        "--chains",
+        "2",
+        "--warmup",
+        "40",
+        "--draws",
+        "100",
+        "--max-draws",
+        "100",
+        "--quiet",
+        "--threshold",
+        "24",
+        "--upper-limit",
+        "28",
+    ]
+    codes = {
+        mode: main(common + ["--out", str(d / mode), "--summary", mode, "--keep-sample", "3", "--keep", "line-05"])
+        for mode in ("on", "off")
+    }
     return d, codes
 
 
@@ -329,16 +386,43 @@ def test_cli_run_folder(cli_runs):
 
 
 def test_cli_bad_options(run_cli, small_csv, tmp_path):
-    code, _, err = run_cli("fit", small_csv, "--group", "plant", "--value", "thickness", "--out", tmp_path / "a",
-                           "--summary", "on", "--warmup", "5", "--quiet")
+    code, _, err = run_cli(
+        "fit",
+        small_csv,
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--out",
+        tmp_path / "a",
+        "--summary",
+        "on",
+        "--warmup",
+        "5",
+        "--quiet",
+    )
     assert code == 2 and err.count("\n") == 1 and "warm-up" in err
-    code, _, err = run_cli("fit", small_csv, "--group", "plant", "--value", "thickness", "--out", tmp_path / "b",
-                           "--summary", "on", "--keep", "P9", "--quiet")
+    code, _, err = run_cli(
+        "fit",
+        small_csv,
+        "--group",
+        "plant",
+        "--value",
+        "thickness",
+        "--out",
+        tmp_path / "b",
+        "--summary",
+        "on",
+        "--keep",
+        "P9",
+        "--quiet",
+    )
     assert code == 2 and "P9" in err and err.count("\n") == 1
     assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
 
 
 # --- rank intervals for every group -------------------------------------------------------------
+
 
 def _exact_ranks(theta: np.ndarray, sign: float = 1.0) -> np.ndarray:
     # Source: ranks by numpy.argsort of each draw (stable), 1 = best

@@ -10,6 +10,7 @@
 Every function takes a `posterior.Fit`; group_table and interlab also take a summary-mode fit (every
 group's row); rank_probabilities needs every group's draws and refuses one.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -20,9 +21,22 @@ from .export import neutralise, records, safe_frame, write_csv
 from .interlab import algorithm_a, oneway_anova, random_effects_dl, z_scores, z_signal
 
 __all__ = [
-    "ReportOptions", "group_table", "rank_probabilities", "pairwise", "interlab", "render_html",
-    "oneway_anova", "algorithm_a", "z_scores", "z_signal", "random_effects_dl", "neutralise", "records",
-    "safe_frame", "write_csv", "split_compare",
+    "ReportOptions",
+    "group_table",
+    "rank_probabilities",
+    "pairwise",
+    "interlab",
+    "render_html",
+    "oneway_anova",
+    "algorithm_a",
+    "z_scores",
+    "z_signal",
+    "random_effects_dl",
+    "neutralise",
+    "records",
+    "safe_frame",
+    "write_csv",
+    "split_compare",
 ]
 
 
@@ -32,17 +46,40 @@ def _results(fit, **options):
     return compute(fit, ReportOptions(**options) if options else None)
 
 
-def group_table(fit, level: float = 0.95, k: int = 3, best: str = "highest", threshold: float | None = None,
-                lower: float | None = None, upper: float | None = None, allowed_bias: float | None = None,
-                assigned: float | None = None, sigma_pt: float | None = None) -> pd.DataFrame:
+def group_table(
+    fit,
+    level: float = 0.95,
+    k: int = 3,
+    best: str = "highest",
+    threshold: float | None = None,
+    lower: float | None = None,
+    upper: float | None = None,
+    allowed_bias: float | None = None,
+    assigned: float | None = None,
+    sigma_pt: float | None = None,
+) -> pd.DataFrame:
     """One row per group, every group (in the fit's order), with every per-group answer; see
     pooling.results.COLUMNS. Interval columns are named by the level (theta_low_95 at 0.95)."""
-    opts = dict(level=level, k=k, best=best, threshold=threshold, lower=lower, upper=upper,
-                allowed_bias=allowed_bias, assigned=assigned, sigma_pt=sigma_pt)
+    opts = dict(
+        level=level,
+        k=k,
+        best=best,
+        threshold=threshold,
+        lower=lower,
+        upper=upper,
+        allowed_bias=allowed_bias,
+        assigned=assigned,
+        sigma_pt=sigma_pt,
+    )
     if getattr(fit, "summary_mode", False):
         o = fit.options
-        opts.update({name: getattr(o, name) for name in ("level", "k", "best", "threshold", "lower", "upper",
-                                                        "allowed_bias") if opts[name] == ReportOptions.__dataclass_fields__[name].default})
+        opts.update(
+            {
+                name: getattr(o, name)
+                for name in ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias")
+                if opts[name] == ReportOptions.__dataclass_fields__[name].default
+            }
+        )
     return _results(fit, **opts).table
 
 
@@ -62,7 +99,9 @@ def rank_probabilities(fit, best: str = "highest", groups=None, max_rank: int | 
     labels = fit.labels
     rows = None if groups is None else resolve_groups(labels, groups)
     if rows is None and max_rank is None and J > 2000:
-        raise InputError(f"rank_probabilities: {J} groups would make a {J} x {J} table; pass groups=[...] or max_rank=...")
+        raise InputError(
+            f"rank_probabilities: {J} groups would make a {J} x {J} table; pass groups=[...] or max_rank=..."
+        )
     th = fit.raw.theta.reshape(-1, J)
     mat = rank_matrix(rank_draws(th, highest=best == "highest"), rows, max_rank)
     m = mat.shape[1] if max_rank is None or max_rank >= J else int(max_rank)
@@ -73,15 +112,28 @@ def rank_probabilities(fit, best: str = "highest", groups=None, max_rank: int | 
 
 def pairwise(fit, groups) -> pd.DataFrame:
     """P(theta_row > theta_column) for the listed groups (at most 400), from the draws (summary mode: kept groups)."""
-    res = _results(fit, compare=tuple(groups), **({} if not getattr(fit, "summary_mode", False) else
-                                                  {k: getattr(fit.options, k) for k in
-                                                   ("level", "k", "best", "threshold", "lower", "upper",
-                                                    "allowed_bias")}))
+    res = _results(
+        fit,
+        compare=tuple(groups),
+        **(
+            {}
+            if not getattr(fit, "summary_mode", False)
+            else {
+                k: getattr(fit.options, k)
+                for k in ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias")
+            }
+        ),
+    )
     return res.pairs
 
 
-def interlab(fit, level: float = 0.95, allowed_bias: float | None = None, assigned: float | None = None,
-             sigma_pt: float | None = None) -> dict:
+def interlab(
+    fit,
+    level: float = 0.95,
+    allowed_bias: float | None = None,
+    assigned: float | None = None,
+    sigma_pt: float | None = None,
+) -> dict:
     """Consensus value, tau, repeatability and reproducibility sd, ICC and limits, the classical comparators, and
     a per-lab table (bias with interval, P(|bias| > allowed), z, signal)."""
     res = _results(fit, level=level, allowed_bias=allowed_bias, assigned=assigned, sigma_pt=sigma_pt)

@@ -1,6 +1,7 @@
 """Tables out of the reporter: groups.csv (text cells neutralised against formula injection) and
 the reporter's keys in summary.json (labels exactly as they are; JSON is not a spreadsheet).
 """
+
 from __future__ import annotations
 
 import csv
@@ -33,8 +34,9 @@ def safe_frame(df: pd.DataFrame) -> pd.DataFrame:
 
 def write_csv(df: pd.DataFrame, path: Path) -> None:
     """UTF-8 CSV, text quoted, numbers at full precision (repr), missing values as empty cells."""
-    safe_frame(df).to_csv(path, index=False, quoting=csv.QUOTE_NONNUMERIC, lineterminator="\n",
-                          float_format=None, na_rep="")
+    safe_frame(df).to_csv(
+        path, index=False, quoting=csv.QUOTE_NONNUMERIC, lineterminator="\n", float_format=None, na_rep=""
+    )
 
 
 def _plain(x):

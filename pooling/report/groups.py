@@ -1,5 +1,6 @@
 """Per-draw helpers kept for Python users of earlier versions: the fraction of a group's future measurements
 outside specification limits. Every per-group answer is computed in pooling.answers and pooling.results."""
+
 from __future__ import annotations
 
 import numpy as np

@@ -7,6 +7,7 @@ probabilities), never from draws, so it costs the same for one run or a thousand
 --out FILE` writes it for the recorded runs; `pooling refit` writes one into each run folder, with that run
 as its last. Batches added or withdrawn between runs come from the runs' active batch ids and the ledger.
 """
+
 from __future__ import annotations
 
 import math
@@ -49,8 +50,10 @@ class _Runs:
         R = len(self.runs)
         by_id = {b.id: b for b in ledger}
         dates = [str(r.reference_at or r.created_at)[:10] for r in self.runs]
-        self.labels = [d if dates.count(d) == 1 else f"{d} #{r.id if r.id is not None else 'new'}"
-                       for d, r in zip(dates, self.runs)]
+        self.labels = [
+            d if dates.count(d) == 1 else f"{d} #{r.id if r.id is not None else 'new'}"
+            for d, r in zip(dates, self.runs)
+        ]
         self.added = np.zeros(R)
         self.withdrawn = np.zeros(R)
         self.events: list[tuple[list[str], list[str]]] = []
@@ -60,9 +63,12 @@ class _Runs:
             add = sorted(now - prev)
             gone = sorted(prev - now) if i else []
             self.added[i], self.withdrawn[i] = len(add), len(gone)
-            self.events.append(([by_id[b].name if b in by_id else f"batch {b}" for b in add],
-                                [f"{by_id[b].name} ({by_id[b].status})" if b in by_id else f"batch {b}"
-                                 for b in gone]))
+            self.events.append(
+                (
+                    [by_id[b].name if b in by_id else f"batch {b}" for b in add],
+                    [f"{by_id[b].name} ({by_id[b].status})" if b in by_id else f"batch {b}" for b in gone],
+                )
+            )
             prev = now
         self.hyper = {}
         for name in ("mu", "tau"):
@@ -76,8 +82,9 @@ class _Runs:
                 order.setdefault(lab, len(order))
         G = len(order)
         self.group_labels = list(order)
-        self.series = {k: np.full((G, R), np.nan) for k in ("mean", "low", "high", "p_above", "p_mean_outside",
-                                                           "rank_mean")}
+        self.series = {
+            k: np.full((G, R), np.nan) for k in ("mean", "low", "high", "p_above", "p_mean_outside", "rank_mean")
+        }
         for i in self.with_groups:
             gi = self.runs[i].summary["group_intervals"]
             rows = np.array([order[lab] for lab in gi["labels"]], dtype=np.int64)
@@ -91,8 +98,12 @@ class _Runs:
         key, yes, no = ("p_above", "above", "below") if kind == "threshold" else ("p_mean_outside", "outside", "inside")
         out = []
         for g in range(len(self.group_labels)):
-            out.append([_side(self.series[key][g, i], float(self.watch[i].get("decide_at", 0.95)), yes, no)
-                        for i in range(len(self.runs))])
+            out.append(
+                [
+                    _side(self.series[key][g, i], float(self.watch[i].get("decide_at", 0.95)), yes, no)
+                    for i in range(len(self.runs))
+                ]
+            )
         return out
 
     def watched(self, i: int, kind: str):
@@ -124,21 +135,31 @@ def render_history(source: str, ledger, runs, created: str | None = None) -> str
     h = _Runs(ledger, runs)
     R = len(h.runs)
     title = f"History of the store {source}"
-    parts = [("<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\">"
-              "<meta name=\"viewport\" content=\"width=device-width,initial-scale=1\">"
-              f"<title>{esc(title)}</title><style>{CSS}{HISTORY_CSS}</style></head><body>")]
+    parts = [
+        (
+            '<!DOCTYPE html><html lang="en"><head><meta charset="utf-8">'
+            '<meta name="viewport" content="width=device-width,initial-scale=1">'
+            f"<title>{esc(title)}</title><style>{CSS}{HISTORY_CSS}</style></head><body>"
+        )
+    ]
     active = sum(b.status == "active" for b in ledger)
     span = f"from {esc(h.labels[0])} to {esc(h.labels[-1])}" if R else "none yet"
-    parts.append(f'<header class="top"><div class="wrap"><h1>{esc(title)}</h1><div class="sub">'
-                 f"{plural(R, 'run')} {span} · {plural(len(ledger), 'batch', 'batches')} in the ledger, "
-                 f"{whole(active)} active · drawn from the runs' recorded summaries · made {esc(created)} by pooling "
-                 f"{esc(__version__)}</div></div></header>")
-    parts.append('<nav class="toc"><div class="wrap"><a href="#latest">Where things stand</a>'
-                 '<a href="#pooled">Pooled figures over the runs</a><a href="#each">Each group over the runs</a>'
-                 '<a href="#runs">The runs</a><a href="#ledger">The batches</a></div></nav><main class="wrap">')
+    parts.append(
+        f'<header class="top"><div class="wrap"><h1>{esc(title)}</h1><div class="sub">'
+        f"{plural(R, 'run')} {span} · {plural(len(ledger), 'batch', 'batches')} in the ledger, "
+        f"{whole(active)} active · drawn from the runs' recorded summaries · made {esc(created)} by pooling "
+        f"{esc(__version__)}</div></div></header>"
+    )
+    parts.append(
+        '<nav class="toc"><div class="wrap"><a href="#latest">Where things stand</a>'
+        '<a href="#pooled">Pooled figures over the runs</a><a href="#each">Each group over the runs</a>'
+        '<a href="#runs">The runs</a><a href="#ledger">The batches</a></div></nav><main class="wrap">'
+    )
     if not R:
-        parts.append('<section id="latest"><h2>Where things stand</h2><p>The store has no recorded run yet: '
-                     "<code>pooling refit</code> records one.</p></section></main></body></html>")
+        parts.append(
+            '<section id="latest"><h2>Where things stand</h2><p>The store has no recorded run yet: '
+            "<code>pooling refit</code> records one.</p></section></main></body></html>"
+        )
         return "".join(parts)
     last = h.runs[-1]
     lw = h.watch[-1]
@@ -151,15 +172,42 @@ def render_history(source: str, ledger, runs, created: str | None = None) -> str
     parts.append(_pooled_over_runs(h, v, level))
     parts.append(_each_group(h, level))
     parts.append(_runs_table(h))
-    rows = [[esc(b.name), esc(str(b.dated_at)[:16].replace("T", " ")), _tag_status(b.status),
-             esc(str(b.changed_at or "")[:16].replace("T", " ")), esc(b.note or ""), whole(b.rows), whole(b.groups)]
-            for b in ledger]
-    parts.append('<section id="ledger"><h2>The batches</h2>' + _fold(
-        f"Every batch in the ledger ({whole(len(ledger))})", html_table(
-            [("batch", False), ("dated", False), ("status", False), ("changed", False), ("note", False),
-             ("measurements", True), ("groups", True)], rows), len(rows)) + "</section>")
-    parts.append(f"<footer>Made by pooling {esc(__version__)} on {esc(created)} from the store's recorded runs."
-                 "</footer></main></body></html>")
+    rows = [
+        [
+            esc(b.name),
+            esc(str(b.dated_at)[:16].replace("T", " ")),
+            _tag_status(b.status),
+            esc(str(b.changed_at or "")[:16].replace("T", " ")),
+            esc(b.note or ""),
+            whole(b.rows),
+            whole(b.groups),
+        ]
+        for b in ledger
+    ]
+    parts.append(
+        '<section id="ledger"><h2>The batches</h2>'
+        + _fold(
+            f"Every batch in the ledger ({whole(len(ledger))})",
+            html_table(
+                [
+                    ("batch", False),
+                    ("dated", False),
+                    ("status", False),
+                    ("changed", False),
+                    ("note", False),
+                    ("measurements", True),
+                    ("groups", True),
+                ],
+                rows,
+            ),
+            len(rows),
+        )
+        + "</section>"
+    )
+    parts.append(
+        f"<footer>Made by pooling {esc(__version__)} on {esc(created)} from the store's recorded runs."
+        "</footer></main></body></html>"
+    )
     return "".join(parts)
 
 
@@ -173,8 +221,10 @@ def _latest(h: _Runs, v, lvl: str) -> str:
     last = h.runs[-1]
     out = ['<section id="latest" class="verdict"><h2>Where things stand</h2>']
     if not last.targets_met:
-        out.append('<div class="alarm"><strong>The latest run missed its diagnostics targets</strong>: look at its '
-                   "report before using its numbers.</div>")
+        out.append(
+            '<div class="alarm"><strong>The latest run missed its diagnostics targets</strong>: look at its '
+            "report before using its numbers.</div>"
+        )
     bits = []
     for name, (mean, lo, hi) in h.hyper.items():
         if not np.isfinite(mean[-1]):
@@ -203,19 +253,29 @@ def _latest(h: _Runs, v, lvl: str) -> str:
         line = f"<li><strong>Against {what} ({esc(val)})</strong>: {tally} now. "
         if ch:
             shown = ", ".join(
-                f"{esc(label(h.group_labels[g]))} <span class=\"p\">{esc(moves[-1][1])} → {esc(moves[-1][2])} at "
-                f"{esc(h.labels[moves[-1][0]])}" + (f", {len(moves)} changes in all" if len(moves) > 1 else "")
-                + "</span>" for g, moves in ch[:10])
-            line += (f"{plural(len(ch), 'group')} changed side over the runs (the latest change shown): {shown}"
-                     + (f" and {whole(len(ch) - 10)} more" if len(ch) > 10 else "") + ".")
+                f'{esc(label(h.group_labels[g]))} <span class="p">{esc(moves[-1][1])} → {esc(moves[-1][2])} at '
+                f"{esc(h.labels[moves[-1][0]])}"
+                + (f", {len(moves)} changes in all" if len(moves) > 1 else "")
+                + "</span>"
+                for g, moves in ch[:10]
+            )
+            line += (
+                f"{plural(len(ch), 'group')} changed side over the runs (the latest change shown): {shown}"
+                + (f" and {whole(len(ch) - 10)} more" if len(ch) > 10 else "")
+                + "."
+            )
         else:
             line += "No group changed side over the runs."
         items.append(line + "</li>")
     if items:
-        out.append(f'<div class="verdict-grid"><div><ul>{"".join(items)}</ul></div>'
-                   f'<aside class="caution"><strong>What these decisions are</strong>{esc(CAUTION)}</aside></div>')
-    out.append(f'<p class="note">{plural(G, "group")} over {plural(R, "run")}; each run\'s own report has every '
-               "number of that night.</p></section>")
+        out.append(
+            f'<div class="verdict-grid"><div><ul>{"".join(items)}</ul></div>'
+            f'<aside class="caution"><strong>What these decisions are</strong>{esc(CAUTION)}</aside></div>'
+        )
+    out.append(
+        f'<p class="note">{plural(G, "group")} over {plural(R, "run")}; each run\'s own report has every '
+        "number of that night.</p></section>"
+    )
     return "".join(out)
 
 
@@ -225,20 +285,28 @@ def _pooled_over_runs(h: _Runs, v, level: float) -> str:
     for i, (_added, gone) in enumerate(h.events):
         if i and gone:
             ev.append(f"{esc(h.labels[i])}: withdrawn or replaced " + ", ".join(esc(x) for x in gone))
-    txt = (f"Each run's posterior mean (dot) and central {level_label(level)} interval (bar) of mu and tau. The "
-           "strip below counts the batches each run added (grey, up) and those withdrawn or replaced since the run "
-           "before (red, down).")
-    return ('<section id="pooled"><h2>Pooled figures over the runs</h2>' + f"<p>{txt}</p>"
-            + f'<div class="fig">{svg}</div>'
-            + (f'<p class="note">{"; ".join(ev)}.</p>' if ev else "") + "</section>")
+    txt = (
+        f"Each run's posterior mean (dot) and central {level_label(level)} interval (bar) of mu and tau. The "
+        "strip below counts the batches each run added (grey, up) and those withdrawn or replaced since the run "
+        "before (red, down)."
+    )
+    return (
+        '<section id="pooled"><h2>Pooled figures over the runs</h2>'
+        + f"<p>{txt}</p>"
+        + f'<div class="fig">{svg}</div>'
+        + (f'<p class="note">{"; ".join(ev)}.</p>' if ev else "")
+        + "</section>"
+    )
 
 
 def _each_group(h: _Runs, level: float) -> str:
     R = len(h.runs)
     G = len(h.group_labels)
     if not G:
-        return ('<section id="each"><h2>Each group over the runs</h2><p>None of the recorded runs kept its groups\' '
-                "intervals (runs recorded by an earlier version of pooling do not); the next refit will.</p></section>")
+        return (
+            '<section id="each"><h2>Each group over the runs</h2><p>None of the recorded runs kept its groups\' '
+            "intervals (runs recorded by an earlier version of pooling do not); the next refit will.</p></section>"
+        )
     mean, lo, hi = h.series["mean"], h.series["low"], h.series["high"]
     last = h.watch[-1]
     changed = {g for kind in ("threshold", "limits") for g, _ in _changes_of(h, kind)}
@@ -250,8 +318,10 @@ def _each_group(h: _Runs, level: float) -> str:
         move = np.nan_to_num(move, nan=-1.0)
         key = np.where([g in changed for g in range(G)], np.inf, move)
         chosen = np.sort(np.argsort(-key, kind="stable")[:MAX_PANELS])
-        note = (f" Of the {whole(G)} groups, the {MAX_PANELS} shown are those whose decision changed, then those whose "
-                "posterior mean moved most against their interval's width.")
+        note = (
+            f" Of the {whole(G)} groups, the {MAX_PANELS} shown are those whose decision changed, then those whose "
+            "posterior mean moved most against their interval's width."
+        )
     rank = h.series["rank_mean"][:, -1]
     rank = np.where(np.isfinite(rank), rank, np.inf)
     chosen = chosen[np.argsort(rank[chosen], kind="stable")]
@@ -264,18 +334,35 @@ def _each_group(h: _Runs, level: float) -> str:
         lo_g, hi_g = lo[g], hi[g]
         ok = np.isfinite(lo_g) & np.isfinite(hi_g)
         a, b = (float(np.min(lo_g[ok])), float(np.max(hi_g[ok]))) if ok.any() else (0.0, 1.0)
-        figs.append('<div class="fig">' + plots.history_group(
-            h.group_labels[g], h.labels, mean[g], lo_g, hi_g, withdrawn_at, _near(thr, a, b),
-            tuple(_near(x, a, b) for x in lims)) + "</div>")
+        figs.append(
+            '<div class="fig">'
+            + plots.history_group(
+                h.group_labels[g],
+                h.labels,
+                mean[g],
+                lo_g,
+                hi_g,
+                withdrawn_at,
+                _near(thr, a, b),
+                tuple(_near(x, a, b) for x in lims),
+            )
+            + "</div>"
+        )
     missing = R - len(h.with_groups)
-    gaps = (f" {plural(missing, 'run')} recorded by an earlier version of pooling kept no group intervals; they are "
-            "empty in these pictures." if missing else "")
-    return ('<section id="each"><h2>Each group over the runs</h2>'
-            f"<p>For each group, best first by its latest mean rank: its posterior mean (dot) and {level_label(level)} "
-            "interval (bar) at every run in which it had data. A red dashed line marks a run at which batches were "
-            "withdrawn; a dotted line is the threshold, a solid one a specification limit (when near the group). "
-            f"Each picture has its own vertical scale.{note}{gaps}</p>"
-            f'<div class="grid">{"".join(figs)}</div></section>')
+    gaps = (
+        f" {plural(missing, 'run')} recorded by an earlier version of pooling kept no group intervals; they are "
+        "empty in these pictures."
+        if missing
+        else ""
+    )
+    return (
+        '<section id="each"><h2>Each group over the runs</h2>'
+        f"<p>For each group, best first by its latest mean rank: its posterior mean (dot) and {level_label(level)} "
+        "interval (bar) at every run in which it had data. A red dashed line marks a run at which batches were "
+        "withdrawn; a dotted line is the threshold, a solid one a specification limit (when near the group). "
+        f"Each picture has its own vertical scale.{note}{gaps}</p>"
+        f'<div class="grid">{"".join(figs)}</div></section>'
+    )
 
 
 def _near(x, a: float, b: float):
@@ -289,18 +376,40 @@ def _runs_table(h: _Runs) -> str:
     for i, r in enumerate(h.runs):
         add, gone = h.events[i]
         hl = r.half_life_days
-        rows.append([esc("this run" if r.id is None else r.id), esc(h.labels[i]),
-                     esc(str(r.created_at)[:16].replace("T", " ")), whole(len(r.batch_ids)),
-                     esc(", ".join(add[:4]) + (f" and {len(add) - 4} more" if len(add) > 4 else "")) if add else "",
-                     esc(", ".join(gone)) if gone else "", whole(r.summary.get("groups", float("nan"))),
-                     "–" if hl is None else f"{hl:g}",
-                     '<span class="tag good">met</span>' if r.targets_met else '<span class="tag bad">missed</span>',
-                     f'<span class="mono">{esc(r.folder)}</span>'])
-    table = html_table([("run", False), ("as of", False), ("made", False), ("active batches", True), ("added", False),
-                    ("withdrawn", False), ("groups", True), ("half-life (days)", True), ("targets", False),
-                    ("folder", False)], rows)
-    return ('<section id="runs"><h2>The runs</h2>'
-            + _fold(f"Every recorded run ({whole(len(rows))})", table, len(rows)) + "</section>")
+        rows.append(
+            [
+                esc("this run" if r.id is None else r.id),
+                esc(h.labels[i]),
+                esc(str(r.created_at)[:16].replace("T", " ")),
+                whole(len(r.batch_ids)),
+                esc(", ".join(add[:4]) + (f" and {len(add) - 4} more" if len(add) > 4 else "")) if add else "",
+                esc(", ".join(gone)) if gone else "",
+                whole(r.summary.get("groups", float("nan"))),
+                "–" if hl is None else f"{hl:g}",
+                '<span class="tag good">met</span>' if r.targets_met else '<span class="tag bad">missed</span>',
+                f'<span class="mono">{esc(r.folder)}</span>',
+            ]
+        )
+    table = html_table(
+        [
+            ("run", False),
+            ("as of", False),
+            ("made", False),
+            ("active batches", True),
+            ("added", False),
+            ("withdrawn", False),
+            ("groups", True),
+            ("half-life (days)", True),
+            ("targets", False),
+            ("folder", False),
+        ],
+        rows,
+    )
+    return (
+        '<section id="runs"><h2>The runs</h2>'
+        + _fold(f"Every recorded run ({whole(len(rows))})", table, len(rows))
+        + "</section>"
+    )
 
 
 def write_history(path, source: str, ledger, runs) -> None:
@@ -332,4 +441,3 @@ def _remove(tmp) -> None:
             os.unlink(tmp)
         except OSError:
             pass
-

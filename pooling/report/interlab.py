@@ -6,6 +6,7 @@ ISO 5725 terms used here: repeatability sd s_r (within a lab), between-lab sd s_
 sd s_R = sqrt(s_L^2 + s_r^2); the repeatability and reproducibility limits are 2.8 s_r and 2.8 s_R
 (ISO 5725-6; 2.8 ≈ 1.96 * sqrt(2), the 95 % limit for the difference of two results).
 """
+
 from __future__ import annotations
 
 import math
@@ -21,6 +22,7 @@ Z_WARNING, Z_ACTION = 2.0, 3.0  # ISO 13528:2015, 9.4.1
 
 # ---------------------------------------------------------------------------------------------
 # classical comparators
+
 
 def random_effects_dl(estimate, std_error) -> dict | None:
     """The classical random-effects comparator for estimates with standard errors (the known
@@ -55,10 +57,19 @@ def random_effects_dl(estimate, std_error) -> dict | None:
     if not (math.isfinite(q) and math.isfinite(sw) and math.isfinite(raw_tau2) and 0.0 < sws < math.inf):
         return None
     mu = float((ws * y).sum() / sws)
-    return {"consensus": c + u * mu, "consensus_se": u / math.sqrt(sws), "between_sd": u * math.sqrt(tau2),
-            "truncated": bool(raw_tau2 < 0), "fixed_effect": c + u * mean_w, "fixed_effect_se": u / math.sqrt(sw),
-            "q": q, "df": df, "p_value": float(chdtrc(df, q)), "i2": max(0.0, (q - df) / q) if q > 0 else 0.0,
-            "k": k}
+    return {
+        "consensus": c + u * mu,
+        "consensus_se": u / math.sqrt(sws),
+        "between_sd": u * math.sqrt(tau2),
+        "truncated": bool(raw_tau2 < 0),
+        "fixed_effect": c + u * mean_w,
+        "fixed_effect_se": u / math.sqrt(sw),
+        "q": q,
+        "df": df,
+        "p_value": float(chdtrc(df, q)),
+        "i2": max(0.0, (q - df) / q) if q > 0 else 0.0,
+        "k": k,
+    }
 
 
 def oneway_anova(n, mean, m2, mean_lo=None) -> dict | None:
@@ -89,10 +100,22 @@ def oneway_anova(n, mean, m2, mean_lo=None) -> dict | None:
     p = float(fdtrc(dfb, dfw, f)) if math.isfinite(f) else 0.0  # P(F > f), F(dfb, dfw) tail
     s_l2 = max(0.0, (msb - msw) / n0)
     return {
-        "df_between": dfb, "df_within": dfw, "ss_between": ssb, "ss_within": ssw,
-        "ms_between": msb, "ms_within": msw, "f": f, "p_value": p, "n0": n0, "grand_mean": grand + c,
-        "between_var": s_l2, "within_var": msw, "between_sd": math.sqrt(s_l2), "repeatability_sd": math.sqrt(msw),
-        "reproducibility_sd": math.sqrt(s_l2 + msw), "icc": s_l2 / (s_l2 + msw) if s_l2 + msw > 0 else math.nan,
+        "df_between": dfb,
+        "df_within": dfw,
+        "ss_between": ssb,
+        "ss_within": ssw,
+        "ms_between": msb,
+        "ms_within": msw,
+        "f": f,
+        "p_value": p,
+        "n0": n0,
+        "grand_mean": grand + c,
+        "between_var": s_l2,
+        "within_var": msw,
+        "between_sd": math.sqrt(s_l2),
+        "repeatability_sd": math.sqrt(msw),
+        "reproducibility_sd": math.sqrt(s_l2 + msw),
+        "icc": s_l2 / (s_l2 + msw) if s_l2 + msw > 0 else math.nan,
         "truncated": (msb - msw) < 0,
     }
 
@@ -137,7 +160,8 @@ def z_scores(x, assigned: float | None = None, sigma_pt: float | None = None):
     x_pt = rx if assigned is None else float(assigned)
     s_pt = rs if sigma_pt is None else float(sigma_pt)
     basis = {
-        "assigned": x_pt, "sigma_pt": s_pt,
+        "assigned": x_pt,
+        "sigma_pt": s_pt,
         "assigned_from": "given" if assigned is not None else "robust mean of the group means (ISO 13528 Algorithm A)",
         "sigma_pt_from": "given" if sigma_pt is not None else "robust sd of the group means (ISO 13528 Algorithm A)",
     }

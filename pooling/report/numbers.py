@@ -9,6 +9,7 @@
   (at least 1e12, or below 1e-5 and not zero);
 * counts carry thousands separators; down-weighted counts (a store's half-life) one decimal.
 """
+
 from __future__ import annotations
 
 import math

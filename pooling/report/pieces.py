@@ -1,5 +1,6 @@
 """Small HTML pieces the report's sections share (report/page.py, report/predictors.py): escaping, tables,
 cards and intervals. Cells handed to them are already escaped HTML."""
+
 from __future__ import annotations
 
 import html
@@ -15,7 +16,9 @@ def cell(c, num: bool) -> str:
     return f'<td class="n">{c}</td>' if num else f"<td>{c}</td>"
 
 
-def html_table(head: list[tuple[str, bool]], rows: list[list[str]], gap_after: int | None = None, hidden: int = 0) -> str:
+def html_table(
+    head: list[tuple[str, bool]], rows: list[list[str]], gap_after: int | None = None, hidden: int = 0
+) -> str:
     """head: (title, numeric) pairs; cells are already escaped HTML. A gap row after row `gap_after` says how
     many rows are left out (they are in groups.csv)."""
     out = ["<table><thead><tr>"]
@@ -24,8 +27,9 @@ def html_table(head: list[tuple[str, bool]], rows: list[list[str]], gap_after: i
     for i, r in enumerate(rows):
         out.append("<tr>" + "".join(cell(c, num) for c, (_, num) in zip(r, head)) + "</tr>")
         if gap_after is not None and i == gap_after and hidden:
-            out.append(f'<tr class="gap"><td colspan="{len(head)}">… {whole(hidden)} more groups, in groups.csv …'
-                       "</td></tr>")
+            out.append(
+                f'<tr class="gap"><td colspan="{len(head)}">… {whole(hidden)} more groups, in groups.csv …</td></tr>'
+            )
     out.append("</tbody></table>")
     return "".join(out)
 

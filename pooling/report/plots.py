@@ -4,6 +4,7 @@ to be embedded inline. Labels from the data are escaped by svg.text and clipped 
 Above MANY groups the per-group pictures switch to forms that scale (a scatter, a band); they stay
 vector drawings, about 40 bytes a point, so a report for 10,000 groups stays a few megabytes.
 """
+
 from __future__ import annotations
 
 import re
@@ -17,18 +18,18 @@ MANY = 60
 INK = "#1f2a36"
 MUTED = "#7b8591"
 GRID = "#e3e6ea"
-POST = "#1f6f78"      # posterior quantities
-RAW = "#a7763c"       # the groups' own means
-POOL = "#5a3d8a"      # mu, the pooled mean
-LIMIT = "#b23a2a"     # specification limits and thresholds
+POST = "#1f6f78"  # posterior quantities
+RAW = "#a7763c"  # the groups' own means
+POOL = "#5a3d8a"  # mu, the pooled mean
+LIMIT = "#b23a2a"  # specification limits and thresholds
 CHAINS = ["#1f6f78", "#c0672a", "#5a3d8a", "#6b8e23", "#b23a2a", "#3b6ea8", "#8c6d1f", "#555f6b"]
 HEAT_STOPS = ["#fbfaf7", "#cfe4e1", "#5fa3a3", "#1f6f78", "#132f3a"]  # low to high, evenly spaced on 0..1
 
-WIDE = 960.0   # px; the report's column is about 1,000 px, so pictures show near their drawn size
-ROW = 18.0     # px per group in one-row-per-group pictures
+WIDE = 960.0  # px; the report's column is about 1,000 px, so pictures show near their drawn size
+ROW = 18.0  # px per group in one-row-per-group pictures
 WHITE = "#ffffff"
 
-_STOP_RGB = np.array([[int(c[i:i + 2], 16) for i in (1, 3, 5)] for c in HEAT_STOPS], dtype=float)
+_STOP_RGB = np.array([[int(c[i : i + 2], 16) for i in (1, 3, 5)] for c in HEAT_STOPS], dtype=float)
 
 
 def plain(label: str, width: int = 28) -> str:
@@ -74,6 +75,7 @@ def _marker_area(n: np.ndarray, most: float) -> np.ndarray:
 
 # ---------------------------------------------------------------------------------------------
 
+
 def _outlying(table) -> np.ndarray:
     return table["outlying"].to_numpy(dtype=bool) if "outlying" in table else np.zeros(len(table), dtype=bool)
 
@@ -84,7 +86,7 @@ def marker_size(table) -> tuple[np.ndarray, str]:
     if "std_error" in table:
         se = table["std_error"].to_numpy(dtype=float)
         with np.errstate(divide="ignore"):
-            return 1.0 / se ** 2, "area ∝ 1/se²"
+            return 1.0 / se**2, "area ∝ 1/se²"
     return table["n"].to_numpy(dtype=float), "area ∝ n"
 
 
@@ -101,34 +103,77 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
         area = _marker_area(size[order], 200.0)
         h = _rows_height(J, 22.0 if title else 0.0)
         c = Canvas(WIDE, h, "shrinkage", "Each group's own mean and its posterior mean")
-        p = c.panel(0, 0, WIDE, h, title=title, xlabel="theta", yticks=(y, _labels(t["group"])), ygrid=False,
-                    ylim=(-0.7, J - 0.3))
+        p = c.panel(
+            0,
+            0,
+            WIDE,
+            h,
+            title=title,
+            xlabel="theta",
+            yticks=(y, _labels(t["group"])),
+            ygrid=False,
+            ylim=(-0.7, J - 0.3),
+        )
         p.vline(mu_mean, POOL, 1.5, "dashed", key="pooled mean (mu)")
         moved = raw != post
         post_area = 18.0
-        p.arrows(raw[moved], y[moved], post[moved], y[moved], MUTED, 1.1, head=6.0,
-                 shrink_start=np.sqrt(area[moved] / np.pi) + 1.0, shrink_end=np.sqrt(post_area / np.pi) + 0.5)
-        p.points(raw, y, area, fill=WHITE, stroke=RAW, stroke_width=1.6, key=f"group's own mean ({size_key})",
-                 role="own-mean")
+        p.arrows(
+            raw[moved],
+            y[moved],
+            post[moved],
+            y[moved],
+            MUTED,
+            1.1,
+            head=6.0,
+            shrink_start=np.sqrt(area[moved] / np.pi) + 1.0,
+            shrink_end=np.sqrt(post_area / np.pi) + 0.5,
+        )
+        p.points(
+            raw,
+            y,
+            area,
+            fill=WHITE,
+            stroke=RAW,
+            stroke_width=1.6,
+            key=f"group's own mean ({size_key})",
+            role="own-mean",
+        )
         p.points(post, y, post_area, fill=POST, key="posterior mean", role="posterior-mean")
         out = _outlying(t)
         if out.any():
-            p.points(post[out], y[out], 150.0, fill="none", stroke=LIMIT, stroke_width=2.0,
-                     key="flagged outlying", role="outlying")
+            p.points(
+                post[out],
+                y[out],
+                150.0,
+                fill="none",
+                stroke=LIMIT,
+                stroke_width=2.0,
+                key="flagged outlying",
+                role="outlying",
+            )
     else:
         raw, post = table["raw_mean"].to_numpy(dtype=float), table["theta_mean"].to_numpy(dtype=float)
         area = _marker_area(size, 40.0)
         c = Canvas(720, 580 + (22 if title else 0), "shrinkage", "Posterior mean against own mean, every group")
-        p = c.panel(0, 0, 720, 580 + (22 if title else 0), title=title, xlabel="group's own mean",
-                    ylabel="posterior mean")
+        p = c.panel(
+            0, 0, 720, 580 + (22 if title else 0), title=title, xlabel="group's own mean", ylabel="posterior mean"
+        )
         lo, hi = np.nanmin(raw), np.nanmax(raw)
         p.line([lo, hi], [lo, hi], MUTED, 1.2, key="no pooling (posterior = own mean)")
         p.hline(mu_mean, POOL, 1.5, "dashed", key="complete pooling (mu)")
         p.points(raw, post, area, fill=POST, opacity=0.45, key=f"group ({size_key})", role="posterior-mean")
         out = _outlying(table)
         if out.any():
-            p.points(raw[out], post[out], 90.0, fill="none", stroke=LIMIT, stroke_width=1.6,
-                     key="flagged outlying", role="outlying")
+            p.points(
+                raw[out],
+                post[out],
+                90.0,
+                fill="none",
+                stroke=LIMIT,
+                stroke_width=1.6,
+                key="flagged outlying",
+                role="outlying",
+            )
     return c.svg()
 
 
@@ -143,13 +188,13 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
     if J <= MANY:  # one row per group, values across
         h = _rows_height(J)
         c = Canvas(WIDE, h, "intervals", f"{level:.0%} credible intervals of theta, by group")
-        p = c.panel(0, 0, WIDE, h, xlabel="theta", yticks=(np.arange(J), _labels(t["group"])), ygrid=False,
-                    ylim=(-0.7, J - 0.3))
+        p = c.panel(
+            0, 0, WIDE, h, xlabel="theta", yticks=(np.arange(J), _labels(t["group"])), ygrid=False, ylim=(-0.7, J - 0.3)
+        )
         y = np.arange(J, dtype=float)
         p.hsegments(y, lo, hi, POST, 3.4, 0.5, key=f"{level:.0%} credible interval", role="interval")
         p.points(m, y, 18.0, fill=POST, key="posterior mean", role="posterior-mean")
-        p.vsegments(t["raw_mean"].to_numpy(dtype=float), y - 0.3, y + 0.3, RAW, 1.5, key="own mean",
-                    role="own-mean")
+        p.vsegments(t["raw_mean"].to_numpy(dtype=float), y - 0.3, y + 0.3, RAW, 1.5, key="own mean", role="own-mean")
         if out.any():
             p.hsegments(y[out], lo[out], hi[out], LIMIT, 3.4, 0.8, key="flagged outlying", role="outlying")
         line = p.vline
@@ -161,8 +206,11 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
         p.line(x, m, POST, 1.3, key="posterior mean", role="posterior-mean")
         line = p.hline
     line(mu_mean, POOL, 1.5, "dashed", key="pooled mean (mu)")
-    for val, name, style in ((lower, "lower limit", "solid"), (upper, "upper limit", "solid"),
-                             (threshold, "threshold", "dotted")):
+    for val, name, style in (
+        (lower, "lower limit", "solid"),
+        (upper, "upper limit", "solid"),
+        (threshold, "threshold", "dotted"),
+    ):
         if val is not None:
             line(val, LIMIT, 1.5, style, key=f"{name} {val:g}")
     return c.svg()
@@ -170,12 +218,21 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
 
 def rank_heat(matrix: np.ndarray, labels, columns) -> str:
     """P(rank = r) as a heat map: groups down the side in order of mean rank, ranks across."""
-    return heat(matrix, labels, columns, "rank (1 = best)", "rank_heat", "Probability of each rank, by group",
-                sqrt_scale=True)
+    return heat(
+        matrix, labels, columns, "rank (1 = best)", "rank_heat", "Probability of each rank, by group", sqrt_scale=True
+    )
 
 
-def heat(matrix: np.ndarray, labels, columns, xlabel: str, name: str, description: str,
-         sqrt_scale: bool = False, vmax: float | None = None) -> str:
+def heat(
+    matrix: np.ndarray,
+    labels,
+    columns,
+    xlabel: str,
+    name: str,
+    description: str,
+    sqrt_scale: bool = False,
+    vmax: float | None = None,
+) -> str:
     """A matrix of probabilities as coloured cells: rows down the side, columns across the top. sqrt_scale:
     colours on a square-root scale (with many groups most probabilities are small, and they are the story)."""
     matrix = np.asarray(matrix, dtype=float)
@@ -190,16 +247,30 @@ def heat(matrix: np.ndarray, labels, columns, xlabel: str, name: str, descriptio
     c = Canvas(w, h, name, description)
     step = max(1, int(np.ceil(cols / 20)))
     ticks = np.arange(0, cols, step)
-    p = c.panel(0, 0, w, h, xlabel=xlabel, xside="top", flip_y=True, frame=False, xgrid=False,
-                ygrid=False, xlim=(-0.5, cols - 0.5), ylim=(-0.5, rows - 0.5),
-                xticks=(ticks, [str(columns[i]) for i in ticks]), yticks=(np.arange(rows), _labels(labels)))
+    p = c.panel(
+        0,
+        0,
+        w,
+        h,
+        xlabel=xlabel,
+        xside="top",
+        flip_y=True,
+        frame=False,
+        xgrid=False,
+        ygrid=False,
+        xlim=(-0.5, cols - 0.5),
+        ylim=(-0.5, rows - 0.5),
+        xticks=(ticks, [str(columns[i]) for i in ticks]),
+        yticks=(np.arange(rows), _labels(labels)),
+    )
     p.minimum["top"] = top  # room for the rank labels and the axis label above the cells
     p.cells(np.arange(cols + 1) - 0.5, np.arange(rows + 1) - 0.5, colors, skip=HEAT_STOPS[0], role="cells")
     vals, labs, _ = nice_ticks(0.0, vmax)
     keep = vals <= vmax * (1 + 1e-9)
     where = np.sqrt(vals[keep] / vmax) if sqrt_scale else vals[keep] / vmax
-    p.colorbar(HEAT_STOPS, where, [x for x, k in zip(labs, keep) if k], label="probability",
-               height=min(260.0, ROW * rows))
+    p.colorbar(
+        HEAT_STOPS, where, [x for x, k in zip(labs, keep) if k], label="probability", height=min(260.0, ROW * rows)
+    )
     return c.svg()
 
 
@@ -220,11 +291,30 @@ def hyper_traces(named: dict[str, np.ndarray]) -> str:
         last = row == k - 1
         y = (0.0 if row == 0 else head) + row * row_h
         hh = row_h + (head if row == 0 else 0.0) + (foot if last else 0.0)
-        a = c.panel(0, y, left_w, hh, title="draws by chain" if row == 0 else "", ylabel=name,
-                    xlabel="draw" if last else "", xpad=0.0, ypad=0.05)
-        b = c.panel(left_w, y, WIDE - left_w, hh, title="ranks by chain (flat = mixed)" if row == 0 else "",
-                    xlabel="rank bins over all chains" if last else "", xticks=False, yticks=False,
-                    xlim=(0, 20), ylim=(0, None), ypad=0.0)
+        a = c.panel(
+            0,
+            y,
+            left_w,
+            hh,
+            title="draws by chain" if row == 0 else "",
+            ylabel=name,
+            xlabel="draw" if last else "",
+            xpad=0.0,
+            ypad=0.05,
+        )
+        b = c.panel(
+            left_w,
+            y,
+            WIDE - left_w,
+            hh,
+            title="ranks by chain (flat = mixed)" if row == 0 else "",
+            xlabel="rank bins over all chains" if last else "",
+            xticks=False,
+            yticks=False,
+            xlim=(0, 20),
+            ylim=(0, None),
+            ypad=0.0,
+        )
         lefts.append(a)
         rights.append(b)
         step = max(1, int(np.ceil(D / 500)))  # thinned for the picture only; every draw enters the ranks
@@ -264,8 +354,17 @@ def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | Non
     made = []
     at = 0.0
     if spread is not None:
-        p = c.panel(at, 0, each, h, title="spread of the group means", xlabel="sd over groups of the means, replicated",
-                    yticks=False, ylim=(0, None), ypad=0.05)
+        p = c.panel(
+            at,
+            0,
+            each,
+            h,
+            title="spread of the group means",
+            xlabel="sd over groups of the means, replicated",
+            yticks=False,
+            ylim=(0, None),
+            ypad=0.05,
+        )
         rep = np.asarray(spread["replicated"], dtype=float)
         rep = rep[np.isfinite(rep)]
         if rep.size:
@@ -276,8 +375,17 @@ def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | Non
         at += each
     if extreme is not None:
         who = plain(labels[extreme["group"]], 18)
-        p = c.panel(at, 0, each, h, title="most extreme group", ylabel="replicated",
-                    xlabel=f"observed: most extreme / typical deviation (mostly {who})", ypad=0.05, xpad=0.05)
+        p = c.panel(
+            at,
+            0,
+            each,
+            h,
+            title="most extreme group",
+            ylabel="replicated",
+            xlabel=f"observed: most extreme / typical deviation (mostly {who})",
+            ypad=0.05,
+            xpad=0.05,
+        )
         obs = np.asarray(extreme["observed"], dtype=float)
         rep = np.asarray(extreme["replicated"], dtype=float)
         ok = np.isfinite(obs) & np.isfinite(rep)
@@ -287,8 +395,16 @@ def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | Non
         made.append(p)
         at += each
     if sd is not None:
-        p = c.panel(at, 0, each, h, title="within-group sd", ylabel="sd",
-                    xlabel="groups with n ≥ 2, in order of replicated median sd", xpad=0.01)
+        p = c.panel(
+            at,
+            0,
+            each,
+            h,
+            title="within-group sd",
+            ylabel="sd",
+            xlabel="groups with n ≥ 2, in order of replicated median sd",
+            xpad=0.01,
+        )
         order = np.argsort(sd["median"], kind="stable")
         x = np.arange(len(order), dtype=float)
         many = len(order) > MANY
@@ -298,8 +414,14 @@ def predictive(spread: dict | None, sd: dict | None, labels, extreme: dict | Non
         inside = (obs >= lo) & (obs <= hi)
         p.points(x[inside], obs[inside], 8.0 if many else 16.0, fill=RAW, key="observed", role="observed")
         if (~inside).any():
-            p.points(x[~inside], obs[~inside], 12.0 if many else 22.0, fill=LIMIT, key="observed, outside its band",
-                     role="observed-outside")
+            p.points(
+                x[~inside],
+                obs[~inside],
+                12.0 if many else 22.0,
+                fill=LIMIT,
+                key="observed, outside its band",
+                role="observed-outside",
+            )
         made.append(p)
     if len(made) >= 2:
         c.align(*made, sides="top bottom")
@@ -313,8 +435,18 @@ def df_posterior(grid, prior, post) -> str:
     k = len(grid)
     labels = ["normal" if not np.isfinite(g) else f"{g:g}" for g in grid]
     c = Canvas(WIDE * 0.7, 300, "df_posterior", "Posterior and prior probability of each df of the between-group tail")
-    p = c.panel(0, 0, WIDE * 0.7, 300, xlabel="degrees of freedom of the between-group distribution (heavier tail left)",
-                ylabel="probability", xticks=(np.arange(k), labels), xlim=(-0.6, k - 0.4), ylim=(0, None), ypad=0.05)
+    p = c.panel(
+        0,
+        0,
+        WIDE * 0.7,
+        300,
+        xlabel="degrees of freedom of the between-group distribution (heavier tail left)",
+        ylabel="probability",
+        xticks=(np.arange(k), labels),
+        xlim=(-0.6, k - 0.4),
+        ylim=(0, None),
+        ypad=0.05,
+    )
     x = np.arange(k, dtype=float)
     p.vsegments(x - 0.15, np.zeros(k), np.asarray(prior, dtype=float), MUTED, 9.0, key="prior", role="prior")
     p.vsegments(x + 0.15, np.zeros(k), np.asarray(post, dtype=float), POST, 9.0, key="posterior", role="posterior")
@@ -326,8 +458,17 @@ def histograms(t, mu_mean: float) -> str:
     w, h = 960.0, 340.0
     split = w * 1.4 / 2.4
     c = Canvas(w, h, "summary-hist", "Histograms over all groups: posterior and own means, shrinkage weights")
-    a = c.panel(0, 0, split, h, title="where the groups sit", ylabel="groups", ylim=(0, None), ypad=0.05,
-                xlabel="theta (the outermost 0.05% of each end folded into the end bins)")
+    a = c.panel(
+        0,
+        0,
+        split,
+        h,
+        title="where the groups sit",
+        ylabel="groups",
+        ylim=(0, None),
+        ypad=0.05,
+        xlabel="theta (the outermost 0.05% of each end folded into the end bins)",
+    )
     post, raw = t["theta_mean"].to_numpy(dtype=float), t["raw_mean"].to_numpy(dtype=float)
     both = np.concatenate([post, raw])
     both = both[np.isfinite(both)]
@@ -335,13 +476,35 @@ def histograms(t, mu_mean: float) -> str:
     if not hi > lo:
         lo, hi = lo - 0.5, hi + 0.5
     edges = np.linspace(lo, hi, 81)
-    a.steps(edges, np.histogram(np.clip(post[np.isfinite(post)], lo, hi), edges)[0], fill=POST, opacity=0.6,
-            key="posterior means", role="posterior-means")
-    a.steps(edges, np.histogram(np.clip(raw[np.isfinite(raw)], lo, hi), edges)[0], color=RAW, width=1.3,
-            key="own means", role="own-means")
+    a.steps(
+        edges,
+        np.histogram(np.clip(post[np.isfinite(post)], lo, hi), edges)[0],
+        fill=POST,
+        opacity=0.6,
+        key="posterior means",
+        role="posterior-means",
+    )
+    a.steps(
+        edges,
+        np.histogram(np.clip(raw[np.isfinite(raw)], lo, hi), edges)[0],
+        color=RAW,
+        width=1.3,
+        key="own means",
+        role="own-means",
+    )
     a.vline(mu_mean, POOL, 1.5, "dashed", key="pooled mean (mu)")
-    b = c.panel(split, 0, w - split, h, title="how far each was pulled", ylabel="groups", ylim=(0, None), ypad=0.05,
-                xlim=(0, 1), xlabel="shrinkage weight: 0 own mean, 1 pooled mean")
+    b = c.panel(
+        split,
+        0,
+        w - split,
+        h,
+        title="how far each was pulled",
+        ylabel="groups",
+        ylim=(0, None),
+        ypad=0.05,
+        xlim=(0, 1),
+        xlabel="shrinkage weight: 0 own mean, 1 pooled mean",
+    )
     wt = t["shrink_weight"].to_numpy(dtype=float)
     bins = np.linspace(0, 1, 51)
     b.steps(bins, np.histogram(wt[np.isfinite(wt)], bins)[0], fill=POST, opacity=0.6, role="weights")
@@ -372,8 +535,9 @@ def make_figures(res) -> dict[str, str]:
         figs["shrinkage"] = shrinkage(t, mu)
         figs["intervals"] = intervals(t, mu, o.level, o.lower, o.upper, o.threshold, key=res.key)
         if res.heat is not None:
-            figs["ranks"] = rank_heat(res.heat["matrix"], [res.labels[j] for j in res.heat["rows"]],
-                                      res.heat["columns"])
+            figs["ranks"] = rank_heat(
+                res.heat["matrix"], [res.labels[j] for j in res.heat["rows"]], res.heat["columns"]
+            )
         ch = res.checks or {}
         figs["predictive"] = predictive(ch.get("spread"), ch.get("sd"), res.labels, ch.get("extreme"))
     else:
@@ -388,13 +552,21 @@ def make_figures(res) -> dict[str, str]:
         figs["df"] = df_posterior(res.tail["grid"], res.tail["prior"], res.tail["posterior"])
     if res.pairs is not None and len(res.pairs) > PAIRS_AS_TABLE:
         names = [plain(x, 18) for x in res.pairs.index]
-        figs["pairs"] = heat(res.pairs.to_numpy(dtype=float), names, names, "column group",
-                             "head_to_head", "P(theta of the row group > theta of the column group)", vmax=1.0)
+        figs["pairs"] = heat(
+            res.pairs.to_numpy(dtype=float),
+            names,
+            names,
+            "column group",
+            "head_to_head",
+            "P(theta of the row group > theta of the column group)",
+            vmax=1.0,
+        )
     return figs
 
 
 # ---------------------------------------------------------------------------------------------
 # the history of a store: runs along x
+
 
 def _run_ticks(labels: list[str], most: int = 10) -> tuple[np.ndarray, list[str]]:
     """At most `most` evenly spaced run labels (always the first and the last)."""
@@ -406,8 +578,7 @@ def _run_ticks(labels: list[str], most: int = 10) -> tuple[np.ndarray, list[str]
     return idx.astype(float), [labels[i] for i in idx]
 
 
-def history_pooled(run_labels: list[str], series: dict, added: np.ndarray, withdrawn: np.ndarray,
-                   level: float) -> str:
+def history_pooled(run_labels: list[str], series: dict, added: np.ndarray, withdrawn: np.ndarray, level: float) -> str:
     """mu and tau over the runs (posterior mean and interval at each run), and below them a strip of the batches
     added (up) and withdrawn (down) since the previous run. series: name -> (mean, low, high) arrays."""
     R = len(run_labels)
@@ -420,10 +591,16 @@ def history_pooled(run_labels: list[str], series: dict, added: np.ndarray, withd
     made = []
     for i, name in enumerate(names):
         mean, lo, hi = (np.asarray(a, dtype=float) for a in series[name])
-        p = c.panel(0, 24.0 + i * row_h if i else 0.0, WIDE, row_h + (24.0 if i == 0 else 0.0),
-                    title=f"{name} over the runs" if i == 0 else "", ylabel=name,
-                    xticks=(ticks[0], [""] * len(ticks[0])),
-                    xlim=(-0.5, R - 0.5))
+        p = c.panel(
+            0,
+            24.0 + i * row_h if i else 0.0,
+            WIDE,
+            row_h + (24.0 if i == 0 else 0.0),
+            title=f"{name} over the runs" if i == 0 else "",
+            ylabel=name,
+            xticks=(ticks[0], [""] * len(ticks[0])),
+            xlim=(-0.5, R - 0.5),
+        )
         p.vsegments(x, lo, hi, POST, 5.0 if R <= 60 else 2.0, 0.45, key=f"{level:.0%} interval", role="interval")
         p.line(x, mean, POST, 1.2, opacity=0.6)
         p.points(x, mean, 16.0 if R <= 60 else 6.0, fill=POST, key="posterior mean", role="mean")
@@ -433,21 +610,33 @@ def history_pooled(run_labels: list[str], series: dict, added: np.ndarray, withd
     top, bottom = int(max(1, up.max() if R else 1)), int(down.max() if R else 0)
     step = max(1, int(np.ceil((top + bottom) / 4)))
     counts = np.arange(-(bottom // step) * step, top + 1, step)
-    s = c.panel(0, y0, WIDE, strip_h + foot, ylabel="batches", xlabel="run (its date)", xticks=ticks,
-                xlim=(-0.5, R - 0.5), ylim=(-bottom - 0.2 if bottom else -0.2, top + 0.2), ygrid=False,
-                yticks=(counts.astype(float), [str(abs(int(k))) for k in counts]))
+    s = c.panel(
+        0,
+        y0,
+        WIDE,
+        strip_h + foot,
+        ylabel="batches",
+        xlabel="run (its date)",
+        xticks=ticks,
+        xlim=(-0.5, R - 0.5),
+        ylim=(-bottom - 0.2 if bottom else -0.2, top + 0.2),
+        ygrid=False,
+        yticks=(counts.astype(float), [str(abs(int(k))) for k in counts]),
+    )
     s.hline(0.0, MUTED, 1.0)
     s.vsegments(x, np.zeros(R), up, MUTED, 7.0 if R <= 60 else 2.0, key="added since the previous run", role="added")
     if down.any():
-        s.vsegments(x, np.zeros(R), -down, LIMIT, 7.0 if R <= 60 else 2.0, key="withdrawn or replaced",
-                    role="withdrawn")
+        s.vsegments(
+            x, np.zeros(R), -down, LIMIT, 7.0 if R <= 60 else 2.0, key="withdrawn or replaced", role="withdrawn"
+        )
     made.append(s)
     c.align(*made, sides="left right")
     return c.svg()
 
 
-def history_group(name: str, run_labels: list[str], mean, lo, hi, withdrawn_at, threshold=None,
-                  limits=(None, None)) -> str:
+def history_group(
+    name: str, run_labels: list[str], mean, lo, hi, withdrawn_at, threshold=None, limits=(None, None)
+) -> str:
     """One group's posterior mean and interval over the runs (gaps where it had no data), with the runs at which
     batches were withdrawn marked and the threshold or limits drawn in: a small picture for a grid of them."""
     R = len(run_labels)
@@ -456,9 +645,16 @@ def history_group(name: str, run_labels: list[str], mean, lo, hi, withdrawn_at, 
     w, h = 300.0, 170.0
     c = Canvas(w, h, "history_group", f"{plain(name, 60)} over the runs")
     first, last = run_labels[0] if R else "", run_labels[-1] if R else ""
-    p = c.panel(0, 0, w, h, title=plain(name, 34), xticks=(np.array([0.0, R - 1.0]) if R > 1 else np.array([0.0]),
-                                                           [first, last] if R > 1 else [first]),
-                xlim=(-0.5, R - 0.5), xgrid=False)
+    p = c.panel(
+        0,
+        0,
+        w,
+        h,
+        title=plain(name, 34),
+        xticks=(np.array([0.0, R - 1.0]) if R > 1 else np.array([0.0]), [first, last] if R > 1 else [first]),
+        xlim=(-0.5, R - 0.5),
+        xgrid=False,
+    )
     for i in np.flatnonzero(np.asarray(withdrawn_at, dtype=bool)):
         p.vline(float(i), LIMIT, 1.0, "dashed")
     if threshold is not None:
@@ -497,8 +693,16 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
         y_of[order] = np.arange(J, dtype=float)
         h = _rows_height(J, 10.0)
         c = Canvas(WIDE, h, "by_level", "Group estimates by level, with each level's consensus value")
-        p = c.panel(0, 0, WIDE, h, xlabel="theta", yticks=(np.arange(J), _labels(table["group"].to_numpy()[order])),
-                    ygrid=False, ylim=(-0.7, J - 0.3))
+        p = c.panel(
+            0,
+            0,
+            WIDE,
+            h,
+            xlabel="theta",
+            yticks=(np.arange(J), _labels(table["group"].to_numpy()[order])),
+            ygrid=False,
+            ylim=(-0.7, J - 0.3),
+        )
         for i, cons in enumerate(consensus):
             rows = y_of[lev == i]
             if not rows.size:
@@ -506,8 +710,17 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
             y0, y1 = float(rows.min()) - 0.45, float(rows.max()) + 0.45
             col = level_color(i)
             p.band([cons["low"], cons["high"]], [y0, y0], [y1, y1], col, 0.12, role="level-band")
-            p.segments([cons["mean"]], [y0], [cons["mean"]], [y1], col, 1.8, dash="dashed",
-                       key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}", role="level-line")
+            p.segments(
+                [cons["mean"]],
+                [y0],
+                [cons["mean"]],
+                [y1],
+                col,
+                1.8,
+                dash="dashed",
+                key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}",
+                role="level-line",
+            )
             sel = lev == i
             p.hsegments(y_of[sel], lo[sel], hi[sel], col, 3.0, 0.45, role="interval")
             p.points(m[sel], y_of[sel], 20.0, fill=col, role="posterior-mean")
@@ -515,23 +728,40 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
         L = len(names)
         h = max(220.0, 60.0 * L + 90.0)
         c = Canvas(WIDE, h, "by_level", "Posterior means of every group by level, with each level's consensus value")
-        p = c.panel(0, 0, WIDE, h, xlabel="posterior mean of theta",
-                    yticks=(np.arange(L), [plain(x) for x in names]), ygrid=False, ylim=(-0.6, L - 0.4))
+        p = c.panel(
+            0,
+            0,
+            WIDE,
+            h,
+            xlabel="posterior mean of theta",
+            yticks=(np.arange(L), [plain(x) for x in names]),
+            ygrid=False,
+            ylim=(-0.6, L - 0.4),
+        )
         # a deterministic spread inside each level's row, so that dots do not sit on one line
         spread = ((np.arange(J) * 0.6180339887) % 1.0 - 0.5) * 0.6
         for i, cons in enumerate(consensus):
             col = level_color(i)
-            p.band([cons["low"], cons["high"]], [i - 0.42, i - 0.42], [i + 0.42, i + 0.42], col, 0.12,
-                   role="level-band")
-            p.segments([cons["mean"]], [i - 0.45], [cons["mean"]], [i + 0.45], col, 1.8, dash="dashed",
-                       key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}", role="level-line")
+            p.band(
+                [cons["low"], cons["high"]], [i - 0.42, i - 0.42], [i + 0.42, i + 0.42], col, 0.12, role="level-band"
+            )
+            p.segments(
+                [cons["mean"]],
+                [i - 0.45],
+                [cons["mean"]],
+                [i + 0.45],
+                col,
+                1.8,
+                dash="dashed",
+                key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}",
+                role="level-line",
+            )
             sel = lev == i
             p.points(m[sel], i + spread[sel], 6.0, fill=col, opacity=0.45, role="posterior-mean")
     return c.svg()
 
 
-def along_numeric(x, m, lo, hi, lev, lines: list[tuple[str, float]], slope: float, centre: float,
-                  column: str) -> str:
+def along_numeric(x, m, lo, hi, lev, lines: list[tuple[str, float]], slope: float, centre: float, column: str) -> str:
     """The groups' posterior means m (with intervals lo, hi) against a numeric predictor x, coloured by level (lev:
     each group's index into lines), each level's line c_l + slope (x - centre) drawn from its consensus value c_l
     (lines: (name, c_l) per level; c_l at the numeric predictors' means)."""
@@ -546,8 +776,9 @@ def along_numeric(x, m, lo, hi, lev, lines: list[tuple[str, float]], slope: floa
         if not many:
             p.vsegments(x[sel], lo[sel], hi[sel], col, 2.0, 0.4, role="interval")
         p.points(x[sel], m[sel], 8.0 if many else 20.0, fill=col, opacity=0.5 if many else 1.0, role="posterior-mean")
-        p.line(xs, base + slope * (xs - centre), col, 1.8, dash="dashed", key=f"{plain(name, 20)}: line",
-               role="level-line")
+        p.line(
+            xs, base + slope * (xs - centre), col, 1.8, dash="dashed", key=f"{plain(name, 20)}: line", role="level-line"
+        )
     return c.svg()
 
 
@@ -571,7 +802,15 @@ def predictor_figures(res) -> dict[str, str]:
         else:
             lines = [("all groups", res.hyper["mu"]["mean"])]
             lev = np.zeros(len(t), dtype=np.int64)
-        figs["along_numeric"] = along_numeric(num["values"], t["theta_mean"], t[res.col("theta_low")],
-                                              t[res.col("theta_high")], lev, lines, coef["mean"], num["centre"],
-                                              num["column"])
+        figs["along_numeric"] = along_numeric(
+            num["values"],
+            t["theta_mean"],
+            t[res.col("theta_low")],
+            t[res.col("theta_high")],
+            lev,
+            lines,
+            coef["mean"],
+            num["centre"],
+            num["column"],
+        )
     return figs

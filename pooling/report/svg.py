@@ -17,6 +17,7 @@ html.escape(quote=True), so no label can become markup.
 canvas's name in `data-figure`; the only ids it writes (colour-bar gradients) start with that
 name, so several figures can share a page. The same input gives the same bytes.
 """
+
 from __future__ import annotations
 
 import html
@@ -27,18 +28,18 @@ import unicodedata
 import numpy as np
 
 FONT = "DejaVu Sans, Verdana, sans-serif"
-FONT_SIZE = 12.0        # px: tick labels, axis labels, legend
-TITLE_SIZE = 13.0       # px, bold
-EM_WIDTH = 0.6          # estimated width of one character, in em
-LINE = 1.3              # line height, in em
+FONT_SIZE = 12.0  # px: tick labels, axis labels, legend
+TITLE_SIZE = 13.0  # px, bold
+EM_WIDTH = 0.6  # estimated width of one character, in em
+LINE = 1.3  # line height, in em
 TEXT = "#1f2a36"
 AXIS = "#9aa3ad"
 GRID = "#e3e6ea"
-TICK = 4.0              # px, tick mark length
-GAP = 4.0               # px between a tick mark and its label
-PAD = 6.0               # px around a panel
-KEY_ROW = 18.0          # px per legend row
-KEY_SWATCH = 22.0       # px, width of a legend swatch
+TICK = 4.0  # px, tick mark length
+GAP = 4.0  # px between a tick mark and its label
+PAD = 6.0  # px around a panel
+KEY_ROW = 18.0  # px per legend row
+KEY_SWATCH = 22.0  # px, width of a legend swatch
 DASHES = {"solid": None, "dashed": "6 4", "dotted": "1.5 3"}
 MOST_TICKS = 8
 _MANTISSAS = (1, 2, 5)
@@ -50,6 +51,7 @@ _ID_UNSAFE = re.compile(r"[^A-Za-z0-9_-]")
 
 # ---------------------------------------------------------------------------------------------
 # text
+
 
 def text(s) -> str:
     """Text fit for SVG inside HTML: control characters as spaces, non-XML characters as U+FFFD,
@@ -95,9 +97,10 @@ def wrap(s: str, width: float, size: float = FONT_SIZE) -> list[str]:
 # ---------------------------------------------------------------------------------------------
 # ticks
 
+
 def _power(m: int, e: int) -> float:
     """m * 10**e as the float nearest to the decimal (division by an exact power of ten for e < 0)."""
-    return float(m * 10 ** e) if e >= 0 else m / 10.0 ** (-e)
+    return float(m * 10**e) if e >= 0 else m / 10.0 ** (-e)
 
 
 def widen(lo: float, hi: float) -> tuple[float, float]:
@@ -143,7 +146,7 @@ def nice_ticks(lo: float, hi: float, most: int = MOST_TICKS) -> tuple[np.ndarray
     k0, k1 = _cover(lo, hi, s)
     ks = np.arange(k0, k1 + 1)
     if e >= 0:
-        vals = (ks * m).astype(float) * 10.0 ** e
+        vals = (ks * m).astype(float) * 10.0**e
     else:
         vals = (ks * m).astype(float) / 10.0 ** (-e)
     return vals, tick_labels(ks * m, e), s
@@ -162,8 +165,8 @@ def tick_labels(units, e: int) -> list[str]:
     big = max(abs(u) for u in units)
     if big == 0:
         return fixed
-    p = e + len(str(big)) - 1          # exponent of the largest tick's leading digit
-    dm = p - e                          # mantissa decimals that keep the step exact
+    p = e + len(str(big)) - 1  # exponent of the largest tick's leading digit
+    dm = p - e  # mantissa decimals that keep the step exact
     sci = ["0" if u == 0 else f"{_fixed(u, e - p, dm)}e{p}" for u in units]
     return sci if max(len(x) for x in sci) < longest else fixed
 
@@ -173,7 +176,7 @@ def _fixed(u: int, e: int, d: int) -> str:
     neg = u < 0
     a = abs(u)
     if e >= 0:
-        whole, frac = str(a * 10 ** e), ""
+        whole, frac = str(a * 10**e), ""
     else:
         digits = str(a).rjust(-e + 1, "0")
         whole, frac = digits[:e], digits[e:]
@@ -184,6 +187,7 @@ def _fixed(u: int, e: int, d: int) -> str:
 
 # ---------------------------------------------------------------------------------------------
 # numbers into SVG
+
 
 class Scale:
     """Linear map from data [d0, d1] to pixels [p0, p1] (p1 < p0 inverts)."""
@@ -247,32 +251,59 @@ def _radius(area) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # legend swatches: functions (x, y centre) -> svg
 
+
 def _swatch_line(color, width, dash, opacity):
     def draw(x, y):
-        return (f'<path d="M{num(x)} {num(y)}h{KEY_SWATCH:g}"' + _attrs(stroke=color, stroke_width=f"{width:g}",
-                stroke_dasharray=DASHES.get(dash), stroke_opacity=_op(opacity), fill="none") + "/>")
+        return (
+            f'<path d="M{num(x)} {num(y)}h{KEY_SWATCH:g}"'
+            + _attrs(
+                stroke=color,
+                stroke_width=f"{width:g}",
+                stroke_dasharray=DASHES.get(dash),
+                stroke_opacity=_op(opacity),
+                fill="none",
+            )
+            + "/>"
+        )
+
     return draw
 
 
 def _swatch_dot(fill, stroke, stroke_width, r, opacity):
     def draw(x, y):
-        return (f'<circle cx="{num(x + KEY_SWATCH / 2)}" cy="{num(y)}" r="{num(r)}"'
-                + _attrs(fill=fill, fill_opacity=_op(opacity), stroke=stroke,
-                         stroke_width=f"{stroke_width:g}" if stroke else None) + "/>")
+        return (
+            f'<circle cx="{num(x + KEY_SWATCH / 2)}" cy="{num(y)}" r="{num(r)}"'
+            + _attrs(
+                fill=fill,
+                fill_opacity=_op(opacity),
+                stroke=stroke,
+                stroke_width=f"{stroke_width:g}" if stroke else None,
+            )
+            + "/>"
+        )
+
     return draw
 
 
 def _swatch_patch(fill, opacity):
     def draw(x, y):
-        return f'<rect x="{num(x)}" y="{num(y - 5)}" width="{KEY_SWATCH:g}" height="10"' + _attrs(
-            fill=fill, fill_opacity=_op(opacity)) + "/>"
+        return (
+            f'<rect x="{num(x)}" y="{num(y - 5)}" width="{KEY_SWATCH:g}" height="10"'
+            + _attrs(fill=fill, fill_opacity=_op(opacity))
+            + "/>"
+        )
+
     return draw
 
 
 def _swatch_tick(color, width):
     def draw(x, y):
-        return f'<path d="M{num(x + KEY_SWATCH / 2)} {num(y - 6)}v12"' + _attrs(
-            stroke=color, stroke_width=f"{width:g}") + "/>"
+        return (
+            f'<path d="M{num(x + KEY_SWATCH / 2)} {num(y - 6)}v12"'
+            + _attrs(stroke=color, stroke_width=f"{width:g}")
+            + "/>"
+        )
+
     return draw
 
 
@@ -314,9 +345,26 @@ class Panel:
     low y value at the top (rows of a heat map). frame: axis lines and tick marks.
     """
 
-    def __init__(self, canvas, box, *, title="", xlabel="", ylabel="", xlim=(None, None), ylim=(None, None),
-                 xpad=0.02, ypad=0.04, xticks=True, yticks=True, xgrid=True, ygrid=True, xside="bottom",
-                 flip_y=False, frame=True):
+    def __init__(
+        self,
+        canvas,
+        box,
+        *,
+        title="",
+        xlabel="",
+        ylabel="",
+        xlim=(None, None),
+        ylim=(None, None),
+        xpad=0.02,
+        ypad=0.04,
+        xticks=True,
+        yticks=True,
+        xgrid=True,
+        ygrid=True,
+        xside="bottom",
+        flip_y=False,
+        frame=True,
+    ):
         self.canvas = canvas
         self.box = tuple(float(v) for v in box)
         self.title, self.xlabel, self.ylabel = str(title), str(xlabel), str(ylabel)
@@ -345,8 +393,7 @@ class Panel:
             self.keys.append((swatch, str(label)))
 
     # --- primitives ------------------------------------------------------------------------------
-    def points(self, x, y, area=16.0, fill="#000000", stroke=None, stroke_width=1.0, opacity=1.0, key=None,
-               role=None):
+    def points(self, x, y, area=16.0, fill="#000000", stroke=None, stroke_width=1.0, opacity=1.0, key=None, role=None):
         """Circles at (x, y); `area` in px^2 (one value or one per point)."""
         (x, y, area), _ = _finite(x, y, area)
         self._extend("x", x)
@@ -358,16 +405,21 @@ class Panel:
                 return ""
             cx, cy, rr = nums(sx(x)), nums(sy(y)), nums(r)
             body = "".join(f'<circle cx="{a}" cy="{b}" r="{c}"/>' for a, b, c in zip(cx, cy, rr))
-            style = _attrs(class_=role, fill=fill, fill_opacity=_op(opacity), stroke=stroke,
-                           stroke_opacity=_op(opacity) if stroke else None,
-                           stroke_width=f"{stroke_width:g}" if stroke else None)
+            style = _attrs(
+                class_=role,
+                fill=fill,
+                fill_opacity=_op(opacity),
+                stroke=stroke,
+                stroke_opacity=_op(opacity) if stroke else None,
+                stroke_width=f"{stroke_width:g}" if stroke else None,
+            )
             return f"<g{style}>{body}</g>"
+
         self.items.append(draw)
         kr = float(min(np.median(r), 5.0)) if r.size else 3.0
         self._key(key, _swatch_dot(fill, stroke, stroke_width, max(kr, 2.5), opacity))
 
-    def segments(self, x0, y0, x1, y1, color, width=1.0, opacity=1.0, dash="solid", key=None, role=None,
-                 swatch="line"):
+    def segments(self, x0, y0, x1, y1, color, width=1.0, opacity=1.0, dash="solid", key=None, role=None, swatch="line"):
         """Straight segments from (x0, y0) to (x1, y1), all in one path."""
         (x0, y0, x1, y1), _ = _finite(x0, y0, x1, y1)
         self._extend("x", np.concatenate([x0, x1]))
@@ -378,9 +430,19 @@ class Panel:
                 return ""
             a, b, c, d = nums(sx(x0)), nums(sy(y0)), nums(sx(x1)), nums(sy(y1))
             path = "".join(f"M{p} {q}L{r} {s}" for p, q, r, s in zip(a, b, c, d))
-            return f'<path d="{path}"' + _attrs(class_=role, fill="none", stroke=color, stroke_width=f"{width:g}",
-                                                stroke_opacity=_op(opacity),
-                                                stroke_dasharray=DASHES.get(dash)) + "/>"
+            return (
+                f'<path d="{path}"'
+                + _attrs(
+                    class_=role,
+                    fill="none",
+                    stroke=color,
+                    stroke_width=f"{width:g}",
+                    stroke_opacity=_op(opacity),
+                    stroke_dasharray=DASHES.get(dash),
+                )
+                + "/>"
+            )
+
         self.items.append(draw)
         self._key(key, _swatch_tick(color, width) if swatch == "tick" else _swatch_line(color, width, dash, opacity))
 
@@ -410,8 +472,14 @@ class Panel:
                 d = f"M{num(sx(v))} {num(y0)}V{num(y1)}"
             else:
                 d = f"M{num(x0)} {num(sy(v))}H{num(x1)}"
-            return f'<path d="{d}"' + _attrs(class_=role, fill="none", stroke=color, stroke_width=f"{width:g}",
-                                             stroke_dasharray=DASHES.get(dash)) + "/>"
+            return (
+                f'<path d="{d}"'
+                + _attrs(
+                    class_=role, fill="none", stroke=color, stroke_width=f"{width:g}", stroke_dasharray=DASHES.get(dash)
+                )
+                + "/>"
+            )
+
         self.items.append(draw)
         self._key(key, _swatch_line(color, width, dash, None))
 
@@ -424,9 +492,20 @@ class Panel:
         def draw(sx, sy):
             if x.size < 2:
                 return ""
-            return f'<polyline points="{pairs(sx(x), sy(y))}"' + _attrs(
-                class_=role, fill="none", stroke=color, stroke_width=f"{width:g}", stroke_opacity=_op(opacity),
-                stroke_dasharray=DASHES.get(dash), stroke_linejoin="round") + "/>"
+            return (
+                f'<polyline points="{pairs(sx(x), sy(y))}"'
+                + _attrs(
+                    class_=role,
+                    fill="none",
+                    stroke=color,
+                    stroke_width=f"{width:g}",
+                    stroke_opacity=_op(opacity),
+                    stroke_dasharray=DASHES.get(dash),
+                    stroke_linejoin="round",
+                )
+                + "/>"
+            )
+
         self.items.append(draw)
         self._key(key, _swatch_line(color, width, dash, opacity))
 
@@ -444,13 +523,16 @@ class Panel:
                 return ""
             px = sx(np.concatenate([x, x[::-1]]))
             py = sy(np.concatenate([hi, lo[::-1]]))
-            return f'<polygon points="{pairs(px, py)}"' + _attrs(class_=role, fill=color,
-                                                                 fill_opacity=_op(opacity)) + "/>"
+            return (
+                f'<polygon points="{pairs(px, py)}"' + _attrs(class_=role, fill=color, fill_opacity=_op(opacity)) + "/>"
+            )
+
         self.items.append(draw)
         self._key(key, _swatch_patch(color, opacity))
 
-    def steps(self, edges, heights, color=None, width=1.2, fill=None, opacity=1.0, base=0.0, closed=True,
-              key=None, role=None):
+    def steps(
+        self, edges, heights, color=None, width=1.2, fill=None, opacity=1.0, base=0.0, closed=True, key=None, role=None
+    ):
         """A histogram-like step curve: heights[i] over [edges[i], edges[i+1]]. With `fill`, the area
         down to `base` is filled (bars without gaps); with `color`, the outline is drawn (down to
         `base` at both ends when `closed`)."""
@@ -468,13 +550,26 @@ class Panel:
             px, py = sx(x), sy(y)
             out = ""
             if fill:
-                out += f'<polygon points="{pairs(px, py)}"' + _attrs(class_=role, fill=fill,
-                                                                     fill_opacity=_op(opacity)) + "/>"
+                out += (
+                    f'<polygon points="{pairs(px, py)}"'
+                    + _attrs(class_=role, fill=fill, fill_opacity=_op(opacity))
+                    + "/>"
+                )
             if color:
-                out += f'<polyline points="{pairs(px, py)}"' + _attrs(
-                    class_=role, fill="none", stroke=color, stroke_width=f"{width:g}",
-                    stroke_opacity=_op(opacity) if not fill else None, stroke_linejoin="miter") + "/>"
+                out += (
+                    f'<polyline points="{pairs(px, py)}"'
+                    + _attrs(
+                        class_=role,
+                        fill="none",
+                        stroke=color,
+                        stroke_width=f"{width:g}",
+                        stroke_opacity=_op(opacity) if not fill else None,
+                        stroke_linejoin="miter",
+                    )
+                    + "/>"
+                )
             return out
+
         self.items.append(draw)
         self._key(key, _swatch_patch(fill, opacity) if fill else _swatch_line(color, width, "solid", opacity))
 
@@ -503,15 +598,28 @@ class Panel:
             startx, starty = ax[ok] + ux * s0[ok], ay[ok] + uy * s0[ok]
             stem = room[ok] > h + 0.5
             hw = 0.42 * h
-            stems = "".join(f"M{a} {b}L{c} {d}" for a, b, c, d in zip(
-                nums(startx[stem]), nums(starty[stem]), nums(basex[stem] + ux[stem]), nums(basey[stem] + uy[stem])))
-            heads = "".join(f"M{a} {b}L{c} {d}L{e} {f}Z" for a, b, c, d, e, f in zip(
-                nums(tipx), nums(tipy), nums(basex - uy * hw), nums(basey + ux * hw),
-                nums(basex + uy * hw), nums(basey - ux * hw)))
+            stems = "".join(
+                f"M{a} {b}L{c} {d}"
+                for a, b, c, d in zip(
+                    nums(startx[stem]), nums(starty[stem]), nums(basex[stem] + ux[stem]), nums(basey[stem] + uy[stem])
+                )
+            )
+            heads = "".join(
+                f"M{a} {b}L{c} {d}L{e} {f}Z"
+                for a, b, c, d, e, f in zip(
+                    nums(tipx),
+                    nums(tipy),
+                    nums(basex - uy * hw),
+                    nums(basey + ux * hw),
+                    nums(basex + uy * hw),
+                    nums(basey - ux * hw),
+                )
+            )
             out = f"<g{_attrs(class_=role)}>"
             if stems:
                 out += f'<path d="{stems}" fill="none" stroke="{color}" stroke-width="{width:g}"/>'
             return out + f'<path d="{heads}" fill="{color}"/></g>'
+
         self.items.append(draw)
 
     def cells(self, x_edges, y_edges, colors, skip=None, role=None):
@@ -534,14 +642,17 @@ class Panel:
             ys, hs = nums(ty), nums(by - ty)
             out = [f'<g{_attrs(class_=role)} shape-rendering="crispEdges">']
             if skip is not None:
-                out.append(f'<rect x="{num(lx.min())}" y="{num(ty.min())}" width="{num(rx.max() - lx.min())}" '
-                           f'height="{num(by.max() - ty.min())}" fill="{skip}"/>')
+                out.append(
+                    f'<rect x="{num(lx.min())}" y="{num(ty.min())}" width="{num(rx.max() - lx.min())}" '
+                    f'height="{num(by.max() - ty.min())}" fill="{skip}"/>'
+                )
             for i in range(colors.shape[0]):
                 row = colors[i]
                 for j in np.flatnonzero(row != skip) if skip is not None else range(row.size):
                     out.append(f'<rect x="{xs[j]}" y="{ys[i]}" width="{ws[j]}" height="{hs[i]}" fill="{row[j]}"/>')
             out.append("</g>")
             return "".join(out)
+
         self.items.append(draw)
 
     def colorbar(self, stops, ticks, labels, label="", height=260.0):
@@ -560,22 +671,32 @@ class Panel:
             x0, x1, y0, y1 = self._px
             bx = x1 + gap
             h = min(height, y1 - y0)
-            grad = "".join(f'<stop offset="{i / max(1, len(stops) - 1):.4g}" stop-color="{c}"/>'
-                           for i, c in enumerate(stops))
+            grad = "".join(
+                f'<stop offset="{i / max(1, len(stops) - 1):.4g}" stop-color="{c}"/>' for i, c in enumerate(stops)
+            )
             ty = y0 + h - ticks * h
-            out = [f'<defs><linearGradient id="{gid}" x1="0" y1="1" x2="0" y2="0">{grad}</linearGradient></defs>',
-                   f'<rect x="{num(bx)}" y="{num(y0)}" width="{width:g}" height="{num(h)}" fill="url(#{gid})"/>',
-                   '<path d="' + "".join(f"M{num(bx + width)} {v}h{TICK:g}" for v in nums(ty))
-                   + f'" stroke="{AXIS}" fill="none"/>',
-                   f'<g fill="{TEXT}">' + "".join(
-                       f'<text x="{num(bx + width + TICK + GAP)}" y="{v}" dy=".35em">{text(s)}</text>'
-                       for v, s in zip(nums(ty), labels)) + "</g>"]
+            out = [
+                f'<defs><linearGradient id="{gid}" x1="0" y1="1" x2="0" y2="0">{grad}</linearGradient></defs>',
+                f'<rect x="{num(bx)}" y="{num(y0)}" width="{width:g}" height="{num(h)}" fill="url(#{gid})"/>',
+                '<path d="'
+                + "".join(f"M{num(bx + width)} {v}h{TICK:g}" for v in nums(ty))
+                + f'" stroke="{AXIS}" fill="none"/>',
+                f'<g fill="{TEXT}">'
+                + "".join(
+                    f'<text x="{num(bx + width + TICK + GAP)}" y="{v}" dy=".35em">{text(s)}</text>'
+                    for v, s in zip(nums(ty), labels)
+                )
+                + "</g>",
+            ]
             if label:
                 lx = bx + width + TICK + GAP + wide + 4 + FONT_SIZE * 0.8
                 ly = y0 + h / 2
-                out.append(f'<text x="{num(lx)}" y="{num(ly)}" text-anchor="middle" fill="{TEXT}" '
-                           f'transform="rotate(90 {num(lx)} {num(ly)})">{text(label)}</text>')
+                out.append(
+                    f'<text x="{num(lx)}" y="{num(ly)}" text-anchor="middle" fill="{TEXT}" '
+                    f'transform="rotate(90 {num(lx)} {num(ly)})">{text(label)}</text>'
+                )
             return "".join(out)
+
         self.items.append(draw)
 
     # --- layout ----------------------------------------------------------------------------------
@@ -629,8 +750,12 @@ class Panel:
             bottom += xt + xl
         if ylabs:
             top = max(top, PAD + FONT_SIZE / 2)
-        self.inset = {"top": max(top, self.minimum["top"]), "right": right,
-                      "bottom": max(bottom, self.minimum["bottom"]), "left": left}
+        self.inset = {
+            "top": max(top, self.minimum["top"]),
+            "right": right,
+            "bottom": max(bottom, self.minimum["bottom"]),
+            "left": left,
+        }
 
     def _key_rows(self, width: float) -> list[list]:
         rows, cur, used = [], [], 0.0
@@ -671,8 +796,10 @@ class Panel:
         xtop = self.xside == "top"
         xaxis_y = y0 if xtop else y1
         if self.frame:
-            out.append(f'<path d="M{num(x0)} {num(y0)}V{num(y1)}M{num(x0)} {num(xaxis_y)}H{num(x1)}" '
-                       f'fill="none" stroke="{AXIS}" stroke-width="1"/>')
+            out.append(
+                f'<path d="M{num(x0)} {num(y0)}V{num(y1)}M{num(x0)} {num(xaxis_y)}H{num(x1)}" '
+                f'fill="none" stroke="{AXIS}" stroke-width="1"/>'
+            )
             marks = "".join(f"M{v} {num(xaxis_y)}v{-TICK if xtop else TICK:g}" for v in nums(sx(xv)))
             marks += "".join(f"M{num(x0)} {v}h{-TICK:g}" for v in nums(sy(yv)))
             if marks:
@@ -680,13 +807,18 @@ class Panel:
         tick = TICK if self.frame else 0.0
         if xl:
             ty = y0 - tick - GAP - FONT_SIZE * 0.25 if xtop else y1 + tick + GAP + FONT_SIZE * 0.8
-            out.append(f'<g fill="{TEXT}" text-anchor="middle">' + "".join(
-                f'<text x="{v}" y="{num(ty)}">{text(s)}</text>' for v, s in zip(nums(sx(xv)), xl)) + "</g>")
+            out.append(
+                f'<g fill="{TEXT}" text-anchor="middle">'
+                + "".join(f'<text x="{v}" y="{num(ty)}">{text(s)}</text>' for v, s in zip(nums(sx(xv)), xl))
+                + "</g>"
+            )
         if yl:
             tx = x0 - tick - GAP
-            out.append(f'<g fill="{TEXT}" text-anchor="end">' + "".join(
-                f'<text x="{num(tx)}" y="{v}" dy=".35em">{text(s)}</text>' for v, s in zip(nums(sy(yv)), yl))
-                + "</g>")
+            out.append(
+                f'<g fill="{TEXT}" text-anchor="end">'
+                + "".join(f'<text x="{num(tx)}" y="{v}" dy=".35em">{text(s)}</text>' for v, s in zip(nums(sy(yv)), yl))
+                + "</g>"
+            )
         # axis labels
         if self._xlines:
             xt = (FONT_SIZE + tick + GAP) if xl else 0.0
@@ -702,14 +834,18 @@ class Panel:
         if self.ylabel:
             lx = bx + PAD + FONT_SIZE * 0.9
             ly = (y0 + y1) / 2
-            out.append(f'<text x="{num(lx)}" y="{num(ly)}" text-anchor="middle" fill="{TEXT}" '
-                       f'transform="rotate(-90 {num(lx)} {num(ly)})">{text(self.ylabel)}</text>')
+            out.append(
+                f'<text x="{num(lx)}" y="{num(ly)}" text-anchor="middle" fill="{TEXT}" '
+                f'transform="rotate(-90 {num(lx)} {num(ly)})">{text(self.ylabel)}</text>'
+            )
         # title and legend above the plot area
         ty = by + PAD
         if self.title:
             ty += TITLE_SIZE * 1.1
-            out.append(f'<text x="{num(x0)}" y="{num(ty)}" font-size="{TITLE_SIZE:g}" font-weight="bold" '
-                       f'fill="{TEXT}">{text(self.title)}</text>')
+            out.append(
+                f'<text x="{num(x0)}" y="{num(ty)}" font-size="{TITLE_SIZE:g}" font-weight="bold" '
+                f'fill="{TEXT}">{text(self.title)}</text>'
+            )
             ty += TITLE_SIZE * 0.5
         if self._rows:
             keys = []
@@ -717,8 +853,10 @@ class Panel:
                 cy = ty + (r + 0.5) * KEY_ROW
                 for swatch, label, off in row:
                     keys.append(swatch(x0 + off, cy))
-                    keys.append(f'<text x="{num(x0 + off + KEY_SWATCH + 5)}" y="{num(cy)}" dy=".35em" '
-                                f'fill="{TEXT}">{text(label)}</text>')
+                    keys.append(
+                        f'<text x="{num(x0 + off + KEY_SWATCH + 5)}" y="{num(cy)}" dy=".35em" '
+                        f'fill="{TEXT}">{text(label)}</text>'
+                    )
             out.append(f'<g class="legend">{"".join(keys)}</g>')
         out.append("</g>")
         return "".join(out)
@@ -759,8 +897,10 @@ class Canvas:
             for p in self.panels:
                 p._measure()
         w, h = num(self.width), num(self.height)
-        head = (f'<svg xmlns="http://www.w3.org/2000/svg" class="figure" viewBox="0 0 {w} {h}" '
-                f'style="max-width:{w}px" role="img" data-figure="{self.ident}" font-family="{FONT}" '
-                f'font-size="{FONT_SIZE:g}">'
-                f"<title>{text(self.description)}</title>")
+        head = (
+            f'<svg xmlns="http://www.w3.org/2000/svg" class="figure" viewBox="0 0 {w} {h}" '
+            f'style="max-width:{w}px" role="img" data-figure="{self.ident}" font-family="{FONT}" '
+            f'font-size="{FONT_SIZE:g}">'
+            f"<title>{text(self.description)}</title>"
+        )
         return head + "".join(p._render() for p in self.panels) + "</svg>"

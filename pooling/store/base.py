@@ -10,6 +10,7 @@ Every method that changes the store is atomic: it lands whole or not at all. Eve
 reads verifies what it read against the checksums written with it (`checksums.py`), and refuses
 (InputError, one line naming the batch or run) what does not match.
 """
+
 from __future__ import annotations
 
 import abc
@@ -144,8 +145,9 @@ class BatchStore(abc.ABC):
     path: str  # how messages name the store (a file path, or a URL or service without a password)
 
     @abc.abstractmethod
-    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None,
-                  replace: bool = False) -> BatchInfo:
+    def add_batch(
+        self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None, replace: bool = False
+    ) -> BatchInfo:
         """Add one batch, its per-group statistics and its group-level columns (`columns`: name -> one text value
         per group) in one transaction.
 
@@ -186,7 +188,7 @@ class BatchStore(abc.ABC):
         line each; an empty list when the store is sound."""
 
     @abc.abstractmethod
-    def export(self) -> "StoreContent":
+    def export(self) -> StoreContent:
         """Everything the store keeps, as stored, read consistently and verified (for copying)."""
 
     @abc.abstractmethod

@@ -19,6 +19,7 @@ which is a yardstick, not a test statistic: the two runs share most of their dat
 estimates are strongly correlated and the spread of their difference is smaller than that.
 Ranks: 1 is the group with the best theta in a draw (highest by default, or lowest).
 """
+
 from __future__ import annotations
 
 import csv
@@ -54,11 +55,15 @@ class Watch:
         if self.best not in ("highest", "lowest"):
             raise InputError(f"bad option: best must be 'highest' or 'lowest'; found '{self.best}'")
         if not 0.5 < self.decide_at < 1.0:
-            raise InputError(f"bad option --decide-at: expected a probability between 0.5 and 1; found {self.decide_at:g}")
+            raise InputError(
+                f"bad option --decide-at: expected a probability between 0.5 and 1; found {self.decide_at:g}"
+            )
         if not 0.0 < self.level < 1.0:
             raise InputError(f"bad option: the interval level must be between 0 and 1; found {self.level:g}")
         if self.lower is not None and self.upper is not None and not self.lower < self.upper:
-            raise InputError(f"bad options: the lower limit ({self.lower:g}) must be below the upper limit ({self.upper:g})")
+            raise InputError(
+                f"bad options: the lower limit ({self.lower:g}) must be below the upper limit ({self.upper:g})"
+            )
 
     @property
     def has_limits(self) -> bool:
@@ -77,7 +82,7 @@ def rank_pass(theta: np.ndarray, then_rank: np.ndarray | None = None, best: str 
     better = np.zeros(J)
     step = max(1, _RANK_BLOCK // max(J, 1))
     for a in range(0, S, step):
-        block = theta[a:a + step]
+        block = theta[a : a + step]
         order = np.argsort(-block if best == "highest" else block, axis=1, kind="stable")
         ranks = np.empty_like(order)
         rows = np.arange(block.shape[0])[:, None]
@@ -113,14 +118,31 @@ def digest(fit, watch: Watch) -> tuple[dict, list[GroupResult]]:
     pa = (theta > watch.threshold).mean(axis=0) if watch.threshold is not None else np.full(st.J, np.nan)
     po = p_outside(theta, watch) if watch.has_limits else np.full(st.J, np.nan)
     raw = st.mean + st.mean_lo
-    groups = [GroupResult(st.labels[j], float(st.n[j]), float(raw[j]), float(mean[j]), float(sd[j]), float(q[0, j]),
-                          float(q[1, j]), float(rmean[j]), float(rsd[j]), float(pa[j]), float(po[j]))
-              for j in range(st.J)]
+    groups = [
+        GroupResult(
+            st.labels[j],
+            float(st.n[j]),
+            float(raw[j]),
+            float(mean[j]),
+            float(sd[j]),
+            float(q[0, j]),
+            float(q[1, j]),
+            float(rmean[j]),
+            float(rsd[j]),
+            float(pa[j]),
+            float(po[j]),
+        )
+        for j in range(st.J)
+    ]
     hyper = {}
     for name in ("mu", "tau"):
         x = fit.draws(name)
-        hyper[name] = {"mean": float(x.mean()), "sd": float(x.std(ddof=1)),
-                       "q_lo": float(np.quantile(x, lo_q)), "q_hi": float(np.quantile(x, hi_q))}
+        hyper[name] = {
+            "mean": float(x.mean()),
+            "sd": float(x.std(ddof=1)),
+            "q_lo": float(np.quantile(x, lo_q)),
+            "q_hi": float(np.quantile(x, hi_q)),
+        }
     return {"hyperparameters": hyper, "watch": watch.to_dict()}, groups
 
 
@@ -141,8 +163,14 @@ def _num(x):
     return x if np.isfinite(x) else None
 
 
-def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | None,
-            active: tuple[BatchInfo, ...], ledger: list[BatchInfo]) -> dict:
+def compare(
+    fit,
+    watch: Watch,
+    now_groups: list[GroupResult],
+    prev: RunRecord | None,
+    active: tuple[BatchInfo, ...],
+    ledger: list[BatchInfo],
+) -> dict:
     """The change report as a JSON-able dict (see the module docstring for what each number means)."""
     theta = fit.draws("theta")
     labels = [g.label for g in now_groups]
@@ -159,14 +187,22 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
         report["batches"] = {"added": [by_id[i].name for i in now_ids], "removed": [], "active": len(now_ids)}
         report["hyperparameters"] = {}
         report["new_groups"] = [_group_line(g) for g in now_groups]
-        report.update(gone_groups=[], rank_moves=[], threshold_crossings=[], limit_crossings=[],
-                      groups=[_row(g, None, None, None, None, watch) for g in now_groups])
+        report.update(
+            gone_groups=[],
+            rank_moves=[],
+            threshold_crossings=[],
+            limit_crossings=[],
+            groups=[_row(g, None, None, None, None, watch) for g in now_groups],
+        )
         return report
     prev_ids = set(prev.batch_ids)
     report["batches"] = {
         "added": [by_id[i].name for i in now_ids if i not in prev_ids],
-        "removed": [{"name": by_id[i].name, "status": by_id[i].status, "when": by_id[i].changed_at}
-                    for i in sorted(prev_ids - set(now_ids)) if i in by_id],
+        "removed": [
+            {"name": by_id[i].name, "status": by_id[i].status, "when": by_id[i].changed_at}
+            for i in sorted(prev_ids - set(now_ids))
+            if i in by_id
+        ],
         "active": len(now_ids),
     }
     hyper = {}
@@ -178,16 +214,23 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
         x = fit.draws(name)
         m, s = float(x.mean()), float(x.std(ddof=1))
         shift = m - t["mean"]
-        hyper[name] = {"then_mean": t["mean"], "then_sd": t["sd"], "now_mean": m, "now_sd": s, "shift": shift,
-                       "shift_in_sd": _num(shift / np.hypot(t["sd"], s)) if np.hypot(t["sd"], s) > 0 else None,
-                       "p_now_above_then_mean": float((x > t["mean"]).mean())}
+        hyper[name] = {
+            "then_mean": t["mean"],
+            "then_sd": t["sd"],
+            "now_mean": m,
+            "now_sd": s,
+            "shift": shift,
+            "shift_in_sd": _num(shift / np.hypot(t["sd"], s)) if np.hypot(t["sd"], s) > 0 else None,
+            "p_now_above_then_mean": float((x > t["mean"]).mean()),
+        }
     report["hyperparameters"] = hyper
     same_threshold = prev.summary.get("watch", {}).get("threshold") == watch.threshold
-    same_limits = (prev.summary.get("watch", {}).get("lower") == watch.lower
-                   and prev.summary.get("watch", {}).get("upper") == watch.upper)
+    same_limits = (
+        prev.summary.get("watch", {}).get("lower") == watch.lower
+        and prev.summary.get("watch", {}).get("upper") == watch.upper
+    )
     same_best = prev.summary.get("watch", {}).get("best", "highest") == watch.best
-    report["comparable"] = {"threshold": bool(same_threshold), "limits": bool(same_limits),
-                            "ranks": bool(same_best)}
+    report["comparable"] = {"threshold": bool(same_threshold), "limits": bool(same_limits), "ranks": bool(same_best)}
     before = {g.label: g for g in prev.groups}
     idx_then = np.array([j for j, lab in enumerate(labels) if lab in before], dtype=np.int64)
     then_rank = np.full(len(labels), np.inf)  # new groups: no previous rank to beat
@@ -209,36 +252,91 @@ def compare(fit, watch: Watch, now_groups: list[GroupResult], prev: RunRecord | 
         pm = float(p_above_then_mean[j])
         rows.append(_row(g, old, pb, pm, (same_threshold, same_limits, same_best), watch))
         if same_best and abs(old.rank_mean - g.rank_mean) >= 1.0:
-            moves.append({"group": g.label, "rank_then": old.rank_mean, "rank_now": g.rank_mean,
-                          "move_up": old.rank_mean - g.rank_mean, "p_now_better_than_then_rank": pb})
+            moves.append(
+                {
+                    "group": g.label,
+                    "rank_then": old.rank_mean,
+                    "rank_now": g.rank_mean,
+                    "move_up": old.rank_mean - g.rank_mean,
+                    "p_now_better_than_then_rank": pb,
+                }
+            )
         if watch.threshold is not None and same_threshold:
             a, b = _status_threshold(old.p_above, watch.decide_at), _status_threshold(g.p_above, watch.decide_at)
             if a != b:
-                t_cross.append({"group": g.label, "then": a, "now": b, "p_above_then": _num(old.p_above),
-                                "p_above_now": _num(g.p_above)})
+                t_cross.append(
+                    {
+                        "group": g.label,
+                        "then": a,
+                        "now": b,
+                        "p_above_then": _num(old.p_above),
+                        "p_above_now": _num(g.p_above),
+                    }
+                )
         if watch.has_limits and same_limits:
             a, b = _status_limits(old.p_outside, watch.decide_at), _status_limits(g.p_outside, watch.decide_at)
             if a != b:
-                l_cross.append({"group": g.label, "then": a, "now": b, "p_mean_outside_then": _num(old.p_outside),
-                                "p_mean_outside_now": _num(g.p_outside)})
+                l_cross.append(
+                    {
+                        "group": g.label,
+                        "then": a,
+                        "now": b,
+                        "p_mean_outside_then": _num(old.p_outside),
+                        "p_mean_outside_now": _num(g.p_outside),
+                    }
+                )
     now_set = set(labels)
     gone = [g for g in prev.groups if g.label not in now_set]
     rows += [_row(None, g, None, None, None, watch) for g in gone]
     moves.sort(key=lambda m: -abs(m["move_up"]))
-    report.update(new_groups=new, gone_groups=[g.label for g in gone], rank_moves=moves,
-                  threshold_crossings=t_cross, limit_crossings=l_cross, groups=rows)
+    report.update(
+        new_groups=new,
+        gone_groups=[g.label for g in gone],
+        rank_moves=moves,
+        threshold_crossings=t_cross,
+        limit_crossings=l_cross,
+        groups=rows,
+    )
     return report
 
 
 def _group_line(g: GroupResult) -> dict:
-    return {"group": g.label, "n": g.n, "post_mean": g.post_mean, "post_sd": g.post_sd, "rank_mean": g.rank_mean,
-            "p_above": _num(g.p_above), "p_mean_outside": _num(g.p_outside)}
+    return {
+        "group": g.label,
+        "n": g.n,
+        "post_mean": g.post_mean,
+        "post_sd": g.post_sd,
+        "rank_mean": g.rank_mean,
+        "p_above": _num(g.p_above),
+        "p_mean_outside": _num(g.p_outside),
+    }
 
 
-CSV_COLUMNS = ["group", "change", "n_then", "n_now", "mean_then", "mean_now", "sd_then", "sd_now", "shift",
-               "shift_in_sd", "p_now_above_then_mean", "rank_then", "rank_now", "rank_move_up",
-               "p_now_better_than_then_rank", "p_above_then", "p_above_now", "side_then", "side_now",
-               "p_mean_outside_then", "p_mean_outside_now", "limits_then", "limits_now"]
+CSV_COLUMNS = [
+    "group",
+    "change",
+    "n_then",
+    "n_now",
+    "mean_then",
+    "mean_now",
+    "sd_then",
+    "sd_now",
+    "shift",
+    "shift_in_sd",
+    "p_now_above_then_mean",
+    "rank_then",
+    "rank_now",
+    "rank_move_up",
+    "p_now_better_than_then_rank",
+    "p_above_then",
+    "p_above_now",
+    "side_then",
+    "side_now",
+    "p_mean_outside_then",
+    "p_mean_outside_now",
+    "limits_then",
+    "limits_now",
+]
 
 
 def _row(now: GroupResult | None, then: GroupResult | None, p_better, p_above_then_mean, comparable, watch) -> dict:
@@ -247,21 +345,37 @@ def _row(now: GroupResult | None, then: GroupResult | None, p_better, p_above_th
     r["group"] = g.label
     r["change"] = "new" if then is None else "gone" if now is None else "kept"
     if then is not None:
-        r.update(n_then=then.n, mean_then=then.post_mean, sd_then=then.post_sd, rank_then=then.rank_mean,
-                 p_above_then=_num(then.p_above), p_mean_outside_then=_num(then.p_outside),
-                 side_then=_status_threshold(then.p_above, watch.decide_at),
-                 limits_then=_status_limits(then.p_outside, watch.decide_at))
+        r.update(
+            n_then=then.n,
+            mean_then=then.post_mean,
+            sd_then=then.post_sd,
+            rank_then=then.rank_mean,
+            p_above_then=_num(then.p_above),
+            p_mean_outside_then=_num(then.p_outside),
+            side_then=_status_threshold(then.p_above, watch.decide_at),
+            limits_then=_status_limits(then.p_outside, watch.decide_at),
+        )
     if now is not None:
-        r.update(n_now=now.n, mean_now=now.post_mean, sd_now=now.post_sd, rank_now=now.rank_mean,
-                 p_above_now=_num(now.p_above), p_mean_outside_now=_num(now.p_outside),
-                 side_now=_status_threshold(now.p_above, watch.decide_at),
-                 limits_now=_status_limits(now.p_outside, watch.decide_at))
+        r.update(
+            n_now=now.n,
+            mean_now=now.post_mean,
+            sd_now=now.post_sd,
+            rank_now=now.rank_mean,
+            p_above_now=_num(now.p_above),
+            p_mean_outside_now=_num(now.p_outside),
+            side_now=_status_threshold(now.p_above, watch.decide_at),
+            limits_now=_status_limits(now.p_outside, watch.decide_at),
+        )
     if now is not None and then is not None:
         shift = now.post_mean - then.post_mean
         spread = float(np.hypot(now.post_sd, then.post_sd))
-        r.update(shift=shift, shift_in_sd=_num(shift / spread) if spread > 0 else None,
-                 p_now_above_then_mean=p_above_then_mean, rank_move_up=then.rank_mean - now.rank_mean,
-                 p_now_better_than_then_rank=p_better)
+        r.update(
+            shift=shift,
+            shift_in_sd=_num(shift / spread) if spread > 0 else None,
+            p_now_above_then_mean=p_above_then_mean,
+            rank_move_up=then.rank_mean - now.rank_mean,
+            p_now_better_than_then_rank=p_better,
+        )
         if comparable is not None and not comparable[0]:
             r.update(p_above_then=None, side_then=None)
         if comparable is not None and not comparable[1]:
@@ -299,16 +413,22 @@ def short_lines(report: dict) -> list[str]:
     """A few plain lines for the terminal."""
     prev = report["previous_run"]
     if prev is None:
-        return [f"changes: first recorded run of this store ({report['batches']['active']} active batches, "
-                f"{len(report['new_groups'])} groups)"]
+        return [
+            f"changes: first recorded run of this store ({report['batches']['active']} active batches, "
+            f"{len(report['new_groups'])} groups)"
+        ]
     b = report["batches"]
-    out = [f"changes since run {prev['id']} of {prev['created_at']}: {len(b['added'])} batch(es) added, "
-           f"{len(b['removed'])} withdrawn or replaced; {len(report['new_groups'])} new group(s), "
-           f"{len(report['gone_groups'])} gone; {len(report['rank_moves'])} rank move(s)"]
+    out = [
+        f"changes since run {prev['id']} of {prev['created_at']}: {len(b['added'])} batch(es) added, "
+        f"{len(b['removed'])} withdrawn or replaced; {len(report['new_groups'])} new group(s), "
+        f"{len(report['gone_groups'])} gone; {len(report['rank_moves'])} rank move(s)"
+    ]
     for name, h in report["hyperparameters"].items():
         sd = "" if h["shift_in_sd"] is None else f", {h['shift_in_sd']:+.2f} posterior sd"
-        out.append(f"  {name}: {h['then_mean']:.6g} -> {h['now_mean']:.6g} (shift {h['shift']:+.4g}{sd}; "
-                   f"P(now above the previous mean) = {h['p_now_above_then_mean']:.3f})")
+        out.append(
+            f"  {name}: {h['then_mean']:.6g} -> {h['now_mean']:.6g} (shift {h['shift']:+.4g}{sd}; "
+            f"P(now above the previous mean) = {h['p_now_above_then_mean']:.3f})"
+        )
     for key, what in (("threshold_crossings", "threshold"), ("limit_crossings", "limits")):
         for c in report[key][:10]:
             out.append(f"  {c['group']}: {c['then']} -> {c['now']} ({what})")
@@ -319,17 +439,17 @@ def short_lines(report: dict) -> list[str]:
 
 NOTES = {
     "p_now_above_then_mean": "P(x > the previous run's posterior mean of x), from this run's draws; the draws of "
-                             "two runs cannot be paired, so this is not the probability that x increased",
+    "two runs cannot be paired, so this is not the probability that x increased",
     "p_now_better_than_then_rank": "P(rank now < the previous posterior mean rank), from this run's draws; ranks "
-                                   "count among this run's groups, so new or gone groups shift them too",
+    "count among this run's groups, so new or gone groups shift them too",
     "rank_moves": "groups whose posterior mean rank moved by one place or more",
     "shift_in_sd": "(mean now - mean then) / sqrt(sd then^2 + sd now^2): a yardstick, not a test; the runs share "
-                   "most of their data, so the spread of the difference is smaller than this denominator",
+    "most of their data, so the spread of the difference is smaller than this denominator",
     "p_above": "P(theta_j > threshold) in each run, each from its own draws",
     "p_mean_outside": "P(theta_j < lower or theta_j > upper): the group's mean outside the specification limits, "
-                      "in each run (not the fraction of its measurements outside them)",
+    "in each run (not the fraction of its measurements outside them)",
     "crossings": "a group is listed when its side changed; side 'above'/'outside' needs a probability of at least "
-                 "decide_at, 'below'/'inside' at most 1 - decide_at, otherwise 'unsure'",
+    "decide_at, 'below'/'inside' at most 1 - decide_at, otherwise 'unsure'",
     "caution": "statistical screening supports, and never replaces, the applicable standards, local codes and "
-               "licensed professional judgment",
+    "licensed professional judgment",
 }

@@ -26,6 +26,7 @@ Numbers enter a checksum exactly as they are stored: -0.0 is stored as 0.0 (SQLi
 anyway), and a run's non-finite numbers as NULL. Two stores holding the same content therefore
 have the same checksums whatever the implementation, which is how a copy is verified.
 """
+
 from __future__ import annotations
 
 import hashlib

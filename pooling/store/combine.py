@@ -18,10 +18,11 @@ statistics are then the exponentially weighted counts, means and sums of squared
 and the effective n is fractional. Without a half-life every weight is 1 and the merge is the
 plain, exact one.
 """
+
 from __future__ import annotations
 
 import math
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 
 import numpy as np
 import pandas as pd
@@ -36,19 +37,21 @@ def parse_when(text: str, what: str) -> datetime:
     try:
         t = datetime.fromisoformat(str(text).strip())
     except ValueError:
-        raise InputError(f"bad option {what}: expected a date such as 2024-05-31 or 2024-05-31T22:00:00+02:00; "
-                         f"found '{text}'") from None
+        raise InputError(
+            f"bad option {what}: expected a date such as 2024-05-31 or 2024-05-31T22:00:00+02:00; found '{text}'"
+        ) from None
     if t.tzinfo is None:
-        t = t.replace(tzinfo=timezone.utc)
+        t = t.replace(tzinfo=UTC)
     try:
-        return t.astimezone(timezone.utc)
+        return t.astimezone(UTC)
     except OverflowError:  # e.g. 9999-12-31T23:59-14:00 is past the last instant a datetime holds in UTC
-        raise InputError(f"bad option {what}: '{text}' is outside the dates this program can hold "
-                         "(0001-01-01 to 9999-12-31 in UTC)") from None
+        raise InputError(
+            f"bad option {what}: '{text}' is outside the dates this program can hold (0001-01-01 to 9999-12-31 in UTC)"
+        ) from None
 
 
 def iso(t: datetime) -> str:
-    return t.astimezone(timezone.utc).isoformat(timespec="seconds")
+    return t.astimezone(UTC).isoformat(timespec="seconds")
 
 
 def age_days(dated_at: str, reference: datetime) -> float:
@@ -67,8 +70,9 @@ def forgetting_weights(batches: list[BatchInfo], reference: datetime, half_life_
     return np.power(0.5, ages / half_life_days)
 
 
-def combine(stats: list[BatchStats] | tuple[BatchStats, ...], weights: np.ndarray | None = None,
-            source: str = "<store>") -> GroupStats:
+def combine(
+    stats: list[BatchStats] | tuple[BatchStats, ...], weights: np.ndarray | None = None, source: str = "<store>"
+) -> GroupStats:
     """Merge batches group by group with the Chan-Golub-LeVeque update, batch b scaled by weights[b].
 
     Groups are ordered by first appearance (batch order, then order within the batch). The cost is
@@ -87,11 +91,12 @@ def combine(stats: list[BatchStats] | tuple[BatchStats, ...], weights: np.ndarra
     m2 = np.zeros(J)
     start = 0
     for b, w, size in zip(stats, weights, sizes):
-        pos = codes[start:start + size]
+        pos = codes[start : start + size]
         start += size
         nb = b.n.astype(np.float64) * w
-        n[pos], hi[pos], lo[pos], m2[pos] = merge_moments(n[pos], hi[pos], lo[pos], m2[pos], nb, b.mean, b.mean_lo,
-                                                          b.m2 * w)
+        n[pos], hi[pos], lo[pos], m2[pos] = merge_moments(
+            n[pos], hi[pos], lo[pos], m2[pos], nb, b.mean, b.mean_lo, b.m2 * w
+        )
     columns = _merge_columns(stats, codes, sizes, J, source)
     keep = n > 0  # a weight can underflow to 0 for batches very many half-lives old
     labels = tuple(str(u) for u in uniques)
@@ -112,12 +117,14 @@ def _merge_columns(stats, codes, sizes, J: int, source: str) -> dict:
     out = {name: np.full(J, None, dtype=object) for name in names}
     start = 0
     for b, size in zip(stats, sizes):
-        pos = codes[start:start + size]
+        pos = codes[start : start + size]
         start += size
         if set(b.columns) != names:
-            raise InputError(f"bad store {source}: batch {b.batch_id} keeps the group-level columns "
-                             f"{sorted(b.columns)}, batch {stats[0].batch_id} keeps {sorted(names)}; every active "
-                             "batch must keep the same ones (withdraw one of them)")
+            raise InputError(
+                f"bad store {source}: batch {b.batch_id} keeps the group-level columns "
+                f"{sorted(b.columns)}, batch {stats[0].batch_id} keeps {sorted(names)}; every active "
+                "batch must keep the same ones (withdraw one of them)"
+            )
         for name in names:
             values = np.asarray(b.columns[name], dtype=object)
             col = out[name]
@@ -183,7 +190,10 @@ def final_state_record(fit) -> dict:
     """What the next refit needs to start from this run's last states (plain JSON values)."""
     p = fit.problem
     return {
-        "within": p.model.within, "center": p.center, "scale": p.scale,
-        "nu_grid": [float(x) for x in p.nu_grid], "labels": list(p.stats.labels),
+        "within": p.model.within,
+        "center": p.center,
+        "scale": p.scale,
+        "nu_grid": [float(x) for x in p.nu_grid],
+        "labels": list(p.stats.labels),
         "chains": fit.raw.final_states,
     }

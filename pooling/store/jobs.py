@@ -9,11 +9,12 @@ thin shell over these functions, and the same functions serve Python users:
     >>> plan = jobs.plan_refit("plant.store", half_life_days=30)
     >>> fit = pooling.fit(plan.stats, model, settings, init=plan.init_for(model, settings.chains))
 """
+
 from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -23,17 +24,29 @@ from .base import BatchInfo, GroupResult, NewBatch, RunRecord, Snapshot, StoreCo
 from .changes import Watch, changes_csv, compare, digest
 from .combine import combine, final_state_record, forgetting_weights, iso, parse_when, warm_start
 from .ledger import DEFAULT_BUSY_SECONDS
-from .opening import open_store
 from .location import parse_location
+from .opening import open_store
 
 CHANGES_JSON = "changes.json"
 CHANGES_CSV = "changes.csv"
 
 
-def ingest_file(store_path, file, group: str, value: str, *, batch: str | None = None, at: str | None = None,
-                replace: bool = False, encoding: str | None = None, delimiter: str | None = None,
-                thousands: str | None = None, decimal: str | None = None, columns=(),
-                busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple[BatchInfo, bool]:
+def ingest_file(
+    store_path,
+    file,
+    group: str,
+    value: str,
+    *,
+    batch: str | None = None,
+    at: str | None = None,
+    replace: bool = False,
+    encoding: str | None = None,
+    delimiter: str | None = None,
+    thousands: str | None = None,
+    decimal: str | None = None,
+    columns=(),
+    busy_seconds: float = DEFAULT_BUSY_SECONDS,
+) -> tuple[BatchInfo, bool]:
     """Read one delivery (long table: a group and a value column) and add it to the store as one batch.
 
     `columns`: group-level columns to keep with the batch (one value per group, as `pooling fit` reads them
@@ -51,19 +64,43 @@ def ingest_file(store_path, file, group: str, value: str, *, batch: str | None =
     # a foreign or unreachable store is refused before the file is read
     st = open_store(loc, missing_ok=True, busy_seconds=busy_seconds)
     try:
-        stats = read_table(file, group, value, encoding=encoding, delimiter=delimiter, thousands=thousands,
-                           decimal=decimal, group_columns=list(columns))
+        stats = read_table(
+            file,
+            group,
+            value,
+            encoding=encoding,
+            delimiter=delimiter,
+            thousands=thousands,
+            decimal=decimal,
+            group_columns=list(columns),
+        )
         check_unicode_twins(stats.labels, str(file))  # within the batch; across batches refit checks (model.build)
         if stats.unit != 1.0:  # hardening: the store keeps n, mean, M2 in the user's units, with no unit column
-            raise InputError(f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what "
-                             f"the store keeps exactly; express them in other units (for example times "
-                             f"{unit_hint(stats.unit)})")
-        new = NewBatch(name=name, sha256=stats.file_sha256, source=str(file),
-                       dated_at=dated or iso(datetime.now(timezone.utc)), group_column=group, value_column=value)
+            raise InputError(
+                f"bad input in '{file}': the values are of magnitude near {stats.unit:.0e}, beyond what "
+                f"the store keeps exactly; express them in other units (for example times "
+                f"{unit_hint(stats.unit)})"
+            )
+        new = NewBatch(
+            name=name,
+            sha256=stats.file_sha256,
+            source=str(file),
+            dated_at=dated or iso(datetime.now(UTC)),
+            group_column=group,
+            value_column=value,
+        )
         if st is None:
             st = open_store(loc, create=True, busy_seconds=busy_seconds)
-        info = st.add_batch(new, stats.labels, stats.n, stats.mean, stats.mean_lo, stats.m2,
-                            columns={name: list(v) for name, v in stats.columns.items()}, replace=replace)
+        info = st.add_batch(
+            new,
+            stats.labels,
+            stats.n,
+            stats.mean,
+            stats.mean_lo,
+            stats.m2,
+            columns={name: list(v) for name, v in stats.columns.items()},
+            replace=replace,
+        )
         return info, st.created
     finally:
         if st is not None:
@@ -108,8 +145,9 @@ class RefitPlan:
         return warm_start(self.last.final_state, problem, chains)
 
 
-def plan_refit(store_path, *, half_life_days: float | None = None, as_of: str | None = None,
-               force: bool = False) -> RefitPlan:
+def plan_refit(
+    store_path, *, half_life_days: float | None = None, as_of: str | None = None, force: bool = False
+) -> RefitPlan:
     """Read the store, refuse (NothingNew) when no batch changed since the last run, merge the statistics."""
     t0 = time.perf_counter()
     with open_store(store_path) as st:
@@ -118,16 +156,30 @@ def plan_refit(store_path, *, half_life_days: float | None = None, as_of: str | 
         ledger = st.batches()
         last = st.last_run()
     if not snap.batches:
-        raise InputError(f"bad input: the store '{shown}' holds no active batch; "
-                         f"ingest one with `pooling ingest {shown} FILE --group COL --value COL`")
+        raise InputError(
+            f"bad input: the store '{shown}' holds no active batch; "
+            f"ingest one with `pooling ingest {shown} FILE --group COL --value COL`"
+        )
     if last is not None and last.state_sha256 == snap.state_sha256 and not force:
-        raise NothingNew(f"nothing new in the store '{shown}' since run {last.id} of {last.created_at} "
-                         f"(folder '{last.folder}'): no batch added or withdrawn; pass --force to refit anyway")
-    reference = parse_when(as_of, "--as-of") if as_of is not None else datetime.now(timezone.utc)
+        raise NothingNew(
+            f"nothing new in the store '{shown}' since run {last.id} of {last.created_at} "
+            f"(folder '{last.folder}'): no batch added or withdrawn; pass --force to refit anyway"
+        )
+    reference = parse_when(as_of, "--as-of") if as_of is not None else datetime.now(UTC)
     weights = forgetting_weights(list(snap.batches), reference, half_life_days)
     stats = combine(snap.stats, weights, source=f"store '{shown}' ({len(snap.batches)} active batches)")
-    return RefitPlan(str(store_path), shown, snap, ledger, last, reference, half_life_days,
-                     [float(w) for w in weights], stats, seconds_merge=time.perf_counter() - t0)
+    return RefitPlan(
+        str(store_path),
+        shown,
+        snap,
+        ledger,
+        last,
+        reference,
+        half_life_days,
+        [float(w) for w in weights],
+        stats,
+        seconds_merge=time.perf_counter() - t0,
+    )
 
 
 def _shown_path(plan: RefitPlan) -> str:
@@ -140,12 +192,17 @@ def write_changes(plan: RefitPlan, fit, watch: Watch, folder: Path) -> dict:
     summary, groups = digest(fit, watch)
     report = compare(fit, watch, groups, plan.last, plan.snapshot.batches, plan.ledger)
     report["store"] = {
-        "path": _shown_path(plan), "state_sha256": plan.snapshot.state_sha256,
-        "reference_at": iso(plan.reference), "half_life_days": plan.half_life_days,
-        "forgetting": None if plan.half_life_days is None else "w_b = 0.5 ** (age_b_days / half_life_days); "
-                      "n and M2 of batch b scaled by w_b, its means kept",
-        "batches": [{"id": b.id, "name": b.name, "sha256": b.sha256, "dated_at": b.dated_at, "rows": b.rows,
-                     "weight": w} for b, w in zip(plan.snapshot.batches, plan.weights)],
+        "path": _shown_path(plan),
+        "state_sha256": plan.snapshot.state_sha256,
+        "reference_at": iso(plan.reference),
+        "half_life_days": plan.half_life_days,
+        "forgetting": None
+        if plan.half_life_days is None
+        else "w_b = 0.5 ** (age_b_days / half_life_days); n and M2 of batch b scaled by w_b, its means kept",
+        "batches": [
+            {"id": b.id, "name": b.name, "sha256": b.sha256, "dated_at": b.dated_at, "rows": b.rows, "weight": w}
+            for b, w in zip(plan.snapshot.batches, plan.weights)
+        ],
     }
     from ..output import _clean, write_json
 
@@ -162,23 +219,40 @@ def run_record(plan: RefitPlan, fit, out: Path, settings_dict: dict) -> RunRecor
     from ..output import _clean
 
     summary = dict(plan.summary)
-    summary.update(model=fit.problem.model.to_dict(), settings=settings_dict,
-                   statistics_sha256=fit.problem.stats.fingerprint(), groups=fit.problem.stats.J,
-                   weights=plan.weights, seed=int(fit.raw.seed))
+    summary.update(
+        model=fit.problem.model.to_dict(),
+        settings=settings_dict,
+        statistics_sha256=fit.problem.stats.fingerprint(),
+        groups=fit.problem.stats.J,
+        weights=plan.weights,
+        seed=int(fit.raw.seed),
+    )
     g = plan.groups
-    intervals = {"level": summary.get("watch", {}).get("level"), "labels": [x.label for x in g],
-                 "n": [x.n for x in g], "mean": [x.post_mean for x in g], "low": [x.q_lo for x in g],
-                 "high": [x.q_hi for x in g], "rank_mean": [x.rank_mean for x in g]}
+    intervals = {
+        "level": summary.get("watch", {}).get("level"),
+        "labels": [x.label for x in g],
+        "n": [x.n for x in g],
+        "mean": [x.post_mean for x in g],
+        "low": [x.q_lo for x in g],
+        "high": [x.q_hi for x in g],
+        "rank_mean": [x.rank_mean for x in g],
+    }
     if any(x.p_above == x.p_above for x in g):  # not NaN: a threshold was watched
         intervals["p_above"] = [x.p_above for x in g]
     if any(x.p_outside == x.p_outside for x in g):
         intervals["p_mean_outside"] = [x.p_outside for x in g]
     summary["group_intervals"] = intervals
     return RunRecord(
-        created_at=iso(datetime.now(timezone.utc)), folder=str(Path(out).resolve()),
-        state_sha256=plan.snapshot.state_sha256, batch_ids=tuple(b.id for b in plan.snapshot.batches),
-        reference_at=iso(plan.reference), half_life_days=plan.half_life_days, targets_met=bool(fit.targets_met),
-        summary=_clean(summary), groups=tuple(plan.groups), final_state=_clean(final_state_record(fit)),
+        created_at=iso(datetime.now(UTC)),
+        folder=str(Path(out).resolve()),
+        state_sha256=plan.snapshot.state_sha256,
+        batch_ids=tuple(b.id for b in plan.snapshot.batches),
+        reference_at=iso(plan.reference),
+        half_life_days=plan.half_life_days,
+        targets_met=bool(fit.targets_met),
+        summary=_clean(summary),
+        groups=tuple(plan.groups),
+        final_state=_clean(final_state_record(fit)),
     )
 
 
@@ -191,6 +265,7 @@ def record_run(plan: RefitPlan, fit, out: Path, settings_dict: dict) -> int:
 
 # ---------------------------------------------------------------------------------------------
 # checking a whole store, and copying one between SQLite and PostgreSQL
+
 
 def check_store(store_path, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple[str, list[str], str]:
     """Check a whole store: (how it is named, every problem found, one line of what it holds when sound).
@@ -205,8 +280,9 @@ def check_store(store_path, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tuple
             lines, runs = st.batches(), st.runs()
             active = sum(b.status == "active" for b in lines)
             rows = sum(b.groups for b in lines)
-            facts = (f"{len(lines)} batches in the ledger ({active} active, {rows} group rows), "
-                     f"{len(runs)} recorded runs")
+            facts = (
+                f"{len(lines)} batches in the ledger ({active} active, {rows} group rows), {len(runs)} recorded runs"
+            )
         return st.path, problems, facts
 
 
@@ -244,8 +320,9 @@ def content_differences(a: StoreContent, b: StoreContent) -> list[str]:
         out.append("the copy holds statistics of batches the original does not")
     if rows_differ(a.runs, b.runs):
         out.append("the recorded runs differ")
-    if set(a.run_groups) != set(b.run_groups) or any(rows_differ(a.run_groups[k], b.run_groups[k])
-                                                     for k in a.run_groups):
+    if set(a.run_groups) != set(b.run_groups) or any(
+        rows_differ(a.run_groups[k], b.run_groups[k]) for k in a.run_groups
+    ):
         out.append("the runs' group results differ")
     return out
 
@@ -269,8 +346,10 @@ def copy_store(source, target, busy_seconds: float = DEFAULT_BUSY_SECONDS) -> tu
         try:
             from .postgres import create_pg_copy
         except ImportError:
-            raise InputError(f"bad store '{dst_loc.display}': a PostgreSQL store needs psycopg, which is not "
-                             "installed: pip install 'pooling[postgresql]'") from None
+            raise InputError(
+                f"bad store '{dst_loc.display}': a PostgreSQL store needs psycopg, which is not "
+                "installed: pip install 'pooling[postgresql]'"
+            ) from None
 
         create_pg_copy(dst_loc, content, shown, verify, busy_seconds=busy_seconds)
     else:

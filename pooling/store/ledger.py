@@ -31,6 +31,7 @@ its own transaction (`_check_columns`). PostgreSQL keeps such checks apart from 
 lock on the store's columns: exclusive for a batch that keeps columns, shared for one that keeps none (so that
 ingests into a store without columns still run side by side).
 """
+
 from __future__ import annotations
 
 import json
@@ -39,7 +40,7 @@ import os
 import re
 import time
 from contextlib import contextmanager
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -61,30 +62,71 @@ from .base import (
 SCHEMA_VERSION = 3
 DEFAULT_BUSY_SECONDS = 60.0
 
-LINE_COLS = ("id", "name", "sha256", "source", "group_column", "value_column", "rows", "groups", "dated_at",
-             "ingested_at", "status", "changed_at", "note", "stats_sum", "line_sum")
+LINE_COLS = (
+    "id",
+    "name",
+    "sha256",
+    "source",
+    "group_column",
+    "value_column",
+    "rows",
+    "groups",
+    "dated_at",
+    "ingested_at",
+    "status",
+    "changed_at",
+    "note",
+    "stats_sum",
+    "line_sum",
+)
 GROUP_COLS = ("batch_id", "position", "label", "n", "mean", "mean_lo", "m2")
-RUN_COLS = ("id", "created_at", "folder", "state_sha256", "batch_ids", "reference_at", "half_life_days",
-            "targets_met", "summary", "groups_sum", "line_sum", "final_state", "state_sum")
-RUN_GROUP_COLS = ("run_id", "position", "label", "n", "raw_mean", "post_mean", "post_sd", "q_lo", "q_hi",
-                  "rank_mean", "rank_sd", "p_above", "p_outside")
+RUN_COLS = (
+    "id",
+    "created_at",
+    "folder",
+    "state_sha256",
+    "batch_ids",
+    "reference_at",
+    "half_life_days",
+    "targets_met",
+    "summary",
+    "groups_sum",
+    "line_sum",
+    "final_state",
+    "state_sum",
+)
+RUN_GROUP_COLS = (
+    "run_id",
+    "position",
+    "label",
+    "n",
+    "raw_mean",
+    "post_mean",
+    "post_sd",
+    "q_lo",
+    "q_hi",
+    "rank_mean",
+    "rank_sd",
+    "p_above",
+    "p_outside",
+)
 GROUP_TYPES = ("bigint", "integer", "text", "bigint", "float8", "float8", "float8")
 COLUMN_COLS = ("batch_id", "column_name", "position", "value")
 COLUMN_TYPES = ("bigint", "text", "integer", "text")
 RUN_GROUP_TYPES = ("bigint", "integer", "text") + ("float8",) * 10
 
 # test-only hook: when set, an ingest (or a store creation) pauses so that a test can kill it there
-PAUSE_ENV = "POOLING_TEST_INGEST_PAUSE"            # file to create when the pause starts
-PAUSE_AT_ENV = "POOLING_TEST_INGEST_PAUSE_AT"      # "middle", "before-commit" or "create"
+PAUSE_ENV = "POOLING_TEST_INGEST_PAUSE"  # file to create when the pause starts
+PAUSE_AT_ENV = "POOLING_TEST_INGEST_PAUSE_AT"  # "middle", "before-commit" or "create"
 PAUSE_SECONDS_ENV = "POOLING_TEST_INGEST_PAUSE_SECONDS"
-RESUME_ENV = "POOLING_TEST_INGEST_RESUME"          # a file whose appearance ends the pause early
+RESUME_ENV = "POOLING_TEST_INGEST_RESUME"  # a file whose appearance ends the pause early
 
 _HEX64 = re.compile(r"[0-9a-f]{64}")
 _HEX16 = re.compile(r"[0-9a-f]{16}")
 
 
 def now_utc() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+    return datetime.now(UTC).isoformat(timespec="seconds")
 
 
 def q(name: str) -> str:
@@ -203,15 +245,21 @@ class SqlLedger(BatchStore):
     # -- messages ------------------------------------------------------------------------------
 
     def _damaged(self, problem: str) -> InputError:
-        return InputError(f"bad store '{self.path}': {problem}: the store was changed outside pooling or is "
-                          f"damaged; nothing was done (`pooling checkup {self.path}` lists every problem; restore "
-                          "the store from a backup)")
+        return InputError(
+            f"bad store '{self.path}': {problem}: the store was changed outside pooling or is "
+            f"damaged; nothing was done (`pooling checkup {self.path}` lists every problem; restore "
+            "the store from a backup)"
+        )
 
     # -- the ledger lines ----------------------------------------------------------------------
 
     def _line_problem(self, line) -> str | None:
-        if (len(line) != len(LINE_COLS) or not _is_sum(line[-1]) or _safe(C.line_sum, line[:-1]) != line[-1]
-                or line[10] not in ("active", "withdrawn", "replaced")):
+        if (
+            len(line) != len(LINE_COLS)
+            or not _is_sum(line[-1])
+            or _safe(C.line_sum, line[:-1]) != line[-1]
+            or line[10] not in ("active", "withdrawn", "replaced")
+        ):
             return f"the ledger line of {_who(line)} does not match its checksum"
         return None
 
@@ -224,10 +272,16 @@ class SqlLedger(BatchStore):
             if sums is None:
                 continue
             good = [s for s in sums if _is_sum(s)]
-            if type(count) is not int or not _is_sum(acc, _HEX16) or count != len(sums) or (
-                    len(good) == len(sums) and C.acc_of(good) != acc):
-                out.append(f"the {what} lines ({len(sums)} found) do not agree with the ledger head "
-                           f"({count!r} recorded): a line was removed, added or altered")
+            if (
+                type(count) is not int
+                or not _is_sum(acc, _HEX16)
+                or count != len(sums)
+                or (len(good) == len(sums) and C.acc_of(good) != acc)
+            ):
+                out.append(
+                    f"the {what} lines ({len(sums)} found) do not agree with the ledger head "
+                    f"({count!r} recorded): a line was removed, added or altered"
+                )
         return out
 
     def _lines(self, tx) -> list[tuple]:
@@ -249,8 +303,9 @@ class SqlLedger(BatchStore):
 
     def _bump_head(self, tx, *, batch: tuple = (), run: tuple = ()) -> None:
         """Apply changes to the head: `batch` / `run` are (count change, sums added, sums removed)."""
-        head = tx.one("SELECT batch_lines, batch_acc, run_lines, run_acc FROM store_head WHERE one = 1"
-                      + self._FOR_UPDATE)
+        head = tx.one(
+            "SELECT batch_lines, batch_acc, run_lines, run_acc FROM store_head WHERE one = 1" + self._FOR_UPDATE
+        )
         if head is None:
             raise self._damaged("the ledger head is missing")
         bl, ba, rl, ra = head
@@ -269,8 +324,10 @@ class SqlLedger(BatchStore):
                 bl, ba = bl + count, acc
             else:
                 rl, ra = rl + count, acc
-        tx.run("UPDATE store_head SET batch_lines = ?, batch_acc = ?, run_lines = ?, run_acc = ? WHERE one = 1",
-               (bl, ba, rl, ra))
+        tx.run(
+            "UPDATE store_head SET batch_lines = ?, batch_acc = ?, run_lines = ?, run_acc = ? WHERE one = 1",
+            (bl, ba, rl, ra),
+        )
 
     def _restate(self, tx, line, status: str, changed_at: str, note) -> tuple:
         """Change a line's status (its checksum rewritten, the head adjusted) after checking the line as it was."""
@@ -280,14 +337,17 @@ class SqlLedger(BatchStore):
         fields = list(line[:-1])
         fields[10], fields[11], fields[12] = status, changed_at, note
         new = C.line_sum(fields)
-        tx.run("UPDATE batches SET status = ?, changed_at = ?, note = ?, line_sum = ? WHERE id = ?",
-               (status, changed_at, note, new, line[0]))
+        tx.run(
+            "UPDATE batches SET status = ?, changed_at = ?, note = ?, line_sum = ? WHERE id = ?",
+            (status, changed_at, note, new, line[0]),
+        )
         return line[-1], new
 
     # -- the interface -------------------------------------------------------------------------
 
-    def add_batch(self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None,
-                  replace: bool = False) -> BatchInfo:
+    def add_batch(
+        self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None, replace: bool = False
+    ) -> BatchInfo:
         labels = [str(x) for x in labels]
         n = np.asarray(n, dtype=np.int64)
         mean, mean_lo, m2 = (C.stored_floats(x) for x in (mean, mean_lo, m2))
@@ -304,39 +364,67 @@ class SqlLedger(BatchStore):
             same = tx.one(f"{sel} WHERE sha256 = ? AND status = 'active'", (new.sha256,))
             if same is not None:
                 b = self._info(same)
-                raise NothingNew(f"the content of '{new.source}' is in the store already as batch '{b.name}' "
-                                 f"(ingested {b.ingested_at}); nothing changed")
+                raise NothingNew(
+                    f"the content of '{new.source}' is in the store already as batch '{b.name}' "
+                    f"(ingested {b.ingested_at}); nothing changed"
+                )
             current = tx.one(f"{sel} WHERE name = ? AND status != 'replaced'", (new.name,))
             if current is not None and not replace:
                 b = self._info(current)
-                raise InputError(f"bad input: a batch named '{new.name}' is in the store '{self.path}' already "
-                                 f"({b.status}, {b.rows} rows, sha256 {b.sha256[:12]}) with other content; "
-                                 "name this one with --batch NAME, or pass --replace to replace it")
+                raise InputError(
+                    f"bad input: a batch named '{new.name}' is in the store '{self.path}' already "
+                    f"({b.status}, {b.rows} rows, sha256 {b.sha256[:12]}) with other content; "
+                    "name this one with --batch NAME, or pass --replace to replace it"
+                )
             gone = tx.one(f"{sel} WHERE sha256 = ? AND status = 'withdrawn'", (new.sha256,))
             if gone is not None and not replace:
                 b = self._info(gone)
-                raise InputError(f"bad input: the content of '{new.source}' was withdrawn as batch '{b.name}' at "
-                                 f"{b.changed_at}; pass --replace to take it back")
+                raise InputError(
+                    f"bad input: the content of '{new.source}' was withdrawn as batch '{b.name}' at "
+                    f"{b.changed_at}; pass --replace to take it back"
+                )
             self._lock_columns(tx, exclusive=bool(columns))
             self._check_columns(tx, new, labels, columns, None if current is None else current[0])
             swapped = ()
             if current is not None:
-                swapped = self._restate(tx, current, "replaced", when,
-                                        f"replaced by a new delivery of the same name at {when}")
+                swapped = self._restate(
+                    tx, current, "replaced", when, f"replaced by a new delivery of the same name at {when}"
+                )
             bid = self._next_id(tx, "batches")
-            fields = (bid, new.name, new.sha256, new.source, new.group_column, new.value_column, rows, len(labels),
-                      new.dated_at, when, "active", None, None, ssum)
+            fields = (
+                bid,
+                new.name,
+                new.sha256,
+                new.source,
+                new.group_column,
+                new.value_column,
+                rows,
+                len(labels),
+                new.dated_at,
+                when,
+                "active",
+                None,
+                None,
+                ssum,
+            )
             lsum = C.line_sum(fields)
-            tx.run(f"INSERT INTO batches ({cols(LINE_COLS)}) VALUES ({', '.join('?' * len(LINE_COLS))})",
-                   (*fields, lsum))
-            payload = [(bid, i, lab, int(n[i]), float(mean[i]), float(mean_lo[i]), float(m2[i]))
-                       for i, lab in enumerate(labels)]
+            tx.run(
+                f"INSERT INTO batches ({cols(LINE_COLS)}) VALUES ({', '.join('?' * len(LINE_COLS))})", (*fields, lsum)
+            )
+            payload = [
+                (bid, i, lab, int(n[i]), float(mean[i]), float(mean_lo[i]), float(m2[i]))
+                for i, lab in enumerate(labels)
+            ]
             half = len(payload) // 2
             tx.bulk("batch_groups", GROUP_COLS, payload[:half], GROUP_TYPES)
             _test_pause("middle")
             tx.bulk("batch_groups", GROUP_COLS, payload[half:], GROUP_TYPES)
-            tx.bulk("batch_columns", COLUMN_COLS, [(bid, name, i, v) for name in sorted(columns)
-                                                   for i, v in enumerate(columns[name])], COLUMN_TYPES)
+            tx.bulk(
+                "batch_columns",
+                COLUMN_COLS,
+                [(bid, name, i, v) for name in sorted(columns) for i, v in enumerate(columns[name])],
+                COLUMN_TYPES,
+            )
             added, removed = [lsum], []
             if swapped:
                 removed.append(swapped[0])
@@ -350,9 +438,12 @@ class SqlLedger(BatchStore):
         the one it replaces): other column names, or a group with another value in a column. Reads the active
         batches' distinct (group, column, value) triples, O(their group rows)."""
         skip = -1 if replacing is None else replacing
-        kept = tx.all("SELECT b.id, b.name, c.column_name FROM batches b LEFT JOIN (SELECT DISTINCT batch_id, "
-                      "column_name FROM batch_columns) c ON c.batch_id = b.id WHERE b.status = 'active' AND b.id <> ? "
-                      "ORDER BY b.id", (skip,))
+        kept = tx.all(
+            "SELECT b.id, b.name, c.column_name FROM batches b LEFT JOIN (SELECT DISTINCT batch_id, "
+            "column_name FROM batch_columns) c ON c.batch_id = b.id WHERE b.status = 'active' AND b.id <> ? "
+            "ORDER BY b.id",
+            (skip,),
+        )
         if not kept:
             return
         names: dict[int, tuple[str, set]] = {}
@@ -368,18 +459,26 @@ class SqlLedger(BatchStore):
             if lacks:
                 fix = "ingest it with " + " ".join(f"--column {c}" for c in lacks)
             else:
-                fix = ("ingest it without " + " ".join(f"--column {c}" for c in sorted(mine - theirs))
-                       + ", or withdraw the active batches and ingest them again with these columns")
-            raise InputError(f"bad input in '{new.source}': the store '{self.path}' keeps the group-level columns "
-                             f"{shown} with its active batch '{bname}', and this batch keeps {mine_shown}; every active "
-                             f"batch keeps the same group-level columns: {fix}; nothing was changed")
+                fix = (
+                    "ingest it without "
+                    + " ".join(f"--column {c}" for c in sorted(mine - theirs))
+                    + ", or withdraw the active batches and ingest them again with these columns"
+                )
+            raise InputError(
+                f"bad input in '{new.source}': the store '{self.path}' keeps the group-level columns "
+                f"{shown} with its active batch '{bname}', and this batch keeps {mine_shown}; every active "
+                f"batch keeps the same group-level columns: {fix}; nothing was changed"
+            )
         if not columns:
             return
         from ..stats import _same_number, _show
 
-        held = tx.all("SELECT g.label, c.column_name, c.value, min(b.id) FROM batch_columns c JOIN batch_groups g "
-                      "ON g.batch_id = c.batch_id AND g.position = c.position JOIN batches b ON b.id = c.batch_id "
-                      "WHERE b.status = 'active' AND b.id <> ? GROUP BY g.label, c.column_name, c.value", (skip,))
+        held = tx.all(
+            "SELECT g.label, c.column_name, c.value, min(b.id) FROM batch_columns c JOIN batch_groups g "
+            "ON g.batch_id = c.batch_id AND g.position = c.position JOIN batches b ON b.id = c.batch_id "
+            "WHERE b.status = 'active' AND b.id <> ? GROUP BY g.label, c.column_name, c.value",
+            (skip,),
+        )
         stored: dict[tuple[str, str], list] = {}
         for label, col, value, bid in held:
             stored.setdefault((label, col), []).append((bid, value))
@@ -391,7 +490,8 @@ class SqlLedger(BatchStore):
                             f"bad input in '{new.source}', group {_show(label)}, column '{name}': the store "
                             f"'{self.path}' holds {_show(old)} for this group (batch '{names[bid][0]}'), this batch "
                             f"has {_show(value)}; a group-level column holds one value per group; nothing was changed "
-                            "(correct the file, or withdraw the batch that holds the other value)")
+                            "(correct the file, or withdraw the batch that holds the other value)"
+                        )
 
     def withdraw(self, name: str, note: str | None = None) -> BatchInfo:
         when = now_utc()
@@ -399,8 +499,10 @@ class SqlLedger(BatchStore):
             self._lock(tx, [f"name:{name}"])
             line = tx.one(f"SELECT {cols(LINE_COLS)} FROM batches WHERE name = ? AND status != 'replaced'", (name,))
             if line is None:
-                raise InputError(f"bad input: no batch named '{name}' in the store '{self.path}'; "
-                                 f"`pooling batches {self.path}` lists them")
+                raise InputError(
+                    f"bad input: no batch named '{name}' in the store '{self.path}'; "
+                    f"`pooling batches {self.path}` lists them"
+                )
             b = self._info(line)
             if b.status == "withdrawn":
                 raise NothingNew(f"batch '{name}' was withdrawn already at {b.changed_at}; nothing changed")
@@ -416,18 +518,23 @@ class SqlLedger(BatchStore):
     def _group_rows(self, tx, active_only: bool = False) -> list[tuple]:
         if not active_only:
             return tx.all(f"SELECT {cols(GROUP_COLS)} FROM batch_groups ORDER BY batch_id, position")
-        return tx.all(f"SELECT {', '.join('g.' + q(c) for c in GROUP_COLS)} FROM batch_groups g "
-                      "JOIN batches b ON b.id = g.batch_id WHERE b.status = 'active' ORDER BY g.batch_id, g.position")
+        return tx.all(
+            f"SELECT {', '.join('g.' + q(c) for c in GROUP_COLS)} FROM batch_groups g "
+            "JOIN batches b ON b.id = g.batch_id WHERE b.status = 'active' ORDER BY g.batch_id, g.position"
+        )
 
     def _column_rows(self, tx, active_only: bool = False) -> list[tuple]:
         """batch_columns rows; sorted by batch here (the database's text order depends on its collation)."""
         if not active_only:
             rows = tx.all(f"SELECT {cols(COLUMN_COLS)} FROM batch_columns")
         else:
-            rows = tx.all(f"SELECT {', '.join('c.' + q(c) for c in COLUMN_COLS)} FROM batch_columns c "
-                          "JOIN batches b ON b.id = c.batch_id WHERE b.status = 'active'")
-        return sorted(rows, key=lambda r: (r[0] if type(r[0]) is int else -1, str(r[1]),
-                                           r[2] if type(r[2]) is int else -1))
+            rows = tx.all(
+                f"SELECT {', '.join('c.' + q(c) for c in COLUMN_COLS)} FROM batch_columns c "
+                "JOIN batches b ON b.id = c.batch_id WHERE b.status = 'active'"
+            )
+        return sorted(
+            rows, key=lambda r: (r[0] if type(r[0]) is int else -1, str(r[1]), r[2] if type(r[2]) is int else -1)
+        )
 
     def _stats(self, lines, rows, collect: list | None = None, col_rows=()) -> list[BatchStats]:
         """Split group rows (and group-level column rows) by batch and check each batch's statistics and columns
@@ -468,8 +575,17 @@ class SqlLedger(BatchStore):
                     raise self._damaged(what)
                 collect.append(what)
                 continue
-            out.append(BatchStats(int(line[0]), tuple(labels[s:e]), n[s:e], mean[s:e], lo[s:e], m2[s:e],
-                                  {name: tuple(v) for name, v in columns.items()}))
+            out.append(
+                BatchStats(
+                    int(line[0]),
+                    tuple(labels[s:e]),
+                    n[s:e],
+                    mean[s:e],
+                    lo[s:e],
+                    m2[s:e],
+                    {name: tuple(v) for name, v in columns.items()},
+                )
+            )
         return out
 
     def snapshot(self) -> Snapshot:
@@ -505,9 +621,19 @@ class SqlLedger(BatchStore):
     @staticmethod
     def _run(row, groups=(), final_state=None) -> RunRecord:
         (rid, created, folder, sha, ids, ref, hl, met, summary) = row[:9]
-        return RunRecord(created_at=created, folder=folder, state_sha256=sha, batch_ids=tuple(json.loads(ids)),
-                         reference_at=ref, half_life_days=hl, targets_met=bool(met), summary=json.loads(summary),
-                         groups=tuple(groups), final_state=final_state, id=rid)
+        return RunRecord(
+            created_at=created,
+            folder=folder,
+            state_sha256=sha,
+            batch_ids=tuple(json.loads(ids)),
+            reference_at=ref,
+            half_life_days=hl,
+            targets_met=bool(met),
+            summary=json.loads(summary),
+            groups=tuple(groups),
+            final_state=final_state,
+            id=rid,
+        )
 
     def runs(self) -> list[RunRecord]:
         with self._read() as tx:
@@ -515,8 +641,10 @@ class SqlLedger(BatchStore):
 
     def _run_group_rows(self, tx, run_id=None) -> list[tuple]:
         where = "" if run_id is None else "WHERE run_id = ?"
-        return tx.all(f"SELECT {cols(RUN_GROUP_COLS)} FROM run_groups {where} ORDER BY run_id, position",
-                      () if run_id is None else (run_id,))
+        return tx.all(
+            f"SELECT {cols(RUN_GROUP_COLS)} FROM run_groups {where} ORDER BY run_id, position",
+            () if run_id is None else (run_id,),
+        )
 
     def _run_groups_ok(self, run, rows) -> bool:
         body = [r[1:] for r in rows]
@@ -550,24 +678,51 @@ class SqlLedger(BatchStore):
     def record_run(self, run: RunRecord) -> int:
         summary = json.dumps(run.summary, allow_nan=False)
         fs = None if run.final_state is None else json.dumps(run.final_state, allow_nan=False)
-        body = [(i, g.label, _real(g.n), _real(g.raw_mean), _real(g.post_mean), _real(g.post_sd), _real(g.q_lo),
-                 _real(g.q_hi), _real(g.rank_mean), _real(g.rank_sd), _real(g.p_above), _real(g.p_outside))
-                for i, g in enumerate(run.groups)]
+        body = [
+            (
+                i,
+                g.label,
+                _real(g.n),
+                _real(g.raw_mean),
+                _real(g.post_mean),
+                _real(g.post_sd),
+                _real(g.q_lo),
+                _real(g.q_hi),
+                _real(g.rank_mean),
+                _real(g.rank_sd),
+                _real(g.p_above),
+                _real(g.p_outside),
+            )
+            for i, g in enumerate(run.groups)
+        ]
         gsum = C.run_groups_sum(body)
         half = None if run.half_life_days is None else float(run.half_life_days)
         with self._write() as tx:
             self._lock(tx, ["runs"])
             rid = self._next_id(tx, "runs")
-            fields = (rid, run.created_at, run.folder, run.state_sha256, json.dumps(list(run.batch_ids)),
-                      run.reference_at, half, int(run.targets_met), summary, gsum)
+            fields = (
+                rid,
+                run.created_at,
+                run.folder,
+                run.state_sha256,
+                json.dumps(list(run.batch_ids)),
+                run.reference_at,
+                half,
+                int(run.targets_met),
+                summary,
+                gsum,
+            )
             lsum = C.run_line_sum(fields)
-            tx.run(f"INSERT INTO runs ({cols(RUN_COLS)}) VALUES ({', '.join('?' * len(RUN_COLS))})",
-                   (*fields, lsum, fs, C.state_sum(fs)))
+            tx.run(
+                f"INSERT INTO runs ({cols(RUN_COLS)}) VALUES ({', '.join('?' * len(RUN_COLS))})",
+                (*fields, lsum, fs, C.state_sum(fs)),
+            )
             tx.bulk("run_groups", RUN_GROUP_COLS, [(rid, *r) for r in body], RUN_GROUP_TYPES)
             # only the latest run's chain states are ever used (to start the next refit); older ones
             # would make the store grow by chains x groups numbers every night
-            tx.run("UPDATE runs SET final_state = NULL, state_sum = NULL WHERE id < ? AND final_state IS NOT NULL",
-                   (rid,))
+            tx.run(
+                "UPDATE runs SET final_state = NULL, state_sum = NULL WHERE id < ? AND final_state IS NOT NULL", (rid,)
+            )
             self._bump_head(tx, run=(1, [lsum], []))
         return rid
 
@@ -608,8 +763,9 @@ class SqlLedger(BatchStore):
             found.append(f"statistics rows of batch id(s) {', '.join(map(str, stray[:5]))} that are not in the ledger")
         stray = sorted({r[0] for r in col_rows} - known, key=str)
         if stray:
-            found.append(f"group-level column rows of batch id(s) {', '.join(map(str, stray[:5]))} that are not in "
-                         "the ledger")
+            found.append(
+                f"group-level column rows of batch id(s) {', '.join(map(str, stray[:5]))} that are not in the ledger"
+            )
         by_run: dict = {}
         for r in run_rows:
             by_run.setdefault(r[0], []).append(r)
@@ -639,8 +795,9 @@ class SqlLedger(BatchStore):
         stats = {s.batch_id: s for s in self._stats(lines, rows, col_rows=col_rows)}
         stray = sorted({r[0] for r in col_rows} - set(stats), key=str)
         if stray:
-            raise self._damaged(f"group-level column rows of batch id(s) {', '.join(map(str, stray[:5]))} are not "
-                                "in the ledger")
+            raise self._damaged(
+                f"group-level column rows of batch id(s) {', '.join(map(str, stray[:5]))} are not in the ledger"
+            )
         by_run: dict = {r[0]: [] for r in runs}
         for r in run_rows:
             by_run.setdefault(r[0], []).append(r)
@@ -656,22 +813,44 @@ class SqlLedger(BatchStore):
         with self._write() as tx:
             if tx.one("SELECT count(*) FROM batches")[0] or tx.one("SELECT count(*) FROM runs")[0]:
                 raise InputError(f"bad store '{self.path}': it is not empty; copy into a new store")
-            tx.run(f"INSERT INTO batches ({cols(LINE_COLS)}) VALUES ({', '.join('?' * len(LINE_COLS))})",
-                   content.lines, many=True)
+            tx.run(
+                f"INSERT INTO batches ({cols(LINE_COLS)}) VALUES ({', '.join('?' * len(LINE_COLS))})",
+                content.lines,
+                many=True,
+            )
             for line in content.lines:
                 s = content.stats[line[0]]
-                tx.bulk("batch_groups", GROUP_COLS,
-                        [(s.batch_id, i, lab, int(s.n[i]), float(s.mean[i]), float(s.mean_lo[i]), float(s.m2[i]))
-                         for i, lab in enumerate(s.labels)], GROUP_TYPES)
-                tx.bulk("batch_columns", COLUMN_COLS, [(s.batch_id, name, i, v) for name in sorted(s.columns)
-                                                       for i, v in enumerate(s.columns[name])], COLUMN_TYPES)
-            tx.run(f"INSERT INTO runs ({cols(RUN_COLS)}) VALUES ({', '.join('?' * len(RUN_COLS))})",
-                   content.runs, many=True)
+                tx.bulk(
+                    "batch_groups",
+                    GROUP_COLS,
+                    [
+                        (s.batch_id, i, lab, int(s.n[i]), float(s.mean[i]), float(s.mean_lo[i]), float(s.m2[i]))
+                        for i, lab in enumerate(s.labels)
+                    ],
+                    GROUP_TYPES,
+                )
+                tx.bulk(
+                    "batch_columns",
+                    COLUMN_COLS,
+                    [(s.batch_id, name, i, v) for name in sorted(s.columns) for i, v in enumerate(s.columns[name])],
+                    COLUMN_TYPES,
+                )
+            tx.run(
+                f"INSERT INTO runs ({cols(RUN_COLS)}) VALUES ({', '.join('?' * len(RUN_COLS))})",
+                content.runs,
+                many=True,
+            )
             for run in content.runs:
                 tx.bulk("run_groups", RUN_GROUP_COLS, content.run_groups[run[0]], RUN_GROUP_TYPES)
-            tx.run("UPDATE store_head SET batch_lines = ?, batch_acc = ?, run_lines = ?, run_acc = ? WHERE one = 1",
-                   (len(content.lines), C.acc_of(ln[-1] for ln in content.lines),
-                    len(content.runs), C.acc_of(r[10] for r in content.runs)))
+            tx.run(
+                "UPDATE store_head SET batch_lines = ?, batch_acc = ?, run_lines = ?, run_acc = ? WHERE one = 1",
+                (
+                    len(content.lines),
+                    C.acc_of(ln[-1] for ln in content.lines),
+                    len(content.runs),
+                    C.acc_of(r[10] for r in content.runs),
+                ),
+            )
             for key in ("created_at", "created_by"):
                 if key in content.meta:
                     tx.run("UPDATE pooling_store SET value = ? WHERE key = ?", (content.meta[key], key))
@@ -685,14 +864,17 @@ class SqlLedger(BatchStore):
         rows = self._group_rows(tx)
         arrays = _stat_arrays(rows)
         if arrays is None:
-            raise InputError(f"bad store '{self.path}': a statistics row holds a value of the wrong type; the file is "
-                             "damaged and cannot be upgraded (restore it from a backup)")
+            raise InputError(
+                f"bad store '{self.path}': a statistics row holds a value of the wrong type; the file is "
+                "damaged and cannot be upgraded (restore it from a backup)"
+            )
         bid, pos, labels, n, mean, lo, m2 = arrays
         line_sums = []
         for line in lines:
             s, e = np.searchsorted(bid, line[0], "left"), np.searchsorted(bid, line[0], "right")
-            ssum = C.stats_sum(labels[s:e], n[s:e], C.stored_floats(mean[s:e]), C.stored_floats(lo[s:e]),
-                               C.stored_floats(m2[s:e]))
+            ssum = C.stats_sum(
+                labels[s:e], n[s:e], C.stored_floats(mean[s:e]), C.stored_floats(lo[s:e]), C.stored_floats(m2[s:e])
+            )
             lsum = C.line_sum((*line, ssum))
             tx.run("UPDATE batches SET stats_sum = ?, line_sum = ? WHERE id = ?", (ssum, lsum, line[0]))
             line_sums.append(lsum)
@@ -705,11 +887,15 @@ class SqlLedger(BatchStore):
         for run in runs:
             gsum = C.run_groups_sum(by_run.get(run[0], []))
             lsum = C.run_line_sum((*run[:9], gsum))
-            tx.run("UPDATE runs SET groups_sum = ?, line_sum = ?, state_sum = ? WHERE id = ?",
-                   (gsum, lsum, C.state_sum(run[9]), run[0]))
+            tx.run(
+                "UPDATE runs SET groups_sum = ?, line_sum = ?, state_sum = ? WHERE id = ?",
+                (gsum, lsum, C.state_sum(run[9]), run[0]),
+            )
             run_sums.append(lsum)
-        tx.run("INSERT INTO store_head (one, batch_lines, batch_acc, run_lines, run_acc) VALUES (1, ?, ?, ?, ?)",
-               (len(line_sums), C.acc_of(line_sums), len(run_sums), C.acc_of(run_sums)))
+        tx.run(
+            "INSERT INTO store_head (one, batch_lines, batch_acc, run_lines, run_acc) VALUES (1, ?, ?, ?, ?)",
+            (len(line_sums), C.acc_of(line_sums), len(run_sums), C.acc_of(run_sums)),
+        )
 
 
 def _test_pause(point: str) -> None:

@@ -11,6 +11,7 @@ list and the shell's history would show them: a URL that holds one is refused, a
 mechanisms (the password file, a service file, the environment) provide it. Everything printed
 about a store uses `display`, which never holds a password.
 """
+
 from __future__ import annotations
 
 import re
@@ -31,8 +32,8 @@ _SERVICE = re.compile(r"[A-Za-z0-9_.\-]+")
 class Location:
     """A parsed store argument. `conninfo` (PostgreSQL only) is what libpq is given: no store name, no password."""
 
-    kind: str                 # "sqlite" or "postgresql"
-    display: str              # how messages and files name the store
+    kind: str  # "sqlite" or "postgresql"
+    display: str  # how messages and files name the store
     path: Path | None = None  # SQLite
     conninfo: str | None = None
     name: str = DEFAULT_NAME  # PostgreSQL: the schema that holds the store
@@ -73,8 +74,10 @@ def redact(text: str) -> str:
 
 def _store_name(text: str, shown: str) -> str:
     if not _NAME.fullmatch(text):
-        raise InputError(f"bad store '{shown}': the store name after '#' must be lowercase letters, digits and "
-                         f"underscores (at most 63, not starting with a digit); found '{text}'")
+        raise InputError(
+            f"bad store '{shown}': the store name after '#' must be lowercase letters, digits and "
+            f"underscores (at most 63, not starting with a digit); found '{text}'"
+        )
     return text
 
 
@@ -88,15 +91,19 @@ def parse_location(arg) -> Location:
     if text.startswith(URL_PREFIXES):
         url, _, name = text.partition("#")
         if "password" in name.lower():  # never echo what follows: it may be the password itself
-            raise InputError(f"bad store '{_strip_password(url)[0]}#...': the store name after '#' holds 'password'; "
-                             "a password goes in the password file (~/.pgpass, or the file PGPASSFILE names)")
+            raise InputError(
+                f"bad store '{_strip_password(url)[0]}#...': the store name after '#' holds 'password'; "
+                "a password goes in the password file (~/.pgpass, or the file PGPASSFILE names)"
+            )
         shown, had_password = _strip_password(url)
         name = name or DEFAULT_NAME
         display = shown if name == DEFAULT_NAME else f"{shown}#{name}"
         if had_password:
-            raise InputError(f"bad store '{display}': the URL holds a password, which the process list and the shell "
-                             "history would show; put it in the password file (~/.pgpass, or the file PGPASSFILE "
-                             "names) or in a service file, and give the URL without it")
+            raise InputError(
+                f"bad store '{display}': the URL holds a password, which the process list and the shell "
+                "history would show; put it in the password file (~/.pgpass, or the file PGPASSFILE "
+                "names) or in a service file, and give the URL without it"
+            )
         try:
             params = parse_qsl(urlsplit(url).query, keep_blank_values=True)
         except ValueError:
@@ -106,12 +113,14 @@ def parse_location(arg) -> Location:
                 raise InputError(f"bad store '{display}': give a service as service=NAME, not inside a URL")
         return Location("postgresql", display, conninfo=url, name=_store_name(name, display))
     if text.startswith(SERVICE_PREFIX):
-        service, _, name = text[len(SERVICE_PREFIX):].partition("#")
+        service, _, name = text[len(SERVICE_PREFIX) :].partition("#")
         name = name or DEFAULT_NAME
         display = f"service={service}" if name == DEFAULT_NAME else f"service={service}#{name}"
         if not _SERVICE.fullmatch(service):
-            raise InputError(f"bad store '{display}': expected service=NAME with a libpq service name of letters, "
-                             f"digits, '_', '-' or '.'; found '{service}' (a file whose name begins with 'service=' "
-                             "is written ./service=...)")
+            raise InputError(
+                f"bad store '{display}': expected service=NAME with a libpq service name of letters, "
+                f"digits, '_', '-' or '.'; found '{service}' (a file whose name begins with 'service=' "
+                "is written ./service=...)"
+            )
         return Location("postgresql", display, conninfo=f"service={service}", name=_store_name(name, display))
     return Location("sqlite", text, path=Path(text))

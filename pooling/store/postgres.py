@@ -25,6 +25,7 @@ a password is refused before this module is reached (`location.py`). A refused c
 failed authentication or a connection lost in the middle is one line naming the host and the
 database, exit 6 (try again later); a transaction cut off by a lost connection never commits.
 """
+
 from __future__ import annotations
 
 import os
@@ -158,12 +159,15 @@ def _connect(loc: Location, busy_seconds: float) -> psycopg.Connection:
     except psycopg.Error as exc:
         msg = _one_line(exc)
         if "service" in msg and "not found" in msg:
-            raise InputError(f"bad store '{loc.display}': {msg} (services are read from the file PGSERVICEFILE "
-                             "names, else ~/.pg_service.conf)") from None
+            raise InputError(
+                f"bad store '{loc.display}': {msg} (services are read from the file PGSERVICEFILE "
+                "names, else ~/.pg_service.conf)"
+            ) from None
         pg = getattr(exc, "pgconn", None)
         where = _where(getattr(pg, "host", None), getattr(pg, "db", None))
-        raise OutputError(f"cannot reach the store '{loc.display}' ({where}): {msg}; nothing was changed, "
-                          "try again later") from None
+        raise OutputError(
+            f"cannot reach the store '{loc.display}' ({where}): {msg}; nothing was changed, try again later"
+        ) from None
     try:
         with con.cursor() as cur:
             cur.execute(f"SET lock_timeout = '{int(busy_seconds * 1000)}ms'")
@@ -171,12 +175,16 @@ def _connect(loc: Location, busy_seconds: float) -> psycopg.Connection:
         encoding = con.info.parameter_status("server_encoding")
     except psycopg.Error as exc:
         con.close()
-        raise OutputError(f"cannot use the store '{loc.display}' "
-                          f"({_where(con.info.host, con.info.dbname)}): {_one_line(exc)}; try again later") from None
+        raise OutputError(
+            f"cannot use the store '{loc.display}' "
+            f"({_where(con.info.host, con.info.dbname)}): {_one_line(exc)}; try again later"
+        ) from None
     if encoding != "UTF8":
         con.close()
-        raise InputError(f"bad store '{loc.display}': the database's encoding is {encoding}; a store needs a UTF8 "
-                         "database, which holds every label exactly (CREATE DATABASE ... ENCODING 'UTF8')")
+        raise InputError(
+            f"bad store '{loc.display}': the database's encoding is {encoding}; a store needs a UTF8 "
+            "database, which holds every label exactly (CREATE DATABASE ... ENCODING 'UTF8')"
+        )
     return con
 
 
@@ -244,18 +252,23 @@ class PgStore(SqlLedger):
         except pgerr.IntegrityError:
             raise  # a broken invariant of ours, not of the user's: let it surface as a bug
         except pgerr.LockNotAvailable:
-            raise OutputError(f"the store '{self.path}' is busy: another job held it for more than "
-                              f"{self.busy_seconds:g} s; nothing was changed, try again later") from None
+            raise OutputError(
+                f"the store '{self.path}' is busy: another job held it for more than "
+                f"{self.busy_seconds:g} s; nothing was changed, try again later"
+            ) from None
         except (pgerr.InsufficientPrivilege, pgerr.DiskFull, pgerr.OutOfMemory, pgerr.ReadOnlySqlTransaction) as exc:
-            raise OutputError(f"cannot use the store '{self.path}' ({self._where}): {_one_line(exc)}; nothing was "
-                              "changed") from None
+            raise OutputError(
+                f"cannot use the store '{self.path}' ({self._where}): {_one_line(exc)}; nothing was changed"
+            ) from None
         except pgerr.DataError as exc:  # e.g. a label holding a NUL character, which PostgreSQL text cannot hold
             raise InputError(f"bad input for the store '{self.path}': {_one_line(exc)}; nothing was changed") from None
         except (psycopg.OperationalError, psycopg.InterfaceError) as exc:
             # the server went away (stopped, restarted, the network): whatever this command was writing did not
             # commit, or committed whole; running it again is safe (an ingest that landed then exits 4)
-            raise OutputError(f"lost the connection to the store '{self.path}' ({self._where}): {_one_line(exc)}; "
-                              "the change in progress landed whole or not at all; try again later") from None
+            raise OutputError(
+                f"lost the connection to the store '{self.path}' ({self._where}): {_one_line(exc)}; "
+                "the change in progress landed whole or not at all; try again later"
+            ) from None
         except psycopg.Error as exc:
             raise InputError(f"bad store '{self.path}' ({self._where}): {_one_line(exc)}") from None
 
@@ -292,31 +305,41 @@ class PgStore(SqlLedger):
 
     def _lock_columns(self, tx, exclusive: bool) -> None:
         how = "" if exclusive else "_shared"
-        tx.one(f"SELECT 1 FROM pg_advisory_xact_lock{how}(hashtextextended(?, 0))",
-               (_key(self.location, "group-level columns"),))
+        tx.one(
+            f"SELECT 1 FROM pg_advisory_xact_lock{how}(hashtextextended(?, 0))",
+            (_key(self.location, "group-level columns"),),
+        )
 
     def _next_id(self, tx, table: str) -> int:
         return int(tx.one(f"SELECT nextval(pg_get_serial_sequence('{table}', 'id'))")[0])
 
     def _after_load(self, tx) -> None:
         for table in ("batches", "runs"):
-            tx.one(f"SELECT setval(pg_get_serial_sequence('{table}', 'id'), coalesce(max(id), 0) + 1, false) "
-                   f"FROM {table}")
+            tx.one(
+                f"SELECT setval(pg_get_serial_sequence('{table}', 'id'), coalesce(max(id), 0) + 1, false) FROM {table}"
+            )
 
     # -- existence, creation, schema version ----------------------------------------------------
 
     def _state(self, tx) -> tuple[bool, list[str]]:
         """(whether our schema exists, the relations it holds)."""
         has = tx.one("SELECT 1 FROM pg_namespace WHERE nspname = ?", (self.location.name,)) is not None
-        names = [r[0] for r in tx.all("SELECT c.relname FROM pg_class c JOIN pg_namespace s ON s.oid = c.relnamespace "
-                                      "WHERE s.nspname = ? AND c.relkind IN ('r', 'p', 'v', 'm', 'f')",
-                                      (self.location.name,))]
+        names = [
+            r[0]
+            for r in tx.all(
+                "SELECT c.relname FROM pg_class c JOIN pg_namespace s ON s.oid = c.relnamespace "
+                "WHERE s.nspname = ? AND c.relkind IN ('r', 'p', 'v', 'm', 'f')",
+                (self.location.name,),
+            )
+        ]
         return has, names
 
     def _not_ours(self, names) -> InputError:
         shown = ", ".join(sorted(names)[:5])
-        return InputError(f"bad store '{self.path}': the schema '{self.location.name}' ({self._where}) holds "
-                          f"other tables ({shown}), not a pooling store; name another store after '#'")
+        return InputError(
+            f"bad store '{self.path}': the schema '{self.location.name}' ({self._where}) holds "
+            f"other tables ({shown}), not a pooling store; name another store after '#'"
+        )
 
     def _make(self, tx) -> None:
         """Create the schema and every table (inside the caller's transaction and advisory lock)."""
@@ -328,8 +351,10 @@ class PgStore(SqlLedger):
         if not has:
             tx.run(f'CREATE SCHEMA "{self.location.name}"')
         self._con.execute(SCHEMA)  # several statements: psycopg sends them as one simple query
-        tx.run("INSERT INTO pooling_store (key, value) VALUES (?, ?), (?, ?), (?, ?)",
-               ("format", str(SCHEMA_VERSION), "created_at", now_utc(), "created_by", f"pooling {__version__}"))
+        tx.run(
+            "INSERT INTO pooling_store (key, value) VALUES (?, ?), (?, ?), (?, ?)",
+            ("format", str(SCHEMA_VERSION), "created_at", now_utc(), "created_by", f"pooling {__version__}"),
+        )
         self.created = True
 
     def _check_format(self, create: bool, missing_ok: bool) -> bool:
@@ -342,8 +367,10 @@ class PgStore(SqlLedger):
                         raise self._not_ours(names)
                     if missing_ok:
                         return False
-                    raise InputError(f"bad store '{self.path}': no store '{self.location.name}' in the database "
-                                     f"({self._where}); `pooling ingest {self.path} FILE ...` creates one")
+                    raise InputError(
+                        f"bad store '{self.path}': no store '{self.location.name}' in the database "
+                        f"({self._where}); `pooling ingest {self.path} FILE ...` creates one"
+                    )
                 self._lock(tx, ["schema"])
                 self._make(tx)
             self._tables_present(tx, 2)
@@ -355,8 +382,11 @@ class PgStore(SqlLedger):
                     self._con.execute(UPGRADES[fmt])
                     fmt += 1
                     tx.run("UPDATE pooling_store SET value = ? WHERE key = 'format'", (str(fmt),))
-                    tx.run("INSERT INTO pooling_store (key, value) VALUES ('upgraded_at', ?) ON CONFLICT (key) DO "
-                           "UPDATE SET value = excluded.value", (now_utc(),))
+                    tx.run(
+                        "INSERT INTO pooling_store (key, value) VALUES ('upgraded_at', ?) ON CONFLICT (key) DO "
+                        "UPDATE SET value = excluded.value",
+                        (now_utc(),),
+                    )
             self._tables_present(tx, SCHEMA_VERSION)
         return True
 
@@ -365,8 +395,10 @@ class PgStore(SqlLedger):
         wanted = set(_TABLES).union(*(t for v, t in _TABLES_ADDED.items() if v <= version))
         missing = wanted - set(self._state(tx)[1])
         if missing:
-            raise InputError(f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing "
-                             f"from the schema '{self.location.name}' ({self._where}); the store is damaged")
+            raise InputError(
+                f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing "
+                f"from the schema '{self.location.name}' ({self._where}); the store is damaged"
+            )
 
     def _version(self, tx) -> int:
         row = tx.one("SELECT value FROM pooling_store WHERE key = 'format'")
@@ -375,11 +407,15 @@ class PgStore(SqlLedger):
         except (TypeError, ValueError):
             fmt = None
         if fmt is None or fmt < min([SCHEMA_VERSION, *UPGRADES]):
-            raise InputError(f"bad store '{self.path}': unreadable schema version {None if row is None else row[0]!r}; "
-                             "the store is damaged")
+            raise InputError(
+                f"bad store '{self.path}': unreadable schema version {None if row is None else row[0]!r}; "
+                "the store is damaged"
+            )
         if fmt > SCHEMA_VERSION:
-            raise InputError(f"bad store '{self.path}': schema version {fmt} was written by a newer pooling; "
-                             f"this version ({__version__}) reads versions up to {SCHEMA_VERSION}; upgrade pooling")
+            raise InputError(
+                f"bad store '{self.path}': schema version {fmt} was written by a newer pooling; "
+                f"this version ({__version__}) reads versions up to {SCHEMA_VERSION}; upgrade pooling"
+            )
         return fmt
 
     def close(self) -> None:
@@ -392,8 +428,9 @@ class PgStore(SqlLedger):
             self._con = None
 
 
-def open_pg(loc: Location, *, create: bool = False, missing_ok: bool = False,
-            busy_seconds: float = DEFAULT_BUSY_SECONDS) -> PgStore | None:
+def open_pg(
+    loc: Location, *, create: bool = False, missing_ok: bool = False, busy_seconds: float = DEFAULT_BUSY_SECONDS
+) -> PgStore | None:
     """Connect and open (or create) the store `loc.name` in the database `loc.conninfo` names."""
     store = PgStore(loc, _connect(loc, busy_seconds), busy_seconds)
     try:
@@ -406,8 +443,9 @@ def open_pg(loc: Location, *, create: bool = False, missing_ok: bool = False,
     return store
 
 
-def create_pg_copy(loc: Location, content, copied_from: str, verify,
-                   busy_seconds: float = DEFAULT_BUSY_SECONDS) -> None:
+def create_pg_copy(
+    loc: Location, content, copied_from: str, verify, busy_seconds: float = DEFAULT_BUSY_SECONDS
+) -> None:
     """Write a whole store's content as a new PostgreSQL store, read it back and compare, all in one transaction:
     nothing is committed unless the copy equals the original."""
     store = PgStore(loc, _connect(loc, busy_seconds), busy_seconds)
@@ -417,8 +455,10 @@ def create_pg_copy(loc: Location, content, copied_from: str, verify,
             has, names = store._state(tx)
             if names:
                 if "pooling_store" in names:
-                    raise InputError(f"bad store '{store.path}': a store '{loc.name}' exists already in the database "
-                                     f"({store._where}); copy into a new store (another name after '#')")
+                    raise InputError(
+                        f"bad store '{store.path}': a store '{loc.name}' exists already in the database "
+                        f"({store._where}); copy into a new store (another name after '#')"
+                    )
                 raise store._not_ours(names)
             store._make(tx)
             store.load(content, copied_from)

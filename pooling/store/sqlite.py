@@ -22,6 +22,7 @@ half-made store is never seen. Its maker holds an exclusive flock on it meanwhil
 with SIGKILL leaves it behind, and the next command that creates or opens the store removes
 such leftovers when no process holds them.
 """
+
 from __future__ import annotations
 
 import fcntl
@@ -146,14 +147,18 @@ def _identify(path: Path) -> None:
     if not head:
         raise InputError(f"bad store '{path}': the file is empty, not a pooling store")
     if not head.startswith(SQLITE_MAGIC):
-        raise InputError(f"bad store '{path}': not a pooling store (not an SQLite database); give the path of "
-                         "a store made by `pooling ingest`")
+        raise InputError(
+            f"bad store '{path}': not a pooling store (not an SQLite database); give the path of "
+            "a store made by `pooling ingest`"
+        )
     if len(head) < 100:
         raise InputError(f"bad store '{path}': the file is damaged (cut short at {len(head)} bytes)")
     app = int.from_bytes(head[68:72], "big")
     if app != APPLICATION_ID:
-        raise InputError(f"bad store '{path}': an SQLite database, but not a pooling store "
-                         "(it lacks the pooling marker); give the path of a store made by `pooling ingest`")
+        raise InputError(
+            f"bad store '{path}': an SQLite database, but not a pooling store "
+            "(it lacks the pooling marker); give the path of a store made by `pooling ingest`"
+        )
 
 
 def _connect(path: Path, busy_seconds: float) -> sqlite3.Connection:
@@ -199,7 +204,7 @@ def _looks_ours(tmp: Path) -> bool:
         return False
     if not head:
         return True
-    if not head.startswith(SQLITE_MAGIC[:len(head)]):
+    if not head.startswith(SQLITE_MAGIC[: len(head)]):
         return False
     return len(head) < 72 or int.from_bytes(head[68:72], "big") in (0, APPLICATION_ID)
 
@@ -272,11 +277,14 @@ def _create(path: Path, busy_seconds: float, fill=None) -> bool:
             _test_pause("create")
             # the file is private until linked into place, so no transaction is needed here
             con.executescript(SCHEMA)
-            con.executemany("INSERT INTO pooling_store (key, value) VALUES (?, ?)",
-                            [("format", str(FORMAT)), ("created_at", now_utc()),
-                             ("created_by", f"pooling {__version__}")])
-            con.execute("INSERT INTO store_head (one, batch_lines, batch_acc, run_lines, run_acc) "
-                        "VALUES (1, 0, '0000000000000000', 0, '0000000000000000')")
+            con.executemany(
+                "INSERT INTO pooling_store (key, value) VALUES (?, ?)",
+                [("format", str(FORMAT)), ("created_at", now_utc()), ("created_by", f"pooling {__version__}")],
+            )
+            con.execute(
+                "INSERT INTO store_head (one, batch_lines, batch_acc, run_lines, run_acc) "
+                "VALUES (1, 0, '0000000000000000', 0, '0000000000000000')"
+            )
         finally:
             con.close()  # the last connection checkpoints the WAL into the file and removes it
         if fill is not None:
@@ -305,8 +313,9 @@ def _create(path: Path, busy_seconds: float, fill=None) -> bool:
     return placed
 
 
-def open_sqlite(where, *, create: bool = False, missing_ok: bool = False,
-                busy_seconds: float = DEFAULT_BUSY_SECONDS) -> "SqliteStore | None":
+def open_sqlite(
+    where, *, create: bool = False, missing_ok: bool = False, busy_seconds: float = DEFAULT_BUSY_SECONDS
+) -> SqliteStore | None:
     """Open the store file at `where` (creating it when `create` and it does not exist)."""
     loc = parse_location(where) if not isinstance(where, Location) else where
     path = loc.path
@@ -338,6 +347,7 @@ def create_sqlite_copy(where, content, copied_from: str, verify, busy_seconds: f
     if not parent.is_dir():
         raise OutputError(f"cannot create the store '{path}': the folder '{parent}' does not exist")
     sweep_leftovers(path)
+
     def fill(st):
         st.load(content, copied_from)
         verify(st)  # read back from the new file before it is linked into place
@@ -397,20 +407,27 @@ class SqliteStore(SqlLedger):
         except sqlite3.OperationalError as exc:
             msg = str(exc)
             if "locked" in msg or "busy" in msg:
-                raise OutputError(f"the store '{self.path}' is busy: another job held it for more than "
-                                  f"{self.busy_seconds:g} s; nothing was changed, try again later") from None
+                raise OutputError(
+                    f"the store '{self.path}' is busy: another job held it for more than "
+                    f"{self.busy_seconds:g} s; nothing was changed, try again later"
+                ) from None
             if "readonly" in msg or "unable to open" in msg or "disk I/O" in msg:
-                raise OutputError(f"cannot use the store '{self.path}': {msg} (check the permissions of the file "
-                                  "and of its folder, which must take the -wal and -shm files)") from None
+                raise OutputError(
+                    f"cannot use the store '{self.path}': {msg} (check the permissions of the file "
+                    "and of its folder, which must take the -wal and -shm files)"
+                ) from None
             if "full" in msg:
-                raise OutputError(f"cannot write the store '{self.path}': the disk is full; "
-                                  "nothing was changed") from None
-            raise InputError(f"bad store '{self.path}': the file is damaged or not a pooling store "
-                             f"(SQLite: {msg})") from None
+                raise OutputError(
+                    f"cannot write the store '{self.path}': the disk is full; nothing was changed"
+                ) from None
+            raise InputError(
+                f"bad store '{self.path}': the file is damaged or not a pooling store (SQLite: {msg})"
+            ) from None
         except (sqlite3.DatabaseError, ValueError, OverflowError) as exc:
             # ValueError/OverflowError: sqlite3 could not convert a stored value (damaged text or numbers)
-            raise InputError(f"bad store '{self.path}': the file is damaged (SQLite: {exc}); "
-                             "restore it from a backup") from None
+            raise InputError(
+                f"bad store '{self.path}': the file is damaged (SQLite: {exc}); restore it from a backup"
+            ) from None
 
     @contextmanager
     def _write(self):
@@ -441,26 +458,32 @@ class SqliteStore(SqlLedger):
         con = self._con
         tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
         if "pooling_store" not in tables:
-            raise InputError(f"bad store '{self.path}': an SQLite database, but not a pooling store "
-                             "(no pooling_store table)")
+            raise InputError(
+                f"bad store '{self.path}': an SQLite database, but not a pooling store (no pooling_store table)"
+            )
         row = con.execute("SELECT value FROM pooling_store WHERE key = 'format'").fetchone()
         if row is None:
-            raise InputError(f"bad store '{self.path}': the pooling_store table has no schema version; "
-                             "the file is damaged")
+            raise InputError(
+                f"bad store '{self.path}': the pooling_store table has no schema version; the file is damaged"
+            )
         try:
             fmt = int(row[0])
         except (TypeError, ValueError):
-            raise InputError(f"bad store '{self.path}': unreadable schema version {row[0]!r}; "
-                             "the file is damaged") from None
+            raise InputError(
+                f"bad store '{self.path}': unreadable schema version {row[0]!r}; the file is damaged"
+            ) from None
         if fmt > FORMAT:
-            raise InputError(f"bad store '{self.path}': schema version {fmt} was written by a newer pooling; "
-                             f"this version ({__version__}) reads versions up to {FORMAT}; upgrade pooling")
+            raise InputError(
+                f"bad store '{self.path}': schema version {fmt} was written by a newer pooling; "
+                f"this version ({__version__}) reads versions up to {FORMAT}; upgrade pooling"
+            )
         if fmt < 1:
             raise InputError(f"bad store '{self.path}': unknown schema version {fmt}; the file is damaged")
         missing = {"batches", "batch_groups", "runs", "run_groups"} - tables
         if missing:
-            raise InputError(f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing; "
-                             "the file is damaged")
+            raise InputError(
+                f"bad store '{self.path}': the table(s) {', '.join(sorted(missing))} are missing; the file is damaged"
+            )
         return fmt
 
     def _check_format(self):
@@ -479,8 +502,10 @@ class SqliteStore(SqlLedger):
         not sealed with fresh checksums)."""
         problems = [r[0] for r in self._con.execute("PRAGMA quick_check")]
         if problems != ["ok"]:
-            raise InputError(f"bad store '{self.path}': the file is damaged (SQLite: {problems[0]}); it was not "
-                             "upgraded; restore it from a backup")
+            raise InputError(
+                f"bad store '{self.path}': the file is damaged (SQLite: {problems[0]}); it was not "
+                "upgraded; restore it from a backup"
+            )
         with self._write() as tx:
             fmt = self._format()  # another job may have upgraded it while we waited for the lock
             if fmt == FORMAT:
