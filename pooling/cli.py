@@ -20,6 +20,23 @@ REPORT_RANGE = 1e100  # reporter options, like data (stats.choose_unit), stay wi
 # option parsing (values are checked here, at the edge)
 
 
+def _add_text_format_options(p: argparse.ArgumentParser) -> None:
+    """How a CSV is written: its encoding, field separator and number format (fit and ingest read alike)."""
+    p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
+    p.add_argument("--delimiter", help="CSV field separator (default: detected)")
+    p.add_argument(
+        "--thousands",
+        metavar="SEP",
+        help="digit-group separator inside numbers, e.g. ',' for 1,234.5 or '.' for 1.234,5 (default: none)",
+    )
+    p.add_argument(
+        "--decimal-comma",
+        dest="decimal_comma",
+        action="store_true",
+        help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)",
+    )
+
+
 def _num(text: str, what: str) -> float:
     try:
         x = float(text)
@@ -101,20 +118,7 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
         p.add_argument("--sd", help="column of group standard deviations, ddof=1 (with --size and --mean)")
         p.add_argument("--estimate", help="column of group estimates (known structure, with --std-error)")
         p.add_argument("--std-error", dest="std_error", help="column of the estimates' standard errors")
-        p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
-        p.add_argument("--delimiter", help="CSV field separator (default: detected)")
-        # --- number formats in a CSV (hardening) ---
-        p.add_argument(
-            "--thousands",
-            metavar="SEP",
-            help="digit-group separator inside numbers, e.g. ',' for 1,234.5 or '.' for 1.234,5 (default: none)",
-        )
-        p.add_argument(
-            "--decimal-comma",
-            dest="decimal_comma",
-            action="store_true",
-            help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)",
-        )
+        _add_text_format_options(p)
         # --- many files, or a cluster (pooling.dask_stats; needs the extra pooling[dask]) -------
         p.add_argument(
             "--cluster",
@@ -780,19 +784,7 @@ def _add_store_parsers(sub):
         action="store_true",
         help="replace the batch of the same name, or take back content that was withdrawn",
     )
-    p.add_argument("--encoding", help="text encoding of a CSV (default: UTF-8, with or without BOM)")
-    p.add_argument("--delimiter", help="CSV field separator (default: detected)")
-    p.add_argument(
-        "--thousands",
-        metavar="SEP",
-        help="digit-group separator inside numbers, e.g. ',' for 1,234.5 or '.' for 1.234,5 (default: none)",
-    )
-    p.add_argument(
-        "--decimal-comma",
-        dest="decimal_comma",
-        action="store_true",
-        help="numbers are written with a decimal comma, e.g. 1,5 (default: a decimal point)",
-    )
+    _add_text_format_options(p)
     p.add_argument(
         "--column",
         action="append",
