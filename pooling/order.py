@@ -75,66 +75,71 @@ def sorted_quantiles(buf, m, h, low, high, j0):
 
 
 @njit(nogil=True, cache=True)
+def sort_bucketed(x, sign, row, order, count):
+    """row = sign * x sorted ascending, order the positions it came from, ties kept in position order (a stable
+    sort): a counting sort into n equal-width buckets, then an insertion sort that moves a value only past
+    strictly larger ones, O(n) for a smooth spread. Returns False, leaving row and order unusable, for a NaN or
+    an infinite value, all values equal, or values crowded into few buckets (the insertion sort's moves passing
+    16 n): those are for numpy's stable argsort. sign is 1 or -1 (exact); count is scratch of n + 1."""
+    n = x.shape[0]
+    lo = np.inf
+    hi = -np.inf
+    for i in range(n):
+        v = sign * x[i]
+        if not (abs(v) < np.inf):  # NaN or +-inf
+            return False
+        lo = min(lo, v)
+        hi = max(hi, v)
+    span = hi - lo
+    if not (span > 0.0) or not (span < np.inf) or not ((n - 1) / span < np.inf):
+        return False
+    inv = (n - 1) / span
+    for b in range(n + 1):
+        count[b] = 0
+    for i in range(n):
+        count[min(int((sign * x[i] - lo) * inv), n - 1) + 1] += 1
+    for b in range(n):
+        count[b + 1] += count[b]
+    for i in range(n):
+        v = sign * x[i]
+        b = min(int((v - lo) * inv), n - 1)
+        q = count[b]
+        count[b] = q + 1
+        row[q] = v
+        order[q] = i
+    budget = _MOVES_PER_VALUE * n
+    for i in range(1, n):
+        v = row[i]
+        if v < row[i - 1]:
+            k = order[i]
+            q = i
+            while q > 0 and row[q - 1] > v:
+                row[q] = row[q - 1]
+                order[q] = order[q - 1]
+                q -= 1
+            row[q] = v
+            order[q] = k
+            budget -= i - q
+            if budget < 0:
+                return False
+    return True
+
+
+@njit(nogil=True, cache=True)
 def rank_rows(x, sign, s0, s1, ranks, slot_v, slot_i, count, bad):
     """ranks[s, j] for the draws s0 .. s1 - 1 of x (S, J), ranked by sign * x (see the module notes); bad[s] is
     set for a draw handed back. Scratch: slot_v (J,), slot_i (J,), count (J + 1,)."""
     J = x.shape[1]
     for s in range(s0, s1):
-        bad[s] = False
-        lo = np.inf
-        hi = -np.inf
-        finite = True
-        for j in range(J):
-            v = sign * x[s, j]
-            if not (abs(v) < np.inf):  # NaN or +-inf
-                finite = False
-                break
-            lo = min(lo, v)
-            hi = max(hi, v)
-        span = hi - lo
-        if J == 1 and finite:
+        if J == 1:
+            bad[s] = not (abs(x[s, 0]) < np.inf)
             ranks[s, 0] = 1
             continue
-        if not finite or not (span > 0.0) or not (span < np.inf) or not ((J - 1) / span < np.inf):
-            bad[s] = True
-            continue
-        inv = (J - 1) / span
-        # counting sort by bucket of (hi - v): the best values first, each bucket in position order
-        for b in range(J + 1):
-            count[b] = 0
-        for j in range(J):
-            b = min(int((hi - sign * x[s, j]) * inv), J - 1)
-            count[b + 1] += 1
-        for b in range(J):
-            count[b + 1] += count[b]
-        for j in range(J):
-            v = sign * x[s, j]
-            b = min(int((hi - v) * inv), J - 1)
-            p = count[b]
-            count[b] = p + 1
-            slot_v[p] = v
-            slot_i[p] = j
-        # insertion sort, largest first; a value moves only past strictly smaller ones (stable)
-        budget = _MOVES_PER_VALUE * J
-        for i in range(1, J):
-            v = slot_v[i]
-            if v > slot_v[i - 1]:
-                k = slot_i[i]
-                q = i
-                while q > 0 and slot_v[q - 1] < v:
-                    slot_v[q] = slot_v[q - 1]
-                    slot_i[q] = slot_i[q - 1]
-                    q -= 1
-                slot_v[q] = v
-                slot_i[q] = k
-                budget -= i - q
-                if budget < 0:
-                    break
-        if budget < 0:
-            bad[s] = True
-            continue
-        for i in range(J):
-            ranks[s, slot_i[i]] = i + 1
+        # largest first, ties in position order: an ascending stable sort of -sign * x
+        bad[s] = not sort_bucketed(x[s], -sign, slot_v, slot_i, count)
+        if not bad[s]:
+            for i in range(J):
+                ranks[s, slot_i[i]] = i + 1
 
 
 @njit(nogil=True, cache=True)
