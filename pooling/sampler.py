@@ -18,8 +18,8 @@ from typing import cast
 
 import numpy as np
 
+from . import _memory, kernel
 from . import diagnostics as dg
-from . import kernel
 from .errors import InputError, Interrupted
 from .model import Problem
 
@@ -186,7 +186,7 @@ def _preallocate(chains, problem: Problem, n_sweeps: int) -> dict[str, np.ndarra
     arrays cost ~0.25 s, mostly touching fresh memory)."""
     shapes = kernel.draws_shape(problem.data, n_sweeps)
     block = {
-        key: np.empty((len(chains),) + shape, dtype=kernel.DRAW_DTYPES.get(key, np.float64))
+        key: _memory.empty((len(chains),) + shape, dtype=kernel.DRAW_DTYPES.get(key, np.float64))
         for key, shape in shapes.items()
     }
     for i, c in enumerate(chains):

@@ -12,6 +12,9 @@ import subprocess
 import sys
 import textwrap
 
+import numpy as np
+import pytest
+
 # A fresh interpreter, so that nothing another test did to the process can matter.
 _SCRIPT = textwrap.dedent(r"""
     import sys
@@ -168,3 +171,146 @@ def test_readable_json_is_the_same_json():
     check()
     records = {"rows": [{"a": 1, "b": "é"}, {"a": 2, "b": None}], "run": {"seed": 3}}
     assert dumps_readable(records).splitlines()[2] == '    {"a": 1, "b": "é"},'  # one record per line
+
+
+# ---------------------------------------------------------------------------------------------
+# draws.nc's large variables written around the page cache (output._direct_write)
+
+
+def _parts_for_direct_write():
+    from pooling.posterior import Part
+
+    g = np.random.default_rng(11)
+    big = g.normal(size=(2, 37, 53))  # 31,376 bytes: not a multiple of the 4,096-byte block
+    strided = g.normal(size=(53, 37, 2)).transpose(2, 1, 0)  # the same shape, not contiguous
+    single = g.gamma(2.0, size=(2, 37, 53)).astype(np.float32)
+    counts = g.integers(0, 1000, size=(2, 37, 53))
+    swapped = g.normal(size=(2, 37, 53)).astype(">f8")  # big-endian: written as little-endian numbers
+    post = Part({}, {"chain": np.arange(2), "draw": np.arange(37), "group": np.arange(53)}, {"note": "x"})
+    post.add("theta", ("chain", "draw", "group"), big, {"scale_factor": 2.0})
+    post.add("sigma", ("chain", "draw", "group"), strided)
+    post.add("lambda", ("chain", "draw", "group"), single)
+    post.add("hits", ("chain", "draw", "group"), counts)
+    post.add("swapped", ("chain", "draw", "group"), swapped)
+    post.add("mu", ("chain", "draw"), g.normal(size=(2, 37)))
+    return {"posterior": post}
+
+
+def _read_back(path):
+    import h5py
+
+    with h5py.File(path, "r") as fh:
+        return {name: fh["posterior"][name][...] for name in fh["posterior"] if name not in ("chain", "draw", "group")}
+
+
+def _check_written(path, parts):
+    back = _read_back(path)
+    for name, (_, values, _) in parts["posterior"].variables.items():
+        assert back[name].dtype.kind == np.asarray(values).dtype.kind, name
+        assert np.array_equal(back[name], values), name  # every bit: no NaN in these arrays
+
+
+@pytest.mark.parametrize("buffer_bytes", [1 << 20, 8192, 4096 * 3])
+def test_large_variables_written_directly_are_read_back_exactly(tmp_path, monkeypatch, buffer_bytes):
+    """Large variables (here anything over 1 kB) get an aligned place from HDF5 and their bytes by direct
+    writes; a buffer smaller than one row of the array (8,192 bytes < 2 x 53 x 8 ... rows) and one of three
+    blocks exercise the flushing in pieces and the partial last block. xarray reads the file as netCDF4."""
+    from pooling import output
+
+    monkeypatch.setattr(output, "DIRECT_MIN_BYTES", 1024)
+    monkeypatch.setattr(output, "DIRECT_BUFFER_BYTES", buffer_bytes)
+    parts = _parts_for_direct_write()
+    path = tmp_path / "draws.nc"
+    output._write_draws(parts, path)
+    _check_written(path, parts)
+    import h5py
+
+    with h5py.File(path, "r") as fh:
+        for name in ("theta", "sigma", "lambda", "hits", "swapped"):
+            ds = fh["posterior"][name]
+            assert ds.id.get_offset() % output.DIRECT_ALIGN == 0, name
+            assert ds.chunks is None and ds.compression is None, name
+        assert fh["posterior"]["mu"].id.get_offset() is not None
+    import xarray as xr
+
+    ds = xr.open_dataset(path, group="posterior", engine="h5netcdf")
+    assert np.array_equal(ds["theta"].values, 2.0 * parts["posterior"].variables["theta"][1])  # CF decoding
+    ds.close()
+
+
+def test_without_direct_io_the_same_file_is_written(tmp_path, monkeypatch):
+    """Where the platform has no O_DIRECT, or the file system refuses it (EINVAL), the same bytes go through
+    the page cache."""
+    import errno
+
+    from pooling import output
+
+    monkeypatch.setattr(output, "DIRECT_MIN_BYTES", 1024)
+    parts = _parts_for_direct_write()
+    monkeypatch.delattr(os, "O_DIRECT", raising=False)
+    output._write_draws(parts, tmp_path / "a.nc")
+    _check_written(tmp_path / "a.nc", parts)
+    monkeypatch.undo()
+
+    monkeypatch.setattr(output, "DIRECT_MIN_BYTES", 1024)
+    real = os.pwrite
+    refused = []
+
+    def pwrite(fd, data, at):
+        if fd in direct_fds:
+            refused.append(at)
+            raise OSError(errno.EINVAL, "Invalid argument")
+        return real(fd, data, at)
+
+    real_open = os.open
+    direct_fds: set[int] = set()
+
+    def opener(path, flags, *args):
+        fd = real_open(path, flags, *args)
+        if flags & getattr(os, "O_DIRECT", 0):
+            direct_fds.add(fd)
+        return fd
+
+    monkeypatch.setattr(os, "pwrite", pwrite)
+    monkeypatch.setattr(os, "open", opener)
+    output._write_draws(parts, tmp_path / "b.nc")
+    monkeypatch.undo()
+    _check_written(tmp_path / "b.nc", parts)
+    if getattr(os, "O_DIRECT", 0):
+        assert len(refused) == 1  # the first direct write was refused; the rest went through the page cache
+
+
+def test_a_failing_direct_write_is_an_error_not_a_short_file(tmp_path, monkeypatch):
+    """A write error other than 'direct I/O refused' (a full disk) propagates; write_run then removes the
+    half-written folder (test_a_failed_draws_write_leaves_no_folder)."""
+    import errno
+
+    from pooling import output
+
+    monkeypatch.setattr(output, "DIRECT_MIN_BYTES", 1024)
+
+    def full(fd, data, at):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(os, "pwrite", full)
+    with pytest.raises(OSError) as err:
+        output._write_draws(_parts_for_direct_write(), tmp_path / "c.nc")
+    assert err.value.errno == errno.ENOSPC
+
+
+def test_memory_helpers():
+    """_memory.empty: a large array in pages of its own, writable, the right shape and type, freed with its
+    last user; keep_freed_memory only reports whether glibc took the thresholds."""
+    from pooling import _memory
+
+    small = _memory.empty((3, 4), np.int32)
+    assert small.shape == (3, 4) and small.dtype == np.int32 and small.flags.writeable
+    n = _memory.PLAIN_PAGES_MIN // 8 + 5
+    big = _memory.empty((n,), np.float64)
+    assert big.shape == (n,) and big.flags.writeable and big.flags.c_contiguous
+    big[:] = 1.5
+    assert big.sum() == 1.5 * n
+    view = big.reshape(5, -1) if n % 5 == 0 else big[:10]
+    del big
+    view[...] = 2.0  # the pages live as long as a view does
+    assert isinstance(_memory.keep_freed_memory(), bool)
