@@ -131,13 +131,15 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
         "new_group_outside": res.new_group,
         "predictive_checks": checks,
         "predictors": _level_named(res.predictors, L),
-        "groups_table": records(res.table),
+        "groups_table": None,  # filled below: records() makes the rows JSON-safe a column at a time
     }
     if res.pairs is not None:
         out["pairwise"] = {"groups": list(res.pairs.index), "p_row_greater": res.pairs.to_numpy()}
     if res.summary is not None:
         out["summary_mode"] = {k: v for k, v in res.summary.items() if k != "kept_labels"}
-    return _clean(out)
+    out = _clean(out)
+    out["groups_table"] = records(res.table)
+    return out
 
 
 def _level_named(x, L: str):

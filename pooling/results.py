@@ -501,10 +501,26 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     out["low"], out["high"] = lows, highs
     ranks = rank_draws(theta, highest=o.best == "highest")
     out.update(rank_summary(ranks, o.level, k))
-    out["ranks"] = ranks
+    out["heat"] = _rank_heat(ranks, out["rank_mean"])  # then the draws' ranks (S x J) are let go
+    del ranks
     if p.design is not None and p.design.level_names:
         out["in_level"] = ranks_in_level(theta, p.design.level_of, o.level, highest=o.best == "highest")
     return out, {"draws_total": S}
+
+
+def _rank_heat(ranks: np.ndarray, rank_mean: np.ndarray) -> dict:
+    """The page's rank picture: P(rank = r) for every group by mean rank, or above HEAT_ALL groups for the best
+    HEAT_ROWS_MANY over ranks 1..HEAT_ALL (and beyond)."""
+    J = ranks.shape[1]
+    order = np.argsort(rank_mean, kind="stable")
+    rows, max_rank = (order, None) if J <= HEAT_ALL else (order[:HEAT_ROWS_MANY], HEAT_ALL)
+    mat = rank_matrix(ranks, rows, max_rank)
+    m = mat.shape[1] if max_rank is None else max_rank
+    return {
+        "rows": rows,
+        "matrix": mat,
+        "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else []),
+    }
 
 
 def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float, highest: bool = True) -> dict[str, np.ndarray]:
@@ -1353,8 +1369,16 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
     raw = fit.raw  # every draw (full), or the hyperparameters and the kept groups (summary)
     if summary_mode:
         g, figures = _summary_group_answers(fit, o, k)
+        checks_later = None
     else:
-        g, figures = _full_group_answers(fit, o, k)
+        # the predictive checks (random numbers and medians: numpy, without the GIL) on a thread of their own
+        # while the per-group answers are computed; their random numbers come from their own stream
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(1) as side:
+            checks_later = side.submit(model_checks, p, raw, raw.seed)
+            g, figures = _full_group_answers(fit, o, k)
+            checks_later.result()
     S = figures["draws_total"]
     g["mu_mean"] = float(raw.mu.mean())
     g["centre_mean"], _ = centre_means(p, raw)
@@ -1373,7 +1397,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
         hyper_draws["within_sd"] = within_sd * p.scale
     tail = tail_summary(p, raw, table)
     new_group = new_group_outside(p, raw, o, raw.seed)
-    checks = None if summary_mode else model_checks(p, raw, raw.seed)
+    checks = None if checks_later is None else checks_later.result()
     predictors = predictor_answers(p, raw, o, without if without is not None else getattr(fit, "without", None))
     clock.append(time.perf_counter())
     heat = None
@@ -1394,17 +1418,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
                 prob_greater(th, idx), index=pd.Index(list(compare), name="group"), columns=list(compare)
             )
     else:
-        ranks = g.pop("ranks")
-        order = np.argsort(table["rank_mean"].to_numpy(), kind="stable")
-        rows, max_rank = (order, None) if J <= HEAT_ALL else (order[:HEAT_ROWS_MANY], HEAT_ALL)
-        mat = rank_matrix(ranks, rows, max_rank)
-        del ranks
-        m = mat.shape[1] if max_rank is None else max_rank
-        heat = {
-            "rows": rows,
-            "matrix": mat,
-            "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else []),
-        }
+        heat = g.pop("heat")
         if pair_idx is not None:
             th = fit.raw.theta.reshape(-1, J)
             pairs = pd.DataFrame(

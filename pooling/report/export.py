@@ -5,6 +5,7 @@ the reporter's keys in summary.json (labels exactly as they are; JSON is not a s
 from __future__ import annotations
 
 import csv
+import math
 from pathlib import Path
 
 import numpy as np
@@ -50,12 +51,27 @@ def _plain(x):
     return x
 
 
+def _json_safe(x):
+    x = _plain(x)
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    return x
+
+
 def records(df: pd.DataFrame) -> list[dict]:
-    """Rows as JSON-ready dicts (NaN becomes None downstream)."""
+    """Rows as JSON-ready dicts: plain Python values, NaN and infinities as None."""
     cols = list(df.columns)
     values = []
     for c in cols:
         a = df[c].to_numpy()
-        # a numeric column turns into Python numbers in one call (the same values _plain gives one at a time)
-        values.append(a.tolist() if a.dtype.kind in "biuf" else [_plain(x) for x in a])
+        if a.dtype.kind in "biu":
+            values.append(a.tolist())
+        elif a.dtype.kind == "f":
+            # a numeric column turns into Python numbers in one call (the same values _plain gives one at a time)
+            col = a.tolist()
+            for i in np.flatnonzero(~np.isfinite(a)).tolist():
+                col[i] = None
+            values.append(col)
+        else:
+            values.append([_json_safe(x) for x in a])
     return [dict(zip(cols, row)) for row in zip(*values)]
