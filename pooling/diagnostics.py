@@ -87,13 +87,18 @@ def _place_scores(vals, where, table, out):
     size = vals.shape[0]
     i = 0
     while i < size:
-        j = i
-        while j + 1 < size and vals[j + 1] == vals[i]:
-            j += 1
-        val = table[i + j + 2]  # positions i..j (0-based) have the average rank (i + j) / 2 + 1
-        for t in range(i, j + 1):
-            out[where[t]] = val
-        i = j + 1
+        v = vals[i]
+        if i + 1 < size and vals[i + 1] == v:  # a run of ties: positions i..j (0-based) share rank (i + j) / 2 + 1
+            j = i + 1
+            while j + 1 < size and vals[j + 1] == v:
+                j += 1
+            val = table[i + j + 2]
+            for t in range(i, j + 1):
+                out[where[t]] = val
+            i = j + 1
+        else:
+            out[where[i]] = table[2 * i + 2]
+            i += 1
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -128,16 +133,27 @@ def _rank_block(xs, orders, table, z, zf, srt, redo):
         med = row[k] if size % 2 else (row[k - 1] + row[k]) / 2.0
         # the folded values are two sorted runs: med - row[k-1], ..., med - row[0] and row[k] - med, ...;
         # merging them, the first run first on ties, is the stable sort of their concatenation
+        # (written without branches in the loop: which run comes next is data, and mispredicted jumps cost
+        # more than the merge's arithmetic)
         i, j, m = 0, k, 0
-        while m < size:
-            if j >= size or (i < k and (med - row[k - 1 - i]) <= (row[j] - med)):
-                folded[m] = med - row[k - 1 - i]
-                where_f[m] = order[k - 1 - i]
-                i += 1
-            else:
-                folded[m] = row[j] - med
-                where_f[m] = order[j]
-                j += 1
+        while i < k and j < size:
+            a = med - row[k - 1 - i]
+            b = row[j] - med
+            first = a <= b
+            folded[m] = a if first else b
+            where_f[m] = order[k - 1 - i] if first else order[j]
+            i += first
+            j += 1 - first
+            m += 1
+        while i < k:
+            folded[m] = med - row[k - 1 - i]
+            where_f[m] = order[k - 1 - i]
+            i += 1
+            m += 1
+        while j < size:
+            folded[m] = row[j] - med
+            where_f[m] = order[j]
+            j += 1
             m += 1
         _place_scores(folded, where_f, table, zf[p])
 
@@ -305,6 +321,22 @@ def _const_seq(y: np.ndarray) -> np.ndarray:
     return y.max(axis=-1) == y.min(axis=-1)
 
 
+@njit(cache=True, nogil=True, error_model="numpy")
+def _indicator(xs, q, ind, const):
+    """ind[p, m, t] = 1.0 if xs[p, m, t] <= q[p] else 0.0 (NaN: 0.0), and const[p, m] whether a sequence of
+    ind is one value."""
+    for p in range(xs.shape[0]):
+        qp = q[p]
+        for m in range(xs.shape[1]):
+            ones = 0
+            n = xs.shape[2]
+            for t in range(n):
+                hit = xs[p, m, t] <= qp
+                ind[p, m, t] = 1.0 if hit else 0.0
+                ones += hit
+            const[p, m] = ones == 0 or ones == n
+
+
 # --------------------------------------------------------------------------------------------
 # one block of parameters
 
@@ -353,9 +385,11 @@ def _block(xb: np.ndarray, want: frozenset[str]) -> dict[str, np.ndarray]:
             qs = list(np.quantile(xb.reshape(p, c * n_draws), [0.05, 0.95], axis=1))
         tails = []
         ind = np.empty(xs.shape)
+        const_ind = np.empty(xs.shape[:2], dtype=np.bool_)
+        xs_c = np.ascontiguousarray(xs)
         for q in qs:
-            np.less_equal(xs, q[:, None, None], out=ind, casting="unsafe")  # 1.0 / 0.0
-            tails.append(_ess(ind, _const_seq(ind)))
+            _indicator(xs_c, np.ascontiguousarray(q, dtype=np.float64), ind, const_ind)  # 1.0 / 0.0
+            tails.append(_ess(ind, const_ind))
         out["tail"] = np.fmin(tails[0], tails[1])
         out["tail"][np.isnan(tails[0]) | np.isnan(tails[1])] = np.nan
 
