@@ -41,10 +41,17 @@ def _table(path: Path, J: int, tau: float, sigma: float, seed: int) -> None:
     pd.DataFrame({"line": np.char.add("L", g.astype(str)), "width": np.round(y, 6)}).to_csv(path, index=False)
 
 
-# the command line in a fresh interpreter that reports its own peak resident memory on its last stderr line
+# the program `pooling` (pooling.cli.run, which ends the process without the interpreter's teardown) in a
+# fresh interpreter that reports its own peak resident memory on its last stderr line: the report is
+# registered after run()'s own last exit step, so it runs just before it
 _WRAP = (
-    "import resource, sys\nfrom pooling.cli import main\ncode = main(sys.argv[1:])\n"
-    "print('peak-kb', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\nsys.exit(code)"
+    "import atexit, resource, sys\nfrom pooling import cli\n_main = cli.main\n"
+    "def main(*args, **kwargs):\n"
+    "    code = _main(*args, **kwargs)\n"
+    "    atexit.register(lambda: print('peak-kb', resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, "
+    "file=sys.stderr, flush=True))\n"
+    "    return code\n"
+    "cli.main = main\ncli.run()"
 )
 
 

@@ -162,3 +162,85 @@ def rank_counts(ranks, j0, j1, k, total, best, top, buf):
         total[j0 + i] = t
         best[j0 + i] = b
         top[j0 + i] = c
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _sift_down(h, n, sign):
+    """Restore the heap h[:n] (a max-heap of sign * h; sign 1 or -1) after its root was replaced."""
+    i = 0
+    while True:
+        a = 2 * i + 1
+        if a >= n:
+            return
+        b = a + 1
+        c = b if b < n and sign * h[b] > sign * h[a] else a
+        if sign * h[c] <= sign * h[i]:
+            return
+        h[i], h[c] = h[c], h[i]
+        i = c
+
+
+@njit(nogil=True, cache=True, inline="always")
+def _push(h, n, v, sign):
+    """Add v to the heap h[:n] (a max-heap of sign * h), which has room for it."""
+    i = n
+    h[i] = v
+    while i > 0:
+        up = (i - 1) // 2
+        if sign * h[up] >= sign * h[i]:
+            return
+        h[i], h[up] = h[up], h[i]
+        i = up
+
+
+@njit(nogil=True, cache=True)
+def fold_ranks(blk, rows, j0, j1, k, m, total, best, top, first, low, nlow, high, nhigh, tbuf):
+    """Fold the ranks of draws blk[:rows] (draws x groups) into running per-group figures for the groups j0 .. j1
+    - 1: the sum of the ranks, the draws ranked first and within the first k, the draws at each rank 1..m
+    (first[j, r - 1]), the low.shape[1] smallest ranks (a max-heap per group, its root the largest of them) and the
+    high.shape[1] largest (a min-heap, its root the smallest of them). The block's columns are laid out by group
+    in tbuf first, so that a group's heaps stay in cache while its ranks pass."""
+    kl = low.shape[1]
+    kh = high.shape[1]
+    for c0 in range(j0, j1, tbuf.shape[0]):
+        c1 = min(j1, c0 + tbuf.shape[0])
+        for s0 in range(0, rows, _TILE):
+            s1 = min(rows, s0 + _TILE)
+            for i in range(c1 - c0):
+                for s in range(s0, s1):
+                    tbuf[i, s] = blk[s, c0 + i]
+        for i in range(c1 - c0):
+            j = c0 + i
+            lo = low[j]
+            hi = high[j]
+            nl = nlow[j]
+            nh = nhigh[j]
+            t = total[j]
+            b = best[j]
+            c = top[j]
+            for s in range(rows):
+                r = tbuf[i, s]
+                t += r
+                if r == 1:
+                    b += 1
+                if r <= k:
+                    c += 1
+                if r <= m:
+                    first[j, r - 1] += 1
+                if nl < kl:
+                    _push(lo, nl, r, 1)
+                    nl += 1
+                elif r < lo[0]:
+                    lo[0] = r
+                    _sift_down(lo, nl, 1)
+                if nh < kh:
+                    _push(hi, nh, r, -1)
+                    nh += 1
+                elif r > hi[0]:
+                    hi[0] = r
+                    _sift_down(hi, nh, -1)
+            nlow[j] = nl
+            nhigh[j] = nh
+            total[j] = t
+            best[j] = b
+            top[j] = c

@@ -499,28 +499,95 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
         lo, hi = np.quantile(dr.sigma[:, 0], probs)
         lows["sigma"][:], highs["sigma"][:] = lo, hi
     out["low"], out["high"] = lows, highs
-    ranks = rank_draws(theta, highest=o.best == "highest")
-    out.update(rank_summary(ranks, o.level, k))
-    out["heat"] = _rank_heat(ranks, out["rank_mean"])  # then the draws' ranks (S x J) are let go
-    del ranks
+    ranked, out["heat"] = rank_answers(theta, o.best == "highest", o.level, k)
+    out.update(ranked)
     if p.design is not None and p.design.level_names:
         out["in_level"] = ranks_in_level(theta, p.design.level_of, o.level, highest=o.best == "highest")
     return out, {"draws_total": S}
 
 
-def _rank_heat(ranks: np.ndarray, rank_mean: np.ndarray) -> dict:
-    """The page's rank picture: P(rank = r) for every group by mean rank, or above HEAT_ALL groups for the best
-    HEAT_ROWS_MANY over ranks 1..HEAT_ALL (and beyond)."""
-    J = ranks.shape[1]
-    order = np.argsort(rank_mean, kind="stable")
-    rows, max_rank = (order, None) if J <= HEAT_ALL else (order[:HEAT_ROWS_MANY], HEAT_ALL)
-    mat = rank_matrix(ranks, rows, max_rank)
-    m = mat.shape[1] if max_rank is None else max_rank
-    return {
-        "rows": rows,
-        "matrix": mat,
-        "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if mat.shape[1] > m else []),
+RANK_ROWS = 512  # draws ranked at a time by rank_answers
+FOLD_GROUPS = 64  # groups laid out together by order.fold_ranks
+
+
+def rank_answers(x: np.ndarray, highest: bool, level: float, k: int) -> tuple[dict[str, np.ndarray], dict]:
+    """rank_summary(rank_draws(x), level, k) and the page's rank picture (P(rank = r) for every group by mean
+    rank, or above HEAT_ALL groups for the best HEAT_ROWS_MANY over ranks 1..HEAT_ALL and beyond), the same
+    numbers, without holding every draw's ranks (S x J): RANK_ROWS draws at a time are ranked as rank_draws
+    ranks them and folded into per-group sums and counts, the counts at ranks 1..HEAT_ALL, and the ranks at the
+    interval's ends, which are the largest of a group's i_lo + 1 smallest ranks and the smallest of its S - i_hi
+    largest (a heap of each per group, order.fold_ranks). The memory is O(J) for a given level: J x (S (1 - level)
+    + 2) ranks in the heaps against S x J."""
+    x = np.ascontiguousarray(x)
+    S, J = x.shape
+    i_lo = quantile_index(S, (1 - level) / 2)
+    i_hi = quantile_index(S, (1 + level) / 2)
+    dtype = np.uint16 if J < np.iinfo(np.uint16).max else np.int32
+    m = min(J, HEAT_ALL)
+    total, best, top = np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64)
+    first = np.zeros((J, m), dtype=np.int64)
+    low, high = np.empty((J, i_lo + 1), dtype=dtype), np.empty((J, S - i_hi), dtype=dtype)
+    nlow, nhigh = np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64)
+    rows = min(S, RANK_ROWS)
+    blk = np.empty((rows, J), dtype=dtype)
+    bad = np.zeros(rows, dtype=np.bool_)
+    sign = 1.0 if highest else -1.0
+    threaded = S * J >= 1_000_000
+    ranking = Scratch(lambda: (np.empty(J), np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64)))
+    folding = Scratch(lambda: np.empty((FOLD_GROUPS, rows), dtype=dtype))
+    for s0 in range(0, S, rows):
+        s1 = min(S, s0 + rows)
+        part = x[s0:s1]
+
+        def rank(a: int, part=part) -> None:
+            with ranking.lend() as (slot_v, slot_i, count):
+                O.rank_rows(part, sign, a, min(part.shape[0], a + RANK_BLOCK), blk, slot_v, slot_i, count, bad)
+
+        each_block(rank, range(0, s1 - s0, RANK_BLOCK), threaded)
+        for s in np.flatnonzero(bad[: s1 - s0]):  # ranked by numpy's stable argsort, as rank_draws does
+            order = np.argsort(-part[s] if highest else part[s], kind="stable")
+            blk[s, order] = np.arange(1, J + 1, dtype=dtype)
+
+        def fold(j0: int, n=s1 - s0) -> None:
+            with folding.lend() as tbuf:
+                O.fold_ranks(
+                    blk,
+                    n,
+                    j0,
+                    min(J, j0 + 8 * FOLD_GROUPS),
+                    k,
+                    m,
+                    total,
+                    best,
+                    top,
+                    first,
+                    low,
+                    nlow,
+                    high,
+                    nhigh,
+                    tbuf,
+                )
+
+        each_block(fold, range(0, J, 8 * FOLD_GROUPS), threaded)
+    ranked = {
+        "rank_mean": total / S,
+        "rank_low": low[:, 0].astype(np.float64),
+        "rank_high": high[:, 0].astype(np.float64),
+        "p_best": best / S,
+        "p_top_k": top / S,
     }
+    order = np.argsort(ranked["rank_mean"], kind="stable")
+    if J <= HEAT_ALL:
+        picked, counts = order, first[order]
+    else:
+        picked = order[:HEAT_ROWS_MANY]
+        counts = np.concatenate([first[picked], (S - first[picked].sum(axis=1))[:, None]], axis=1)
+    heat = {
+        "rows": picked,
+        "matrix": counts / S,
+        "columns": [str(i) for i in range(1, m + 1)] + ([f">{m}"] if counts.shape[1] > m else []),
+    }
+    return ranked, heat
 
 
 def ranks_in_level(x: np.ndarray, level_of: np.ndarray, level: float, highest: bool = True) -> dict[str, np.ndarray]:

@@ -149,6 +149,45 @@ def test_rank_summary_equals_numpy():
     assert _same_bits(got["rank_high"], np.quantile(r, 0.95, axis=0, method="inverted_cdf"))
 
 
+@pytest.mark.parametrize(
+    "S, J, level, k, rows",
+    [
+        (999, 300, 0.9, 5, None),  # a block of 512 draws and a part; the picture: the best 40 over ranks 1..60, >60
+        (700, 2000, 0.95, 3, None),  # threaded: draws x groups >= 1e6
+        (40, 7, 0.5, 2, None),  # every group in the picture; heaps of a quarter of the draws each
+        (4, 1, 0.95, 1, None),  # one group, four draws
+        (1500, 61, 0.8, 10, 200),  # blocks of 200 draws; 61 groups: the picture's overflow column
+    ],
+)
+def test_rank_answers_equal_the_ranks_held_whole(S, J, level, k, rows, monkeypatch):
+    """rank_answers (blocks of draws folded into heaps and counts) gives the numbers of rank_summary and
+    rank_matrix over every draw's ranks, to the bit, for both directions, with awkward draws among them."""
+    # Source: the ranks held whole, as the code before rank_answers computed them (rank_draws, which the tests
+    # above check against numpy's stable argsort; rank_summary, checked against numpy's quantiles).
+    from pooling import results as R
+
+    if rows is not None:
+        monkeypatch.setattr(R, "RANK_ROWS", rows)
+    rng = np.random.default_rng(S + J)
+    x = rng.normal(size=J)[None, :] * 2 + rng.normal(size=(S, J))
+    if S > 10 and J > 5:
+        x[3, 1] = np.nan
+        x[5] = np.round(x[5])
+        x[6, :] = 1.0
+        x[S - 2, 0] = -np.inf
+    for highest in (True, False):
+        ranked, heat = R.rank_answers(x, highest, level, k)
+        ranks = rank_draws(x, highest=highest)
+        ref = rank_summary(ranks, level, k)
+        for key in ("rank_mean", "rank_low", "rank_high", "p_best", "p_top_k"):
+            assert _same_bits(ranked[key], ref[key]), key
+        order = np.argsort(ref["rank_mean"], kind="stable")
+        picked, max_rank = (order, None) if J <= R.HEAT_ALL else (order[: R.HEAT_ROWS_MANY], R.HEAT_ALL)
+        np.testing.assert_array_equal(heat["rows"], picked)
+        assert _same_bits(heat["matrix"], R.rank_matrix(ranks, picked, max_rank))
+        assert len(heat["columns"]) == heat["matrix"].shape[1]
+
+
 # ------------------------------------------------------------------ the diagnostics' sort
 
 
