@@ -1134,22 +1134,22 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
     mu_t, tau_t = mu[idx, None], tau[idx, None]
     if raw.beta is not None:  # each group about its own centre mu + x_j' beta
         mu_t = mu_t + raw.beta.reshape(S, -1)[idx] @ problem.data.X.T
-    # The random numbers are drawn in full and in this order; everything else is computed a few draws at a
-    # time (the same numbers, in a fraction of the memory, while they are in cache).
+    # The random numbers are drawn in this order: z for every checked draw, lambda for the draws with a finite
+    # df, the noise, then the within-group sds. Only z is held whole: lambda, the noise and the sds are drawn
+    # CHECK_ROWS draws at a time, which gives the same numbers (numpy draws an array's elements in order), and
+    # everything is computed a few draws at a time (a fraction of the memory, while it is in cache).
     z = rng.standard_normal((m, J))
     if raw.df is not None:
         df = raw.df.reshape(-1)[idx]
-        fin = np.isfinite(df)
-        if fin.any():
-            lam = rng.standard_gamma(np.broadcast_to(df[fin, None] / 2.0, (int(fin.sum()), J)))
-            lam /= df[fin, None] / 2.0
+        fin_rows = np.flatnonzero(np.isfinite(df))  # the other draws divide by sqrt(1) = 1, which changes nothing
+        for f0 in range(0, len(fin_rows), CHECK_ROWS):
+            rows = fin_rows[f0 : f0 + CHECK_ROWS]
+            half = df[rows, None] / 2.0
+            lam = rng.standard_gamma(np.broadcast_to(half, (len(rows), J)))
+            lam /= half
             np.sqrt(lam, out=lam)
-            if fin.all():
-                z /= lam
-            else:
-                z[fin] = z[fin] / lam  # the other draws divide by sqrt(1) = 1, which changes nothing
+            z[rows] = z[rows] / lam
             del lam
-    noise = rng.standard_normal((m, J))
     rep = z  # rep = mu + tau z + sqrt(v) noise, made in place
     t_spread = np.empty(m)
     t_obs_draw, t_rep, who = np.empty(m), np.empty(m), np.empty(m, dtype=np.int64)
@@ -1160,7 +1160,7 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
         rc = rep[r0:r1]
         np.multiply(tau_c, rc, out=rc)
         np.add(mu_c, rc, out=rc)
-        nc = noise[r0:r1]
+        nc = rng.standard_normal((r1 - r0, J))
         np.multiply(np.sqrt(v), nc, out=nc)
         np.add(rc, nc, out=rc)
         if J >= 2:
@@ -1172,7 +1172,7 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
             t_obs_draw[r0:r1] = dev_obs.max(axis=1) / np.median(dev_obs, axis=1)
             t_rep[r0:r1] = dev_rep.max(axis=1) / np.median(dev_rep, axis=1)
         who[r0:r1] = dev_obs.argmax(axis=1)
-    del noise, rep, z
+    del rep, z
     out: dict = {"draws": m}
     if J >= 2:
         t_obs = float(np.std(ybar, ddof=1))
@@ -1193,25 +1193,36 @@ def model_checks(problem, raw, seed: int, level: float = 0.9) -> dict:
     if within != 2:
         keep = np.flatnonzero(n >= 2)
         if keep.size:
-            sig = sig_rows[idx][:, None] if within == 1 else sig_rows[np.ix_(idx, keep)]
             dfw = n[keep] - 1
-            rep_sd = rng.chisquare(np.broadcast_to(dfw, (m, keep.size)))  # sig sqrt(chi2 / dfw), in place
-            rep_sd /= dfw
-            np.sqrt(rep_sd, out=rep_sd)
-            np.multiply(sig, rep_sd, out=rep_sd)
-            del sig
             obs = np.sqrt(problem.m2[keep] / dfw)
-            p = np.mean(rep_sd >= obs[None, :], axis=0)
-            by_group = np.ascontiguousarray(rep_sd.T)  # the same order statistics, selected along memory
-            del rep_sd
-            lo, hi = np.quantile(by_group, [(1 - level) / 2, (1 + level) / 2], axis=1)
+            above = np.zeros(keep.size, dtype=np.int64)
+            by_group = np.empty((keep.size, m))  # the replicated sds laid out by group
+            for r0 in range(0, m, CHECK_ROWS):
+                r1 = min(m, r0 + CHECK_ROWS)
+                sig = sig_rows[idx[r0:r1]][:, None] if within == 1 else sig_rows[np.ix_(idx[r0:r1], keep)]
+                rep_sd = rng.chisquare(np.broadcast_to(dfw, (r1 - r0, keep.size)))  # sig sqrt(chi2 / dfw), in place
+                rep_sd /= dfw
+                np.sqrt(rep_sd, out=rep_sd)
+                np.multiply(sig, rep_sd, out=rep_sd)
+                above += (rep_sd >= obs[None, :]).sum(axis=0)
+                by_group[:, r0:r1] = rep_sd.T
+                del sig, rep_sd
+            p = above / m  # whole counts, so the same numbers as the mean of the indicators
+            # a sort per group gives numpy's quantiles (order.sorted_quantiles) and median to the bit
+            by_group.sort(axis=1)
+            lo, hi = np.empty(keep.size), np.empty(keep.size)
+            O.sorted_quantiles(
+                by_group, keep.size, np.array([(m - 1) * ((1 - level) / 2), (m - 1) * ((1 + level) / 2)]), lo, hi, 0
+            )
+            mid = by_group[:, m // 2] if m % 2 else (by_group[:, m // 2 - 1] + by_group[:, m // 2]) / 2.0
+            mid = np.where(np.isnan(by_group[:, -1]), np.nan, mid)  # np.median of a row holding NaN is NaN
             k = problem.scale
             out["sd"] = {
                 "groups": keep,
                 "observed": obs * k,
                 "low": lo * k,
                 "high": hi * k,
-                "median": np.median(by_group, axis=1) * k,
+                "median": mid * k,
                 "p_value": p,
                 "level": level,
                 "outside": int(np.sum((obs < lo) | (obs > hi))),
