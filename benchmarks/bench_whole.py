@@ -9,6 +9,9 @@ an invented long table, after one run that compiles and caches the kernel. It re
   peak       the process's peak resident memory, against the draws' own size (chains x draws x J x 8 bytes
              for theta, sigma and lambda): target, full mode at most the draws plus O(J) working arrays.
 Summary mode at J = 20,000 should be no slower than full mode (ratio of whole times <= 1).
+Memory beyond the draws: a full run at J = 20,000 (2,000 with --quick) again with twice the draws; when the
+working arrays are O(J), the peak grows by the draws' growth alone (ratio of the growths about 1; anything
+held per draw and group besides the draws shows as more).
 
 The tau ESS per second of the whole process (full mode, J = 2,000, strong shrinkage data as in
 baseline.py) is compared with the numpy baseline's tau ESS per second of sampling: target >= 25x.
@@ -55,7 +58,7 @@ _WRAP = (
 )
 
 
-def _fit(csv: Path, out: Path, env: dict, mode: str) -> dict:
+def _fit(csv: Path, out: Path, env: dict, mode: str, draws: int = DRAWS) -> dict:
     cmd = [
         sys.executable,
         "-c",
@@ -78,9 +81,9 @@ def _fit(csv: Path, out: Path, env: dict, mode: str) -> dict:
         "--warmup",
         str(WARMUP),
         "--draws",
-        str(DRAWS),
+        str(draws),
         "--max-draws",
-        str(DRAWS),
+        str(draws),
         "--summary",
         mode,
     ]
@@ -130,6 +133,15 @@ def run(quick: bool = False) -> dict:
                         "target": 3.0 if J == 2_000 else 2.0,
                     }
                 )
+        # memory beyond the draws, at twice the draws: what grows with draws x groups besides the draws themselves
+        J = 2_000 if quick else 20_000
+        extra = []
+        for draws in (DRAWS, 2 * DRAWS):
+            r = _fit(tmp / f"w{J}.csv", tmp / f"mem-{draws}", env, "off", draws)
+            draws_mb = CHAINS * draws * J * 8 * 3 / 2**20
+            extra.append({"draws": draws, "peak_mb": round(r["peak_mb"], 1), "draws_mb": round(draws_mb, 1)})
+        grow = (extra[1]["peak_mb"] - extra[0]["peak_mb"]) / (extra[1]["draws_mb"] - extra[0]["draws_mb"])
+        memory = {"J": J, "runs": extra, "peak_growth_per_draws_growth": round(grow, 3)}
         # tau ESS per second of the whole process against the numpy baseline (strong shrinkage, J = 2,000)
         sys.path.insert(0, str(HERE))
         from baseline import _ess_per_second, _start, gibbs
@@ -165,6 +177,7 @@ def run(quick: bool = False) -> dict:
         "rows": rows,
         "summary_over_full": speed,
         "mixing": mixing,
+        "memory": memory,
         "load_1min": os.getloadavg()[0],
     }
 
@@ -184,6 +197,13 @@ def table(res: dict) -> list[str]:
         )
     for J, q in res["summary_over_full"].items():
         out.append(f"  summary / full whole time at J = {J:,}: {q:.2f} (target <= 1)")
+    mem = res["memory"]
+    a, b = mem["runs"]
+    out.append(
+        f"  peak memory beyond the draws, full mode, J = {mem['J']:,}: {a['peak_mb'] - a['draws_mb']:.0f} MB at {a['draws']:,} "
+        f"draws per chain, {b['peak_mb'] - b['draws_mb']:.0f} MB at {b['draws']:,}; peak growth / draws growth "
+        f"{mem['peak_growth_per_draws_growth']:.3f} (target: about 1, the draws plus O(J))"
+    )
     m = res["mixing"]
     out.append(
         f"  tau ESS per second, whole process (J = 2,000, strong shrinkage): {m['engine_tau_ess_per_s']:.0f} "

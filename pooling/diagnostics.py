@@ -104,9 +104,9 @@ def _place_scores(vals, where, table, out):
 @njit(cache=True, nogil=True, error_model="numpy")
 def _sort_rows(xs, srt, orders, bad):
     """srt[p] = row p of xs (P, S) sorted ascending and orders[p] a permutation that sorts it, by the compiled
-    bucket sort of pooling.order (numpy's argsort took 47 us of 4,000 draws, this about a quarter of it); a row
-    it hands back (NaN or infinite values, all values equal, values crowded into few buckets) is flagged in bad,
-    for numpy's argsort."""
+    bucket sort of pooling.order (on a real run's draws about as fast as numpy 2.4's argsort: 42 against 41 us
+    per 4,000 draws); a row it hands back (NaN or infinite values, all values equal, values crowded into few
+    buckets) is flagged in bad, for numpy's argsort."""
     count = np.empty(xs.shape[1] + 1, dtype=np.int64)
     for p in range(xs.shape[0]):
         bad[p] = not sort_bucketed(xs[p], 1.0, srt[p], orders[p], count)
