@@ -183,3 +183,26 @@ def test_misses_name_their_group(stats):
     assert len(per_group) == 2 * fit.J
     for m in per_group:
         assert len(m["index"]) == 1 and m["group"] == fit.labels[m["index"][0]]
+
+
+def test_the_sampling_time_leaves_out_loading_the_sweep(stats, monkeypatch):
+    """The sweep is loaded (or compiled: half a minute on a cold cache) before the clock of the sampling time
+    starts. A load made 2 s slow must not show in run.sweep_seconds, and the zero-sweep call changes no draw."""
+    import time
+
+    model = pooling.Model(within="separate")
+    settings = sampler.Settings(chains=2, draws=60, warmup=60, seed=4, max_draws=60)
+    plain = pooling.fit(stats, model, settings, progress=False)
+    real = sampler.load_sweep
+    calls = []
+
+    def slow(chain, problem):
+        calls.append(1)
+        time.sleep(2.0)
+        real(chain, problem)
+
+    monkeypatch.setattr(sampler, "load_sweep", slow)
+    fit = pooling.fit(stats, model, settings, progress=False)
+    assert calls, "the sampler no longer loads the sweep before sampling"
+    assert fit.raw.sweep_seconds < 2.0 and fit.raw.seconds < 2.0  # the sweeps of 8 groups take milliseconds
+    np.testing.assert_array_equal(fit.draws("theta"), plain.draws("theta"))
