@@ -583,6 +583,8 @@ def _check_space(parts: dict, labels, folder: Path) -> None:
 DIRECT_MIN_BYTES = 8 << 20
 #: File offsets and lengths of direct writes are multiples of this (the largest logical block size in use).
 DIRECT_ALIGN = 4096
+#: What a file system that does not do direct I/O answers to a direct write (then the page cache is used).
+_DIRECT_REFUSED = {errno.EINVAL, getattr(errno, "EOPNOTSUPP", errno.EINVAL), getattr(errno, "ENOTSUP", errno.EINVAL)}
 #: The aligned buffer that the arrays pass through on their way to the disk.
 DIRECT_BUFFER_BYTES = 16 << 20
 
@@ -718,7 +720,7 @@ def _flush(fd: int, dfd: int, buf: np.ndarray, nbytes: int, at: int) -> int:
             _write_all(dfd, buf[:nbytes], at)
             return dfd
         except OSError as exc:
-            if exc.errno != errno.EINVAL:
+            if exc.errno not in _DIRECT_REFUSED:
                 raise
             os.close(dfd)
             dfd = -1
