@@ -516,8 +516,8 @@ def rank_answers(x: np.ndarray, highest: bool, level: float, k: int) -> tuple[di
     numbers, without holding every draw's ranks (S x J): RANK_ROWS draws at a time are ranked as rank_draws
     ranks them and folded into per-group sums and counts, the counts at ranks 1..HEAT_ALL, and the ranks at the
     interval's ends, which are the largest of a group's i_lo + 1 smallest ranks and the smallest of its S - i_hi
-    largest (a heap of each per group, order.fold_ranks). The memory is O(J) for a given level: J x (S (1 - level)
-    + 2) ranks in the heaps against S x J."""
+    largest (a heap of each per group, order.fold_ranks). The heaps hold J x (S (1 - level) + 2) ranks, a
+    twentieth of the S x J ranks at the 95 % level; the rest is O(J)."""
     x = np.ascontiguousarray(x)
     S, J = x.shape
     i_lo = quantile_index(S, (1 - level) / 2)
