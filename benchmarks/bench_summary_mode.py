@@ -32,7 +32,8 @@ warm-up (pooling.summary.prepare: slice-width adaptation, pilot, grids, rank buc
 Then, on that chain, alternately: k draws of summary mode's draw phase (the chain's `run` as the sampler calls
 it: kernel.sweep plus every per-draw summary, in the sampler's chunks) and k sweeps of the full-mode sweep
 without storage (kernel.sweeps with zero-row outputs, as bench_sweep.py times it). Thread CPU time, best of the
-interleaved repeats of each; the ratio is draw time / sweep time. Each J runs in a process of its own, whose
+interleaved repeats of each (k a multiple of the 16 draws whose histogram bins are buffered, so that the timed
+draws count them as often as the sampler's); the ratio is draw time / sweep time. Each J runs in a process of its own, whose
 peak resident memory (VmHWM) is reported.
 
     python benchmarks/bench_summary_mode.py --draw            # J = 1e5 and 1e6 (about a minute)
@@ -145,6 +146,7 @@ def draw_child(J: int, repeats: int, budget: float) -> dict:
 
     import pooling
     from pooling import summary
+    from pooling import summary_kernel as sk
     from pooling.asked import ReportOptions
 
     problem = problem_of(invented_groups(J, tau=0.5, sigma=1.0, n_lo=2, n_hi=20, seed=J))  # as bench_sweep.py
@@ -155,7 +157,9 @@ def draw_child(J: int, repeats: int, budget: float) -> dict:
     sweeper = KernelChain(problem, chain)  # the same chain, state and Generator, swept without storing
     chunk = chunk_size(J)
     stop = threading.Event()
-    k = max(2, int(budget / (50e-9 * J)))
+    # whole buffers of histogram bins (summary_kernel.HBUF draws), so that the timed draws flush as often as the
+    # sampler's do; the chain's run also flushes at its end, where the sampler has hundreds of draws per call
+    k = sk.HBUF * max(1, round(budget / (50e-9 * J) / sk.HBUF))
 
     def draws():
         chain.run(problem, k, True, False, chunk, stop, lambda n: None)
@@ -193,7 +197,7 @@ def draw_child(J: int, repeats: int, budget: float) -> dict:
 
 def run(quick: bool = False) -> dict:
     """The cost per draw at each J, each in a process of its own (for benchmarks/run.py)."""
-    repeats, budget = (3, 0.1) if quick else (7, 0.2)
+    repeats, budget = (3, 0.1) if quick else (5, 0.2)
     rows = []
     env = dict(os.environ)
     env.setdefault("NUMBA_CACHE_DIR", str(HERE.parent / ".numba-cache"))

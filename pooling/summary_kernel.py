@@ -177,32 +177,36 @@ def pilot(rng, n_sweeps, d, st, wk, sg, asked, logn, bias_on, limits, count, mea
 
 
 @njit(nogil=True, cache=True)
-def _extreme(ext, row, j, x, below):
-    """Keep x if it is the smallest value seen below group j's grid of row `row` (below) or the largest above it."""
+def _extreme(ext, i, x, below):
+    """Keep x if it is the smallest value seen below grid i (below) or the largest above it; ext (n, 2)."""
     if below:
-        if x < ext[row, j, 0]:
-            ext[row, j, 0] = x
-    elif x > ext[row, j, 1]:
-        ext[row, j, 1] = x
+        if x < ext[i, 0]:
+            ext[i, 0] = x
+    elif x > ext[i, 1]:
+        ext[i, 1] = x
 
 
-@njit(nogil=True, cache=True, inline="always")
-def _bin_of(ext, glo, ginv, row, j, x, B):
-    """The bin of x in group j's grid of row `row`: 0 below, 1..B inside, B + 1 above. The smallest
-    value below the grid and the largest above it bound the outer bins (inner bins need no such bound)
-    and are kept here, at once; the bin is counted later (flush). The bin is chosen by selects and the
-    rare outer bins tested on it: branching on u itself made numba's loop about ten times slower."""
-    u = (x - glo[row, j]) * ginv[row, j]
-    b = 0 if u < 0.0 else (B + 1 if u >= B else int(u) + 1)
-    if b == 0 or b == B + 1:
-        _extreme(ext, row, j, x, b == 0)
-    return b
+@njit(nogil=True, cache=True)
+def _bins(x, lo, inv, ext, out, B):
+    """out[i] = the bin of x[i] in its grid (lo[i], inv[i] = 1 / bin width): 0 below, 1..B inside, B + 1 above,
+    for a block of groups of one histogram row (ext, out: the same block). The smallest value below the grid and
+    the largest above it bound the outer bins (inner bins need no such bound) and are kept here, at once; the bin
+    is counted later (flush). The bin is chosen by selects and the rare outer bins tested on the result, in a
+    loop of its own: branching on u, or calling a function per group, made this loop ten times slower."""
+    for i in range(x.shape[0]):
+        u = (x[i] - lo[i]) * inv[i]
+        b = 0 if u < 0.0 else (B + 1 if u >= B else int(u) + 1)
+        if b == 0 or b == B + 1:
+            _extreme(ext, i, x[i], b == 0)
+        out[i] = b
 
 
 @njit(nogil=True, cache=True)
 def _hist_add(hist, ext, glo, ginv, row, j, x, B):
-    """Count x into group j's grid of row `row` at once: what summarise does through the buffer and flush."""
-    hist[row, j, _bin_of(ext, glo, ginv, row, j, x, B)] += 1
+    """Count x into group j's grid of row `row` at once: what summarise does through _bins, the buffer and flush."""
+    b = np.empty(1, dtype=np.int64)
+    _bins(np.full(1, x), glo[row, j : j + 1], ginv[row, j : j + 1], ext[row, j : j + 1], b, B)
+    hist[row, j, b[0]] += 1
 
 
 @njit(nogil=True, cache=True)
@@ -301,6 +305,7 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
     poscnt = np.empty(m + 1, dtype=np.int64)
     xs = np.empty(NB)
     xw = np.empty(NB)
+    xq = np.empty(NB)
     eb = np.empty(NB, dtype=np.int64)
     theta = st.theta
     sc = st.scalars
@@ -373,25 +378,24 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
                 b = 0 if u < 0.0 else (G - 1 if u >= G else int(u))
                 bidx[j] = b
                 bcnt[b] += 1
-            for j in range(j0, j1):
-                hbuf[slot, 0, j] = _bin_of(ext, glo, ginv, 0, j, theta[j], B)
+            n_ = j1 - j0
+            _bins(theta[j0:j1], glo[0, j0:j1], ginv[0, j0:j1], ext[0, j0:j1], hbuf[slot, 0, j0:j1], B)
             if r_bias >= 0:
                 for j in range(j0, j1):
-                    x = theta[j] - A.centre_of(mu, d.X, st.beta, j)
-                    hbuf[slot, r_bias, j] = _bin_of(ext, glo, ginv, r_bias, j, x, B)
+                    xq[j - j0] = theta[j] - A.centre_of(mu, d.X, st.beta, j)
+                _bins(xq[:n_], glo[r_bias, j0:j1], ginv[r_bias, j0:j1], ext[r_bias, j0:j1], hbuf[slot, r_bias, j0:j1], B)
             if d.within == 0:
                 for j in range(j0, j1):
                     s = sg[j]
                     s2_sum += s * s
-                for j in range(j0, j1):
-                    hbuf[slot, r_sig, j] = _bin_of(ext, glo, ginv, r_sig, j, xs[j - j0], B)
+                _bins(xs[:n_], glo[r_sig, j0:j1], ginv[r_sig, j0:j1], ext[r_sig, j0:j1], hbuf[slot, r_sig, j0:j1], B)
             if r_w >= 0:
-                for j in range(j0, j1):
-                    hbuf[slot, r_w, j] = _bin_of(ext, glo, ginv, r_w, j, xw[j - j0], B)
+                _bins(xw[:n_], glo[r_w, j0:j1], ginv[r_w, j0:j1], ext[r_w, j0:j1], hbuf[slot, r_w, j0:j1], B)
             if limits:
                 for j in range(j0, j1):
                     f, g = A.outside(theta[j], sg[j] if d.within == 0 else sg[0], asked)
-                    hbuf[slot, r_f, j] = _bin_of(ext, glo, ginv, r_f, j, A.logit_pair(f, g), B)
+                    xq[j - j0] = A.logit_pair(f, g)
+                _bins(xq[:n_], glo[r_f, j0:j1], ginv[r_f, j0:j1], ext[r_f, j0:j1], hbuf[slot, r_f, j0:j1], B)
             # ranks: x = sign * theta, larger is better
             for j in range(j0, j1):
                 x = sign * theta[j]
