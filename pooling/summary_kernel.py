@@ -298,7 +298,9 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
     hi = np.empty(k, dtype=np.int64)
     blo, binv = sh.bucket[0], sh.bucket[1]
     # kept groups: sorted values, and a lookup table from a value to its count of smaller kept values
-    L = 4 * m if m > 0 else 1
+    # cells: a group's count is cell[c] corrected by the walks below, whose iterations (a branch the processor
+    # cannot predict) are rarer the finer the cells; up to 32 a kept group where J is large enough to pay for them
+    L = max(4 * m, min(32 * m, J // 16)) if m > 0 else 1
     sv = np.empty(m)
     ss = np.empty(m)
     cell = np.empty(L, dtype=np.int64)
