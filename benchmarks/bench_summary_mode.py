@@ -24,6 +24,20 @@ summary mode with full draws of the same seed at J = 1e4 (largest limit error ag
     python benchmarks/bench_summary_mode.py --big    # adds J = 1e6 (a few minutes; run it once)
 
 Writes benchmarks/results/bench_summary_mode.json and prints a table.
+
+Cost per draw (`--draw`, and `python benchmarks/run.py summary_draw`). Target from the issue: at J = 1e6 one
+draw of summary mode costs at most 1.3x one full-mode sweep of the same size. One chain on one thread, separate
+structure, the default heavy-tailed between model, the invented statistics of bench_sweep.py; summary mode's own
+warm-up (pooling.summary.prepare: slice-width adaptation, pilot, grids, rank buckets, kept groups, accumulators).
+Then, on that chain, alternately: k draws of summary mode's draw phase (the chain's `run` as the sampler calls
+it: kernel.sweep plus every per-draw summary, in the sampler's chunks) and k sweeps of the full-mode sweep
+without storage (kernel.sweeps with zero-row outputs, as bench_sweep.py times it). Thread CPU time, best of the
+interleaved repeats of each (k a multiple of the 16 draws whose histogram bins are buffered, so that the timed
+draws count them as often as the sampler's); the ratio is draw time / sweep time. Each J runs in a process of its own, whose
+peak resident memory (VmHWM) is reported.
+
+    python benchmarks/bench_summary_mode.py --draw            # J = 1e5 and 1e6 (about a minute)
+    python benchmarks/bench_summary_mode.py --draw --quick    # J = 1e5 only
 """
 
 from __future__ import annotations
@@ -109,6 +123,107 @@ def child(J: int, mode: str) -> dict:
     return out
 
 
+def _vm(key: str) -> float:
+    """A line of /proc/self/status in MB (VmHWM: this process's own peak; ru_maxrss would start from the parent's)."""
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+DRAW_J, DRAW_J_QUICK = (100_000, 1_000_000), (100_000,)
+DRAW_TARGET = 1.3  # at J = 1e6: one summary-mode draw <= 1.3 full-mode sweeps
+
+
+def draw_child(J: int, repeats: int, budget: float) -> dict:
+    """Summary mode's cost per draw against a full-mode sweep, one chain on this thread (see the module notes)."""
+    sys.path.insert(0, str(HERE))
+    import threading
+
+    import numpy as np
+    from common import KernelChain, best, chunk_size, invented_groups, problem_of
+
+    import pooling
+    from pooling import summary
+    from pooling import summary_kernel as sk
+    from pooling.asked import ReportOptions
+
+    problem = problem_of(invented_groups(J, tau=0.5, sigma=1.0, n_lo=2, n_hi=20, seed=J))  # as bench_sweep.py
+    warm = int(np.clip(2_000_000 // J, 40, 500))  # bench_sweep.py's warm-up length
+    settings = pooling.Settings(chains=1, warmup=warm, draws=100, seed=1, threads=1)
+    ready = summary.prepare(problem, settings, ReportOptions(), summary.SummaryOptions(), threads=1)
+    chain = ready.chains[0]
+    sweeper = KernelChain(problem, chain)  # the same chain, state and Generator, swept without storing
+    chunk = chunk_size(J)
+    stop = threading.Event()
+    # whole buffers of histogram bins (summary_kernel.HBUF draws), so that the timed draws flush as often as the
+    # sampler's do; the chain's run also flushes at its end, where the sampler has hundreds of draws per call
+    k = sk.HBUF * max(1, round(budget / (50e-9 * J) / sk.HBUF))
+
+    def draws():
+        chain.run(problem, k, True, False, chunk, stop, lambda n: None)
+        chain.parts.clear()
+
+    def sweeps():
+        sweeper.run(k)
+
+    draws()  # compile (or load from the cache) and touch every accumulator once before timing
+    sweeps()
+    t_draw = t_sweep = np.inf
+    for _ in range(repeats):  # interleaved, so a busy spell of the machine hits both alike
+        t_sweep = min(t_sweep, best(sweeps, 1))
+        t_draw = min(t_draw, best(draws, 1))
+    acc_mb = sum(a.nbytes for a in ready.acc.values()) / 2**20
+    return {
+        "J": J,
+        "structure": problem.model.within,
+        "between": problem.model.between.name,
+        "draws_timed": k,
+        "repeats": repeats,
+        "kept_groups": int(ready.setup.kept.shape[0]),
+        "histogram_rows": int(ready.setup.rowmap.max()) + 1,
+        "draw_ns_per_group": t_draw / k / J * 1e9,
+        "sweep_ns_per_group": t_sweep / k / J * 1e9,
+        "extra_ns_per_group": (t_draw - t_sweep) / k / J * 1e9,
+        "ratio": t_draw / t_sweep,
+        "target": f"<= {DRAW_TARGET}" if J >= 1_000_000 else None,
+        "met": bool(t_draw / t_sweep <= DRAW_TARGET) if J >= 1_000_000 else None,
+        "accumulators_mb": round(acc_mb, 1),
+        "peak_mb": round(_vm("VmHWM"), 1),
+        "load": round(os.getloadavg()[0], 2),
+    }
+
+
+def run(quick: bool = False) -> dict:
+    """The cost per draw at each J, each in a process of its own (for benchmarks/run.py)."""
+    repeats, budget = (3, 0.1) if quick else (5, 0.2)
+    rows = []
+    env = dict(os.environ)
+    env.setdefault("NUMBA_CACHE_DIR", str(HERE.parent / ".numba-cache"))
+    for J in DRAW_J_QUICK if quick else DRAW_J:
+        cmd = [sys.executable, __file__, "--draw-child", str(J), str(repeats), str(budget)]
+        proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
+        if proc.returncode != 0:
+            raise RuntimeError(f"draw cost at J={J} failed:\n{proc.stderr[-3000:]}")
+        rows.append(json.loads(proc.stdout.strip().splitlines()[-1]))
+    return {"name": "summary_draw", "rows": rows}
+
+
+def table(res: dict) -> list[str]:
+    out = [
+        "summary mode: one draw against one full-mode sweep (ns per group; thread CPU time, best of repeats)",
+        f"  {'J':>9} {'draw':>8} {'sweep':>8} {'extra':>8} {'ratio':>6} {'peak MB':>8} {'load':>5}  target",
+    ]
+    for r in res["rows"]:
+        tgt = "" if r["target"] is None else f"{r['target']}  {'met' if r['met'] else 'MISSED'}"
+        out.append(
+            f"  {r['J']:>9,} {r['draw_ns_per_group']:8.1f} {r['sweep_ns_per_group']:8.1f} "
+            f"{r['extra_ns_per_group']:8.1f} {r['ratio']:6.2f} {r['peak_mb']:8.0f} {r['load']:5.1f}  {tgt}"
+        )
+    return out
+
+
 def _accuracy(fit, full, options) -> dict:
     """Summary against full draws of the same seed: means, probabilities, and limits against their bounds."""
     import numpy as np
@@ -174,9 +289,19 @@ def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--child", nargs=2, metavar=("J", "MODE"))
     ap.add_argument("--big", action="store_true", help="add J = 1e6")
+    ap.add_argument("--draw", action="store_true", help="only the cost per draw against a full-mode sweep")
+    ap.add_argument("--quick", action="store_true", help="with --draw: J = 1e5 only, fewer repeats")
+    ap.add_argument("--draw-child", nargs=3, metavar=("J", "REPEATS", "BUDGET"), help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
         print(json.dumps(child(int(args.child[0]), args.child[1])))
+        return 0
+    if args.draw_child:
+        J, repeats, budget = args.draw_child
+        print(json.dumps(draw_child(int(J), int(repeats), float(budget))))
+        return 0
+    if args.draw:
+        print("\n".join(table(run(quick=args.quick))))
         return 0
     cases = [(1_000, "summary"), (10_000, "summary"), (100_000, "summary")] + (
         [(1_000_000, "summary")] if args.big else []

@@ -159,7 +159,8 @@ def summary_bytes(
     )
     count = 2 if draw_cap <= np.iinfo(np.uint16).max else 4
     # per chain: histograms, out-of-grid extremes, running means, counters, bucket index and count,
-    # the chain's theta, sigma^2 and lambda, the sweep's scratch (v, 1/lambda, z^2, SS/2) and sigma_j;
+    # the chain's theta, sigma^2 and lambda, the sweep's scratch (v, 1/lambda, z^2, SS/2) and sigma_j,
+    # rank histogram, largest bucket count, the bins of the draws not yet counted (summary_kernel.flush);
     # shared: grid origin and widths and the rank -> rank-bin table
     rank_bins = len(rank_grid(J, RANK_BINS, RANK_EXACT)) - 1
     per_chain = (
@@ -172,6 +173,7 @@ def summary_bytes(
         + 8 * 8
         + rank_bins * count
         + 4
+        + sk.HBUF * (rows + 1) * (1 if bins + 2 <= 256 else 2)
         + (3 * 8 + 8 + 2 * 8 if levels else 0)
     )
     return int(J * (chains * per_chain + rows * 24 + 4))
@@ -245,6 +247,7 @@ class _SummaryChain(_Chain):
             sk.summarise(self.rng, k, d, self.state, self.work, sh, self.acc, rows)
             done += k
             tick(k)
+        sk.flush(self.acc)  # the histograms hold every draw of this call from here on
         self.parts.append(out._asdict())
 
     def export_state(self) -> dict:
@@ -451,88 +454,20 @@ def sample_summary(
     groups) and the accumulated summaries.
     """
     settings = settings or Settings()
-    o = options or ReportOptions()
-    sopts = summary or SummaryOptions()
-    if settings.warmup < MIN_WARMUP:
-        raise InputError(
-            f"bad option: summary mode needs at least {MIN_WARMUP} warm-up sweeps to place its "
-            f"histogram grids; found --warmup {settings.warmup}"
-        )
-    k = check_k(o.k, problem.J)
-    named = resolve_groups(problem.stats.labels, sopts.keep) if sopts.keep else np.zeros(0, dtype=np.int64)
-    seed = resolve_seed(settings)
-    streams = np.random.SeedSequence(seed).spawn(settings.chains)
-    chains = [_SummaryChain(problem, s, None if init is None else init[i]) for i, s in enumerate(streams)]
-    asked = o.internal(problem.center, problem.scale, limits_apply=problem.within_code != 2)
-    cuts = A.lambda_cuts(problem.df_grid) if problem.heavy else np.zeros(1)
-    setup = _Setup(
-        asked=asked,
-        cuts=cuts,
-        k=k,
-        logn=np.log(np.maximum(problem.n, 1e-300)),
-        rowmap=_rowmap(problem, asked),
-        bins=int(sopts.bins),
-        level=float(o.level),
-    )
-    for c in chains:
-        c.shared = setup
     threads = settings.threads or min(settings.chains, os.cpu_count() or 1)
     start = time.perf_counter()
     bar = _progress(settings.chains * (settings.warmup + settings.draws), progress)
-    pilot = max(settings.warmup // 2, min(settings.warmup, 10))
     timer = [0.0]
     try:
-        for mode, n_sweeps in (("warm", settings.warmup - pilot), ("pilot", pilot)):
-            for c in chains:
-                c.mode = mode
-            if n_sweeps:
-                _run_phase(chains, problem, n_sweeps, store=False, adapt=True, threads=threads, bar=bar, timer=timer)
-        mean, sd = _merge_pilot(chains)
-        for c in chains:
-            c.pilot_mean = c.pilot_msq = None
-        grid = _place_grids(setup, mean, sd)
-        sign = asked[A.A_SIGN]
-        x_mean, x_sd = sign * mean[sk.Q_THETA], sd[sk.Q_THETA]
-        del mean, sd
-        G = _rank_buckets(setup, x_mean, x_sd)
-        _level_buckets(setup, problem, x_mean, x_sd)
-        setup.rank_edges = rank_grid(problem.J, RANK_BINS, RANK_EXACT)  # read at run time, so a test can shrink it
-        rank_bin = (np.searchsorted(setup.rank_edges, np.arange(problem.J + 2), side="right") - 1).astype(np.int64)
-        rank_bin[0], rank_bin[-1] = 0, len(setup.rank_edges) - 2
-        setup.rank_bin = rank_bin
-        setup.kept, setup.kept_reason = _choose_kept(problem, sopts, named, x_mean, x_sd, k, seed)
-        del x_mean, x_sd
-        acc = _allocate(problem, settings, setup, G)
-        for i, c in enumerate(chains):
-            c.mode = "draw"
-            L = setup.lev_bucket.shape[0]
-            nb = int(setup.lev_off[-1])
-            c.acc = sk.Acc(
-                acc["run"][i],
-                acc["hits"][i],
-                acc["hist"][i],
-                acc["ext"][i],
-                acc["rhist"][i],
-                acc["wmax"][i],
-                c.sg,
-                np.zeros(G, dtype=np.int64),
-                np.zeros(problem.J, dtype=np.int64),
-                np.zeros(G, dtype=np.int64),
-                np.zeros(1),
-                acc["lrun"][i],
-                np.zeros(nb, dtype=np.int64),
-                np.zeros(problem.J if L else 0, dtype=np.int64),
-                np.zeros(nb, dtype=np.int64),
-                np.zeros(L),
-                np.zeros(L, dtype=np.int64),
-            )
+        ready = prepare(problem, settings, options, summary, init, threads=threads, bar=bar, timer=timer)
+        chains, setup, acc = ready.chains, ready.setup, ready.acc
         raw, rounds, have = draw_until_targets(
             chains,
             problem,
             settings,
             threads,
             bar,
-            seed,
+            ready.seed,
             start,
             lambda r: diagnose_raw(r, settings.targets),
             collect=_collect,
@@ -554,14 +489,116 @@ def sample_summary(
         acc["ext"],
         setup,
         have,
-        grid,
+        ready.grid,
         ranks,
-        G,
+        ready.buckets,
         sr,
         acc["rhist"],
         acc["wmax"],
         acc["lrun"],
     )
+
+
+@dataclass
+class Ready:
+    """Chains warmed up, grids and rank buckets placed, kept groups chosen, accumulators allocated: each chain's
+    next `run` draws with running summaries (what sample_summary does next; benchmarks time it)."""
+
+    chains: list
+    setup: _Setup
+    acc: dict
+    grid: dict
+    buckets: int
+    seed: int
+
+
+def prepare(
+    problem: Problem,
+    settings: Settings,
+    options: ReportOptions | None,
+    summary: SummaryOptions | None,
+    init: list[dict] | None = None,
+    threads: int = 1,
+    bar=None,
+    timer: list | None = None,
+) -> Ready:
+    """The warm-up and set-up half of sample_summary (see there)."""
+    o = options or ReportOptions()
+    sopts = summary or SummaryOptions()
+    if settings.warmup < MIN_WARMUP:
+        raise InputError(
+            f"bad option: summary mode needs at least {MIN_WARMUP} warm-up sweeps to place its "
+            f"histogram grids; found --warmup {settings.warmup}"
+        )
+    if problem.J > sk.MAX_GROUPS:
+        raise InputError(f"bad input: summary mode handles at most {sk.MAX_GROUPS:,} groups; found {problem.J:,}")
+    k = check_k(o.k, problem.J)
+    named = resolve_groups(problem.stats.labels, sopts.keep) if sopts.keep else np.zeros(0, dtype=np.int64)
+    seed = resolve_seed(settings)
+    streams = np.random.SeedSequence(seed).spawn(settings.chains)
+    chains = [_SummaryChain(problem, s, None if init is None else init[i]) for i, s in enumerate(streams)]
+    asked = o.internal(problem.center, problem.scale, limits_apply=problem.within_code != 2)
+    cuts = A.lambda_cuts(problem.df_grid) if problem.heavy else np.zeros(1)
+    setup = _Setup(
+        asked=asked,
+        cuts=cuts,
+        k=k,
+        logn=np.log(np.maximum(problem.n, 1e-300)),
+        rowmap=_rowmap(problem, asked),
+        bins=int(sopts.bins),
+        level=float(o.level),
+    )
+    for c in chains:
+        c.shared = setup
+    pilot = max(settings.warmup // 2, min(settings.warmup, 10))
+    for mode, n_sweeps in (("warm", settings.warmup - pilot), ("pilot", pilot)):
+        for c in chains:
+            c.mode = mode
+        if n_sweeps:
+            _run_phase(chains, problem, n_sweeps, store=False, adapt=True, threads=threads, bar=bar, timer=timer)
+    mean, sd = _merge_pilot(chains)
+    for c in chains:
+        c.pilot_mean = c.pilot_msq = None
+    grid = _place_grids(setup, mean, sd)
+    sign = asked[A.A_SIGN]
+    x_mean, x_sd = sign * mean[sk.Q_THETA], sd[sk.Q_THETA]
+    del mean, sd
+    G = _rank_buckets(setup, x_mean, x_sd)
+    _level_buckets(setup, problem, x_mean, x_sd)
+    setup.rank_edges = rank_grid(problem.J, RANK_BINS, RANK_EXACT)  # read at run time, so a test can shrink it
+    rank_bin = (np.searchsorted(setup.rank_edges, np.arange(problem.J + 2), side="right") - 1).astype(np.int64)
+    rank_bin[0], rank_bin[-1] = 0, len(setup.rank_edges) - 2
+    setup.rank_bin = rank_bin
+    setup.kept, setup.kept_reason = _choose_kept(problem, sopts, named, x_mean, x_sd, k, seed)
+    del x_mean, x_sd
+    acc = _allocate(problem, settings, setup, G)
+    rows = acc["hist"].shape[1]
+    small = setup.bins + 2 <= 256 and len(setup.rank_edges) - 1 <= 256
+    for i, c in enumerate(chains):
+        c.mode = "draw"
+        L = setup.lev_bucket.shape[0]
+        nb = int(setup.lev_off[-1])
+        c.acc = sk.Acc(
+            acc["run"][i],
+            acc["hits"][i],
+            acc["hist"][i],
+            acc["ext"][i],
+            acc["rhist"][i],
+            acc["wmax"][i],
+            c.sg,
+            np.zeros(G, dtype=np.int64),
+            np.zeros(problem.J, dtype=np.int32),
+            np.zeros(1),
+            np.zeros((sk.HBUF, rows + 1, problem.J), dtype=np.uint8 if small else np.uint16),
+            np.zeros(1, dtype=np.int64),
+            acc["lrun"][i],
+            np.zeros(nb, dtype=np.int64),
+            np.zeros(problem.J if L else 0, dtype=np.int64),
+            np.zeros(nb, dtype=np.int64),
+            np.zeros(L),
+            np.zeros(L, dtype=np.int64),
+        )
+    return Ready(chains, setup, acc, grid, G, seed)
 
 
 def _allocate(problem: Problem, settings: Settings, sh: _Setup, G: int) -> dict:

@@ -73,9 +73,18 @@ class Shared(NamedTuple):
     lev_bucket: np.ndarray = np.zeros((0, 2))
 
 
+NB = 512  # groups per block of the per-draw passes (summarise)
+HBUF = 16  # draws whose histogram bins are held in Acc.hbuf before they are counted (see flush)
+_C_BITS = 27  # a bucket's packed entry (see summarise): count and first rank below 2**27, the rank bin below 2**8
+_C_MASK = (1 << _C_BITS) - 1
+MAX_GROUPS = _C_MASK  # summary mode's largest J (the packed rank buckets' limit; far beyond the memory of a machine)
+
+
 class Acc(NamedTuple):
     """One chain's running summaries and scratch: run (N_R, J), hits (N_H, J), hist (rows, J, B + 2),
-    ext (rows, J, 2), rhist (J, RB), wmax (J,); scratch sg (J,), bcnt (G,), bidx (J,), lobin (G,), count (1,).
+    ext (rows, J, 2), rhist (J, RB), wmax (J,); scratch sg (J,), bcnt (G,) int64, bidx (J,) int32, count (1,);
+    hbuf (HBUF, rows + 1, J) the bins of the draws not yet counted into hist (rows 0 .. rows - 1) and rhist (the
+    last row), uint8 or uint16, and nbuf (1,) int64 how many draws it holds (see flush).
     Ranks within levels (empty without levels): lrun (3, J) sums of the mid-rank, of its half-width and the count
     of being the best of the level; scratch lcnt and labove (all levels' buckets), lidx (J,), lbest and lbest_j (L,)."""
 
@@ -88,8 +97,9 @@ class Acc(NamedTuple):
     sg: np.ndarray
     bcnt: np.ndarray
     bidx: np.ndarray
-    lobin: np.ndarray
     count: np.ndarray
+    hbuf: np.ndarray
+    nbuf: np.ndarray
     lrun: np.ndarray = np.zeros((3, 0))
     lcnt: np.ndarray = np.zeros(0, dtype=np.int64)
     lidx: np.ndarray = np.zeros(0, dtype=np.int64)
@@ -166,21 +176,67 @@ def pilot(rng, n_sweeps, d, st, wk, sg, asked, logn, bias_on, limits, count, mea
                 msq[Q_LOGITF, j] += dl * (x - mean[Q_LOGITF, j])
 
 
-@njit(nogil=True, cache=True, inline="always")
+@njit(nogil=True, cache=True)
+def _extreme(ext, i, x, below):
+    """Keep x if it is the smallest value seen below grid i (below) or the largest above it; ext (n, 2)."""
+    if below:
+        if x < ext[i, 0]:
+            ext[i, 0] = x
+    elif x > ext[i, 1]:
+        ext[i, 1] = x
+
+
+@njit(nogil=True, cache=True)
+def _bins(x, lo, inv, ext, out, B):
+    """out[i] = the bin of x[i] in its grid (lo[i], inv[i] = 1 / bin width): 0 below, 1..B inside, B + 1 above,
+    for a block of groups of one histogram row (ext, out: the same block). The smallest value below the grid and
+    the largest above it bound the outer bins (inner bins need no such bound) and are kept here, at once; the bin
+    is counted later (flush). The bin is chosen by selects and the rare outer bins tested on the result, in a
+    loop of its own: branching on u, or calling a function per group, made this loop ten times slower."""
+    for i in range(x.shape[0]):
+        u = (x[i] - lo[i]) * inv[i]
+        b = 0 if u < 0.0 else (B + 1 if u >= B else int(u) + 1)
+        if b == 0 or b == B + 1:
+            _extreme(ext, i, x[i], b == 0)
+        out[i] = b
+
+
+@njit(nogil=True, cache=True)
 def _hist_add(hist, ext, glo, ginv, row, j, x, B):
-    """Count x into group j's grid of row `row`: bin 0 below, 1..B inside, B + 1 above. The smallest
-    value below the grid and the largest above it bound the outer bins (inner bins need no such bound)."""
-    u = (x - glo[row, j]) * ginv[row, j]
-    if u < 0.0:
-        hist[row, j, 0] += 1
-        if x < ext[row, j, 0]:
-            ext[row, j, 0] = x
-    elif u >= B:
-        hist[row, j, B + 1] += 1
-        if x > ext[row, j, 1]:
-            ext[row, j, 1] = x
-    else:
-        hist[row, j, int(u) + 1] += 1
+    """Count x into group j's grid of row `row` at once: what summarise does through _bins, the buffer and flush."""
+    b = np.empty(1, dtype=np.int64)
+    _bins(np.full(1, x), glo[row, j : j + 1], ginv[row, j : j + 1], ext[row, j : j + 1], b, B)
+    hist[row, j, b[0]] += 1
+
+
+@njit(nogil=True, cache=True)
+def flush(acc):
+    """Count the bins held in acc.hbuf into the histograms (hist, rhist) and empty it.
+
+    Why a buffer: at a million groups the histograms (hundreds of MB) are far beyond the caches, so counting
+    each draw at once costs a cache miss per group and histogram in every draw. The draw writes its bins in
+    rows of J small integers instead (a sequential write), and every HBUF draws each group's histograms are
+    updated together, a block of groups at a time, while they are in cache. Counts are sums, so the histograms
+    are the same, only filled later: summarise flushes when the buffer is full, and the chain's run at the end
+    of every call (pooling.summary._SummaryChain.run), before anything reads them.
+    """
+    n = acc.nbuf[0]
+    if n == 0:
+        return
+    hist, rhist, buf = acc.hist, acc.rhist, acc.hbuf
+    rows = hist.shape[0]
+    J = hist.shape[1]
+    step = 2048
+    for j0 in range(0, J, step):
+        j1 = min(j0 + step, J)
+        for r in range(rows):
+            for s in range(n):
+                for j in range(j0, j1):
+                    hist[r, j, buf[s, r, j]] += 1
+        for s in range(n):
+            for j in range(j0, j1):
+                rhist[j, buf[s, rows, j]] += 1
+    acc.nbuf[0] = 0
 
 
 @njit(nogil=True, cache=True)
@@ -222,6 +278,8 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
     hist = acc.hist
     ext = acc.ext
     B = hist.shape[2] - 2
+    hbuf = acc.hbuf
+    r_rank = hist.shape[0]  # the buffer's row of the rank bins
     bcnt = acc.bcnt
     bidx = acc.bidx
     G = bcnt.shape[0]
@@ -239,13 +297,18 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
     hx = np.empty(k)
     hi = np.empty(k, dtype=np.int64)
     blo, binv = sh.bucket[0], sh.bucket[1]
-    above = np.empty(G, dtype=np.int64)
     # kept groups: sorted values, and a lookup table from a value to its count of smaller kept values
-    L = 4 * m if m > 0 else 1
+    # cells: a group's count is cell[c] corrected by the walks below, whose iterations (a branch the processor
+    # cannot predict) are rarer the finer the cells; up to 32 a kept group where J is large enough to pay for them
+    L = max(4 * m, min(32 * m, J // 16)) if m > 0 else 1
     sv = np.empty(m)
     ss = np.empty(m)
     cell = np.empty(L, dtype=np.int64)
     poscnt = np.empty(m + 1, dtype=np.int64)
+    xs = np.empty(NB)
+    xw = np.empty(NB)
+    xq = np.empty(NB)
+    eb = np.empty(NB, dtype=np.int64)
     theta = st.theta
     sc = st.scalars
     for it in range(n_sweeps):
@@ -293,64 +356,78 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
             poscnt[r] = 0
         for b in range(G):
             bcnt[b] = 0
+        slot = acc.nbuf[0]
         size = 0
         best_x = -np.inf
         best_j = 0
         s2_sum = 0.0
-        for j in range(J):
-            th = theta[j]
-            _hist_add(hist, ext, glo, ginv, 0, j, th, B)
-            if r_bias >= 0:
-                _hist_add(hist, ext, glo, ginv, r_bias, j, th - A.centre_of(mu, d.X, st.beta, j), B)
+        # a block of groups at a time, each step a short loop of its own: in one long loop body the
+        # processor cannot overlap one group's logs, divisions and cache misses with the next group's
+        for j0 in range(0, J, NB):
+            j1 = min(j0 + NB, J)
+            # the transformed quantities (the same expressions as always, so the same numbers)
             if d.within == 0:
-                s = sg[j]
-                s2_sum += s * s
-                _hist_add(hist, ext, glo, ginv, r_sig, j, math.log(s), B)
+                for j in range(j0, j1):
+                    xs[j - j0] = math.log(sg[j])
             if r_w >= 0:  # separate, or heavy tails: lambda_j moves each group's weight on its own
-                t = tau2 / st.lam[j] if heavy else tau2
-                v = A.v_of(d.within, d.n, d.v_known, j, sg[j] if d.within == 0 else sg[0])
-                _hist_add(hist, ext, glo, ginv, r_w, j, A.logit_shrink(v, t), B)
+                for j in range(j0, j1):
+                    t = tau2 / st.lam[j] if heavy else tau2
+                    v = A.v_of(d.within, d.n, d.v_known, j, sg[j] if d.within == 0 else sg[0])
+                    xw[j - j0] = A.logit_shrink(v, t)
+            # the rank buckets: a count per bucket (read back in the second pass)
+            for j in range(j0, j1):
+                u = (sign * theta[j] - blo) * binv
+                b = 0 if u < 0.0 else (G - 1 if u >= G else int(u))
+                bidx[j] = b
+                bcnt[b] += 1
+            n_ = j1 - j0
+            _bins(theta[j0:j1], glo[0, j0:j1], ginv[0, j0:j1], ext[0, j0:j1], hbuf[slot, 0, j0:j1], B)
+            if r_bias >= 0:
+                for j in range(j0, j1):
+                    xq[j - j0] = theta[j] - A.centre_of(mu, d.X, st.beta, j)
+                _bins(xq[:n_], glo[r_bias, j0:j1], ginv[r_bias, j0:j1], ext[r_bias, j0:j1], hbuf[slot, r_bias, j0:j1], B)
+            if d.within == 0:
+                for j in range(j0, j1):
+                    s = sg[j]
+                    s2_sum += s * s
+                _bins(xs[:n_], glo[r_sig, j0:j1], ginv[r_sig, j0:j1], ext[r_sig, j0:j1], hbuf[slot, r_sig, j0:j1], B)
+            if r_w >= 0:
+                _bins(xw[:n_], glo[r_w, j0:j1], ginv[r_w, j0:j1], ext[r_w, j0:j1], hbuf[slot, r_w, j0:j1], B)
             if limits:
-                f, g = A.outside(th, sg[j] if d.within == 0 else sg[0], asked)
-                _hist_add(hist, ext, glo, ginv, r_f, j, A.logit_pair(f, g), B)
+                for j in range(j0, j1):
+                    f, g = A.outside(theta[j], sg[j] if d.within == 0 else sg[0], asked)
+                    xq[j - j0] = A.logit_pair(f, g)
+                _bins(xq[:n_], glo[r_f, j0:j1], ginv[r_f, j0:j1], ext[r_f, j0:j1], hbuf[slot, r_f, j0:j1], B)
             # ranks: x = sign * theta, larger is better
-            x = sign * th
-            if x > best_x:  # strict: among equal values the first group wins, as a stable sort does
-                best_x = x
-                best_j = j
-            if size < k:
-                hx[size] = x
-                hi[size] = j
-                _sift_up(hx, hi, size)
-                size += 1
-            elif x > hx[0]:
-                hx[0] = x
-                hi[0] = j
-                _sift_down(hx, hi, size)
-            u = (x - blo) * binv
-            if u < 0.0:
-                b = 0
-            elif u >= G:
-                b = G - 1
-            else:
-                b = int(u)
-            bidx[j] = b
-            bcnt[b] += 1
-            if m > 0:
-                if x <= ss[0]:
-                    pos = 0
-                elif x > ss[m - 1]:
-                    pos = m
-                else:
-                    c = int((x - ss[0]) * cinv)
-                    if c >= L:
-                        c = L - 1
-                    pos = cell[c]
-                    while pos > 0 and ss[pos - 1] >= x:  # guards a cell edge rounded past x
-                        pos -= 1
-                    while pos < m and ss[pos] < x:
-                        pos += 1
-                poscnt[pos] += 1
+            for j in range(j0, j1):
+                x = sign * theta[j]
+                if x > best_x:  # strict: among equal values the first group wins, as a stable sort does
+                    best_x = x
+                    best_j = j
+                if size < k:
+                    hx[size] = x
+                    hi[size] = j
+                    _sift_up(hx, hi, size)
+                    size += 1
+                elif x > hx[0]:
+                    hx[0] = x
+                    hi[0] = j
+                    _sift_down(hx, hi, size)
+                if m > 0:
+                    if x <= ss[0]:
+                        pos = 0
+                    elif x > ss[m - 1]:
+                        pos = m
+                    else:
+                        c = int((x - ss[0]) * cinv)
+                        if c >= L:
+                            c = L - 1
+                        pos = cell[c]
+                        while pos > 0 and ss[pos - 1] >= x:  # guards a cell edge rounded past x
+                            pos -= 1
+                        while pos < m and ss[pos] < x:
+                            pos += 1
+                    poscnt[pos] += 1
         if d.within == 0:
             h[row, Y_SR] = math.sqrt(s2_sum / J)
         elif d.within == 1:
@@ -360,19 +437,28 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
         for t_ in range(size):
             hits[A.H_TOP, hi[t_]] += 1
         hits[A.H_BEST, best_j] += 1
+        # each bucket's count becomes one packed entry: (groups in better buckets) << 35 | (the rank bin of
+        # 1 + that) << 27 | count, so that the pass over the groups reads one number per group (at a million
+        # buckets, three tables read at random cost three cache misses a group)
         cum = 0
         for b in range(G - 1, -1, -1):
-            above[b] = cum
-            acc.lobin[b] = sh.rank_bin[1 + cum]  # 1 + cum <= J + 1 always; only used when the bucket holds a group
-            cum += bcnt[b]
-        for j in range(J):
-            b = bidx[j]
             c = bcnt[b]
-            run[A.R_RANK, j] += above[b] + 0.5 * (c + 1)
-            run[A.R_RANK_ERR, j] += 0.5 * (c - 1)
-            acc.rhist[j, acc.lobin[b]] += 1
-            if c - 1 > acc.wmax[j]:
-                acc.wmax[j] = c - 1
+            # 1 + cum <= J + 1 always; the rank bin is only used when the bucket holds a group
+            bcnt[b] = (cum << (_C_BITS + 8)) | (sh.rank_bin[1 + cum] << _C_BITS) | c
+            cum += c
+        wmax = acc.wmax
+        for j0 in range(0, J, NB):
+            j1 = min(j0 + NB, J)
+            for j in range(j0, j1):  # the reads at random first, in a loop of their own, so that they overlap
+                eb[j - j0] = bcnt[bidx[j]]
+            for j in range(j0, j1):
+                e = eb[j - j0]
+                c = e & _C_MASK
+                run[A.R_RANK, j] += (e >> (_C_BITS + 8)) + 0.5 * (c + 1)
+                run[A.R_RANK_ERR, j] += 0.5 * (c - 1)
+                hbuf[slot, r_rank, j] = (e >> _C_BITS) & 255
+                if c - 1 > wmax[j]:
+                    wmax[j] = c - 1
         # exact ranks of the kept groups: poscnt[p] counts the groups that exceed exactly p kept values,
         # so the kept value ss[r - 1] is exceeded by the groups with p >= r, and its rank is 1 + that
         cum = 0
@@ -381,6 +467,9 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
             out.rank[row, order[r - 1]] = 1 + cum
         if sh.lev.shape[0] > 0:
             level_ranks(theta, sign, sh, acc)
+        acc.nbuf[0] = slot + 1
+        if slot + 1 == hbuf.shape[0]:
+            flush(acc)
 
 
 @njit(nogil=True, cache=True)
