@@ -385,7 +385,9 @@ def summarise(rng, n_sweeps, d, st, wk, sh, acc, out):
             if r_bias >= 0:
                 for j in range(j0, j1):
                     xq[j - j0] = theta[j] - A.centre_of(mu, d.X, st.beta, j)
-                _bins(xq[:n_], glo[r_bias, j0:j1], ginv[r_bias, j0:j1], ext[r_bias, j0:j1], hbuf[slot, r_bias, j0:j1], B)
+                _bins(
+                    xq[:n_], glo[r_bias, j0:j1], ginv[r_bias, j0:j1], ext[r_bias, j0:j1], hbuf[slot, r_bias, j0:j1], B
+                )
             if d.within == 0:
                 for j in range(j0, j1):
                     s = sg[j]
