@@ -142,28 +142,6 @@ def rank_rows(x, sign, s0, s1, ranks, slot_v, slot_i, count, bad):
                 ranks[s, slot_i[i]] = i + 1
 
 
-@njit(nogil=True, cache=True)
-def rank_counts(ranks, j0, j1, k, total, best, top, buf):
-    """Per group j0 .. j1 - 1 of ranks (S, J): the sum of its ranks, the draws where it is first and the draws
-    where it is within the first k; its ranks are left in buf (j1 - j0, S), laid out by group."""
-    S = ranks.shape[0]
-    gather(ranks, j0, j1, buf)
-    for i in range(j1 - j0):
-        t = 0
-        b = 0
-        c = 0
-        for s in range(S):
-            r = buf[i, s]
-            t += r
-            if r == 1:
-                b += 1
-            if r <= k:
-                c += 1
-        total[j0 + i] = t
-        best[j0 + i] = b
-        top[j0 + i] = c
-
-
 @njit(nogil=True, cache=True, inline="always")
 def _sift_down(h, n, sign):
     """Restore the heap h[:n] (a max-heap of sign * h; sign 1 or -1) after its root was replaced."""

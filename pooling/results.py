@@ -322,28 +322,73 @@ def rank_draws(x: np.ndarray, highest: bool = True) -> np.ndarray:
     return ranks
 
 
+RANK_ROWS = 512  # draws ranked, or folded, at a time
+FOLD_GROUPS = 64  # groups laid out together by order.fold_ranks
+
+
+class _RankFold:
+    """Per-group rank figures gathered from blocks of draws' ranks (order.fold_ranks): the sums, the draws ranked
+    first and within the first k, the draws at each rank 1..m, and two heaps per group holding the ranks at the
+    central interval's ends (inverted empirical CDF): the i_lo + 1 smallest and the S - i_hi largest."""
+
+    def __init__(self, S: int, J: int, level: float, k: int, m: int, dtype, rows: int):
+        self.S, self.J, self.k, self.m = S, J, k, m
+        i_lo = quantile_index(S, (1 - level) / 2)
+        i_hi = quantile_index(S, (1 + level) / 2)
+        self.total, self.best, self.top = (np.zeros(J, dtype=np.int64) for _ in range(3))
+        self.first = np.zeros((J, m), dtype=np.int64)
+        self.low, self.high = np.empty((J, i_lo + 1), dtype=dtype), np.empty((J, S - i_hi), dtype=dtype)
+        self.nlow, self.nhigh = np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64)
+        self.threaded = S * J >= 1_000_000
+        self.scratch = Scratch(lambda: np.empty((FOLD_GROUPS, rows), dtype=dtype))
+
+    def add(self, blk: np.ndarray, n: int) -> None:
+        """Fold the ranks of the draws blk[:n] (draws x groups)."""
+
+        def fold(j0: int) -> None:
+            with self.scratch.lend() as tbuf:
+                O.fold_ranks(
+                    blk,
+                    n,
+                    j0,
+                    min(self.J, j0 + 8 * FOLD_GROUPS),
+                    self.k,
+                    self.m,
+                    self.total,
+                    self.best,
+                    self.top,
+                    self.first,
+                    self.low,
+                    self.nlow,
+                    self.high,
+                    self.nhigh,
+                    tbuf,
+                )
+
+        each_block(fold, range(0, self.J, 8 * FOLD_GROUPS), self.threaded)
+
+    def summary(self) -> dict[str, np.ndarray]:
+        S = self.S
+        # sums of whole numbers below 2**53 are exact in float64, so these equal numpy's means of the ranks
+        return {
+            "rank_mean": self.total / S,
+            "rank_low": self.low[:, 0].astype(np.float64),
+            "rank_high": self.high[:, 0].astype(np.float64),
+            "p_best": self.best / S,
+            "p_top_k": self.top / S,
+        }
+
+
 def rank_summary(ranks: np.ndarray, level: float, k: int) -> dict[str, np.ndarray]:
     """Mean rank, the central rank interval (inverted empirical CDF, so the bounds are whole ranks),
-    P(rank = 1) and P(rank <= k), per group."""
+    P(rank = 1) and P(rank <= k), per group, from the ranks of every draw (S x J)."""
     ranks = np.ascontiguousarray(ranks)
     S, J = ranks.shape
-    i_lo = quantile_index(S, (1 - level) / 2)
-    i_hi = quantile_index(S, (1 + level) / 2)
-    total, best, top = np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64), np.empty(J, dtype=np.int64)
-    low, high = np.empty(J), np.empty(J)
-    scratch = Scratch(lambda: np.empty((TABLE_BLOCK, S), dtype=ranks.dtype))
-
-    def block(j0: int) -> None:
-        j1 = min(J, j0 + TABLE_BLOCK)
-        with scratch.lend() as buf:
-            O.rank_counts(ranks, j0, j1, k, total, best, top, buf)
-            got = buf[: j1 - j0]
-            got.sort(axis=1)
-            low[j0:j1], high[j0:j1] = got[:, i_lo], got[:, i_hi]
-
-    each_block(block, range(0, J, TABLE_BLOCK), threaded=S * J >= 1_000_000)
-    # sums of whole numbers below 2**53 are exact in float64, so these equal numpy's means of the ranks
-    return {"rank_mean": total / S, "rank_low": low, "rank_high": high, "p_best": best / S, "p_top_k": top / S}
+    rows = max(1, min(S, RANK_ROWS))
+    fold = _RankFold(S, J, level, k, 0, ranks.dtype, rows)
+    for s0 in range(0, S, rows):
+        fold.add(ranks[s0 : s0 + rows], min(rows, S - s0))
+    return fold.summary()
 
 
 def rank_matrix(ranks: np.ndarray, rows: np.ndarray | None = None, max_rank: int | None = None) -> np.ndarray:
@@ -506,35 +551,22 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
     return out, {"draws_total": S}
 
 
-RANK_ROWS = 512  # draws ranked at a time by rank_answers
-FOLD_GROUPS = 64  # groups laid out together by order.fold_ranks
-
-
 def rank_answers(x: np.ndarray, highest: bool, level: float, k: int) -> tuple[dict[str, np.ndarray], dict]:
     """rank_summary(rank_draws(x), level, k) and the page's rank picture (P(rank = r) for every group by mean
     rank, or above HEAT_ALL groups for the best HEAT_ROWS_MANY over ranks 1..HEAT_ALL and beyond), the same
     numbers, without holding every draw's ranks (S x J): RANK_ROWS draws at a time are ranked as rank_draws
-    ranks them and folded into per-group sums and counts, the counts at ranks 1..HEAT_ALL, and the ranks at the
-    interval's ends, which are the largest of a group's i_lo + 1 smallest ranks and the smallest of its S - i_hi
-    largest (a heap of each per group, order.fold_ranks). The heaps hold J x (S (1 - level) + 2) ranks, a
+    ranks them and folded into per-group figures (_RankFold). The heaps hold J x (S (1 - level) + 2) ranks, a
     twentieth of the S x J ranks at the 95 % level; the rest is O(J)."""
     x = np.ascontiguousarray(x)
     S, J = x.shape
-    i_lo = quantile_index(S, (1 - level) / 2)
-    i_hi = quantile_index(S, (1 + level) / 2)
     dtype = np.uint16 if J < np.iinfo(np.uint16).max else np.int32
     m = min(J, HEAT_ALL)
-    total, best, top = np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64)
-    first = np.zeros((J, m), dtype=np.int64)
-    low, high = np.empty((J, i_lo + 1), dtype=dtype), np.empty((J, S - i_hi), dtype=dtype)
-    nlow, nhigh = np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64)
     rows = min(S, RANK_ROWS)
+    fold = _RankFold(S, J, level, k, m, dtype, rows)
     blk = np.empty((rows, J), dtype=dtype)
     bad = np.zeros(rows, dtype=np.bool_)
     sign = 1.0 if highest else -1.0
-    threaded = S * J >= 1_000_000
     ranking = Scratch(lambda: (np.empty(J), np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64)))
-    folding = Scratch(lambda: np.empty((FOLD_GROUPS, rows), dtype=dtype))
     for s0 in range(0, S, rows):
         s1 = min(S, s0 + rows)
         part = x[s0:s1]
@@ -543,40 +575,14 @@ def rank_answers(x: np.ndarray, highest: bool, level: float, k: int) -> tuple[di
             with ranking.lend() as (slot_v, slot_i, count):
                 O.rank_rows(part, sign, a, min(part.shape[0], a + RANK_BLOCK), blk, slot_v, slot_i, count, bad)
 
-        each_block(rank, range(0, s1 - s0, RANK_BLOCK), threaded)
+        each_block(rank, range(0, s1 - s0, RANK_BLOCK), fold.threaded)
         for s in np.flatnonzero(bad[: s1 - s0]):  # ranked by numpy's stable argsort, as rank_draws does
             order = np.argsort(-part[s] if highest else part[s], kind="stable")
             blk[s, order] = np.arange(1, J + 1, dtype=dtype)
-
-        def fold(j0: int, n=s1 - s0) -> None:
-            with folding.lend() as tbuf:
-                O.fold_ranks(
-                    blk,
-                    n,
-                    j0,
-                    min(J, j0 + 8 * FOLD_GROUPS),
-                    k,
-                    m,
-                    total,
-                    best,
-                    top,
-                    first,
-                    low,
-                    nlow,
-                    high,
-                    nhigh,
-                    tbuf,
-                )
-
-        each_block(fold, range(0, J, 8 * FOLD_GROUPS), threaded)
-    ranked = {
-        "rank_mean": total / S,
-        "rank_low": low[:, 0].astype(np.float64),
-        "rank_high": high[:, 0].astype(np.float64),
-        "p_best": best / S,
-        "p_top_k": top / S,
-    }
+        fold.add(blk, s1 - s0)
+    ranked = fold.summary()
     order = np.argsort(ranked["rank_mean"], kind="stable")
+    first = fold.first
     if J <= HEAT_ALL:
         picked, counts = order, first[order]
     else:
