@@ -11,8 +11,8 @@ run's time went"), neither of them arithmetic:
 * glibc returns freed blocks above a threshold to the kernel and maps them afresh on the next allocation, so
   work arrays that are made and dropped block after block (the diagnostics' sorted copies on two threads)
   are faulted in again each time: 690,000 page faults in one run at 20,000 groups. `keep_freed_memory`
-  raises glibc's thresholds for a process that exits when its run is done (the command line); Python
-  callers keep the allocator as they set it.
+  raises glibc's thresholds for a process that exits when its run is done: the program `pooling`
+  (pooling.cli.run), not pooling.cli.main, which tests and other Python callers run in their own process.
 """
 
 from __future__ import annotations

@@ -1284,9 +1284,6 @@ def main(argv: list[str] | None = None, *, _stops: _Stops | None = None) -> int:
     global _STOPS
     argv = list(sys.argv[1:] if argv is None else argv)
     stops = _STOPS = _stops or _Stops()
-    from ._memory import keep_freed_memory
-
-    keep_freed_memory()  # a process that ends with its run: freed work arrays are reused (pooling/_memory.py)
     # SIGTERM (a scheduler's stop) is handled like Ctrl-C: stop cleanly, leave nothing half-written
     previous = signal.signal(signal.SIGTERM, stops.handler) if hasattr(signal, "SIGTERM") else None
     code = E.EXIT_INTERNAL
@@ -1354,6 +1351,9 @@ def run() -> None:
         os._exit(code)
 
     atexit.register(leave)
+    from ._memory import keep_freed_memory
+
+    keep_freed_memory()  # a process that ends with its run: freed work arrays are reused (pooling/_memory.py)
     result["code"] = main(_stops=stops)
     sys.exit(result["code"])
 
