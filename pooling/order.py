@@ -142,44 +142,48 @@ def rank_rows(x, sign, s0, s1, ranks, slot_v, slot_i, count, bad):
                 ranks[s, slot_i[i]] = i + 1
 
 
-@njit(nogil=True, cache=True, inline="always")
-def _sift_down(h, n, sign):
-    """Restore the heap h[:n] (a max-heap of sign * h; sign 1 or -1) after its root was replaced."""
-    i = 0
-    while True:
-        a = 2 * i + 1
-        if a >= n:
-            return
-        b = a + 1
-        c = b if b < n and sign * h[b] > sign * h[a] else a
-        if sign * h[c] <= sign * h[i]:
-            return
-        h[i], h[c] = h[c], h[i]
-        i = c
-
-
-@njit(nogil=True, cache=True, inline="always")
-def _push(h, n, v, sign):
-    """Add v to the heap h[:n] (a max-heap of sign * h), which has room for it."""
-    i = n
-    h[i] = v
-    while i > 0:
-        up = (i - 1) // 2
-        if sign * h[up] >= sign * h[i]:
-            return
-        h[i], h[up] = h[up], h[i]
-        i = up
+@njit(nogil=True, cache=True)
+def select_kth(a, n, kth, sign):
+    """Reorder a[:n] so that a[kth] is its (kth + 1)-th smallest value (largest when sign is -1), with nothing
+    after it smaller (larger) and nothing before it larger (smaller); returns a[kth]. Hoare's selection, in
+    place."""
+    lo = 0
+    hi = n - 1
+    while lo < hi:
+        mid = (lo + hi) // 2
+        x, y, z = sign * a[lo], sign * a[mid], sign * a[hi]  # the median of three as the pivot
+        pivot = max(min(x, y), min(max(x, y), z))
+        i = lo
+        j = hi
+        while i <= j:
+            while sign * a[i] < pivot:
+                i += 1
+            while sign * a[j] > pivot:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if kth <= j:
+            hi = j
+        elif kth >= i:
+            lo = i
+        else:
+            break
+    return a[kth]
 
 
 @njit(nogil=True, cache=True)
-def fold_ranks(blk, rows, j0, j1, k, m, total, best, top, first, low, nlow, high, nhigh, tbuf):
+def fold_ranks(blk, rows, j0, j1, k, m, total, best, top, first, kl, low, nlow, tlow, kh, high, nhigh, thigh, tbuf):
     """Fold the ranks of draws blk[:rows] (draws x groups) into running per-group figures for the groups j0 .. j1
     - 1: the sum of the ranks, the draws ranked first and within the first k, the draws at each rank 1..m
-    (first[j, r - 1]), the low.shape[1] smallest ranks (a max-heap per group, its root the largest of them) and the
-    high.shape[1] largest (a min-heap, its root the smallest of them). The block's columns are laid out by group
-    in tbuf first, so that a group's heaps stay in cache while its ranks pass."""
-    kl = low.shape[1]
-    kh = high.shape[1]
+    (first[j, r - 1]), and candidates for a group's kl smallest and kh largest ranks: a rank below the group's
+    threshold tlow[j] (the kl-th smallest when low[j] was last full) is appended to low[j], and when low[j] is
+    full its kl smallest are selected to its front and the threshold lowered (select_kth); the same for the
+    largest. The wider low and high are than kl and kh, the rarer the selections. Almost every rank fails both thresholds, so the loop over the ranks
+    is a few comparisons that are seldom true. The block's columns are laid out by group in tbuf first."""
+    cap_l = low.shape[1]
+    cap_h = high.shape[1]
     for c0 in range(j0, j1, tbuf.shape[0]):
         c1 = min(j1, c0 + tbuf.shape[0])
         for s0 in range(0, rows, _TILE):
@@ -193,9 +197,11 @@ def fold_ranks(blk, rows, j0, j1, k, m, total, best, top, first, low, nlow, high
             hi = high[j]
             nl = nlow[j]
             nh = nhigh[j]
-            t = total[j]
-            b = best[j]
-            c = top[j]
+            tl = tlow[j]
+            th = thigh[j]
+            t = 0
+            b = 0
+            c = 0
             for s in range(rows):
                 r = tbuf[i, s]
                 t += r
@@ -205,20 +211,31 @@ def fold_ranks(blk, rows, j0, j1, k, m, total, best, top, first, low, nlow, high
                     c += 1
                 if r <= m:
                     first[j, r - 1] += 1
-                if nl < kl:
-                    _push(lo, nl, r, 1)
+                if r < tl:
+                    lo[nl] = r
                     nl += 1
-                elif r < lo[0]:
-                    lo[0] = r
-                    _sift_down(lo, nl, 1)
-                if nh < kh:
-                    _push(hi, nh, r, -1)
+                    if nl == cap_l:
+                        tl = select_kth(lo, nl, kl - 1, 1)
+                        nl = kl
+                if r > th:
+                    hi[nh] = r
                     nh += 1
-                elif r > hi[0]:
-                    hi[0] = r
-                    _sift_down(hi, nh, -1)
+                    if nh == cap_h:
+                        th = select_kth(hi, nh, kh - 1, -1)
+                        nh = kh
+            total[j] += t
+            best[j] += b
+            top[j] += c
             nlow[j] = nl
             nhigh[j] = nh
-            total[j] = t
-            best[j] = b
-            top[j] = c
+            tlow[j] = tl
+            thigh[j] = th
+
+
+@njit(nogil=True, cache=True)
+def interval_ends(low, nlow, kl, high, nhigh, kh, lo_end, hi_end):
+    """lo_end[j] = the kl-th smallest of low[j, :nlow[j]], hi_end[j] = the kh-th largest of high[j, :nhigh[j]]
+    (fold_ranks' candidates; reordered in place)."""
+    for j in range(low.shape[0]):
+        lo_end[j] = select_kth(low[j], nlow[j], kl - 1, 1)
+        hi_end[j] = select_kth(high[j], nhigh[j], kh - 1, -1)

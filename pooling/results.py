@@ -324,12 +324,14 @@ def rank_draws(x: np.ndarray, highest: bool = True) -> np.ndarray:
 
 RANK_ROWS = 512  # draws ranked, or folded, at a time
 FOLD_GROUPS = 64  # groups laid out together by order.fold_ranks
+FOLD_WIDTH = 4  # room for this many times the ranks a group keeps at each end, between selections
 
 
 class _RankFold:
     """Per-group rank figures gathered from blocks of draws' ranks (order.fold_ranks): the sums, the draws ranked
-    first and within the first k, the draws at each rank 1..m, and two heaps per group holding the ranks at the
-    central interval's ends (inverted empirical CDF): the i_lo + 1 smallest and the S - i_hi largest."""
+    first and within the first k, the draws at each rank 1..m, and per group candidates for its kl = i_lo + 1
+    smallest ranks and kh = S - i_hi largest, whose kl-th smallest and kh-th largest are the central interval's
+    ends (inverted empirical CDF)."""
 
     def __init__(self, S: int, J: int, level: float, k: int, m: int, dtype, rows: int):
         self.S, self.J, self.k, self.m = S, J, k, m
@@ -337,8 +339,12 @@ class _RankFold:
         i_hi = quantile_index(S, (1 + level) / 2)
         self.total, self.best, self.top = (np.zeros(J, dtype=np.int64) for _ in range(3))
         self.first = np.zeros((J, m), dtype=np.int64)
-        self.low, self.high = np.empty((J, i_lo + 1), dtype=dtype), np.empty((J, S - i_hi), dtype=dtype)
+        self.kl, self.kh = i_lo + 1, S - i_hi
+        wide = FOLD_WIDTH
+        self.low, self.high = np.empty((J, wide * self.kl), dtype=dtype), np.empty((J, wide * self.kh), dtype=dtype)
         self.nlow, self.nhigh = np.zeros(J, dtype=np.int64), np.zeros(J, dtype=np.int64)
+        # thresholds: every rank passes until a group has twice the ranks it keeps (ranks are 1..J)
+        self.tlow, self.thigh = np.full(J, np.iinfo(np.int64).max), np.full(J, -1, dtype=np.int64)
         self.threaded = S * J >= 1_000_000
         self.scratch = Scratch(lambda: np.empty((FOLD_GROUPS, rows), dtype=dtype))
 
@@ -358,10 +364,14 @@ class _RankFold:
                     self.best,
                     self.top,
                     self.first,
+                    self.kl,
                     self.low,
                     self.nlow,
+                    self.tlow,
+                    self.kh,
                     self.high,
                     self.nhigh,
+                    self.thigh,
                     tbuf,
                 )
 
@@ -369,11 +379,13 @@ class _RankFold:
 
     def summary(self) -> dict[str, np.ndarray]:
         S = self.S
+        low, high = np.empty(self.J), np.empty(self.J)
+        O.interval_ends(self.low, self.nlow, self.kl, self.high, self.nhigh, self.kh, low, high)
         # sums of whole numbers below 2**53 are exact in float64, so these equal numpy's means of the ranks
         return {
             "rank_mean": self.total / S,
-            "rank_low": self.low[:, 0].astype(np.float64),
-            "rank_high": self.high[:, 0].astype(np.float64),
+            "rank_low": low,
+            "rank_high": high,
             "p_best": self.best / S,
             "p_top_k": self.top / S,
         }
@@ -555,8 +567,8 @@ def rank_answers(x: np.ndarray, highest: bool, level: float, k: int) -> tuple[di
     """rank_summary(rank_draws(x), level, k) and the page's rank picture (P(rank = r) for every group by mean
     rank, or above HEAT_ALL groups for the best HEAT_ROWS_MANY over ranks 1..HEAT_ALL and beyond), the same
     numbers, without holding every draw's ranks (S x J): RANK_ROWS draws at a time are ranked as rank_draws
-    ranks them and folded into per-group figures (_RankFold). The heaps hold J x (S (1 - level) + 2) ranks, a
-    twentieth of the S x J ranks at the 95 % level; the rest is O(J)."""
+    ranks them and folded into per-group figures (_RankFold). The candidates for the interval's ends are at most
+    J x 2 (S (1 - level) + 2) ranks, a tenth of the S x J ranks at the 95 % level; the rest is O(J)."""
     x = np.ascontiguousarray(x)
     S, J = x.shape
     dtype = np.uint16 if J < np.iinfo(np.uint16).max else np.int32
