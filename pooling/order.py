@@ -17,7 +17,10 @@ group's draws) and ranks want rows (one draw's groups). The building blocks, eac
   keeps ties in position order), costs O(J) for the smooth spread of a draw's group values (a stable
   argsort per draw was six times slower at 20,000 groups). A draw with a NaN or an infinite value, with
   all values equal, or whose values crowd into few buckets (the insertion sort's moves passing 16 J) is
-  handed back, to be ranked by numpy's stable argsort. Either way the ranks are those defined above.
+  handed back, to be ranked by numpy's stable argsort. Either way the ranks are those defined above;
+* `fold_ranks` folds blocks of ranks into per-group sums and counts and keeps candidates for the ends of each
+  group's rank interval, which `select_kth` (Hoare's selection) and `interval_ends` pick: the same numbers as
+  sorting every draw's ranks, without holding them.
 """
 
 from __future__ import annotations
