@@ -86,7 +86,17 @@ from .asked import PURPOSE_KEPT, ReportOptions, check_k, derived_rng, resolve_gr
 from .errors import InputError
 from .model import Problem
 from .posterior import Fit, _jsonable_miss
-from .sampler import RawDraws, Settings, _Chain, _progress, _run_phase, diagnose_raw, draw_until_targets, resolve_seed
+from .sampler import (
+    RawDraws,
+    Settings,
+    _Chain,
+    _progress,
+    _run_phase,
+    diagnose_raw,
+    draw_until_targets,
+    load_sweep,
+    resolve_seed,
+)
 
 AUTO_GROUPS = 20_000
 AUTO_BYTES = 8 * 2**30
@@ -550,6 +560,7 @@ def prepare(
     )
     for c in chains:
         c.shared = setup
+    load_sweep(chains[0], problem)  # the sweep loaded or compiled outside the sampling time
     pilot = max(settings.warmup // 2, min(settings.warmup, 10))
     for mode, n_sweeps in (("warm", settings.warmup - pilot), ("pilot", pilot)):
         for c in chains:
