@@ -450,6 +450,42 @@ class Accumulated:
     lrun: np.ndarray | None = None  # (chains, 3, J or 0): ranks within levels (summary_kernel.level_ranks)
 
 
+def _load_pilot(c: _SummaryChain, p: Problem, setup: _Setup) -> None:
+    """Have numba load (or compile) the pilot kernel: a call of no sweeps, which changes nothing."""
+    sk.pilot(
+        c.rng,
+        0,
+        p.data,
+        c.state,
+        c.work,
+        c.sg,
+        setup.asked,
+        setup.logn,
+        setup.rowmap[sk.Q_BIAS] >= 0,
+        setup.asked[A.A_LIMITS] > 0,
+        c.count,
+        np.zeros((sk.N_Q, p.J)),
+        np.zeros((sk.N_Q, p.J)),
+    )
+
+
+def _load_summarise(c: _SummaryChain, p: Problem, setup: _Setup) -> None:
+    """Have numba load (or compile) the draw phase's kernels: summarise with no sweeps and flush with nothing
+    buffered, which change nothing; the zero-row outputs have the types of _SummaryChain.run's."""
+    d = p.data
+    m = setup.kept.shape[0]
+    out = sk.KeptRows(
+        np.empty((0, sk.N_Y + d.X.shape[1])),
+        np.empty(0),
+        np.empty((0, m)),
+        np.empty((0, m if p.within_code == 0 else 0)),
+        np.empty((0, m if p.heavy else 0)),
+        np.empty((0, m), dtype=np.int64),
+    )
+    sk.summarise(c.rng, 0, d, c.state, c.work, setup.frozen(), c.acc, out)
+    sk.flush(c.acc)
+
+
 def sample_summary(
     problem: Problem,
     settings: Settings | None = None,
@@ -471,6 +507,7 @@ def sample_summary(
     try:
         ready = prepare(problem, settings, options, summary, init, threads=threads, bar=bar, timer=timer)
         chains, setup, acc = ready.chains, ready.setup, ready.acc
+        _load_summarise(chains[0], problem, setup)  # outside the sampling time, as the sweep
         raw, rounds, have = draw_until_targets(
             chains,
             problem,
@@ -560,7 +597,8 @@ def prepare(
     )
     for c in chains:
         c.shared = setup
-    load_sweep(chains[0], problem)  # the sweep loaded or compiled outside the sampling time
+    load_sweep(chains[0], problem)  # the sweep and the pilot loaded or compiled outside the sampling time
+    _load_pilot(chains[0], problem, setup)
     pilot = max(settings.warmup // 2, min(settings.warmup, 10))
     for mode, n_sweeps in (("warm", settings.warmup - pilot), ("pilot", pilot)):
         for c in chains:
