@@ -64,6 +64,14 @@ TESTS: dict[str, list[str]] = {
     "pooling/sampler.py": ["tests/test_sampler.py", "tests/test_run_summary.py", "tests/test_kernel_api.py"],
     "pooling/diagnostics.py": ["tests/test_diagnostics.py", "tests/test_run_summary.py"],
     "pooling/answers.py": ["tests/test_report_stats.py", "tests/test_answers_exact.py"],
+    "pooling/order.py": ["tests/test_order.py", "tests/test_report_stats.py"],
+    "pooling/results.py": [
+        "tests/test_order.py",
+        "tests/test_predictive_checks.py",
+        "tests/test_model_checks.py",
+        "tests/test_report_stats.py",
+    ],
+    "pooling/output.py": ["tests/test_output_write.py"],
 }
 # modules whose numba functions call into the key's (their cached machine code would hide a mutant)
 DEPENDENTS = {"kernel": ["summary_kernel"], "answers": ["summary_kernel"]}
@@ -135,12 +143,17 @@ def workspace(folder: Path) -> Path:
     return folder
 
 
-def run(root: Path, rel: str, sample: int | None, seed: int, out: Path, deadline: float | None) -> None:
+def _in_lines(m, spans) -> bool:
+    line = m.line_number + 1
+    return spans is None or any(a <= line <= b for a, b in spans)
+
+
+def run(root: Path, rel: str, sample: int | None, seed: int, out: Path, deadline: float | None, spans=None) -> None:
     path = root / rel
     tests = TESTS[rel]
     every = mutants(path)
-    chosen = list(range(len(every)))
-    if sample is not None and sample < len(every):
+    chosen = [i for i in range(len(every)) if _in_lines(every[i], spans)]
+    if sample is not None and sample < len(chosen):
         chosen = sorted(random.Random(f"{seed}:{rel}").sample(chosen, sample))
     done = set()
     if out.exists():
@@ -242,6 +255,9 @@ def main(argv=None) -> None:
     p.add_argument("--sample", type=int, help="mutants per file, drawn with --seed (default: every mutant)")
     p.add_argument("--seed", type=int, default=20261203)
     p.add_argument("--until", help="stop starting mutants after this UTC time, HH:MM")
+    p.add_argument(
+        "--lines", help="only mutants on these lines of each file, e.g. 145-240,300-310: a change's own lines"
+    )
     p.add_argument("--results", type=Path, default=ROOT / "mutation-results")
     p.add_argument("--workspace", type=Path, help="mutate a fresh copy of the package and tests in this folder")
     p.add_argument("--report", action="store_true", help="print counts and survivors from the results")
@@ -272,7 +288,13 @@ def main(argv=None) -> None:
                 (a.tests or TESTS[rel]) + (["-k", a.keyword] if a.keyword else []),
             )
         else:
-            run(workspace(a.workspace.resolve()) if a.workspace else ROOT, rel, a.sample, a.seed, out, deadline)
+            spans = None
+            if a.lines:
+                spans = [
+                    tuple(int(x) for x in part.split("-")) if "-" in part else (int(part),) * 2
+                    for part in a.lines.split(",")
+                ]
+            run(workspace(a.workspace.resolve()) if a.workspace else ROOT, rel, a.sample, a.seed, out, deadline, spans)
 
 
 if __name__ == "__main__":
