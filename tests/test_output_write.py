@@ -314,3 +314,71 @@ def test_memory_helpers():
     del big
     view[...] = 2.0  # the pages live as long as a view does
     assert isinstance(_memory.keep_freed_memory(), bool)
+
+
+def test_a_file_system_that_refuses_direct_opens_gets_the_page_cache(tmp_path, monkeypatch):
+    """tmpfs and some network file systems refuse O_DIRECT when the file is opened (EINVAL): the bytes then all go
+    through the descriptor opened without it."""
+    import errno
+
+    from pooling import output
+
+    if not getattr(os, "O_DIRECT", 0):
+        pytest.skip("no O_DIRECT on this platform")
+    monkeypatch.setattr(output, "DIRECT_MIN_BYTES", 1024)
+    real_open = os.open
+
+    def opener(path, flags, *args):
+        if flags & os.O_DIRECT:
+            raise OSError(errno.EINVAL, "Invalid argument")
+        return real_open(path, flags, *args)
+
+    monkeypatch.setattr(os, "open", opener)
+    parts = _parts_for_direct_write()
+    output._write_draws(parts, tmp_path / "d.nc")
+    monkeypatch.undo()
+    _check_written(tmp_path / "d.nc", parts)
+
+
+def test_where_direct_io_works_the_large_variables_go_around_the_page_cache(tmp_path, monkeypatch):
+    """On a file system that takes O_DIRECT (the development machine's ext4), the whole blocks of the large
+    variables are written by the direct descriptor: the buffer is aligned, so none of them is refused."""
+    import errno
+
+    from pooling import output
+
+    if not getattr(os, "O_DIRECT", 0):
+        pytest.skip("no O_DIRECT on this platform")
+    probe = tmp_path / "probe"
+    probe.write_bytes(b"")
+    try:
+        os.close(os.open(probe, os.O_WRONLY | os.O_DIRECT))
+    except OSError as exc:
+        if exc.errno in (errno.EINVAL, errno.EOPNOTSUPP):
+            pytest.skip("this file system refuses O_DIRECT")
+        raise
+    monkeypatch.setattr(output, "DIRECT_MIN_BYTES", 1024)
+    monkeypatch.setattr(output, "DIRECT_BUFFER_BYTES", 8192)
+    direct_fds: set[int] = set()
+    written = {"direct": 0, "cached": 0}
+    real_open, real_pwrite = os.open, os.pwrite
+
+    def opener(path, flags, *args):
+        fd = real_open(path, flags, *args)
+        if flags & os.O_DIRECT:
+            direct_fds.add(fd)
+        return fd
+
+    def pwrite(fd, data, at):
+        n = real_pwrite(fd, data, at)
+        written["direct" if fd in direct_fds else "cached"] += n
+        return n
+
+    monkeypatch.setattr(os, "open", opener)
+    monkeypatch.setattr(os, "pwrite", pwrite)
+    parts = _parts_for_direct_write()
+    output._write_draws(parts, tmp_path / "e.nc")
+    monkeypatch.undo()
+    _check_written(tmp_path / "e.nc", parts)
+    # five variables of 31,376 (or 15,688) bytes: their whole 4,096-byte blocks directly, only the tails cached
+    assert written["direct"] >= 5 * 12_000 and written["cached"] < 5 * output.DIRECT_ALIGN
