@@ -219,34 +219,11 @@ class _SummaryChain(_Chain):
                 if stop.is_set():
                     return
                 k = min(chunk, n_sweeps - done)
-                sk.pilot(
-                    self.rng,
-                    k,
-                    d,
-                    self.state,
-                    self.work,
-                    self.sg,
-                    setup.asked,
-                    setup.logn,
-                    setup.rowmap[sk.Q_BIAS] >= 0,
-                    setup.asked[A.A_LIMITS] > 0,
-                    self.count,
-                    self.pilot_mean,
-                    self.pilot_msq,
-                )
+                self.pilot_sweeps(p, k, self.pilot_mean, self.pilot_msq)
                 done += k
                 tick(k)
             return
-        m = setup.kept.shape[0]
-        heavy = p.heavy
-        out = sk.KeptRows(
-            np.empty((n_sweeps, sk.N_Y + d.X.shape[1])),
-            np.empty(n_sweeps),
-            np.empty((n_sweeps, m)),
-            np.empty((n_sweeps, m if p.within_code == 0 else 0)),
-            np.empty((n_sweeps, m if heavy else 0)),
-            np.empty((n_sweeps, m), dtype=np.int64),
-        )
+        out = kept_rows(p, setup, n_sweeps)
         sh = setup.frozen()
         done = 0
         while done < n_sweeps:
@@ -259,6 +236,25 @@ class _SummaryChain(_Chain):
             tick(k)
         sk.flush(self.acc)  # the histograms hold every draw of this call from here on
         self.parts.append(out._asdict())
+
+    def pilot_sweeps(self, p, n_sweeps: int, mean: np.ndarray, msq: np.ndarray) -> None:
+        """n_sweeps pilot sweeps into the running means and M2 `mean`, `msq` (N_Q, J)."""
+        setup = self.shared
+        sk.pilot(
+            self.rng,
+            n_sweeps,
+            p.data,
+            self.state,
+            self.work,
+            self.sg,
+            setup.asked,
+            setup.logn,
+            setup.rowmap[sk.Q_BIAS] >= 0,
+            setup.asked[A.A_LIMITS] > 0,
+            self.count,
+            mean,
+            msq,
+        )
 
     def export_state(self) -> dict:
         # arrays, not lists: at a million groups a list of Python floats costs 30 bytes a number
@@ -452,38 +448,27 @@ class Accumulated:
 
 def _load_pilot(c: _SummaryChain, p: Problem, setup: _Setup) -> None:
     """Have numba load (or compile) the pilot kernel: a call of no sweeps, which changes nothing."""
-    sk.pilot(
-        c.rng,
-        0,
-        p.data,
-        c.state,
-        c.work,
-        c.sg,
-        setup.asked,
-        setup.logn,
-        setup.rowmap[sk.Q_BIAS] >= 0,
-        setup.asked[A.A_LIMITS] > 0,
-        c.count,
-        np.zeros((sk.N_Q, p.J)),
-        np.zeros((sk.N_Q, p.J)),
-    )
+    c.pilot_sweeps(p, 0, np.zeros((sk.N_Q, p.J)), np.zeros((sk.N_Q, p.J)))
 
 
 def _load_summarise(c: _SummaryChain, p: Problem, setup: _Setup) -> None:
     """Have numba load (or compile) the draw phase's kernels: summarise with no sweeps and flush with nothing
     buffered, which change nothing; the zero-row outputs have the types of _SummaryChain.run's."""
-    d = p.data
-    m = setup.kept.shape[0]
-    out = sk.KeptRows(
-        np.empty((0, sk.N_Y + d.X.shape[1])),
-        np.empty(0),
-        np.empty((0, m)),
-        np.empty((0, m if p.within_code == 0 else 0)),
-        np.empty((0, m if p.heavy else 0)),
-        np.empty((0, m), dtype=np.int64),
-    )
-    sk.summarise(c.rng, 0, d, c.state, c.work, setup.frozen(), c.acc, out)
+    sk.summarise(c.rng, 0, p.data, c.state, c.work, setup.frozen(), c.acc, kept_rows(p, setup, 0))
     sk.flush(c.acc)
+
+
+def kept_rows(p: Problem, setup: _Setup, n_sweeps: int) -> sk.KeptRows:
+    """Room for n_sweeps draws of the hyperparameters and the kept groups (theta, sigma, lambda, rank)."""
+    m = setup.kept.shape[0]
+    return sk.KeptRows(
+        np.empty((n_sweeps, sk.N_Y + p.data.X.shape[1])),
+        np.empty(n_sweeps),
+        np.empty((n_sweeps, m)),
+        np.empty((n_sweeps, m if p.within_code == 0 else 0)),
+        np.empty((n_sweeps, m if p.heavy else 0)),
+        np.empty((n_sweeps, m), dtype=np.int64),
+    )
 
 
 def sample_summary(
