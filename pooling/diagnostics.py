@@ -67,6 +67,7 @@ __all__ = [
     "mean_mc_error",
     "rhat_ess",
     "check_targets",
+    "miss_records",
     "worst",
 ]
 
@@ -493,20 +494,26 @@ def check_targets(named: dict[str, np.ndarray], rhat_max: float = 1.01, ess_min:
     misses = []
     for name, x in named.items():
         rhat, bulk, tail = (np.atleast_1d(np.asarray(v)) for v in rhat_ess(x))
-        rest = np.shape(x)[2:]
         bad = ~(rhat < rhat_max) | ~(bulk >= ess_min) | ~(tail >= ess_min)
-        for flat in np.flatnonzero(bad.ravel()):
-            idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
-            misses.append(
-                {
-                    "name": name,
-                    "index": idx,
-                    "rhat": float(rhat.ravel()[flat]),
-                    "bulk_ess": float(bulk.ravel()[flat]),
-                    "tail_ess": float(tail.ravel()[flat]),
-                }
-            )
+        misses += miss_records(name, np.shape(x)[2:], bad, rhat, bulk, tail)
     return misses
+
+
+def miss_records(name: str, rest: tuple[int, ...], bad, rhat, bulk, tail) -> list[dict]:
+    """One record per entry of `bad` (shaped `rest`, the quantity's own dimensions) that is True: the entry's
+    index into rest and its R-hat, bulk and tail ESS, in C order."""
+    out = []
+    for flat in np.flatnonzero(np.ravel(bad)):
+        out.append(
+            {
+                "name": name,
+                "index": tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else (),
+                "rhat": float(np.ravel(rhat)[flat]),
+                "bulk_ess": float(np.ravel(bulk)[flat]),
+                "tail_ess": float(np.ravel(tail)[flat]),
+            }
+        )
+    return out
 
 
 def worst(named: dict[str, np.ndarray]) -> dict[str, dict[str, float]]:

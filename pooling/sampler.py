@@ -409,18 +409,7 @@ def diagnose_raw(raw: RawDraws, targets: Targets) -> tuple[list[dict], dict]:
         # R-hat needs two chains; with one, only the ESS targets can be checked (the README says so)
         rhat_bad = ~(rhat < targets.rhat_max) if x.shape[0] >= 2 else np.zeros(rhat.shape, dtype=bool)
         bad = ~constant & (rhat_bad | ~(bulk >= targets.ess_min) | ~(tail >= targets.ess_min))
-        rest = x.shape[2:]
-        for flat in np.flatnonzero(bad.ravel()):
-            idx = tuple(int(i) for i in np.unravel_index(flat, rest)) if rest else ()
-            misses.append(
-                {
-                    "name": name,
-                    "index": idx,
-                    "rhat": float(rhat.ravel()[flat]),
-                    "bulk_ess": float(bulk.ravel()[flat]),
-                    "tail_ess": float(tail.ravel()[flat]),
-                }
-            )
+        misses += dg.miss_records(name, x.shape[2:], bad, rhat, bulk, tail)
         live = ~constant
         worst[name] = {
             "rhat_max": float(np.max(rhat[live])) if live.any() else float("nan"),

@@ -80,6 +80,15 @@ def _outlying(table) -> np.ndarray:
     return table["outlying"].to_numpy(dtype=bool) if "outlying" in table else np.zeros(len(table), dtype=bool)
 
 
+def _ring_outlying(panel, table, x, y, area: float, width: float) -> None:
+    """Rings around the groups flagged outlying, over their points at (x, y)."""
+    out = _outlying(table)
+    if out.any():
+        panel.points(
+            x[out], y[out], area, fill="none", stroke=LIMIT, stroke_width=width, key="flagged outlying", role="outlying"
+        )
+
+
 def marker_size(table) -> tuple[np.ndarray, str]:
     """What a group's marker area shows: n, or, for estimates with standard errors (no n), the precision
     1/se^2, the weight the estimate carries."""
@@ -139,18 +148,7 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
             role="own-mean",
         )
         p.points(post, y, post_area, fill=POST, key="posterior mean", role="posterior-mean")
-        out = _outlying(t)
-        if out.any():
-            p.points(
-                post[out],
-                y[out],
-                150.0,
-                fill="none",
-                stroke=LIMIT,
-                stroke_width=2.0,
-                key="flagged outlying",
-                role="outlying",
-            )
+        _ring_outlying(p, t, post, y, 150.0, 2.0)
     else:
         raw, post = table["raw_mean"].to_numpy(dtype=float), table["theta_mean"].to_numpy(dtype=float)
         area = _marker_area(size, 40.0)
@@ -162,18 +160,7 @@ def shrinkage(table, mu_mean: float, title: str = "") -> str:
         p.line([lo, hi], [lo, hi], MUTED, 1.2, key="no pooling (posterior = own mean)")
         p.hline(mu_mean, POOL, 1.5, "dashed", key="complete pooling (mu)")
         p.points(raw, post, area, fill=POST, opacity=0.45, key=f"group ({size_key})", role="posterior-mean")
-        out = _outlying(table)
-        if out.any():
-            p.points(
-                raw[out],
-                post[out],
-                90.0,
-                fill="none",
-                stroke=LIMIT,
-                stroke_width=1.6,
-                key="flagged outlying",
-                role="outlying",
-            )
+        _ring_outlying(p, table, raw, post, 90.0, 1.6)
     return c.svg()
 
 

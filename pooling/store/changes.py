@@ -344,28 +344,20 @@ def _row(now: GroupResult | None, then: GroupResult | None, p_better, p_above_th
     r = {c: None for c in CSV_COLUMNS}
     r["group"] = g.label
     r["change"] = "new" if then is None else "gone" if now is None else "kept"
-    if then is not None:
-        r.update(
-            n_then=then.n,
-            mean_then=then.post_mean,
-            sd_then=then.post_sd,
-            rank_then=then.rank_mean,
-            p_above_then=_num(then.p_above),
-            p_mean_outside_then=_num(then.p_outside),
-            side_then=_status_threshold(then.p_above, watch.decide_at),
-            limits_then=_status_limits(then.p_outside, watch.decide_at),
-        )
-    if now is not None:
-        r.update(
-            n_now=now.n,
-            mean_now=now.post_mean,
-            sd_now=now.post_sd,
-            rank_now=now.rank_mean,
-            p_above_now=_num(now.p_above),
-            p_mean_outside_now=_num(now.p_outside),
-            side_now=_status_threshold(now.p_above, watch.decide_at),
-            limits_now=_status_limits(now.p_outside, watch.decide_at),
-        )
+    for when, snap in (("then", then), ("now", now)):
+        if snap is not None:
+            r.update(
+                {
+                    f"n_{when}": snap.n,
+                    f"mean_{when}": snap.post_mean,
+                    f"sd_{when}": snap.post_sd,
+                    f"rank_{when}": snap.rank_mean,
+                    f"p_above_{when}": _num(snap.p_above),
+                    f"p_mean_outside_{when}": _num(snap.p_outside),
+                    f"side_{when}": _status_threshold(snap.p_above, watch.decide_at),
+                    f"limits_{when}": _status_limits(snap.p_outside, watch.decide_at),
+                }
+            )
     if now is not None and then is not None:
         shift = now.post_mean - then.post_mean
         spread = float(np.hypot(now.post_sd, then.post_sd))

@@ -42,7 +42,17 @@ FORMAT = SCHEMA_VERSION  # the schema version, kept under the key 'format' (the 
 APPLICATION_ID = int.from_bytes(b"pool", "big")  # lets `file`-like tools and our own check tell the file apart
 SQLITE_MAGIC = b"SQLite format 3\x00"
 
-SCHEMA = """
+# each batch's group-level columns: in the schema, and added by the upgrade from version 2
+BATCH_COLUMNS = """CREATE TABLE batch_columns (
+    batch_id INTEGER NOT NULL REFERENCES batches (id),
+    column_name TEXT NOT NULL,
+    position INTEGER NOT NULL,
+    value TEXT NOT NULL,
+    PRIMARY KEY (batch_id, column_name, position)
+) WITHOUT ROWID;
+"""
+
+SCHEMA = f"""
 CREATE TABLE pooling_store (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE store_head (
     one INTEGER PRIMARY KEY CHECK (one = 1),
@@ -78,14 +88,7 @@ CREATE TABLE batch_groups (
     m2 REAL NOT NULL,
     PRIMARY KEY (batch_id, position)
 ) WITHOUT ROWID;
-CREATE TABLE batch_columns (
-    batch_id INTEGER NOT NULL REFERENCES batches (id),
-    column_name TEXT NOT NULL,
-    position INTEGER NOT NULL,
-    value TEXT NOT NULL,
-    PRIMARY KEY (batch_id, column_name, position)
-) WITHOUT ROWID;
-CREATE TABLE runs (
+{BATCH_COLUMNS}CREATE TABLE runs (
     id INTEGER PRIMARY KEY,
     created_at TEXT NOT NULL,
     folder TEXT NOT NULL,
@@ -125,15 +128,8 @@ CREATE TABLE store_head (
 """
 
 # version 2 -> 3: the group-level columns of each batch (none in a version-2 store, so no checksum changes)
-UPGRADE_2_TO_3 = """
-CREATE TABLE batch_columns (
-    batch_id INTEGER NOT NULL REFERENCES batches (id),
-    column_name TEXT NOT NULL,
-    position INTEGER NOT NULL,
-    value TEXT NOT NULL,
-    PRIMARY KEY (batch_id, column_name, position)
-) WITHOUT ROWID;
-"""
+UPGRADE_2_TO_3 = f"""
+{BATCH_COLUMNS}"""
 
 
 def _identify(path: Path) -> None:
