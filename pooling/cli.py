@@ -906,18 +906,27 @@ def cmd_ingest(args, argv) -> int:
     return E.EXIT_OK
 
 
+def _kept(columns: dict, batch_id: int, text: bool = False):
+    """The group-level columns a batch keeps, as `pooling batches` shows them: None (JSON) or a pointer to checkup
+    (text) for a batch whose statistics fail their checksum."""
+    names = columns.get(batch_id)
+    if names is None:
+        return "(damaged: see pooling checkup)" if text else None
+    return ", ".join(names) if text else list(names)
+
+
 def cmd_batches(args, argv) -> int:
     import json
 
     from .store import jobs
 
-    batches, runs = jobs.list_batches(args.store)
+    batches, runs, columns = jobs.ledger_listing(args.store)
     if args.json:
         print(
             json.dumps(
                 {
                     "store": _shown(args.store),
-                    "batches": [b.to_dict() for b in batches],
+                    "batches": [{**b.to_dict(), "columns": _kept(columns, b.id)} for b in batches],
                     "runs": [
                         {
                             "id": r.id,
@@ -936,12 +945,14 @@ def cmd_batches(args, argv) -> int:
             )
         )
         return E.EXIT_OK
-    print(f"{'id':>4}  {'name':28}{'status':11}{'rows':>10}{'groups':>8}  {'dated':26}{'changed':26}sha256")
+    print(
+        f"{'id':>4}  {'name':28}{'status':11}{'rows':>10}{'groups':>8}  {'dated':26}{'changed':26}{'sha256':14}columns"
+    )
     for b in batches:
         name = b.name if len(b.name) <= 27 else b.name[:26] + "…"
         print(
             f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
-            f"{b.sha256[:12]}"
+            f"{b.sha256[:12]:14}{_kept(columns, b.id, text=True)}".rstrip()
         )
     active = sum(b.status == "active" for b in batches)
     print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")

@@ -24,7 +24,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
-from store_helpers import sql_dump
+from store_helpers import execute, sql_dump
 
 import pooling
 from pooling import cli
@@ -232,6 +232,31 @@ def test_withdrawn_and_replaced_batches_do_not_bind_the_values(tmp_path, capsys,
     jobs.withdraw_batch(store, "day-1.csv")
     assert _ingest(store, files[0], "--batch", "plain") == 0
     assert jobs.check_store(store)[1] == []
+
+
+def test_the_ledger_lists_the_columns_each_batch_keeps(tmp_path, capsys, backend, new_store):
+    files = _round(tmp_path, days=2)
+    store = new_store()
+    assert _ingest(store, files[0], "--column", "method", "--column", "age") == 0
+    jobs.withdraw_batch(store, "day-0.csv")
+    assert _ingest(store, files[1]) == 0  # the store's only active batch keeps none
+    capsys.readouterr()
+    assert cli.main(["batches", store, "--json"]) == 0
+    listed = json.loads(capsys.readouterr().out)["batches"]
+    assert [(b["name"], b["columns"]) for b in listed] == [("day-0.csv", ["age", "method"]), ("day-1.csv", [])]
+    assert cli.main(["batches", store]) == 0
+    table = capsys.readouterr().out.splitlines()
+    assert table[0].split()[-1] == "columns" and table[1].endswith("age, method")
+    assert table[2].split()[-1] == listed[1]["sha256"][:12]
+    # a batch whose statistics fail their checksum is listed, its columns not: checkup names the damage
+    execute(
+        store, "UPDATE batch_columns SET value = 'C' WHERE batch_id = 1 AND position = 0 AND column_name = 'method'"
+    )
+    assert cli.main(["batches", store, "--json"]) == 0
+    assert [b["columns"] for b in json.loads(capsys.readouterr().out)["batches"]] == [None, []]
+    assert cli.main(["batches", store]) == 0
+    assert capsys.readouterr().out.splitlines()[1].endswith("(damaged: see pooling checkup)")
+    assert any("statistics of batch 1" in p for p in jobs.check_store(store)[1])
 
 
 def _paused(tmp_path: Path) -> tuple[dict, Path, Path]:

@@ -167,6 +167,11 @@ class BatchStore(abc.ABC):
         """Every ledger line, oldest first, whatever its status."""
 
     @abc.abstractmethod
+    def columns(self) -> dict[int, tuple[str, ...]]:
+        """The group-level columns each batch keeps (`pooling ingest --column`), by batch id, every batch's
+        statistics and columns checked against its checksum first; a batch that fails the check is left out."""
+
+    @abc.abstractmethod
     def snapshot(self) -> Snapshot:
         """The active batches and their statistics, read consistently."""
 

@@ -117,6 +117,13 @@ def list_batches(store_path) -> tuple[list[BatchInfo], list[RunRecord]]:
         return st.batches(), st.runs()
 
 
+def ledger_listing(store_path) -> tuple[list[BatchInfo], list[RunRecord], dict[int, tuple[str, ...]]]:
+    """What `pooling batches` lists: the ledger, the recorded runs, and the group-level columns each batch keeps
+    (by batch id; every batch's statistics and columns are checked against its checksum first)."""
+    with open_store(store_path) as st:
+        return st.batches(), st.runs(), st.columns()
+
+
 @dataclass
 class RefitPlan:
     """Everything a refit decided before sampling: the snapshot, the merged statistics, the last run."""

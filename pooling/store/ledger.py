@@ -515,6 +515,14 @@ class SqlLedger(BatchStore):
         with self._read() as tx:
             return [self._info(ln) for ln in self._lines(tx)]
 
+    def columns(self) -> dict[int, tuple[str, ...]]:
+        with self._read() as tx:
+            lines = self._lines(tx)
+            rows = self._group_rows(tx)
+            col_rows = self._column_rows(tx)
+        damaged: list[str] = []  # a batch whose statistics fail their checksum is left out (checkup names it)
+        return {s.batch_id: tuple(s.columns) for s in self._stats(lines, rows, damaged, col_rows)}
+
     def _group_rows(self, tx, active_only: bool = False) -> list[tuple]:
         if not active_only:
             return tx.all(f"SELECT {cols(GROUP_COLS)} FROM batch_groups ORDER BY batch_id, position")
