@@ -122,6 +122,26 @@ def test_sections_follow_the_options(fit20):
     assert ids[:2] == ["changes", "verdict"] and "sides" in ids
 
 
+def _raw_angle_brackets(page: str) -> list[str]:
+    """Every '<' of the page's markup (outside <style> and <script>) that does not open a tag, a closing tag or a
+    comment: the HTML standard makes such a '<' in text a parse error (invalid-first-character-of-tag-name);
+    text carries it as &lt;."""
+    page = re.sub(r"<style>.*?</style>|<script[^>]*>.*?</script>", " ", page, flags=re.S)
+    return [page[max(0, m.start() - 30) : m.start() + 10] for m in re.finditer(r"<(?![A-Za-z/!])", page)]
+
+
+def test_probabilities_shown_as_bounds_are_escaped_text(fit20):
+    # Source: the WHATWG HTML standard, 13.2.5.6 "Tag open state": a '<' followed by a digit or a space is a
+    # parse error; '<0.001' and 'p < 0.001' must be written &lt; in the page (numbers.prob writes them for text)
+    res = compute(fit20, ReportOptions(threshold=100.0, labs=True))
+    res.table["p_best"] = np.where(np.arange(len(res.table)) % 2 == 0, 0.0003, 0.9997)
+    res.table["p_above"] = 0.0002
+    page = render(res, "t", None)
+    assert "&lt;0.001" in page and "&gt;0.999" in page
+    assert _raw_angle_brackets(page) == []
+    assert _raw_angle_brackets(render(compute(fit20, ReportOptions()), "t", None)) == []
+
+
 def test_the_answer_counts_then_names_the_exceptions(fit20):
     res = compute(fit20, ReportOptions(threshold=100.0))
     block = verdict(render(res, "t", None))

@@ -23,9 +23,10 @@ import numpy as np
 from .. import __version__
 from ..asked import level_label
 from ..results import Results, describe_column
+from . import numbers as N
 from . import plots
-from .numbers import Values, percent, plural, prob, prob_eq, rhat, sig, typical_sd, whole
-from .pieces import card, esc, html_table, interval_html, label
+from .numbers import Values, percent, plural, rhat, sig, typical_sd, whole
+from .pieces import card, esc, html_table, interval_html, label, prob, prob_eq
 from .plots import MANY, PAIRS_AS_TABLE, heat_hex
 
 ALL_ROWS = 200  # a full table up to this many groups; beyond, the first and last ALL_ROWS // 2 (groups.csv: all)
@@ -168,12 +169,12 @@ def _near(at: float):
     when it is not (0.94975 against 0.95 reads 0.9498, not 0.950)."""
 
     def show(p):
-        text = prob(p)
+        text = N.prob(p)
         d = 3
         while d < 6 and p != at and text.replace(">", "").replace("<", "") == f"{at:.{d}f}":
             d += 1
             text = f"{p:.{d}f}"
-        return text
+        return esc(text)
 
     return show
 

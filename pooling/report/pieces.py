@@ -5,11 +5,22 @@ from __future__ import annotations
 
 import html
 
+from . import numbers as N
 from .numbers import whole
 
 
 def esc(x) -> str:
     return html.escape(str(x), quote=True)
+
+
+def prob(x, dash: str = N.DASH) -> str:
+    """numbers.prob as HTML text: '<0.001' and '>0.999' escaped, like every other text on the page."""
+    return esc(N.prob(x, dash))
+
+
+def prob_eq(x) -> str:
+    """numbers.prob_eq as HTML text ('p &lt; 0.001')."""
+    return esc(N.prob_eq(x))
 
 
 def cell(c, num: bool) -> str:

@@ -6,8 +6,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .numbers import Values, ess, prob, rhat, sig
-from .pieces import card, esc, html_table, interval_html, label
+from .numbers import Values, ess, rhat, sig
+from .pieces import card, esc, html_table, interval_html, label, prob
 
 LEVEL_ROWS = 5  # groups shown per level in the table of ranks within levels
 
