@@ -70,23 +70,8 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
         h[f"low_{L}"] = h.pop("low")
         h[f"high_{L}"] = h.pop("high")
         hyper[name] = h
-    lab = {k: v for k, v in res.lab.items() if k != "interval_excludes_0"}
-    for key in (
-        "consensus",
-        "between_sd",
-        "repeatability_sd",
-        "reproducibility_sd",
-        "icc",
-        "repeatability_limit",
-        "reproducibility_limit",
-        "s",
-    ):
-        v = lab.get(key)
-        if isinstance(v, dict):
-            v = dict(v)
-            v[f"low_{L}"] = v.pop("low")
-            v[f"high_{L}"] = v.pop("high")
-            lab[key] = v
+    # every interval's ends named by the level (low -> low_95), within_levels' too
+    lab = _level_named({k: v for k, v in res.lab.items() if k != "interval_excludes_0"}, L)
     checks = None
     if res.checks is not None:
         ch = res.checks
@@ -143,8 +128,8 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
 
 
 def _level_named(x, L: str):
-    """The predictors' answers with each interval's ends named by the level (low -> low_95), as for the
-    hyperparameters; None stays None."""
+    """Answers (the predictors', the interlaboratory view's) with each interval's ends named by the level
+    (low -> low_95), as for the hyperparameters; None stays None."""
     if isinstance(x, dict):
         out = {}
         for k, v in x.items():

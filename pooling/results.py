@@ -1000,23 +1000,14 @@ def _repeatability_draws(problem, raw, within_sd=None) -> np.ndarray | None:
     return np.sqrt(np.einsum("ij,ij->i", sig, sig) / sig.shape[1])
 
 
-def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd=None) -> dict:
-    """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws; the classical
-    comparators (one-way ANOVA for measurements, DerSimonian-Laird for estimates with standard errors); the
-    per-lab bias table and its agreement with the z-scores. Internal units, mapped at the end."""
-    from .report.interlab import LIMIT_FACTOR, oneway_anova, random_effects_dl
+def _components(problem, raw, level: float, within_sd=None) -> dict:
+    """The consensus value, tau, and the ISO 5725 components (repeatability and reproducibility sd, ICC, the limits
+    2.8 s) of one fit, from its draws; internal units, mapped to the user's with the fit's own centre and scale."""
+    from .report.interlab import LIMIT_FACTOR
 
     c, k = problem.center, problem.scale
-    level = o.level
-    L = level_key(level)
     mu, tau = raw.mu.reshape(-1), raw.tau.reshape(-1)
-    out: dict = {
-        "level": level,
-        "structure": problem.model.within,
-        "between": problem.model.between.name,
-        "consensus": _summ(mu, level, k, c),
-        "between_sd": _summ(tau, level, k),
-    }
+    out: dict = {"consensus": _summ(mu, level, k, c), "between_sd": _summ(tau, level, k)}
     sr = _repeatability_draws(problem, raw, within_sd)
     if sr is not None:
         sR = np.hypot(tau, sr)
@@ -1032,6 +1023,35 @@ def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd
         out["repeatability_limit"] = out["reproducibility_limit"] = None
     if raw.s is not None:
         out["s"] = _summ(raw.s.reshape(-1), level, k)
+    return out
+
+
+def interlab_view(problem, raw, table: pd.DataFrame, o: ReportOptions, within_sd=None, without=None) -> dict:
+    """Consensus value, tau, repeatability and reproducibility sd, ICC and limits from the draws; the classical
+    comparators (one-way ANOVA for measurements, DerSimonian-Laird for estimates with standard errors); the
+    per-lab bias table and its agreement with the z-scores. Internal units, mapped at the end.
+
+    With group-level predictors this fit's mu is the reference level's consensus and its tau the spread left
+    within a level: labs of two methods that differ look more alike than they are. `without` (a Fit or
+    SummaryFit of the same data without the predictors, which pooling.fit makes) then gives "overall": the
+    consensus value and ISO 5725 components across all labs, one consensus and every lab-to-lab difference
+    counted, as ISO 5725's model y = m + B + e and the ANOVA count them. "overall" is None without predictors
+    (this fit's figures are the overall ones) and when `without` is not given."""
+    from .report.interlab import oneway_anova, random_effects_dl
+
+    c, k = problem.center, problem.scale
+    level = o.level
+    L = level_key(level)
+    out: dict = {
+        "level": level,
+        "structure": problem.model.within,
+        "between": problem.model.between.name,
+    }
+    out.update(_components(problem, raw, level, within_sd))
+    out["overall"] = None
+    if problem.design is not None and without is not None:
+        plain_sd = without.acc.within_sd if getattr(without, "summary_mode", False) else None
+        out["overall"] = _components(without.problem, without.raw, level, plain_sd)
     if problem.within_code != 2:
         an = oneway_anova(problem.n, problem.ybar, problem.m2)
         if an is not None:
@@ -1488,13 +1508,15 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
         x = getattr(raw, name)
         hyper_draws[name] = x * p.scale + (p.center if SCALED.get(name) else 0.0) if name in SCALED else x
     within_sd = fit.acc.within_sd if summary_mode else None
-    lab = interlab_view(p, raw, table, o, within_sd)
+    if without is None:
+        without = getattr(fit, "without", None)
+    lab = interlab_view(p, raw, table, o, within_sd, without)
     if within_sd is not None:
         hyper_draws["within_sd"] = within_sd * p.scale
     tail = tail_summary(p, raw, table)
     new_group = new_group_outside(p, raw, o, raw.seed)
     checks = None if checks_later is None else checks_later.result()
-    predictors = predictor_answers(p, raw, o, without if without is not None else getattr(fit, "without", None))
+    predictors = predictor_answers(p, raw, o, without)
     clock.append(time.perf_counter())
     heat = None
     pairs = None

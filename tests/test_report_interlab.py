@@ -262,3 +262,57 @@ def test_known_structure_report_shows_the_random_effects_comparator(tmp_path):
     re_ = json.loads((out / "summary.json").read_text())["interlab"]["random_effects"]
     assert round(re_["consensus"], 1) == 7.7
     assert "DerSimonian-Laird" in (out / "report.html").read_text()
+
+
+def test_with_a_method_predictor_the_iso_5725_components_count_every_lab_difference(tmp_path):
+    # Labs of two methods whose results differ by 1.0 (between-lab sd 0.2 within a method, repeatability sd 0.3;
+    # invented data, fixed seed). ISO 5725's model y = m + B + e counts every lab-to-lab difference in B, the
+    # method's too; the fit with the predictor leaves the method out of tau. The view's overall figures must be
+    # those of the fit without the predictor (an identity: the same code on pooling.fit's `without`), and their
+    # intervals must hold the classical estimates that ignore the method, while the within-level ones hold those
+    # that remove it. Source of the classical estimates: statsmodels' REML fit of the one-way random-effects model
+    # (mixedlm "y ~ 1", groups = lab) and of the same with the method as a fixed effect ("y ~ C(method)"); s_R =
+    # sqrt(between-lab variance + residual variance). The posterior and REML differ by prior and method, so the
+    # check is containment in the 95 % interval, not equality.
+    from pooling.asked import ReportOptions
+    from pooling.output import summary_dict
+    from pooling.report.page import render
+    from pooling.results import compute
+
+    rng = np.random.default_rng(11)
+    rows = []
+    for j in range(24):
+        method = "B" if j % 3 == 0 else "A"
+        centre = 50.0 + (1.0 if method == "B" else 0.0) + rng.normal(0, 0.2)
+        rows += [(f"L{j:02d}", method, x) for x in rng.normal(centre, 0.3, 3)]
+    df = pd.DataFrame(rows, columns=["lab", "method", "y"])
+    stats_ = pooling.from_frame(df, "lab", "y", group_columns=["method"])
+    model = pooling.Model(predictors=(pooling.Category("method"),))
+    settings = pooling.Settings(chains=2, warmup=500, draws=1500, max_draws=1500, seed=3)
+    fit = pooling.fit(stats_, model, settings, progress=False)
+    res = compute(fit, ReportOptions(labs=True))
+    plain = compute(fit.without, ReportOptions(labs=True))
+    over = res.lab["overall"]
+    for key in ("consensus", "between_sd", "repeatability_sd", "reproducibility_sd", "icc", "reproducibility_limit"):
+        assert over[key] == plain.lab[key], key
+
+    def reml_sR(formula: str) -> float:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            r = mixedlm(formula, df, groups=df["lab"]).fit(reml=True)
+        return float(np.sqrt(r.cov_re.iloc[0, 0] + r.scale))
+
+    every, within = reml_sR("y ~ 1"), reml_sR("y ~ C(method)")
+    assert every > within + 0.15  # the data do carry the method effect
+    assert over["reproducibility_sd"]["low"] < every < over["reproducibility_sd"]["high"]
+    assert res.lab["reproducibility_sd"]["high"] < every
+    assert res.lab["reproducibility_sd"]["low"] < within < res.lab["reproducibility_sd"]["high"]
+    # the page shows the overall figures as the components, the fit's own as within a level; summary.json keeps both
+    page = render(res, "t", None)
+    table = page[page.index('<section id="labs">') : page.index("</table>", page.index('<section id="labs">'))]
+    assert "within a level (with the predictors)" in table and "fit of the same data without them" in page
+    s = summary_dict(res, ["pooling"])["interlab"]
+    assert s["overall"]["reproducibility_sd"]["low_95"] == over["reproducibility_sd"]["low"]
+    assert s["reproducibility_sd"]["median"] == res.lab["reproducibility_sd"]["median"]
+    # without predictors there is no separate overall view
+    assert plain.lab["overall"] is None and "within a level" not in render(plain, "t", None)

@@ -1138,8 +1138,29 @@ def _tails(res: Results, v, lvl: str, figs: dict) -> str:
 # laboratories
 
 
+def _components_note(res: Results) -> str:
+    """With group-level predictors: which fit the consensus value and the ISO 5725 components come from."""
+    if res.predictors is None:
+        return ""
+    if res.lab.get("overall"):
+        return (
+            '<p class="note">With group-level predictors the consensus value and the components above come from '
+            "the fit of the same data without them (made by the same command): one consensus value for every lab, "
+            "and every lab-to-lab difference, the predictors' too, counted in s<sub>L</sub> and s<sub>R</sub>, as "
+            "the ISO 5725 model y = m + B + e and the ANOVA beside them count it. The rows marked within a level "
+            "are from the fit with the predictors: the spread left among labs of the same level (the precision of "
+            "one method, for example). Each lab's bias below is against the consensus value of its own level.</p>"
+        )
+    return (
+        '<p class="note">With group-level predictors, and no fit without them given, mu above is the consensus '
+        "value of the reference level and tau the spread within a level: they leave out what the predictors "
+        "explain, and do not compare with the ANOVA beside them, which counts every lab-to-lab difference.</p>"
+    )
+
+
 def _labs(res: Results, v, lvl: str) -> str:
-    lab, t, o = res.lab, res.table, res.options
+    t, o = res.table, res.options
+    lab = dict(res.lab, **res.lab["overall"]) if res.lab.get("overall") else res.lab  # the figures across all labs
     an = lab["anova"]
     rows = []
 
@@ -1184,6 +1205,10 @@ def _labs(res: Results, v, lvl: str) -> str:
                 f"{an['icc']:.3f}" if an else "–",
             ]
         )
+    if lab.get("overall"):  # with group-level predictors: the spread left within a level, from the fit with them
+        row("tau within a level (with the predictors)", res.lab["between_sd"], "–")
+        if res.lab["reproducibility_sd"] is not None:
+            row("s<sub>R</sub> within a level (with the predictors)", res.lab["reproducibility_sd"], "–")
     classical = "one-way ANOVA (moments)" if an or not re_ else "DerSimonian-Laird (moments)"
     comp = html_table(
         [("quantity", False), ("posterior median", True), (f"{lvl} interval", True), (classical, True)], rows
@@ -1243,6 +1268,7 @@ def _labs(res: Results, v, lvl: str) -> str:
         "can see where the two approaches agree.</p>"
         + comp
         + note
+        + _components_note(res)
         + f"<p>z = (own mean − x<sub>pt</sub>) / sigma<sub>pt</sub> with x<sub>pt</sub> = {v(zb['assigned'], 1)} "
         f"({esc(zb['assigned_from'])}) and sigma<sub>pt</sub> = {v(zb['sigma_pt'], 1)} "
         f"({esc(zb['sigma_pt_from'])}). "
