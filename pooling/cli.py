@@ -1365,7 +1365,10 @@ def run() -> None:
     from ._memory import keep_freed_memory
 
     keep_freed_memory()  # a process that ends with its run: freed work arrays are reused (pooling/_memory.py)
-    result["code"] = main(_stops=stops)
+    try:
+        result["code"] = main(_stops=stops)
+    except SystemExit as exc:  # argparse leaves by SystemExit: --help and --version with 0, a refusal with 2
+        result["code"] = exc.code if isinstance(exc.code, int) else E.EXIT_OK if exc.code is None else E.EXIT_INTERNAL
     sys.exit(result["code"])
 
 

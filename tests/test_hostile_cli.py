@@ -1192,3 +1192,30 @@ def test_cache_folder_choice_in_process(tmp_path, monkeypatch):
     jc.ensure()
     assert jc.choice == "private" and jc.folder != str(shared) and os.environ["NUMBA_CACHE_DIR"] == jc.folder
     shutil.rmtree(jc.folder, ignore_errors=True)
+
+
+def test_the_program_exits_as_documented_when_argparse_leaves(tmp_path):
+    # The program (`pooling`, cli.run, as the console script and `python -m pooling.cli` run it), not main():
+    # --help exits 0 and a command line it refuses exits 2 with one line, as `pooling --help` documents; argparse
+    # leaves by SystemExit, which the program's exit must carry through (it once turned every one into 1).
+    (tmp_path / "in.csv").write_text(GOOD)
+    fit = ["fit", "in.csv", "--group", "lab", "--value", "y", "--out", "run"]
+    for argv, code in (
+        (["--help"], 0),
+        (["fit", "--help"], 0),
+        ([], 2),
+        (["nosuchcommand"], 2),
+        ([*fit, "--top", "0"], 2),
+        ([*fit, "--level", "1.5"], 2),
+        ([*fit, "--bogus"], 2),
+        (["fit", "in.csv", "--value", "y", "--out", "run"], 2),
+        (["batches"], 2),
+    ):
+        r = subprocess.run(
+            [sys.executable, "-m", "pooling.cli", *argv], cwd=tmp_path, capture_output=True, text=True, env=_env()
+        )
+        assert r.returncode == code, (argv, r.returncode, r.stderr)
+        if code == 2:
+            lines = r.stderr.strip().splitlines()
+            assert len(lines) == 1 and lines[0].startswith("pooling: bad option"), (argv, r.stderr)
+    assert not (tmp_path / "run").exists()
