@@ -803,7 +803,11 @@ def _add_store_parsers(sub):
     p.add_argument("--reason", help="a note kept in the ledger")
     p = sub.add_parser("history", help="write one page of how the answers moved over a store's recorded runs")
     p.add_argument("store", help=STORE_HELP)
-    p.add_argument("--out", required=True, help="the page to write, for example history.html (replaced if it exists)")
+    p.add_argument(
+        "--out",
+        required=True,
+        help="the page to write, for example history.html (a history page there is replaced; any other file is refused)",
+    )
     p = sub.add_parser(
         "refit",
         help="merge every active batch, fit, write the run folder (with what changed and "

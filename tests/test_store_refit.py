@@ -8,6 +8,7 @@ Every test runs on both stores (SQLite and PostgreSQL; the `backend` fixture of 
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -295,6 +296,20 @@ def test_the_first_refit_page_history_and_the_recorded_intervals(world, tmp_path
     assert f"{n_runs} run" in text and "Each group over the runs" in text
     (tmp_path / "taken").mkdir()
     assert cli.main(["history", str(store), "--out", str(tmp_path / "taken")]) == 6
+    # the page has the mode of a new file (0666 less the umask), as every page of a run folder
+    mask = os.umask(0)
+    os.umask(mask)
+    assert out.stat().st_mode & 0o777 == 0o666 & ~mask
+    assert (d / "run-1" / "history.html").stat().st_mode & 0o777 == 0o666 & ~mask
+    # a history page is replaced night after night; any other file is refused untouched (exit 6): the store
+    # itself, a table of data (common practice: an output option never overwrites what is not its own output)
+    assert cli.main(["history", str(store), "--out", str(out)]) == 0
+    data = tmp_path / "measurements.csv"
+    data.write_text("lab,y\nA,1\n")
+    for target in ([Path(store)] if Path(str(store)).is_file() else []) + [data]:  # SQLite: the store is a file
+        before = target.read_bytes()
+        assert cli.main(["history", str(store), "--out", str(target)]) == 6
+        assert target.read_bytes() == before
 
 
 def test_history_of_runs_recorded_before_group_intervals():

@@ -32,6 +32,10 @@ HISTORY_CSS = """
 """
 
 
+PAGE_START = '<!DOCTYPE html><html lang="en"><head><meta charset="utf-8">'
+PAGE_TITLE = "<title>History of the store "
+
+
 def _side(p: float, at: float, yes: str, no: str) -> str | None:
     if p is None or not math.isfinite(p):
         return None
@@ -137,7 +141,7 @@ def render_history(source: str, ledger, runs, created: str | None = None) -> str
     title = f"History of the store {source}"
     parts = [
         (
-            '<!DOCTYPE html><html lang="en"><head><meta charset="utf-8">'
+            f"{PAGE_START}"
             '<meta name="viewport" content="width=device-width,initial-scale=1">'
             f"<title>{esc(title)}</title><style>{CSS}{HISTORY_CSS}</style></head><body>"
         )
@@ -412,18 +416,40 @@ def _runs_table(h: _Runs) -> str:
     )
 
 
+def is_history_page(path) -> bool:
+    """Whether the file at `path` is a history page this program wrote (its head, as render_history writes it):
+    the only file `pooling history --out` replaces."""
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(1024).decode("utf-8", "replace")
+    except OSError:
+        return False
+    return head.startswith(PAGE_START) and PAGE_TITLE in head
+
+
 def write_history(path, source: str, ledger, runs) -> None:
-    """history.html at `path`, written to a temporary sibling and renamed into place (never half-written)."""
+    """history.html at `path`, written to a temporary sibling and renamed into place (never half-written), with
+    the mode of a new file (0666 less the umask: readable by others where the umask allows, as every page of a
+    run folder). An existing file at `path` is replaced only when it is a history page (is_history_page): a
+    store, a table of data or any other file is refused, untouched."""
     import tempfile
     from pathlib import Path
 
     from ..errors import OutputError
 
     path = Path(path)
+    if path.exists() and not path.is_dir() and not is_history_page(path):
+        raise OutputError(
+            f"cannot write '{path}': the file exists and is not a history page of pooling (a store, or data?); "
+            "nothing was written: give a new file name, for example --out history.html"
+        )
     text = render_history(source, ledger, runs)
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.partial-", dir=str(path.resolve().parent))
+        mask = os.umask(0)  # mkstemp makes the file private (0600); the page gets the mode of a new file
+        os.umask(mask)
+        os.fchmod(fd, 0o666 & ~mask)
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)
         os.replace(tmp, path)
