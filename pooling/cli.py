@@ -922,6 +922,7 @@ def _kept(columns: dict, batch_id: int, text: bool = False):
 def cmd_batches(args, argv) -> int:
     import json
 
+    from .report.numbers import plural
     from .store import jobs
 
     batches, runs, columns = jobs.ledger_listing(args.store)
@@ -930,7 +931,10 @@ def cmd_batches(args, argv) -> int:
             json.dumps(
                 {
                     "store": _shown(args.store),
-                    "batches": [{**b.to_dict(), "columns": _kept(columns, b.id)} for b in batches],
+                    "batches": [
+                        {**b.to_dict(), "columns": _kept(columns, b.id), "checksum_ok": b.id in columns}
+                        for b in batches
+                    ],
                     "runs": [
                         {
                             "id": r.id,
@@ -960,6 +964,9 @@ def cmd_batches(args, argv) -> int:
         )
     active = sum(b.status == "active" for b in batches)
     print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")
+    damaged = sum(b.id not in columns for b in batches)
+    if damaged:
+        print(f"; {plural(damaged, 'batch', 'batches')} failing their checksum (see pooling checkup)", end="")
     if runs:
         r = runs[-1]
         print(

@@ -253,9 +253,11 @@ def test_the_ledger_lists_the_columns_each_batch_keeps(tmp_path, capsys, backend
         store, "UPDATE batch_columns SET value = 'C' WHERE batch_id = 1 AND position = 0 AND column_name = 'method'"
     )
     assert cli.main(["batches", store, "--json"]) == 0
-    assert [b["columns"] for b in json.loads(capsys.readouterr().out)["batches"]] == [None, []]
+    listed = json.loads(capsys.readouterr().out)["batches"]
+    assert [(b["columns"], b["checksum_ok"]) for b in listed] == [(None, False), ([], True)]
     assert cli.main(["batches", store]) == 0
-    assert capsys.readouterr().out.splitlines()[1].endswith("(damaged: see pooling checkup)")
+    table = capsys.readouterr().out.splitlines()
+    assert table[1].endswith("(damaged: see pooling checkup)") and "1 batch failing" in table[-1]
     assert any("statistics of batch 1" in p for p in jobs.check_store(store)[1])
 
 
