@@ -587,14 +587,13 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
         raise E.Interrupted(f"stopped by the user after the run folder '{out}' was written{state}") from None
     if not res.targets_met:
         run = res.run
-        from .report.numbers import plural
+        from .report.numbers import plural, rerun_advice
 
         missed = plural(res.diagnostics["missed_count"], "quantity", "quantities")
         _say(
             f"warning: diagnostics targets missed for {missed} after "
-            f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: run again "
-            f"with more draws (for example --draws {2 * run['draws_requested']} --max-draws "
-            f"{8 * run['draws_requested']}) or a proper prior on tau (see summary.json, 'diagnostics')"
+            f"{run['draws_per_chain']} draws per chain; results were written to '{out}' but need care: "
+            f"{rerun_advice(res.diagnostics, run['draws_requested'])} (see summary.json, 'diagnostics')"
         )
         return E.EXIT_TARGETS_MISSED
     return E.EXIT_OK

@@ -15,7 +15,7 @@ import sys
 import numpy as np
 
 from .asked import level_label
-from .report.numbers import Values, ess, plural, prob, rhat, sig, typical_sd, whole
+from .report.numbers import Values, ess, plural, prob, rerun_advice, rhat, sig, typical_sd, whole
 
 MAX_ROWS = 12
 NAMED = 5  # names listed on a side of a decision before "and N more"
@@ -209,9 +209,8 @@ def print_results(res, out, stream=None) -> None:
         w(
             f"diagnostics targets MISSED for {plural(diag['missed_count'], 'quantity', 'quantities')} after "
             f"{run['draws_per_chain']} draws per chain (worst: {what}, R-hat {rhat(worst.get('rhat'), '-')}, bulk ESS "
-            f"{ess(bulk, '-')}); do not use these results yet: run again with more draws, "
-            f"for example --draws {2 * run['draws_requested']} --max-draws {8 * run['draws_requested']}, or with a "
-            "proper prior on tau (--tau half-cauchy:SCALE)"
+            f"{ess(bulk, '-')}, tail ESS {ess(worst.get('tail_ess'), '-')}); do not use these results yet: "
+            f"{rerun_advice(diag, run['draws_requested'])}"
         )
     if res.mode == "summary":
         cr = res.summary["figures"]["classic_rhat"]

@@ -17,7 +17,7 @@ import pytest
 
 import pooling
 from pooling.asked import ReportOptions
-from pooling.report.numbers import Values, plural, prob, sig, whole
+from pooling.report.numbers import Values, plural, prob, rerun_advice, sig, whole
 from pooling.report.page import NAMED, render
 from pooling.results import compute
 from pooling.terminal import Numbers, print_results
@@ -185,6 +185,24 @@ def test_a_missed_target_heads_the_answer_with_what_to_do():
     print_results(res, "run", stream=out)
     text = out.getvalue()
     assert "MISSED" in text and "--draws 60 --max-draws 240" in text and "do not use these results yet" in text
+    # tau missed too (30 draws): a proper prior on tau is among the remedies, in both
+    assert "--tau half-cauchy:SCALE" in block and "--tau half-cauchy:SCALE" in text
+
+
+def test_the_remedy_for_a_missed_target_follows_what_missed():
+    # A proper prior on tau helps the hyperparameters of a run with few groups (common practice); a group's theta or
+    # sigma that mixes slowly (two or three measurements far from the rest) needs more draws, not another prior.
+    ok = {"rhat_max": 1.001, "bulk_ess_min": 900.0, "tail_ess_min": 800.0}
+    slow = {"rhat_max": 1.004, "bulk_ess_min": 650.0, "tail_ess_min": 300.0}
+    targets = {"rhat_below": 1.01, "ess_at_least": 400}
+    groups_only = {"targets": targets, "worst": {"mu": ok, "tau": ok, "theta": slow, "sigma": slow}}
+    text = rerun_advice(groups_only, 1000)
+    assert text == "run again with more draws, for example --draws 2000 --max-draws 8000"
+    for name in ("tau", "mu", "nu"):
+        hyper = {"targets": targets, "worst": {**groups_only["worst"], name: slow}}
+        assert rerun_advice(hyper, 1000).endswith(", or with a proper prior on tau (--tau half-cauchy:SCALE)")
+    nan = {"targets": targets, "worst": {"tau": {"rhat_max": float("nan"), "bulk_ess_min": 1e3, "tail_ess_min": 1e3}}}
+    assert "proper prior" in rerun_advice(nan, 10)  # a NaN diagnostic counts as a miss, as check_targets counts it
 
 
 def test_estimates_have_no_n(tmp_path):

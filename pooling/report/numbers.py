@@ -134,3 +134,29 @@ def typical_sd(values) -> float:
     v = np.asarray(values, dtype=float)
     v = v[np.isfinite(v) & (v > 0)]
     return float(np.median(v)) if v.size else 1.0
+
+
+GROUP_LEVEL = frozenset({"theta", "sigma", "lambda"})  # checked quantities of one group each
+
+
+def rerun_advice(diag: dict, draws_requested: int, code=str) -> str:
+    """What to do after the diagnostics targets were missed, for the terminal, the warning and the page (`code`
+    marks up an option): more draws always; a proper prior on tau only when a hyperparameter (mu, tau, s, nu, an
+    effect) missed, as a flat prior on tau with few groups mixes slowly, not when only some group's theta or
+    sigma did (a group with two or three measurements, far from the rest, needs more draws, not another prior)."""
+    tg = diag.get("targets", {})
+    rmax, emin = tg.get("rhat_below", 1.01), tg.get("ess_at_least", 400)
+    hyper_missed = any(
+        not (
+            w.get("rhat_max", np.nan) < rmax
+            and w.get("bulk_ess_min", np.nan) >= emin
+            and w.get("tail_ess_min", np.nan) >= emin
+        )
+        for name, w in (diag.get("worst") or {}).items()
+        if name not in GROUP_LEVEL
+    )
+    n = draws_requested
+    text = f"run again with more draws, for example {code(f'--draws {2 * n} --max-draws {8 * n}')}"
+    if hyper_missed:
+        text += f", or with a proper prior on tau ({code('--tau half-cauchy:SCALE')})"
+    return text

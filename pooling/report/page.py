@@ -408,14 +408,14 @@ def _health_line(res: Results) -> str:
     if "group" in worst:
         what += f" of {esc(label(worst['group'], 30))}"
     req = run["draws_requested"]
+    advice = N.rerun_advice(diag, req, lambda c: f"<code>{c}</code>")
     return (
         '<div class="alarm"><strong>Do not use these answers yet: the diagnostics targets were missed.</strong> '
         f"{plural(diag['missed_count'], 'quantity', 'quantities')} missed R-hat below {tg['rhat_below']} or "
         f"{tg['ess_at_least']:g} effective draws after {whole(run['draws_per_chain'])} draws per chain (worst: "
-        f"{what}, R-hat {rhat(worst.get('rhat'))}). The chains may not have explored the posterior, so every "
-        f"number below may be wrong. Run again with more draws, for example <code>--draws {2 * req} "
-        f"--max-draws {8 * req}</code>, or with a proper prior on tau (<code>--tau half-cauchy:SCALE</code>)."
-        "</div>"
+        f"{what}, R-hat {rhat(worst.get('rhat'))}, bulk ESS {N.ess(worst.get('bulk_ess'))}, tail ESS "
+        f"{N.ess(worst.get('tail_ess'))}). The chains may not have explored the posterior, so every number below "
+        f"may be wrong. {advice[0].upper()}{advice[1:]}.</div>"
     )
 
 
