@@ -2,8 +2,10 @@
 
 The floor is what a sweep must draw, drawn alone with the same Generator inside numba. For the
 `separate` structure: one standard normal (theta_j) and one standard gamma (sigma_j^2, shape
-(nu + n_j) / 2) per group; with the heavy-tailed between-group distribution (the default) one more
-standard gamma per group (lambda_j, shape (df + 1) / 2). Everything else in a sweep (the slice update
+(nu + n_j) / 2) per group, and for each group of at most kernel.PAIR_MAX_N measurements the joint move's
+proposal (one standard gamma, shape (nu + n_j - 1) / 2) and its acceptance (an exponential; since 2026-12-03, kernel.pair_step);
+with the heavy-tailed between-group distribution (the default) one more standard gamma per group (lambda_j,
+shape (df + 1) / 2). Everything else in a sweep (the slice update
 of log tau with its O(J) density evaluations, the conditional means, the nu and df grids) is overhead
 against that floor.
 
@@ -35,22 +37,27 @@ J_QUICK = (10, 1_000, 100_000)
 
 
 @njit(nogil=True, cache=True)
-def floor_separate(rng, n_sweeps, shape):
-    """What a `separate` sweep must draw: z ~ N(0, 1) and g ~ Gamma(shape_j, 1) for every group."""
+def floor_separate(rng, n_sweeps, shape, pair):
+    """What a `separate` sweep must draw: z ~ N(0, 1) and g ~ Gamma(shape_j, 1) for every group, and for the groups
+    of the joint move (pair_j > 0) q ~ Gamma(pair_j, 1) and e ~ Exp(1) (its acceptance)."""
     acc = 0.0
     for _ in range(n_sweeps):
         for j in range(shape.shape[0]):
             acc += rng.standard_normal() + rng.standard_gamma(shape[j])
+            if pair[j] > 0.0:
+                acc += rng.standard_gamma(pair[j]) + rng.standard_exponential()
     return acc
 
 
 @njit(nogil=True, cache=True)
-def floor_separate_heavy(rng, n_sweeps, shape, shape_lam):
-    """What a heavy-tailed `separate` sweep must draw: z, g ~ Gamma(shape_j, 1) and l ~ Gamma(shape_lam, 1)."""
+def floor_separate_heavy(rng, n_sweeps, shape, pair, shape_lam):
+    """What a heavy-tailed `separate` sweep must draw: those of floor_separate and l ~ Gamma(shape_lam, 1)."""
     acc = 0.0
     for _ in range(n_sweeps):
         for j in range(shape.shape[0]):
             acc += rng.standard_normal() + rng.standard_gamma(shape[j]) + rng.standard_gamma(shape_lam)
+            if pair[j] > 0.0:
+                acc += rng.standard_gamma(pair[j]) + rng.standard_exponential()
     return acc
 
 
@@ -101,11 +108,12 @@ def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) ->
     if structure == "separate":
         nu = p.nu_grid[int(chain.state[kernel.NU_IDX])]
         shape = 0.5 * (nu + p.n)
+        pair = np.where((p.n <= kernel.PAIR_MAX_N) & (nu + p.n - 1.0 > 0.0), 0.5 * (nu + p.n - 1.0), 0.0)
         floor = (
-            (lambda: floor_separate_heavy(chain.rng, k, shape, shape_lam))
+            (lambda: floor_separate_heavy(chain.rng, k, shape, pair, shape_lam))
             if heavy
             # noqa: E731
-            else (lambda: floor_separate(chain.rng, k, shape))
+            else (lambda: floor_separate(chain.rng, k, shape, pair))
         )
     else:
         floor = (
@@ -114,9 +122,9 @@ def _measure(chain: KernelChain, structure: str, budget: float, repeats: int) ->
             # noqa: E731
             else (lambda: floor_normal(chain.rng, k, J))
         )
-    floor_separate(chain.rng, 1, np.ones(1))  # compile (or load from the cache) before timing
+    floor_separate(chain.rng, 1, np.ones(1), np.ones(1))  # compile (or load from the cache) before timing
     floor_normal(chain.rng, 1, 1)
-    floor_separate_heavy(chain.rng, 1, np.ones(1), 2.0)
+    floor_separate_heavy(chain.rng, 1, np.ones(1), np.ones(1), 2.0)
     floor_normal_heavy(chain.rng, 1, 1, 2.0)
     t_sweep = t_floor = np.inf
     for _ in range(repeats):  # interleaved, so a busy spell of the machine hits both alike

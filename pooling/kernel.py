@@ -26,6 +26,12 @@ Heavy tails (between = 1): theta_j | mu, tau, lambda_j ~ N(mu, tau^2 / lambda_j)
      neighbouring grid point and tau rescaled so that the quartiles of the t stay put (tail_step): given
      theta the data fix the spread of the groups, so df and tau are tied and the draws of each given the
      other move along that ridge only slowly.
+Separate variances: step 3 is taken by pair_step, right after 2, and for every group of at most PAIR_MAX_N
+  measurements it first moves sigma_j^2 with theta_j integrated out (as 1 and 2 are drawn): an independence
+  Metropolis-Hastings step proposing Scaled-Inv-chi2(nu + n_j - 1, (nu s^2 + M2_j) / (nu + n_j - 1)) and
+  accepting with the ratio of N(ybar_j | c_j, t_j + sigma_j^2 / n_j); then theta_j from 3. A group of a few
+  measurements that agree but lie far from the others crosses in one move between theta_j near its own mean
+  (small sigma_j) and theta_j pulled in (large sigma_j).
 Block B, the variances given theta:
   separate: sigma_j^2 ~ Scaled-Inv-chi2(nu + n_j, (nu s^2 + M2_j + n_j (ybar_j - theta_j)^2) / (nu + n_j)),
             s^2 ~ Gamma(shape J nu / 2 + a, rate nu / 2 sum_j 1/sigma_j^2 + b),
@@ -72,6 +78,8 @@ MAX_STEPS = 60
 DF_WINDOW = 16  # at most this many grid points of df are evaluated per sweep (see tail_step): the default grid
 # (12 points) is drawn from its whole conditional; a longer grid given by the user gets random windows
 LOG_BLOCK = 16  # terms multiplied (in 4 interleaved products) before one log is taken (see sum_log_shifted)
+PAIR_MAX_N = 10.0  # groups of at most this many measurements get the joint (sigma_j^2, theta_j) move (pair_step);
+# with more, M2_j's n_j - 1 degrees of freedom pin sigma_j and the draws given theta_j mix well without it
 _PROD_MIN, _PROD_MAX = 1e-300, 1e300
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
 # Speed (see benchmarks/README.md). error_model="numpy" on the hot functions: a float division by
@@ -601,6 +609,8 @@ def block_a(rng, adapt, d, st, wk):
             sc[WIDTH] = min(10.0, max(0.02, 3.0 * sc[JUMP_SUM] / sc[JUMP_COUNT]))
     mu = mv[0] + math.sqrt(mv[1]) * rng.standard_normal()
     sc[MU] = mu
+    if d.within == WITHIN_SEPARATE:
+        return ev  # theta_j next, with sigma_j^2: pair_step
     tau2 = math.exp(2.0 * eta)
     theta = st.theta
     ybar = d.ybar
@@ -663,14 +673,16 @@ def block_a_reg(rng, adapt, d, st, wk):
     heavy = d.between == BETWEEN_HEAVY
     il = wk.inv_lam
     cen = wk.centre
+    draw = d.within != WITHIN_SEPARATE  # separate: theta_j next, with sigma_j^2 (pair_step)
     for j in range(J):
         c = mu
         for a in range(p):
             c += X[j, a] * beta[a]
         cen[j] = c
-        t = tau2 * il[j] if heavy else tau2
-        inv_d = 1.0 / (v[j] + t)
-        theta[j] = (c * v[j] + ybar[j] * t) * inv_d + math.sqrt(v[j] * t * inv_d) * rng.standard_normal()
+        if draw:
+            t = tau2 * il[j] if heavy else tau2
+            inv_d = 1.0 / (v[j] + t)
+            theta[j] = (c * v[j] + ybar[j] * t) * inv_d + math.sqrt(v[j] * t * inv_d) * rng.standard_normal()
     return ev
 
 
@@ -1095,6 +1107,61 @@ def scale_step(rng, d, scalars, theta, sigma2):
         sigma2[j] *= c
 
 
+@njit(nogil=True, cache=True, error_model="numpy")
+def pair_step(rng, d, st, wk):
+    """theta_j of every group, and for the groups of at most PAIR_MAX_N measurements (sigma_j^2, theta_j) jointly
+    (separate structure), given mu, tau, beta and lambda as block A left them.
+
+    Block A draws (tau, mu) with every theta_j integrated out; this step completes it. For a small group, with
+    theta_j integrated out p(sigma_j^2 | rest) is proportional to
+        (sigma_j^2)^(-(a/2 + 1)) exp(-b / (2 sigma_j^2)) * N(ybar_j | c_j, t_j + sigma_j^2 / n_j),
+    a = nu + n_j - 1, b = nu s^2 + M2_j, c_j the group's centre (mu, or mu + x_j' beta) and t_j its prior variance
+    (tau^2, or tau^2 / lambda_j with heavy tails): sigma_j^2 takes an independence Metropolis-Hastings step that
+    proposes from the first part, Scaled-Inv-chi2(a, b / a), and accepts with the ratio of the normal factor. Then
+    every theta_j is drawn from its normal conditional given sigma_j^2 (block A's formula 3). Block A's draw of
+    (tau, mu) and this step's of sigma_j^2 both target the distribution with theta integrated out, and theta comes
+    last from its exact conditional, so the pair keeps the joint posterior invariant.
+    Why: a group whose few measurements agree closely but lie far from the others has two explanations, theta_j near
+    its own mean with a small sigma_j, or theta_j pulled in with a large sigma_j; drawn one given the other (block A,
+    block B) the chain crosses between them only rarely, this step in one move. A group of more measurements pins
+    sigma_j with its own M2_j and is left to block B. wk.v is kept equal to sigma_j^2 / n_j."""
+    sc = st.scalars
+    nu = d.nu_grid[int(sc[NU_IDX])]
+    nus2 = nu * sc[S2]
+    tau2 = math.exp(2.0 * sc[ETA])
+    heavy = d.between == BETWEEN_HEAVY
+    il = wk.inv_lam
+    X, beta = d.X, st.beta
+    p = X.shape[1]
+    mu = sc[MU]
+    ybar, n, m2 = d.ybar, d.n, d.m2
+    theta, sigma2, v = st.theta, st.sigma2, wk.v
+    for j in range(ybar.shape[0]):
+        c = mu
+        for k in range(p):
+            c += X[j, k] * beta[k]
+        t = tau2 * il[j] if heavy else tau2
+        a = nu + n[j] - 1.0
+        if n[j] <= PAIR_MAX_N and a > 0.0:  # a <= 0: a down-weighted group (n_j <= 1 - nu) has no proper proposal
+            r = ybar[j] - c
+            h = 0.5 * a
+            if h >= 1.0:
+                dd = h - 1.0 / 3.0
+                g = gamma_mt(rng, dd, 1.0 / math.sqrt(9.0 * dd))
+            else:
+                g = rng.standard_gamma(h)
+            s_new = (nus2 + m2[j]) / (2.0 * g)
+            v_old = t + sigma2[j] / n[j]
+            v_new = t + s_new / n[j]
+            # accept when log U < log ratio, -log U being a standard exponential draw
+            if -rng.standard_exponential() < 0.5 * (math.log(v_old / v_new) + r * r * (1.0 / v_old - 1.0 / v_new)):
+                sigma2[j] = s_new
+                v[j] = s_new / n[j]
+        vj = v[j]
+        inv_d = 1.0 / (vj + t)
+        theta[j] = (c * vj + ybar[j] * t) * inv_d + math.sqrt(vj * t * inv_d) * rng.standard_normal()
+
+
 # ---------------------------------------------------------------------------------------------
 # the sweep
 
@@ -1104,6 +1171,8 @@ def sweep(rng, adapt, d, st, wk):
     """One sweep from `st` (updated in place). Returns the slice update's density evaluations."""
     fill_v(d, st.scalars, st.sigma2, wk.v)
     ev = block_a(rng, adapt, d, st, wk)
+    if d.within == WITHIN_SEPARATE:
+        pair_step(rng, d, st, wk)
     if d.between == BETWEEN_HEAVY:
         tail_step(rng, d, st, wk)
     if d.within == WITHIN_SEPARATE:

@@ -222,10 +222,48 @@ SEP_WEIGHTS = np.array([1.0, 2.0, 3.0, 3.0, 2.0, 1.0]) / 12.0
 THETA_SHIFT = np.array([0.1, -0.2, 0.05, 0.3, -0.1, 0.0])  # theta_j - ybar_j: so that the n_j d^2 term matters
 
 
+def run_block_a(model, *, draws, seed, lam=None):
+    """Call kernel.block_a and then kernel.pair_step `draws` times for `separate`, each time from the same variances
+    sigma_j^2 (the pooled within-group variance times unequal factors; the cut has groups of one) and, for heavy
+    tails, the same lambda_j, and record tau, mu and theta of every call with the sigma_j^2 that theta was drawn
+    given. Block A draws (tau, mu) given the variances with theta integrated out; pair_step then moves each small
+    group's sigma_j^2 (its own test is below) and draws theta_j given the sigma_j^2 it kept. In a sweep other
+    moves follow, so the two are tested on their own, as block B is. Rows carry a leading copy of the first, so
+    that theta_pit and mu_pit (which read rows 1:) see every call."""
+    p = dyestuff_problem(model)
+    d = p.data
+    sigma2 = float(p.m2.sum() / (p.n - 1.0).sum()) * SIGMA_FACTORS
+    rng = np.random.default_rng(seed)
+    st = start_state(p)
+    wk = kernel.make_work(d)
+    out = {k: np.empty((draws + 1,) + shape) for k, shape in (("tau", ()), ("mu", ()), ("theta", (p.J,)))}
+    v_theta = np.empty((draws, p.J))
+    for i in range(draws):
+        st.sigma2[:] = sigma2
+        kernel.fill_v(d, st.scalars, st.sigma2, wk.v)
+        if lam is not None:
+            wk.inv_lam[:] = 1.0 / lam
+        kernel.block_a(rng, False, d, st, wk)
+        kernel.pair_step(rng, d, st, wk)
+        out["tau"][i + 1] = np.exp(st.scalars[kernel.ETA])
+        out["mu"][i + 1] = st.scalars[kernel.MU]
+        out["theta"][i + 1] = st.theta
+        v_theta[i] = st.sigma2 / p.n
+    for k in out:
+        out[k][0] = out[k][1]
+    v = np.broadcast_to(sigma2 / p.n, (draws, p.J))
+    assert not np.array_equal(v_theta, v)  # the small groups' sigma_j^2 did move before theta was drawn
+    return dict(out=out, n=p.n, ybar=p.ybar, v=v, v_theta=v_theta, p=p)
+
+
+SIGMA_FACTORS = np.array([0.5, 1.0, 2.0, 1.5, 0.8, 3.0])
+LAM_FIXED = np.array([1.0, 0.3, 2.0, 0.1, 1.0, 0.7])  # some small weights: the heavy-tailed prior variance matters
+
+
 @pytest.fixture(scope="module")
 def separate_grid_run():
-    """Full sweeps: separate, nu on a grid with unequal weights, gamma s^2 prior, normal mu, half-Cauchy tau,
-    the normal between-group distribution."""
+    """Block A with the model of a full run: separate, nu on a grid with unequal weights, gamma s^2 prior, normal
+    mu, half-Cauchy tau, the normal between-group distribution."""
     model = Model(
         within="separate",
         between="normal",
@@ -234,42 +272,101 @@ def separate_grid_run():
         s2=Gamma(2.0, 1.5 / DYE_K**2),
         nu=NuGrid(tuple(SEP_GRID), tuple(SEP_WEIGHTS)),
     )
-    p = dyestuff_problem(model)
-    out = run(p, n_sweeps=N_SWEEPS, seed=20240611)
-    return dict(out=out, n=p.n, ybar=p.ybar, mu_prior=internal(p, model)["mu"], lam=None)
+    r = run_block_a(model, draws=N_SWEEPS, seed=20240611)
+    return dict(r, mu_prior=internal(r["p"], model)["mu"], lam=None)
 
 
 @pytest.fixture(scope="module")
 def separate_fixed_run():
-    """Full sweeps through the defaults (README: heavy tails with df learned, flat mu, flat tau,
-    p(s^2) ∝ 1/s^2), nu fixed at 3."""
+    """Block A through the defaults (README: heavy tails with df learned, flat mu, flat tau, p(s^2) ∝ 1/s^2), nu
+    fixed at 3, with fixed lambda_j."""
     model = Model(nu=NuFixed(3.0))
-    p = dyestuff_problem(model)
-    assert p.heavy and internal(p, model)["mu"] == (0, 0.0, 1.0)
-    out = run(p, n_sweeps=N_SWEEPS, seed=7)
-    return dict(out=out, n=p.n, ybar=p.ybar, mu_prior=(0, 0.0, 1.0), lam=out["lam"][:-1])
+    r = run_block_a(model, draws=N_SWEEPS, seed=20261203, lam=LAM_FIXED)  # a new stream with the pair move
+    assert r["p"].heavy and internal(r["p"], model)["mu"] == (0, 0.0, 1.0)
+    return dict(r, mu_prior=(0, 0.0, 1.0), lam=np.broadcast_to(LAM_FIXED, (N_SWEEPS, r["p"].J)))
 
 
 @pytest.mark.parametrize("which", ["separate_grid_run", "separate_fixed_run"])
 def test_theta_and_mu_given_separate_variances(which, request):
-    # theta and mu of sweep t are drawn given the variances (and, for heavy tails, the lambda_j) as the
-    # previous sweep left them (after all of its moves), and those are the recorded rows t - 1
+    # mu of each call is drawn given the variances and (heavy tails) the lambda_j held fixed and the tau the same
+    # call drew; theta given that mu and tau and the sigma_j^2 pair_step kept
     r = request.getfixturevalue(which)
-    out, n, lam = r["out"], r["n"], r["lam"]
-    v_prev = out["sigma"][:-1] ** 2 / n
-    u = theta_pit(out, r["ybar"], v_prev, lam_prev=lam)
+    out, v, v_theta, lam = r["out"], r["v"], r["v_theta"], r["lam"]
+    u = theta_pit(out, r["ybar"], v_theta, lam_prev=lam)
     assert _ks_uniform(u) > ALPHA
     for j in range(u.shape[1]):  # per group too: an error in one group's index would hide in the pool
         assert _ks_uniform(u[:, j]) > ALPHA / u.shape[1], j
-    assert _ks_uniform(theta_pit(out, r["ybar"], v_prev, swap=True, lam_prev=lam)) < ALPHA
-    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], lam_prev=lam)) > ALPHA
-    assert _ks_uniform(mu_pit(out, r["ybar"], v_prev, r["mu_prior"], drop_tau=True, lam_prev=lam)) < ALPHA
+    assert _ks_uniform(theta_pit(out, r["ybar"], v_theta, swap=True, lam_prev=lam)) < ALPHA
+    assert _ks_uniform(theta_pit(out, r["ybar"], v, lam_prev=lam)) < ALPHA  # theta given the sigma_j^2 kept, not before
+    assert _ks_uniform(mu_pit(out, r["ybar"], v, r["mu_prior"], lam_prev=lam)) > ALPHA
+    assert _ks_uniform(mu_pit(out, r["ybar"], v, r["mu_prior"], drop_tau=True, lam_prev=lam)) < ALPHA
     if lam is not None:  # heavy tails: leaving the lambda_j out of theta's prior variance is caught where they
-        # matter, in the draws whose lambda_j (of the sweep before: a selection that keeps U uniform) is small
+        # matter, in the groups whose lambda_j is small
         small = lam < 0.5
         assert small.sum() > 500
         assert _ks_uniform(u[small]) > ALPHA
-        assert _ks_uniform(theta_pit(out, r["ybar"], v_prev)[small]) < ALPHA
+        assert _ks_uniform(theta_pit(out, r["ybar"], v_theta)[small]) < ALPHA
+
+
+def pair_target(a, b, n, r, t):
+    """p(sigma^2) ∝ (sigma^2)^(-(a/2 + 1)) exp(-b / (2 sigma^2)) N(r | 0, t + sigma^2 / n) on a grid of log sigma^2,
+    as (grid of sigma^2, CDF): the distribution of sigma_j^2 with theta_j integrated out (a = nu + n_j - 1,
+    b = nu s^2 + M2_j, r = ybar_j - c_j, t = the prior variance of theta_j). Written here from its definition:
+    scipy.stats.invgamma(a/2, scale=b/2) for the first part (BDA3 Appendix A), scipy.stats.norm for the second,
+    normalised by the trapezoid rule over log sigma^2 (the Jacobian sigma^2 included)."""
+    u = np.linspace(-25.0, 25.0, 400_001)
+    x = np.exp(u)
+    logf = stats.invgamma.logpdf(x, a=a / 2.0, scale=b / 2.0) + stats.norm.logpdf(r, scale=np.sqrt(t + x / n)) + u
+    f = np.exp(logf - logf.max())
+    cdf = np.concatenate([[0.0], np.cumsum((f[1:] + f[:-1]) / 2.0 * np.diff(u))])
+    return x, cdf / cdf[-1]
+
+
+def test_the_joint_move_of_sigma_and_theta_keeps_its_target():
+    # Markov test: chains started from exact draws of p(sigma_j^2, theta_j | rest) (sigma_j^2 by inverting the
+    # CDF of pair_target, theta_j from its normal conditional, BDA3 eq. (5.17)) must still follow it after three
+    # moves (kernel.pair_step), the rest held fixed. The state puts mu three of the groups' spreads away from them
+    # and tau small, so that the normal factor N(ybar_j | c_j, t_j + sigma_j^2 / n_j) shapes the target; a move
+    # that ignored it (accepting every proposal) would leave the proposal's own law, which is rejected below.
+    model = Model(nu=NuFixed(3.0))
+    p = dyestuff_problem(model)
+    d = p.data
+    J, chains = p.J, 3000
+    rng = np.random.default_rng(20261203)
+    s2, eta, mu = 0.4, np.log(0.15), float(np.mean(p.ybar)) + 3.0 * float(np.std(p.ybar))
+    lam = LAM_FIXED
+    nu = 3.0
+    a = nu + p.n - 1.0
+    b = nu * s2 + p.m2
+    r = p.ybar - mu
+    t = np.exp(2 * eta) / lam
+    laws = [pair_target(a[j], b[j], p.n[j], r[j], t[j]) for j in range(J)]
+    wk = kernel.make_work(d)
+    wk.inv_lam[:] = 1.0 / lam
+    sig_end, th_end = np.empty((chains, J)), np.empty((chains, J))
+    for c in range(chains):
+        sig0 = np.array([np.interp(rng.random(), cdf, x) for x, cdf in laws])
+        v0 = sig0 / p.n
+        th0 = (mu * v0 + p.ybar * t) / (v0 + t) + np.sqrt(v0 * t / (v0 + t)) * rng.standard_normal(J)
+        st = start_state(p, eta=eta, s2=s2, nu_idx=0, sigma2=sig0)
+        st.scalars[kernel.MU] = mu
+        st.theta[:] = th0
+        st.lam[:] = lam
+        kernel.fill_v(d, st.scalars, st.sigma2, wk.v)  # as a sweep starts: v_j = sigma_j^2 / n_j
+        for _ in range(3):
+            kernel.pair_step(rng, d, st, wk)
+        sig_end[c], th_end[c] = st.sigma2, st.theta
+        assert np.array_equal(wk.v, st.sigma2 / p.n)  # the move keeps v_j = sigma_j^2 / n_j for what follows
+    for j, (x, cdf) in enumerate(laws):
+        u = np.interp(sig_end[:, j], x, cdf)
+        assert _ks_uniform(u) > ALPHA / J, j
+        v = sig_end[:, j] / p.n[j]
+        m = (mu * v + p.ybar[j] * t[j]) / (v + t[j])
+        assert _ks_uniform(stats.norm.cdf(th_end[:, j], loc=m, scale=np.sqrt(v * t[j] / (v + t[j])))) > ALPHA / J, j
+    # power: the proposal's own law (the move without its acceptance step) is rejected for every group
+    for j in range(J):
+        wrong = stats.invgamma.cdf(sig_end[:, j], a=a[j] / 2.0, scale=b[j] / 2.0)
+        assert _ks_uniform(wrong) < ALPHA, j
 
 
 def run_block_b(theta, s2, nu_idx, *, draws, seed, model):

@@ -81,13 +81,19 @@ def test_defaults_meet_the_targets_and_keep_the_outlier_apart(runs):
 
 
 def test_the_normal_model_is_dragged(runs):
-    # the contrast that motivates the default: the normal model pulls the outlier halfway in, its bias
-    # interval reaches zero, and mu moves toward the outlier
+    # the contrast that motivates the default: under the normal model the outlier drags the others. Its posterior
+    # takes the lab in by widening tau (about 0.93 against the heavy model's 0.08, measured at seeds 2 and 3 with
+    # targets met), so every other lab is pulled less toward a mu that itself moves toward the outlier. (Its other
+    # mode, the lab pulled halfway in with tau near 0.5, is where chains that had not converged sat: R-hat of tau
+    # 1.47 and exit 3 before the joint move of sigma_j and theta_j; the converged runs agree on the wide tau.)
     codes, tables, summaries, _ = runs
     t = tables["normal"]
-    lab = t[t.group == OUTLIER].iloc[0]
-    assert lab.shrink_realised > 0.2
-    assert summaries["normal"]["hyperparameters"]["mu"]["mean"] > summaries["heavy"]["hyperparameters"]["mu"]["mean"]
+    hyper = {b: summaries[b]["hyperparameters"] for b in ("heavy", "normal")}
+    assert hyper["normal"]["tau"]["mean"] > 5 * hyper["heavy"]["tau"]["mean"]
+    assert hyper["normal"]["mu"]["mean"] > hyper["heavy"]["mu"]["mean"]
+    others = t[t.group != OUTLIER]
+    heavy_others = tables["heavy"][tables["heavy"].group != OUTLIER]
+    assert others.shrink_weight.median() < 0.5 * heavy_others.shrink_weight.median()  # the others pulled less
     assert "outlying" not in t  # the normal model has no tail weights
 
 
