@@ -106,6 +106,7 @@ def _check_tables(res, lines, extra=lambda j: []):
     return head
 
 
+# at 1e15 two neighbouring doubles are 0.125 apart, so the noise there is 100 times wider (sd 30) to stay data
 @pytest.fixture(scope="module", params=[(1e12, 1.0), (1e15, 100.0), (0.0, 1e-9)], ids=["1e12", "1e15", "1e-9"])
 def plain(request):
     offset, scale = request.param
