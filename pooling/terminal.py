@@ -5,12 +5,14 @@ What it follows: the interval level (columns named by it), --best (best first), 
 (decision columns and a line each, naming the few groups on the smaller sides), the interlaboratory signals when
 the groups are labs, the number rules of report/numbers.py (decimals from the data's own spread, no scientific
 notation for ordinary numbers, probabilities whose ends are told apart), estimates without n, and a missed-targets
-line that says what to do.
+line that says what to do. Its tables are laid out from the cells they print, so no two cells touch whatever the
+magnitude (1e15 or 1e-9); a long label is clipped in a table so the rows stay told apart, and named in full in a line.
 """
 
 from __future__ import annotations
 
 import sys
+import unicodedata
 
 import numpy as np
 
@@ -19,6 +21,9 @@ from .report.numbers import Values, ess, plural, prob, rerun_advice, rhat, sig, 
 
 MAX_ROWS = 12
 NAMED = 5  # names listed on a side of a decision before "and N more"
+LABEL_CAP = 40  # the widest a group's label may make the group column
+LEVEL_CAP = 24  # the same for a predictor's level column
+GAP = "  "  # between two columns: the least that keeps two numbers apart
 
 
 class Numbers(Values):
@@ -32,9 +37,63 @@ def _weight(x) -> str:
     return "-" if x is None or not np.isfinite(x) else f"{x:.2f}"
 
 
-def _clip(label: str, width: int = 24) -> str:
-    label = str(label).replace("\n", " ").replace("\r", " ").replace("\t", " ")
-    return label if len(label) <= width else label[: width - 1] + "…"
+def _one_line(label) -> str:
+    """A label as it may be printed: on one line (the readers keep newlines and tabs inside quoted labels)."""
+    return str(label).replace("\n", " ").replace("\r", " ").replace("\t", " ")
+
+
+def _fit_labels(labels, cap: int) -> list[str]:
+    """Labels for a table column at most `cap` characters wide. A longer label keeps its start and its end around an
+    ellipsis, because labels of one set often differ only at the end ('... et d essais L05', '... L07'); the split
+    moves until the labels shown are told apart, and when no split at `cap` does that, they are shown whole (a wide
+    column is better than two rows no one can tell apart). Prose lines name groups with _one_line, never clipped."""
+    flat = [_one_line(x) for x in labels]
+    if all(len(x) <= cap for x in flat):
+        return flat
+    distinct = len(set(flat))
+    first = max(1, cap // 3)
+    for tail in [*range(first, cap - 1), *range(first - 1, 0, -1)]:
+        shown = [x if len(x) <= cap else x[: cap - 1 - tail] + "…" + x[-tail:] for x in flat]
+        if len(set(shown)) == distinct:
+            return shown
+    return flat
+
+
+def _wide(text: str) -> int:
+    """The columns a text takes in a terminal: East Asian wide and full-width characters two, combining marks none
+    (so a table of labels such as '東京' or 'Zu\u0308rich' stays aligned)."""
+    return sum(0 if unicodedata.combining(ch) else 2 if unicodedata.east_asian_width(ch) in "WF" else 1 for ch in text)
+
+
+def _pad(text: str, width: int, align: str) -> str:
+    fill = " " * max(0, width - _wide(text))
+    return text + fill if align == "<" else fill + text
+
+
+def _lay_out(cols, rows, head: bool = True) -> list[str]:
+    """Rows of cells in columns as wide as their header and their widest cell, GAP between columns, so no two
+    cells touch whatever the numbers' magnitude. `cols`: (header, align) with align '<', '>' or 'to' (cells are
+    (low, high) pairs written 'low to high' with the lows right-aligned and the highs left-aligned, so that every
+    'to' lines up); a row None is the '...' between the first and the last rows."""
+    cells = [r for r in rows if r is not None]
+    pair = {
+        i: (max([_wide(r[i][0]) for r in cells], default=0), max([_wide(r[i][1]) for r in cells], default=0))
+        for i, (_, a) in enumerate(cols)
+        if a == "to"
+    }
+
+    def text(c, i):
+        return c if i not in pair else f"{_pad(c[0], pair[i][0], '>')} to {_pad(c[1], pair[i][1], '<')}"
+
+    body = [None if r is None else [text(c, i) for i, c in enumerate(r)] for r in rows]
+    widths = [
+        max([_wide(h) if head else 0] + [_wide(r[i]) for r in body if r is not None]) for i, (h, _) in enumerate(cols)
+    ]
+
+    def line(row):
+        return GAP.join(_pad(c, wd, "<" if a == "<" else ">") for c, (_, a), wd in zip(row, cols, widths)).rstrip()
+
+    return ([line([h for h, _ in cols])] if head else []) + ["..." if r is None else line(r) for r in body]
 
 
 def _side_line(t, col: str, sides: tuple[str, ...], what: str, decide_at: float, noun: str) -> str:
@@ -48,7 +107,7 @@ def _side_line(t, col: str, sides: tuple[str, ...], what: str, decide_at: float,
         c = counts[s]
         text = f"{plural(c, noun)} {s}" if i == 0 else f"{whole(c)} {s}"
         if 0 < c <= NAMED and s != biggest:
-            text += " (" + ", ".join(_clip(x, 20) for x in t.loc[values == s, "group"].tolist()) + ")"
+            text += " (" + ", ".join(_one_line(x) for x in t.loc[values == s, "group"].tolist()) + ")"
         bits.append(text)
     return f"{what}: " + ", ".join(bits) + f"; a side needs a probability of at least {decide_at:g}"
 
@@ -81,17 +140,17 @@ def print_results(res, out, stream=None) -> None:
     )
     w(f"data: {data}; {run['chains']} chains x {run['draws_per_chain']} draws, seed {run['seed']}{mode}")
     w()
-    head = (
-        f"{'':8}{'median':>14}{lvl + ' interval':>31}{'mean':>14}{'sd':>12}{'R-hat':>8}{'bulk ESS':>10}{'tail ESS':>10}"
-    )
-    w(head)
+    cols = [("", "<"), ("median", ">"), (f"{lvl} interval", "to"), ("mean", ">"), ("sd", ">"), ("R-hat", ">")]
+    cols += [("bulk ESS", ">"), ("tail ESS", ">")]
+    hyper = []
     for name, s in res.hyper.items():
         f = (lambda x, extra=0: sig(x, 4, dash="-")) if name == "nu" else num
-        interval = f"{f(s['low'])} to {f(s['high'])}"
-        w(
-            f"{name:8}{f(s['median']):>14}{interval:>31}{f(s['mean']):>14}{f(s['sd'], 1):>12}"
-            f"{rhat(s['rhat'], '-'):>8}{ess(s['bulk_ess'], '-'):>10}{ess(s['tail_ess'], '-'):>10}"
+        hyper.append(
+            [name, f(s["median"]), (f(s["low"]), f(s["high"])), f(s["mean"]), f(s["sd"], 1), rhat(s["rhat"], "-")]
+            + [ess(s["bulk_ess"], "-"), ess(s["tail_ess"], "-")]
         )
+    for line in _lay_out(cols, hyper):
+        w(line)
     if res.tail is not None:
         tl = res.tail
         median = "normal" if not np.isfinite(tl["median_df"]) else f"{tl['median_df']:g}"
@@ -101,7 +160,7 @@ def print_results(res, out, stream=None) -> None:
             else f"df median {median}, P(normal) {prob(tl['p_normal'], '-')}"
         )
         flagged = tl["outlying"]
-        names = ", ".join(_clip(x, 20) for x in flagged[:5]) + (" ..." if len(flagged) > 5 else "")
+        names = ", ".join(_one_line(x) for x in flagged[:5]) + (" ..." if len(flagged) > 5 else "")
         w(f"heavy tails: {df_txt}; {plural(len(flagged), noun)} flagged outlying" + (f": {names}" if flagged else ""))
     if res.predictors is not None:
         print_predictors(res, num, lvl, w)
@@ -113,19 +172,19 @@ def print_results(res, out, stream=None) -> None:
     rows = order if len(order) <= MAX_ROWS else np.concatenate([order[: MAX_ROWS // 2], order[-MAX_ROWS // 2 :]])
     lo, hi = res.col("theta_low"), res.col("theta_high")
     known = st.kind == "known"
-    cols = [(noun, 24, "<"), ("n", 7, ">")] if not known else [(noun, 24, "<")]
+    cols = [(noun, "<"), ("n", ">")] if not known else [(noun, "<")]
     if "level" in t:
-        cols.insert(1, ("level", 14, "<"))
-    cols += [("own mean", 14, ">"), ("posterior", 14, ">"), (f"{lvl} interval", 31, ">")]
-    cols += [("bias", 12, ">"), ("z", 8, ">")] if o.interlab else [("shrink", 8, ">"), ("P(best)", 8, ">")]
+        cols.insert(1, ("level", "<"))
+    cols += [("own mean", ">"), ("posterior", ">"), (f"{lvl} interval", "to")]
+    cols += [("bias", ">"), ("z", ">")] if o.interlab else [("shrink", ">"), ("P(best)", ">")]
     if o.threshold is not None:
-        cols.append((f"vs {o.threshold:g}", 11, ">"))
+        cols.append((f"vs {o.threshold:g}", ">"))
     if o.limits:
-        cols.append(("limits", 11, ">"))
+        cols.append(("limits", ">"))
     if o.interlab and o.allowed_bias is not None:
-        cols.append(("bias side", 11, ">"))
+        cols.append(("bias side", ">"))
     if "outlying" in t:
-        cols.append(("outlying", 9, ">"))
+        cols.append(("outlying", ">"))
     w()
     half = MAX_ROWS // 2
     cut = "" if len(order) <= MAX_ROWS else f"; the first {half} and the last {half} of {whole(len(order))}"
@@ -138,16 +197,18 @@ def print_results(res, out, stream=None) -> None:
             + " is best; shrink: the weight "
             f"of the pooled mean in the estimate, 0 own mean to 1 pooled mean){cut}"
         )
-    w("".join(f"{name:{align}{width}}" for name, width, align in cols))
+    labels = _fit_labels([t["group"].iat[j] for j in rows], LABEL_CAP)
+    levels = _fit_labels([t["level"].iat[j] for j in rows], LEVEL_CAP) if "level" in t else None
+    table = []
     for i, j in enumerate(rows):
         if len(order) > MAX_ROWS and i == MAX_ROWS // 2:
-            w("...")
-        cells = [_clip(t["group"].iat[j])]
-        if "level" in t:
-            cells.append(_clip(t["level"].iat[j], 13))
+            table.append(None)
+        cells = [labels[i]]
+        if levels is not None:
+            cells.append(levels[i])
         if not known:
             cells.append(whole(t["n"].iat[j], "-").replace(",", ""))
-        cells += [num(t["raw_mean"].iat[j]), num(t["theta_mean"].iat[j]), f"{num(t[lo].iat[j])} to {num(t[hi].iat[j])}"]
+        cells += [num(t["raw_mean"].iat[j]), num(t["theta_mean"].iat[j]), (num(t[lo].iat[j]), num(t[hi].iat[j]))]
         if o.interlab:
             z = t["z_score"].iat[j]
             cells += [num(t["bias_mean"].iat[j]), f"{z:.2f}" if np.isfinite(z) else "-"]
@@ -161,7 +222,9 @@ def print_results(res, out, stream=None) -> None:
             cells.append(str(t["bias_side"].iat[j]))
         if "outlying" in t:
             cells.append("yes" if t["outlying"].iat[j] else "")
-        w("".join(f"{c:{align}{width}}" for c, (_, width, align) in zip(cells, cols)))
+        table.append(cells)
+    for line in _lay_out(cols, table):
+        w(line)
     if o.threshold is not None:
         w(
             _side_line(
@@ -177,7 +240,7 @@ def print_results(res, out, stream=None) -> None:
 
         def few(names):
             return (
-                f" ({', '.join(_clip(x, 20) for x in names[:NAMED])}{' ...' if len(names) > NAMED else ''})"
+                f" ({', '.join(_one_line(x) for x in names[:NAMED])}{' ...' if len(names) > NAMED else ''})"
                 if names
                 else ""
             )
@@ -204,7 +267,7 @@ def print_results(res, out, stream=None) -> None:
         worst = diag["missed"][0] if diag["missed"] else {}
         what = worst.get("name", "")
         if "group" in worst:
-            what += f" of {_clip(worst['group'], 20)}"
+            what += f" of {_one_line(worst['group'])}"
         bulk = worst.get("bulk_ess")
         w(
             f"diagnostics targets MISSED for {plural(diag['missed_count'], 'quantity', 'quantities')} after "
@@ -228,24 +291,25 @@ def print_predictors(res, num: Numbers, lvl: str, w) -> None:
     pr = res.predictors
     w()
     w(f"why groups differ (group-level predictors; mu is {pr['mu_means']}):")
-    for c in pr["coefficients"]:
-        extra = 1 if c["kind"] == "category" else 2
-        w(
-            f"  {_clip(c['name'], 30):32}{num(c['mean'], extra):>12}   {lvl} interval "
-            f"{num(c['low'], extra)} to {num(c['high'], extra)}   P(> 0) {prob(c['p_above_0'])}"
-        )
     ref = {c["column"]: c["reference"] for c in pr["categories"]}
     more = [c for c in pr["contrasts"] if c["b"] != ref[c["column"]]]
-    for c in more[:10]:
-        w(
-            f"  {_clip(c['column'] + ': ' + c['a'] + ' vs ' + c['b'], 30):32}{num(c['mean'], 1):>12}   {lvl} interval "
-            f"{num(c['low'], 1)} to {num(c['high'], 1)}   P(> 0) {prob(c['p_above_0'])}"
-        )
+    # (name, mean, low, high, P(> 0), extra decimals): each effect, then the differences between two other levels
+    lines = [(c["name"], c, 1 if c["kind"] == "category" else 2) for c in pr["coefficients"]]
+    lines += [(f"{c['column']}: {c['a']} vs {c['b']}", c, 1) for c in more[:10]]
+    names = _fit_labels([name for name, _, _ in lines], LABEL_CAP)
+    rows = [
+        ["", name, num(c["mean"], extra), f"{lvl} interval", (num(c["low"], extra), num(c["high"], extra))]
+        + ["P(> 0)", prob(c["p_above_0"])]
+        for name, (_, c, extra) in zip(names, lines)
+    ]
+    cols = [("", "<"), ("", "<"), ("", ">"), ("", "<"), ("", "to"), ("", "<"), ("", ">")]
+    for line in _lay_out(cols, rows, head=False):
+        w(line)
     if len(more) > 10:
         w(f"  ... {len(more) - 10} more differences between levels in summary.json")
     if pr["consensus"]:
         shown = "; ".join(
-            f"{_clip(c['level'], 16)} {num(c['mean'])} ({num(c['low'])} to {num(c['high'])})"
+            f"{_one_line(c['level'])} {num(c['mean'])} ({num(c['low'])} to {num(c['high'])})"
             for c in pr["consensus"][:6]
         )
         w(f"consensus value by level ({lvl} intervals): {shown}" + (" ..." if len(pr["consensus"]) > 6 else ""))
