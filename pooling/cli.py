@@ -781,7 +781,8 @@ def _add_store_parsers(sub):
     p.add_argument(
         "--replace",
         action="store_true",
-        help="replace the batch of the same name, or take back content that was withdrawn",
+        help="replace the batch of the same name, or take back content that was withdrawn (the ledger keeps the "
+        "old record, and a withdrawn batch's time and reason of withdrawal)",
     )
     _add_text_format_options(p)
     p.add_argument(
@@ -791,6 +792,13 @@ def _add_store_parsers(sub):
         help="a group-level column to keep with the batch (a method, an instrument, an age): one value per "
         "group, the same in every batch; refit uses it with --category COL or --numeric COL. Every "
         "active batch keeps the same columns. Repeat for more",
+    )
+    p.add_argument(
+        "--same-quantity",
+        action="store_true",
+        help="the file's value column (or group column) has a name no active batch uses, but holds the same "
+        "quantity (grouping): the column was only renamed. Without it such a batch is refused, as a delivery "
+        "of another quantity",
     )
     p.add_argument("--quiet", action="store_true", help="print nothing on success")
     p = sub.add_parser("batches", help="list the ledger of a store: every batch, its status, and the recorded runs")
@@ -897,6 +905,7 @@ def cmd_ingest(args, argv) -> int:
         thousands=args.thousands,
         decimal="," if args.decimal_comma else None,
         columns=columns,
+        same_quantity=args.same_quantity,
     )
     if not args.quiet:
         if created:

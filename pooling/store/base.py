@@ -146,16 +146,30 @@ class BatchStore(abc.ABC):
 
     @abc.abstractmethod
     def add_batch(
-        self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None, replace: bool = False
+        self,
+        new: NewBatch,
+        labels,
+        n,
+        mean,
+        mean_lo,
+        m2,
+        *,
+        columns: dict | None = None,
+        replace: bool = False,
+        same_quantity: bool = False,
     ) -> BatchInfo:
         """Add one batch, its per-group statistics and its group-level columns (`columns`: name -> one text value
         per group) in one transaction.
 
-        Refuses (NothingNew) content that is already active, and (InputError) a name in use by
-        other content unless `replace`, in which case the old record is kept with status
-        'replaced'. Content that was withdrawn comes back only with `replace`. Refuses (InputError)
-        group-level columns other than the active batches keep, and a group whose value in a column
-        differs from the one an active batch holds (the batch it replaces aside).
+        Refuses (NothingNew) content that is already active, or statistics (every group's label, n,
+        mean and M2, exactly as stored) that equal an active batch's: the same delivery in another
+        file. Refuses (InputError) a name in use by other content, or by withdrawn content, unless
+        `replace`, in which case the old record is kept with status 'replaced' (a withdrawn one keeps
+        the withdrawal's time and reason in its note). Content that was withdrawn comes back only with
+        `replace`. Refuses (InputError) a value or group column name that no active batch uses unless
+        `same_quantity` (the column was only renamed), group-level columns other than the active
+        batches keep, and a group whose value in a column differs from the one an active batch holds
+        (the batch it replaces aside, in every check).
         """
 
     @abc.abstractmethod

@@ -45,6 +45,7 @@ def ingest_file(
     thousands: str | None = None,
     decimal: str | None = None,
     columns=(),
+    same_quantity: bool = False,
     busy_seconds: float = DEFAULT_BUSY_SECONDS,
 ) -> tuple[BatchInfo, bool]:
     """Read one delivery (long table: a group and a value column) and add it to the store as one batch.
@@ -53,6 +54,7 @@ def ingest_file(
     for --category and --numeric); a refit uses them as predictors when asked. Returns the ledger line and
     whether the store was created. The file is read and checked before the store is touched, and the batch
     is written in one transaction (refused whole when its group-level columns disagree with the store's).
+    `same_quantity`: the group or value column was only renamed; accept a name no active batch uses.
     """
     from ..stats import check_unicode_twins, read_table, unit_hint
 
@@ -100,6 +102,7 @@ def ingest_file(
             stats.m2,
             columns={name: list(v) for name, v in stats.columns.items()},
             replace=replace,
+            same_quantity=same_quantity,
         )
         return info, st.created
     finally:

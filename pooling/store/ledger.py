@@ -25,6 +25,13 @@ Tables (schema version 3; `pooling_store` holds the version under the key 'forma
                    final state (JSON) with its state_sum
     run_groups     per run and position: the results the next run's change report compares against
 
+Every active batch is a distinct delivery of one quantity: an ingest whose per-group statistics equal an active
+batch's exactly (the same delivery in another file: other line endings, CSV and Parquet) is refused as nothing new
+(`_check_same_statistics`; PostgreSQL locks on the statistics' checksum, so two such ingests never pass side by
+side), and one whose value or group column has a name no active batch uses is refused unless told the column was
+only renamed (`_check_quantity`). Replacing or taking back a withdrawn batch keeps the withdrawal's time and
+reason in the replaced line's note (covered by its line sum; no schema change).
+
 Group-level columns are one value per group across the active batches: an ingest whose batch gives a group
 another value than an active batch holds, or keeps other columns than the active batches do, is refused in
 its own transaction (`_check_columns`). PostgreSQL keeps such checks apart from each other with an advisory
@@ -180,6 +187,12 @@ def _columns_of(rows, groups) -> dict | None:
     return out
 
 
+def _by_label(labels, n, mean, mean_lo, m2) -> dict:
+    """One batch's statistics as {label: (n, and the float64 bits of mean, mean_lo, M2)}: equal exactly or not."""
+    bits = [C.stored_floats(x).view(np.uint64).tolist() for x in (mean, mean_lo, m2)]
+    return {str(lab): (int(k), *b) for lab, k, *b in zip(labels, np.asarray(n).tolist(), *bits)}
+
+
 def _by_batch(rows) -> dict:
     out: dict = {}
     for r in rows:
@@ -241,6 +254,9 @@ class SqlLedger(BatchStore):
 
     def _lock_columns(self, tx, exclusive: bool) -> None:
         """Keep the group-level column checks of concurrent ingests apart (SQLite's write lock does it already)."""
+
+    def _lock_quantity(self, tx) -> None:
+        """Keep apart ingests into a store without active batches, which choose its quantity (SQLite: done)."""
 
     # -- messages ------------------------------------------------------------------------------
 
@@ -346,7 +362,17 @@ class SqlLedger(BatchStore):
     # -- the interface -------------------------------------------------------------------------
 
     def add_batch(
-        self, new: NewBatch, labels, n, mean, mean_lo, m2, *, columns: dict | None = None, replace: bool = False
+        self,
+        new: NewBatch,
+        labels,
+        n,
+        mean,
+        mean_lo,
+        m2,
+        *,
+        columns: dict | None = None,
+        replace: bool = False,
+        same_quantity: bool = False,
     ) -> BatchInfo:
         labels = [str(x) for x in labels]
         n = np.asarray(n, dtype=np.int64)
@@ -359,8 +385,10 @@ class SqlLedger(BatchStore):
         when = now_utc()
         ssum = C.stats_sum(labels, n, mean, mean_lo, m2, columns)
         sel = f"SELECT {cols(LINE_COLS)} FROM batches"
+        # the statistics' own sum (no columns) keeps two ingests of one delivery in two files apart
+        bare = C.stats_sum(labels, n, mean, mean_lo, m2)
         with self._write() as tx:
-            self._lock(tx, [f"name:{new.name}", f"content:{new.sha256}"])
+            self._lock(tx, [f"name:{new.name}", f"content:{new.sha256}", f"stats:{bare}"])
             same = tx.one(f"{sel} WHERE sha256 = ? AND status = 'active'", (new.sha256,))
             if same is not None:
                 b = self._info(same)
@@ -370,12 +398,7 @@ class SqlLedger(BatchStore):
                 )
             current = tx.one(f"{sel} WHERE name = ? AND status != 'replaced'", (new.name,))
             if current is not None and not replace:
-                b = self._info(current)
-                raise InputError(
-                    f"bad input: a batch named '{new.name}' is in the store '{self.path}' already "
-                    f"({b.status}, {b.rows} rows, sha256 {b.sha256[:12]}) with other content; "
-                    "name this one with --batch NAME, or pass --replace to replace it"
-                )
+                raise InputError(self._name_in_use(new, self._info(current)))
             gone = tx.one(f"{sel} WHERE sha256 = ? AND status = 'withdrawn'", (new.sha256,))
             if gone is not None and not replace:
                 b = self._info(gone)
@@ -383,13 +406,27 @@ class SqlLedger(BatchStore):
                     f"bad input: the content of '{new.source}' was withdrawn as batch '{b.name}' at "
                     f"{b.changed_at}; pass --replace to take it back"
                 )
+            replacing = None if current is None else current[0]
+            self._check_same_statistics(tx, new, labels, n, mean, mean_lo, m2, replacing)
             self._lock_columns(tx, exclusive=bool(columns))
-            self._check_columns(tx, new, labels, columns, None if current is None else current[0])
+            if not same_quantity:
+                self._check_quantity(tx, new, replacing)
+            self._check_columns(tx, new, labels, columns, replacing)
             swapped = ()
             if current is not None:
-                swapped = self._restate(
-                    tx, current, "replaced", when, f"replaced by a new delivery of the same name at {when}"
-                )
+                b = self._info(current)
+                if b.status == "withdrawn":
+                    # the withdrawal's time and reason stay in the ledger, in the note (covered by the line sum)
+                    why = f": {b.note}" if b.note else " (no reason given)"
+                    taken = (
+                        f"taken back at {when} (the same content ingested again)"
+                        if b.sha256 == new.sha256
+                        else f"replaced by a new delivery of the same name at {when}"
+                    )
+                    note = f"withdrawn at {b.changed_at}{why}; {taken}"
+                else:
+                    note = f"replaced by a new delivery of the same name at {when}"
+                swapped = self._restate(tx, current, "replaced", when, note)
             bid = self._next_id(tx, "batches")
             fields = (
                 bid,
@@ -432,6 +469,104 @@ class SqlLedger(BatchStore):
             self._bump_head(tx, batch=(1, added, removed))
             _test_pause("before-commit")
         return self._info((*fields, lsum))
+
+    def _name_in_use(self, new: NewBatch, b: BatchInfo) -> str:
+        """The refusal of a name held by a batch that is active or withdrawn (without --replace)."""
+        if b.status == "withdrawn":
+            why = f"with the reason {b.note!r}" if b.note else "with no reason given"
+            if b.sha256 == new.sha256:
+                return (
+                    f"bad input: '{new.source}' holds the same content as the batch '{new.name}', which was "
+                    f"withdrawn from the store '{self.path}' at {b.changed_at} {why}; pass --replace to take it "
+                    "back (the ledger keeps the withdrawal's time and reason)"
+                )
+            return (
+                f"bad input: a batch named '{new.name}' was withdrawn from the store '{self.path}' at "
+                f"{b.changed_at} {why}, with other content ({b.rows} rows, sha256 {b.sha256[:12]}); name this one "
+                "with --batch NAME, or pass --replace to replace it (the ledger keeps the withdrawal's time and reason)"
+            )
+        return (
+            f"bad input: a batch named '{new.name}' is in the store '{self.path}' already "
+            f"({b.status}, {b.rows} rows, sha256 {b.sha256[:12]}) with other content; "
+            "name this one with --batch NAME, or pass --replace to replace it"
+        )
+
+    def _check_same_statistics(self, tx, new: NewBatch, labels, n, mean, mean_lo, m2, replacing) -> None:
+        """Refuse (NothingNew) a batch whose per-group statistics equal an active batch's exactly (the batch it
+        replaces aside): the same delivery in another file (other line endings, CSV and Parquet), whose second
+        ingest would count every measurement twice. Exact: labels, n and the float64 bits of mean, mean_lo and M2
+        as stored (the values stats_sum covers), groups in any order. The database finds the few active batches
+        with as many rows and groups that hold the first group's statistics; only those are read whole."""
+        if not len(labels):
+            return
+        found = tx.all(
+            f"SELECT b.id FROM batches b WHERE b.status = 'active' AND b.id <> ? AND b.{q('rows')} = ? "
+            f"AND b.{q('groups')} = ? AND EXISTS (SELECT 1 FROM batch_groups g WHERE g.batch_id = b.id AND g.label = ? "
+            "AND g.n = ? AND g.mean = ? AND g.mean_lo = ? AND g.m2 = ?) ORDER BY b.id",
+            (
+                -1 if replacing is None else replacing,
+                int(n.sum()),
+                len(labels),
+                labels[0],
+                int(n[0]),
+                float(mean[0]),
+                float(mean_lo[0]),
+                float(m2[0]),
+            ),
+        )
+        if not found:
+            return
+        mine = _by_label(labels, n, mean, mean_lo, m2)
+        for (bid,) in found:
+            rows = tx.all(f"SELECT {cols(GROUP_COLS)} FROM batch_groups WHERE batch_id = ? ORDER BY position", (bid,))
+            arrays = _stat_arrays(rows)
+            if arrays is None:  # a damaged row cannot equal anything; checkup names it
+                continue
+            if _by_label(*arrays[2:]) != mine:
+                continue
+            b = self._info(tx.one(f"SELECT {cols(LINE_COLS)} FROM batches WHERE id = ?", (bid,)))
+            raise NothingNew(
+                f"the statistics of '{new.source}' (every group's label, n, mean and M2) equal those of the "
+                f"active batch '{b.name}' (from '{b.source}', ingested {b.ingested_at}) exactly: the same "
+                "delivery in another file, whose measurements would count twice; nothing changed (if it is a "
+                f"new delivery, withdraw '{b.name}' first, or replace it with --batch '{b.name}' --replace)"
+            )
+
+    def _check_quantity(self, tx, new: NewBatch, replacing: int | None) -> None:
+        """Refuse (InputError, one line) a batch whose value column (or group column) has a name no active batch
+        uses (the batch it replaces aside): most likely a delivery of another quantity, or grouped otherwise.
+        `pooling ingest --same-quantity` skips this when a column was only renamed."""
+        sql = (
+            "SELECT group_column, value_column, max(id) FROM batches WHERE status = 'active' AND id <> ? "
+            "GROUP BY group_column, value_column"
+        )
+        skip = (-1 if replacing is None else replacing,)
+        held = tx.all(sql, skip)
+        if not held:
+            # nothing to compare with: the first quantity of the store is chosen by one ingest at a time
+            self._lock_quantity(tx)
+            held = tx.all(sql, skip)
+            if not held:
+                return
+        values = {v for _g, v, _i in held}
+        groups = {g for g, _v, _i in held}
+        if new.value_column in values and new.group_column in groups:
+            return
+        old_group, old_value, bid = max(held, key=lambda r: r[2])  # the latest active batch's names
+        differ = []  # (what, this batch's name, the store's)
+        if new.value_column not in values:
+            differ.append(("value", new.value_column, old_value))
+        if new.group_column not in groups:
+            differ.append(("group", new.group_column, old_group))
+        bname = tx.one("SELECT name FROM batches WHERE id = ?", (bid,))[0]
+        mine = " and ".join(f"the {what} column '{name}'" for what, name, _ in differ)
+        theirs = " and ".join(f"'{old}'" for _, _, old in differ)
+        raise InputError(
+            f"bad input in '{new.source}': {mine} {'is' if len(differ) == 1 else 'are'} named otherwise in the "
+            f"store '{self.path}' (its latest active batch '{bname}' has {theirs}); every active batch measures "
+            "one quantity on one kind of group; nothing was changed (ingest the right file, or pass "
+            "--same-quantity if the column was only renamed)"
+        )
 
     def _check_columns(self, tx, new: NewBatch, labels, columns: dict, replacing: int | None) -> None:
         """Refuse (InputError, one line) a batch whose group-level columns disagree with the active batches' (but

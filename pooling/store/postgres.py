@@ -5,14 +5,18 @@ command line never loads psycopg otherwise. The ledger's rules, its checksums an
 verifies are those of the SQLite store (`ledger.SqlLedger`); what differs is how writers meet:
 
 - each change is one READ COMMITTED transaction; before its checks, an ingest takes transaction-level
-  advisory locks on its batch name and its content hash (a withdraw on the name), so two jobs that
-  touch the same delivery run one after the other while different deliveries land side by side;
+  advisory locks on its batch name, its content hash and the checksum of its statistics (a withdraw
+  on the name), so two jobs that touch the same delivery (in one file or two) run one after the other
+  while different deliveries land side by side;
   the head row (SELECT ... FOR UPDATE) is locked only for its last update, just before COMMIT;
 - reads run in one REPEATABLE READ, READ ONLY transaction, a consistent snapshot that never waits;
 - lock waits end after the busy timeout (lock_timeout, 60 s): exit 6, nothing changed;
 - a batch that keeps group-level columns also takes an exclusive advisory lock on the store's columns before
   it compares its values with the active batches' (a batch without columns takes it shared), so two such
   checks never pass side by side on values the other is writing;
+- an ingest into a store without active batches (which chooses the store's value and group columns)
+  takes an exclusive advisory lock on the store's quantity and looks again, so two first deliveries
+  of different quantities never both land;
 - a store is the schema named after '#' in the store argument (default `pooling`), so several stores
   share one database; it is created, with every table, in one transaction by the first ingest, under
   an advisory lock that keeps two creators apart; its schema version is kept in `pooling_store`
@@ -305,6 +309,9 @@ class PgStore(SqlLedger):
             f"SELECT 1 FROM pg_advisory_xact_lock{how}(hashtextextended(?, 0))",
             (_key(self.location, "group-level columns"),),
         )
+
+    def _lock_quantity(self, tx) -> None:
+        tx.one("SELECT 1 FROM pg_advisory_xact_lock(hashtextextended(?, 0))", (_key(self.location, "quantity"),))
 
     def _next_id(self, tx, table: str) -> int:
         return int(tx.one(f"SELECT nextval(pg_get_serial_sequence('{table}', 'id'))")[0])
