@@ -322,3 +322,18 @@ def test_a_group_of_one_with_an_empty_sd_is_read_as_meant(tmp_path):
     path.write_text("g,n,mean,sd\nA,2,10.2,\nB,3,10.5,0.4\n")
     with pytest.raises(pooling.InputError, match=r"column 'sd', row 1: expected a finite number, found an empty cell"):
         pooling.from_summaries(path, "g", "n", "mean", "sd")
+
+
+def test_a_ranked_group_outside_the_limits_is_marked_as_such(fit20):
+    # Common practice: with specification limits, the group at the top of the order may be the one whose parts
+    # miss them (a diameter too large ranks "highest"); the ranking must not read as a recommendation of it.
+    res = compute(fit20, ReportOptions(lower=80.0, upper=105.0))
+    t = res.table
+    first = int(np.argmax(t["p_best"].to_numpy()))
+    assert t["limits_side"].iat[first] == "outside"  # the fixture's top group lies above 105
+    ranking = verdict(render(res, "t", None))
+    ranking = ranking[ranking.index("Most likely best") :]
+    assert f"{t['group'].iat[first]} (outside the limits)</strong>" in ranking
+    assert "With limits on both sides" in ranking
+    inside = verdict(render(compute(fit20, ReportOptions(lower=0.0, upper=1000.0)), "t", None))
+    assert "(outside the limits)" not in inside and "specification limits (above)" not in inside

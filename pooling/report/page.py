@@ -229,11 +229,16 @@ def _ranking_block(res: Results) -> str:
     pk = t["p_top_k"].to_numpy(dtype=float)
     best = np.argsort(-pb, kind="stable")[:3]
     first = best[0]
-    nxt = ", ".join(
-        f'{esc(label(t["group"].iat[j]))} <span class="p">{prob(pb[j])}</span>' for j in best[1:] if pb[j] > 0
-    )
+    # with specification limits, a group judged outside them is marked wherever the ranking names it: the top of
+    # the order is no recommendation for a group whose parts miss the limits
+    out = t["limits_side"].to_numpy() == "outside" if "limits_side" in t else np.zeros(J, dtype=bool)
+
+    def named(j) -> str:
+        return esc(label(t["group"].iat[j])) + (" (outside the limits)" if out[j] else "")
+
+    nxt = ", ".join(f'{named(j)} <span class="p">{prob(pb[j])}</span>' for j in best[1:] if pb[j] > 0)
     body = (
-        f"<p>Most likely best: <strong>{esc(label(t['group'].iat[first]))}</strong>, P(best) {prob(pb[first])}"
+        f"<p>Most likely best: <strong>{named(first)}</strong>, P(best) {prob(pb[first])}"
         + (f"; then {nxt}" if nxt else "")
         + ".</p>"
     )
@@ -241,8 +246,21 @@ def _ranking_block(res: Results) -> str:
         top = np.argsort(-pk, kind="stable")[:k]
         body += (
             f"<p>Likely top {k}, P(among the {k} best): "
-            + ", ".join(f'{esc(label(t["group"].iat[j]))} <span class="p">{prob(pk[j])}</span>' for j in top)
+            + ", ".join(f'{named(j)} <span class="p">{prob(pk[j])}</span>' for j in top)
             + ".</p>"
+        )
+    if out[best].any() or (k < J and out[np.argsort(-pk, kind="stable")[:k]].any()):
+        end = "highest" if o.best == "highest" else "lowest"
+        body += (
+            '<p class="note">The order ranks theta alone; the specification limits (above) decide which groups '
+            "meet them."
+            + (
+                f" With limits on both sides the {end} theta is rarely the aim: the order says only which group "
+                "sits furthest that way."
+                if o.lower is not None and o.upper is not None
+                else ""
+            )
+            + "</p>"
         )
     if pb[first] < 0.5:
         body += (
