@@ -441,6 +441,7 @@ def read_table_dask(
     dask, dd = _dask()
     files, kind = resolve(paths_or_glob, format)
     source = _show_input(paths_or_glob)
+    record = _file_record(files)
     enc = None
     try:
         if kind == "parquet":
@@ -456,9 +457,30 @@ def read_table_dask(
             ddf = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
             limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
             whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
-        return _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source)
+        return _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source, record)
     except UnicodeError as exc:  # a file (often not the first, whose encoding was detected) in another encoding
         raise InputError(_undecodable(files, enc, exc, detected=not encoding)) from None
+
+
+def _file_record(files: list[str]) -> list[dict]:
+    """What was read, for the run's record (summary.json data.files): each file's path, size and SHA-256 (a URL:
+    its address only). Two local files with the same bytes are refused: a delivery copied into the folder twice
+    would count every measurement twice."""
+    out: list[dict] = []
+    seen: dict[str, str] = {}
+    for f in files:
+        if "://" in f:
+            out.append({"path": f, "bytes": None, "sha256": None})
+            continue
+        sha = S._sha256_file(Path(f))
+        if sha in seen:
+            raise InputError(
+                f"bad input: '{f}' and '{seen[sha]}' hold the same bytes (sha256 {sha[:12]}): the same delivery "
+                "twice would count every measurement twice; remove one of them"
+            )
+        seen[sha] = f
+        out.append({"path": f, "bytes": os.path.getsize(f), "sha256": sha})
+    return out
 
 
 def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected: bool) -> str:
@@ -474,7 +496,7 @@ def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected:
     return S._encoding_message(local[0] if local else files[0], enc or "utf-8", exc)
 
 
-def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S.GroupStats:
+def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source, record) -> S.GroupStats:
     """The group statistics of the checked frame, computed on `scheduler`."""
     meta = pd.DataFrame(
         {
@@ -516,5 +538,5 @@ def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source) -> S
         mean_lo=lo * f,
         unit=top,
         source=source,
-        meta={"files": len(files), "format": kind},
+        meta={"files": len(files), "format": kind, "file_list": record},
     )

@@ -1562,6 +1562,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
     data = {
         "source": st.source,
         "file_sha256": st.file_sha256,
+        "files": st.meta.get("file_list"),  # several files (a folder, a glob): each one's path, size and SHA-256
         "statistics_sha256": st.fingerprint(),
         "groups": st.J,
         "measurements": float(st.N) if st.kind == "raw" else None,

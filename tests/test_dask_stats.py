@@ -120,7 +120,8 @@ def test_parquet_glob_split_into_many_partitions_near_1e12(tmp_path, cluster, mo
         path.unlink()
     monkeypatch.setattr(D, "_PARQUET_ROWS", 300)  # 3 row groups a partition: 12 partitions, odd tails
     got = D.read_table_dask(str(folder / "part-*.parquet"), "lab", "y", scheduler=cluster.scheduler_address)
-    assert got.meta == {"files": 4, "format": "parquet"}
+    assert {k: got.meta[k] for k in ("files", "format")} == {"files": 4, "format": "parquet"}
+    assert [f["path"] for f in got.meta["file_list"]] == sorted(str(f) for f in folder.glob("part-*.parquet"))
     _check_exact(got, _exact(texts))
 
 
@@ -222,3 +223,22 @@ def test_the_command_line_refuses_a_folder_of_summaries(tmp_path, run_cli):
     assert code == 2
     assert "reads measurements (--value COL)" in err and "Traceback" not in err
     assert not (tmp_path / "never").exists()
+
+
+def test_the_files_read_are_recorded_and_a_copied_file_is_refused(tmp_path):
+    # Nothing lost, nothing counted twice (common practice for a record of what was read): a folder's files are
+    # listed with their sizes and SHA-256 (hashlib, the same digest `sha256sum` prints), and a byte-identical copy
+    # among them is refused, naming both, instead of doubling every measurement it holds.
+    import hashlib
+    import shutil
+
+    folder = tmp_path / "deliveries"
+    _write_parts(folder, offset=10.0, seed=7, files=2, rows=40)
+    got = D.read_table_dask(folder, "lab", "y", scheduler="sync")
+    files = sorted(folder.glob("*.csv"))
+    assert got.meta["file_list"] == [
+        {"path": str(f), "bytes": f.stat().st_size, "sha256": hashlib.sha256(f.read_bytes()).hexdigest()} for f in files
+    ]
+    shutil.copy(files[0], folder / "zz-copy.csv")
+    with pytest.raises(InputError, match=r"zz-copy\.csv' and '.*part-00\.csv' hold the same bytes"):
+        D.read_table_dask(folder, "lab", "y", scheduler="sync")

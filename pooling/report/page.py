@@ -1156,6 +1156,15 @@ def _tails(res: Results, v, lvl: str, figs: dict) -> str:
 # laboratories
 
 
+def _files_read(files) -> str:
+    """Several files read (a folder, a glob): how many, and each one's name and SHA-256 (12 digits) up to 20."""
+    if not files:
+        return "– (not read from a file)"
+    shown = "; ".join(f"{f['path']} {(f['sha256'] or '–')[:12]}" for f in files[:20])
+    more = f"; and {len(files) - 20} more (summary.json data.files)" if len(files) > 20 else ""
+    return f"{plural(len(files), 'file')}: {shown}{more}"
+
+
 def _components_note(res: Results) -> str:
     """With group-level predictors: which fit the consensus value and the ISO 5725 components come from."""
     if res.predictors is None:
@@ -1645,7 +1654,7 @@ def _setup(res: Results, command) -> str:
     priors = "".join(f"<dt>{esc(k)}</dt><dd>{esc(val)}</dd>" for k, val in p.model.priors().items())
     kv = [
         ("source", st.source),
-        ("file SHA-256", st.file_sha256 or "– (not read from a file)"),
+        ("file SHA-256", st.file_sha256 or _files_read(st.meta.get("file_list"))),
         ("statistics SHA-256", st.fingerprint()),
         ("groups", whole(st.J)),
         ("measurements", whole(st.N) if st.kind == "raw" else "– (estimates with standard errors)"),
