@@ -108,7 +108,7 @@ def _nu_value(text: str, option: str) -> float:
     return x
 
 
-def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
+def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required: bool | None = None):
     if data:
         p.add_argument("data", help="CSV or Parquet file: one row per measurement (or per group, see below)")
         p.add_argument("--group", required=True, help="column holding the group label")
@@ -203,7 +203,7 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True):
     r.add_argument("--seed", type=int, help="seed for reproducible draws (default: fresh, recorded in summary.json)")
     r.add_argument("--threads", type=int, help="threads for the chains (default: min(chains, cores))")
     o = p.add_argument_group("output")
-    o.add_argument("--out", required=data, help="run folder to create")
+    o.add_argument("--out", required=data if out_required is None else out_required, help="run folder to create")
     o.add_argument("--replace", action="store_true", help="replace the run folder if it exists")
     o.add_argument("--quiet", action="store_true", help="no progress bar and no table")
 
@@ -821,7 +821,7 @@ def _add_store_parsers(sub):
         "the history so far) and record the run in the store",
     )
     p.add_argument("store", help=STORE_HELP)
-    _add_fit_options(p, data=False)
+    _add_fit_options(p, data=False, out_required=True)
     f = p.add_argument_group("store")
     f.add_argument(
         "--half-life",
