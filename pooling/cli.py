@@ -203,7 +203,9 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required
     r.add_argument("--seed", type=int, help="seed for reproducible draws (default: fresh, recorded in summary.json)")
     r.add_argument("--threads", type=int, help="threads for the chains (default: min(chains, cores))")
     o = p.add_argument_group("output")
-    o.add_argument("--out", required=data if out_required is None else out_required, help="run folder to create")
+    o.add_argument(  # refit checks it itself, after the store option (main() returns 2 rather than exit)
+        "--out", required=data, help="run folder to create" + (" (required)" if out_required else "")
+    )
     o.add_argument("--replace", action="store_true", help="replace the run folder if it exists")
     o.add_argument("--quiet", action="store_true", help="no progress bar and no table")
 
