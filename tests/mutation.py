@@ -53,7 +53,9 @@ TESTS: dict[str, list[str]] = {
         "tests/test_kernel_api.py",
         "tests/test_exact_shared.py",
         "tests/test_predictors_io.py",
+        "tests/test_predictors_kernel.py",
         "tests/test_conditionals.py",
+        "tests/test_model_checks.py",
     ],
     "pooling/posterior.py": [
         "tests/test_posterior_units.py",

@@ -201,3 +201,17 @@ def test_prepare_uses_classes_only_where_they_pay():
     table = kernel.prepare(np.repeat([3.0, 7.0], 40), grid)[0]
     # Source: definition of the table, sum_j lgamma(nu/2 + n_j/2), with math.lgamma as the reference
     assert abs(table[1] - 40 * (math.lgamma(2.0 + 1.5) + math.lgamma(2.0 + 3.5))) < 1e-12 * abs(table[1])
+
+
+def test_lgamma_table_of_down_weighted_sizes_is_its_definition():
+    # Source: the definition of the table, sum_j lgamma(nu_k/2 + n_j/2), with math.lgamma and math.fsum as the
+    # reference. Down-weighted (fractional) sizes take the group-by-group branch, which whole-number sizes never
+    # reach. Written for kernel.py:950 `lgamma(1.5 * (nu + n_j))` in that branch.
+    g = np.random.default_rng(12)
+    n = g.integers(2, 30, 200) * g.uniform(0.3, 1.0, 200)
+    grid = np.array([1.0, 2.5, 4.0, 30.0, 100.0])
+    table, layout = kernel.prepare(n, grid)
+    assert layout.tolist() == [-1]
+    for k, nu in enumerate(grid):
+        terms = [math.lgamma(0.5 * (nu + nj)) for nj in n]
+        assert abs(table[k] - math.fsum(terms)) <= 1e-12 * math.fsum(abs(t) for t in terms)

@@ -40,7 +40,8 @@ from pooling.model import Category, Normal, Numeric, build
 ALPHA = 1e-3
 
 
-def _problem(between="normal", mu=None, effects=None, tau=None):
+def _problem(between="normal", mu=None, effects=None, tau=None, alloc=True):
+    """The BCG trials with latitude and allocation as predictors (three coefficients), or latitude alone (one)."""
     t = frame()
     stats_ = pooling.from_estimates(t, "trial", "yi", "sei", group_columns=["ablat", "alloc"])
     kw = {}
@@ -50,7 +51,8 @@ def _problem(between="normal", mu=None, effects=None, tau=None):
         kw["effects"] = effects
     if tau is not None:
         kw["tau"] = tau
-    model = pooling.Model(within="known", between=between, predictors=(Numeric("ablat"), Category("alloc")), **kw)
+    predictors = (Numeric("ablat"), Category("alloc")) if alloc else (Numeric("ablat"),)
+    model = pooling.Model(within="known", between=between, predictors=predictors, **kw)
     return build(stats_, model)
 
 
@@ -73,14 +75,19 @@ def _Z(p):
     return np.column_stack([np.ones(p.J), p.data.X])
 
 
-@pytest.mark.parametrize("tau_prior", [None, "half-normal", "half-Cauchy"])
-def test_log_tau_density_with_predictors_is_the_gaussian_marginal(tau_prior):
+@pytest.mark.parametrize(
+    "tau_prior, alloc",
+    [(None, True), ("half-normal", True), ("half-Cauchy", True), (None, False)],
+    ids=["flat", "half-normal", "half-Cauchy", "latitude alone"],
+)
+def test_log_tau_density_with_predictors_is_the_gaussian_marginal(tau_prior, alloc):
     # Source: scipy.stats.multivariate_normal: y ~ N(Z m0, D + Z S0 Z') with both priors proper; times the prior
     # of tau (scipy.stats.halfnorm / halfcauchy, scale converted to internal units here) when one is given
     # (written for the mutant kernel.py:451 `1.5 * tau2 / ...` of the half-normal term, which a flat prior
-    # cannot see)
+    # cannot see). Latitude alone, the published model (one coefficient), was written for kernel.py:205
+    # `q = p + 1 if p > 1 else 0`, which left no room for the Cholesky factor of P with one predictor.
     given = {None: None, "half-normal": pooling.HalfNormal(0.3), "half-Cauchy": pooling.HalfCauchy(0.3)}[tau_prior]
-    p = _problem(mu=Normal(-0.7, 2.0), effects=Normal(0.0, 0.5), tau=given)
+    p = _problem(mu=Normal(-0.7, 2.0), effects=Normal(0.0, 0.5), tau=given, alloc=alloc)
     tau_logpdf = (
         (lambda t: 0.0)
         if given is None
@@ -101,7 +108,9 @@ def test_log_tau_density_with_predictors_is_the_gaussian_marginal(tau_prior):
         dd = d._replace(between=1 if heavy else 0)
         il = 1.0 / lam if heavy else np.empty(0)
         wk = kernel.make_work(dd)
-        mu_now, beta_now = 0.3, np.array([0.1, -0.2, 0.05])  # the point the sums are taken about: no effect
+        assert wk.chol.shape == (Z.shape[1] ** 2,)  # room for the factor of P, (p + 1)^2 (pooling.kernel.Work)
+        # the point the sums are taken about: no effect
+        mu_now, beta_now = 0.3, np.array([0.1, -0.2, 0.05])[: p.design.p]
         c = mu_now + p.data.X @ beta_now
         wk.resid[:] = p.ybar - c
         etas = np.array([-3.0, -1.2, 0.0, 0.8])
@@ -165,6 +174,36 @@ def test_mu_beta_given_tau_is_the_gaussian_conditional(between):
     for k in range(q):
         assert _ks(comp[:, k]) > ALPHA, k
     assert min(_ks(np.array(u_wrong)[:, k]) for k in range(q)) < ALPHA
+
+
+def test_mu_and_beta_given_tau_carry_their_correlation():
+    # Source: scipy.stats.chi2: the squared Mahalanobis distance d^2 = (x - m)' C^-1 (x - m) of a draw x of
+    # N(m, C) in q dimensions is chi-square with q degrees of freedom; m(tau) and C(tau) by numpy as above. With a
+    # weak prior on the effects, mu (the reference level's centre) and the allocation contrasts are strongly
+    # correlated given tau (checked below), which the tight prior of the test above hides. Written for kernel.py:660
+    # `beta[a] += wk.shift[a + 1] - z[a + 1]`, which reversed the sign of that correlation (each margin right, the
+    # joint wrong): the same statistic against C with its mu-beta covariances negated, that mutant's law, must be
+    # rejected. KS at ALPHA with a fixed seed.
+    p = _problem(mu=Normal(-0.7, 2.0), effects=Normal(0.0, 0.5))
+    d = p.data
+    n = 4000
+    out = kernel.empty_draws(d, n)
+    st = start_state(p)._replace(beta=np.zeros(p.design.p))
+    kernel.sweeps(np.random.default_rng(31), n, False, d, st, kernel.make_work(d), out, 0)
+    q = p.design.p + 1
+    flip = np.ones((q, q))
+    flip[0, 1:] = flip[1:, 0] = -1.0
+    _, C_mid = _conditional(p, float(np.median(out.tau)), np.ones(p.J))
+    corr = C_mid[0, 1:] / np.sqrt(C_mid[0, 0] * np.diag(C_mid)[1:])
+    assert np.max(np.abs(corr)) > 0.5
+    d2, d2_wrong = np.empty(n - 1), np.empty(n - 1)
+    for i in range(1, n):
+        m, C = _conditional(p, out.tau[i], np.ones(p.J))
+        r = np.concatenate([[out.mu[i]], out.beta[i]]) - m
+        d2[i - 1] = r @ np.linalg.solve(C, r)
+        d2_wrong[i - 1] = r @ np.linalg.solve(C * flip, r)
+    assert _ks(stats.chi2.cdf(d2, q)) > ALPHA
+    assert _ks(stats.chi2.cdf(d2_wrong, q)) < ALPHA
 
 
 def test_theta_given_its_centre_and_tau():
