@@ -81,19 +81,20 @@ def test_defaults_meet_the_targets_and_keep_the_outlier_apart(runs):
 
 
 def test_the_normal_model_is_dragged(runs):
-    # the contrast that motivates the default: under the normal model the outlier drags the others. Its posterior
-    # takes the lab in by widening tau (about 0.93 against the heavy model's 0.08, measured at seeds 2 and 3 with
-    # targets met), so every other lab is pulled less toward a mu that itself moves toward the outlier. (Its other
-    # mode, the lab pulled halfway in with tau near 0.5, is where chains that had not converged sat: R-hat of tau
-    # 1.47 and exit 3 before the joint move of sigma_j and theta_j; the converged runs agree on the wide tau.)
+    # the contrast that motivates the default: under the normal model the outlier distorts the fit one of two ways,
+    # and the chains cannot settle which (measured at seeds 2 and 3: exit 3 with R-hat of tau up to 1.47, or, with
+    # the joint move of sigma_j and theta_j extended to groups of up to 10, converged on the second): the lab is
+    # pulled in (shrink_realised 0.5 to 0.7, tau 0.3 to 0.5), or tau widens to take it in (about 0.93 against the
+    # heavy model's 0.08) and every other lab is pulled less. Either way mu moves toward the outlier.
     codes, tables, summaries, _ = runs
     t = tables["normal"]
     hyper = {b: summaries[b]["hyperparameters"] for b in ("heavy", "normal")}
-    assert hyper["normal"]["tau"]["mean"] > 5 * hyper["heavy"]["tau"]["mean"]
+    lab = t[t.group == OUTLIER].iloc[0]
+    dragged = lab.shrink_realised > 0.2
+    widened = hyper["normal"]["tau"]["mean"] > 5 * hyper["heavy"]["tau"]["mean"]
+    assert dragged or widened
+    assert hyper["normal"]["tau"]["mean"] > 3 * hyper["heavy"]["tau"]["mean"]  # tau inflated in both modes
     assert hyper["normal"]["mu"]["mean"] > hyper["heavy"]["mu"]["mean"]
-    others = t[t.group != OUTLIER]
-    heavy_others = tables["heavy"][tables["heavy"].group != OUTLIER]
-    assert others.shrink_weight.median() < 0.5 * heavy_others.shrink_weight.median()  # the others pulled less
     assert "outlying" not in t  # the normal model has no tail weights
 
 
