@@ -322,20 +322,20 @@ def pair_target(a, b, n, r, t):
     return x, cdf / cdf[-1]
 
 
-def test_the_joint_move_of_sigma_and_theta_keeps_its_target():
+@pytest.mark.parametrize("nu", [3.0, 1.0])  # nu = 1: the group of one proposes from a gamma of shape 1/2 < 1
+def test_the_joint_move_of_sigma_and_theta_keeps_its_target(nu):
     # Markov test: chains started from exact draws of p(sigma_j^2, theta_j | rest) (sigma_j^2 by inverting the
     # CDF of pair_target, theta_j from its normal conditional, BDA3 eq. (5.17)) must still follow it after three
     # moves (kernel.pair_step), the rest held fixed. The state puts mu three of the groups' spreads away from them
     # and tau small, so that the normal factor N(ybar_j | c_j, t_j + sigma_j^2 / n_j) shapes the target; a move
     # that ignored it (accepting every proposal) would leave the proposal's own law, which is rejected below.
-    model = Model(nu=NuFixed(3.0))
+    model = Model(nu=NuFixed(nu))
     p = dyestuff_problem(model)
     d = p.data
     J, chains = p.J, 3000
     rng = np.random.default_rng(20261203)
     s2, eta, mu = 0.4, np.log(0.15), float(np.mean(p.ybar)) + 3.0 * float(np.std(p.ybar))
     lam = LAM_FIXED
-    nu = 3.0
     a = nu + p.n - 1.0
     b = nu * s2 + p.m2
     r = p.ybar - mu
