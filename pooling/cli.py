@@ -108,7 +108,7 @@ def _nu_value(text: str, option: str) -> float:
     return x
 
 
-def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required: bool | None = None):
+def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required: bool = False):
     if data:
         p.add_argument("data", help="CSV or Parquet file: one row per measurement (or per group, see below)")
         p.add_argument("--group", required=True, help="column holding the group label")
@@ -204,7 +204,7 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required
     r.add_argument("--threads", type=int, help="threads for the chains (default: min(chains, cores))")
     o = p.add_argument_group("output")
     o.add_argument(  # refit checks it itself, after the store option (main() returns 2 rather than exit)
-        "--out", required=data, help="run folder to create" + (" (required)" if out_required else "")
+        "--out", required=data, help="run folder to create" + (" (required)" if out_required and not data else "")
     )
     o.add_argument("--replace", action="store_true", help="replace the run folder if it exists")
     o.add_argument("--quiet", action="store_true", help="no progress bar and no table")

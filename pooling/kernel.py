@@ -1125,22 +1125,20 @@ def pair_step(rng, d, st, wk):
     Why: a group whose few measurements agree closely but lie far from the others has two explanations, theta_j near
     its own mean with a small sigma_j, or theta_j pulled in with a large sigma_j; drawn one given the other (block A,
     block B) the chain crosses between them only rarely, this step in one move. A group of more measurements pins
-    sigma_j with its own M2_j and is left to block B. wk.v is kept equal to sigma_j^2 / n_j."""
+    sigma_j with its own M2_j and is left to block B (PAIR_MAX_N says why). wk.v is kept equal to sigma_j^2 / n_j."""
     sc = st.scalars
     nu = d.nu_grid[int(sc[NU_IDX])]
     nus2 = nu * sc[S2]
     tau2 = math.exp(2.0 * sc[ETA])
     heavy = d.between == BETWEEN_HEAVY
     il = wk.inv_lam
-    X, beta = d.X, st.beta
-    p = X.shape[1]
+    reg = d.X.shape[1] > 0  # with predictors block_a_reg left each centre c_j = mu + x_j' beta in wk.centre
+    cen = wk.centre
     mu = sc[MU]
     ybar, n, m2 = d.ybar, d.n, d.m2
     theta, sigma2, v = st.theta, st.sigma2, wk.v
     for j in range(ybar.shape[0]):
-        c = mu
-        for k in range(p):
-            c += X[j, k] * beta[k]
+        c = cen[j] if reg else mu
         t = tau2 * il[j] if heavy else tau2
         a = nu + n[j] - 1.0
         if n[j] <= PAIR_MAX_N and a > 0.0:  # a <= 0: a down-weighted group (n_j <= 1 - nu) has no proper proposal

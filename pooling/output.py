@@ -70,7 +70,7 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
         h[f"low_{L}"] = h.pop("low")
         h[f"high_{L}"] = h.pop("high")
         hyper[name] = h
-    # every interval's ends named by the level (low -> low_95), within_levels' too
+    # every interval's ends named by the level (low -> low_95), the overall view's too
     lab = _level_named({k: v for k, v in res.lab.items() if k != "interval_excludes_0"}, L)
     checks = None
     if res.checks is not None:

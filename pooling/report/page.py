@@ -242,14 +242,14 @@ def _ranking_block(res: Results) -> str:
         + (f"; then {nxt}" if nxt else "")
         + ".</p>"
     )
+    top = np.argsort(-pk, kind="stable")[:k] if k < J else best[:0]
     if k < J:
-        top = np.argsort(-pk, kind="stable")[:k]
         body += (
             f"<p>Likely top {k}, P(among the {k} best): "
             + ", ".join(f'{named(j)} <span class="p">{prob(pk[j])}</span>' for j in top)
             + ".</p>"
         )
-    if out[best].any() or (k < J and out[np.argsort(-pk, kind="stable")[:k]].any()):
+    if out[best].any() or out[top].any():
         end = "highest" if o.best == "highest" else "lowest"
         body += (
             '<p class="note">The order ranks theta alone; the specification limits (above) decide which groups '
