@@ -276,9 +276,8 @@ def _quantiles(x: np.ndarray, probs) -> np.ndarray:
     S, m = x.shape
     buf = np.empty((m, S))
     O.gather(x, 0, m, buf)
-    buf.sort(axis=1)
     out = np.empty((2, m))
-    O.sorted_quantiles(buf, m, np.array([(S - 1) * q for q in probs]), out[0], out[1], 0)
+    O.Selection(S, m).quantiles(buf, m, np.array([(S - 1) * q for q in probs]), out[0], out[1], 0)
     return out
 
 
@@ -501,6 +500,7 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
             np.empty((TABLE_BLOCK, S)) if separate else none,
             np.empty((TABLE_BLOCK, S)) if heavy else none,
             np.empty((TABLE_BLOCK, S)),
+            O.Selection(S, TABLE_BLOCK),
         )
 
     scratch = Scratch(buffers)
@@ -530,11 +530,11 @@ def _full_group_answers(fit: Fit, o: ReportOptions, k: int) -> tuple[dict, dict]
         j1 = min(J, j0 + TABLE_BLOCK)
         m = j1 - j0
 
-        def ends(x, name):
-            x[:m].sort(axis=1)
-            O.sorted_quantiles(x, m, h, lows[name], highs[name], j0)
+        with scratch.lend() as (tb, sb, lb, buf, sel):
 
-        with scratch.lend() as (tb, sb, lb, buf):
+            def ends(x, name):
+                sel.quantiles(x, m, h, lows[name], highs[name], j0)
+
             O.gather(theta, j0, j1, tb)
             if separate:
                 O.gather(sigma, j0, j1, sb)

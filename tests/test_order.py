@@ -84,6 +84,36 @@ def test_sorted_quantiles_writes_only_its_block():
     assert np.all(low[:5] == -7.0) and np.all(low[11:] == -7.0) and np.all(high[11:] == -7.0)
 
 
+@pytest.mark.parametrize("S", [1, 2, 3, 7, 400, 4001])
+@pytest.mark.parametrize("buckets", [1, 2, 3, 64, 100_000])
+def test_quantiles_by_selection_equal_a_sort_then_sorted_quantiles(S, buckets):
+    # Source: numpy's own sort and numpy.quantile's linear method (sorted_quantiles, checked above): the
+    # selection must give the same bits with any number of buckets, one bucket (a plain sort of the row),
+    # few (crowded buckets) or more buckets than values, and leave the rows it does not hand back unchanged.
+    rng = np.random.default_rng(100 + S)
+    x = np.array([r[:S] for r in _awkward_rows(rng, max(S, 2))])
+    m = x.shape[0]
+    for probs in ([0.025, 0.975], [0.0, 1.0], [0.5, 0.5], [1e-9, 1 - 1e-9], [0.3, 0.7]):
+        h = np.array([(S - 1) * q for q in probs])
+        srt = np.sort(x, axis=1)
+        ref_lo, ref_hi = np.empty(m), np.empty(m)
+        O.sorted_quantiles(srt, m, h, ref_lo, ref_hi, 0)
+        buf = x.copy()
+        lo, hi = np.full(m + 3, -7.0), np.full(m + 3, -7.0)
+        count, pick, bad = np.empty(min(buckets, S) + 1, dtype=np.int64), np.empty(S), np.empty(m, dtype=np.bool_)
+        O.select_quantiles(buf, m, h, lo, hi, 2, count, pick, bad)
+        handed = np.flatnonzero(bad)
+        for i in handed:
+            buf[i].sort()
+            O.sorted_quantiles(buf[i : i + 1], 1, h, lo, hi, 2 + i)
+        assert _same_bits(lo[2 : m + 2], ref_lo) and _same_bits(hi[2 : m + 2], ref_hi), (S, buckets, probs)
+        assert np.all(lo[:2] == -7.0) and lo[-1] == -7.0 and hi[-1] == -7.0
+        kept = np.setdiff1d(np.arange(m), handed)
+        assert _same_bits(buf[kept], x[kept])  # only read
+        if S >= 400:  # a smooth row is never handed back; signed zeros of both signs always are
+            assert not bad[0] and bad[SIGNED_ZEROS]
+
+
 def test_gather_is_the_transpose_of_a_block_of_columns():
     rng = np.random.default_rng(4)
     x = rng.normal(size=(37, 21))
