@@ -92,12 +92,12 @@ def _rank_bucket(count, nb, k):
     """(the bucket holding the value of rank k, 0-based, of the counted values, and how many values lie in
     the buckets before it)."""
     below = 0
-    for b in range(nb):
+    for b in range(nb - 1):
         c = count[b]
         if below + c > k:
             return b, below
         below += c
-    return nb - 1, below - count[nb - 1]
+    return nb - 1, below
 
 
 @njit(nogil=True, cache=True)

@@ -100,7 +100,12 @@ def test_quantiles_by_selection_equal_a_sort_then_sorted_quantiles(S, buckets):
         O.sorted_quantiles(srt, m, h, ref_lo, ref_hi, 0)
         buf = x.copy()
         lo, hi = np.full(m + 3, -7.0), np.full(m + 3, -7.0)
-        count, pick, bad = np.empty(min(buckets, S) + 1, dtype=np.int64), np.empty(S), np.empty(m, dtype=np.bool_)
+        # scratch filled with NaN: a value read that the selection did not write would show as a NaN end
+        count, pick, bad = (
+            np.empty(min(buckets, S) + 1, dtype=np.int64),
+            np.full(S, np.nan),
+            np.empty(m, dtype=np.bool_),
+        )
         O.select_quantiles(buf, m, h, lo, hi, 2, count, pick, bad)
         handed = np.flatnonzero(bad)
         for i in handed:
@@ -112,6 +117,22 @@ def test_quantiles_by_selection_equal_a_sort_then_sorted_quantiles(S, buckets):
         assert _same_bits(buf[kept], x[kept])  # only read
         if S >= 400:  # a smooth row is never handed back; signed zeros of both signs always are
             assert not bad[0] and bad[SIGNED_ZEROS]
+
+
+def test_selection_hands_back_only_rows_holding_both_zeros():
+    # a zero of one sign is an ordinary value; -0.0 beside 0.0 is the one order only a sort settles
+    rng = np.random.default_rng(7)
+    base = rng.normal(size=400)
+    rows = []
+    for zeros in ([-0.0], [0.0], [-0.0, -0.0], [0.0, -0.0]):
+        r = base.copy()
+        r[: len(zeros)] = zeros
+        rows.append(r)
+    x = np.array(rows)
+    h = np.array([399 * 0.025, 399 * 0.975])
+    lo, hi, bad = np.empty(4), np.empty(4), np.empty(4, dtype=np.bool_)
+    O.select_quantiles(x, 4, h, lo, hi, 0, np.empty(65, dtype=np.int64), np.empty(400), bad)
+    assert list(bad) == [False, False, False, True]
 
 
 def test_gather_is_the_transpose_of_a_block_of_columns():
