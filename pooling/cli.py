@@ -520,7 +520,8 @@ def _settings_from_args(args):
 def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) -> int:
     """Fit, compute the answers, write the run folder, print. `init`: chains' starting states; `more(fit, res,
     folder)` adds files to the folder before it is renamed into place; `after(fit, res, out)` runs once the
-    folder is in place (a refit records the run there) and returns lines to print after the table; `protect`:
+    folder is in place (a refit records the run there) and returns what changed since the last run (a refit's
+    change report, which the terminal prints after the answer) or None; `protect`:
     (what, path) pairs that --out may not be or hold (the input files, the store)."""
     from . import fit as do_fit
     from .asked import ReportOptions
@@ -571,14 +572,13 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     res = holder["res"]
     recorded = False
     try:
-        lines = []
+        changes = None
         if after is not None:
             with _STOPS.deferred():  # a stop while the store records the run waits until it is recorded
-                lines = after(fit, res, out) or []
+                changes = after(fit, res, out)
                 recorded = True
         if not args.quiet:
-            _printing(print_results, res, out)
-            _printing(lambda: [print(line) for line in lines])
+            _printing(lambda: print_results(res, out, changes=changes))
     except KeyboardInterrupt:  # the folder is complete and in place: say so, not "nothing was written"
         if after is None:
             state = ""
@@ -998,7 +998,6 @@ def cmd_withdraw(args, argv) -> int:
 
 def cmd_refit(args, argv) -> int:
     from .store import jobs
-    from .store.changes import short_lines
 
     if args.out is None:
         raise E.InputError("bad options: refit needs --out DIR, the run folder to create")
@@ -1028,7 +1027,7 @@ def cmd_refit(args, argv) -> int:
         except E.PoolingError as exc:  # the folder is complete: say so, and that the next refit fits again
             exc.args = (f"the run folder '{out}' was written, but the store did not record the run: {exc}",)
             raise
-        return [] if args.quiet else list(short_lines(plan.report))
+        return plan.report
 
     def more(fit, res, folder):
         report = jobs.write_changes(plan, fit, watch, folder)

@@ -263,7 +263,7 @@ def test_terminal_follows_level_best_threshold_and_limits(fit20):
     assert first == res.table["group"].iat[int(np.argmin(res.table["theta_mean"]))]
     assert "vs 100" in lines[head] and "limits" in lines[head]
     assert any(ln.startswith("threshold 100:") for ln in lines)
-    assert any(ln.startswith("limits, by the mean:") for ln in lines)
+    assert any(ln.startswith("limits lower 85 and upper 115, by the mean:") for ln in lines)
 
 
 def test_terminal_values_near_1e7_in_plain_digits():

@@ -19,7 +19,7 @@ import numpy as np
 from .. import __version__
 from ..asked import level_label
 from . import plots
-from .numbers import Values, plural, whole
+from .numbers import Values, given, plural, whole
 from .page import CAUTION, CSS, _fold
 from .pieces import esc, html_table, label
 
@@ -253,7 +253,7 @@ def _latest(h: _Runs, v, lvl: str) -> str:
         names = ("above", "below", "undecided") if kind == "threshold" else ("outside", "inside", "undecided")
         tally = ", ".join(f"{whole(sum(s == n for s in sides))} {n}" for n in names)
         ch = _changes_of(h, kind)
-        val = f"{watched:g}" if kind == "threshold" else " to ".join("–" if x is None else f"{x:g}" for x in watched)
+        val = given(watched) if kind == "threshold" else " to ".join("–" if x is None else given(x) for x in watched)
         line = f"<li><strong>Against {what} ({esc(val)})</strong>: {tally} now. "
         if ch:
             shown = ", ".join(

@@ -7,7 +7,12 @@
 * other figures (R-hat, effective sample sizes, error bounds, mean squares) are written in plain decimals
   with a few significant digits; scientific notation only for magnitudes no plain decimal can carry
   (at least 1e12, or below 1e-5 and not zero);
-* counts carry thousands separators; down-weighted counts (a store's half-life) one decimal.
+* counts carry thousands separators; down-weighted counts (a store's half-life) one decimal;
+* a number the user gave (a threshold, a limit, an allowed bias) reads back as given: the fewest digits that
+  name the same double, in plain decimals (1000000000.3, never 1e+09);
+* two figures set side by side (a run's value then and now) get the decimals it takes for two different
+  figures never to read the same (`apart`), and a probability beside a decision made at P the decimals it
+  takes not to read as P (`prob_near`).
 """
 
 from __future__ import annotations
@@ -95,6 +100,68 @@ def sig(x, digits: int = 3, dash: str = DASH) -> str:
     text = f"{x:,.{dec}f}"
     if "." in text and dec > 0:
         text = text.rstrip("0").rstrip(".")
+    return text
+
+
+def given(x, dash: str = DASH) -> str:
+    """A number the user gave, written back with the fewest digits that read as the same double: plain decimals
+    from 1e-6 to 1e16 (so 1000000000.3 never reads 1e+09 and 1e15 + 0.5 reads 1000000000000000.5), beyond that
+    scientific notation with every digit it needs.
+
+    >>> [given(x) for x in (400.0, 1000000000.3, 1e15 + 0.5, -2.5e-3, 1e20 + 2**17)]
+    ['400', '1000000000.3', '1000000000000000.5', '-0.0025', '1.0000000000000013e+20']
+    """
+    if _bad(x):
+        return dash
+    x = float(x)
+    if x == 0.0:
+        return "0"
+    if 1e-6 <= abs(x) < 1e16:
+        return np.format_float_positional(x, unique=True, trim="-")
+    return np.format_float_scientific(x, unique=True, trim="-")
+
+
+def apart(values, show, start: int = 0, most: int = 24) -> list[str]:
+    """The texts of `values` written by show(x, extra), with the fewest extra decimals (from `start`) at which
+    figures that differ read differently (a run's mu then and now, 1000000000.31 and 1000000000.34, read
+    1000000000.31 and 1000000000.34, not twice 1000000000.3); past `most` extra decimals, `given`'s digits.
+
+    >>> apart([1000000000.31, 1000000000.34], Values(0.5, sep=""))
+    ['1000000000.31', '1000000000.34']
+    """
+    xs = [float(x) if not _bad(x) else math.nan for x in values]
+    distinct = len({x for x in xs if math.isfinite(x)})
+    for extra in range(start, start + most):
+        texts = [show(x, extra) for x in xs]
+        if len({t for t, x in zip(texts, xs) if math.isfinite(x)}) == distinct:
+            return texts
+    return [given(x) for x in xs]
+
+
+def then_now(then, now, show) -> tuple[str, str, str]:
+    """A figure of the previous run and of this one, and the size of the shift now - then (its sign is the
+    presenter's), each written by show(x, extra): then and now told apart (`apart`), the shift with at least one
+    decimal more and never reading 0 when the two differ.
+
+    >>> then_now(1000000000.31, 1000000000.34, Values(0.5, sep=""))
+    ('1000000000.31', '1000000000.34', '0.030')
+    """
+    a, b = apart([then, now], show)
+    return a, b, apart([0.0, abs(float(now) - float(then))], show, start=1)[1]
+
+
+def prob_near(p, at: float, dash: str = DASH) -> str:
+    """A probability shown beside a decision made at `at`, with as many decimals as it takes not to read as `at`
+    when it is not (0.9496 against 0.95 reads 0.9496, not 0.950).
+
+    >>> prob_near(0.9496, 0.95), prob_near(0.9, 0.95)
+    ('0.9496', '0.900')
+    """
+    text = prob(p, dash)
+    d = 3
+    while d < 6 and p != at and text.replace(">", "").replace("<", "") == f"{at:.{d}f}":
+        d += 1
+        text = f"{p:.{d}f}"
     return text
 
 

@@ -23,9 +23,10 @@ import numpy as np
 from .. import __version__
 from ..asked import level_label
 from ..results import Results, describe_column
+from . import decisions as D
 from . import numbers as N
 from . import plots
-from .numbers import Values, percent, plural, rhat, sig, typical_sd, whole
+from .numbers import Values, given, percent, plural, rhat, sig, typical_sd, whole
 from .pieces import card, esc, html_table, interval_html, label, prob, prob_eq
 from .plots import MANY, PAIRS_AS_TABLE, heat_hex
 
@@ -37,8 +38,7 @@ SHOWN = 25  # summary mode: rows of the best and of the worst groups
 
 CAUTION = (
     "These are screening results: probabilities computed from the data and the model on this page. "
-    "Statistical screening supports, and never replaces, the applicable standards, local codes and "
-    "licensed professional judgment. A decision that can hurt people or livelihoods (accepting a part, "
+    f"{D.SCREENING[0].upper()}{D.SCREENING[1:]}. A decision that can hurt people or livelihoods (accepting a part, "
     "dropping a supplier, failing a laboratory) belongs to the people and the rules responsible for it; "
     "use these numbers as evidence for them."
 )
@@ -165,51 +165,29 @@ def _groups_word(res: Results, n: float = 2) -> str:
 
 
 def _near(at: float):
-    """A probability shown beside a decision made at `at`: with as many decimals as it takes not to read as `at`
-    when it is not (0.94975 against 0.95 reads 0.9498, not 0.950)."""
-
-    def show(p):
-        text = N.prob(p)
-        d = 3
-        while d < 6 and p != at and text.replace(">", "").replace("<", "") == f"{at:.{d}f}":
-            d += 1
-            text = f"{p:.{d}f}"
-        return esc(text)
-
-    return show
+    """numbers.prob_near as HTML text, for the probabilities beside a decision made at `at`."""
+    return lambda p: esc(N.prob_near(p, at))
 
 
-def _named(t, idx: np.ndarray, key: np.ndarray, show=prob, shown: bool = True, then=None) -> str:
-    """Up to NAMED labels of the rows idx, largest `key` first (ties: largest `then`), each with show(key)."""
-    if then is None:
-        order = idx[np.argsort(-key[idx], kind="stable")]
-    else:
-        order = idx[np.lexsort((-then[idx], -key[idx]))]
+def _named(t, rows: np.ndarray, key: np.ndarray, show=prob, shown: bool = True) -> str:
+    """Up to NAMED labels of `rows` (in their order), each with show(key)."""
     parts = [
         f"{esc(label(t['group'].iat[j]))}" + (f' <span class="p">{show(key[j])}</span>' if shown else "")
-        for j in order[:NAMED]
+        for j in rows[:NAMED]
     ]
-    more = len(order) - NAMED
+    more = len(rows) - NAMED
     return ", ".join(parts) + (f" and {whole(more)} more" if more > 0 else "")
 
 
-def _sides(t, values: np.ndarray, sides: list[tuple], show=prob, then=None) -> str:
+def _sides(t, dec: D.Decision, show=prob) -> str:
     """A tally of the sides of one decision, then the names on each side but the largest (which is given as a
-    count, when it holds more than NAMED groups). sides: (side, tone, key per group, what the key is); names
-    are listed largest key first, ties broken by the largest `then` (how far the group sits from the line)."""
-    counts = {s[0]: int(np.sum(values == s[0])) for s in sides}
-    tally = "".join(f'<span class="pill {tone}">{whole(counts[s])} {esc(s)}</span>' for s, tone, _, _ in sides)
-    biggest = max(counts, key=lambda s: counts[s])
-    items = []
-    for s, _, key, what in sides:
-        c = counts[s]
-        if c == 0 or (s == biggest and c > NAMED):
-            continue
-        idx = np.flatnonzero(values == s)
-        items.append(
-            f'<li><strong>{esc(s.capitalize())}</strong> <span class="p">· {what}</span>: '
-            f"{_named(t, idx, key, show, then=then)}</li>"
-        )
+    count, when it holds more than NAMED groups); report/decisions.py orders them."""
+    tally = "".join(f'<span class="pill {s.tone}">{whole(s.count)} {esc(s.name)}</span>' for s in dec.sides)
+    items = [
+        f'<li><strong>{esc(s.name.capitalize())}</strong> <span class="p">· {s.what}</span>: '
+        f"{_named(t, s.rows, s.key, show)}</li>"
+        for s in dec.named(NAMED)
+    ]
     return f'<div class="tally">{tally}</div>' + (f"<ul>{''.join(items)}</ul>" if items else "")
 
 
@@ -222,17 +200,14 @@ def _decision(title: str, rule: str, body: str) -> str:
 
 
 def _ranking_block(res: Results) -> str:
-    t, o = res.table, res.options
-    J = res.J
-    k = int(min(o.k, J))
-    pb = t["p_best"].to_numpy(dtype=float)
-    pk = t["p_top_k"].to_numpy(dtype=float)
-    best = np.argsort(-pb, kind="stable")[:3]
+    o = res.options
+    t = res.table
+    rk = D.ranking(res)
+    k, best, top, pb, pk, out = rk.k, rk.best, rk.top, rk.p_best, rk.p_top, rk.outside
     first = best[0]
+
     # with specification limits, a group judged outside them is marked wherever the ranking names it: the top of
     # the order is no recommendation for a group whose parts miss the limits
-    out = t["limits_side"].to_numpy() == "outside" if "limits_side" in t else np.zeros(J, dtype=bool)
-
     def named(j) -> str:
         return esc(label(t["group"].iat[j])) + (" (outside the limits)" if out[j] else "")
 
@@ -242,8 +217,7 @@ def _ranking_block(res: Results) -> str:
         + (f"; then {nxt}" if nxt else "")
         + ".</p>"
     )
-    top = np.argsort(-pk, kind="stable")[:k] if k < J else best[:0]
-    if k < J:
+    if len(top):
         body += (
             f"<p>Likely top {k}, P(among the {k} best): "
             + ", ".join(f'{named(j)} <span class="p">{prob(pk[j])}</span>' for j in top)
@@ -271,55 +245,21 @@ def _ranking_block(res: Results) -> str:
     return _decision("The best", f"({which} theta is best)", body)
 
 
-def _threshold_block(res: Results) -> str:
-    t, o = res.table, res.options
-    pa, pb = t["p_above"].to_numpy(dtype=float), t["p_below"].to_numpy(dtype=float)
-    far = np.abs(t["theta_mean"].to_numpy(dtype=float) - o.threshold)
-    body = _sides(
-        t,
-        t["threshold_side"].to_numpy(),
-        [
-            ("above", "open", pa, "P(above)"),
-            ("below", "open", pb, "P(below)"),
-            ("undecided", "none", np.maximum(pa, pb), "P(above or below)"),
-        ],
-        show=_near(o.decide_at),
-        then=far,
-    )
+def _threshold_block(res: Results, dec: D.Decision) -> str:
+    o = res.options
     return _decision(
-        f"Against the threshold {esc(f'{o.threshold:g}')}",
+        f"Against the threshold {esc(given(o.threshold))}",
         f"(a side needs a probability of at least {o.decide_at:g})",
-        body,
+        _sides(res.table, dec, show=_near(o.decide_at)),
     )
 
 
-def _limits_block(res: Results) -> str:
+def _limits_block(res: Results, dec: D.Decision) -> str:
     t, o = res.table, res.options
-    pm = t["p_mean_outside"].to_numpy(dtype=float)
-    lim = " and ".join(
-        x
-        for x in (
-            f"lower {o.lower:g}" if o.lower is not None else "",
-            f"upper {o.upper:g}" if o.upper is not None else "",
-        )
-        if x
-    )
-    th = t["theta_mean"].to_numpy(dtype=float)
-    far = np.min(np.abs(np.stack([th - x for x in (o.lower, o.upper) if x is not None])), axis=0)
-    body = _sides(
-        t,
-        t["limits_side"].to_numpy(),
-        [
-            ("outside", "bad", pm, "P(mean outside)"),
-            ("inside", "good", 1.0 - pm, "P(mean inside)"),
-            ("undecided", "none", pm, "P(mean outside)"),
-        ],
-        show=_near(o.decide_at),
-        then=far,
-    )
+    body = _sides(t, dec, show=_near(o.decide_at))
     if "outside_mean" in t:
         f = t["outside_mean"].to_numpy(dtype=float)
-        j = int(np.nanargmax(f)) if np.isfinite(f).any() else None
+        j = D.largest_outside(res)
         extra = []
         if j is not None:
             extra.append(
@@ -334,24 +274,24 @@ def _limits_block(res: Results) -> str:
         if extra:
             body += '<p class="note">' + "; ".join(extra) + ".</p>"
     return _decision(
-        f"Specification limits ({esc(lim)})",
+        f"Specification limits ({esc(D.limits_text(o))})",
         f"(by the group's mean; a side needs a probability of at least {o.decide_at:g})",
         body,
     )
 
 
-def _outlying_block(res: Results) -> str:
+def _outlying_block(res: Results, dec: D.Decision) -> str:
     t = res.table
-    po = t["p_outlying"].to_numpy(dtype=float)
-    flagged = np.flatnonzero(t["outlying"].to_numpy(dtype=bool))
-    if flagged.size:
+    flagged = dec.side("flagged")
+    if flagged.count:
         body = (
-            f'<div class="tally"><span class="pill bad">{whole(flagged.size)} flagged</span>'
-            f'<span class="pill">{whole(res.J - flagged.size)} ordinary</span></div>'
+            f'<div class="tally"><span class="pill bad">{whole(flagged.count)} flagged</span>'
+            f'<span class="pill">{whole(res.J - flagged.count)} ordinary</span></div>'
             f'<ul><li><strong>Flagged</strong> <span class="p">· P(outlying)</span>: '
-            f"{_named(t, flagged, po)}</li></ul>"
+            f"{_named(t, flagged.rows, flagged.key)}</li></ul>"
         )
     else:
+        po = flagged.key
         j = int(np.argmax(po))
         largest = (
             f'the largest P(outlying) is {esc(label(t["group"].iat[j]))}\'s, <span class="p">{prob(po[j])}</span>'
@@ -362,47 +302,27 @@ def _outlying_block(res: Results) -> str:
     return _decision("Outlying groups", "(flagged when P(outlying) ≥ 0.5)", body)
 
 
-def _labs_block(res: Results, v) -> str:
+def _labs_block(res: Results, v, z: D.Decision, bias: D.Decision | None) -> str:
     t, o, lab = res.table, res.options, res.lab
     zb = lab["z_basis"]
-    z = t["z_score"].to_numpy(dtype=float)
-    az = np.abs(np.nan_to_num(z))
-    body = _sides(
-        t,
-        t["z_signal"].to_numpy(),
-        [("action", "bad", az, "|z|"), ("warning", "open", az, "|z|"), ("none", "good", az, "|z|")],
-        show=lambda x: f"{x:.1f}",
-    )
+    body = _sides(t, z, show=lambda x: f"{x:.1f}")
     basis = (
         f"z = (own mean − x<sub>pt</sub>) / sigma<sub>pt</sub> with x<sub>pt</sub> = {v(zb['assigned'], 1)} "
         f"({esc(zb['assigned_from'])}), sigma<sub>pt</sub> = {v(zb['sigma_pt'], 1)} ({esc(zb['sigma_pt_from'])}); "
         "action at |z| ≥ 3, warning above 2 (ISO 13528)."
     )
     out = _decision("z-scores", "", body + f'<p class="note">{basis}</p>')
-    if o.allowed_bias is not None:
-        pbo = t["p_bias_over"].to_numpy(dtype=float)
-        body = _sides(
-            t,
-            t["bias_side"].to_numpy(),
-            [
-                ("over", "bad", pbo, "P(|bias| > allowed)"),
-                ("within", "good", 1.0 - pbo, "P(|bias| ≤ allowed)"),
-                ("undecided", "none", pbo, "P(|bias| > allowed)"),
-            ],
-            show=_near(o.decide_at),
-            then=np.abs(t["bias_mean"].to_numpy(dtype=float)),
-        )
+    if bias is not None:
         out += _decision(
-            f"Bias against the consensus, allowed ± {esc(f'{o.allowed_bias:g}')}",
+            f"Bias against the consensus, allowed ± {esc(given(o.allowed_bias))}",
             f"(a side needs a probability of at least {o.decide_at:g})",
-            body,
+            _sides(t, bias, show=_near(o.decide_at)),
         )
     else:
-        ex = np.flatnonzero(np.asarray(lab["interval_excludes_0"], dtype=bool))
-        b = np.abs(t["bias_mean"].to_numpy(dtype=float))
+        ex = D.bias_excluding_zero(res)
         body = (
             f"<p>{whole(ex.size)} of {whole(res.J)} labs have a {level_label(o.level)} bias interval that excludes "
-            "zero" + (f": {_named(t, ex, b, shown=False)}" if ex.size else "") + ".</p>"
+            "zero" + (f": {_named(t, ex, ex, shown=False)}" if ex.size else "") + ".</p>"
         )
         out += _decision("Bias against the consensus", "(give --allowed-bias to decide each lab)", body)
     return out
@@ -440,14 +360,15 @@ def _health_line(res: Results) -> str:
 def _verdict(res: Results, v) -> str:
     o = res.options
     blocks = []
-    if o.threshold is not None:
-        blocks.append(_threshold_block(res))
-    if o.limits:
-        blocks.append(_limits_block(res))
-    if o.interlab:
-        blocks.append(_labs_block(res, v))
-    if res.tail is not None:
-        blocks.append(_outlying_block(res))
+    by_kind = {d.kind: d for d in D.asked(res)}
+    if "threshold" in by_kind:
+        blocks.append(_threshold_block(res, by_kind["threshold"]))
+    if "limits" in by_kind:
+        blocks.append(_limits_block(res, by_kind["limits"]))
+    if "z" in by_kind:
+        blocks.append(_labs_block(res, v, by_kind["z"], by_kind.get("bias")))
+    if "outlying" in by_kind:
+        blocks.append(_outlying_block(res, by_kind["outlying"]))
     if not o.interlab:  # labs in a round are judged against the consensus, not ranked
         blocks.append(_ranking_block(res))
     health = _health_line(res)
@@ -514,9 +435,10 @@ def _changes(ch: dict, v, res: Results) -> str:
             bits = []
             for name, h in hyp.items():
                 s = h.get("shift_in_sd")
+                then, now, size = N.then_now(h["then_mean"], h["now_mean"], v)
                 bits.append(
-                    f"{esc(name)} {v(h['then_mean'])} → <strong>{v(h['now_mean'])}</strong> "
-                    f'<span class="p">({_signed(h["shift"], lambda x: v(x, 1))}'
+                    f"{esc(name)} {then} → <strong>{now}</strong> "
+                    f'<span class="p">({"+" if h["shift"] >= 0 else "−"}{size}'
                     + (f", {_signed(s, lambda x: f'{x:.2f}')} posterior sd" if s is not None else "")
                     + ")</span>"
                 )
@@ -866,7 +788,7 @@ def _group_head(res: Results, lvl: str, k: int) -> list[tuple[str, bool]]:
         (f"P(top {k})", True),
     ]
     if o.threshold is not None:
-        head.append((f"vs {esc(f'{o.threshold:g}')}", False))
+        head.append((f"vs {esc(given(o.threshold))}", False))
     if o.limits:
         head.append(("limits", False))
     if "outlying" in t and t["outlying"].any():
@@ -971,7 +893,7 @@ def _sides_section(res: Results, v, lvl: str) -> str:
         side = t["threshold_side"].to_numpy()
         counts = {s: int(np.sum(side == s)) for s in ("above", "below", "undecided")}
         out.append(
-            f"<p>Threshold {esc(f'{o.threshold:g}')}: a group is <em>above</em> when P(theta above it) is at "
+            f"<p>Threshold {esc(given(o.threshold))}: a group is <em>above</em> when P(theta above it) is at "
             f"least {o.decide_at:g}, <em>below</em> when P(theta below it) is, and <em>undecided</em> otherwise "
             f"(more data would settle it). Here {whole(counts['above'])} above, {whole(counts['below'])} below, "
             f"{whole(counts['undecided'])} undecided.</p>"
@@ -1014,8 +936,8 @@ def _sides_section(res: Results, v, lvl: str) -> str:
         lim = " and ".join(
             x
             for x in (
-                f"lower limit {o.lower:g}" if o.lower is not None else "",
-                f"upper limit {o.upper:g}" if o.upper is not None else "",
+                f"lower limit {given(o.lower)}" if o.lower is not None else "",
+                f"upper limit {given(o.upper)}" if o.upper is not None else "",
             )
             if x
         )
@@ -1187,7 +1109,7 @@ def _components_note(res: Results) -> str:
 
 def _labs(res: Results, v, lvl: str) -> str:
     t, o = res.table, res.options
-    lab = dict(res.lab, **res.lab["overall"]) if res.lab.get("overall") else res.lab  # the figures across all labs
+    lab = D.lab_figures(res)  # the figures across all labs
     an = lab["anova"]
     rows = []
 
@@ -1268,7 +1190,7 @@ def _labs(res: Results, v, lvl: str) -> str:
         + [("own mean", True), ("bias θ−μ", True), (f"{lvl} interval", True)]
     )
     if o.allowed_bias is not None:
-        head += [(f"P(|bias| &gt; {esc(f'{o.allowed_bias:g}')})", True), ("bias side", False)]
+        head += [(f"P(|bias| &gt; {esc(given(o.allowed_bias))})", True), ("bias side", False)]
     if "outlying" in t:
         head.append(("outlying", False))
     head += [("z", True), ("z signal", False)]

@@ -11,6 +11,7 @@ import re
 
 import numpy as np
 
+from .numbers import Values, given, typical_sd
 from .svg import Canvas, nice_ticks
 
 MANY = 60
@@ -199,7 +200,7 @@ def intervals(table, mu_mean: float, level: float, lower=None, upper=None, thres
         (threshold, "threshold", "dotted"),
     ):
         if val is not None:
-            line(val, LIMIT, 1.5, style, key=f"{name} {val:g}")
+            line(val, LIMIT, 1.5, style, key=f"{name} {given(val)}")
     return c.svg()
 
 
@@ -669,6 +670,7 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
     own line (dashed, over that level's groups) with its interval as a light band. Up to MANY groups one row per
     group, grouped by level; above, one row per level with every group's posterior mean as a dot."""
     names = [c["level"] for c in consensus]
+    v = Values(typical_sd(table["theta_sd"]), sep="")  # 1000000000.31, never 1e+09
     where = {name: i for i, name in enumerate(names)}
     lev = np.array([where[x] for x in table["level"]], dtype=np.int64)
     m = table["theta_mean"].to_numpy(dtype=float)
@@ -705,7 +707,7 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
                 col,
                 1.8,
                 dash="dashed",
-                key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}",
+                key=f"{plain(cons['level'], 20)}: consensus {v(cons['mean'])}",
                 role="level-line",
             )
             sel = lev == i
@@ -740,7 +742,7 @@ def by_level(table, consensus: list[dict], key: str = "95") -> str:
                 col,
                 1.8,
                 dash="dashed",
-                key=f"{plain(cons['level'], 20)}: consensus {cons['mean']:.4g}",
+                key=f"{plain(cons['level'], 20)}: consensus {v(cons['mean'])}",
                 role="level-line",
             )
             sel = lev == i

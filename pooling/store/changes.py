@@ -401,34 +401,6 @@ def changes_csv(report: dict) -> str:
     return buf.getvalue()
 
 
-def short_lines(report: dict) -> list[str]:
-    """A few plain lines for the terminal."""
-    prev = report["previous_run"]
-    if prev is None:
-        return [
-            f"changes: first recorded run of this store ({report['batches']['active']} active batches, "
-            f"{len(report['new_groups'])} groups)"
-        ]
-    b = report["batches"]
-    out = [
-        f"changes since run {prev['id']} of {prev['created_at']}: {len(b['added'])} batch(es) added, "
-        f"{len(b['removed'])} withdrawn or replaced; {len(report['new_groups'])} new group(s), "
-        f"{len(report['gone_groups'])} gone; {len(report['rank_moves'])} rank move(s)"
-    ]
-    for name, h in report["hyperparameters"].items():
-        sd = "" if h["shift_in_sd"] is None else f", {h['shift_in_sd']:+.2f} posterior sd"
-        out.append(
-            f"  {name}: {h['then_mean']:.6g} -> {h['now_mean']:.6g} (shift {h['shift']:+.4g}{sd}; "
-            f"P(now above the previous mean) = {h['p_now_above_then_mean']:.3f})"
-        )
-    for key, what in (("threshold_crossings", "threshold"), ("limit_crossings", "limits")):
-        for c in report[key][:10]:
-            out.append(f"  {c['group']}: {c['then']} -> {c['now']} ({what})")
-        if len(report[key]) > 10:
-            out.append(f"  ... and {len(report[key]) - 10} more {what} changes (see changes.json)")
-    return out
-
-
 NOTES = {
     "p_now_above_then_mean": "P(x > the previous run's posterior mean of x), from this run's draws; the draws of "
     "two runs cannot be paired, so this is not the probability that x increased",
