@@ -120,6 +120,14 @@ def summary_dict(res, command: list[str] | None = None) -> dict:
     }
     if res.pairs is not None:
         out["pairwise"] = {"groups": list(res.pairs.index), "p_row_greater": res.pairs.to_numpy()}
+        if res.pair_diff is not None:  # theta_row - theta_column: its mean and interval
+            out["pairwise"].update(
+                {
+                    "difference_mean": res.pair_diff["mean"].to_numpy(),
+                    f"difference_low_{L}": res.pair_diff["low"].to_numpy(),
+                    f"difference_high_{L}": res.pair_diff["high"].to_numpy(),
+                }
+            )
     if res.summary is not None:
         out["summary_mode"] = {k: v for k, v in res.summary.items() if k != "kept_labels"}
     out = _clean(out)

@@ -187,6 +187,8 @@ class Results:
     checks: dict | None
     pairs: pd.DataFrame | None
     heat: dict | None
+    # --compare: theta_row - theta_column, data units: "mean", "low", "high" (DataFrames like pairs), "level"
+    pair_diff: dict | None = None
     methods: dict = field(default_factory=dict)
     predictors: dict | None = None  # group-level predictors: coefficients, contrasts, consensus per level, spread
     summary: dict | None = None  # summary mode: kept groups, error figures, classic R-hat screen
@@ -424,6 +426,22 @@ def prob_greater(theta: np.ndarray, idx: np.ndarray) -> np.ndarray:
         out[a] = (sub[:, a : a + 1] > sub).mean(axis=0)
     out[np.arange(m), np.arange(m)] = np.nan
     return out
+
+
+def pair_differences(theta: np.ndarray, idx: np.ndarray, level: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(mean, low, high)[a, b] of theta_a - theta_b over the draws theta (S, J) of the groups idx: the mean and the
+    central `level` interval (numpy's linear quantiles, to the bit); NaN on the diagonal."""
+    sub = theta[:, idx]
+    m = len(idx)
+    mean, low, high = (np.full((m, m), np.nan) for _ in range(3))
+    for a in range(m):
+        others = [b for b in range(m) if b != a]
+        if not others:
+            continue
+        d = sub[:, a : a + 1] - sub[:, others]
+        mean[a, others] = d.mean(axis=0)
+        low[a, others], high[a, others] = _quantiles(d, [(1 - level) / 2, (1 + level) / 2])
+    return mean, low, high
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1520,6 +1538,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
     clock.append(time.perf_counter())
     heat = None
     pairs = None
+    th_pairs = idx_pairs = None
     if summary_mode:
         if pair_idx is not None:
             kept = {lab: i for i, lab in enumerate(fit.kept_labels)}
@@ -1535,6 +1554,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
             pairs = pd.DataFrame(
                 prob_greater(th, idx), index=pd.Index(list(compare), name="group"), columns=list(compare)
             )
+            th_pairs, idx_pairs = th, idx
     else:
         heat = g.pop("heat")
         if pair_idx is not None:
@@ -1542,6 +1562,12 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
             pairs = pd.DataFrame(
                 prob_greater(th, pair_idx), index=pd.Index(list(compare), name="group"), columns=list(compare)
             )
+            th_pairs, idx_pairs = th, pair_idx
+    pair_diff = None
+    if th_pairs is not None:  # internal units to data units: a difference takes the scale, not the centre
+        frame = lambda x: pd.DataFrame(x * p.scale, index=pd.Index(list(compare), name="group"), columns=list(compare))  # noqa: E731
+        dm, dl, dh = pair_differences(th_pairs, idx_pairs, o.level)
+        pair_diff = {"mean": frame(dm), "low": frame(dl), "high": frame(dh), "level": o.level}
     clock.append(time.perf_counter())
     st = p.stats
     s = raw.settings
@@ -1638,6 +1664,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
         new_group=new_group,
         checks=checks,
         pairs=pairs,
+        pair_diff=pair_diff,
         heat=heat,
         methods=methods,
         summary=summary_info,

@@ -464,21 +464,35 @@ PAIR_LINES = 10  # head-to-head pairs printed; every pair is in summary.json and
 
 
 def compare_lines(res, num: Numbers) -> list[str]:
-    """--compare: for each pair, P(theta_a > theta_b) (results.Results.pairs, as the page's head-to-head table) and
-    the difference of the two posterior means (the mean of the difference)."""
+    """--compare: for each pair, P(theta_a > theta_b) (results.Results.pairs, as the page's head-to-head table),
+    the two posterior means and the difference theta_a - theta_b: its mean and credible interval
+    (results.Results.pair_diff)."""
     pairs = res.pairs
     names = list(pairs.index)
     t = res.table
     mean = dict(zip(t["group"], t["theta_mean"].to_numpy(dtype=float)))
+    diff = res.pair_diff
     out = []
     every = [(a, b) for a in range(len(names)) for b in range(a + 1, len(names))]
+
+    def signed(x) -> str:
+        return ("+" if x >= 0 else "-") + num(abs(x), 1)
+
     for a, b in every[:PAIR_LINES]:
         x, y = _one_line(names[a]), _one_line(names[b])
-        d = mean[names[a]] - mean[names[b]]
-        out.append(
+        line = (
             f"compare: P({x} > {y}) {prob(pairs.iat[a, b], '-')}; posterior means {x} {num(mean[names[a]])}, "
-            f"{y} {num(mean[names[b]])}, difference {'+' if d >= 0 else '-'}{num(abs(d), 1)}"
+            f"{y} {num(mean[names[b]])}"
         )
+        if diff is None:
+            line += f", difference {signed(mean[names[a]] - mean[names[b]])}"
+        else:
+            lo, hi = diff["low"].iat[a, b], diff["high"].iat[a, b]
+            line += (
+                f"; {x} - {y} {signed(diff['mean'].iat[a, b])} "
+                f"({level_label(diff['level'])} interval {signed(lo)} to {signed(hi)})"
+            )
+        out.append(line)
     if len(every) > PAIR_LINES:
         out.append(f"  ... {len(every) - PAIR_LINES} more pairs on the page and in summary.json ('pairwise')")
     return out

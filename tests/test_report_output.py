@@ -179,6 +179,42 @@ def test_csv_columns_agree_with_the_draws(run):
     np.testing.assert_array_equal([float(r[i]) for r in rows[1:]], table["rank_mean"].to_numpy())
 
 
+def test_pairwise_differences_agree_with_the_draws(run):
+    # Source: the draws in draws.nc; theta_a - theta_b summarised with numpy (mean, np.quantile's linear
+    # method at the run's 90% level). The reporter computes in internal units and scales back, so the two
+    # agree to float round-off, not to the bit.
+    post = xr.open_dataset(run / "draws.nc", group="posterior", engine="h5netcdf")
+    labels = [str(x) for x in post["group"].values]
+    theta = post["theta"].values.reshape(-1, len(labels))
+    post.close()
+    pw = json.loads((run / "summary.json").read_text(encoding="utf-8"))["pairwise"]
+    idx = [labels.index(g) for g in pw["groups"]]
+    scale = np.abs(theta).max()
+    for a, ia in enumerate(idx):
+        for b, ib in enumerate(idx):
+            got = (pw["difference_mean"][a][b], pw["difference_low_90"][a][b], pw["difference_high_90"][a][b])
+            if a == b:
+                assert all(v is None for v in got)  # NaN on the diagonal is written as null
+                continue
+            d = theta[:, ia] - theta[:, ib]
+            want = (d.mean(), *np.quantile(d, [0.05, 0.95]))
+            np.testing.assert_allclose(got, want, rtol=0, atol=1e-12 * scale)
+            assert got[1] <= got[0] <= got[2]
+            assert abs(pw["p_row_greater"][a][b] - (d > 0).mean()) < 1e-15
+    # the page's head-to-head section lists every pair's difference with the same figures
+    from pooling.report.numbers import Values, typical_sd
+
+    page = (run / "report.html").read_text(encoding="utf-8")
+    table = pd.DataFrame(json.loads((run / "summary.json").read_text(encoding="utf-8"))["groups_table"])
+    v = Values(typical_sd(table["theta_sd"]))
+    section = page[page.index('<section id="h2h">') :]
+    section = section[: section.index("</section>")]
+    assert "90% credible interval" in section
+    for a in range(len(idx)):
+        for b in range(a + 1, len(idx)):
+            assert f'<td class="n">{v(pw["difference_mean"][a][b])}</td>' in section
+
+
 def test_neutralise_covers_tab_and_carriage_return(tmp_path):
     # Source: OWASP "CSV Injection": the trigger characters are =, +, -, @, tab (0x09) and
     # carriage return (0x0D).

@@ -149,6 +149,36 @@ def test_pairwise_matches_the_normal_difference_formula():
             assert abs(M[a, b] + M[b, a] - 1) < 1e-12  # continuous draws: no ties
 
 
+def test_pair_differences_match_the_normal_difference_formula():
+    # Source: for independent theta_a ~ N(m_a, s_a^2), theta_b ~ N(m_b, s_b^2), theta_a - theta_b is
+    # N(m_a - m_b, s_a^2 + s_b^2); its quantiles from scipy.stats.norm.ppf. Tolerances: 4.5 Monte Carlo
+    # standard errors of S independent draws, s / sqrt(S) for the mean and sqrt(p (1 - p) / S) / pdf(z_p) * s
+    # for a sample p-quantile (the asymptotic variance of a sample quantile).
+    from pooling.results import pair_differences
+
+    means = np.array([0.0, 0.4, -1.0, 2.0])
+    sds = np.array([1.0, 0.5, 2.0, 0.25])
+    S = 200_000
+    rng = np.random.default_rng(11)
+    theta = means + sds * rng.standard_normal((S, 4))
+    idx = np.array([2, 0, 3, 1])
+    mean, low, high = pair_differences(theta, idx, 0.9)
+    for a, ia in enumerate(idx):
+        for b, ib in enumerate(idx):
+            if a == b:
+                assert np.isnan(mean[a, b]) and np.isnan(low[a, b]) and np.isnan(high[a, b])
+                continue
+            m, s = means[ia] - means[ib], np.hypot(sds[ia], sds[ib])
+            assert abs(mean[a, b] - m) < 4.5 * s / np.sqrt(S)
+            for got, p in ((low[a, b], 0.05), (high[a, b], 0.95)):
+                z = stats.norm.ppf(p)
+                se = np.sqrt(p * (1 - p) / S) / stats.norm.pdf(z) * s
+                assert abs(got - (m + s * z)) < 4.5 * se, (a, b, p, got)
+            # the same draws summarised by numpy: the same bits
+            d = theta[:, ia] - theta[:, ib]
+            assert low[a, b] == np.quantile(d, (1 - 0.9) / 2) and high[a, b] == np.quantile(d, (1 + 0.9) / 2)
+
+
 def test_pairwise_refuses_an_unknown_group():
     from pooling.errors import InputError
 

@@ -163,12 +163,16 @@ def test_the_consensus_and_the_comparison_are_the_runs_own_figures(asked):
     mean = {r["group"]: r["theta_mean"] for r in s["groups_table"]}
     printed = [ln for ln in lines if ln.startswith("compare: ")]
     assert len(printed) == 3
+
+    def signed(v):
+        return ("+" if v >= 0 else "-") + num(abs(v), 1)
+
     for ln, (a, b) in zip(printed, [(0, 1), (0, 2), (1, 2)]):
         x, y = pw["groups"][a], pw["groups"][b]
-        d = mean[x] - mean[y]
         assert ln == (
             f"compare: P({x} > {y}) {prob(pw['p_row_greater'][a][b], '-')}; posterior means {x} {num(mean[x])}, "
-            f"{y} {num(mean[y])}, difference {'+' if d >= 0 else '-'}{num(abs(d), 1)}"
+            f"{y} {num(mean[y])}; {x} - {y} {signed(pw['difference_mean'][a][b])} (95% interval "
+            f"{signed(pw['difference_low_95'][a][b])} to {signed(pw['difference_high_95'][a][b])})"
         )
     assert printed[0].startswith("compare: P(G9 > G0) ")  # G9 sits far above: P(G9 > G0) near 1
     assert float(printed[0].split(")")[1].split(";")[0].strip(" >")) > 0.99

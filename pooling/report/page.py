@@ -1280,7 +1280,31 @@ def _pairs(res: Results, figs: dict) -> str:
         '<section id="h2h"><h2>Head to head</h2><p>Each cell is P(theta of the row group &gt; theta of the column '
         "group), the share of draws in which it holds.</p>"
         f"<table><thead><tr><th>row &gt; column</th>{head}</tr></thead><tbody>{''.join(body)}"
-        "</tbody></table></section>"
+        f"</tbody></table>{_pair_differences(res)}</section>"
+    )
+
+
+def _pair_differences(res: Results) -> str:
+    """Each pair's difference theta_a - theta_b: its posterior mean and credible interval (results.pair_differences)."""
+    d = res.pair_diff
+    if d is None:
+        return ""
+    names = list(d["mean"].index)
+    v = Values(typical_sd(res.table["theta_sd"]))
+    rows = [
+        [
+            f"{esc(label(names[a], 18))} − {esc(label(names[b], 18))}",
+            v(d["mean"].iat[a, b]),
+            interval_html(v, d["low"].iat[a, b], d["high"].iat[a, b]),
+        ]
+        for a in range(len(names))
+        for b in range(a + 1, len(names))
+    ]
+    lvl = level_label(d["level"])
+    return (
+        f"<p>The difference between two groups' true values, with its {lvl} credible interval (an interval that "
+        "excludes 0 says the two differ at that level).</p>"
+        + html_table([("difference", False), ("mean", True), (f"{lvl} interval", True)], rows)
     )
 
 
