@@ -80,6 +80,8 @@ def runs(tmp_path_factory):
                 "--allowed-bias",
                 "0.5",
                 "--labs",
+                "--compare",
+                "A,G,C",
             ]
         )
         assert code in (0, 3)
@@ -140,6 +142,7 @@ def test_summary_json_is_shifted_exactly(runs, offset):
         "new_group_outside",
         "diagnostics",
         "groups_table",
+        "pairwise",  # P(row > column) and the differences theta_a - theta_b: no location, equal at every offset
     ):
         _same_or_shifted(a[key], b[key], offset, key)
     assert b["run"]["internal_center"] - offset == a["run"]["internal_center"]
