@@ -253,7 +253,13 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required
 
     q = p.add_argument_group("report")
     q.add_argument("--level", type=_level, default=0.95, metavar="L", help="credible interval level (default 0.95)")
-    q.add_argument("--top", type=_count, default=3, metavar="K", help="report P(among the K best) (default 3)")
+    q.add_argument(
+        "--top",
+        type=_count,
+        metavar="K",
+        help="report P(among the K best); K at most the number of groups (default 3, or every group when there "
+        "are fewer)",
+    )
     q.add_argument(
         "--best",
         choices=["highest", "lowest"],
@@ -523,7 +529,7 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     folder is in place (a refit records the run there) and returns lines to print after the table; `protect`:
     (what, path) pairs that --out may not be or hold (the input files, the store)."""
     from . import fit as do_fit
-    from .asked import ReportOptions
+    from .asked import ReportOptions, check_k
     from .output import check_target, write_run
     from .results import compute, resolve_groups
     from .terminal import print_results
@@ -535,6 +541,7 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     from .asked import split_compare
 
     resolve_groups(tuple(stats.labels), split_compare(options.compare, tuple(stats.labels)))
+    check_k(options.k, stats.J, "--top")  # more than the groups there are is refused, not cut
     # --- hardening: extreme magnitudes -------------------------------------------------------------
     # The statistics and the sampler hold data of 1e-300 or 1e300 in a power-of-two unit, but the
     # reporter computes in the user's units, where a variance of such numbers under- or overflows
