@@ -30,25 +30,25 @@ CASES = [
         "text in value",
         "lab,y\na,1.0\nb,n/a\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'y'", "row 2", "'n/a'"],
+        ["column 'y'", "line 3:", "'n/a'"],
     ),
     (
         "inf in value",
         "lab,y\na,1.0\nb,inf\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'y'", "row 2", "finite"],
+        ["column 'y'", "line 3:", "finite"],
     ),
     (
         "empty cell in value",
         "lab,y\na,1.0\nb,\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'y'", "row 2", "empty"],
+        ["column 'y'", "line 3:", "empty"],
     ),
     (
         "empty group label",
         "lab,y\na,1.0\n,2.0\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'lab'", "row 2", "group label"],
+        ["column 'lab'", "line 3:", "group label"],
     ),
     (
         "missing column",
@@ -74,7 +74,7 @@ CASES = [
         "one row per group, repeated",
         "lab,est,se\na,1.0,0.5\na,2.0,0.1\nc,1.5,0.2\n",
         ["--group", "lab", "--estimate", "est", "--std-error", "se"],
-        ["row 2", "one row per group", "'a'"],
+        ["line 3:", "one row per group", "'a'", "first in line 2"],
     ),
     # Source: Unicode Standard Annex #15 (normalisation forms): U+00FC and U+0075 U+0308 are
     # canonically equivalent, and so are the Kelvin sign U+212A and the letter K.
@@ -171,7 +171,7 @@ def test_no_traceback_in_a_real_process(tmp_path):
     )
     assert proc.returncode == 2
     assert proc.stderr.strip().count("\n") == 0 and "Traceback" not in proc.stderr
-    assert "'oops'" in proc.stderr and "row 2" in proc.stderr
+    assert "'oops'" in proc.stderr and "line 3:" in proc.stderr
     assert not (tmp_path / "run").exists()
 
 
