@@ -1599,7 +1599,8 @@ def from_summaries(
     `group_columns` (predictors: one value per group).
 
     A group of one measurement has no sample sd, and tables write it as an empty cell: with n = 1 an empty sd
-    is taken as it is meant (M2 = 0). Such a group informs its mean theta_j, not the within-group variance.
+    (or 0) is taken as it is meant (M2 = 0), and any other sd is refused, naming the row and the group, since one
+    measurement has no spread. Such a group informs its mean theta_j, not the within-group variance.
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
     where = str(data) if not isinstance(data, pd.DataFrame) else source
@@ -1638,6 +1639,14 @@ def from_summaries(
             raise InputError(
                 f"bad input in {_where(source)}, column '{sd}', group {_show(labels.iloc[i])}: "
                 f"expected a standard deviation >= 0, found {sv[i]:g}"
+            )
+        if nv[i] == 1 and sv[i] != 0:
+            # one measurement has no spread: an sd beside n = 1 is a slip in n or in the sd (an sd from a group's
+            # other rows, a wrong column), and taking either at its word would misstate the group
+            raise InputError(
+                f"bad input in {_where(source)}, column '{sd}', {rows(i + 1)}, group {_show(labels.iloc[i])}: "
+                f"a group of one measurement (n = 1) has no spread, so its sd must be empty or 0; found {sv[i]:g} "
+                f"(correct n in column '{n}', or the sd)"
             )
     unit = choose_unit(mv, sv)
     mv, sv = mv / unit, sv / unit
