@@ -970,15 +970,17 @@ def cmd_batches(args, argv) -> int:
             )
         )
         return E.EXIT_OK
-    print(
-        f"{'id':>4}  {'name':28}{'status':11}{'rows':>10}{'groups':>8}  {'dated':26}{'changed':26}{'sha256':14}columns"
-    )
-    for b in batches:
-        name = b.name if len(b.name) <= 27 else b.name[:26] + "…"
-        print(
-            f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
-            f"{b.sha256[:12]:14}{_kept(columns, b.id, text=True)}".rstrip()
-        )
+    from .terminal import text_table
+
+    head = [("id", ">"), ("name", "<"), ("status", "<"), ("rows", ">"), ("groups", ">"), ("dated", "<")]
+    head += [("changed", "<"), ("sha256", "<"), ("columns", "<"), ("note", "<")]
+    cells = [
+        [b.id, b.name, b.status, b.rows, b.groups, b.dated_at, b.changed_at, b.sha256[:12]]
+        + [_kept(columns, b.id, text=True), b.note]
+        for b in batches
+    ]
+    for line in text_table(head, cells):
+        print(line)
     active = sum(b.status == "active" for b in batches)
     print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")
     damaged = sum(b.id not in columns for b in batches)

@@ -246,7 +246,7 @@ def test_the_ledger_lists_the_columns_each_batch_keeps(tmp_path, capsys, backend
     assert [(b["name"], b["columns"]) for b in listed] == [("day-0.csv", ["age", "method"]), ("day-1.csv", [])]
     assert cli.main(["batches", store]) == 0
     table = capsys.readouterr().out.splitlines()
-    assert table[0].split()[-1] == "columns" and table[1].endswith("age, method")
+    assert table[0].split()[-2:] == ["columns", "note"] and table[1].endswith("age, method")
     assert table[2].split()[-1] == listed[1]["sha256"][:12]
     # a batch whose statistics fail their checksum is listed, its columns not: checkup names the damage
     execute(
