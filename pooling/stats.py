@@ -987,8 +987,8 @@ def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
                 cut = data.rfind(b"\n") + 1
                 if cut == 0 and len(data) > (8 << 20):  # one very long line (or '\r' line ends): cut it
                     cut = len(data) - 4  # at the start of a character, so that both halves decode alike
-                    while cut > 0 and 0x80 <= data[cut] <= 0xBF:
-                        cut -= 1
+                    while cut > 0 and (0x80 <= data[cut] <= 0xBF or data[cut - 1 : cut + 1] == b"\r\n"):
+                        cut -= 1  # (nor between the two bytes of a \r\n, which would count as two line ends)
                 data, carry = data[:cut], data[cut:]
             else:
                 carry = b""
@@ -996,8 +996,8 @@ def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
                 try:
                     data.decode("utf-8")
                     some_utf8 = True
-                except UnicodeDecodeError:  # rare: look line by line
-                    for k, line in enumerate(data.split(b"\n")):
+                except UnicodeDecodeError:  # rare: look line by line (lines as an editor shows them)
+                    for k, line in enumerate(re.split(rb"\r\n|\r|\n", data)):
                         if line.isascii():
                             continue
                         try:
@@ -1006,7 +1006,7 @@ def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
                         except UnicodeDecodeError:
                             if first_bad is None:
                                 first_bad = (line_no + k + 1, line)
-            line_no += data.count(b"\n")
+            line_no += data.count(b"\n") + data.count(b"\r") - data.count(b"\r\n")
             if not block:
                 break
     if _file_key(path) == key:

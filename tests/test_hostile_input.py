@@ -596,6 +596,17 @@ def test_a_byte_the_encoding_does_not_define_names_its_line(tmp_path, encoding):
     assert ("read as Windows-1252" in line) == (encoding is None)
 
 
+@pytest.mark.parametrize("end", ["\n", "\r\n", "\r"])
+def test_a_line_from_another_encoding_is_named_as_an_editor_numbers_it(tmp_path, end):
+    # a UTF-8 file with one Windows-1252 line (0xE9, é): its line whatever the line ends, a blank line counted
+    p = tmp_path / "mixed.csv"
+    lines = [b"lab,y", "Café,1".encode(), b"", "Zoë,2".encode(), b"Caf\xe9,3", b"b,4", b""]
+    p.write_bytes(end.encode().join(lines))
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "line 5: the file is UTF-8 except for this line" in _one_line(e.value), str(e.value)
+
+
 def test_a_lone_surrogate_in_utf16_names_its_line(tmp_path):
     p = tmp_path / "u16.csv"
     p.write_bytes("lab,y\na,1\nb,2\n".encode("utf-16") + b"\x00\xd8" + "x,3\nc,4\n".encode("utf-16-le"))
