@@ -252,8 +252,8 @@ def _checked_partition(
     df, group: str, value: str, csv: bool, whole: frozenset, csv_read: tuple | None = None, partition_info=None
 ):
     """Refuse missing labels and non-finite values (naming the file, and the row of a file read as one piece: a
-    CSV's line as a text editor numbers it, `csv_read` being the files' (encoding, separator); a Parquet file's row), strip
-    CSV labels, add the order key."""
+    CSV's line as a text editor numbers it, `csv_read` being the files' (encoding, separator); a Parquet file's
+    row), strip CSV labels, add the order key."""
     number = (partition_info or {}).get("number", 0)
     file = str(df[_FILE].iloc[0]) if len(df) and _FILE in df.columns else "the input"
     labels = df[group]
@@ -452,7 +452,7 @@ def read_table_dask(
     try:
         if kind == "parquet":
             ddf = _parquet_frame(dd, files, group, value)
-            whole, text = frozenset(), None
+            whole, csv_read = frozenset(), None
         else:
             local = [f for f in files if "://" not in f]
             enc = (
@@ -461,10 +461,10 @@ def read_table_dask(
                 else (S._detect_encoding(Path(local[0]), None) if local else "utf-8")
             )
             ddf, sep = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
-            text = (enc, sep)
+            csv_read = (enc, sep)
             limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
             whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
-        return _reduce(dask, ddf, files, kind, whole, text, group, value, scheduler, source, record)
+        return _reduce(dask, ddf, files, kind, whole, csv_read, group, value, scheduler, source, record)
     except UnicodeError as exc:  # a file (often not the first, whose encoding was detected) in another encoding
         raise InputError(_undecodable(files, enc, exc, detected=not encoding)) from None
 
@@ -503,7 +503,7 @@ def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected:
     return S._encoding_message(local[0] if local else files[0], enc or "utf-8", exc)
 
 
-def _reduce(dask, ddf, files, kind, whole, text, group, value, scheduler, source, record) -> S.GroupStats:
+def _reduce(dask, ddf, files, kind, whole, csv_read, group, value, scheduler, source, record) -> S.GroupStats:
     """The group statistics of the checked frame, computed on `scheduler`."""
     meta = pd.DataFrame(
         {
@@ -512,7 +512,7 @@ def _reduce(dask, ddf, files, kind, whole, text, group, value, scheduler, source
             _ORDER: pd.Series([], dtype=np.int64),
         }
     )
-    checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, text, meta=meta)
+    checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, csv_read, meta=meta)
     grouped = checked.groupby(group)
     # one output partition: J groups' statistics are small by design, and the shuffle-based
     # reduction that Dask picks by itself for many partitions failed with this aggregation (2026.8)
