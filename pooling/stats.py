@@ -1130,9 +1130,8 @@ def iter_table_chunks(
         if first_row is not None and any(c.strip() for c in first_row[len(raw_header) :]):
             # pandas would take the surplus as an index and shift every column by one
             raise InputError(
-                f"bad input in '{src}', {Rows((src, enc, sep))(1)}: expected {len(raw_header)} fields as in the "
-                "header, found "
-                f"{len(first_row)} (an unquoted '{sep}' inside a label or a number?)"
+                f"bad input in '{src}', {_first_row_line(src, enc, sep)}: expected {len(raw_header)} fields as in "
+                f"the header, found {len(first_row)} (an unquoted '{sep}' inside a label or a number?)"
             )
         header = list(pd.read_csv(path, sep=sep, nrows=0, encoding=enc, skipinitialspace=True).columns)
         names = [str(c).strip() for c in header]
@@ -1475,6 +1474,18 @@ def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:
     except Exception:  # a message helper: the caller falls back to the parsed value
         return None
     return None
+
+
+def _first_row_line(src: str, enc: str, sep: str) -> str:
+    """'line N' of the row _first_rows takes for the first data row (the first with a cell that is not blank)."""
+    try:
+        with contextlib.closing(csv_records(src, enc, sep)) as records:
+            for _, first, fields, _ in records:
+                if any(cell.strip() for cell in fields):
+                    return f"line {first}"
+    except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
+        pass
+    return "the first data row"
 
 
 def _parser_message(src: str, exc, sep: str, enc: str) -> str:

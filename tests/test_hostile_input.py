@@ -328,6 +328,7 @@ def test_very_long_labels(tmp_path):
         ("lab,y\na,1\nb,2,4\n", "line 3: expected 2 fields"),  # pandas would drop the surplus
         ("lab,y\na,1,5\n", "line 2: expected 2 fields"),  # an unquoted decimal comma
         ("\nlab,y\n\na,1,3\nb,2\n", "line 4: expected 2 fields"),  # blank lines before and after the header
+        ("lab,y\n,,\na,1,3\n", "line 3: expected 2 fields"),  # the first row with a cell that is not blank
         ('lab,y\na,"1\n2"\nb,2,4\n', "line 4: expected 2 fields"),  # pandas says line 3: it skips quoted breaks
     ],
 )
