@@ -17,6 +17,7 @@ import numpy as np
 from .errors import InputError
 
 BEST = ("highest", "lowest")
+TOP_DEFAULT = 3  # the size of the top group when none is asked for (every group, when there are fewer)
 
 
 def check_level(level) -> None:
@@ -26,10 +27,20 @@ def check_level(level) -> None:
         )
 
 
-def check_k(k, J: int) -> int:
+def check_k(k, J: int, option: str = "k (the size of the top group)") -> int:
+    """The size of the top group for J groups. None (not asked) is TOP_DEFAULT, or J when there are fewer groups; a
+    k that was asked for must be a whole number from 1 to J: more than J would make P(top k) 1 for every group, so
+    it is refused rather than quietly cut to J. `option` names it in the message (the command line: '--top')."""
+    if k is None:
+        return min(TOP_DEFAULT, J)
     if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
-        raise InputError(f"bad option: k (the size of the top group) must be a whole number of at least 1; found {k!r}")
-    return int(min(k, J))
+        raise InputError(f"bad option {option}: expected a whole number of at least 1; found {k!r}")
+    if k > J:
+        raise InputError(
+            f"bad option {option}: asked for the top {int(k)}, but the data hold {J} group{'' if J == 1 else 's'}; "
+            f"give at most {J}, or leave it out (the top {TOP_DEFAULT}, or every group when there are fewer)"
+        )
+    return int(k)
 
 
 def check_limits(lower, upper) -> None:
@@ -64,7 +75,9 @@ def level_key(level: float) -> str:
 
 @dataclass(frozen=True)
 class ReportOptions:
-    """What the reader asked for. level: credible interval level; k: size of the top group; best:
+    """What the reader asked for. level: credible interval level; k: size of the top group (None, the default: not
+    asked, which means the top 3, or every group when there are fewer; a k above the number of groups is refused
+    when the answers are computed, pooling.results.compute, and by the command line before sampling); best:
     'highest' or 'lowest'; threshold; lower/upper specification limits; allowed_bias; compare: group
     labels for the head-to-head matrix; assigned/sigma_pt: x_pt and sigma_pt of the z-scores (default:
     ISO 13528 Algorithm A on the group means); decide_at: the probability from which a statement
@@ -73,7 +86,7 @@ class ReportOptions:
     sigma_pt is given)."""
 
     level: float = 0.95
-    k: int = 3
+    k: int | None = None
     best: str = "highest"
     threshold: float | None = None
     lower: float | None = None
@@ -90,7 +103,7 @@ class ReportOptions:
             object.__setattr__(self, "compare", (self.compare,))
         object.__setattr__(self, "compare", tuple(str(x) for x in self.compare))
         check_level(self.level)
-        if isinstance(self.k, bool) or not isinstance(self.k, (int, np.integer)) or self.k < 1:
+        if self.k is not None and (isinstance(self.k, bool) or not isinstance(self.k, (int, np.integer)) or self.k < 1):
             raise InputError(
                 f"bad option: k (the size of the top group) must be a whole number of at least 1; found {self.k!r}"
             )
@@ -149,7 +162,7 @@ class ReportOptions:
 
         return ReportOptions(
             level=get("level", 0.95),
-            k=get("top", 3),
+            k=get("top"),
             best=get("best", "highest"),
             threshold=get("threshold"),
             lower=get("lower_limit"),

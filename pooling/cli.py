@@ -253,7 +253,13 @@ def _add_fit_options(p: argparse.ArgumentParser, data: bool = True, out_required
 
     q = p.add_argument_group("report")
     q.add_argument("--level", type=_level, default=0.95, metavar="L", help="credible interval level (default 0.95)")
-    q.add_argument("--top", type=_count, default=3, metavar="K", help="report P(among the K best) (default 3)")
+    q.add_argument(
+        "--top",
+        type=_count,
+        metavar="K",
+        help="report P(among the K best); K at most the number of groups (default 3, or every group when there "
+        "are fewer)",
+    )
     q.add_argument(
         "--best",
         choices=["highest", "lowest"],
@@ -524,7 +530,7 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     change report, which the terminal prints after the answer) or None; `protect`:
     (what, path) pairs that --out may not be or hold (the input files, the store)."""
     from . import fit as do_fit
-    from .asked import ReportOptions
+    from .asked import ReportOptions, check_k
     from .output import check_target, write_run
     from .results import compute, resolve_groups
     from .terminal import print_results
@@ -536,6 +542,7 @@ def run_fit(args, stats, argv, *, init=None, more=None, after=None, protect=()) 
     from .asked import split_compare
 
     resolve_groups(tuple(stats.labels), split_compare(options.compare, tuple(stats.labels)))
+    check_k(options.k, stats.J, "--top")  # more than the groups there are is refused, not cut
     # --- hardening: extreme magnitudes -------------------------------------------------------------
     # The statistics and the sampler hold data of 1e-300 or 1e300 in a power-of-two unit, but the
     # reporter computes in the user's units, where a variance of such numbers under- or overflows
@@ -963,15 +970,17 @@ def cmd_batches(args, argv) -> int:
             )
         )
         return E.EXIT_OK
-    print(
-        f"{'id':>4}  {'name':28}{'status':11}{'rows':>10}{'groups':>8}  {'dated':26}{'changed':26}{'sha256':14}columns"
-    )
-    for b in batches:
-        name = b.name if len(b.name) <= 27 else b.name[:26] + "…"
-        print(
-            f"{b.id:>4}  {name:28}{b.status:11}{b.rows:>10}{b.groups:>8}  {b.dated_at:26}{b.changed_at or '':26}"
-            f"{b.sha256[:12]:14}{_kept(columns, b.id, text=True)}".rstrip()
-        )
+    from .terminal import text_table
+
+    head = [("id", ">"), ("name", "<"), ("status", "<"), ("rows", ">"), ("groups", ">"), ("dated", "<")]
+    head += [("changed", "<"), ("sha256", "<"), ("columns", "<"), ("note", "<")]
+    cells = [
+        [b.id, b.name, b.status, b.rows, b.groups, b.dated_at, b.changed_at, b.sha256[:12]]
+        + [_kept(columns, b.id, text=True), b.note]
+        for b in batches
+    ]
+    for line in text_table(head, cells):
+        print(line)
     active = sum(b.status == "active" for b in batches)
     print(f"{len(batches)} batches in the ledger, {active} active; {len(runs)} recorded runs", end="")
     damaged = sum(b.id not in columns for b in batches)

@@ -248,8 +248,12 @@ def moments_aggregation():
 # reading and checking partitions
 
 
-def _checked_partition(df, group: str, value: str, csv: bool, whole: frozenset, partition_info=None):
-    """Refuse missing labels and non-finite values (naming the file), strip CSV labels, add the order key."""
+def _checked_partition(
+    df, group: str, value: str, csv: bool, whole: frozenset, csv_read: tuple | None = None, partition_info=None
+):
+    """Refuse missing labels and non-finite values (naming the file, and the row of a file read as one piece: a
+    CSV's line as a text editor numbers it, `csv_read` being the files' (encoding, separator); a Parquet file's
+    row), strip CSV labels, add the order key."""
     number = (partition_info or {}).get("number", 0)
     file = str(df[_FILE].iloc[0]) if len(df) and _FILE in df.columns else "the input"
     labels = df[group]
@@ -265,11 +269,12 @@ def _checked_partition(df, group: str, value: str, csv: bool, whole: frozenset, 
             where = df[_FILE].iloc[i] if _FILE in df.columns else file
             cell = df[col].iloc[i]
             found = "an empty cell" if pd.isna(cell) or str(cell).strip() == "" else S._show(cell)
-            row = (
-                f", row {int(df['__pooling_row__'].iloc[i]) + 1}"
-                if "__pooling_row__" in df.columns
-                else (f", row {i + 1}" if str(where) in whole else "")
-            )
+            if "__pooling_row__" in df.columns:
+                row = f", row {int(df['__pooling_row__'].iloc[i]) + 1}"
+            elif str(where) in whole:
+                row = ", " + (S.Rows((str(where), *csv_read)) if csv_read else S.FRAME_ROWS)(i + 1)
+            else:
+                row = ""
             raise InputError(f"bad input in '{where}', column '{col}'{row}: expected {what}, found {found}")
     out = pd.DataFrame(
         {group: labels.astype(str).str.strip() if csv else labels.astype(str), value: vals}, index=df.index
@@ -361,6 +366,7 @@ def _parquet_frame(dd, files: list[str], group: str, value: str):
 
 
 def _csv_frame(dd, files: list[str], group: str, value: str, encoding, delimiter, thousands, decimal, blocksize):
+    """The CSV files as one Dask frame of the group and value columns, and the separator they are read with."""
     local = [f for f in files if "://" not in f]
     S.check_number_format(thousands, decimal)
     enc = S.check_encoding(encoding) if encoding else (S._detect_encoding(Path(local[0]), None) if local else "utf-8")
@@ -390,7 +396,7 @@ def _csv_frame(dd, files: list[str], group: str, value: str, encoding, delimiter
         include_path_column=_FILE,
         blocksize=blocksize,
     )
-    return ddf.rename(columns={g_raw: group, v_raw: value})
+    return ddf.rename(columns={g_raw: group, v_raw: value}), sep
 
 
 def _compute(dask, scheduler, *things):
@@ -446,7 +452,7 @@ def read_table_dask(
     try:
         if kind == "parquet":
             ddf = _parquet_frame(dd, files, group, value)
-            whole = frozenset()
+            whole, csv_read = frozenset(), None
         else:
             local = [f for f in files if "://" not in f]
             enc = (
@@ -454,10 +460,11 @@ def read_table_dask(
                 if encoding
                 else (S._detect_encoding(Path(local[0]), None) if local else "utf-8")
             )
-            ddf = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
+            ddf, sep = _csv_frame(dd, files, group, value, enc, delimiter, thousands, decimal, blocksize)
+            csv_read = (enc, sep)
             limit = dask.utils.parse_bytes(blocksize) if isinstance(blocksize, str) else blocksize
             whole = frozenset(f for f in files if "://" not in f and (limit is None or os.path.getsize(f) <= limit))
-        return _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source, record)
+        return _reduce(dask, ddf, files, kind, whole, csv_read, group, value, scheduler, source, record)
     except UnicodeError as exc:  # a file (often not the first, whose encoding was detected) in another encoding
         raise InputError(_undecodable(files, enc, exc, detected=not encoding)) from None
 
@@ -496,7 +503,7 @@ def _undecodable(files: list[str], enc: str | None, exc: UnicodeError, detected:
     return S._encoding_message(local[0] if local else files[0], enc or "utf-8", exc)
 
 
-def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source, record) -> S.GroupStats:
+def _reduce(dask, ddf, files, kind, whole, csv_read, group, value, scheduler, source, record) -> S.GroupStats:
     """The group statistics of the checked frame, computed on `scheduler`."""
     meta = pd.DataFrame(
         {
@@ -505,7 +512,7 @@ def _reduce(dask, ddf, files, kind, whole, group, value, scheduler, source, reco
             _ORDER: pd.Series([], dtype=np.int64),
         }
     )
-    checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, meta=meta)
+    checked = ddf.map_partitions(_checked_partition, group, value, kind == "csv", whole, csv_read, meta=meta)
     grouped = checked.groupby(group)
     # one output partition: J groups' statistics are small by design, and the shuffle-based
     # reduction that Dask picks by itself for many partitions failed with this aggregation (2026.8)

@@ -1473,7 +1473,7 @@ def _check_summary_options(fit, o: ReportOptions) -> ReportOptions:
     applied = fit.options
     for name in ("level", "k", "best", "threshold", "lower", "upper", "allowed_bias"):
         a, b = getattr(o, name), getattr(applied, name)
-        if a != b and not (name == "k" and min(a, fit.J) == min(b, fit.J)):
+        if a != b and not (name == "k" and check_k(a, fit.J) == check_k(b, fit.J)):
             raise InputError(
                 f"bad option: summary mode applied {name} = {b!r} while sampling; a report with "
                 f"{name} = {a!r} needs a new run"
@@ -1496,7 +1496,7 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
     J = p.J
     k = check_k(o.k, J)
     compare = split_compare(o.compare, p.stats.labels)
-    o = replace(o, compare=compare)  # as resolved, for the summary
+    o = replace(o, compare=compare, k=k)  # as resolved, for the summary
     if len(compare) > MAX_PAIRWISE:
         raise InputError(f"bad option: at most {MAX_PAIRWISE} groups can be compared pairwise; found {len(compare)}")
     pair_idx = resolve_groups(p.stats.labels, compare) if compare else None
@@ -1564,7 +1564,9 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
             )
             th_pairs, idx_pairs = th, pair_idx
     pair_diff = None
-    if th_pairs is not None:  # internal units to data units: a difference takes the scale, not the centre
+    if (
+        th_pairs is not None and idx_pairs is not None
+    ):  # internal units to data units: a difference takes the scale, not the centre
         frame = lambda x: pd.DataFrame(x * p.scale, index=pd.Index(list(compare), name="group"), columns=list(compare))  # noqa: E731
         dm, dl, dh = pair_differences(th_pairs, idx_pairs, o.level)
         pair_diff = {"mean": frame(dm), "low": frame(dl), "high": frame(dh), "level": o.level}

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import codecs
 import contextlib
+import csv
 import errno
 import hashlib
 import math
@@ -392,7 +393,95 @@ def _where(source: str) -> str:
     return f"'{source}'" if source != "<frame>" else "the data frame"
 
 
-def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Series:
+@dataclass(frozen=True)
+class Rows:
+    """How a message names data row r of what was read (r from 1: the first row under the header, or of a frame).
+
+    A CSV file's row is named by its line as a text editor numbers it, 'line N' (the header is line 1; blank
+    lines, which the reader skips, and line breaks inside quoted cells are counted, so the number is where the
+    row stands in the file); a Parquet file's or a data frame's by the data row, 'row N'. `csv`: the file's
+    (path, encoding, separator), or None. The lines are found on the error path only, by reading the file again.
+    """
+
+    csv: tuple[str, str, str] | None = None
+
+    def __call__(self, row: int) -> str:
+        return self.many([row])[0]
+
+    def many(self, rows) -> list[str]:
+        if self.csv is None:
+            return [f"row {r}" for r in rows]
+        lines = csv_lines(*self.csv, rows)
+        # a file the csv module cannot read as pandas did (a cell beyond its size limit): the data row, said so
+        return [f"line {lines[r]}" if r in lines else f"data row {r}" for r in rows]
+
+
+FRAME_ROWS = Rows()
+
+
+def csv_records(path, enc: str, sep: str):
+    """(data row, first line, fields, pandas' line) of each record of a CSV file as the table reader takes them:
+    blank lines skipped (pandas' skip_blank_lines: nothing but blanks and tabs, other than the separator, on the
+    line), the header the first record left, data row 1 the one after it. Lines count from 1 as a text editor
+    counts them (\n, \r\n or \r alone end a line; a quoted cell's line breaks count); pandas' own line numbers
+    (in its parser's errors) leave out the line breaks inside quoted cells. For messages, on the error path."""
+    # pandas reads cells of any length; the csv module stops at 128 KiB unless told otherwise (raising the
+    # limit for a while can only let another reader take a longer cell, and _first_rows copes with either)
+    limit = csv.field_size_limit()
+    csv.field_size_limit(max(limit, 2**31 - 1))
+    try:
+        yield from _records(path, enc, sep)
+    finally:
+        csv.field_size_limit(limit)
+
+
+def _records(path, enc: str, sep: str):
+    took: list[str] = []  # the lines of the record being read
+    blanks = " \t".replace(sep, "")
+    with open(path, encoding=enc, newline="") as fh:
+
+        def lines():
+            for text in fh:
+                took.append(text)
+                yield text
+
+        reader = csv.reader(lines(), delimiter=sep, skipinitialspace=True)
+        start, row, header, inner = 1, 0, False, 0
+        for fields in reader:
+            first, start, before = start, reader.line_num + 1, inner
+            blank = len(took) == 1 and not took[0].rstrip("\r\n").strip(blanks)
+            inner += max(0, len(took) - 1)
+            took.clear()
+            if blank:
+                continue
+            if not header:
+                header = True
+                continue
+            row += 1
+            yield row, first, fields, first - before
+
+
+def csv_lines(path, enc: str, sep: str, rows) -> dict[int, int]:
+    """The line (as a text editor numbers it) on which each of the data rows `rows` (from 1) of a CSV file begins;
+    rows it cannot place (the file unreadable by the csv module, or shorter) are left out."""
+    want = {int(r) for r in rows}
+    out: dict[int, int] = {}
+    if not want:
+        return out
+    last = max(want)
+    try:
+        with contextlib.closing(csv_records(path, enc, sep)) as records:
+            for row, line, _, _ in records:
+                if row in want:
+                    out[row] = line
+                if row >= last:
+                    break
+    except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
+        pass  # a message helper: the caller names the data row instead
+    return out
+
+
+def _as_text(raw: pd.Series, source: str, column: str, row_offset: int, rows: Rows = FRAME_ROWS) -> pd.Series:
     """The column as pandas strings; a frame cell holding a lone surrogate (not encodable as UTF-8,
     so not storable in netCDF or JSON) is reported instead of crashing the conversion."""
     try:
@@ -404,7 +493,7 @@ def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Se
                     bytes(cell).decode("utf-8")
                 except UnicodeDecodeError:
                     raise InputError(
-                        f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                        f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: "
                         f"expected text in UTF-8, found the bytes {_show_bytes(bytes(cell))}"
                     ) from None
         raise
@@ -413,7 +502,7 @@ def _as_text(raw: pd.Series, source: str, column: str, row_offset: int) -> pd.Se
             if isinstance(cell, str) and re.search("[\ud800-\udfff]", cell):
                 ch = re.search("[\ud800-\udfff]", cell).group()  # type: ignore[union-attr]  # found just above
                 raise InputError(
-                    f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                    f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: "
                     f"expected text, found the unpaired surrogate U+{ord(ch):04X}"
                 ) from None
         raise
@@ -429,8 +518,10 @@ def _number_hint(cell) -> str:
     return ""
 
 
-def _check_values(raw: pd.Series, source: str, column: str, row_offset: int, written=None) -> np.ndarray:
-    """Return the column as finite float64, or raise naming the first bad row (1-based data row).
+def _check_values(
+    raw: pd.Series, source: str, column: str, row_offset: int, written=None, rows: Rows = FRAME_ROWS
+) -> np.ndarray:
+    """Return the column as finite float64, or raise naming the first bad row (`rows`: a CSV's line, else the row).
 
     written(row): the cell's text as it stands in the file (the CSV reader turned '1e999' into inf)."""
     if raw.dtype.kind in "fiu":
@@ -446,13 +537,13 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int, wri
             else:
                 found = "an empty cell" if np.isnan(vals[i]) else _show(raw.iloc[i])
             raise InputError(
-                f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+                f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: "
                 f"expected a finite number, found {found}"
             )
         return vals
     if raw.dtype.kind == "b":
         raise InputError(f"bad input in {_where(source)}, column '{column}': expected numbers, found true/false values")
-    as_text = _as_text(raw, source, column, row_offset)
+    as_text = _as_text(raw, source, column, row_offset, rows)
     vals = pd.to_numeric(as_text.str.strip(), errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
     bad = ~np.isfinite(vals)
     if bad.any():
@@ -465,7 +556,7 @@ def _check_values(raw: pd.Series, source: str, column: str, row_offset: int, wri
         )
         found += _number_hint(cell)
         raise InputError(
-            f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+            f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: "
             f"expected a finite number, found {found}"
         )
     return vals
@@ -543,14 +634,17 @@ def check_unicode_twins(labels, source: str, what: str = "the group labels") -> 
 _BAD_LABEL_CHARS = "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\ud800-\udfff]"
 
 
-def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, strip: bool = False) -> pd.Series:
+def _check_groups(
+    raw: pd.Series, source: str, column: str, row_offset: int, strip: bool = False, rows: Rows = FRAME_ROWS
+) -> pd.Series:
     missing = raw.isna().to_numpy().copy()
     if raw.dtype.kind not in "fiub":
-        missing |= (_as_text(raw, source, column, row_offset).str.strip() == "").fillna(True).to_numpy(dtype=bool)
+        text = _as_text(raw, source, column, row_offset, rows)
+        missing |= (text.str.strip() == "").fillna(True).to_numpy(dtype=bool)
     if missing.any():
         i = int(np.argmax(missing))
         raise InputError(
-            f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: "
+            f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: "
             "expected a group label, found an empty cell"
         )
     labels = raw.astype(str)
@@ -567,7 +661,7 @@ def _check_groups(raw: pd.Series, source: str, column: str, row_offset: int, str
         i = int(np.argmax(bad))
         ch = re.search(_BAD_LABEL_CHARS, labels.iloc[i]).group()  # type: ignore[union-attr]  # a bad label
         raise InputError(
-            f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a group label "
+            f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: expected a group label "
             f"of text, found the control character U+{ord(ch):04X} in it (tab and newline are allowed)"
         )
     return labels
@@ -608,19 +702,19 @@ def _same_number(a: str, b: str) -> bool:
         return False
 
 
-def _column_text(raw: pd.Series, source: str, column: str, row_offset: int) -> np.ndarray:
+def _column_text(raw: pd.Series, source: str, column: str, row_offset: int, rows: Rows = FRAME_ROWS) -> np.ndarray:
     """A group-level column of a chunk as text per row (cell_text); an empty cell or a control character is
     refused, naming the row."""
     if raw.dtype.kind in "fiub":
         values = [cell_text(x) for x in raw.to_numpy()]
     else:
-        text = _as_text(raw, source, column, row_offset)
+        text = _as_text(raw, source, column, row_offset, rows)
         values = [None if x is pd.NA or x is None else (x.strip() or None) for x in text.to_numpy(dtype=object)]
     out = np.empty(len(values), dtype=object)
     for i, x in enumerate(values):
         if x is None:
             raise InputError(
-                f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected a "
+                f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: expected a "
                 "value of the group-level column, found an empty cell"
             )
         out[i] = x
@@ -630,7 +724,7 @@ def _column_text(raw: pd.Series, source: str, column: str, row_offset: int) -> n
         i = int(np.flatnonzero(out == bad[0])[0])
         ch = re.search(_BAD_LABEL_CHARS, bad[0]).group()  # type: ignore[union-attr]  # a bad label
         raise InputError(
-            f"bad input in {_where(source)}, column '{column}', row {row_offset + i + 1}: expected text, "
+            f"bad input in {_where(source)}, column '{column}', {rows(row_offset + i + 1)}: expected text, "
             f"found the control character U+{ord(ch):04X}"
         )
     return out
@@ -646,10 +740,10 @@ class _PerGroup:
         self.source = source
         self.first: dict[str, dict[str, tuple[str, int]]] = {name: {} for name in self.names}
 
-    def add(self, labels: pd.Series, df: pd.DataFrame, row_offset: int) -> None:
+    def add(self, labels: pd.Series, df: pd.DataFrame, row_offset: int, rows: Rows = FRAME_ROWS) -> None:
         labs = np.asarray(labels.to_numpy(), dtype=object)
         for name in self.names:
-            text = _column_text(df[name], self.source, name, row_offset)
+            text = _column_text(df[name], self.source, name, row_offset, rows)
             pairs = pd.DataFrame({"g": labs, "v": text})
             first = ~pairs.duplicated(["g", "v"]).to_numpy()  # only distinct (group, value) pairs need a look
             seen = self.first[name]
@@ -659,21 +753,24 @@ class _PerGroup:
                 if prev is None:
                     seen[g] = (v, row_offset + int(i) + 1)
                 elif prev[0] != v and not _same_number(prev[0], v):
+                    there, here = rows.many([prev[1], row_offset + int(i) + 1])
                     raise InputError(
                         f"bad input in {_where(self.source)}, column '{name}', group {_show(g)}: a "
                         f"group-level column must hold one value per group; found {_show(prev[0])} in "
-                        f"row {prev[1]} and {_show(v)} in row {row_offset + int(i) + 1}"
+                        f"{there} and {_show(v)} in {here}"
                     )
 
     def values(self, labels) -> dict[str, list[str]]:
         return {name: [self.first[name][lab][0] for lab in labels] for name in self.names}
 
 
-def _one_row_columns(data: pd.DataFrame, labels: pd.Series, names, source: str) -> dict[str, list[str]]:
+def _one_row_columns(
+    data: pd.DataFrame, labels: pd.Series, names, source: str, rows: Rows = FRAME_ROWS
+) -> dict[str, list[str]]:
     """Group-level columns of a table with one row per group (summaries, estimates)."""
     out = {}
     for name in names:
-        out[name] = list(_column_text(data[name], source, name, 0))
+        out[name] = list(_column_text(data[name], source, name, 0, rows))
     return out
 
 
@@ -890,8 +987,8 @@ def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
                 cut = data.rfind(b"\n") + 1
                 if cut == 0 and len(data) > (8 << 20):  # one very long line (or '\r' line ends): cut it
                     cut = len(data) - 4  # at the start of a character, so that both halves decode alike
-                    while cut > 0 and 0x80 <= data[cut] <= 0xBF:
-                        cut -= 1
+                    while cut > 0 and (0x80 <= data[cut] <= 0xBF or data[cut - 1 : cut + 1] == b"\r\n"):
+                        cut -= 1  # (nor between the two bytes of a \r\n, which would count as two line ends)
                 data, carry = data[:cut], data[cut:]
             else:
                 carry = b""
@@ -899,8 +996,8 @@ def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
                 try:
                     data.decode("utf-8")
                     some_utf8 = True
-                except UnicodeDecodeError:  # rare: look line by line
-                    for k, line in enumerate(data.split(b"\n")):
+                except UnicodeDecodeError:  # rare: look line by line (lines as an editor shows them)
+                    for k, line in enumerate(re.split(rb"\r\n|\r|\n", data)):
                         if line.isascii():
                             continue
                         try:
@@ -909,7 +1006,7 @@ def _scan_utf8(path: Path) -> tuple[int, bytes] | Literal[False] | None:
                         except UnicodeDecodeError:
                             if first_bad is None:
                                 first_bad = (line_no + k + 1, line)
-            line_no += data.count(b"\n")
+            line_no += data.count(b"\n") + data.count(b"\r") - data.count(b"\r\n")
             if not block:
                 break
     if _file_key(path) == key:
@@ -1033,8 +1130,8 @@ def iter_table_chunks(
         if first_row is not None and any(c.strip() for c in first_row[len(raw_header) :]):
             # pandas would take the surplus as an index and shift every column by one
             raise InputError(
-                f"bad input in '{src}', row 1: expected {len(raw_header)} fields as in the header, found "
-                f"{len(first_row)} (an unquoted '{sep}' inside a label or a number?)"
+                f"bad input in '{src}', {_first_row_line(src, enc, sep)}: expected {len(raw_header)} fields as in "
+                f"the header, found {len(first_row)} (an unquoted '{sep}' inside a label or a number?)"
             )
         header = list(pd.read_csv(path, sep=sep, nrows=0, encoding=enc, skipinitialspace=True).columns)
         names = [str(c).strip() for c in header]
@@ -1062,7 +1159,7 @@ def iter_table_chunks(
     except pd.errors.EmptyDataError:
         raise InputError(f"bad input in '{src}': the file has no header and no data") from None
     except pd.errors.ParserError as exc:
-        raise InputError(_parser_message(src, exc, sep)) from None
+        raise InputError(_parser_message(src, exc, sep, enc)) from None
     offset = 0
     chunks = iter(reader)
     try:  # the reader holds the file open: closed however the caller stops (closing() in read_table)
@@ -1077,7 +1174,7 @@ def iter_table_chunks(
             except UnicodeError as exc:
                 raise InputError(_encoding_message(src, enc, exc, detected=not encoding)) from None
             except pd.errors.ParserError as exc:
-                raise InputError(_parser_message(src, exc, sep)) from None
+                raise InputError(_parser_message(src, exc, sep, enc)) from None
             df = df.iloc[:, where]
             df.attrs["pooling_csv"] = (src, enc, sep, header[where[-1]] if len(where) == 2 else None)
             df.columns = list(columns)
@@ -1379,11 +1476,33 @@ def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:
     return None
 
 
-def _parser_message(src: str, exc, sep: str) -> str:
+def _first_row_line(src: str, enc: str, sep: str) -> str:
+    """'line N' of the row _first_rows takes for the first data row (the first with a cell that is not blank)."""
+    try:
+        with contextlib.closing(csv_records(src, enc, sep)) as records:
+            for _, first, fields, _ in records:
+                if any(cell.strip() for cell in fields):
+                    return f"line {first}"
+    except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
+        pass
+    return "the first data row"
+
+
+def _parser_message(src: str, exc, sep: str, enc: str) -> str:
     m = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", str(exc))
     if m:
+        # pandas counts blank lines but not the line breaks inside quoted cells: find the line as the file has it
+        line = m.group(2)
+        try:
+            with contextlib.closing(csv_records(src, enc, sep)) as records:
+                for _, first, _, theirs in records:
+                    if theirs == int(m.group(2)):
+                        line = str(first)
+                        break
+        except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
+            pass
         return (
-            f"bad input in '{src}', line {m.group(2)}: expected {m.group(1)} fields as in the header, found "
+            f"bad input in '{src}', line {line}: expected {m.group(1)} fields as in the header, found "
             f"{m.group(3)} (an unquoted '{sep}' inside a label or a number?)"
         )
     return f"bad input in '{src}': cannot be read as a table ({_one_line(exc)})"
@@ -1392,8 +1511,6 @@ def _parser_message(src: str, exc, sep: str) -> str:
 def _first_rows(path: Path, enc: str, sep: str) -> tuple[list[str] | None, list[str] | None]:
     """The header (names stripped) and the first data row, skipping blank lines; pandas renames
     duplicated headers to "x.1", so the check for duplicates looks here."""
-    import csv
-
     if len(sep) != 1:  # a multi-character separator: the csv module cannot split it; pandas will
         header = pd.read_csv(path, sep=sep, nrows=0, encoding=enc, engine="python").columns
         return [str(c).strip() for c in header], None
@@ -1445,14 +1562,21 @@ def read_table(
     )
     with contextlib.closing(chunks):  # a refused chunk closes the file at once, not when collected
         for offset, df in chunks:
-            labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file)
-            vals = _check_values(df[value], src, value, offset, written=_written(df))
+            rows = rows_of(df)
+            labels_raw = _check_groups(df[group], src, group, offset, strip=csv_file, rows=rows)
+            vals = _check_values(df[value], src, value, offset, written=_written(df), rows=rows)
             unit = choose_unit(vals) if unit is None else unit  # fixed by the first chunk, so chunks merge exactly
             running.add(*_reduce_chunk(labels_raw, vals / unit if unit != 1.0 else vals))
             if per_group is not None:
-                per_group.add(labels_raw, df, offset)
+                per_group.add(labels_raw, df, offset, rows)
     out = running.stats(1.0 if unit is None else unit, src, _sha256_file(Path(path)))
     return out.with_columns(per_group.values(out.labels)) if per_group is not None else out
+
+
+def rows_of(df: pd.DataFrame) -> Rows:
+    """How messages name the rows of a chunk from iter_table_chunks: a CSV's lines, a Parquet file's rows."""
+    where = df.attrs.get("pooling_csv")
+    return Rows(where[:3]) if where else FRAME_ROWS
 
 
 def _written(df: pd.DataFrame):
@@ -1465,17 +1589,18 @@ def _written(df: pd.DataFrame):
 
 def _read_whole(
     path, columns, encoding=None, delimiter=None, thousands=None, decimal=None, text_columns=()
-) -> pd.DataFrame:
+) -> tuple[pd.DataFrame, Rows]:
     parts = [
         df
         for _, df in iter_table_chunks(
             path, columns, encoding, delimiter, thousands=thousands, decimal=decimal, text_columns=text_columns
         )
     ]
+    rows = rows_of(parts[0])
     df = pd.concat(parts, ignore_index=True)
     if not _is_parquet(Path(path)):  # blanks around a label in a CSV are formatting, as in read_table
         df[columns[0]] = df[columns[0]].str.strip()
-    return df
+    return df, rows
 
 
 def from_summaries(
@@ -1485,7 +1610,8 @@ def from_summaries(
     `group_columns` (predictors: one value per group).
 
     A group of one measurement has no sample sd, and tables write it as an empty cell: with n = 1 an empty sd
-    is taken as it is meant (M2 = 0). Such a group informs its mean theta_j, not the within-group variance.
+    (or 0) is taken as it is meant (M2 = 0), and any other sd is refused, naming the row and the group, since one
+    measurement has no spread. Such a group informs its mean theta_j, not the within-group variance.
 
     `read` (encoding, delimiter, thousands, decimal) is passed to the CSV reader when `data` is a path."""
     where = str(data) if not isinstance(data, pd.DataFrame) else source
@@ -1496,22 +1622,22 @@ def from_summaries(
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         _open_check(data)
-        data = _read_whole(data, [group, n, mean, sd, *extra], text_columns=extra, **read)
+        data, rows = _read_whole(data, [group, n, mean, sd, *extra], text_columns=extra, **read)
         sha = _sha256_file(Path(source))
     else:
-        sha = None
+        sha, rows = None, FRAME_ROWS
     _require_columns(
         data.columns, {"group": group, "size": n, "mean": mean, "standard deviation": sd, **_roles([], extra)}, source
     )
-    labels = _check_groups(data[group], source, group, 0)
-    _check_unique(labels, source, group)
-    nv = _check_values(data[n], source, n, 0)
-    mv = _check_values(data[mean], source, mean, 0)
+    labels = _check_groups(data[group], source, group, 0, rows=rows)
+    _check_unique(labels, source, group, rows)
+    nv = _check_values(data[n], source, n, 0, rows=rows)
+    mv = _check_values(data[mean], source, mean, 0, rows=rows)
     sd_cells = data[sd]
     single_empty = (nv == 1) & _empty_cells(sd_cells)
     if single_empty.any():  # n = 1 with no sd: nothing to check, and M2 = 0 whatever the cell says
         sd_cells = sd_cells.astype(object).where(~single_empty, 0.0)
-    sv = _check_values(sd_cells, source, sd, 0)
+    sv = _check_values(sd_cells, source, sd, 0, rows=rows)
     for i in range(len(nv)):
         if nv[i] < 1 or nv[i] != np.round(nv[i]) or nv[i] > MAX_COUNT:
             found = _show(data[n].iloc[i]) if nv[i] > MAX_COUNT else f"{nv[i]:g}"
@@ -1525,11 +1651,19 @@ def from_summaries(
                 f"bad input in {_where(source)}, column '{sd}', group {_show(labels.iloc[i])}: "
                 f"expected a standard deviation >= 0, found {sv[i]:g}"
             )
+        if nv[i] == 1 and sv[i] != 0:
+            # one measurement has no spread: an sd beside n = 1 is a slip in n or in the sd (an sd from a group's
+            # other rows, a wrong column), and taking either at its word would misstate the group
+            raise InputError(
+                f"bad input in {_where(source)}, column '{sd}', {rows(i + 1)}, group {_show(labels.iloc[i])}: "
+                f"a group of one measurement (n = 1) has no spread, so its sd must be empty or 0; found {sv[i]:g} "
+                f"(correct n in column '{n}', or the sd)"
+            )
     unit = choose_unit(mv, sv)
     mv, sv = mv / unit, sv / unit
     m2 = sv * sv * np.maximum(nv - 1, 0)
     out = GroupStats(tuple(labels), nv.astype(np.int64), mv, m2, unit=unit, source=source, file_sha256=sha)
-    return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
+    return out.with_columns(_one_row_columns(data, labels, extra, source, rows)) if extra else out
 
 
 def _empty_cells(col: pd.Series) -> np.ndarray:
@@ -1562,17 +1696,17 @@ def from_estimates(
     if not isinstance(data, pd.DataFrame):
         source = str(data)
         _open_check(data)
-        data = _read_whole(data, cols, text_columns=extra, **read)
+        data, rows = _read_whole(data, cols, text_columns=extra, **read)
         sha = _sha256_file(Path(source))
     else:
-        sha = None
+        sha, rows = None, FRAME_ROWS
     _require_columns(
         data.columns, {"group": group, "estimate": estimate, "standard error": std_error, **_roles([], extra)}, source
     )
-    labels = _check_groups(data[group], source, group, 0)
-    _check_unique(labels, source, group)
-    est = _check_values(data[estimate], source, estimate, 0)
-    se = _check_values(data[std_error], source, std_error, 0)
+    labels = _check_groups(data[group], source, group, 0, rows=rows)
+    _check_unique(labels, source, group, rows)
+    est = _check_values(data[estimate], source, estimate, 0, rows=rows)
+    se = _check_values(data[std_error], source, std_error, 0, rows=rows)
     bad = se <= 0
     if bad.any():
         i = int(np.argmax(bad))
@@ -1580,7 +1714,11 @@ def from_estimates(
             f"bad input in {_where(source)}, column '{std_error}', group {_show(labels.iloc[i])}: "
             f"expected a standard error > 0, found {se[i]:g}"
         )
-    nn = np.zeros(len(est), dtype=np.int64) if n is None else _check_values(data[n], source, n, 0).astype(np.int64)
+    nn = (
+        np.zeros(len(est), dtype=np.int64)
+        if n is None
+        else _check_values(data[n], source, n, 0, rows=rows).astype(np.int64)
+    )
     unit = choose_unit(est, se)
     out = GroupStats(
         tuple(labels),
@@ -1593,14 +1731,16 @@ def from_estimates(
         source=source,
         file_sha256=sha,
     )
-    return out.with_columns(_one_row_columns(data, labels, extra, source)) if extra else out
+    return out.with_columns(_one_row_columns(data, labels, extra, source, rows)) if extra else out
 
 
-def _check_unique(labels: pd.Series, source: str, column: str):
+def _check_unique(labels: pd.Series, source: str, column: str, rows: Rows = FRAME_ROWS):
     dup = labels.duplicated()
     if dup.any():
         i = int(np.argmax(dup.to_numpy()))
+        first = int(np.argmax((labels == labels.iloc[i]).to_numpy()))
+        there, here = rows.many([first + 1, i + 1])
         raise InputError(
-            f"bad input in {_where(source)}, column '{column}', row {i + 1}: "
-            f"expected one row per group, found {_show(labels.iloc[i])} again"
+            f"bad input in {_where(source)}, column '{column}', {here}: "
+            f"expected one row per group, found {_show(labels.iloc[i])} again (first in {there})"
         )

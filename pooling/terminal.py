@@ -120,6 +120,22 @@ def _lay_out(cols, rows, head: bool = True) -> list[str]:
     return ([line([h for h, _ in cols])] if head else []) + ["..." if r is None else line(r) for r in body]
 
 
+def _cell(text) -> str:
+    """A cell on one line: line breaks and tabs as blanks, other control characters (an escape code in a note)
+    written out as Python writes them, so that no cell can move the cursor or recolour the terminal."""
+    return "".join(
+        " " if ch in "\n\r\t" else repr(ch)[1:-1] if unicodedata.category(ch) == "Cc" else ch for ch in str(text)
+    )
+
+
+def text_table(cols, rows) -> list[str]:
+    """The lines of a plain-text table, for listings such as `pooling batches`. `cols`: (header, align) with align
+    '<' (text) or '>' (numbers); `rows`: lists of cells (None for an empty cell). Each column is as wide as its
+    header and its widest cell (wide characters count two), with two blanks between columns; nothing is cut,
+    and each cell is kept on one line (_cell)."""
+    return _lay_out(cols, [["" if c is None else _cell(c) for c in r] for r in rows])
+
+
 def print_results(res, out, stream=None, changes: dict | None = None) -> None:
     """The terminal summary of a run whose folder is `out`, in the page's order: the answer first (the groups to
     act on or look at, with the probability behind each, and the caution), then the consensus value and the

@@ -212,9 +212,9 @@ CASES = [
     ("enc: lines ended by CR only", {"in.csv": GOOD.replace("\n", "\r").encode()}, FIT, {0, 3}, []),
     ("enc: only a byte-order mark", {"in.csv": b"\xef\xbb\xbf"}, FIT, 2, ["no header and no data"]),
     # numbers
-    ("num: 1e999 quoted as written", {"in.csv": GOOD + "L0,1e999\n"}, FIT, 2, ["row 13", "'1e999'", "largest double"]),
+    ("num: 1e999 quoted as written", {"in.csv": GOOD + "L0,1e999\n"}, FIT, 2, ["line 14", "'1e999'", "largest double"]),
     ("num: -1e999", {"in.csv": GOOD + "L0,-1e999\n"}, FIT, 2, ["'-1e999'"]),
-    ("num: a written nan", {"in.csv": GOOD + "L0,NaN\n"}, FIT, 2, ["row 13", "'NaN'"]),
+    ("num: a written nan", {"in.csv": GOOD + "L0,NaN\n"}, FIT, 2, ["line 14:", "'NaN'"]),
     ("num: hexadecimal", {"in.csv": GOOD + "L0,0x10\n"}, FIT, 2, ["'0x10'"]),
     ("num: full-width digits", {"in.csv": GOOD + "L0,１２\n"}, FIT, 2, ["'１２'"]),
     ("num: --thousands ''", {"in.csv": GOOD}, FIT + ["--thousands", ""], 2, ["--thousands", "one separator"]),
@@ -268,9 +268,9 @@ CASES = [
         ["magnitude", "times 1e+320"],
     ),
     # labels
-    ("label: escape code", {"in.csv": GOOD + "\x1b[2J,1\n"}, FIT, 2, ["row 13", "U+001B"]),
+    ("label: escape code", {"in.csv": GOOD + "\x1b[2J,1\n"}, FIT, 2, ["line 14:", "U+001B"]),
     ("label: NUL byte", {"in.csv": GOOD + "a\x00b,1\n"}, FIT, 2, ["NUL bytes"]),
-    ("label: empty", {"in.csv": GOOD + ",1\n"}, FIT, 2, ["row 13", "empty cell"]),
+    ("label: empty", {"in.csv": GOOD + ",1\n"}, FIT, 2, ["line 14:", "empty cell"]),
     ("label: Unicode twins", {"in.csv": GOOD + "Café,1\nCafe\u0301,2\n"}, FIT, 2, ["Unicode form", "U+0301"]),
     ("label: 100,000 characters", {"in.csv": GOOD + "x" * 100_000 + ",1\n" + "x" * 100_000 + ",2\n"}, FIT, {0, 3}, []),
     ("label: formula and markup", {"in.csv": GOOD + "\"=cmd|' /C calc'!A0\",1\n<script>,2\n"}, FIT, {0, 3}, []),

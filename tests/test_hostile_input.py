@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import csv
 import io
+import re
 
 import numpy as np
 import pandas as pd
@@ -202,7 +203,7 @@ def test_semicolon_file_with_decimal_commas(tmp_path):
     p = _write_text(tmp_path, "lab;y\nA;1,5\nA;2,25\nB;3,0\n")
     with pytest.raises(InputError) as e:
         read_table(p, "lab", "y")
-    assert "row 1" in _one_line(e.value) and "'1,5'" in str(e.value) and "--decimal-comma" in str(e.value)
+    assert "line 2:" in _one_line(e.value) and "'1,5'" in str(e.value) and "--decimal-comma" in str(e.value)
     s = read_table(p, "lab", "y", decimal=",")
     _assert_stats(s, ["A", "A", "B"], [1.5, 2.25, 3.0])
 
@@ -289,13 +290,13 @@ def test_group_names_that_look_like_missing_values_or_numbers(tmp_path):
 
 
 @pytest.mark.parametrize(
-    "text,row", [("lab,y\na,1\n,2\n", 2), ("lab,y\na,1\n   ,2\n", 2), ('lab,y\na,1\nb,2\n"",3\n', 3)]
+    "text,line", [("lab,y\na,1\n,2\n", 3), ("lab,y\na,1\n   ,2\n", 3), ('lab,y\na,1\nb,2\n"",3\n', 4)]
 )
-def test_missing_group_values_name_the_row(tmp_path, text, row):
+def test_missing_group_values_name_the_line(tmp_path, text, line):
     p = _write_text(tmp_path, text)
     with pytest.raises(InputError) as e:
         read_table(p, "lab", "y")
-    assert f"row {row}" in _one_line(e.value) and "column 'lab'" in str(e.value) and "empty" in str(e.value)
+    assert f"line {line}:" in _one_line(e.value) and "column 'lab'" in str(e.value) and "empty" in str(e.value)
 
 
 def test_blanks_around_labels_are_formatting(tmp_path):
@@ -322,10 +323,13 @@ def test_very_long_labels(tmp_path):
 @pytest.mark.parametrize(
     "text,needle",
     [
-        ("lab,y\na,1,3\nb,2,4\n", "row 1: expected 2 fields"),  # pandas would shift every column by one
-        ("x,lab,y\n1,a,1,9\n2,b,2,9\n", "row 1: expected 3 fields"),
+        ("lab,y\na,1,3\nb,2,4\n", "line 2: expected 2 fields"),  # pandas would shift every column by one
+        ("x,lab,y\n1,a,1,9\n2,b,2,9\n", "line 2: expected 3 fields"),
         ("lab,y\na,1\nb,2,4\n", "line 3: expected 2 fields"),  # pandas would drop the surplus
-        ("lab,y\na,1,5\n", "row 1: expected 2 fields"),  # an unquoted decimal comma
+        ("lab,y\na,1,5\n", "line 2: expected 2 fields"),  # an unquoted decimal comma
+        ("\nlab,y\n\na,1,3\nb,2\n", "line 4: expected 2 fields"),  # blank lines before and after the header
+        ("lab,y\n,,\na,1,3\n", "line 3: expected 2 fields"),  # the first row with a cell that is not blank
+        ('lab,y\na,"1\n2"\nb,2,4\n', "line 4: expected 2 fields"),  # pandas says line 3: it skips quoted breaks
     ],
 )
 def test_rows_longer_than_the_header_are_refused_not_shifted(tmp_path, text, needle):
@@ -346,7 +350,52 @@ def test_rows_shorter_than_the_header(tmp_path):
     p = _write_text(tmp_path, "lab,y\na,1\nb\n")
     with pytest.raises(InputError) as e:
         read_table(p, "lab", "y")
-    assert "row 2" in _one_line(e.value) and "empty cell" in str(e.value)
+    assert "line 3:" in _one_line(e.value) and "empty cell" in str(e.value)
+
+
+@pytest.mark.parametrize(
+    "text,line",
+    [
+        ("lab,y\n\na,1\n\n\nb,oops\n", 6),  # blank lines, which the reader skips, still count in the file
+        ("\n\nlab,y\na,1\nb,oops\n", 5),  # blank lines before the header
+        ('lab,y\n"L\n01",1\nb,oops\n', 4),  # a line break inside a quoted label
+        ('lab,y\na,1\n"b\n\nc",oops\n', 3),  # a row that spans lines is named by its first
+        ("lab,y\r\ra,1\rb,oops\r", 4),  # carriage returns alone end lines too; one of them is blank
+        ("lab,y\r\na,1\r\n \t \r\nb,oops\r\n", 4),  # Windows line ends and a line of blanks and a tab
+        ("lab;y\n;\na;1\nb;oops\n", None),  # a line of one separator is a row (of empty cells), not a blank
+    ],
+)
+def test_csv_rows_are_named_by_their_line_in_the_file(tmp_path, text, line):
+    """Messages name a CSV row by the line a text editor shows it on (the header is line 1), whatever the reader
+    skips or joins; a Parquet file or a frame by its data row (test_parquet_input_is_checked_as_it_is_read)."""
+    p = tmp_path / "in.csv"
+    p.write_bytes(text.encode())
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    msg = _one_line(e.value)
+    if line is None:
+        assert "column 'lab', line 2: expected a group label, found an empty cell" in msg, msg
+        return
+    assert f"column 'y', line {line}: expected a finite number, found 'oops'" in msg, msg
+    # the line named is the one the row begins on, as an editor splits the file into lines
+    before = text[: text.index('"b' if '"b' in text else "b,oops")]
+    assert len(re.split(r"\r\n|\r|\n", before)) == line
+
+
+def test_one_row_per_group_files_name_lines_too(tmp_path):
+    p = tmp_path / "sums.csv"
+    p.write_text("lab,n,mean,sd\na,3,1.0,0.5\n\nb,2,1.5,0.2\na,4,2.0,0.1\n")
+    with pytest.raises(InputError) as e:
+        pooling.from_summaries(p, "lab", "n", "mean", "sd")
+    assert "column 'lab', line 5: expected one row per group, found 'a' again (first in line 2)" in _one_line(e.value)
+    p.write_text("lab,est,se\n\na,1.0,0.5\nb,x,0.1\n")
+    with pytest.raises(InputError) as e:
+        pooling.from_estimates(p, "lab", "est", "se")
+    assert "column 'est', line 4: expected a finite number, found 'x'" in _one_line(e.value)
+    frame = pd.DataFrame({"lab": ["a", "b", "a"], "n": [3, 2, 4], "mean": [1.0, 1.5, 2.0], "sd": [0.5, 0.2, 0.1]})
+    with pytest.raises(InputError) as e:
+        pooling.from_summaries(frame, "lab", "n", "mean", "sd")
+    assert "row 3: expected one row per group, found 'a' again (first in row 1)" in _one_line(e.value)
 
 
 def test_separator_inside_labels_does_not_confuse_detection(tmp_path):
@@ -367,7 +416,7 @@ def test_control_characters_in_labels_are_refused(tmp_path, label, code):
         p = _write_text(tmp_path, f"lab,y\nok,1\n{label},2\n")
         with pytest.raises(InputError) as e:
             read_table(p, "lab", "y")
-        assert "row 2" in _one_line(e.value) and code in str(e.value)
+        assert "line 3:" in _one_line(e.value) and code in str(e.value)
 
 
 def test_lone_surrogate_in_a_frame_label_is_refused():
@@ -546,6 +595,17 @@ def test_a_byte_the_encoding_does_not_define_names_its_line(tmp_path, encoding):
     for needle in ("line 4", "the byte 0x81", "b'L\\x813,3'", "--encoding"):
         assert needle in line, (needle, line)
     assert ("read as Windows-1252" in line) == (encoding is None)
+
+
+@pytest.mark.parametrize("end", ["\n", "\r\n", "\r"])
+def test_a_line_from_another_encoding_is_named_as_an_editor_numbers_it(tmp_path, end):
+    # a UTF-8 file with one Windows-1252 line (0xE9, é): its line whatever the line ends, a blank line counted
+    p = tmp_path / "mixed.csv"
+    lines = [b"lab,y", "Café,1".encode(), b"", "Zoë,2".encode(), b"Caf\xe9,3", b"b,4", b""]
+    p.write_bytes(end.encode().join(lines))
+    with pytest.raises(InputError) as e:
+        read_table(p, "lab", "y")
+    assert "line 5: the file is UTF-8 except for this line" in _one_line(e.value), str(e.value)
 
 
 def test_a_lone_surrogate_in_utf16_names_its_line(tmp_path):

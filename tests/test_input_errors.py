@@ -9,7 +9,11 @@ from __future__ import annotations
 import subprocess
 import sys
 
+import pandas as pd
 import pytest
+
+import pooling
+from pooling.errors import InputError
 
 
 def _fit(run_cli, path, tmp_path, *extra):
@@ -30,25 +34,25 @@ CASES = [
         "text in value",
         "lab,y\na,1.0\nb,n/a\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'y'", "row 2", "'n/a'"],
+        ["column 'y'", "line 3:", "'n/a'"],
     ),
     (
         "inf in value",
         "lab,y\na,1.0\nb,inf\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'y'", "row 2", "finite"],
+        ["column 'y'", "line 3:", "finite"],
     ),
     (
         "empty cell in value",
         "lab,y\na,1.0\nb,\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'y'", "row 2", "empty"],
+        ["column 'y'", "line 3:", "empty"],
     ),
     (
         "empty group label",
         "lab,y\na,1.0\n,2.0\nc,2\n",
         ["--group", "lab", "--value", "y"],
-        ["column 'lab'", "row 2", "group label"],
+        ["column 'lab'", "line 3:", "group label"],
     ),
     (
         "missing column",
@@ -65,6 +69,12 @@ CASES = [
         ["column 'n'", "group 'b'", "at least 1", "found 0"],
     ),
     (
+        "one measurement with a spread",
+        "lab,n,m,s\na,3,1.0,0.5\n\nb,1,2.0,0.4\nc,2,1.5,0.2\n",
+        ["--group", "lab", "--size", "n", "--mean", "m", "--sd", "s"],
+        ["column 's'", "line 4,", "group 'b'", "(n = 1) has no spread", "found 0.4", "column 'n'"],
+    ),
+    (
         "non-positive standard error",
         "lab,est,se\na,1.0,0.5\nb,2.0,0\nc,1.5,0.2\n",
         ["--group", "lab", "--estimate", "est", "--std-error", "se"],
@@ -74,7 +84,7 @@ CASES = [
         "one row per group, repeated",
         "lab,est,se\na,1.0,0.5\na,2.0,0.1\nc,1.5,0.2\n",
         ["--group", "lab", "--estimate", "est", "--std-error", "se"],
-        ["row 2", "one row per group", "'a'"],
+        ["line 3:", "one row per group", "'a'", "first in line 2"],
     ),
     # Source: Unicode Standard Annex #15 (normalisation forms): U+00FC and U+0075 U+0308 are
     # canonically equivalent, and so are the Kelvin sign U+212A and the letter K.
@@ -171,7 +181,7 @@ def test_no_traceback_in_a_real_process(tmp_path):
     )
     assert proc.returncode == 2
     assert proc.stderr.strip().count("\n") == 0 and "Traceback" not in proc.stderr
-    assert "'oops'" in proc.stderr and "row 2" in proc.stderr
+    assert "'oops'" in proc.stderr and "line 3:" in proc.stderr
     assert not (tmp_path / "run").exists()
 
 
@@ -241,3 +251,17 @@ def test_sigma2_prior_record_and_its_checks():
     for dof, scale2 in ((0.0, 1.0), (4.0, -1.0), (float("inf"), 1.0), (4.0, float("nan"))):
         with pytest.raises(ModelError, match="dof > 0 and scale2 > 0"):
             pooling.Model(within="shared", sigma2=pooling.ScaledInvChi2(dof, scale2))
+
+
+def test_a_group_of_one_takes_an_empty_or_zero_sd_and_refuses_any_other(tmp_path):
+    # one measurement has no spread: its sd is empty (as such tables write it) or 0, and M2 is 0 either way
+    path = tmp_path / "groups.csv"
+    path.write_text("g,n,mean,sd\nA,1,10.2,\nB,1,10.5,0\nC,1,9.9,0.0\nD,3,10.0,0.3\n")
+    st = pooling.from_summaries(path, "g", "n", "mean", "sd")
+    assert st.n.tolist() == [1, 1, 1, 3] and st.m2[:3].tolist() == [0.0, 0.0, 0.0]
+    assert st.m2[3] == pytest.approx(2 * 0.3**2, rel=1e-15)  # (n - 1) sd^2
+    frame = pd.DataFrame({"g": ["A", "B"], "n": [4, 1], "mean": [1.0, 2.0], "sd": [0.5, 1e-9]})
+    with pytest.raises(InputError) as e:
+        pooling.from_summaries(frame, "g", "n", "mean", "sd")
+    line = str(e.value)
+    assert "the data frame, column 'sd', row 2, group 'B'" in line and "found 1e-09" in line, line

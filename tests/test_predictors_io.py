@@ -65,7 +65,12 @@ def test_a_group_with_two_values_is_refused_naming_the_group_and_rows(tmp_path):
         pooling.read_table(path, "lab", "y", group_columns=["method"], chunk_rows=5)
     msg = str(e.value)
     assert "labs.csv'" in msg and "column 'method'" in msg and "group 'L04'" in msg
-    assert f"row {rows[0] + 1}" in msg and f"row {rows[-1] + 1}" in msg and "'A'" in msg and "'B'" in msg
+    # a CSV names the lines as the file has them: the header is line 1, so data row r is on line r + 1
+    assert f"'A' in line {rows[0] + 2} and 'B' in line {rows[-1] + 2}" in msg, msg
+    # a frame (and a Parquet file) names its data rows
+    with pytest.raises(InputError) as e:
+        pooling.from_frame(df, "lab", "y", group_columns=["method"])
+    assert f"'A' in row {rows[0] + 1} and 'B' in row {rows[-1] + 1}" in str(e.value)
 
 
 def test_numbers_written_two_ways_are_one_value_and_empty_cells_are_refused(tmp_path):

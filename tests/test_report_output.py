@@ -263,6 +263,58 @@ def test_bad_report_options_write_nothing(tmp_path, capsys, extra, what):
     assert not out.exists() and not list(tmp_path.iterdir())
 
 
+def test_a_top_above_the_number_of_groups_is_refused_before_sampling(tmp_path, capsys):
+    # the demo holds 36 suppliers: the top 37 would make P(top K) 1 for every group, so it is refused, not cut to 36
+    out = tmp_path / "run"
+    code = cli.main(["demo", "--out", str(out), "--quiet", "--draws", "100", "--warmup", "50", "--top", "37"])
+    err = capsys.readouterr().err
+    assert code == 2 and err.count("\n") == 1, err
+    for part in ("bad option --top", "top 37", "36 groups", "at most 36"):
+        assert part in err, (part, err)
+    assert not out.exists() and not list(tmp_path.iterdir())
+
+
+def test_the_default_top_never_trips_the_check_and_the_run_records_what_it_used(tmp_path, capsys):
+    # two groups (a proper prior on tau): --top left out means the top 3, or every group when fewer: here 2
+    rng = np.random.default_rng(4)
+    rows = [(lab, v) for lab in ("a", "b") for v in 10 + rng.standard_normal(6)]
+    data = tmp_path / "two.csv"
+    pd.DataFrame(rows, columns=["lab", "y"]).to_csv(data, index=False)
+    fit = ["fit", str(data), "--group", "lab", "--value", "y", "--tau", "half-normal:1", "--quiet", "--seed", "2"]
+    fit += ["--draws", "200", "--warmup", "200", "--max-draws", "200"]
+    assert cli.main([*fit, "--out", str(tmp_path / "run")]) in (0, 3)
+    summary = json.loads((tmp_path / "run" / "summary.json").read_text())
+    assert summary["report_options"]["k"] == 2
+    groups = pd.read_csv(tmp_path / "run" / "groups.csv")
+    assert np.allclose(groups["p_top_k"], 1.0)  # both groups are among the top 2 in every draw
+    capsys.readouterr()
+    assert cli.main([*fit, "--out", str(tmp_path / "run3"), "--top", "3"]) == 2
+    assert "bad option --top: asked for the top 3, but the data hold 2 groups" in capsys.readouterr().err
+    assert not (tmp_path / "run3").exists()
+
+
+def test_the_python_options_refuse_a_top_above_the_groups_when_the_answers_are_computed():
+    from pooling.asked import TOP_DEFAULT, ReportOptions, check_k
+    from pooling.errors import InputError
+
+    assert ReportOptions().k is None and TOP_DEFAULT == 3
+    assert [check_k(None, J) for J in (1, 2, 3, 40)] == [1, 2, 3, 3]
+    assert check_k(5, 5) == 5
+    with pytest.raises(InputError, match=r"bad option k \(the size of the top group\): asked for the top 6, but the"):
+        check_k(6, 5)
+    with pytest.raises(InputError, match="at least 1"):
+        ReportOptions(k=0)
+    import pooling
+    from pooling.results import compute
+
+    rng = np.random.default_rng(5)
+    frame = pd.DataFrame({"g": np.repeat(["a", "b", "c"], 5), "y": rng.standard_normal(15)})
+    fit = pooling.fit(pooling.from_frame(frame, "g", "y"), settings=pooling.Settings(seed=1, draws=100, warmup=100))
+    with pytest.raises(InputError, match="asked for the top 4, but the data hold 3 groups"):
+        compute(fit, ReportOptions(k=4))
+    assert compute(fit).options.k == 3 and compute(fit, ReportOptions(k=2)).options.k == 2
+
+
 @pytest.mark.parametrize(
     "option, value",
     [

@@ -320,7 +320,7 @@ def test_a_group_of_one_with_an_empty_sd_is_read_as_meant(tmp_path):
     )
     assert code in (0, 3) and (tmp_path / "run" / "report.html").exists()
     path.write_text("g,n,mean,sd\nA,2,10.2,\nB,3,10.5,0.4\n")
-    with pytest.raises(pooling.InputError, match=r"column 'sd', row 1: expected a finite number, found an empty cell"):
+    with pytest.raises(pooling.InputError, match=r"column 'sd', line 2: expected a finite number, found an empty cell"):
         pooling.from_summaries(path, "g", "n", "mean", "sd")
 
 

@@ -210,6 +210,55 @@ def test_a_batch_keeping_other_columns_than_the_store_is_refused(
     assert sql_dump(store) == before
 
 
+def test_the_same_delivery_with_other_group_level_columns_is_refused_unless_replaced(
+    tmp_path, capsys, backend, new_store
+):
+    # "nothing new" (exit 4) would drop the new columns unseen: the same content, or the same statistics, with
+    # other group-level columns is bad input (exit 2) naming what differs, unless --replace says to replace them
+    day0 = _round(tmp_path, days=1)[0]
+    store = new_store()
+    assert _ingest(store, day0) == 0
+    shown = parse_location(store).display
+    before = sql_dump(store)
+    capsys.readouterr()
+    assert _ingest(store, day0, "--column", "method") == 2  # the same file, now with a column
+    line = _err_line(capsys)
+    for part in (
+        f"bad input in '{day0}'",
+        f"store '{shown}'",
+        "active batch 'day-0.csv'",
+        "this delivery keeps 'method', which the batch 'day-0.csv' does not",
+        "nothing was changed",
+        "--batch 'day-0.csv' --replace",
+    ):
+        assert part in line, (part, line)
+    assert sql_dump(store) == before
+    assert _ingest(store, day0, "--column", "method", "--replace") == 0  # the batch's columns replaced
+    with open_store(store) as st:
+        ledger, stats = st.batches(), st.snapshot().stats
+    assert [(b.name, b.status) for b in ledger] == [("day-0.csv", "replaced"), ("day-0.csv", "active")]
+    assert "same content with other group-level columns" in ledger[0].note
+    assert len(stats) == 1 and set(stats[0].columns) == {"method"}
+    assert _ingest(store, day0, "--column", "method") == 4  # now the same content and columns: nothing new
+    # the same statistics in another file, one lab's method corrected
+    fixed = pd.read_csv(day0)
+    fixed.loc[fixed.lab == "L04", "method"] = "B"  # L04 is method A in day-0
+    fixed.to_csv(tmp_path / "fixed.csv", index=False, float_format="%.17g")
+    before = sql_dump(store)
+    capsys.readouterr()
+    for extra, says in (((), "withdraw 'day-0.csv' first"), (("--batch", "day-0.csv"), "pass --replace")):
+        assert _ingest(store, tmp_path / "fixed.csv", "--column", "method", *extra) == 2
+        line = _err_line(capsys)
+        for part in ("group 'L04', column 'method'", "holds 'A', this delivery 'B'", "nothing was changed", says):
+            assert part in line, (part, line)
+        assert sql_dump(store) == before
+    assert _ingest(store, tmp_path / "fixed.csv", "--column", "method", "--batch", "day-0.csv", "--replace") == 0
+    with open_store(store) as st:
+        (s,) = st.snapshot().stats
+    assert dict(zip(s.labels, s.columns["method"]))["L04"] == "B"
+    assert jobs.check_store(store)[1] == []
+
+
 def test_withdrawn_and_replaced_batches_do_not_bind_the_values(tmp_path, capsys, backend, new_store):
     files = _round(tmp_path, days=2)
     store = new_store()
@@ -246,7 +295,7 @@ def test_the_ledger_lists_the_columns_each_batch_keeps(tmp_path, capsys, backend
     assert [(b["name"], b["columns"]) for b in listed] == [("day-0.csv", ["age", "method"]), ("day-1.csv", [])]
     assert cli.main(["batches", store]) == 0
     table = capsys.readouterr().out.splitlines()
-    assert table[0].split()[-1] == "columns" and table[1].endswith("age, method")
+    assert table[0].split()[-2:] == ["columns", "note"] and table[1].endswith("age, method")
     assert table[2].split()[-1] == listed[1]["sha256"][:12]
     # a batch whose statistics fail their checksum is listed, its columns not: checkup names the damage
     execute(

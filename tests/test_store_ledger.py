@@ -222,6 +222,40 @@ def test_withdraw_is_recorded_and_leaves_the_batch_out(tmp_path, capsys, new_sto
     assert [b["status"] for b in listed["batches"]] == ["active", "replaced", "active", "active"]
 
 
+def test_the_ledger_table_is_sized_from_its_cells_and_shows_the_notes(tmp_path, new_store, capsys):
+    # names longer than any fixed width, a withdrawal with a reason (a line break and an escape code in it) and one
+    # without: every cell in full, every column starting where its header starts, the notes in the last column
+    rng = np.random.default_rng(8)
+    _write_batches(tmp_path, rng, k=3, offset=10.0, spread=1.0, rows=30, groups=3)
+    store = new_store()
+    names = ["b", "delivery-from-the-north-plant-" + "x" * 40 + "-end", "third"]
+    for b, name in enumerate(names):
+        jobs.ingest_file(store, tmp_path / f"batch-{b}.csv", "lab", "y", batch=name, at=f"2024-03-0{b + 1}")
+    jobs.withdraw_batch(store, names[1], "gauge out of calibration\nsee ticket \x1b[31m42")
+    jobs.withdraw_batch(store, names[2])
+    capsys.readouterr()
+    assert cli.main(["batches", str(store)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    head, rows, last = lines[0], lines[1:4], lines[4]
+    assert head.split() == ["id", "name", "status", "rows", "groups", "dated", "changed", "sha256", "columns", "note"]
+    assert "3 batches in the ledger, 1 active" in last and "\x1b" not in "".join(lines)
+    with open_store(store) as st:
+        ledger = st.batches()
+    for row, b in zip(rows, ledger):
+        # left-aligned columns start where their headers start; right-aligned ones end where theirs end
+        for col, text in (("name", b.name), ("status", b.status), ("dated", b.dated_at), ("sha256", b.sha256[:12])):
+            at, end = head.index(col), head.index(col) + len(text)
+            assert row[at:end] == text and row[end : end + 1] in ("", " "), (col, row)
+        for col, text in (("rows", str(b.rows)), ("groups", str(b.groups))):
+            end = head.index(col) + len(col)
+            assert row[:end].endswith(" " + text), (col, row)
+        assert row[: len(head[: head.index("name")].rstrip())].strip() == str(b.id)
+    note_at = head.index("note")
+    assert rows[1][note_at:] == "gauge out of calibration see ticket \\x1b[31m42"
+    assert len(rows[2]) <= note_at and len(rows[0]) <= note_at  # no note: nothing after the columns
+    assert len(head) > 40 + len(names[1])  # the long name widened its column instead of being cut
+
+
 def test_forgetting_is_the_weighted_likelihood_of_the_raw_data(tmp_path, new_store):
     rng = np.random.default_rng(6)
     whole = _write_batches(tmp_path, rng, k=3, offset=500.0, spread=2.0, rows=120, groups=4)

@@ -49,7 +49,7 @@ def _results(fit, **options):
 def group_table(
     fit,
     level: float = 0.95,
-    k: int = 3,
+    k: int | None = None,
     best: str = "highest",
     threshold: float | None = None,
     lower: float | None = None,

@@ -392,13 +392,32 @@ class SqlLedger(BatchStore):
             same = tx.one(f"{sel} WHERE sha256 = ? AND status = 'active'", (new.sha256,))
             if same is not None:
                 b = self._info(same)
-                raise NothingNew(
-                    f"the content of '{new.source}' is in the store already as batch '{b.name}' "
-                    f"(ingested {b.ingested_at}); nothing changed"
-                )
+                differ = self._columns_differ(tx, b, labels, columns)
+                if differ is None:
+                    raise NothingNew(
+                        f"the content of '{new.source}' is in the store already as batch '{b.name}' "
+                        f"(ingested {b.ingested_at}); nothing changed"
+                    )
+                if not (replace and b.name == new.name):  # with --replace, the batch's columns are replaced below
+                    raise InputError(
+                        f"bad input in '{new.source}': its content is in the store '{self.path}' already as the "
+                        f"active batch '{b.name}' (ingested {b.ingested_at}), with other group-level columns: "
+                        f"{differ}; nothing was changed (to replace the batch's columns with these, ingest it "
+                        f"with --batch '{b.name}' --replace)"
+                    )
             current = tx.one(f"{sel} WHERE name = ? AND status != 'replaced'", (new.name,))
             if current is not None and not replace:
-                raise InputError(self._name_in_use(new, self._info(current)))
+                b = self._info(current)
+                differ = None
+                if b.status == "active" and self._same_statistics(tx, b.id, _by_label(labels, n, mean, mean_lo, m2)):
+                    differ = self._columns_differ(tx, b, labels, columns)
+                if differ is not None:
+                    raise InputError(
+                        f"bad input in '{new.source}': the batch '{b.name}' in the store '{self.path}' holds the "
+                        f"same statistics with other group-level columns: {differ}; nothing was changed (pass "
+                        "--replace to replace the batch's columns with these)"
+                    )
+                raise InputError(self._name_in_use(new, b))
             gone = tx.one(f"{sel} WHERE sha256 = ? AND status = 'withdrawn'", (new.sha256,))
             if gone is not None and not replace:
                 b = self._info(gone)
@@ -407,7 +426,7 @@ class SqlLedger(BatchStore):
                     f"{b.changed_at}; pass --replace to take it back"
                 )
             replacing = None if current is None else current[0]
-            self._check_same_statistics(tx, new, labels, n, mean, mean_lo, m2, replacing)
+            self._check_same_statistics(tx, new, labels, n, mean, mean_lo, m2, columns, replacing)
             self._lock_columns(tx, exclusive=bool(columns))
             if not same_quantity:
                 self._check_quantity(tx, new, replacing)
@@ -424,6 +443,8 @@ class SqlLedger(BatchStore):
                         else f"replaced by a new delivery of the same name at {when}"
                     )
                     note = f"withdrawn at {b.changed_at}{why}; {taken}"
+                elif b.sha256 == new.sha256:
+                    note = f"replaced at {when} by the same content with other group-level columns"
                 else:
                     note = f"replaced by a new delivery of the same name at {when}"
                 swapped = self._restate(tx, current, "replaced", when, note)
@@ -491,12 +512,14 @@ class SqlLedger(BatchStore):
             "name this one with --batch NAME, or pass --replace to replace it"
         )
 
-    def _check_same_statistics(self, tx, new: NewBatch, labels, n, mean, mean_lo, m2, replacing) -> None:
+    def _check_same_statistics(self, tx, new: NewBatch, labels, n, mean, mean_lo, m2, columns, replacing) -> None:
         """Refuse (NothingNew) a batch whose per-group statistics equal an active batch's exactly (the batch it
         replaces aside): the same delivery in another file (other line endings, CSV and Parquet), whose second
         ingest would count every measurement twice. Exact: labels, n and the float64 bits of mean, mean_lo and M2
         as stored (the values stats_sum covers), groups in any order. The database finds the few active batches
-        with as many rows and groups that hold the first group's statistics; only those are read whole."""
+        with as many rows and groups that hold the first group's statistics; only those are read whole.
+        The same delivery with other group-level columns (a corrected method, a column added) is refused as bad
+        input (InputError), naming what differs: saying "nothing new" would drop the new columns unseen."""
         if not len(labels):
             return
         found = tx.all(
@@ -518,19 +541,68 @@ class SqlLedger(BatchStore):
             return
         mine = _by_label(labels, n, mean, mean_lo, m2)
         for (bid,) in found:
-            rows = tx.all(f"SELECT {cols(GROUP_COLS)} FROM batch_groups WHERE batch_id = ? ORDER BY position", (bid,))
-            arrays = _stat_arrays(rows)
-            if arrays is None:  # a damaged row cannot equal anything; checkup names it
-                continue
-            if _by_label(*arrays[2:]) != mine:
+            if not self._same_statistics(tx, bid, mine):
                 continue
             b = self._info(tx.one(f"SELECT {cols(LINE_COLS)} FROM batches WHERE id = ?", (bid,)))
+            differ = self._columns_differ(tx, b, labels, columns)
+            if differ is not None:
+                raise InputError(
+                    f"bad input in '{new.source}': its statistics (every group's label, n, mean and M2) equal those "
+                    f"of the active batch '{b.name}' (from '{b.source}', ingested {b.ingested_at}) exactly, with "
+                    f"other group-level columns: {differ}; nothing was changed (to replace that batch's columns "
+                    f"with these, ingest this file with --batch '{b.name}' --replace; if it is a new delivery, "
+                    f"withdraw '{b.name}' first)"
+                )
             raise NothingNew(
                 f"the statistics of '{new.source}' (every group's label, n, mean and M2) equal those of the "
                 f"active batch '{b.name}' (from '{b.source}', ingested {b.ingested_at}) exactly: the same "
                 "delivery in another file, whose measurements would count twice; nothing changed (if it is a "
                 f"new delivery, withdraw '{b.name}' first, or replace it with --batch '{b.name}' --replace)"
             )
+
+    def _same_statistics(self, tx, bid: int, mine: dict) -> bool:
+        """Whether batch `bid` holds exactly the statistics `mine` (_by_label); a damaged row equals nothing."""
+        rows = tx.all(f"SELECT {cols(GROUP_COLS)} FROM batch_groups WHERE batch_id = ? ORDER BY position", (bid,))
+        arrays = _stat_arrays(rows)
+        return arrays is not None and _by_label(*arrays[2:]) == mine
+
+    def _columns_differ(self, tx, b: BatchInfo, labels, columns: dict) -> str | None:
+        """None when batch `b` keeps the same group-level columns as a delivery of the same statistics (the same
+        names; per group the same value, '5' and '5.0' being one number), else what differs, for a message: the
+        columns only one of them keeps, or the first group whose value differs (and how many more do)."""
+        from ..stats import _same_number, _show
+
+        held: dict[str, dict[str, str]] = {}
+        for label, name, value in tx.all(
+            "SELECT g.label, c.column_name, c.value FROM batch_columns c JOIN batch_groups g ON g.batch_id = "
+            "c.batch_id AND g.position = c.position WHERE c.batch_id = ?",
+            (b.id,),
+        ):
+            held.setdefault(str(name), {})[str(label)] = str(value)
+        only_new, only_old = sorted(set(columns) - set(held)), sorted(set(held) - set(columns))
+        if only_new or only_old:
+            parts = []
+            if only_new:
+                named = ", ".join(f"'{c}'" for c in only_new)
+                parts.append(f"this delivery keeps {named}, which the batch '{b.name}' does not")
+            if only_old:
+                named = ", ".join(f"'{c}'" for c in only_old)
+                parts.append(f"the batch '{b.name}' keeps {named}, which this delivery does not")
+            return "; ".join(parts)
+        changed = [
+            (name, label, held[name].get(label), value)
+            for name in sorted(columns)
+            for label, value in zip(labels, columns[name])
+            if held[name].get(label) != value and not _same_number(held[name].get(label) or "", value)
+        ]
+        if not changed:
+            return None
+        name, label, old, value = changed[0]
+        more = "" if len(changed) == 1 else f" (and {len(changed) - 1} more group-column values differ)"
+        return (
+            f"group {_show(label)}, column '{name}': the batch '{b.name}' holds {_show(old)}, this delivery "
+            f"{_show(value)}{more}"
+        )
 
     def _check_quantity(self, tx, new: NewBatch, replacing: int | None) -> None:
         """Refuse (InputError, one line) a batch whose value column (or group column) has a name no active batch
