@@ -1564,10 +1564,11 @@ def compute(fit, options: ReportOptions | None = None, without=None) -> Results:
             )
             th_pairs, idx_pairs = th, pair_idx
     pair_diff = None
-    if (
-        th_pairs is not None and idx_pairs is not None
-    ):  # internal units to data units: a difference takes the scale, not the centre
-        frame = lambda x: pd.DataFrame(x * p.scale, index=pd.Index(list(compare), name="group"), columns=list(compare))  # noqa: E731
+    if th_pairs is not None and idx_pairs is not None:
+        # internal units to data units: a difference takes the scale, not the centre
+        def frame(x: np.ndarray) -> pd.DataFrame:
+            return pd.DataFrame(x * p.scale, index=pd.Index(list(compare), name="group"), columns=list(compare))
+
         dm, dl, dh = pair_differences(th_pairs, idx_pairs, o.level)
         pair_diff = {"mean": frame(dm), "low": frame(dl), "high": frame(dh), "level": o.level}
     clock.append(time.perf_counter())
