@@ -461,6 +461,20 @@ def _records(path, enc: str, sep: str):
             yield row, first, fields, first - before
 
 
+def first_record(path, enc: str, sep: str, stop):
+    """The first record (data row, first line, fields, pandas' line) of a CSV file, as csv_records reads them, for
+    which stop(record) is true; None when there is none or the csv module cannot read the file (a message helper,
+    on the error path: the caller then names the row its own way)."""
+    try:
+        with contextlib.closing(csv_records(path, enc, sep)) as records:
+            for record in records:
+                if stop(record):
+                    return record
+    except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
+        pass
+    return None
+
+
 def csv_lines(path, enc: str, sep: str, rows) -> dict[int, int]:
     """The line (as a text editor numbers it) on which each of the data rows `rows` (from 1) of a CSV file begins;
     rows it cannot place (the file unreadable by the csv module, or shorter) are left out."""
@@ -469,15 +483,14 @@ def csv_lines(path, enc: str, sep: str, rows) -> dict[int, int]:
     if not want:
         return out
     last = max(want)
-    try:
-        with contextlib.closing(csv_records(path, enc, sep)) as records:
-            for row, line, _, _ in records:
-                if row in want:
-                    out[row] = line
-                if row >= last:
-                    break
-    except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
-        pass  # a message helper: the caller names the data row instead
+
+    def seen(record) -> bool:
+        row, line = record[0], record[1]
+        if row in want:
+            out[row] = line
+        return row >= last
+
+    first_record(path, enc, sep, seen)
     return out
 
 
@@ -1478,29 +1491,16 @@ def _cell_text(src: str, enc: str, sep: str, column, row: int) -> str | None:
 
 def _first_row_line(src: str, enc: str, sep: str) -> str:
     """'line N' of the row _first_rows takes for the first data row (the first with a cell that is not blank)."""
-    try:
-        with contextlib.closing(csv_records(src, enc, sep)) as records:
-            for _, first, fields, _ in records:
-                if any(cell.strip() for cell in fields):
-                    return f"line {first}"
-    except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
-        pass
-    return "the first data row"
+    record = first_record(src, enc, sep, lambda r: any(cell.strip() for cell in r[2]))
+    return "the first data row" if record is None else f"line {record[1]}"
 
 
 def _parser_message(src: str, exc, sep: str, enc: str) -> str:
     m = re.search(r"Expected (\d+) fields in line (\d+), saw (\d+)", str(exc))
     if m:
         # pandas counts blank lines but not the line breaks inside quoted cells: find the line as the file has it
-        line = m.group(2)
-        try:
-            with contextlib.closing(csv_records(src, enc, sep)) as records:
-                for _, first, _, theirs in records:
-                    if theirs == int(m.group(2)):
-                        line = str(first)
-                        break
-        except (csv.Error, OSError, UnicodeError, LookupError, ValueError):
-            pass
+        record = first_record(src, enc, sep, lambda r: r[3] == int(m.group(2)))
+        line = m.group(2) if record is None else str(record[1])
         return (
             f"bad input in '{src}', line {line}: expected {m.group(1)} fields as in the header, found "
             f"{m.group(3)} (an unquoted '{sep}' inside a label or a number?)"

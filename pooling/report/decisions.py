@@ -88,19 +88,30 @@ def threshold(res) -> Decision:
     )
 
 
+def _flag_or_keep(kind: str, v, p, far, flag: tuple[str, str], keep: tuple[str, str]) -> Decision:
+    """A decision with a flagging side (P = p), a side that keeps (1 - p) and the undecided, each side a (name,
+    what) pair; the sides as results.py's column `v` holds them."""
+    return Decision(
+        kind,
+        (
+            _side(v, flag[0], "bad", p, flag[1], far, True),
+            _side(v, keep[0], "good", 1.0 - p, keep[1], far, False),
+            _side(v, "undecided", "none", p, flag[1], far, False),
+        ),
+    )
+
+
 def limits(res) -> Decision:
     t, o = res.table, res.options
-    pm = _col(t, "p_mean_outside")
     th = _col(t, "theta_mean")
     far = np.min(np.abs(np.stack([th - x for x in (o.lower, o.upper) if x is not None])), axis=0)
-    v = t["limits_side"].to_numpy()
-    return Decision(
+    return _flag_or_keep(
         "limits",
-        (
-            _side(v, "outside", "bad", pm, "P(mean outside)", far, True),
-            _side(v, "inside", "good", 1.0 - pm, "P(mean inside)", far, False),
-            _side(v, "undecided", "none", pm, "P(mean outside)", far, False),
-        ),
+        t["limits_side"].to_numpy(),
+        _col(t, "p_mean_outside"),
+        far,
+        ("outside", "P(mean outside)"),
+        ("inside", "P(mean inside)"),
     )
 
 
@@ -122,16 +133,13 @@ def bias(res) -> Decision:
     """Each lab's side of the allowed bias (needs ReportOptions.allowed_bias), the furthest from zero first among
     equal probabilities."""
     t = res.table
-    pbo = _col(t, "p_bias_over")
-    far = np.abs(_col(t, "bias_mean"))
-    v = t["bias_side"].to_numpy()
-    return Decision(
+    return _flag_or_keep(
         "bias",
-        (
-            _side(v, "over", "bad", pbo, "P(|bias| > allowed)", far, True),
-            _side(v, "within", "good", 1.0 - pbo, "P(|bias| ≤ allowed)", far, False),
-            _side(v, "undecided", "none", pbo, "P(|bias| > allowed)", far, False),
-        ),
+        t["bias_side"].to_numpy(),
+        _col(t, "p_bias_over"),
+        np.abs(_col(t, "bias_mean")),
+        ("over", "P(|bias| > allowed)"),
+        ("within", "P(|bias| ≤ allowed)"),
     )
 
 
