@@ -312,7 +312,7 @@ def rank_draws(x: np.ndarray, highest: bool = True) -> np.ndarray:
             ranks,
             np.empty(J),
             np.empty(J, dtype=np.int64),
-            np.empty(J + 1, dtype=np.int64),
+            O.sort_counts(J),
             bad,
         )
 
@@ -596,7 +596,7 @@ def rank_answers(x: np.ndarray, highest: bool, level: float, k: int) -> tuple[di
     blk = np.empty((rows, J), dtype=dtype)
     bad = np.zeros(rows, dtype=np.bool_)
     sign = 1.0 if highest else -1.0
-    ranking = Scratch(lambda: (np.empty(J), np.empty(J, dtype=np.int64), np.empty(J + 1, dtype=np.int64)))
+    ranking = Scratch(lambda: (np.empty(J), np.empty(J, dtype=np.int64), O.sort_counts(J)))
     for s0 in range(0, S, rows):
         s1 = min(S, s0 + rows)
         part = x[s0:s1]

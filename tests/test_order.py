@@ -239,6 +239,42 @@ def test_rank_answers_equal_the_ranks_held_whole(S, J, level, k, rows, monkeypat
         assert len(heat["columns"]) == heat["matrix"].shape[1]
 
 
+# ------------------------------------------------------------------ the counting sort itself
+
+
+@pytest.mark.parametrize("S", [2, 3, 400, 4001])
+@pytest.mark.parametrize("buckets", [1, 2, "half", "one each", "three each", "seven each"])
+def test_counting_sort_is_the_stable_sort_whatever_its_buckets(S, buckets):
+    # Source: numpy.argsort(kind="stable") as the reference. The number of buckets changes only how much the
+    # insertion sort has to move; the permutation of a row the sort keeps must be numpy's stable one, and the
+    # rows it hands back are those the callers pass to numpy (a NaN or an infinity, all values equal).
+    rng = np.random.default_rng(11)
+    nb = {"half": max(1, S // 2), "one each": S, "three each": 3 * S, "seven each": 7 * S}.get(buckets, buckets)
+    count = np.empty(nb + 1, dtype=np.int64)
+    extra = [np.round(rng.normal(size=S), 2).cumsum(), np.sort(rng.normal(size=S))]  # a walk; a sorted row
+    kept = []
+    for i, x in enumerate(_awkward_rows(rng, S) + extra):
+        for sign in (1.0, -1.0):
+            row, order = np.full(S, np.nan), np.full(S, -1, dtype=np.int64)
+            if O.sort_bucketed(x, sign, row, order, count):
+                kept.append(i)
+                np.testing.assert_array_equal(order, np.argsort(sign * x, kind="stable"))
+                assert _same_bits(row, (sign * x)[order])
+    # all values equal, +-0 only, an infinity or a NaN: always handed back (to numpy's stable argsort)
+    assert not set(kept) & {3, 4, 7, 8, 9, 10, 11, 12, 13}
+    assert 16 in kept  # a sorted row needs no moves, whatever the buckets
+    if 2 * nb >= S:  # enough buckets: the smooth rows (normal, ties, a walk) are kept
+        assert {0, 2, 15} <= set(kept)
+
+
+def test_sort_counts_sizes():
+    assert O.sort_counts(4000).shape == (O.BUCKETS_PER_VALUE * 4000 + 1,)
+    assert O.sort_counts(2).shape == (O.BUCKETS_PER_VALUE * 2 + 1,)
+    big = 10 * O._SORT_BUCKETS_MAX
+    assert O.sort_counts(big).shape == (big + 1,)  # the cap never leaves fewer buckets than values
+    assert O.sort_counts(O._SORT_BUCKETS_MAX // 2).shape == (O._SORT_BUCKETS_MAX + 1,)
+
+
 # ------------------------------------------------------------------ the diagnostics' sort
 
 
@@ -251,7 +287,7 @@ def test_diagnostics_sort_gives_a_sorting_permutation_and_argsorts_scores():
     xs = np.ascontiguousarray(np.array(rows))
     P = xs.shape[0]
     srt, orders, bad = np.empty((P, S)), np.empty((P, S), dtype=np.int64), np.empty(P, dtype=np.bool_)
-    dg._sort_rows(xs, srt, orders, bad)
+    dg._sort_rows(xs, srt, orders, bad, O.sort_counts(S))
     s1 = srt.copy()
     for p in range(P):
         if bad[p]:
