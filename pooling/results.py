@@ -53,10 +53,10 @@ from .posterior import SCALED, Fit, hyper_names, hyper_summary, summarize_draws
 MAX_PAIRWISE = 400
 HEAT_ROWS_MANY = 40  # above HEAT_ALL groups the heat map shows the best 40 over ranks 1..HEAT_ALL
 HEAT_ALL = 60
-#: groups per block of the per-group computations (a block of 4,000 draws is 8 MB). Reading a block's columns
-#: out of the draws (S, J) reads TABLE_BLOCK x 8 bytes of each draw's row: at 64 groups (512 bytes) the reads
-#: waited on memory, at 256 the gather took 23 % less time at J = 20,000 (benchmarks/README.md, 2026-12-04).
-TABLE_BLOCK = 256
+#: groups per block of the per-group computations (a block of 4,000 draws is 2 MB). 256 made the gather of a
+#: block's columns 23 % faster (512 bytes of each draw's row at 64 groups: the reads wait on memory) but held
+#: 50 MB more per 2,000 draws per chain, and the whole run gained too little to pay for it (2026-12-04).
+TABLE_BLOCK = 64
 ACC_BLOCK = 4096  # groups per block of the running summaries over the stored draws
 OUTLYING_AT = 0.5  # a group is flagged outlying when P(outlying) is at least this
 CHECK_DRAWS = 400  # the model checks use at most this many evenly spaced draws (a p-value's MC error <= 0.025)
