@@ -267,6 +267,16 @@ def test_counting_sort_is_the_stable_sort_whatever_its_buckets(S, buckets):
         assert {0, 2, 15} <= set(kept)
 
 
+def test_counting_sort_hands_back_a_span_too_narrow_for_its_buckets():
+    # (nb - 1) / span overflows (2 / 1e-308): the bucket index is not a number, so the row goes to numpy's
+    # argsort; one bucket fewer would still divide (1 / 1e-308 is finite), so the check must use nb - 1
+    x = np.array([0.0, 1e-308])
+    row, order = np.empty(2), np.empty(2, dtype=np.int64)
+    assert not O.sort_bucketed(x, 1.0, row, order, np.empty(3 + 1, dtype=np.int64))
+    assert O.sort_bucketed(x, 1.0, row, order, np.empty(2 + 1, dtype=np.int64))  # 1 / 1e-308 divides
+    np.testing.assert_array_equal(order, [0, 1])
+
+
 def test_sort_counts_sizes():
     assert O.sort_counts(4000).shape == (O.BUCKETS_PER_VALUE * 4000 + 1,)
     assert O.sort_counts(2).shape == (O.BUCKETS_PER_VALUE * 2 + 1,)
