@@ -39,7 +39,8 @@ _MOVES_PER_VALUE = 16  # insertion-sort moves per value before `rank_rows` hands
 _SELECT_BUCKETS = 512  # buckets of `select_quantiles` (at most one per value)
 #: buckets per value of `sort_bucketed` (up to _SORT_BUCKETS_MAX): with one per value about a third of the values
 #: share a bucket with an earlier one and the insertion sort moves them (a mispredicted jump each); with three,
-#: the sort of 2,000 to 20,000 draws took 21-28 % less time (benchmarks/README.md, 2026-12-04, second part)
+#: the sort of 2,000 to 20,000 values took 21-28 % less time (benchmarks/README.md, "Time to answer, 2026-12-04,
+#: later")
 BUCKETS_PER_VALUE = 3
 _SORT_BUCKETS_MAX = 1 << 20  # 8 MB of counts: beyond, the counts leave the cache and more buckets stop paying
 
