@@ -16,7 +16,7 @@ The figures move by 20-30 % from one run to the next on a shared machine: compar
 from __future__ import annotations
 
 import argparse
-import os
+import json
 import subprocess
 import sys
 import tempfile
@@ -25,7 +25,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
-from bench_whole import CHAINS, DRAWS, WARMUP, _table  # noqa: E402
+from bench_whole import _table, fit_command, installed_env  # noqa: E402
 
 # (module, function) pairs stamped, in the order a run reaches them
 STAGES = (
@@ -72,10 +72,7 @@ cli.run()
 
 
 def _fit(csv: Path, out: Path, env: dict, summary: str) -> tuple[list[tuple[float, float, str, str]], str]:
-    cmd = [sys.executable, "-c", f"STAGES = {STAGES!r}\n" + _STAMP, "fit", str(csv), "--group", "line"]
-    cmd += ["--value", "width", "--out", str(out), "--replace", "--seed", "1", "--quiet", "--nu", "4"]
-    cmd += ["--chains", str(CHAINS), "--warmup", str(WARMUP), "--draws", str(DRAWS), "--max-draws", str(DRAWS)]
-    cmd += ["--summary", summary]
+    cmd = fit_command(f"STAGES = {STAGES!r}\n" + _STAMP, csv, out, summary)
     p = subprocess.run(cmd, env=env, capture_output=True, text=True)
     if p.returncode not in (0, 3):
         raise SystemExit(f"pooling fit failed ({p.returncode}): {p.stderr[-2000:]}")
@@ -87,8 +84,6 @@ def _fit(csv: Path, out: Path, env: dict, summary: str) -> tuple[list[tuple[floa
     sweep = ""
     summary_json = out / "summary.json"
     if summary_json.exists():
-        import json
-
         sweep = f"{json.loads(summary_json.read_text())['run']['sweep_seconds']:.2f}"
     return marks, sweep
 
@@ -110,9 +105,7 @@ def main() -> int:
     a = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        env = dict(os.environ, NUMBA_CACHE_DIR=str(tmp / "numba-cache"), PYTHONWARNINGS="ignore")
-        env.pop("PYTHONDONTWRITEBYTECODE", None)  # as installed: see bench_whole.py
-        env["PYTHONPYCACHEPREFIX"] = str(tmp / "bytecode")
+        env = installed_env(tmp)
         small, csv = tmp / "small.csv", tmp / "data.csv"
         _table(small, 50, 0.5, 1.0, 0)
         _fit(small, tmp / "warm", env, a.summary)  # compiles and caches the kernel, writes the bytecode

@@ -58,35 +58,29 @@ _WRAP = (
 )
 
 
+def fit_command(program: str, csv: Path, out: Path, mode: str, draws: int = DRAWS) -> list[str]:
+    """`pooling fit` of the benchmark's case (separate, nu 4, no run-length extension, --quiet) as `program` runs
+    it in a fresh interpreter (python -c program fit ...)."""
+    return [sys.executable, "-c", program, "fit", str(csv), "--group", "line", "--value", "width", "--out", str(out)] + [
+        "--seed", "1", "--quiet", "--nu", "4", "--chains", str(CHAINS), "--warmup", str(WARMUP),
+        "--draws", str(draws), "--max-draws", str(draws), "--summary", mode,
+    ]  # fmt: skip
+
+
+def installed_env(tmp: Path) -> dict:
+    """The environment of the measured processes: numba's cache in `tmp`, and the program as installed: pip
+    byte-compiles the package it installs, so the program a user runs does not compile its own source at each
+    start; a process environment that forbids bytecode (PYTHONDONTWRITEBYTECODE, set on some build machines)
+    would add that compiling (about 0.15 s) to every run measured. The warm-up runs write the bytecode, into a
+    folder of their own rather than the source tree."""
+    env = dict(os.environ, NUMBA_CACHE_DIR=str(tmp / "numba-cache"), PYTHONWARNINGS="ignore")
+    env.pop("PYTHONDONTWRITEBYTECODE", None)
+    env["PYTHONPYCACHEPREFIX"] = str(tmp / "bytecode")
+    return env
+
+
 def _fit(csv: Path, out: Path, env: dict, mode: str, draws: int = DRAWS) -> dict:
-    cmd = [
-        sys.executable,
-        "-c",
-        _WRAP,
-        "fit",
-        str(csv),
-        "--group",
-        "line",
-        "--value",
-        "width",
-        "--out",
-        str(out),
-        "--seed",
-        "1",
-        "--quiet",
-        "--nu",
-        "4",
-        "--chains",
-        str(CHAINS),
-        "--warmup",
-        str(WARMUP),
-        "--draws",
-        str(draws),
-        "--max-draws",
-        str(draws),
-        "--summary",
-        mode,
-    ]
+    cmd = fit_command(_WRAP, csv, out, mode, draws)
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t = time.perf_counter()
     p = subprocess.run(cmd, env=env, capture_output=True, text=True)
@@ -109,13 +103,7 @@ def run(quick: bool = False) -> dict:
     rows = []
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        # as installed: pip byte-compiles the package it installs, so the program a user runs does not compile
-        # its own source at each start; a process environment that forbids bytecode (PYTHONDONTWRITEBYTECODE,
-        # set on some build machines) would add that compiling (about 0.15 s) to every run measured here. The
-        # warm-up runs below write the bytecode, into a folder of their own rather than the source tree.
-        env = dict(os.environ, NUMBA_CACHE_DIR=str(tmp / "numba-cache"), PYTHONWARNINGS="ignore")
-        env.pop("PYTHONDONTWRITEBYTECODE", None)
-        env["PYTHONPYCACHEPREFIX"] = str(tmp / "bytecode")
+        env = installed_env(tmp)  # the warm-up runs below compile the kernel and write the bytecode
         small = tmp / "small.csv"
         _table(small, 50, 0.5, 1.0, 0)
         for mode in ("off", "on"):  # compile and cache both modes' kernels first

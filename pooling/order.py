@@ -240,12 +240,12 @@ def sort_bucketed(x, sign, row, order, count):
     for b in range(nb + 1):
         count[b] = 0
     for i in range(n):
-        count[min(int((sign * x[i] - lo) * inv), nb - 1) + 1] += 1
+        count[_bucket(sign * x[i], lo, inv, nb) + 1] += 1
     for b in range(nb):
         count[b + 1] += count[b]
     for i in range(n):
         v = sign * x[i]
-        b = min(int((v - lo) * inv), nb - 1)
+        b = _bucket(v, lo, inv, nb)
         q = count[b]
         count[b] = q + 1
         row[q] = v
